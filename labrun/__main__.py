@@ -1,0 +1,5 @@
+"""Allow ``python -m labrun``."""
+
+from labrun.cli import main
+
+raise SystemExit(main())

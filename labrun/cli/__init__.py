@@ -1,0 +1,65 @@
+"""Command-line entry point: builds the argparse tree from one module per command group.
+
+Each module in ``labrun.cli`` listed in COMMAND_MODULES exposes ``register(subparsers)``, which adds
+its sub-commands and sets ``func`` (called with the parsed namespace, returns an exit code).
+Errors that labrun raises on purpose become one line on stderr and their exit code; no traceback.
+"""
+
+from __future__ import annotations
+
+import argparse
+import importlib
+import sys
+from collections.abc import Sequence
+
+from labrun import __version__
+from labrun.errors import LabrunError
+
+# Command groups, each in its own module (labrun/cli/<name>.py). A module that does not exist yet
+# is skipped so the tree can grow one group at a time.
+COMMAND_MODULES = ("probe", "sim", "analyze", "check", "run", "status", "off")
+
+
+class _Parser(argparse.ArgumentParser):
+    """argparse with usage errors as exit code 2 and one line (argparse's own convention)."""
+
+    def error(self, message: str) -> None:  # noqa: D401 - argparse API
+        self.exit(2, f"{self.prog}: error: {message}\n")
+
+
+def build_parser() -> argparse.ArgumentParser:
+    """The full ``labrun`` parser with every available command group registered."""
+    parser = _Parser(prog="labrun", description="Four-wave-mixing sweeps on optical fibre.")
+    parser.add_argument("--version", action="version", version=f"labrun {__version__}")
+    parser.add_argument("-v", "--verbose", action="store_true", help="log instrument traffic")
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
+    for name in COMMAND_MODULES:
+        try:
+            module = importlib.import_module(f"labrun.cli.{name}")
+        except ModuleNotFoundError as exc:
+            if exc.name == f"labrun.cli.{name}":
+                continue
+            raise
+        module.register(sub)
+    return parser
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    """Run one labrun command; returns the process exit code."""
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    if args.verbose:
+        import logging
+
+        logging.basicConfig(level=logging.DEBUG, format="%(asctime)s %(name)s %(message)s")
+    if not getattr(args, "func", None):
+        parser.print_help()
+        return 2
+    try:
+        return int(args.func(args) or 0)
+    except LabrunError as exc:
+        print(f"labrun: error: {exc}", file=sys.stderr)
+        return exc.exit_code
+    except KeyboardInterrupt:
+        print("labrun: interrupted", file=sys.stderr)
+        return 130

@@ -1,0 +1,1 @@
+"""Shipped data files (sweeps); a package only so an installed labrun can find them."""
