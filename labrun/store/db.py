@@ -1,0 +1,264 @@
+"""Open the run store and the few operations the engine and ``labrun status`` need.
+
+``open_store`` takes a SQLAlchemy URL or a file path (a path means SQLite). SQLite is opened in
+WAL mode with foreign keys on and a busy timeout, so ``labrun status`` in another process reads
+while a run writes. Each point, with its traces and lines, is written in one transaction.
+"""
+
+from __future__ import annotations
+
+import os
+from collections.abc import Iterator, Sequence
+from contextlib import contextmanager
+from dataclasses import dataclass, field
+from datetime import datetime
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+from sqlalchemy import Engine, bindparam, create_engine, event, func, insert, select, update
+from sqlalchemy.engine import make_url
+from sqlalchemy.exc import ArgumentError
+from sqlalchemy.orm import Session, sessionmaker
+
+from labrun.errors import InputError
+from labrun.store.models import Base, Event, Line, Point, Run, Spool, Trace, utcnow
+
+BUSY_TIMEOUT_MS = 15_000  # a reader or writer waits this long for a lock before failing
+DEFAULT_DB = "labrun.db"
+
+
+@dataclass
+class TraceData:
+    """A trace to store: x (nm or THz), y (dBm per RBW) and how it was taken."""
+
+    x: np.ndarray
+    y: np.ndarray
+    kind: str = "output"
+    x_unit: str = "nm"
+    rbw_nm: float | None = None
+    settings: dict[str, Any] = field(default_factory=dict)
+
+
+def store_url(url_or_path: str | os.PathLike[str]) -> str:
+    """A SQLAlchemy URL for ``url_or_path``: URLs pass through, anything else is a SQLite file."""
+    text = os.fspath(url_or_path)
+    if "://" in text:
+        try:
+            make_url(text)
+        except ArgumentError as exc:
+            raise InputError(f"not a database URL: {exc}", field="--db") from None
+        return text
+    path = Path(text).expanduser().resolve()
+    if not path.parent.is_dir():
+        raise InputError(f"folder {path.parent} does not exist", file=text, field="--db")
+    return f"sqlite:///{path}"
+
+
+def _sqlite_pragmas(dbapi_conn: Any, _record: Any) -> None:
+    """WAL (readers never block the writer), foreign keys, and a busy timeout on each connection."""
+    cur = dbapi_conn.cursor()
+    cur.execute("PRAGMA journal_mode=WAL")
+    cur.execute("PRAGMA foreign_keys=ON")
+    cur.execute(f"PRAGMA busy_timeout={BUSY_TIMEOUT_MS}")
+    # NORMAL in WAL mode: a commit survives a process crash; only an OS crash may lose the last
+    # few commits (SQLite documentation, "WAL mode").
+    cur.execute("PRAGMA synchronous=NORMAL")
+    cur.close()
+
+
+def encode_x(x: np.ndarray) -> tuple[float, float, int, bytes | None]:
+    """(start, stop, n, blob): blob is None when x is a linear grid (then 3 numbers rebuild it)."""
+    xs = np.asarray(x, dtype=np.float64)
+    n = int(xs.size)
+    if n == 0:
+        return 0.0, 0.0, 0, None
+    start, stop = float(xs[0]), float(xs[-1])
+    if n > 1:
+        grid = np.linspace(start, stop, n)
+        step = abs(stop - start) / (n - 1)
+        if step > 0 and np.max(np.abs(xs - grid)) <= 1e-6 * step:
+            return start, stop, n, None
+    return start, stop, n, xs.astype("<f8").tobytes()
+
+
+def encode_y(y: np.ndarray) -> bytes:
+    """y as little-endian float32 bytes: 4 bytes a sample, ~7 significant digits (ample for dBm)."""
+    return np.asarray(y, dtype="<f4").tobytes()
+
+
+class Store:
+    """A handle on one run database: engine, sessions and the engine's write operations."""
+
+    def __init__(self, engine: Engine):
+        self.engine = engine
+        self.url = engine.url.render_as_string(hide_password=True)
+        self.sessions = sessionmaker(engine, expire_on_commit=False)
+
+    @contextmanager
+    def session(self) -> Iterator[Session]:
+        """A session in one transaction: committed on success, rolled back on any exception."""
+        with self.sessions.begin() as session:
+            yield session
+
+    def close(self) -> None:
+        """Release every pooled connection."""
+        self.engine.dispose()
+
+    # ----- runs -------------------------------------------------------------------------------
+    def create_run(self, **fields: Any) -> int:
+        """Insert a run (fields of models.Run) and return its id."""
+        with self.session() as s:
+            run = Run(**fields)
+            s.add(run)
+            s.flush()
+            return run.id
+
+    def get_run(self, run_id: int) -> Run | None:
+        """The run row (detached, attributes loaded), or None."""
+        with self.session() as s:
+            return s.get(Run, run_id)
+
+    def latest_run_id(self) -> int | None:
+        """Id of the most recently created run, or None on an empty store."""
+        with self.session() as s:
+            return s.scalar(select(func.max(Run.id)))
+
+    def update_run(self, run_id: int, **fields: Any) -> None:
+        """Set some columns of a run in their own transaction."""
+        with self.session() as s:
+            s.execute(update(Run).where(Run.id == run_id).values(**fields))
+
+    def set_status(self, run_id: int, status: str, reason: str | None = None, *,
+                   finished: bool = False) -> None:
+        """Change a run's status (and reason); ``finished`` also stamps finished_at."""
+        values: dict[str, Any] = {"status": status, "reason": reason, "heartbeat_at": utcnow()}
+        if finished:
+            values["finished_at"] = utcnow()
+        self.update_run(run_id, **values)
+
+    def heartbeat(self, run_id: int) -> None:
+        """Record that the run process is alive now."""
+        self.update_run(run_id, heartbeat_at=utcnow())
+
+    def spool_id(self, label: str, **fields: Any) -> int:
+        """Id of the spool with this label, creating it (with ``fields``) when new."""
+        with self.session() as s:
+            spool = s.scalar(select(Spool).where(Spool.label == label))
+            if spool is None:
+                spool = Spool(label=label, **fields)
+                s.add(spool)
+                s.flush()
+            return spool.id
+
+    # ----- events -----------------------------------------------------------------------------
+    def add_event(self, run_id: int, kind: str, message: str = "", *, role: str | None = None,
+                  point_key: str | None = None, data: dict[str, Any] | None = None) -> None:
+        """Log one event against a run, in its own transaction."""
+        with self.engine.begin() as conn:
+            conn.execute(insert(Event).values(
+                run_id=run_id, at=utcnow(), kind=kind, role=role, point_key=point_key,
+                message=message, data=data or {},
+            ))
+
+    def events(self, run_id: int, kinds: Sequence[str] | None = None) -> list[Event]:
+        """Events of a run in time order, optionally only some kinds."""
+        with self.session() as s:
+            q = select(Event).where(Event.run_id == run_id)
+            if kinds:
+                q = q.where(Event.kind.in_(list(kinds)))
+            return list(s.scalars(q.order_by(Event.id)))
+
+    # ----- points -----------------------------------------------------------------------------
+    def completed_keys(self, run_id: int) -> set[str]:
+        """Keys of the points already stored for a run (what a resume skips)."""
+        with self.session() as s:
+            return set(s.scalars(select(Point.key).where(Point.run_id == run_id)))
+
+    def count_points(self, run_id: int) -> int:
+        """How many points a run has stored."""
+        with self.session() as s:
+            return int(s.scalar(select(func.count(Point.id)).where(Point.run_id == run_id)) or 0)
+
+    def add_point(self, run_id: int, *, key: str, index: int, setpoint: dict[str, Any],
+                  traces: Sequence[TraceData], lines: Sequence[dict[str, Any]],
+                  repeat: int = 0, is_reference: bool = False,
+                  applied: dict[str, Any] | None = None, spacing_ghz: float | None = None,
+                  floor_dbm: float | None = None, flags: Sequence[str] = (), attempts: int = 1,
+                  started_at: datetime | None = None) -> int:
+        """Write a point, its traces and its lines, and beat the heartbeat, in ONE transaction.
+
+        Lines are dicts with the MeasuredLine fields; ``trace`` (index into ``traces``) links a
+        line to its trace (default: the first). Raises IntegrityError on a duplicate key.
+        """
+        now = utcnow()
+        with self.engine.begin() as conn:
+            point_id = conn.execute(_INSERT_POINT, {
+                "run_id": run_id, "key": key, "index": index, "repeat": repeat,
+                "is_reference": is_reference, "setpoint": setpoint, "applied": applied or {},
+                "spacing_ghz": _finite_or_none(spacing_ghz),
+                "floor_dbm": _finite_or_none(floor_dbm), "flags": list(flags),
+                "attempts": attempts, "started_at": started_at, "finished_at": now,
+            }).inserted_primary_key[0]
+            trace_ids = []
+            for tr in traces:
+                x_start, x_stop, n, x_blob = encode_x(tr.x)
+                trace_ids.append(conn.execute(_INSERT_TRACE, {
+                    "point_id": point_id, "kind": tr.kind, "x_unit": tr.x_unit, "n": n,
+                    "x_start": x_start, "x_stop": x_stop, "x_data": x_blob,
+                    "y_data": encode_y(tr.y), "rbw_nm": tr.rbw_nm, "settings": tr.settings,
+                }).inserted_primary_key[0])
+            rows = [_line_row(point_id, trace_ids, ln) for ln in lines]
+            if rows:
+                conn.execute(_INSERT_LINE, rows)
+            conn.execute(_BEAT, {"b_run_id": run_id, "b_now": now})
+        return int(point_id)
+
+
+# Statements built once: executing them with parameters reuses SQLAlchemy's compiled cache,
+# which keeps the per-point commit well under a millisecond of Python work.
+_INSERT_POINT = Point.__table__.insert()
+_INSERT_TRACE = Trace.__table__.insert()
+_INSERT_LINE = Line.__table__.insert()
+_BEAT = (
+    Run.__table__.update()
+    .where(Run.__table__.c.id == bindparam("b_run_id"))
+    .values(heartbeat_at=bindparam("b_now"))
+)
+
+_LINE_FIELDS = ("kind", "side", "order", "freq_thz", "wavelength_nm", "power_dbm", "floor_dbm",
+                "snr_db", "detected", "upper_limit_dbm")
+
+
+def _finite_or_none(value: Any) -> Any:
+    """NaN and infinities become NULL (JSON and SQL have no portable NaN)."""
+    if isinstance(value, float | np.floating):
+        v = float(value)
+        return v if np.isfinite(v) else None
+    return value
+
+
+def _line_row(point_id: int, trace_ids: Sequence[int], line: dict[str, Any]) -> dict[str, Any]:
+    """A row of the lines table from a MeasuredLine-like dict."""
+    row = {name: _finite_or_none(line.get(name)) for name in _LINE_FIELDS}
+    row["detected"] = bool(line.get("detected", True))
+    row["order"] = int(row["order"] or 0)
+    t = line.get("trace", 0)
+    row["trace_id"] = trace_ids[t] if trace_ids and t is not None else None
+    row["point_id"] = point_id
+    return row
+
+
+def open_store(url_or_path: str | os.PathLike[str] = DEFAULT_DB, *, create: bool = True) -> Store:
+    """Open (and create the schema of) the store at a SQLAlchemy URL or a SQLite file path."""
+    url = store_url(url_or_path)
+    is_sqlite = url.startswith("sqlite")
+    kwargs: dict[str, Any] = {}
+    if is_sqlite:
+        kwargs["connect_args"] = {"timeout": BUSY_TIMEOUT_MS / 1000}
+    engine = create_engine(url, **kwargs)
+    if is_sqlite:
+        event.listen(engine, "connect", _sqlite_pragmas)
+    if create:
+        Base.metadata.create_all(engine)
+    return Store(engine)

@@ -1,0 +1,219 @@
+"""SQLAlchemy 2 declarative models of the run store: spools, runs, points, traces, lines, events.
+
+One run holds its points; a point holds its traces (compact float32 y, x as a linear grid or
+float64 bytes) and the lines reduced from them. Events log faults, acknowledgements and exits.
+Times are stored as UTC; ``(run_id, key)`` is unique so a resumed run can never duplicate a point.
+"""
+
+from __future__ import annotations
+
+from datetime import UTC, datetime
+from typing import Any
+
+import numpy as np
+from sqlalchemy import (
+    JSON,
+    Boolean,
+    DateTime,
+    Float,
+    ForeignKey,
+    Index,
+    Integer,
+    LargeBinary,
+    String,
+    Text,
+    TypeDecorator,
+    UniqueConstraint,
+)
+from sqlalchemy.orm import DeclarativeBase, Mapped, mapped_column, relationship
+
+# Run statuses. "created": recorded, nothing emitted yet; "running": in the loop (or the process
+# died: see the heartbeat); "completed": every point done; "stopped": a plan stop condition ended
+# it; "interrupted": Ctrl-C or SIGTERM; "aborted": a safety condition or faults beyond retries;
+# "failed": an unexpected error.
+RUN_STATUSES = ("created", "running", "completed", "stopped", "interrupted", "aborted", "failed")
+FINISHED_STATUSES = ("completed", "stopped")
+
+
+def utcnow() -> datetime:
+    """The current time, timezone-aware UTC (what every column stores)."""
+    return datetime.now(UTC)
+
+
+class UtcDateTime(TypeDecorator):
+    """A DateTime that always comes back timezone-aware UTC, also from SQLite (which drops tz)."""
+
+    impl = DateTime(timezone=True)
+    cache_ok = True
+
+    def process_bind_param(self, value: datetime | None, dialect: Any) -> datetime | None:
+        """Normalise to UTC before storing; naive values are taken to be UTC already."""
+        if value is None:
+            return None
+        if value.tzinfo is None:
+            return value.replace(tzinfo=UTC)
+        return value.astimezone(UTC)
+
+    def process_result_value(self, value: datetime | None, dialect: Any) -> datetime | None:
+        """Attach UTC to the naive datetimes SQLite returns."""
+        if value is None:
+            return None
+        return value.replace(tzinfo=UTC) if value.tzinfo is None else value.astimezone(UTC)
+
+
+class Base(DeclarativeBase):
+    """Declarative base of every labrun table."""
+
+
+class Spool(Base):
+    """A fibre under test: label, length, nominal loss, and parameters that fits produce."""
+
+    __tablename__ = "spools"
+
+    id: Mapped[int] = mapped_column(Integer, primary_key=True)
+    label: Mapped[str] = mapped_column(String(200), unique=True)
+    length_km: Mapped[float | None] = mapped_column(Float)
+    loss_db_per_km: Mapped[float | None] = mapped_column(Float)
+    note: Mapped[str | None] = mapped_column(Text)
+    params: Mapped[dict[str, Any]] = mapped_column(JSON, default=dict)
+    created_at: Mapped[datetime] = mapped_column(UtcDateTime, default=utcnow)
+
+    runs: Mapped[list[Run]] = relationship(back_populates="spool")
+
+
+class Run(Base):
+    """One execution of a plan on a bench, with everything needed to trust or resume it."""
+
+    __tablename__ = "runs"
+
+    id: Mapped[int] = mapped_column(Integer, primary_key=True)
+    status: Mapped[str] = mapped_column(String(20), default="created", index=True)
+    reason: Mapped[str | None] = mapped_column(Text)
+    plan_name: Mapped[str | None] = mapped_column(String(200))
+    plan_path: Mapped[str | None] = mapped_column(Text)
+    plan_text: Mapped[str] = mapped_column(Text)
+    plan_sha256: Mapped[str] = mapped_column(String(64))
+    bench_name: Mapped[str | None] = mapped_column(String(200))
+    bench_path: Mapped[str | None] = mapped_column(Text)
+    bench_text: Mapped[str] = mapped_column(Text)
+    operator: Mapped[str | None] = mapped_column(String(200))
+    unattended: Mapped[bool] = mapped_column(Boolean, default=False)
+    software_version: Mapped[str] = mapped_column(String(50))
+    identities: Mapped[dict[str, Any]] = mapped_column(JSON, default=dict)
+    settings: Mapped[dict[str, Any]] = mapped_column(JSON, default=dict)
+    points_total: Mapped[int] = mapped_column(Integer, default=0)
+    host: Mapped[str | None] = mapped_column(String(200))
+    pid: Mapped[int | None] = mapped_column(Integer)
+    created_at: Mapped[datetime] = mapped_column(UtcDateTime, default=utcnow)
+    started_at: Mapped[datetime | None] = mapped_column(UtcDateTime)
+    finished_at: Mapped[datetime | None] = mapped_column(UtcDateTime)
+    heartbeat_at: Mapped[datetime | None] = mapped_column(UtcDateTime)
+    spool_id: Mapped[int | None] = mapped_column(ForeignKey("spools.id"))
+
+    spool: Mapped[Spool | None] = relationship(back_populates="runs")
+    points: Mapped[list[Point]] = relationship(
+        back_populates="run", cascade="all, delete-orphan", passive_deletes=True
+    )
+    events: Mapped[list[Event]] = relationship(
+        back_populates="run", cascade="all, delete-orphan", passive_deletes=True
+    )
+
+
+class Point(Base):
+    """One set of axis values within a run, committed together with its traces and lines."""
+
+    __tablename__ = "points"
+    __table_args__ = (UniqueConstraint("run_id", "key", name="uq_points_run_key"),)
+
+    id: Mapped[int] = mapped_column(Integer, primary_key=True)
+    run_id: Mapped[int] = mapped_column(ForeignKey("runs.id", ondelete="CASCADE"), index=True)
+    key: Mapped[str] = mapped_column(String(400))
+    index: Mapped[int] = mapped_column(Integer)
+    repeat: Mapped[int] = mapped_column(Integer, default=0)
+    is_reference: Mapped[bool] = mapped_column(Boolean, default=False)
+    setpoint: Mapped[dict[str, Any]] = mapped_column(JSON, default=dict)
+    applied: Mapped[dict[str, Any]] = mapped_column(JSON, default=dict)
+    spacing_ghz: Mapped[float | None] = mapped_column(Float)
+    floor_dbm: Mapped[float | None] = mapped_column(Float)
+    flags: Mapped[list[str]] = mapped_column(JSON, default=list)
+    attempts: Mapped[int] = mapped_column(Integer, default=1)
+    started_at: Mapped[datetime | None] = mapped_column(UtcDateTime)
+    finished_at: Mapped[datetime] = mapped_column(UtcDateTime, default=utcnow)
+
+    run: Mapped[Run] = relationship(back_populates="points")
+    traces: Mapped[list[Trace]] = relationship(
+        back_populates="point", cascade="all, delete-orphan", passive_deletes=True
+    )
+    lines: Mapped[list[Line]] = relationship(
+        back_populates="point", cascade="all, delete-orphan", passive_deletes=True
+    )
+
+
+class Trace(Base):
+    """One captured spectrum: y as float32 bytes (dBm per RBW), x as a linear grid or float64."""
+
+    __tablename__ = "traces"
+
+    id: Mapped[int] = mapped_column(Integer, primary_key=True)
+    point_id: Mapped[int] = mapped_column(ForeignKey("points.id", ondelete="CASCADE"), index=True)
+    kind: Mapped[str] = mapped_column(String(20), default="output")  # output | input
+    x_unit: Mapped[str] = mapped_column(String(8), default="nm")
+    n: Mapped[int] = mapped_column(Integer)
+    x_start: Mapped[float] = mapped_column(Float)
+    x_stop: Mapped[float] = mapped_column(Float)
+    x_data: Mapped[bytes | None] = mapped_column(LargeBinary)  # float64 LE; None = linear grid
+    y_data: Mapped[bytes] = mapped_column(LargeBinary)  # float32 LE
+    rbw_nm: Mapped[float | None] = mapped_column(Float)
+    settings: Mapped[dict[str, Any]] = mapped_column(JSON, default=dict)
+
+    point: Mapped[Point] = relationship(back_populates="traces")
+
+    def x(self) -> np.ndarray:
+        """The x axis (float64), rebuilt from the linear grid when no array was stored."""
+        if self.x_data is not None:
+            return np.frombuffer(self.x_data, dtype="<f8").copy()
+        return np.linspace(self.x_start, self.x_stop, self.n)
+
+    def y(self) -> np.ndarray:
+        """The y values (dBm per RBW) as float64."""
+        return np.frombuffer(self.y_data, dtype="<f4").astype(np.float64)
+
+
+class Line(Base):
+    """A tone or sideband found in a trace (DESIGN.md section 3 indexing)."""
+
+    __tablename__ = "lines"
+    __table_args__ = (Index("ix_lines_point_kind", "point_id", "kind", "side", "order"),)
+
+    id: Mapped[int] = mapped_column(Integer, primary_key=True)
+    point_id: Mapped[int] = mapped_column(ForeignKey("points.id", ondelete="CASCADE"))
+    trace_id: Mapped[int | None] = mapped_column(ForeignKey("traces.id", ondelete="CASCADE"))
+    kind: Mapped[str] = mapped_column(String(10))
+    side: Mapped[str] = mapped_column(String(5))
+    order: Mapped[int] = mapped_column(Integer)
+    freq_thz: Mapped[float | None] = mapped_column(Float)
+    wavelength_nm: Mapped[float | None] = mapped_column(Float)
+    power_dbm: Mapped[float | None] = mapped_column(Float)
+    floor_dbm: Mapped[float | None] = mapped_column(Float)
+    snr_db: Mapped[float | None] = mapped_column(Float)
+    detected: Mapped[bool] = mapped_column(Boolean, default=True)
+    upper_limit_dbm: Mapped[float | None] = mapped_column(Float)
+
+    point: Mapped[Point] = relationship(back_populates="lines")
+
+
+class Event(Base):
+    """Something that happened during a run: safety acknowledgement, fault, retry, exit, ..."""
+
+    __tablename__ = "events"
+
+    id: Mapped[int] = mapped_column(Integer, primary_key=True)
+    run_id: Mapped[int] = mapped_column(ForeignKey("runs.id", ondelete="CASCADE"), index=True)
+    at: Mapped[datetime] = mapped_column(UtcDateTime, default=utcnow)
+    kind: Mapped[str] = mapped_column(String(40), index=True)
+    role: Mapped[str | None] = mapped_column(String(40))
+    point_key: Mapped[str | None] = mapped_column(String(400))
+    message: Mapped[str] = mapped_column(Text, default="")
+    data: Mapped[dict[str, Any]] = mapped_column(JSON, default=dict)
+
+    run: Mapped[Run] = relationship(back_populates="events")
