@@ -1,0 +1,128 @@
+"""Role adapters and opening a whole bench: ``open_bench(bench) -> Instruments``.
+
+Each adapter speaks only through its profile; ``Instruments`` maps role -> adapter and can put
+every source in a safe state (``safe_off_all``) without ever raising.
+"""
+
+from __future__ import annotations
+
+import logging
+from collections.abc import Iterable, Iterator, Mapping
+
+from labrun.bench import Bench
+from labrun.errors import InputError
+from labrun.instruments.amplifier import AmplifierAdapter
+from labrun.instruments.attenuator import AttenuatorAdapter
+from labrun.instruments.base import Adapter
+from labrun.instruments.laser import LaserAdapter
+from labrun.instruments.osa import OsaAdapter
+from labrun.instruments.pol_controller import PolControllerAdapter
+from labrun.instruments.power_meter import PowerMeterAdapter
+from labrun.instruments.switch import SwitchAdapter
+from labrun.scpi import Idn, ScpiSession
+from labrun.transcript import Transcript
+
+__all__ = [
+    "ADAPTERS", "Adapter", "AmplifierAdapter", "AttenuatorAdapter", "Instruments",
+    "LaserAdapter", "OsaAdapter", "PolControllerAdapter", "PowerMeterAdapter", "SwitchAdapter",
+    "open_bench", "open_instrument",
+]
+
+log = logging.getLogger("labrun.instruments")
+
+ADAPTERS: dict[str, type[Adapter]] = {
+    cls.kind: cls for cls in (LaserAdapter, AttenuatorAdapter, PolControllerAdapter, OsaAdapter,
+                              PowerMeterAdapter, AmplifierAdapter, SwitchAdapter)
+}
+# Order in which safe_off_all darkens the bench: the strongest source first, attenuators last.
+SAFE_OFF_ORDER = ("amplifier", "laser_a", "laser_b", "attenuator_a", "attenuator_b")
+
+
+def make_session(bench: Bench, role: str, transcript: Transcript | None = None) -> ScpiSession:
+    """An (unopened) SCPI session for one role, configured from its profile."""
+    spec = bench.instruments[role]
+    p = spec.profile
+    return ScpiSession(spec.resource, spec.backend, write_termination=p.write_termination,
+                       read_termination=p.read_termination, timeout_ms=p.timeout_ms,
+                       error_query=p.error_query, opc_query=p.opc_query, transcript=transcript,
+                       role=role, sim_file=bench.sim_file)
+
+
+def open_instrument(bench: Bench, role: str, *, transcript: Transcript | None = None) -> Adapter:
+    """Connect one role, send its profile's init commands and return its adapter."""
+    spec = bench.instruments[role]
+    session = make_session(bench, role, transcript).open()
+    adapter = ADAPTERS[spec.kind](spec, session, settle_scale=bench.settle_scale)
+    try:
+        adapter.initialise()
+    except Exception:
+        session.close()
+        raise
+    return adapter
+
+
+class Instruments(Mapping[str, Adapter]):
+    """The open instruments of a bench, by role."""
+
+    def __init__(self, bench: Bench, adapters: dict[str, Adapter]):
+        self.bench = bench
+        self._adapters = adapters
+
+    def __getitem__(self, role: str) -> Adapter:
+        return self._adapters[role]
+
+    def __iter__(self) -> Iterator[str]:
+        return iter(self._adapters)
+
+    def __len__(self) -> int:
+        return len(self._adapters)
+
+    def close(self) -> None:
+        """Close every session (leaves instrument states as they are; see safe_off_all)."""
+        for adapter in self._adapters.values():
+            adapter.close()
+
+    def __enter__(self) -> Instruments:
+        return self
+
+    def __exit__(self, *exc_info: object) -> None:
+        self.close()
+
+    def safe_off_all(self) -> list[str]:
+        """Darken every source and attenuator present; return problems, never raise."""
+        problems: list[str] = []
+        for role in SAFE_OFF_ORDER:
+            adapter = self._adapters.get(role)
+            safe_off = getattr(adapter, "safe_off", None)
+            if safe_off is None:
+                continue
+            try:
+                safe_off()
+            except Exception as exc:  # noqa: BLE001 - every source must still be tried
+                message = str(exc) if str(exc).startswith(role) else f"{role}: {exc}"
+                log.error("safe_off failed: %s", message)
+                problems.append(message)
+        return problems
+
+    def identities(self) -> dict[str, Idn]:
+        """``*IDN?`` of every instrument, by role."""
+        return {role: adapter.idn() for role, adapter in self._adapters.items()}
+
+
+def open_bench(bench: Bench, *, transcript: Transcript | None = None,
+               roles: Iterable[str] | None = None) -> Instruments:
+    """Open the instruments of ``bench`` (all, or only ``roles``); closes all if one fails."""
+    wanted = list(bench.instruments) if roles is None else list(roles)
+    for role in wanted:
+        if role not in bench.instruments:
+            raise InputError(f"role {role!r} is not on this bench", file=str(bench.path),
+                             field="instruments")
+    adapters: dict[str, Adapter] = {}
+    try:
+        for role in wanted:
+            adapters[role] = open_instrument(bench, role, transcript=transcript)
+    except BaseException:
+        for adapter in adapters.values():
+            adapter.close()
+        raise
+    return Instruments(bench, adapters)

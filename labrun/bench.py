@@ -1,0 +1,201 @@
+"""Bench files: which instrument plays which role, at which address, with which profile and caps.
+
+``load_bench(path)`` validates the whole file before anything is opened (unknown role or field,
+missing resource, unknown profile, a profile of the wrong kind, a cap that is not a number, a
+missing sim_file) and reports the first problem as a one-line InputError naming file and field.
+The format is in DEVELOPERS.md ("Bench files").
+"""
+
+from __future__ import annotations
+
+import math
+import tomllib
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+from pydantic import BaseModel, ConfigDict, ValidationError
+from pyvisa import rname
+
+from labrun.errors import InputError
+from labrun.profiles import Profile, load_profile
+from labrun.resources import find_file
+from labrun.scpi import BACKENDS
+
+ROLE_KINDS: dict[str, str] = {
+    "laser_a": "laser", "laser_b": "laser",
+    "attenuator_a": "attenuator", "attenuator_b": "attenuator",
+    "pol_controller": "pol_controller", "osa": "osa",
+    "amplifier": "amplifier", "power_meter": "power_meter", "switch": "switch",
+}
+SWEEP_ROLES = ("laser_a", "laser_b", "attenuator_a", "attenuator_b", "pol_controller", "osa")
+SOURCE_ROLES = ("laser_a", "laser_b", "amplifier")
+
+
+class _Strict(BaseModel):
+    model_config = ConfigDict(extra="forbid")
+
+
+class _BenchHead(_Strict):
+    name: str
+    max_total_launched_dbm: float
+    settle_scale: float = 1.0
+    sim_file: str | None = None
+
+
+class Calibration(_Strict):
+    """Losses in dB between the instruments and the spool (DEVELOPERS.md, "Bench files").
+
+    Path and OSA losses default to 0 dB, which overstates launched power (the safe side).
+    """
+
+    path_loss_a_db: float = 0.0
+    path_loss_b_db: float = 0.0
+    amplifier_loss_db: float = 0.0
+    output_to_osa_db: float = 0.0
+    input_tap_db: float = 0.0
+
+
+class _InstrumentModel(_Strict):
+    resource: str
+    backend: str = "@py"
+    profile: str
+    max_power_dbm: float | None = None
+
+
+class _BenchFile(_Strict):
+    bench: _BenchHead
+    calibration: Calibration = Calibration()
+    instruments: dict[str, _InstrumentModel]
+
+
+@dataclass(frozen=True)
+class InstrumentSpec:
+    """One instrument on the bench, with its profile loaded and validated."""
+
+    role: str
+    resource: str
+    backend: str
+    profile: Profile
+    max_power_dbm: float | None = None
+
+    @property
+    def kind(self) -> str:
+        return self.profile.kind
+
+
+@dataclass(frozen=True)
+class Bench:
+    """A validated bench file."""
+
+    path: Path
+    text: str
+    name: str
+    max_total_launched_dbm: float
+    settle_scale: float
+    sim_file: Path | None
+    calibration: Calibration
+    instruments: dict[str, InstrumentSpec] = field(default_factory=dict)
+
+    def missing_sweep_roles(self) -> list[str]:
+        """Roles a sweep needs that this bench lacks (a probe works on any subset)."""
+        return [r for r in SWEEP_ROLES if r not in self.instruments]
+
+    def sources(self) -> list[str]:
+        """Roles present on this bench that emit light."""
+        return [r for r in SOURCE_ROLES if r in self.instruments]
+
+
+def _fail(path: Path, field_name: str, message: str) -> InputError:
+    return InputError(message, file=str(path), field=field_name)
+
+
+def _check_finite(path: Path, field_name: str, value: float | None) -> None:
+    if value is not None and not math.isfinite(value):
+        raise _fail(path, field_name, f"must be a finite number, got {value}")
+
+
+def _instrument(path: Path, role: str, model: _InstrumentModel) -> InstrumentSpec:
+    """Validate one [instruments.<role>] table and load its profile."""
+    where = f"instruments.{role}"
+    if role not in ROLE_KINDS:
+        raise _fail(path, where, f"unknown role {role!r}; roles: {', '.join(ROLE_KINDS)}")
+    if model.backend not in BACKENDS:
+        raise _fail(path, f"{where}.backend",
+                    f"unknown backend {model.backend!r}; use one of {', '.join(BACKENDS)}")
+    try:
+        rname.parse_resource_name(model.resource)
+    except rname.InvalidResourceName as exc:
+        raise _fail(path, f"{where}.resource", str(exc).splitlines()[0]) from None
+    profile_path = find_file(model.profile, "drivers", base=path.parent, suffixes=(".toml",))
+    if profile_path is None:
+        raise _fail(path, f"{where}.profile",
+                    f"unknown profile {model.profile!r} (not a file, not in drivers/)")
+    profile = load_profile(profile_path)
+    if profile.kind != ROLE_KINDS[role]:
+        raise _fail(path, f"{where}.profile", f"profile {profile.name!r} is a {profile.kind}, "
+                                              f"role {role} needs a {ROLE_KINDS[role]}")
+    if role in SOURCE_ROLES and model.max_power_dbm is None:
+        raise _fail(path, f"{where}.max_power_dbm", "a source needs a power cap in dBm")
+    if role not in SOURCE_ROLES and model.max_power_dbm is not None:
+        raise _fail(path, f"{where}.max_power_dbm", "only sources (lasers, amplifier) take a cap")
+    _check_finite(path, f"{where}.max_power_dbm", model.max_power_dbm)
+    return InstrumentSpec(role=role, resource=model.resource, backend=model.backend,
+                          profile=profile, max_power_dbm=model.max_power_dbm)
+
+
+def parse_bench(text: str, path: Path) -> Bench:
+    """Validate bench TOML text; raise a one-line InputError on the first flaw."""
+    try:
+        data: dict[str, Any] = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as exc:
+        raise InputError(f"not valid TOML: {exc}", file=str(path)) from None
+    try:
+        model = _BenchFile.model_validate(data)
+    except ValidationError as exc:
+        err = exc.errors()[0]
+        loc = ".".join(str(p) for p in err["loc"]) or "(top)"
+        raise _fail(path, loc, err["msg"]) from None
+    head = model.bench
+    _check_finite(path, "bench.max_total_launched_dbm", head.max_total_launched_dbm)
+    if not (math.isfinite(head.settle_scale) and head.settle_scale >= 0):
+        raise _fail(path, "bench.settle_scale", "must be a number >= 0")
+    for name, value in model.calibration.model_dump().items():
+        _check_finite(path, f"calibration.{name}", value)
+    calib_given = data.get("calibration", {})
+    for role, key in (("amplifier", "amplifier_loss_db"), ("power_meter", "input_tap_db")):
+        if role in model.instruments and key not in calib_given:
+            raise _fail(path, f"calibration.{key}", f"required when the bench has a {role}")
+    if not model.instruments:
+        raise _fail(path, "instruments", "no instruments listed")
+    instruments = {role: _instrument(path, role, m) for role, m in model.instruments.items()}
+    sim_file: Path | None = None
+    if head.sim_file is not None:
+        sim_file = find_file(head.sim_file, "sim_instruments", base=path.parent)
+        if sim_file is None:
+            raise _fail(path, "bench.sim_file", f"no file {head.sim_file!r} "
+                                                "(relative to the bench file or sim_instruments/)")
+        sim_file = sim_file.resolve()
+    if sim_file is None:
+        for role, spec in instruments.items():
+            if spec.backend == "@sim":
+                raise _fail(path, "bench.sim_file",
+                            f"instruments.{role} uses backend @sim, which needs bench.sim_file")
+    return Bench(path=path, text=text, name=head.name,
+                 max_total_launched_dbm=head.max_total_launched_dbm,
+                 settle_scale=head.settle_scale, sim_file=sim_file,
+                 calibration=model.calibration, instruments=instruments)
+
+
+def load_bench(path: str | Path) -> Bench:
+    """Read and validate a bench file (a path, or a name shipped in sweeps/ or sim_instruments/)."""
+    raw = Path(path)
+    found = raw if raw.is_file() else (find_file(raw, "sim_instruments", suffixes=("", ".toml"))
+                                       or find_file(raw, "sweeps", suffixes=("", ".toml")))
+    if found is None:
+        raise InputError("no such bench file", file=str(path))
+    try:
+        text = found.read_text(encoding="utf-8")
+    except OSError as exc:
+        raise InputError(f"cannot read: {exc.strerror}", file=str(path)) from None
+    return parse_bench(text, found)

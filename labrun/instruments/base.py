@@ -1,0 +1,229 @@
+"""The common part of every role adapter: checked settings, parsed queries, read-back, settling.
+
+A setting goes out only after its value passed the profile range (and, for sources, the bench
+cap); after it, the session drains the error queue, the adapter waits the settle time (scaled by
+the bench's settle_scale) and verifies by read-back where the profile names one.
+"""
+
+from __future__ import annotations
+
+import math
+import time
+from typing import Any
+
+import numpy as np
+
+from labrun.bench import InstrumentSpec
+from labrun.errors import InputError, InstrumentError, SafetyError
+from labrun.profiles import Operation, Profile
+from labrun.scpi import Idn, ScpiSession, parse_idn
+
+FLOAT_SLACK = 1e-9  # absorbs binary round-off when comparing against ranges and tolerances
+TRUE_WORDS = {"1", "+1", "ON", "TRUE"}
+FALSE_WORDS = {"0", "+0", "-0", "OFF", "FALSE"}
+
+
+def parse_reply(op: Operation, reply: str) -> Any:
+    """Convert a query reply according to the operation's ``parse`` (not for traces)."""
+    text = reply.strip()
+    try:
+        if op.parse == "float":
+            return float(text)
+        if op.parse == "int":
+            number = float(text)
+            if not number.is_integer():
+                raise ValueError
+            return int(number)
+        if op.parse == "bool":
+            word = text.upper()
+            if word in TRUE_WORDS:
+                return True
+            if word in FALSE_WORDS:
+                return False
+            raise ValueError
+        if op.parse == "floats":
+            return tuple(float(p) for p in text.split(","))
+        if op.parse == "idn":
+            return parse_idn(text)
+        return text
+    except ValueError:
+        raise ValueError(f"reply {text!r} to {op.query!r} is not {op.parse}") from None
+
+
+class Adapter:
+    """Base of all role adapters: one instrument, one profile, one SCPI session."""
+
+    kind = ""
+
+    def __init__(self, spec: InstrumentSpec, session: ScpiSession, *, settle_scale: float = 1.0):
+        self.spec = spec
+        self.role = spec.role
+        self.profile: Profile = spec.profile
+        self.session = session
+        self.settle_scale = settle_scale
+        self._idn: Idn | None = None
+        self._trace_format_sent = False
+
+    # -- life cycle -------------------------------------------------------------------------
+
+    def initialise(self) -> None:
+        """Send the profile's init commands (e.g. ``*CLS``) once after connecting."""
+        for cmd in self.profile.init:
+            self.session.write(cmd)
+
+    def close(self) -> None:
+        self.session.close()
+
+    def idn(self) -> Idn:
+        """The instrument's identity (``*IDN?``), read once and kept."""
+        if self._idn is None:
+            if self.profile.has("identify"):
+                self._idn = self.read("identify")
+            else:
+                self._idn = self.session.idn()
+        return self._idn
+
+    # -- errors -----------------------------------------------------------------------------
+
+    def _instrument_error(self, message: str) -> InstrumentError:
+        return InstrumentError(message, role=self.role, resource=self.spec.resource)
+
+    def _range_error(self, op: Operation, key: str, value: float,
+                     rng: tuple[float, float]) -> InputError:
+        unit = f" {op.unit}" if op.unit and key == "range" else ""
+        return InputError(f"{self.role}: {value:g}{unit} is outside [{rng[0]:g}, {rng[1]:g}] "
+                          f"for {op.name}; nothing was sent", file=str(self.profile.path),
+                          field=f"operations.{op.name}.{key}")
+
+    # -- checks done before anything is written ----------------------------------------------
+
+    def check_value(self, op: Operation, value: float, *, cap: float | None = None,
+                    cap_name: str = "max_power_dbm") -> float | int:
+        """Refuse a non-finite, over-cap or out-of-range value; return it in the template's type."""
+        try:
+            number = float(value)
+        except (TypeError, ValueError):
+            raise InputError(f"{self.role}: {value!r} is not a number for {op.name}",
+                             file=str(self.profile.path), field=f"operations.{op.name}") from None
+        if not math.isfinite(number):
+            raise InputError(f"{self.role}: {number} is not a finite value for {op.name}",
+                             file=str(self.profile.path), field=f"operations.{op.name}")
+        if cap is not None and number > cap + FLOAT_SLACK:
+            raise SafetyError(f"{self.role}: {number:g} {op.unit or ''} exceeds the bench cap "
+                              f"{cap_name} = {cap:g}; nothing was sent")
+        if op.range is not None and not (op.range[0] - FLOAT_SLACK <= number
+                                         <= op.range[1] + FLOAT_SLACK):
+            raise self._range_error(op, "range", number, op.range)
+        if op.integer:
+            if not number.is_integer():
+                raise InputError(f"{self.role}: {op.name} needs a whole number, got {number:g}",
+                                 file=str(self.profile.path), field=f"operations.{op.name}")
+            return int(number)
+        return number
+
+    def check_index(self, op: Operation, index: int | None) -> int | None:
+        """Refuse a channel-like index outside the operation's index_range."""
+        if op.index_range is None:
+            return None
+        if index is None or not (op.index_range[0] <= index <= op.index_range[1]):
+            raise self._range_error(op, "index_range", float(index or 0), op.index_range)
+        return int(index)
+
+    # -- wire operations --------------------------------------------------------------------
+
+    def read(self, name: str, *, index: int | None = None) -> Any:
+        """Run a query operation and parse its reply (traces come back as numpy arrays)."""
+        op = self.profile.op(name)
+        if not op.is_query:
+            raise InputError(f"{name} is a setting, not a query", file=str(self.profile.path),
+                             field=f"operations.{name}")
+        fields: dict[str, Any] = {}
+        checked = self.check_index(op, index)
+        if checked is not None:
+            fields["index"] = checked
+        text = op.render(**fields)
+        if op.parse == "trace":
+            return self._read_trace_values(text)
+        reply = self.session.query(text)
+        try:
+            return parse_reply(op, reply)
+        except ValueError as exc:
+            raise self._instrument_error(str(exc)) from None
+
+    def _read_trace_values(self, query: str) -> np.ndarray:
+        """Read one trace array in the profile's transfer format (block or ASCII)."""
+        trace = self.profile.trace
+        if trace is None:
+            raise InputError("profile has no [trace] table", file=str(self.profile.path),
+                             field="trace")
+        if not self._trace_format_sent:
+            commands = ([trace.format_command, trace.byte_order_command]
+                        if trace.format == "real32" else [trace.ascii_command])
+            for cmd in commands:
+                if cmd:
+                    self.session.write(cmd)
+            self._trace_format_sent = True
+        if trace.format == "real32":
+            return self.session.query_block_real32(query, trace.byte_order)
+        return self.session.query_ascii_floats(query)
+
+    def apply(self, name: str, value: float | None = None, *, index: int | None = None,
+              values: dict[str, float] | None = None, cap: float | None = None,
+              expect: Any = None) -> None:
+        """Check, send, settle and verify one setting.
+
+        ``value`` fills ``{value}``; ``values`` fills named placeholders (``{s1}``...); ``expect``
+        is the read-back expected from a value-less command (True after ``output_on``).
+        """
+        op = self.profile.op(name)
+        if op.is_query:
+            raise InputError(f"{name} is a query, not a setting", file=str(self.profile.path),
+                             field=f"operations.{name}")
+        fields: dict[str, Any] = {}
+        if value is not None:
+            fields["value"] = self.check_value(op, value, cap=cap)
+        for key, val in (values or {}).items():
+            fields[key] = self.check_value(op, val, cap=cap)
+        checked = self.check_index(op, index)
+        if checked is not None:
+            fields["index"] = checked
+        missing = [p for p in op.placeholders if p not in fields]
+        if missing:
+            raise InputError(f"{self.role}: {name} needs {', '.join(missing)}",
+                             file=str(self.profile.path), field=f"operations.{name}")
+        self.session.write(op.render(**fields))
+        self.settle(op.settle_s)
+        if op.wait:
+            self.session.opc_wait()
+        if op.readback:
+            target: Any = expect
+            if "value" in fields:
+                target = fields["value"]
+            elif values:
+                target = tuple(fields[k] for k in op.placeholders if k != "index")
+            if target is not None:
+                self.verify(op, self.read(op.readback, index=checked), target)
+
+    def verify(self, op: Operation, got: Any, want: Any) -> None:
+        """Compare a read-back with the value set, within the operation's tolerance."""
+        tol = (op.tolerance or 0.0) + FLOAT_SLACK
+        if isinstance(want, bool) or isinstance(got, bool):
+            ok = bool(got) == bool(want)
+        elif isinstance(want, tuple):
+            ok = len(got) == len(want) and all(abs(g - w) <= tol for g, w in zip(got, want,
+                                                                                  strict=True))
+        else:
+            ok = abs(float(got) - float(want)) <= tol
+        if not ok:
+            raise self._instrument_error(f"read-back of {op.name} gave {got!r}, expected {want!r}"
+                                         f" (tolerance {op.tolerance or 0:g})")
+
+    def settle(self, seconds: float) -> None:
+        """Wait a settling time, scaled by the bench's settle_scale (0 in the virtual lab)."""
+        delay = seconds * self.settle_scale
+        if delay > 0:
+            time.sleep(delay)
+
+    def optional_read(self, name: str) -> Any:
+        """Read an operation the profile may not map; None when it does not."""
+        return self.read(name) if self.profile.has(name) else None

@@ -1,0 +1,42 @@
+"""Optical spectrum analyser adapter: settings, sweep (waits via *OPC?), trace read-out."""
+
+from __future__ import annotations
+
+import numpy as np
+
+from labrun.instruments.base import Adapter
+
+
+class OsaAdapter(Adapter):
+    """The OSA at the spool output (x in nm, y in dBm per RBW)."""
+
+    kind = "osa"
+
+    def configure(self, center_nm: float, span_nm: float, rbw_nm: float, points: int) -> None:
+        """Set centre, span, RBW and points; all four are checked before the first is sent."""
+        wanted = (("set_center_nm", center_nm), ("set_span_nm", span_nm),
+                  ("set_rbw_nm", rbw_nm), ("set_points", points))
+        for name, value in wanted:
+            self.check_value(self.profile.op(name), value)
+        for name, value in wanted:
+            self.apply(name, value)
+
+    def settings(self) -> dict[str, float]:
+        """The current centre, span, RBW and points as the instrument reports them."""
+        return {"center_nm": self.read("read_center_nm"), "span_nm": self.read("read_span_nm"),
+                "rbw_nm": self.read("read_rbw_nm"), "points": self.read("read_points")}
+
+    def sweep(self) -> None:
+        """Start one sweep and wait for it to finish (*OPC?, IEEE 488.2)."""
+        op = self.profile.op("sweep")
+        self.apply("sweep")
+        if not op.wait:
+            self.session.opc_wait()
+
+    def read_trace(self) -> tuple[np.ndarray, np.ndarray]:
+        """The last trace: wavelengths (nm) and powers (dBm per RBW), same length."""
+        x = self.read("read_trace_x")
+        y = self.read("read_trace_y")
+        if x.size != y.size or x.size == 0:
+            raise self._instrument_error(f"trace x has {x.size} points and y {y.size}")
+        return x, y

@@ -1,0 +1,50 @@
+"""Polarisation controller adapter: three paddle angles in degrees, or a target Stokes vector."""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Sequence
+
+from labrun.errors import InputError
+from labrun.instruments.base import Adapter
+
+PADDLES = (1, 2, 3)  # quarter, half, quarter wave (generic profile)
+NORM_TOLERANCE = 0.01
+
+
+class PolControllerAdapter(Adapter):
+    """The polarisation controller on one arm."""
+
+    kind = "pol_controller"
+
+    def set_angles_deg(self, angles: Sequence[float]) -> None:
+        """Set the three paddles; every angle is range-checked before the first is sent."""
+        if len(angles) != len(PADDLES):
+            raise InputError(f"{self.role}: need {len(PADDLES)} paddle angles, got {len(angles)}")
+        op = self.profile.op("set_angle_deg")
+        for paddle, angle in zip(PADDLES, angles, strict=True):
+            self.check_value(op, angle)
+            self.check_index(op, paddle)
+        for paddle, angle in zip(PADDLES, angles, strict=True):
+            self.apply("set_angle_deg", angle, index=paddle)
+
+    def angles_deg(self) -> tuple[float, float, float]:
+        a, b, c = (self.read("read_angle_deg", index=p) for p in PADDLES)
+        return (a, b, c)
+
+    def set_stokes(self, stokes: Sequence[float]) -> None:
+        """Drive to a normalised Stokes vector (s1, s2, s3); refused if not of unit length."""
+        if len(stokes) != 3:
+            raise InputError(f"{self.role}: a Stokes vector has 3 components, got {len(stokes)}")
+        norm = math.sqrt(sum(float(s) ** 2 for s in stokes))
+        if abs(norm - 1.0) > NORM_TOLERANCE:
+            raise InputError(f"{self.role}: Stokes vector {tuple(stokes)} has length {norm:.3f}, "
+                             "not 1")
+        s1, s2, s3 = (float(s) for s in stokes)
+        self.apply("set_stokes", values={"s1": s1, "s2": s2, "s3": s3})
+
+    def stokes(self) -> tuple[float, float, float]:
+        values = self.read("read_stokes")
+        if len(values) != 3:
+            raise self._instrument_error(f"read_stokes gave {len(values)} values, expected 3")
+        return (values[0], values[1], values[2])

@@ -1,0 +1,301 @@
+"""Instrument profiles: declarative TOML files in drivers/ mapping generic operations to SCPI.
+
+Loading validates everything a typo could break (unknown operation for the kind, missing or
+unknown placeholder, bad range, unknown or missing field) and reports the first problem as a
+one-line InputError naming the file and the field. See drivers/README.md for the format.
+"""
+
+from __future__ import annotations
+
+import math
+import string
+import tomllib
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, Literal
+
+from pydantic import BaseModel, ConfigDict, ValidationError, model_validator
+
+from labrun.errors import InputError
+from labrun.resources import find_file
+
+Kind = Literal["laser", "attenuator", "pol_controller", "osa", "power_meter", "amplifier",
+               "switch"]
+Parse = Literal["float", "int", "bool", "str", "idn", "floats", "trace"]
+
+COMMON_OPERATIONS = ("identify", "reset", "clear_status")
+KIND_OPERATIONS: dict[str, tuple[str, ...]] = {
+    "laser": ("set_wavelength_nm", "read_wavelength_nm", "set_power_dbm", "read_power_dbm",
+              "output_on", "output_off", "read_output_state", "read_interlock"),
+    "attenuator": ("set_wavelength_nm", "read_wavelength_nm", "set_attenuation_db",
+                   "read_attenuation_db", "output_on", "output_off", "read_output_state"),
+    "pol_controller": ("set_angle_deg", "read_angle_deg", "set_stokes", "read_stokes"),
+    "osa": ("set_center_nm", "read_center_nm", "set_span_nm", "read_span_nm", "set_rbw_nm",
+            "read_rbw_nm", "set_points", "read_points", "sweep", "read_trace_x", "read_trace_y"),
+    "power_meter": ("set_wavelength_nm", "read_wavelength_nm", "read_power_dbm"),
+    "amplifier": ("set_power_dbm", "read_power_dbm", "output_on", "output_off",
+                  "read_output_state", "read_interlock"),
+    "switch": ("set_path", "read_path"),
+}
+# What every profile of a kind must map: identity, and whatever safe_off() needs.
+REQUIRED_OPERATIONS: dict[str, tuple[str, ...]] = {
+    "laser": ("identify", "set_power_dbm", "output_off"),
+    "attenuator": ("identify", "set_attenuation_db"),
+    "pol_controller": ("identify",),
+    "osa": ("identify", "sweep", "read_trace_x", "read_trace_y"),
+    "power_meter": ("identify", "read_power_dbm"),
+    "amplifier": ("identify", "set_power_dbm", "output_off"),
+    "switch": ("identify", "set_path"),
+}
+# Operations that take values, and the value placeholders their template must contain.
+VALUE_PLACEHOLDERS: dict[str, tuple[str, ...]] = {"set_stokes": ("s1", "s2", "s3")}
+SETTINGS_WITHOUT_VALUE = ("output_on", "output_off", "sweep", "reset", "clear_status")
+INDEX = "index"
+
+
+class _Strict(BaseModel):
+    model_config = ConfigDict(extra="forbid", strict=False)
+
+
+class _ProfileHead(_Strict):
+    name: str
+    kind: Kind
+    description: str = ""
+    write_termination: str = "\n"
+    read_termination: str = "\n"
+    timeout_ms: int = 3000
+    error_query: str | None = "SYST:ERR?"
+    opc_query: str | None = "*OPC?"
+    init: list[str] = []
+
+
+class Capabilities(_Strict):
+    """What the instrument reports: emission state and interlock."""
+
+    output_state: bool = False
+    interlock: bool = False
+
+
+class TraceSpec(_Strict):
+    """How an OSA transfers traces: REAL,32 definite-length block or ASCII."""
+
+    format: Literal["real32", "ascii"]
+    byte_order: Literal["little", "big"] = "little"
+    format_command: str | None = None
+    ascii_command: str | None = None
+    byte_order_command: str | None = None
+
+
+class _OperationModel(_Strict):
+    command: str | None = None
+    query: str | None = None
+    parse: Parse | None = None
+    unit: str | None = None
+    range: tuple[float, float] | None = None
+    index_range: tuple[int, int] | None = None
+    settle_s: float = 0.0
+    readback: str | None = None
+    tolerance: float | None = None
+    wait: bool = False
+
+    @model_validator(mode="after")
+    def _one_of(self) -> _OperationModel:
+        if (self.command is None) == (self.query is None):
+            raise ValueError("give exactly one of 'command' (a setting) or 'query'")
+        if self.query is not None and self.parse is None:
+            raise ValueError("a query needs 'parse'")
+        if self.command is not None and self.parse is not None:
+            raise ValueError("'parse' belongs to queries, not commands")
+        if self.settle_s < 0 or not math.isfinite(self.settle_s):
+            raise ValueError("'settle_s' must be a finite number >= 0")
+        return self
+
+
+class _ProfileFile(_Strict):
+    profile: _ProfileHead
+    capabilities: Capabilities = Capabilities()
+    trace: TraceSpec | None = None
+    operations: dict[str, _OperationModel]
+
+
+@dataclass(frozen=True)
+class Operation:
+    """One generic operation: SCPI template, parsing, unit, limits, settling and read-back."""
+
+    name: str
+    command: str | None = None
+    query: str | None = None
+    parse: str | None = None
+    unit: str | None = None
+    range: tuple[float, float] | None = None
+    index_range: tuple[int, int] | None = None
+    settle_s: float = 0.0
+    readback: str | None = None
+    tolerance: float | None = None
+    wait: bool = False
+
+    @property
+    def template(self) -> str:
+        """The SCPI text with placeholders (command or query)."""
+        return self.command if self.command is not None else self.query  # type: ignore[return-value]
+
+    @property
+    def is_query(self) -> bool:
+        return self.query is not None
+
+    @property
+    def placeholders(self) -> tuple[str, ...]:
+        """Names of the placeholders in the template, in order."""
+        return placeholders(self.template)
+
+    @property
+    def integer(self) -> bool:
+        """True when the value placeholder is formatted as an integer (``{value:d}``)."""
+        for _, name, spec, _ in string.Formatter().parse(self.template):
+            if name == "value" and spec and spec.endswith("d"):
+                return True
+        return False
+
+    def render(self, **values: Any) -> str:
+        """The SCPI text with placeholders filled (values already checked by the caller)."""
+        return self.template.format(**values)
+
+
+@dataclass(frozen=True)
+class Profile:
+    """A loaded, validated profile."""
+
+    name: str
+    kind: str
+    path: Path
+    description: str
+    write_termination: str
+    read_termination: str
+    timeout_ms: int
+    error_query: str | None
+    opc_query: str | None
+    init: tuple[str, ...]
+    capabilities: Capabilities
+    trace: TraceSpec | None
+    operations: dict[str, Operation] = field(default_factory=dict)
+
+    def op(self, name: str) -> Operation:
+        """The operation ``name``, or an InputError naming the profile when it is not mapped."""
+        try:
+            return self.operations[name]
+        except KeyError:
+            raise InputError(f"profile does not map operation {name!r}", file=str(self.path),
+                             field=f"operations.{name}") from None
+
+    def has(self, name: str) -> bool:
+        return name in self.operations
+
+    def read_operations(self) -> list[Operation]:
+        """Every query operation, in file order: what a probe may exercise safely."""
+        return [op for op in self.operations.values() if op.is_query]
+
+
+def placeholders(template: str) -> tuple[str, ...]:
+    """Placeholder names in a str.format template."""
+    return tuple(name for _, name, _, _ in string.Formatter().parse(template) if name is not None)
+
+
+def _fail(path: Path, field_name: str, message: str) -> InputError:
+    return InputError(message, file=str(path), field=field_name)
+
+
+def _loc(loc: tuple[Any, ...]) -> str:
+    return ".".join(str(p) for p in loc if not str(p).startswith("function-after"))
+
+
+def _check_operation(path: Path, kind: str, name: str, op: Operation,
+                     ops: dict[str, Operation]) -> None:
+    """Validate one operation against its kind: name, placeholders, ranges, read-back."""
+    where = f"operations.{name}"
+    allowed = COMMON_OPERATIONS + KIND_OPERATIONS[kind]
+    if name not in allowed:
+        raise _fail(path, where, f"unknown operation for kind {kind!r}; "
+                                 f"allowed: {', '.join(allowed)}")
+    try:
+        names = op.placeholders
+    except ValueError as exc:
+        raise _fail(path, where, f"malformed template {op.template!r}: {exc}") from None
+    wanted: tuple[str, ...] = ()
+    if op.command is not None and name not in SETTINGS_WITHOUT_VALUE:
+        wanted = VALUE_PLACEHOLDERS.get(name, ("value",))
+    if op.index_range is not None:
+        wanted += (INDEX,)
+    for missing in (w for w in wanted if w not in names):
+        raise _fail(path, where, f"template {op.template!r} lacks placeholder {{{missing}}}")
+    for extra in (n for n in names if n not in wanted):
+        hint = " (add index_range)" if extra == INDEX else ""
+        raise _fail(path, where, f"unknown placeholder {{{extra}}} in {op.template!r}{hint}")
+    for key, rng in (("range", op.range), ("index_range", op.index_range)):
+        if rng is not None and not (math.isfinite(rng[0]) and math.isfinite(rng[1])
+                                    and rng[0] < rng[1]):
+            raise _fail(path, f"{where}.{key}", f"range must be [low, high] with low < high, "
+                                               f"got {list(rng)}")
+    if wanted and "value" in wanted and op.range is None:
+        raise _fail(path, f"{where}.range", "a setting with {value} needs a range")
+    if op.readback is not None:
+        target = ops.get(op.readback)
+        if target is None or not target.is_query:
+            raise _fail(path, f"{where}.readback",
+                        f"{op.readback!r} is not a query operation of this profile")
+        if "value" in wanted and op.tolerance is None:
+            raise _fail(path, f"{where}.tolerance", "a read-back of a value needs a tolerance")
+    try:
+        sample = {n: (1 if n == INDEX or op.integer else 0.5) for n in names}
+        op.render(**sample)
+    except (ValueError, KeyError, IndexError) as exc:
+        raise _fail(path, where, f"template {op.template!r} cannot be filled: {exc}") from None
+
+
+def parse_profile(data: dict[str, Any], path: Path) -> Profile:
+    """Validate a profile already read from TOML; raise a one-line InputError on the first flaw."""
+    try:
+        model = _ProfileFile.model_validate(data)
+    except ValidationError as exc:
+        err = exc.errors()[0]
+        raise _fail(path, _loc(err["loc"]) or "(top)", err["msg"]) from None
+    head = model.profile
+    if head.name != path.stem:
+        raise _fail(path, "profile.name", f"{head.name!r} must equal the file name {path.stem!r}")
+    if head.timeout_ms <= 0:
+        raise _fail(path, "profile.timeout_ms", "must be > 0")
+    ops = {name: Operation(name=name, **m.model_dump()) for name, m in model.operations.items()}
+    for name, op in ops.items():
+        _check_operation(path, head.kind, name, op, ops)
+    for name in REQUIRED_OPERATIONS[head.kind]:
+        if name not in ops:
+            raise _fail(path, f"operations.{name}", f"a {head.kind} profile must map {name!r}")
+    if head.kind == "osa" and model.trace is None:
+        raise _fail(path, "trace", "an osa profile needs a [trace] table")
+    if head.kind != "osa" and model.trace is not None:
+        raise _fail(path, "trace", "only osa profiles have a [trace] table")
+    return Profile(name=head.name, kind=head.kind, path=path, description=head.description,
+                   write_termination=head.write_termination,
+                   read_termination=head.read_termination, timeout_ms=head.timeout_ms,
+                   error_query=head.error_query, opc_query=head.opc_query,
+                   init=tuple(head.init), capabilities=model.capabilities, trace=model.trace,
+                   operations=ops)
+
+
+def resolve_profile_path(name_or_path: str | Path, *, base: Path | None = None) -> Path | None:
+    """A profile by path, or by name in drivers/ (``generic-laser`` -> generic-laser.toml)."""
+    return find_file(name_or_path, "drivers", base=base, suffixes=(".toml",))
+
+
+def load_profile(name_or_path: str | Path, *, base: Path | None = None) -> Profile:
+    """Load and validate a profile by name or path."""
+    path = resolve_profile_path(name_or_path, base=base)
+    if path is None:
+        raise InputError(f"no profile {str(name_or_path)!r} (not a file, not in drivers/)",
+                         file=str(name_or_path))
+    try:
+        data = tomllib.loads(path.read_text(encoding="utf-8"))
+    except tomllib.TOMLDecodeError as exc:
+        raise InputError(f"not valid TOML: {exc}", file=str(path)) from None
+    except OSError as exc:
+        raise InputError(f"cannot read: {exc.strerror}", file=str(path)) from None
+    return parse_profile(data, path)
