@@ -48,6 +48,7 @@ FLAG_SPAN = "span_too_narrow"
 _C_NM_THZ = C_M_PER_S * 1e-3  # f[THz] * lambda[nm] = c * 1e-3
 _PLATEAU_DB = 0.02  # samples within this of the maximum count as a flat (clipped) top
 _GUARD_RBW = 2.0  # floor windows stay this many RBW away from any grid line
+_FIT_HALF_RBW = 0.6  # peak parabola over +-0.6 FWHM (the top 4.3 dB of a Gaussian line)
 
 
 @dataclass(frozen=True)
@@ -195,7 +196,7 @@ class _Peaks:
     plateau: np.ndarray
 
 
-def _window_peaks(y: np.ndarray, centres: np.ndarray, half: int) -> _Peaks:
+def _window_peaks(y: np.ndarray, centres: np.ndarray, half: int, fit_half: int) -> _Peaks:
     """Maximum of y in [c - half, c + half] for each centre, refined by a parabola on dB.
 
     A maximum on a window edge means the window holds no local peak (a slope of a neighbour).
@@ -212,21 +213,46 @@ def _window_peaks(y: np.ndarray, centres: np.ndarray, half: int) -> _Peaks:
     ymax = win[rows, j]
     at_edge = (j == 0) | (j == 2 * half) | (imax <= 0) | (imax >= n - 1)
     plateau = np.sum(win >= (ymax - _PLATEAU_DB)[:, None], axis=1)
-    im = np.clip(imax, 1, n - 2)
-    y0, ym, yp = y[im], y[im - 1], y[im + 1]
-    vertex, peak = _parabola(ym, y0, yp)
-    vertex = np.where(at_edge, imax, im + vertex)
-    peak = np.where(at_edge, ymax, peak)
+    vertex, peak, ok = _fit_parabola(y, imax, fit_half, None)
+    vertex = np.where(at_edge | ~ok, imax, vertex)
+    peak = np.where(at_edge | ~ok, ymax, peak)
     return _Peaks(imax, vertex, peak, at_edge, plateau)
 
 
-def _parabola(ym: np.ndarray, y0: np.ndarray, yp: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Vertex offset (samples, in [-0.5, 0.5]) and height of the parabola through 3 points."""
-    den = ym - 2.0 * y0 + yp
-    with np.errstate(divide="ignore", invalid="ignore"):
-        p = np.where(den < 0, 0.5 * (ym - yp) / np.where(den < 0, den, -1.0), 0.0)
-    p = np.clip(p, -0.5, 0.5)
-    return p, y0 - 0.25 * (ym - yp) * p
+def _fit_parabola(y: np.ndarray, imax: np.ndarray, k: int, floor_lin: np.ndarray | None):
+    """Least-squares parabola on dB through samples imax-k..imax+k (floor removed if given).
+
+    The log of a Gaussian RBW response is a parabola, so the fit is exact for a clean line and
+    averages sample noise over 2k+1 points. Returns vertex (fractional index), height (dB) and
+    whether the fit is usable (enough samples, a maximum, floor-free samples all positive).
+    """
+    n = y.size
+    k = int(max(1, min(k, (n - 1) // 2)))
+    offs = np.arange(-k, k + 1)
+    c = np.minimum(np.maximum(imax, k), n - 1 - k)
+    win = y[c[:, None] + offs[None, :]]
+    ok = np.ones(c.size, dtype=bool)
+    if floor_lin is not None:
+        excess = _lin(win) - floor_lin[:, None]
+        ok = np.all(excess > 0, axis=1)
+        win = _db(np.where(excess > 0, excess, 1.0))
+    a2, a1, a0 = _pinv_quadratic(k) @ win.T  # rows: x^2, x, 1 coefficients per line
+    ok &= a2 < 0
+    a2s = np.where(ok, a2, -1.0)
+    v = np.clip(-a1 / (2.0 * a2s), -k, k)
+    peak = a0 + a1 * v + a2s * v * v
+    return c + v, peak, ok
+
+
+_PINV_CACHE: dict[int, np.ndarray] = {}
+
+
+def _pinv_quadratic(k: int) -> np.ndarray:
+    """Pseudo-inverse mapping 2k+1 equally spaced samples to (x^2, x, 1) coefficients."""
+    if k not in _PINV_CACHE:
+        t = np.arange(-k, k + 1, dtype=float)
+        _PINV_CACHE[k] = np.linalg.pinv(np.stack([t * t, t, np.ones_like(t)], axis=1))
+    return _PINV_CACHE[k]
 
 
 def _gap_floors(y: np.ndarray, centres: np.ndarray, half: int) -> np.ndarray:
@@ -328,7 +354,8 @@ def reduce_trace(
             [f"missing_tone: fewer than two lines above the floor (found: {found}); "
              "give the expected tone positions"], rbw_nm, power_method,
         )
-    tp = _window_peaks(y, centres, int(halves.max()))
+    fit_half = int(max(1, round(_FIT_HALF_RBW * rbw_s)))
+    tp = _window_peaks(y, centres, int(halves.max()), fit_half)
     tone_ok = ~tp.at_edge & (tp.peak_db >= floor_guess + threshold_db)
     tone_idx = np.where(tone_ok, tp.vertex, centres)
     f_found = ax.index_to_f(tone_idx)  # same order as centres
@@ -346,8 +373,8 @@ def reduce_trace(
     spacing_s = abs(float(c_grid[-1] - c_grid[0])) / max(1, ks.size - 1)
     edge = max(1.0, rbw_s)
     in_span = (c_grid >= edge) & (c_grid <= y.size - 1 - edge)
-    half = int(max(2, min(max(0.5 * rbw_s, 2.0), 0.3 * spacing_s)))
-    pk = _window_peaks(y, c_grid, half)
+    half = int(max(2, min(max(rbw_s, 2.0), 0.3 * spacing_s)))
+    pk = _window_peaks(y, c_grid, half, min(fit_half, half))
 
     # Floor in the gaps between grid positions, 2 RBW away from each line.
     f_gaps = f_a + (np.arange(ks[0] - 1, ks[-1] + 1) + 0.5) * delta
@@ -360,7 +387,7 @@ def reduce_trace(
     raw = pk.peak_db
     snr = raw - line_floor
     detected = in_span & ~pk.at_edge & (snr >= threshold_db)
-    power = _line_power(y, ax, pk, line_floor, rbw_s, power_method)
+    power = _line_power(y, pk, line_floor, rbw_s, power_method, fit_half)
     saturated = detected & (pk.plateau >= 3) & (pk.plateau > 0.3 * rbw_s + 1)
     f_meas = np.where(detected, ax.index_to_f(pk.vertex), f_grid)
     upper = np.maximum(line_floor + threshold_db, raw)
@@ -387,8 +414,8 @@ def reduce_trace(
     return Reduction(delta * 1e3, floor, lines, flags, notes, rbw_nm, power_method)
 
 
-def _line_power(y: np.ndarray, ax: _Axis, pk: _Peaks, floor_db: np.ndarray, rbw_s: float,
-                method: str) -> np.ndarray:
+def _line_power(y: np.ndarray, pk: _Peaks, floor_db: np.ndarray, rbw_s: float, method: str,
+                fit_half: int) -> np.ndarray:
     """Line power (dBm) with the floor removed in linear units, by peak or by integration."""
     n = y.size
     floor_lin = _lin(floor_db)
@@ -398,11 +425,7 @@ def _line_power(y: np.ndarray, ax: _Axis, pk: _Peaks, floor_db: np.ndarray, rbw_
         valid = (idx >= 0) & (idx < n)
         excess = np.where(valid, _lin(y[np.clip(idx, 0, n - 1)]) - floor_lin[:, None], 0.0)
         return _db(excess.sum(axis=1) / (NEB_PER_FWHM_GAUSSIAN * rbw_s))
-    im = np.clip(pk.imax, 1, n - 2)
-    three = _lin(np.stack([y[im - 1], y[im], y[im + 1]])) - floor_lin
-    ok = np.all(three > 0, axis=0)
-    three_db = _db(np.where(three > 0, three, 1.0))
-    _, peak_sub = _parabola(three_db[0], three_db[1], three_db[2])
+    vertex, peak_sub, ok = _fit_parabola(y, pk.imax, fit_half, floor_lin)
     fallback = _db(_lin(pk.peak_db) - floor_lin)
     return np.where(ok & ~pk.at_edge, peak_sub, fallback)
 

@@ -1,0 +1,71 @@
+"""Plots for people: a trace with its lines labelled, and fit results against their data.
+
+matplotlib with the Agg backend (no display needed); every function writes one PNG and returns
+its path.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from pathlib import Path
+
+import matplotlib
+
+matplotlib.use("Agg")
+import matplotlib.pyplot as plt  # noqa: E402
+import numpy as np  # noqa: E402
+
+from labrun.reduce import Reduction  # noqa: E402
+
+
+def plot_trace(path: str | Path, x: np.ndarray, y_dbm: np.ndarray, reduction: Reduction, *,
+               x_unit: str = "nm", title: str | None = None) -> Path:
+    """Trace in dBm with each line marked: detected lines by their power, others by limit."""
+    fig, ax = plt.subplots(figsize=(10, 5), dpi=110)
+    ax.plot(x, y_dbm, lw=0.8, color="0.25", label="trace")
+    for ln in reduction.lines:
+        xpos = ln.wavelength_nm if x_unit == "nm" else ln.freq_thz
+        label = ln.line_id.label()
+        if ln.detected and ln.power_dbm is not None:
+            ax.plot([xpos], [ln.power_dbm], "o", ms=5, color="tab:red" if ln.saturated
+                    else ("tab:blue" if ln.kind == "tone" else "tab:orange"))
+            ax.annotate(f"{label}\n{ln.power_dbm:.1f}", (xpos, ln.power_dbm),
+                        textcoords="offset points", xytext=(0, 6), ha="center", fontsize=7)
+        elif ln.upper_limit_dbm is not None:
+            ax.plot([xpos], [ln.upper_limit_dbm], "v", ms=5, color="tab:gray")
+            ax.annotate(f"{label}\n<{ln.upper_limit_dbm:.1f}", (xpos, ln.upper_limit_dbm),
+                        textcoords="offset points", xytext=(0, 6), ha="center", fontsize=7,
+                        color="tab:gray")
+    if reduction.floor_dbm is not None:
+        ax.axhline(reduction.floor_dbm, ls=":", lw=0.8, color="tab:green", label="floor")
+    ax.set_xlabel("wavelength (nm)" if x_unit == "nm" else "frequency (THz)")
+    ax.set_ylabel("power (dBm per RBW)")
+    spacing = f"{reduction.spacing_ghz:.2f} GHz" if reduction.spacing_ghz else "n/a"
+    flags = f"; flags: {', '.join(reduction.flags)}" if reduction.flags else ""
+    ax.set_title(title or f"spacing {spacing}{flags}", fontsize=9)
+    ax.grid(alpha=0.3)
+    ax.legend(loc="upper right", fontsize=8)
+    fig.tight_layout()
+    out = Path(path)
+    fig.savefig(out)
+    plt.close(fig)
+    return out
+
+
+def plot_fit(path: str | Path, x: Sequence[float], y: Sequence[float], *, model_x=None,
+             model_y=None, xlabel: str = "", ylabel: str = "", title: str = "") -> Path:
+    """Measured points and, when given, a model curve; for fit results against their data."""
+    fig, ax = plt.subplots(figsize=(7, 4.5), dpi=110)
+    ax.plot(x, y, "o", ms=4, label="measured")
+    if model_x is not None and model_y is not None:
+        ax.plot(model_x, model_y, "-", lw=1.2, label="model")
+    ax.set_xlabel(xlabel)
+    ax.set_ylabel(ylabel)
+    ax.set_title(title, fontsize=9)
+    ax.grid(alpha=0.3)
+    ax.legend(fontsize=8)
+    fig.tight_layout()
+    out = Path(path)
+    fig.savefig(out)
+    plt.close(fig)
+    return out
