@@ -169,6 +169,32 @@ class Store:
                 q = q.where(Event.kind.in_(list(kinds)))
             return list(s.scalars(q.order_by(Event.id)))
 
+    def summary(self, run_id: int, *, recent: int = 20) -> dict[str, Any] | None:
+        """What ``labrun status`` shows: run row, counts, pace, last point and its lines, faults."""
+        with self.session() as s:
+            run = s.get(Run, run_id)
+            if run is None:
+                return None
+            done = int(s.scalar(select(func.count(Point.id)).where(Point.run_id == run_id)) or 0)
+            times = list(s.scalars(select(Point.finished_at).where(Point.run_id == run_id)
+                                   .order_by(Point.id.desc()).limit(recent + 1)))
+            last = s.scalars(select(Point).where(Point.run_id == run_id)
+                             .order_by(Point.id.desc()).limit(1)).first()
+            last_lines = [] if last is None else list(s.scalars(
+                select(Line).where(Line.point_id == last.id).order_by(Line.id)))
+            faults = int(s.scalar(select(func.count(Event.id)).where(
+                Event.run_id == run_id, Event.kind == "fault")) or 0)
+            last_fault = s.scalars(select(Event).where(Event.run_id == run_id,
+                                                       Event.kind == "fault")
+                                   .order_by(Event.id.desc()).limit(1)).first()
+            gaps = [(a - b).total_seconds() for a, b in zip(times, times[1:], strict=False)]
+            return {
+                "run": run, "points_done": done,
+                "seconds_per_point": float(np.median(gaps)) if gaps else None,
+                "last_point": last, "last_lines": last_lines, "faults": faults,
+                "last_fault": last_fault,
+            }
+
     # ----- points -----------------------------------------------------------------------------
     def completed_keys(self, run_id: int) -> set[str]:
         """Keys of the points already stored for a run (what a resume skips)."""

@@ -1,0 +1,118 @@
+"""``labrun run`` and ``labrun resume``: execute a sweep plan on a bench into the run store."""
+
+from __future__ import annotations
+
+import argparse
+import json
+import sys
+from typing import Any
+
+from labrun.store import DEFAULT_DB
+
+DB_HELP = (f"SQLAlchemy URL or SQLite file path of the run store (default: {DEFAULT_DB} in the "
+           "current folder)")
+CONFIRM_WORD = "emit"
+
+
+def register(subparsers: Any) -> None:
+    """Add the run and resume commands."""
+    p = subparsers.add_parser(
+        "run", help="run a sweep plan on a bench, storing every point",
+        description="Run a sweep plan on a bench. Every point (trace and lines) is stored as it "
+                    "is measured; every way out switches the sources off.")
+    p.add_argument("plan", metavar="PLAN", help="sweep plan (TOML)")
+    p.add_argument("--bench", required=True, metavar="BENCH", help="bench file (TOML)")
+    p.add_argument("--db", default=DEFAULT_DB, metavar="URL_OR_PATH", help=DB_HELP)
+    p.add_argument("--unattended", action="store_true",
+                   help="no one at the bench: needs --operator and --ack-safety")
+    p.add_argument("--operator", metavar="NAME", help="who is responsible for this run")
+    p.add_argument("--ack-safety", action="store_true",
+                   help="acknowledge the worst case and cautions (recorded with name and time)")
+    p.add_argument("--json", action="store_true", help="print the outcome as JSON on stdout")
+    p.add_argument("--no-progress", action="store_true", help="no progress bar on stderr")
+    p.set_defaults(func=cmd_run)
+
+    r = subparsers.add_parser(
+        "resume", help="continue an interrupted run, skipping the points already stored",
+        description="Continue a run that was interrupted, aborted or killed. Refuses when the "
+                    "plan file or the instruments changed, unless --force.")
+    r.add_argument("run_id", metavar="RUN_ID", type=int, help="run id (see 'labrun status')")
+    r.add_argument("--db", default=DEFAULT_DB, metavar="URL_OR_PATH", help=DB_HELP)
+    r.add_argument("--bench", metavar="BENCH", help="bench file (default: the run's own)")
+    r.add_argument("--force", action="store_true",
+                   help="resume despite a changed plan file or different instruments")
+    r.add_argument("--json", action="store_true", help="print the outcome as JSON on stdout")
+    r.add_argument("--no-progress", action="store_true", help="no progress bar on stderr")
+    r.set_defaults(func=cmd_resume)
+
+
+def ask_operator(text: str) -> bool:
+    """Show the worst case and cautions; True only if the operator types the confirmation word."""
+    print(text, file=sys.stderr)
+    if not sys.stdin.isatty():
+        print("labrun: no terminal to confirm on; use --unattended --operator NAME --ack-safety",
+              file=sys.stderr)
+        return False
+    try:
+        answer = input(f"Type '{CONFIRM_WORD}' to switch the sources on: ")
+    except EOFError:
+        return False
+    return answer.strip().lower() == CONFIRM_WORD
+
+
+def _report(outcome: Any, as_json: bool) -> int:
+    """Print the outcome (JSON on stdout, or one line on stderr) and return the exit code."""
+    if as_json:
+        print(json.dumps(outcome.to_dict(), indent=2))
+    else:
+        line = f"run {outcome.run_id}: {outcome.status}, {outcome.points_done}/" \
+               f"{outcome.points_total} points"
+        if outcome.reason:
+            line += f" ({outcome.reason})"
+        print(line, file=sys.stderr)
+    if outcome.safe_off_problems:
+        print("labrun: WARNING: could not confirm every source off: "
+              + "; ".join(outcome.safe_off_problems) + " -- run 'labrun off' and check the bench",
+              file=sys.stderr)
+    return outcome.exit_code
+
+
+def cmd_run(args: argparse.Namespace) -> int:
+    """labrun run PLAN --bench BENCH ...: validate everything, then run."""
+    from labrun.bench import load_bench
+    from labrun.engine import run_plan
+    from labrun.plan import load_plan
+    from labrun.store import open_store
+
+    plan = load_plan(args.plan)
+    bench = load_bench(args.bench)
+    if args.unattended and not (args.operator and args.ack_safety):
+        from labrun.errors import InputError
+
+        flag = "--operator NAME" if not args.operator else "--ack-safety"
+        raise InputError(f"an unattended run needs {flag}", field=flag.split()[0])
+    store = open_store(args.db)
+    try:
+        outcome = run_plan(plan, bench, store, operator=args.operator,
+                           unattended=args.unattended, ack_safety=args.ack_safety,
+                           confirm=ask_operator, progress=not args.no_progress,
+                           echo=sys.stderr)
+    finally:
+        store.close()
+    return _report(outcome, args.json)
+
+
+def cmd_resume(args: argparse.Namespace) -> int:
+    """labrun resume RUN_ID: continue a stored run where it stopped."""
+    from labrun.bench import load_bench
+    from labrun.engine import resume_run
+    from labrun.store import open_store
+
+    bench = load_bench(args.bench) if args.bench else None
+    store = open_store(args.db)
+    try:
+        outcome = resume_run(args.run_id, store, bench=bench, force=args.force,
+                             progress=not args.no_progress)
+    finally:
+        store.close()
+    return _report(outcome, args.json)

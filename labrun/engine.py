@@ -1,0 +1,693 @@
+"""The run engine: takes a validated plan and bench through every point, safely, into the store.
+
+``run_plan`` refuses anything unsafe before an instrument is opened (caps, missing
+acknowledgement), records the run, then per point: applies the settings (slowest-settling first,
+waits overlapping), sweeps the OSA, reads and reduces the trace, and commits point, traces and
+lines in one transaction. Faults are retried per ``RetryPolicy``; a signal abandons the current
+point; interlock or an unexpected output state aborts. Whatever happens, ``SafeOffGuard`` leaves
+every source off and the attenuators at maximum. ``resume_run`` continues a run by point key.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import math
+import os
+import socket
+import sys
+import time
+from collections.abc import Callable, Sequence
+from dataclasses import asdict, dataclass, field, is_dataclass
+from pathlib import Path
+from typing import Any, TextIO
+
+from labrun import __version__
+from labrun.errors import InputError, InstrumentError, SafetyError
+from labrun.lines import grid_ks
+from labrun.physics.units import nm_to_thz, thz_to_nm
+from labrun.plan import StopWatch
+from labrun.shutdown import RunInterrupted, SafeOffGuard
+from labrun.store import FINISHED_STATUSES, Store, TraceData
+
+SOURCE_ROLES = ("laser_a", "laser_b", "amplifier")
+STALE_HEARTBEAT_S = 60.0  # a running run with an older heartbeat is probably dead
+DEFAULT_ORDERS = 3
+
+
+class RunAborted(Exception):  # noqa: N818 - an outcome, raised to leave the loop
+    """A safety condition or faults beyond the retry policy ended the run."""
+
+
+class StopRequested(Exception):  # noqa: N818 - an outcome, raised to leave the loop
+    """A plan stop condition was met: the run ends normally, early."""
+
+
+@dataclass(frozen=True)
+class RetryPolicy:
+    """How hard to try a point before aborting: attempts in all, pause between (x settle_scale)."""
+
+    attempts: int = 3
+    backoff_s: float = 2.0
+    reconnect: bool = True
+
+
+@dataclass
+class RunOutcome:
+    """How a run ended; ``to_dict`` is the ``--json`` output."""
+
+    run_id: int
+    status: str
+    points_done: int
+    points_total: int
+    reason: str | None = None
+    db: str | None = None
+    safe_off_problems: list[str] = field(default_factory=list)
+
+    def to_dict(self) -> dict[str, Any]:
+        """JSON-ready summary (run_id, status, points_done, points_total, reason, db, ...)."""
+        return asdict(self)
+
+    @property
+    def exit_code(self) -> int:
+        """0 completed/stopped, 128+signal when interrupted, 1 otherwise (or if not all off)."""
+        if self.safe_off_problems:
+            return 1
+        if self.status in FINISHED_STATUSES:
+            return 0
+        if self.status == "interrupted":
+            return 130
+        return 1
+
+
+@dataclass(frozen=True)
+class Setting:
+    """One instrument setting of a point: adapter method, value, and the plan's settle time (s).
+
+    The adapter already waits its profile's settle time after each write; ``settle_s`` is the
+    extra time the plan asks for the axis that drives this setting.
+    """
+
+    role: str
+    method: str
+    value: Any
+    settle_s: float = 0.0
+
+
+
+# ------------------------------------------------------------------------------------------------
+# checks before anything is opened
+# ------------------------------------------------------------------------------------------------
+def preflight(plan: Any, bench: Any, *, operator: str | None, unattended: bool,
+              ack_safety: bool, confirm: Callable[[str], bool] | None) -> str:
+    """Refuse an unsafe or unacknowledged run before any instrument is opened; the safety text.
+
+    Caps (safety.check_caps) -> SafetyError. Unattended without --ack-safety or --operator ->
+    InputError. Interactive: ``confirm(text)`` must return True (the operator typed the word).
+    """
+    from labrun import safety
+
+    missing = [r for r in ("laser_a", "laser_b", "attenuator_a", "attenuator_b",
+                           "pol_controller", "osa") if r not in bench.instruments]
+    if missing:
+        raise InputError(f"a sweep needs roles {', '.join(missing)}", file=str(bench.path),
+                         field="instruments")
+    violations = list(safety.check_caps(plan, bench))
+    if violations:
+        text = "; ".join(str(v) for v in violations)
+        raise SafetyError(f"refused, the plan exceeds a power cap: {text}")
+    text = safety_text(plan, bench)
+    if unattended:
+        if not operator:
+            raise InputError("an unattended run needs --operator NAME", field="--operator")
+        if not ack_safety:
+            raise InputError("an unattended run needs --ack-safety (read the cautions with "
+                             "'labrun check' first)", field="--ack-safety")
+        return text
+    if confirm is None or not confirm(text):
+        raise SafetyError("emission not confirmed by the operator; nothing was switched on")
+    return text
+
+
+def safety_text(plan: Any, bench: Any) -> str:
+    """Worst case launched power, advisory hazard class and the cautions, for the operator."""
+    from labrun import safety
+
+    wc = safety.worst_case(plan, bench)
+    lines = [f"Worst case: {_describe(wc)}"]
+    with contextlib.suppress(Exception):
+        total = _first_attr(wc, ("total_dbm", "total_launched_dbm", "max_launched_dbm"))
+        wl = _first_attr(wc, ("wavelength_nm",))
+        if total is not None:
+            cls = safety.hazard_class(float(total), float(wl) if wl else 1550.0)
+            lines.append(f"Advisory hazard class (IEC 60825-1, confirm with your laser safety "
+                         f"officer): {cls}")
+    lines.append(str(safety.CAUTIONS).strip())
+    return "\n".join(lines)
+
+
+def _describe(obj: Any) -> str:
+    """A one-line rendering of a dataclass-like result."""
+    if hasattr(obj, "describe"):
+        return str(obj.describe())
+    if is_dataclass(obj):
+        return ", ".join(f"{k} {v:.2f}" if isinstance(v, float) else f"{k} {v}"
+                         for k, v in asdict(obj).items())
+    return str(obj)
+
+
+def _first_attr(obj: Any, names: Sequence[str]) -> Any:
+    """The first of ``names`` that ``obj`` has (attribute or mapping key), else None."""
+    for name in names:
+        if isinstance(obj, dict) and name in obj:
+            return obj[name]
+        if hasattr(obj, name):
+            return getattr(obj, name)
+    return None
+
+
+# ------------------------------------------------------------------------------------------------
+# the per-point engine
+# ------------------------------------------------------------------------------------------------
+class Runner:
+    """Runs points of one run: owns the connections, the applied-state cache and the guard."""
+
+    def __init__(self, plan: Any, bench: Any, store: Store, run_id: int, guard: SafeOffGuard, *,
+                 policy: RetryPolicy, progress: bool = True, transcript: Any = None,
+                 sleep: Callable[[float], None] = time.sleep):
+        self.plan, self.bench, self.store, self.run_id = plan, bench, store, run_id
+        self.guard, self.policy, self.transcript = guard, policy, transcript
+        self.scale = float(getattr(bench, "settle_scale", 1.0))
+        self.sleep = sleep
+        self.instruments: Any = None
+        self.applied: dict[tuple[str, str], Any] = {}
+        self.emitting = False
+        self.osa_settings: Any = None
+        self.rbw_nm: float | None = None
+        self.orders = int(getattr(plan, "orders", DEFAULT_ORDERS) or DEFAULT_ORDERS)
+        self.stops = StopWatch(getattr(plan, "stop_conditions", []) or [])
+        self.show_progress = progress
+        self.last_beat = 0.0
+
+    # ---- connections -------------------------------------------------------------------------
+    def open(self) -> dict[str, str]:
+        """Open every bench instrument; the identities as strings."""
+        from labrun.instruments import open_bench
+
+        self.instruments = open_bench(self.bench, transcript=self.transcript)
+        self.guard.set_instruments(self.instruments)
+        return {role: str(idn) for role, idn in self.instruments.identities().items()}
+
+    def close(self) -> None:
+        """Close the connections (after the safe-off)."""
+        if self.instruments is not None:
+            with contextlib.suppress(Exception):
+                self.instruments.close()
+
+    def reconnect(self) -> None:
+        """Drop and reopen every connection; forget what was applied (the fault may have reset)."""
+        self.close()
+        self.instruments = None
+        self.applied.clear()
+        self.emitting = False
+        self.open()
+
+    def role(self, name: str) -> Any:
+        """The adapter of one role."""
+        return self.instruments[name]
+
+    # ---- settings ----------------------------------------------------------------------------
+    def settings_for(self, setpoint: dict[str, Any]) -> list[Setting]:
+        """Instrument settings of a point, each with the plan's settle time for its axes."""
+        from labrun import safety
+
+        inst = safety.instrument_settings(setpoint, self.bench)
+        got = inst if isinstance(inst, dict) else asdict(inst) if is_dataclass(inst) else vars(inst)
+        wl_a = setpoint.get("wavelength_a_nm", got.get("wavelength_a_nm"))
+        wl_b = setpoint.get("wavelength_b_nm", got.get("wavelength_b_nm"))
+        if wl_b is None and wl_a is not None and setpoint.get("spacing_ghz") is not None:
+            wl_b = float(thz_to_nm(nm_to_thz(wl_a) + setpoint["spacing_ghz"] / 1000.0))
+        plan_settle = dict(getattr(self.plan, "settle_s", {}) or {})
+
+        def axis_settle(*axes: str) -> float:
+            return max([float(plan_settle.get(a, 0.0)) for a in axes] + [0.0])
+
+        out: list[Setting] = []
+
+        def add(role: str, method: str, value: Any, *axes: str) -> None:
+            if value is None or role not in self.bench.instruments:
+                return
+            out.append(Setting(role, method, value, axis_settle(*axes)))
+
+        add("laser_a", "set_wavelength_nm", wl_a, "wavelength_a_nm")
+        add("laser_b", "set_wavelength_nm", wl_b, "wavelength_a_nm", "spacing_ghz")
+        add("attenuator_a", "set_wavelength_nm", wl_a, "wavelength_a_nm")
+        add("attenuator_b", "set_wavelength_nm", wl_b, "wavelength_a_nm", "spacing_ghz")
+        pw = ("power_a_dbm", "power_b_dbm", "total_power_dbm", "attenuation_a_db",
+              "attenuation_b_db")
+        add("laser_a", "set_power_dbm", got.get("laser_a_dbm"), *pw)
+        add("laser_b", "set_power_dbm", got.get("laser_b_dbm"), *pw)
+        add("attenuator_a", "set_attenuation_db", got.get("attenuation_a_db"), *pw)
+        add("attenuator_b", "set_attenuation_db", got.get("attenuation_b_db"), *pw)
+        add("amplifier", "set_power_dbm", got.get("amplifier_dbm"), *pw)
+        if setpoint.get("pol_angles_deg") is not None:
+            add("pol_controller", "set_angles_deg", tuple(setpoint["pol_angles_deg"]),
+                "pol_angles_deg")
+        if setpoint.get("pol_stokes") is not None:
+            add("pol_controller", "set_stokes", tuple(setpoint["pol_stokes"]), "pol_stokes")
+        return out
+
+    def apply(self, settings: Sequence[Setting]) -> float:
+        """Write the settings that changed, slowest-settling first; the settle deadline.
+
+        Settling overlaps: each setting's plan settle clock starts when it is written, and the
+        point waits until the last of them has settled (not the sum).
+        """
+        deadline = time.monotonic()
+        todo = [s for s in settings if self.applied.get((s.role, s.method)) != s.value]
+        for s in sorted(todo, key=lambda s: -s.settle_s):
+            getattr(self.role(s.role), s.method)(s.value)
+            self.applied[(s.role, s.method)] = s.value
+            deadline = max(deadline, time.monotonic() + s.settle_s * self.scale)
+        return deadline
+
+    def wait_until(self, deadline: float) -> None:
+        """Sleep until ``deadline``, watching emission and beating the heartbeat meanwhile."""
+        while True:
+            left = deadline - time.monotonic()
+            if left <= 0:
+                return
+            self.sleep(min(left, 0.25))
+            if self.emitting and deadline - time.monotonic() > 0:
+                self.check_emission()
+            self.beat()
+
+    def beat(self, force: bool = False) -> None:
+        """Heartbeat in the store, at most once a second."""
+        now = time.monotonic()
+        if force or now - self.last_beat >= 1.0:
+            self.store.heartbeat(self.run_id)
+            self.last_beat = now
+
+    # ---- emission ----------------------------------------------------------------------------
+    def sources(self) -> list[str]:
+        """Source roles on this bench."""
+        return [r for r in SOURCE_ROLES if r in self.bench.instruments]
+
+    def check_emission(self) -> None:
+        """Abort if an interlock is open, or a source's output is not in the expected state."""
+        for role in self.sources():
+            adapter = self.role(role)
+            closed = adapter.interlock_closed()
+            if closed is False:
+                raise RunAborted(f"interlock open on {role}")
+            state = adapter.output_state()
+            if state is not None and bool(state) != self.emitting:
+                found = "on" if state else "off"
+                raise RunAborted(f"{role} output found {found} unexpectedly")
+
+    def prepare(self, first: Sequence[Setting]) -> None:
+        """Apply the first point with outputs off, then switch on: shutters, lasers, amplifier."""
+        for role in self.sources():
+            if self.role(role).output_state():
+                self.store.add_event(self.run_id, "found_on", f"{role} output was on before the "
+                                     "run switched anything on; switching it off", role=role)
+                self.role(role).output_off()
+        deadline = self.apply(first)
+        for role in ("attenuator_a", "attenuator_b"):
+            self.role(role).output_on()
+        for role in ("laser_a", "laser_b"):
+            self.role(role).output_on()
+        if "amplifier" in self.bench.instruments:
+            self.role("amplifier").output_on()
+        self.emitting = True
+        self.wait_until(deadline)
+        self.check_emission()
+
+    def configure_osa(self, setpoint: dict[str, Any]) -> None:
+        """Apply the plan's OSA settings for this point (re-centred if the pump moves)."""
+        s = self.osa_settings.for_point(setpoint)
+        wanted = (s.center_nm, s.span_nm, s.rbw_nm, int(s.points))
+        if self.applied.get(("osa", "configure")) != wanted:
+            self.role("osa").configure(*wanted)
+            self.applied[("osa", "configure")] = wanted
+        self.rbw_nm = float(s.rbw_nm)
+
+    # ---- one point ---------------------------------------------------------------------------
+    def measure(self, spec: Any) -> tuple[Any, Any, Any, int]:
+        """Set, settle, sweep, read and reduce one point, retrying faults; (x, y, red, tries)."""
+        from labrun.reduce import reduce_trace
+
+        settings = self.settings_for(spec.setpoint)
+        attempt = 0
+        while True:
+            attempt += 1
+            try:
+                self.configure_osa(spec.setpoint)
+                if not self.emitting:
+                    self.prepare(settings)
+                self.wait_until(self.apply(settings))
+                osa = self.role("osa")
+                osa.sweep()
+                x, y = osa.read_trace()
+                self.check_emission()
+                break
+            except InstrumentError as exc:
+                self.fault(spec, attempt, exc)
+        red = reduce_trace(x, y, self.rbw_nm, x_unit="nm", orders=self.orders,
+                           expected_thz=expected_thz(spec.setpoint, self.orders))
+        return x, y, red, attempt
+
+    def fault(self, spec: Any, attempt: int, exc: Exception) -> None:
+        """Record a fault; reconnect and let the caller retry, or abort beyond the policy."""
+        role = getattr(exc, "role", None)
+        self.store.add_event(self.run_id, "fault", str(exc), role=role, point_key=spec.key,
+                             data={"attempt": attempt, "type": type(exc).__name__})
+        if attempt >= self.policy.attempts:
+            raise RunAborted(f"point {spec.key}: {exc} (after {attempt} attempts)") from exc
+        self.wait_until(time.monotonic() + self.policy.backoff_s * self.scale)
+        if self.policy.reconnect:
+            try:
+                self.reconnect()
+            except InstrumentError as again:
+                self.store.add_event(self.run_id, "fault", f"reconnect failed: {again}",
+                                     role=getattr(again, "role", None), point_key=spec.key)
+                if attempt + 1 >= self.policy.attempts:
+                    raise RunAborted(f"reconnect failed: {again}") from again
+        self.store.add_event(self.run_id, "retry", f"attempt {attempt + 1}", point_key=spec.key)
+
+    def commit(self, spec: Any, x: Any, y: Any, red: Any, attempts: int, started: Any) -> None:
+        """Point, trace and lines in one transaction."""
+        lines = [_line_dict(ml) for ml in red.lines]
+        applied = {f"{r}.{m}": v for (r, m), v in self.applied.items()}
+        self.store.add_point(
+            self.run_id, key=spec.key, index=spec.index, setpoint=_jsonable(spec.setpoint),
+            repeat=int(getattr(spec, "repeat", 0) or 0),
+            is_reference=bool(getattr(spec, "is_reference", False)),
+            traces=[TraceData(x, y, rbw_nm=self.rbw_nm,
+                              settings=_jsonable(self.osa_settings.for_point(
+                              spec.setpoint).to_dict()))],
+            lines=lines, applied=_jsonable(applied),
+            spacing_ghz=getattr(red, "spacing_ghz", None),
+            floor_dbm=getattr(red, "floor_dbm", None),
+            flags=[str(f) for f in (getattr(red, "flags", None) or [])],
+            attempts=attempts, started_at=started,
+        )
+        self.last_beat = time.monotonic()
+
+    def run_points(self, specs: Sequence[Any], *, done: int, total: int) -> int:
+        """Measure and store every spec in order; returns the number of points stored in all."""
+        from labrun.store.models import utcnow
+
+        bar = _progress(total, done, self.show_progress)
+        try:
+            for spec in specs:
+                self.guard.check()
+                started = utcnow()
+                x, y, red, attempts = self.measure(spec)
+                self.commit(spec, x, y, red, attempts, started)
+                done += 1
+                if bar is not None:
+                    bar.set_postfix_str(_postfix(red), refresh=False)
+                    bar.update(1)
+                reason = self.stops.update(red.lines)
+                if reason:
+                    raise StopRequested(reason)
+        finally:
+            if bar is not None:
+                bar.close()
+        return done
+
+
+# ------------------------------------------------------------------------------------------------
+# helpers
+# ------------------------------------------------------------------------------------------------
+def expected_thz(setpoint: dict[str, Any], orders: int) -> list[float] | None:
+    """Grid frequencies f_a + k*delta of every line, from the setpoint (None if unknown)."""
+    wl_a, spacing = setpoint.get("wavelength_a_nm"), setpoint.get("spacing_ghz")
+    if wl_a is None or spacing is None:
+        return None
+    f_a = float(nm_to_thz(wl_a))
+    return [f_a + k * spacing / 1000.0 for k in grid_ks(orders)]
+
+
+def _line_dict(line: Any) -> dict[str, Any]:
+    """A MeasuredLine as a plain dict for the store."""
+    if isinstance(line, dict):
+        return line
+    if is_dataclass(line):
+        return asdict(line)
+    return dict(vars(line))
+
+
+def _as_mapping(obj: Any) -> dict[str, Any]:
+    """A settings object as a dict."""
+    if obj is None:
+        return {}
+    if isinstance(obj, dict):
+        return obj
+    if is_dataclass(obj):
+        return asdict(obj)
+    if hasattr(obj, "model_dump"):
+        return obj.model_dump()
+    return dict(vars(obj))
+
+
+def _jsonable(obj: Any) -> Any:
+    """Tuples to lists, numpy scalars to floats, NaN to None: safe for a JSON column."""
+    if isinstance(obj, dict):
+        return {str(k): _jsonable(v) for k, v in obj.items()}
+    if isinstance(obj, list | tuple):
+        return [_jsonable(v) for v in obj]
+    if hasattr(obj, "item") and callable(obj.item):
+        obj = obj.item()
+    if isinstance(obj, float) and not math.isfinite(obj):
+        return None
+    if isinstance(obj, Path):
+        return str(obj)
+    return obj
+
+
+def _postfix(red: Any) -> str:
+    """'tone a -1.2 dBm, low 1 -31.0 dBm' from a reduction, for the progress bar."""
+    parts = []
+    for ml in getattr(red, "lines", []):
+        if ml.order <= 1 and (ml.kind == "tone" and ml.side == "low" or ml.kind == "sideband"
+                              and ml.side == "low"):
+            label = "tone a" if ml.kind == "tone" else "low 1"
+            if ml.detected and ml.power_dbm is not None and math.isfinite(ml.power_dbm):
+                parts.append(f"{label} {ml.power_dbm:.1f} dBm")
+            else:
+                parts.append(f"{label} <{ml.upper_limit_dbm:.1f} dBm")
+    return ", ".join(parts)
+
+
+def _progress(total: int, done: int, enabled: bool) -> Any:
+    """A tqdm bar on stderr with ETA, or None."""
+    if not enabled:
+        return None
+    from tqdm import tqdm
+
+    return tqdm(total=total, initial=done, unit="pt", file=sys.stderr, mininterval=0.5,
+                dynamic_ncols=True, leave=True)
+
+
+# ------------------------------------------------------------------------------------------------
+# entry points
+# ------------------------------------------------------------------------------------------------
+def _abspath(path: Any) -> str | None:
+    """Absolute path text of a file (None for '<plan>'-style names or None)."""
+    if not path or str(path).startswith("<"):
+        return None
+    return str(Path(path).resolve())
+
+
+def _run_fields(plan: Any, bench: Any, *, operator: str | None, unattended: bool,
+                total: int) -> dict[str, Any]:
+    """Columns of a new Run row."""
+    return dict(
+        status="created", plan_name=getattr(plan, "name", None),
+        plan_path=_abspath(getattr(plan, "file", None)), plan_text=plan.text,
+        plan_sha256=plan.sha256, bench_name=bench.name,
+        bench_path=_abspath(bench.path), bench_text=bench.text, operator=operator,
+        unattended=unattended,
+        software_version=__version__, points_total=total, host=socket.gethostname(),
+        pid=os.getpid(),
+    )
+
+
+def run_plan(plan: Any, bench: Any, store: Store, *, operator: str | None = None,
+             unattended: bool = False, ack_safety: bool = False,
+             confirm: Callable[[str], bool] | None = None, policy: RetryPolicy | None = None,
+             progress: bool = True, transcript: Any = None,
+             echo: TextIO | None = None) -> RunOutcome:
+    """Run a plan on a bench into the store; returns how it ended (never leaves a source on).
+
+    Raises InputError/SafetyError before touching anything when the run may not start.
+    """
+    text = preflight(plan, bench, operator=operator, unattended=unattended,
+                     ack_safety=ack_safety, confirm=confirm)
+    if echo is not None and unattended:
+        print(text, file=echo)
+    specs = list(plan.points())
+    run_id = store.create_run(**_run_fields(plan, bench, operator=operator,
+                                            unattended=unattended, total=len(specs)))
+    ack = "acknowledged unattended (--ack-safety)" if unattended else "confirmed interactively"
+    store.add_event(run_id, "safety_ack", f"emission {ack} by {operator or 'operator'}",
+                    data={"operator": operator, "unattended": unattended, "text": text})
+    return _execute(plan, bench, store, run_id, specs, done=0, policy=policy,
+                    progress=progress, transcript=transcript, first=True)
+
+
+def _execute(plan: Any, bench: Any, store: Store, run_id: int, specs: Sequence[Any], *,
+             done: int, policy: RetryPolicy | None, progress: bool, transcript: Any,
+             first: bool, expect_identities: dict[str, str] | None = None,
+             force: bool = False) -> RunOutcome:
+    """Open, run ``specs``, and close run ``run_id`` under the safe-off guard."""
+    from labrun.store.models import utcnow
+
+    total = int(store.get_run(run_id).points_total)
+    status, reason = "failed", None
+    guard = SafeOffGuard(bench)
+    runner = Runner(plan, bench, store, run_id, guard, policy=policy or RetryPolicy(),
+                    progress=progress, transcript=transcript)
+    error: BaseException | None = None
+    guard.install()
+    try:
+        runner.osa_settings = plan.osa_settings(bench)
+        identities = runner.open()
+        if expect_identities is not None:
+            check_identities(expect_identities, identities, force=force, run_id=run_id,
+                             store=store)
+        fields: dict[str, Any] = {"status": "running", "heartbeat_at": utcnow(),
+                                  "pid": os.getpid(), "host": socket.gethostname()}
+        if first:
+            fields.update(identities=identities, started_at=utcnow(),
+                          settings={"osa": _jsonable(runner.osa_settings.to_dict()),
+                                    "settle_scale": runner.scale,
+                                    "retry": asdict(runner.policy)})
+        store.update_run(run_id, **fields)
+        done = runner.run_points(specs, done=done, total=total)
+        status = "completed"
+    except StopRequested as exc:
+        status, reason = "stopped", str(exc)
+    except RunInterrupted as exc:
+        status, reason = "interrupted", str(exc)
+    except KeyboardInterrupt:
+        status, reason = "interrupted", "interrupted (KeyboardInterrupt)"
+    except RunAborted as exc:
+        status, reason = "aborted", str(exc)
+    except InstrumentError as exc:
+        status, reason, error = "aborted", str(exc), exc
+    except SafetyError as exc:
+        status, reason, error = "aborted", str(exc), exc
+    except Exception as exc:  # noqa: BLE001 - recorded, the light switched off, then re-raised
+        status, reason, error = "failed", f"{type(exc).__name__}: {exc}", exc
+    finally:
+        problems = guard.shutdown()
+        runner.close()
+        guard.uninstall()
+    done = store.count_points(run_id)
+    store.add_event(run_id, "safe_off", "all sources off, attenuators at maximum" if not problems
+                    else "NOT CONFIRMED OFF: " + "; ".join(problems),
+                    data={"problems": problems})
+    if status == "completed" and done < total:
+        status, reason = "failed", f"only {done} of {total} points stored"
+    store.add_event(run_id, status, reason or status)
+    store.set_status(run_id, status, reason, finished=True)
+    if error is not None and not isinstance(error, InstrumentError | SafetyError):
+        raise error
+    return RunOutcome(run_id=run_id, status=status, points_done=done, points_total=total,
+                      reason=reason, db=store.url, safe_off_problems=problems)
+
+
+def check_identities(expected: dict[str, str], found: dict[str, str], *, force: bool,
+                     run_id: int, store: Store) -> None:
+    """Refuse to resume on different instruments (unless forced, then record it)."""
+    diffs = [f"{role}: was {expected.get(role)!r}, now {found.get(role)!r}"
+             for role in sorted(set(expected) | set(found))
+             if expected.get(role) != found.get(role)]
+    if not diffs:
+        return
+    if not force:
+        raise SafetyError("instruments differ from the run's (use --force to resume anyway): "
+                          + "; ".join(diffs))
+    store.add_event(run_id, "forced", "resumed on different instruments: " + "; ".join(diffs))
+
+
+def plan_from_run(run: Any, *, force: bool) -> Any:
+    """The plan of a stored run, rebuilt from its stored text; checks hash and the file on disk."""
+    import hashlib
+    import tempfile
+
+    from labrun.plan import load_plan
+
+    if hashlib.sha256(run.plan_text.encode("utf-8")).hexdigest() != run.plan_sha256 \
+            and not force:
+        raise SafetyError(f"run {run.id}: stored plan text does not match its sha256")
+    original = Path(run.plan_path) if run.plan_path else None
+    if original is not None and original.is_file():
+        current = load_plan(original)
+        if current.sha256 == run.plan_sha256:
+            return current
+        if not force:
+            raise SafetyError(f"run {run.id}: plan file {original} changed since the run started "
+                              "(sha256 differs); use --force to resume with the stored plan")
+    # The file is gone (or changed, forced): load the stored text from a file beside it.
+    folder = original.parent if original is not None and original.parent.is_dir() else None
+    with tempfile.NamedTemporaryFile("w", suffix=".toml", dir=folder, delete=False,
+                                     encoding="utf-8") as fh:
+        fh.write(run.plan_text)
+    try:
+        return load_plan(fh.name)
+    finally:
+        os.unlink(fh.name)
+
+
+def resume_run(run_id: int, store: Store, *, bench: Any = None, force: bool = False,
+               policy: RetryPolicy | None = None, progress: bool = True,
+               transcript: Any = None) -> RunOutcome:
+    """Continue a stored run: same plan (hash checked), same instruments, skip stored points."""
+    from labrun.bench import load_bench
+
+    run = store.get_run(run_id)
+    if run is None:
+        raise InputError(f"no run {run_id} in {store.url}", field="RUN_ID")
+    if run.status in FINISHED_STATUSES:
+        raise InputError(f"run {run_id} is already {run.status}", field="RUN_ID")
+    if run.status == "running" and process_alive(run) and not force:
+        raise SafetyError(f"run {run_id} is still running (pid {run.pid} on {run.host})")
+    if bench is None:
+        if not run.bench_path or not Path(run.bench_path).is_file():
+            raise InputError(f"the run's bench file {run.bench_path} is gone; give --bench",
+                             field="--bench")
+        bench = load_bench(run.bench_path)
+    plan = plan_from_run(run, force=force)
+    violations = __import__("labrun.safety", fromlist=["check_caps"]).check_caps(plan, bench)
+    if violations:
+        raise SafetyError("refused, the plan exceeds a power cap on this bench: "
+                          + "; ".join(str(v) for v in violations))
+    done_keys = store.completed_keys(run_id)
+    specs = [s for s in plan.points() if s.key not in done_keys]
+    store.add_event(run_id, "resume", f"resuming: {len(done_keys)} points stored, "
+                    f"{len(specs)} to go", data={"force": force, "bench": str(bench.path)})
+    return _execute(plan, bench, store, run_id, specs, done=len(done_keys), policy=policy,
+                    progress=progress, transcript=transcript, first=False,
+                    expect_identities=dict(run.identities or {}), force=force)
+
+
+def process_alive(run: Any) -> bool:
+    """True if the run's process still exists on this host (a fresh heartbeat elsewhere counts)."""
+    from labrun.store.models import utcnow
+
+    if run.host and run.host != socket.gethostname():
+        beat = run.heartbeat_at
+        return beat is not None and (utcnow() - beat).total_seconds() < STALE_HEARTBEAT_S
+    if not run.pid or run.pid == os.getpid():
+        return False
+    try:
+        os.kill(run.pid, 0)
+    except ProcessLookupError:
+        return False
+    except PermissionError:
+        return True
+    return True

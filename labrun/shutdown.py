@@ -1,0 +1,159 @@
+"""Every way out leaves the light off: signal handlers, an atexit hook and a two-pass safe-off.
+
+``SafeOffGuard`` is armed around a run. SIGINT, SIGTERM and SIGHUP raise ``RunInterrupted`` in the
+main thread (so the current point is abandoned at once, never half-stored); during the safe-off
+itself a signal is only recorded, so a second Ctrl-C cannot cut it short. ``safe_off`` first uses
+the run's own connections, then, if anything is left unconfirmed (a dropped link, a reply cut in
+half by the signal), opens fresh connections to every source and attenuator and tries again.
+"""
+
+from __future__ import annotations
+
+import atexit
+import contextlib
+import logging
+import signal
+import threading
+from collections.abc import Callable
+from types import FrameType
+from typing import Any
+
+log = logging.getLogger(__name__)
+
+# Roles that carry light to the spool, switched off (or closed) on every exit.
+OFF_ROLES = ("laser_a", "laser_b", "amplifier", "attenuator_a", "attenuator_b")
+HANDLED_SIGNALS = tuple(
+    s for s in (getattr(signal, n, None) for n in ("SIGINT", "SIGTERM", "SIGHUP")) if s is not None
+)
+
+
+class RunInterrupted(BaseException):  # noqa: N818 - a control-flow signal, like KeyboardInterrupt
+    """Raised in the run loop when the operator or the system asks labrun to stop.
+
+    A BaseException so that ``except Exception`` retry logic never swallows it.
+    """
+
+    def __init__(self, signum: int):
+        self.signum = signum
+        super().__init__(f"interrupted by {signal.Signals(signum).name}")
+
+
+def safe_off_instruments(instruments: Any) -> list[str]:
+    """Pass 1: sources off and attenuators to maximum over the open connections; problems found."""
+    if instruments is None:
+        return ["no open connections"]
+    try:
+        return list(instruments.safe_off_all())
+    except Exception as exc:  # noqa: BLE001 - safe_off_all should never raise; be sure anyway
+        return [f"safe_off_all raised {type(exc).__name__}: {exc}"]
+
+
+def safe_off_fresh(bench: Any) -> list[str]:
+    """Pass 2: open new connections to every source/attenuator role and switch each off."""
+    from labrun.instruments import open_bench
+
+    problems: list[str] = []
+    for role in OFF_ROLES:
+        if role not in bench.instruments:
+            continue
+        inst = None
+        try:
+            inst = open_bench(bench, roles=[role])
+            problems.extend(inst.safe_off_all())
+        except Exception as exc:  # noqa: BLE001 - report and go on to the next source
+            problems.append(f"{role}: {type(exc).__name__}: {exc}")
+        finally:
+            if inst is not None:
+                with contextlib.suppress(Exception):  # closing is best effort
+                    inst.close()
+    return problems
+
+
+def safe_off(instruments: Any, bench: Any) -> list[str]:
+    """Everything off: own connections first, fresh ones if anything stayed unconfirmed."""
+    problems = safe_off_instruments(instruments)
+    if not problems:
+        return []
+    log.warning("safe-off over the run's connections left: %s; retrying on fresh ones",
+                "; ".join(problems))
+    return safe_off_fresh(bench)
+
+
+class SafeOffGuard:
+    """Arms signal handlers and an atexit hook that switch every source off.
+
+    Use as a context manager around a run; ``set_instruments`` keeps it pointing at the current
+    connections (they change on reconnect). ``shutdown()`` does the safe-off exactly once.
+    """
+
+    def __init__(self, bench: Any, *, on_signal: Callable[[int], None] | None = None):
+        self.bench = bench
+        self.instruments: Any = None
+        self.signum: int | None = None
+        self.problems: list[str] | None = None
+        self._on_signal = on_signal
+        self._critical = False
+        self._done = False
+        self._lock = threading.Lock()
+        self._previous: dict[int, Any] = {}
+
+    # ---- arming ------------------------------------------------------------------------------
+    def __enter__(self) -> SafeOffGuard:
+        self.install()
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.shutdown()
+        self.uninstall()
+
+    def install(self) -> None:
+        """Register the atexit hook and, in the main thread, the signal handlers."""
+        atexit.register(self._atexit)
+        if threading.current_thread() is threading.main_thread():
+            for sig in HANDLED_SIGNALS:
+                self._previous[sig] = signal.signal(sig, self._handle)
+
+    def uninstall(self) -> None:
+        """Put back the previous signal handlers and drop the atexit hook."""
+        for sig, handler in self._previous.items():
+            signal.signal(sig, handler)
+        self._previous.clear()
+        atexit.unregister(self._atexit)
+
+    def set_instruments(self, instruments: Any) -> None:
+        """The connections the first safe-off pass uses."""
+        self.instruments = instruments
+
+    # ---- events ------------------------------------------------------------------------------
+    def _handle(self, signum: int, _frame: FrameType | None) -> None:
+        """Signal handler: remember the signal; outside the safe-off, stop the run loop now."""
+        first = self.signum is None
+        if first:
+            self.signum = signum
+        if self._on_signal is not None:
+            with contextlib.suppress(Exception):  # a handler must not fail
+                self._on_signal(signum)
+        if not self._critical and not self._done and first:
+            raise RunInterrupted(signum)
+
+    def _atexit(self) -> None:
+        """Interpreter exit without a clean shutdown (an unexpected path): switch off anyway."""
+        self.shutdown()
+
+    def check(self) -> None:
+        """Raise RunInterrupted if a signal arrived while it could not be raised."""
+        if self.signum is not None and not self._done:
+            raise RunInterrupted(self.signum)
+
+    def shutdown(self) -> list[str]:
+        """Switch every source off once (signals deferred meanwhile); the problems left."""
+        with self._lock:
+            if self._done:
+                return self.problems or []
+            self._critical = True
+            try:
+                self.problems = safe_off(self.instruments, self.bench)
+            finally:
+                self._done = True
+                self._critical = False
+        return self.problems
