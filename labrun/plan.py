@@ -414,6 +414,7 @@ class Plan:
     def __init__(self, spec: PlanFile, raw: bytes, file: str):
         self.spec = spec
         self.file = file
+        self.path = Path(file)
         self.raw = raw
         self.text = raw.decode("utf-8")
         self.sha256 = hashlib.sha256(raw).hexdigest()
@@ -772,6 +773,8 @@ class Plan:
         for name in ("pol_angles_deg", "pol_stokes"):
             if name in v:
                 out[name] = tuple(v[name])
+        if self.amplifier:
+            out["amplifier"] = True
         return out
 
     def _stop(self, i: int, s: StopSpec) -> StopCondition:
