@@ -1,0 +1,197 @@
+"""The virtual lab as one object: a scenario, its shared state and one TCP server per instrument.
+
+Used by ``labrun sim serve`` and, in-process, by tests::
+
+    with VirtualLab("default-scenario.toml") as lab:
+        bench_path = lab.write_bench(tmp_path / "bench.toml")
+        ...                     # drive it through pyvisa / labrun
+        assert lab.sources_off()
+"""
+
+from __future__ import annotations
+
+import ipaddress
+import json
+import logging
+import threading
+import time
+from pathlib import Path
+from typing import Any
+
+from labrun.vlab.faults import FaultInjector
+from labrun.vlab.scenario import ROLE_KINDS, SOURCE_ROLES, Scenario, as_scenario
+from labrun.vlab.scpi_server import INSTRUMENT_CLASSES, InstrumentServer, SimInstrument
+from labrun.vlab.state import LabState
+
+log = logging.getLogger(__name__)
+# Caps written into the bench when [bench.caps] names none for a source (invented, safe side).
+DEFAULT_CAPS_DBM = {"laser_a": 10.0, "laser_b": 10.0, "amplifier": 20.0}
+
+
+def is_loopback(host: str) -> bool:
+    """True for 127.0.0.0/8, ::1 and 'localhost'."""
+    if host == "localhost":
+        return True
+    try:
+        return ipaddress.ip_address(host).is_loopback
+    except ValueError:
+        return False
+
+
+class VirtualLab:
+    """Simulated bench: every instrument of a scenario on its own TCP port, sharing one state."""
+
+    def __init__(self, scenario: Scenario | str | Path | dict[str, Any], *,
+                 time_scale: float = 0.0, seed: int = 0, host: str = "127.0.0.1"):
+        if time_scale < 0:
+            raise ValueError("time_scale must be >= 0")
+        self.scenario = as_scenario(scenario)
+        self.time_scale = float(time_scale)
+        self.seed = int(seed)
+        self.host = host
+        self.state = LabState(self.scenario, time_scale=self.time_scale, seed=self.seed)
+        self._stopping = threading.Event()
+        self.instruments: dict[str, SimInstrument] = {}
+        self.servers: dict[str, InstrumentServer] = {}
+        self._events_thread: threading.Thread | None = None
+        self.started_at: float | None = None
+
+    # ---- life cycle --------------------------------------------------------------------------
+    def start(self) -> VirtualLab:
+        """Bind every instrument's port and start serving (idempotent)."""
+        if self.servers:
+            return self
+        try:
+            for role in self.scenario.present_roles():
+                spec = getattr(self.scenario.instruments, role)
+                cls = INSTRUMENT_CLASSES[ROLE_KINDS[role]]
+                inst = cls(role, self.state, self.scenario.idn(role),
+                           FaultInjector(self.scenario.faults, role, self.seed), self._stopping)
+                self.instruments[role] = inst
+                self.servers[role] = InstrumentServer(inst, self.host, spec.port)
+        except OSError:
+            self._close_servers()
+            raise
+        self.started_at = time.monotonic()
+        for server in self.servers.values():
+            server.start()
+        if self.scenario.events:
+            self._events_thread = threading.Thread(target=self._run_events, name="vlab-events",
+                                                   daemon=True)
+            self._events_thread.start()
+        return self
+
+    def stop(self) -> None:
+        """Turn sources off, stop the event timer and every server; no thread or port is left."""
+        self.state.all_sources_off()
+        self._stopping.set()
+        if self._events_thread is not None:
+            self._events_thread.join()
+            self._events_thread = None
+        self._close_servers()
+
+    def _close_servers(self) -> None:
+        for server in self.servers.values():
+            server.stop()
+        self.servers.clear()
+
+    def __enter__(self) -> VirtualLab:
+        return self.start()
+
+    def __exit__(self, *exc: object) -> None:
+        self.stop()
+
+    def wait(self, timeout: float | None = None) -> bool:
+        """Block until stop() is called (or timeout); True when stopped."""
+        return self._stopping.wait(timeout)
+
+    # ---- events and controls -----------------------------------------------------------------
+    def _run_events(self) -> None:
+        """Fire the scenario's timed events at their real times after start."""
+        assert self.started_at is not None
+        for event in sorted(self.scenario.events, key=lambda e: e.at_s):
+            delay = self.started_at + event.at_s - time.monotonic()
+            if delay > 0 and self._stopping.wait(delay):
+                return
+            self.apply_event(event.action, event.role)
+
+    def apply_event(self, action: str, role: str | None = None) -> None:
+        """Do what a scenario event says (also usable directly from tests)."""
+        log.info("virtual lab event: %s %s", action, role or "")
+        if action == "open_interlock":
+            self.open_interlock()
+        elif action == "close_interlock":
+            self.state.set_interlock(True)
+        elif action == "output_off" and role is not None:
+            with self.state.lock:
+                if role in self.state.lasers:
+                    self.state.lasers[role].output = False
+                elif role in self.state.attenuators:
+                    self.state.attenuators[role].output = False
+                elif role == "amplifier" and self.state.amplifier is not None:
+                    self.state.amplifier.output = False
+        elif action == "drop_connections" and role is not None:
+            self.drop_connections(role)
+
+    def open_interlock(self) -> None:
+        """Open the interlock: every laser and amplifier output goes off and stays refusable."""
+        self.state.set_interlock(False)
+
+    def close_interlock(self) -> None:
+        """Close the interlock again (outputs stay off until switched on)."""
+        self.state.set_interlock(True)
+
+    def drop_connections(self, role: str) -> int:
+        """Close every client connection of one instrument; returns how many were closed."""
+        if role not in self.servers:
+            raise KeyError(role)
+        return self.servers[role].drop_connections()
+
+    def sources_off(self) -> bool:
+        """True when every laser and amplifier output is off."""
+        return self.state.sources_off()
+
+    # ---- addresses and bench -----------------------------------------------------------------
+    @property
+    def resources(self) -> dict[str, str]:
+        """role -> VISA resource string (after start)."""
+        return {role: server.resource for role, server in self.servers.items()}
+
+    def bench_text(self) -> str:
+        """Bench TOML for this lab (format: DEVELOPERS.md "Bench files")."""
+        if not self.servers:
+            raise RuntimeError("start the virtual lab before writing its bench")
+        sc = self.scenario
+        layout = sc.bench
+        q = json.dumps  # TOML basic strings accept JSON string escapes
+        lines = [
+            f"# Bench of the virtual lab (scenario {sc.source or sc.name}, seed {self.seed}).",
+            "# Written by labrun sim serve; valid only while that server runs.",
+            f"# Connected spool: {sc.connected}",
+            "[bench]",
+            f"name = {q(layout.name)}",
+            f"max_total_launched_dbm = {layout.max_total_launched_dbm!r}",
+            f"settle_scale = {self.time_scale!r}",
+            "",
+            "[calibration]",
+            f"path_loss_a_db = {layout.path_loss_a_db!r}",
+            f"path_loss_b_db = {layout.path_loss_b_db!r}",
+            f"amplifier_loss_db = {layout.amplifier_loss_db!r}",
+            f"output_to_osa_db = {layout.output_to_osa_db!r}",
+            f"input_tap_db = {layout.input_tap_db!r}",
+        ]
+        for role, server in self.servers.items():
+            lines += ["", f"[instruments.{role}]", f"resource = {q(server.resource)}",
+                      'backend = "@py"',
+                      f"profile = {q('generic-' + ROLE_KINDS[role].replace('_', '-'))}"]
+            if role in SOURCE_ROLES:
+                cap = layout.caps.get(role, DEFAULT_CAPS_DBM[role])
+                lines.append(f"max_power_dbm = {cap!r}")
+        return "\n".join(lines) + "\n"
+
+    def write_bench(self, path: str | Path) -> Path:
+        """Write the bench file for this running lab; returns its path."""
+        out = Path(path)
+        out.parent.mkdir(parents=True, exist_ok=True)
+        out.write_text(self.bench_text(), encoding="utf-8")
+        return out

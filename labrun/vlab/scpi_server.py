@@ -1,0 +1,609 @@
+"""Simulated SCPI instruments on loopback TCP: one port per instrument, raw socket, newline
+terminated, speaking the SCPI of the generic profiles in drivers/.
+
+Each ``SimInstrument`` owns an IEEE 488.2 status model (error queue, event status register) and a
+command table; all of them change one shared ``LabState`` under its lock. ``InstrumentServer``
+serves one instrument on a threading TCP server (several clients at once).
+"""
+
+from __future__ import annotations
+
+import contextlib
+import logging
+import socket
+import socketserver
+import threading
+import time
+
+import numpy as np
+
+from labrun.vlab.faults import FaultInjector
+from labrun.vlab.scpi import (
+    Call,
+    CommandTable,
+    ErrorQueue,
+    ScpiFault,
+    boolean,
+    esr_bit,
+    fmt,
+    number,
+    parse_command,
+    split_message,
+)
+from labrun.vlab.state import LabState
+
+log = logging.getLogger(__name__)
+MAX_INPUT_BYTES = 1 << 20  # a message longer than this without a newline overruns the buffer
+
+
+class SimInstrument:
+    """Common part of every simulated instrument: IEEE 488.2 commands and the error queue."""
+
+    kind = "generic"
+
+    def __init__(self, role: str, lab: LabState, idn: str, faults: FaultInjector,
+                 stopping: threading.Event):
+        self.role = role
+        self.lab = lab
+        self.idn = idn
+        self.faults = faults
+        self.stopping = stopping
+        self.errors = ErrorQueue()
+        self.esr = 0
+        self.ese = 0
+        self._opc_armed = False
+        self.table = CommandTable()
+        self._register_common()
+        self.register()
+
+    # ---- tables ------------------------------------------------------------------------------
+    def _register_common(self) -> None:
+        """IEEE 488.2 common commands and the SCPI SYSTem subsystem."""
+        t = self.table
+        t.add("*IDN", lambda c: self.idn, query=True)
+        t.add("*RST", self._rst, nargs=(0, 0))
+        t.add("*CLS", self._cls, nargs=(0, 0))
+        t.add("*OPC", self._opc_set, nargs=(0, 0))
+        t.add("*OPC", lambda c: "1", query=True, waits=True)
+        t.add("*WAI", lambda c: None, nargs=(0, 0), waits=True)
+        t.add("*ESR", self._esr_query, query=True)
+        t.add("*ESE", lambda c: self._set_ese(c), nargs=(1, 1))
+        t.add("*ESE", lambda c: str(self.ese), query=True)
+        t.add("*STB", self._stb, query=True)
+        t.add("*TST", lambda c: "0", query=True)
+        t.add("SYSTem:ERRor[:NEXT]", self._next_error, query=True)
+        t.add("SYSTem:ERRor:COUNt", lambda c: str(len(self.errors)), query=True)
+        t.add("SYSTem:VERSion", lambda c: "1999.0", query=True)
+
+    def register(self) -> None:
+        """Kind-specific commands (overridden)."""
+
+    def reset(self) -> None:
+        """Kind-specific *RST state (overridden)."""
+
+    # ---- common handlers ---------------------------------------------------------------------
+    def _rst(self, call: Call) -> None:
+        self._opc_armed = False
+        self.reset()
+
+    def _cls(self, call: Call) -> None:
+        self.errors.clear()
+        self.esr = 0
+        self._opc_armed = False
+
+    def _opc_set(self, call: Call) -> None:
+        self._opc_armed = True
+
+    def _set_ese(self, call: Call) -> None:
+        self.ese = int(number(call, 0, 255))
+
+    def _esr_query(self, call: Call) -> str:
+        self._update_opc()
+        value, self.esr = self.esr, 0
+        return str(value)
+
+    def _stb(self, call: Call) -> str:
+        self._update_opc()
+        stb = (4 if len(self.errors) else 0) | (32 if self.esr & self.ese else 0)
+        return str(stb | (64 if stb else 0))
+
+    def _next_error(self, call: Call) -> str:
+        code, msg = self.errors.pop()
+        return f'{code},"{msg}"'
+
+    def _update_opc(self) -> None:
+        if self._opc_armed and not self.busy():
+            self.esr |= 1
+            self._opc_armed = False
+
+    def push_error(self, code: int, detail: str = "") -> None:
+        """Queue an error and set its event status bit."""
+        self.errors.push(code, detail)
+        self.esr |= esr_bit(code)
+
+    # ---- pending operations ------------------------------------------------------------------
+    def busy(self) -> bool:
+        """True while an overlapped operation (an OSA sweep) is still running."""
+        return False
+
+    def wait_idle(self) -> None:
+        """Block until pending operations finish (interruptible by stop)."""
+
+    # ---- execution ---------------------------------------------------------------------------
+    def execute(self, message: str) -> bytes | None:
+        """Run one program message; returns the response message (with newline) or None."""
+        replies: list[bytes] = []
+        prefix: list[tuple[str, int | None]] = []
+        for text in split_message(message):
+            try:
+                cmd = parse_command(text)
+            except ScpiFault as fault:
+                with self.lab.lock:
+                    self.push_error(fault.code, fault.detail)
+                prefix = []
+                continue
+            found = None
+            if cmd.common:
+                found = self.table.find_common(cmd.common, cmd.query)
+                prefix = []
+            else:
+                scope = cmd.nodes
+                if not cmd.absolute and prefix:
+                    found = self.table.find(prefix + cmd.nodes, cmd.query)
+                    if found is not None:
+                        scope = prefix + cmd.nodes
+                if found is None:
+                    found = self.table.find(cmd.nodes, cmd.query)
+                prefix = scope[:-1] if found is not None else []
+            reply = self._run(cmd, found)
+            if reply is not None:
+                replies.append(reply if isinstance(reply, bytes) else reply.encode("latin-1"))
+        with self.lab.lock:
+            self.lab.tick()
+        if not replies:
+            return None
+        return b";".join(replies) + b"\n"
+
+    def _run(self, cmd, found) -> str | bytes | None:
+        """Check parameters and call the handler under the state lock; errors go to the queue."""
+        header = cmd.text.split()[0] if cmd.text.split() else cmd.text
+        if found is None:
+            with self.lab.lock:
+                self.push_error(-113, header)
+            return None
+        entry, suffixes = found
+        lo, hi = entry.nargs
+        try:
+            if len(cmd.args) < lo:
+                raise ScpiFault(-109, header)
+            if len(cmd.args) > hi:
+                raise ScpiFault(-108, header)
+            if entry.waits:
+                self.wait_idle()
+            with self.lab.lock:
+                return entry.handler(Call(header, cmd.args, suffixes))
+        except ScpiFault as fault:
+            with self.lab.lock:
+                self.push_error(fault.code, fault.detail)
+            return None
+
+
+def _onoff(value: bool) -> str:
+    return "1" if value else "0"
+
+
+class LaserInstrument(SimInstrument):
+    """Tunable CW laser: SOUR:WAV, SOUR:POW, OUTP:STAT, OUTP:INTL? (generic-laser profile)."""
+
+    kind = "laser"
+    WAVELENGTH_NM = (1500.0, 1630.0)
+    POWER_DBM = (-10.0, 13.0)
+
+    def _state(self):
+        return self.lab.lasers[self.role]
+
+    def register(self) -> None:
+        t = self.table
+        t.add("[SOURce#]:WAVelength", self._set_wavelength)
+        t.add("[SOURce#]:WAVelength", lambda c: fmt(self._state().wavelength_nm), query=True)
+        t.add("[SOURce#]:POWer[:LEVel][:IMMediate][:AMPLitude]", self._set_power)
+        t.add("[SOURce#]:POWer[:LEVel][:IMMediate][:AMPLitude]",
+              lambda c: fmt(self._state().power_dbm), query=True)
+        t.add("OUTPut#[:STATe]", self._set_output)
+        t.add("OUTPut#[:STATe]", lambda c: _onoff(self._state().output), query=True)
+        t.add("OUTPut#:INTLock", lambda c: _onoff(self.lab.interlock_closed), query=True)
+
+    def reset(self) -> None:
+        laser = self._state()
+        laser.output = False
+        laser.wavelength_nm = 1550.0
+        laser.power_dbm = 0.0
+
+    def _set_wavelength(self, call: Call) -> None:
+        self._state().wavelength_nm = number(call, *self.WAVELENGTH_NM, 1550.0)
+
+    def _set_power(self, call: Call) -> None:
+        self._state().power_dbm = number(call, *self.POWER_DBM, 0.0)
+
+    def _set_output(self, call: Call) -> None:
+        on = boolean(call)
+        if on and not self.lab.interlock_closed:
+            raise ScpiFault(-221, "interlock open")
+        self._state().output = on
+
+
+class AmplifierInstrument(SimInstrument):
+    """Constant-output-power amplifier: SOUR:POW, OUTP:STAT, OUTP:INTL? (generic-amplifier)."""
+
+    kind = "amplifier"
+    POWER_DBM = (0.0, 27.0)
+
+    def register(self) -> None:
+        t = self.table
+        amp = self.lab.amplifier
+        t.add("[SOURce#]:POWer[:LEVel][:IMMediate][:AMPLitude]", self._set_power)
+        t.add("[SOURce#]:POWer[:LEVel][:IMMediate][:AMPLitude]",
+              lambda c: fmt(amp.power_dbm), query=True)
+        t.add("OUTPut#[:STATe]", self._set_output)
+        t.add("OUTPut#[:STATe]", lambda c: _onoff(amp.output), query=True)
+        t.add("OUTPut#:INTLock", lambda c: _onoff(self.lab.interlock_closed), query=True)
+
+    def reset(self) -> None:
+        self.lab.amplifier.output = False
+        self.lab.amplifier.power_dbm = 10.0
+
+    def _set_power(self, call: Call) -> None:
+        self.lab.amplifier.power_dbm = number(call, *self.POWER_DBM, 10.0)
+
+    def _set_output(self, call: Call) -> None:
+        on = boolean(call)
+        if on and not self.lab.interlock_closed:
+            raise ScpiFault(-221, "interlock open")
+        self.lab.amplifier.output = on
+
+
+class AttenuatorInstrument(SimInstrument):
+    """Variable attenuator with shutter: INP:WAV, INP:ATT, OUTP:STAT (generic-attenuator)."""
+
+    kind = "attenuator"
+    WAVELENGTH_NM = (1250.0, 1650.0)
+    ATTENUATION_DB = (0.0, 60.0)
+
+    def _state(self):
+        return self.lab.attenuators[self.role]
+
+    def register(self) -> None:
+        t = self.table
+        t.add("INPut#:WAVelength", self._set_wavelength)
+        t.add("INPut#:WAVelength", lambda c: fmt(self._state().wavelength_nm), query=True)
+        t.add("INPut#:ATTenuation", self._set_attenuation)
+        t.add("INPut#:ATTenuation", lambda c: fmt(self._state().attenuation_db), query=True)
+        t.add("OUTPut#[:STATe]", self._set_output)
+        t.add("OUTPut#[:STATe]", lambda c: _onoff(self._state().output), query=True)
+
+    def reset(self) -> None:
+        att = self._state()
+        att.attenuation_db = self.ATTENUATION_DB[1]
+        att.output = False
+        att.wavelength_nm = 1550.0
+
+    def _set_wavelength(self, call: Call) -> None:
+        self._state().wavelength_nm = number(call, *self.WAVELENGTH_NM, 1550.0)
+
+    def _set_attenuation(self, call: Call) -> None:
+        self._state().attenuation_db = number(call, *self.ATTENUATION_DB, 60.0)
+
+    def _set_output(self, call: Call) -> None:
+        self._state().output = boolean(call)
+
+
+class PolControllerInstrument(SimInstrument):
+    """Three-paddle controller: POL:ANGL<n>, POL:STOK (generic-pol-controller)."""
+
+    kind = "pol_controller"
+
+    def register(self) -> None:
+        t = self.table
+        t.add("POLarization:ANGLe#", self._set_angle)
+        t.add("POLarization:ANGLe#", self._angle, query=True)
+        t.add("POLarization:STOKes", self._set_stokes, nargs=(3, 3))
+        t.add("POLarization:STOKes", self._stokes, query=True)
+
+    def reset(self) -> None:
+        self.lab.pol.angles_deg = [0.0, 0.0, 0.0]
+        self.lab.pol.stokes_target = None
+
+    def _paddle(self, call: Call) -> int:
+        n = call.suffix(1)
+        if not 1 <= n <= 3:
+            raise ScpiFault(-114, call.header)
+        return n
+
+    def _set_angle(self, call: Call) -> None:
+        n = self._paddle(call)
+        self.lab.pol.angles_deg[n - 1] = number(call, 0.0, 360.0, 0.0)
+        self.lab.pol.stokes_target = None
+
+    def _angle(self, call: Call) -> str:
+        return fmt(self.lab.pol.angles_deg[self._paddle(call) - 1])
+
+    def _set_stokes(self, call: Call) -> None:
+        s = np.array([number(call, -1.0, 1.0, 0.0, i) for i in range(3)])
+        norm = float(np.linalg.norm(s))
+        if norm < 0.5:
+            raise ScpiFault(-222, f"{call.header} not a polarised state")
+        self.lab.pol.stokes_target = tuple(float(v) for v in s / norm)
+
+    def _stokes(self, call: Call) -> str:
+        from labrun.physics.polarisation import paddles_to_stokes
+
+        pol = self.lab.pol
+        s = pol.stokes_target
+        if s is None:
+            s = paddles_to_stokes(tuple(pol.angles_deg))
+        return ",".join(f"{float(v):.6f}" for v in s)
+
+
+class OsaInstrument(SimInstrument):
+    """Optical spectrum analyser: SENS:WAV:CENT/SPAN, SENS:BAND:RES, SENS:SWE:POIN, INIT:IMM,
+    TRAC:DATA:X?/Y?, FORM:DATA, FORM:BORD (generic-osa)."""
+
+    kind = "osa"
+
+    def register(self) -> None:
+        t = self.table
+        osa = self.lab.osa
+        t.add("[SENSe]:WAVelength:CENTer", self._setter("center_nm", 1200.0, 1700.0))
+        t.add("[SENSe]:WAVelength:CENTer", lambda c: fmt(osa.center_nm), query=True)
+        t.add("[SENSe]:WAVelength:SPAN", self._setter("span_nm", 0.1, 200.0))
+        t.add("[SENSe]:WAVelength:SPAN", lambda c: fmt(osa.span_nm), query=True)
+        t.add("[SENSe]:BANDwidth[:RESolution]", self._setter("rbw_nm", 0.01, 2.0))
+        t.add("[SENSe]:BANDwidth[:RESolution]", lambda c: fmt(osa.rbw_nm), query=True)
+        t.add("[SENSe]:SWEep:POINts", self._set_points)
+        t.add("[SENSe]:SWEep:POINts", lambda c: str(osa.points), query=True)
+        t.add("INITiate[:IMMediate]", self._init, nargs=(0, 0), waits=True)
+        t.add("TRACe[:DATA]:X", lambda c: self._trace(c, "x"), query=True, waits=True)
+        t.add("TRACe[:DATA]:Y", lambda c: self._trace(c, "y"), query=True, waits=True)
+        t.add("FORMat[:DATA]", self._set_format, nargs=(1, 2))
+        t.add("FORMat[:DATA]", lambda c: "REAL,32" if osa.real32 else "ASC,8", query=True)
+        t.add("FORMat:BORDer", self._set_border)
+        t.add("FORMat:BORDer", lambda c: "SWAP" if osa.little_endian else "NORM", query=True)
+
+    def reset(self) -> None:
+        osa = self.lab.osa
+        osa.center_nm, osa.span_nm, osa.rbw_nm, osa.points = 1550.0, 10.0, 0.05, 1001
+        osa.real32, osa.little_endian = False, False
+
+    def _setter(self, name: str, lo: float, hi: float):
+        def handler(call: Call) -> None:
+            setattr(self.lab.osa, name, number(call, lo, hi, getattr(self.lab.osa, name)))
+        return handler
+
+    def _set_points(self, call: Call) -> None:
+        self.lab.osa.points = int(round(number(call, 101, 50001, 1001)))
+
+    def _set_format(self, call: Call) -> None:
+        kind = call.args[0].upper()
+        if kind in ("REAL", "REAL32") and (len(call.args) == 1 or call.args[1] == "32"):
+            self.lab.osa.real32 = True
+        elif kind in ("ASC", "ASCII"):
+            self.lab.osa.real32 = False
+        else:
+            raise ScpiFault(-224, f"{call.header} {','.join(call.args)}")
+
+    def _set_border(self, call: Call) -> None:
+        kind = call.args[0].upper()
+        if kind in ("SWAP", "SWAPPED"):
+            self.lab.osa.little_endian = True
+        elif kind in ("NORM", "NORMAL"):
+            self.lab.osa.little_endian = False
+        else:
+            raise ScpiFault(-224, f"{call.header} {call.args[0]}")
+
+    def busy(self) -> bool:
+        return time.monotonic() < self.lab.osa.busy_until
+
+    def wait_idle(self) -> None:
+        while not self.stopping.is_set():
+            left = self.lab.osa.busy_until - time.monotonic()
+            if left <= 0:
+                return
+            self.stopping.wait(min(left, 0.1))
+
+    def _init(self, call: Call) -> None:
+        self.lab.sweep()
+
+    def _trace(self, call: Call, axis: str) -> str | bytes:
+        osa = self.lab.osa
+        data = osa.x_nm if axis == "x" else osa.y_dbm
+        if osa.sweeps == 0:
+            self.push_error(-230, "no sweep since power-on")
+        elif axis == "y":
+            short = self.faults.short_trace_length(len(data))
+            if short is not None:
+                data = data[:short]
+        values = np.asarray(data, dtype=np.float32 if osa.real32 else float)
+        if not osa.real32:
+            return ",".join(f"{v:.6f}" if axis == "x" else f"{v:.3f}" for v in values)
+        body = values.astype("<f4" if osa.little_endian else ">f4").tobytes()
+        length = str(len(body))
+        return f"#{len(length)}{length}".encode("ascii") + body  # IEEE 488.2 definite length
+
+
+class PowerMeterInstrument(SimInstrument):
+    """Power meter on the spool-input tap: SENS:POW:WAV, READ:POW? (generic-power-meter)."""
+
+    kind = "power_meter"
+
+    def register(self) -> None:
+        t = self.table
+        pm = self.lab.power_meter
+        t.add("[SENSe#]:POWer:WAVelength", self._set_wavelength)
+        t.add("[SENSe#]:POWer:WAVelength", lambda c: fmt(pm.wavelength_nm), query=True)
+        for pattern in ("READ#[:SCALar]:POWer[:DC]", "FETCh#[:SCALar]:POWer[:DC]",
+                        "MEASure#[:SCALar]:POWer[:DC]"):
+            t.add(pattern, lambda c: f"{self.lab.tap_power_dbm():.4f}", query=True)
+
+    def reset(self) -> None:
+        self.lab.power_meter.wavelength_nm = 1550.0
+
+    def _set_wavelength(self, call: Call) -> None:
+        self.lab.power_meter.wavelength_nm = number(call, 800.0, 1700.0, 1550.0)
+
+
+class SwitchInstrument(SimInstrument):
+    """1x2 switch before the OSA: ROUT:PATH 1|2 (generic-switch)."""
+
+    kind = "switch"
+
+    def register(self) -> None:
+        t = self.table
+        t.add("ROUTe#:PATH", self._set_path)
+        t.add("ROUTe#:PATH", lambda c: str(self.lab.switch.path), query=True)
+
+    def reset(self) -> None:
+        self.lab.switch.path = 1
+
+    def _set_path(self, call: Call) -> None:
+        value = number(call, 1, 2, 1)
+        if value != int(value):
+            raise ScpiFault(-224, f"{call.header} {call.args[0]}")
+        self.lab.switch.path = int(value)
+
+
+INSTRUMENT_CLASSES: dict[str, type[SimInstrument]] = {
+    "laser": LaserInstrument,
+    "amplifier": AmplifierInstrument,
+    "attenuator": AttenuatorInstrument,
+    "pol_controller": PolControllerInstrument,
+    "osa": OsaInstrument,
+    "power_meter": PowerMeterInstrument,
+    "switch": SwitchInstrument,
+}
+
+
+def _quick_ack(sock: socket.socket) -> None:
+    """Acknowledge at once (Linux TCP_QUICKACK): a client that writes a command and then a query
+    as two small packets would otherwise wait ~40 ms for a delayed ACK (Nagle's algorithm)."""
+    if hasattr(socket, "TCP_QUICKACK"):
+        with contextlib.suppress(OSError):
+            sock.setsockopt(socket.IPPROTO_TCP, socket.TCP_QUICKACK, 1)
+
+
+class _Handler(socketserver.BaseRequestHandler):
+    """One client connection: read newline-terminated messages, answer queries."""
+
+    server: _TcpServer
+
+    def handle(self) -> None:
+        sock: socket.socket = self.request
+        srv = self.server
+        srv.track(sock, True)
+        buf = b""
+        try:
+            sock.setsockopt(socket.IPPROTO_TCP, socket.TCP_NODELAY, 1)
+            while not srv.stopping.is_set():
+                data = sock.recv(65536)
+                if not data:
+                    return
+                _quick_ack(sock)
+                buf += data
+                while b"\n" in buf:
+                    line, buf = buf.split(b"\n", 1)
+                    if not srv.serve_line(sock, line.rstrip(b"\r")):
+                        return
+                if len(buf) > MAX_INPUT_BYTES:
+                    buf = b""
+                    with srv.instrument.lab.lock:
+                        srv.instrument.push_error(-363)
+        except OSError:
+            return
+        finally:
+            srv.track(sock, False)
+            with contextlib.suppress(OSError):
+                sock.close()
+
+
+class _TcpServer(socketserver.ThreadingTCPServer):
+    """Threading TCP server for one instrument; tracks clients so they can be dropped."""
+
+    allow_reuse_address = True
+    daemon_threads = False
+    block_on_close = True
+
+    def __init__(self, address: tuple[str, int], instrument: SimInstrument,
+                 stopping: threading.Event):
+        self.instrument = instrument
+        self.stopping = stopping
+        self._clients: set[socket.socket] = set()
+        self._clients_lock = threading.Lock()
+        super().__init__(address, _Handler)
+
+    def track(self, sock: socket.socket, add: bool) -> None:
+        """Remember or forget a client socket."""
+        with self._clients_lock:
+            (self._clients.add if add else self._clients.discard)(sock)
+
+    def drop_clients(self) -> int:
+        """Close every client connection (as a power cycle or a cable pull would)."""
+        with self._clients_lock:
+            clients = list(self._clients)
+        for sock in clients:
+            with contextlib.suppress(OSError):
+                sock.shutdown(socket.SHUT_RDWR)
+        return len(clients)
+
+    def serve_line(self, sock: socket.socket, line: bytes) -> bool:
+        """Handle one received message, with faults; False when the connection must close."""
+        if not line.strip():
+            return True
+        inst = self.instrument
+        decision = inst.faults.on_command()
+        if decision.drop:
+            log.debug("%s: fault: dropping connection", inst.role)
+            sock.shutdown(socket.SHUT_RDWR)
+            return False
+        if decision.timeout:
+            log.debug("%s: fault: swallowing %r", inst.role, line[:60])
+            return True
+        reply = inst.execute(line.decode("latin-1"))
+        if decision.spurious:
+            with inst.lab.lock:
+                inst.push_error(*decision.spurious)
+        if reply is not None:
+            if decision.garble:
+                reply = inst.faults.garble(reply)
+            sock.sendall(reply)
+        return True
+
+
+class InstrumentServer:
+    """One simulated instrument listening on its own TCP port, served from a background thread."""
+
+    def __init__(self, instrument: SimInstrument, host: str, port: int):
+        self.instrument = instrument
+        self._tcp = _TcpServer((host, port), instrument, instrument.stopping)
+        self.host, self.port = self._tcp.server_address[:2]
+        self._thread = threading.Thread(target=self._tcp.serve_forever, kwargs={
+            "poll_interval": 0.05}, name=f"vlab-{instrument.role}", daemon=True)
+
+    @property
+    def resource(self) -> str:
+        """VISA resource string of this instrument."""
+        return f"TCPIP0::{self.host}::{self.port}::SOCKET"
+
+    def start(self) -> None:
+        """Start accepting clients."""
+        self._thread.start()
+
+    def drop_connections(self) -> int:
+        """Close every client connection; returns how many there were."""
+        return self._tcp.drop_clients()
+
+    def stop(self) -> None:
+        """Stop accepting, close clients, join every handler thread, release the port."""
+        if self._thread.is_alive():
+            self._tcp.shutdown()
+            self._thread.join()
+        self._tcp.drop_clients()
+        self._tcp.server_close()
