@@ -4,7 +4,12 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
-from labrun.physics.units import alpha_per_km, effective_length_km
+from labrun.physics.units import (
+    alpha_per_km,
+    beta2_ps2_per_km,
+    beta3_ps3_per_km,
+    effective_length_km,
+)
 
 
 @dataclass(frozen=True)
@@ -35,4 +40,18 @@ class Fibre:
         """D(lambda) in ps/(nm km), linear in the slope around the reference wavelength."""
         return self.dispersion_ps_per_nm_km + self.dispersion_slope_ps_per_nm2_km * (
             wavelength_nm - self.reference_wavelength_nm
+        )
+
+    def beta2_at(self, wavelength_nm: float) -> float:
+        """beta2 in ps^2/km at a wavelength, from D(lambda) = D + S (lambda - lambda_ref)."""
+        return float(beta2_ps2_per_km(self.dispersion_at(wavelength_nm), wavelength_nm))
+
+    def beta3_at(self, wavelength_nm: float) -> float:
+        """beta3 in ps^3/km at a wavelength, from D(lambda) and the slope S."""
+        return float(
+            beta3_ps3_per_km(
+                self.dispersion_at(wavelength_nm),
+                self.dispersion_slope_ps_per_nm2_km,
+                wavelength_nm,
+            )
         )

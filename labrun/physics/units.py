@@ -67,3 +67,25 @@ def effective_length_km(length_km: float, loss_db_per_km: float) -> float:
     if a * length_km < 1e-12:
         return float(length_km)
     return float(-np.expm1(-a * length_km) / a)
+
+
+def beta2_ps2_per_km(dispersion_ps_per_nm_km: ArrayLike, wavelength_nm: ArrayLike) -> np.ndarray:
+    """GVD beta2 [ps^2/km] from D: beta2 = -D lambda^2 / (2 pi c) (Agrawal)."""
+    lam_m = np.asarray(wavelength_nm, dtype=float) * 1e-9
+    d_si = np.asarray(dispersion_ps_per_nm_km, dtype=float) * 1e-6  # ps/(nm km) -> s/m^2
+    return -d_si * lam_m**2 / (2.0 * np.pi * C_M_PER_S) * 1e24 * 1e3  # s^2/m -> ps^2/km
+
+
+def beta3_ps3_per_km(
+    dispersion_ps_per_nm_km: ArrayLike, slope_ps_per_nm2_km: ArrayLike, wavelength_nm: ArrayLike
+) -> np.ndarray:
+    """Third-order dispersion beta3 [ps^3/km] = lambda^2 (lambda^2 S + 2 lambda D) / (2 pi c)^2.
+
+    Follows from beta3 = d beta2 / d omega with beta2 = -D lambda^2/(2 pi c) (Agrawal).
+    """
+    lam_m = np.asarray(wavelength_nm, dtype=float) * 1e-9
+    d_si = np.asarray(dispersion_ps_per_nm_km, dtype=float) * 1e-6  # s/m^2
+    s_si = np.asarray(slope_ps_per_nm2_km, dtype=float) * 1e3  # ps/(nm^2 km) -> s/m^3
+    two_pi_c = 2.0 * np.pi * C_M_PER_S
+    beta3_si = lam_m**2 * (lam_m**2 * s_si + 2.0 * lam_m * d_si) / two_pi_c**2  # s^3/m
+    return beta3_si * 1e36 * 1e3  # s^3/m -> ps^3/km

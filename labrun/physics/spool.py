@@ -1,0 +1,134 @@
+"""The spool as the virtual lab and `labrun sim spectrum` see it: launched tones in, lines out.
+
+Picks the model: the Bessel model (DESIGN.md 4.1, exact without dispersion, loss included
+through L_eff) when the dispersion phase over the spool is negligible, the split-step NLSE
+(4.3) otherwise. Scalar polarisation projection (4.4): the part of tone b orthogonal to tone a
+does not beat and leaves with loss only.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+
+from labrun.lines import LineId, grid_ks, line_id
+from labrun.physics.bessel import modulation_index, two_tone_powers
+from labrun.physics.fibre import Fibre
+from labrun.physics.nlse import propagate_tones
+from labrun.physics.units import dbm_to_w, nm_to_thz, thz_to_nm, w_to_dbm
+
+BESSEL_LIMIT = 1e-3  # |beta2| (2 pi delta)^2 L below this: dispersion negligible (DESIGN.md 4.1)
+SPOOL_RTOL = 1e-4  # split-step tolerance here: within ~2e-3 dB of a converged run (benchmarks)
+MIN_POWER_DBM = -200.0  # a line with no power at all is reported at this level, never -inf
+MODELS = ("auto", "bessel", "nlse")
+
+
+@dataclass(frozen=True)
+class ModelLine:
+    """One line at the spool output: which line, where, and how strong (dBm)."""
+
+    line: LineId
+    freq_thz: float
+    wavelength_nm: float
+    power_dbm: float
+
+    def to_dict(self) -> dict[str, Any]:
+        """The DESIGN.md line schema: kind, side, order, freq_thz, wavelength_nm, power_dbm."""
+        return {
+            "kind": self.line.kind,
+            "side": self.line.side,
+            "order": self.line.order,
+            "freq_thz": self.freq_thz,
+            "wavelength_nm": self.wavelength_nm,
+            "power_dbm": self.power_dbm,
+        }
+
+
+def dispersion_figure(fibre: Fibre, wavelength_a_nm: float, spacing_ghz: float) -> float:
+    """max |beta2| (2 pi delta)^2 L over the two tones (beta2 there from D and S): << 1 means
+    the Bessel model holds."""
+    delta_thz = spacing_ghz * 1e-3
+    lam_b = float(thz_to_nm(nm_to_thz(wavelength_a_nm) + delta_thz))
+    b2 = max(abs(fibre.beta2_at(wavelength_a_nm)), abs(fibre.beta2_at(lam_b)))
+    return b2 * (2.0 * np.pi * delta_thz) ** 2 * fibre.length_km
+
+
+def choose_model(fibre: Fibre, wavelength_a_nm: float, spacing_ghz: float) -> str:
+    """'bessel' when dispersion_figure < BESSEL_LIMIT, else 'nlse'."""
+    fig = dispersion_figure(fibre, wavelength_a_nm, spacing_ghz)
+    return "bessel" if fig < BESSEL_LIMIT else "nlse"
+
+
+def output_powers_w(
+    fibre: Fibre,
+    wavelength_a_nm: float,
+    spacing_ghz: float,
+    p_a_w: float,
+    p_b_w: float,
+    orders: int = 3,
+    *,
+    copolar: float = 1.0,
+    model: str = "auto",
+    rtol: float = SPOOL_RTOL,
+) -> tuple[np.ndarray, str]:
+    """Line powers (W) at the spool output for k in grid_ks(orders), and the model used."""
+    if model not in MODELS:
+        raise ValueError(f"model must be one of {MODELS}, not {model!r}")
+    if spacing_ghz <= 0:
+        raise ValueError("spacing_ghz must be > 0 (tone b above tone a in frequency)")
+    if not 0.0 <= copolar <= 1.0:
+        raise ValueError("copolar must be within [0, 1]")
+    if model == "auto":
+        model = choose_model(fibre, wavelength_a_nm, spacing_ghz)
+    t = float(np.exp(-fibre.alpha_per_km * fibre.length_km))
+    if model == "bessel":
+        p_par = copolar * p_b_w
+        g, l_eff = fibre.gamma_per_w_per_km, fibre.effective_length_km
+        m = float(modulation_index(g, l_eff, p_a_w, p_par))
+        powers = two_tone_powers(p_a_w, p_par, m, orders, t)
+        powers[np.asarray(grid_ks(orders)) == 1] += (1.0 - copolar) * p_b_w * t
+        return powers, model
+    res = propagate_tones(
+        fibre, wavelength_a_nm, spacing_ghz, p_a_w, p_b_w, orders, copolar=copolar, rtol=rtol
+    )
+    return res.powers_w, model
+
+
+def output_lines(
+    fibre: Fibre,
+    wavelength_a_nm: float,
+    spacing_ghz: float,
+    p_a_dbm: float,
+    p_b_dbm: float,
+    orders: int = 3,
+    *,
+    copolar: float = 1.0,
+    model: str = "auto",
+    rtol: float = SPOOL_RTOL,
+) -> list[ModelLine]:
+    """Tones and sidebands at the spool output (dBm), in frequency order, labelled by LineId.
+
+    p_a_dbm, p_b_dbm are launched into the spool; tone b sits spacing_ghz above tone a.
+    model: "bessel", "nlse" or "auto" (bessel when dispersion is negligible, else nlse).
+    """
+    powers, _ = output_powers_w(
+        fibre,
+        wavelength_a_nm,
+        spacing_ghz,
+        float(dbm_to_w(p_a_dbm)),
+        float(dbm_to_w(p_b_dbm)),
+        orders,
+        copolar=copolar,
+        model=model,
+        rtol=rtol,
+    )
+    f_a = float(nm_to_thz(wavelength_a_nm))
+    delta = spacing_ghz * 1e-3
+    dbm = np.maximum(w_to_dbm(powers), MIN_POWER_DBM)
+    out = []
+    for k, p in zip(grid_ks(orders), dbm, strict=True):
+        f = f_a + k * delta
+        out.append(ModelLine(line_id(k), f, float(thz_to_nm(f)), float(p)))
+    return out
