@@ -1,0 +1,191 @@
+"""``labrun sim``: the virtual lab server and a spectrum planning aid.
+
+``sim serve`` runs simulated SCPI instruments on loopback TCP until Ctrl-C or SIGTERM.
+``sim spectrum`` prints the model lines at a spool output (and can write a synthesised OSA trace),
+to check before a night in the lab whether, say, the third order clears the OSA floor.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import math
+import signal
+import sys
+import threading
+from pathlib import Path
+
+import numpy as np
+
+from labrun.errors import InputError
+from labrun.vlab.scenario import load_scenario
+
+SPECTRUM_MODELS = ("auto", "bessel", "nlse")
+
+
+def register(subparsers: argparse._SubParsersAction) -> None:
+    """Add ``sim serve`` and ``sim spectrum``."""
+    sim = subparsers.add_parser("sim", help="virtual lab: simulated instruments and spool model")
+    sub = sim.add_subparsers(dest="sim_command", metavar="SUBCOMMAND", required=True,
+                             parser_class=type(sim))
+
+    serve = sub.add_parser("serve", help="serve simulated SCPI instruments on loopback TCP")
+    serve.add_argument("--scenario", required=True, metavar="FILE",
+                       help="scenario TOML (path or shipped name, e.g. default-scenario.toml)")
+    serve.add_argument("--host", default="127.0.0.1",
+                       help="address to bind (default 127.0.0.1; anything else is reachable "
+                            "from the network)")
+    serve.add_argument("--bench-out", metavar="FILE", help="write a bench file for this server")
+    serve.add_argument("--time-scale", type=float, default=1.0, metavar="X",
+                       help="real seconds per simulated second for sweeps and drift (0 = "
+                            "instant; default 1)")
+    serve.add_argument("--seed", type=int, default=0, help="seed of realism and faults")
+    serve.set_defaults(func=run_serve)
+
+    spec = sub.add_parser("spectrum", help="model lines at a spool output for given launch powers")
+    spec.add_argument("--scenario", required=True, metavar="FILE", help="scenario TOML")
+    spec.add_argument("--spool", required=True, metavar="NAME", help="spool name in the scenario")
+    spec.add_argument("--power-a-dbm", type=float, required=True, metavar="X",
+                      help="tone a power launched into the spool (dBm)")
+    spec.add_argument("--power-b-dbm", type=float, required=True, metavar="Y",
+                      help="tone b power launched into the spool (dBm)")
+    spec.add_argument("--wavelength-a-nm", type=float, required=True, metavar="W",
+                      help="tone a wavelength (nm, vacuum); tone b is spacing above in frequency")
+    spec.add_argument("--spacing-ghz", type=float, required=True, metavar="S",
+                      help="tone spacing f_b - f_a (GHz, > 0)")
+    spec.add_argument("--pol-angle-deg", type=float, default=0.0, metavar="T",
+                      help="angle between the two tones' linear polarisations (0 = parallel, "
+                           "90 = orthogonal; copolar fraction cos^2 T)")
+    spec.add_argument("--orders", type=int, default=3, metavar="N", help="sideband orders (3)")
+    spec.add_argument("--model", choices=SPECTRUM_MODELS, default="auto",
+                      help="bessel, nlse, or auto (bessel when dispersion is negligible)")
+    spec.add_argument("--out", metavar="FILE", help="write a synthesised OSA trace (CSV)")
+    spec.add_argument("--rbw-nm", type=float, default=0.02, help="RBW of the --out trace (nm)")
+    spec.add_argument("--seed", type=int, default=0, help="seed of the --out trace noise")
+    spec.add_argument("--json", action="store_true", help="print the lines as JSON")
+    spec.set_defaults(func=run_spectrum)
+
+
+# ---- serve ---------------------------------------------------------------------------------
+def run_serve(args: argparse.Namespace) -> int:
+    """Serve the scenario's instruments until Ctrl-C or SIGTERM; exit 0 with sources off."""
+    from labrun.vlab.lab import VirtualLab, is_loopback
+
+    scenario = load_scenario(args.scenario)
+    if not math.isfinite(args.time_scale) or args.time_scale < 0:
+        raise InputError("must be a number >= 0", field="--time-scale")
+    if not is_loopback(args.host):
+        print(f"labrun: warning: binding {args.host}: the simulated instruments are reachable "
+              "from the network", file=sys.stderr)
+    lab = VirtualLab(scenario, time_scale=args.time_scale, seed=args.seed, host=args.host)
+    try:
+        lab.start()
+    except OSError as exc:
+        raise InputError(f"cannot listen: {exc.strerror or exc}", field="--host") from None
+    stop = threading.Event()
+    previous = {sig: signal.signal(sig, lambda *_: stop.set())
+                for sig in (signal.SIGINT, signal.SIGTERM)}
+    try:
+        for role, resource in lab.resources.items():
+            print(f"{role:<15} {resource}", flush=True)
+        if args.bench_out:
+            path = lab.write_bench(args.bench_out)
+            print(f"bench file: {path}", flush=True)
+        print(f"virtual lab running (spool {scenario.connected}, time scale "
+              f"{args.time_scale:g}, seed {args.seed}); Ctrl-C to stop", flush=True)
+        while not stop.wait(0.2):
+            pass
+    finally:
+        lab.stop()
+        for sig, handler in previous.items():
+            signal.signal(sig, handler)
+    print("virtual lab stopped; every simulated source is off", flush=True)
+    return 0
+
+
+# ---- spectrum ------------------------------------------------------------------------------
+def _check_spectrum_args(args: argparse.Namespace) -> None:
+    """One-line InputError for any value outside what the model can take."""
+    checks = (
+        ("--power-a-dbm", args.power_a_dbm, -80.0, 40.0),
+        ("--power-b-dbm", args.power_b_dbm, -80.0, 40.0),
+        ("--wavelength-a-nm", args.wavelength_a_nm, 1200.0, 1700.0),
+        ("--spacing-ghz", args.spacing_ghz, 1e-3, 5000.0),
+        ("--orders", args.orders, 1, 20),
+        ("--rbw-nm", args.rbw_nm, 0.001, 5.0),
+        ("--pol-angle-deg", args.pol_angle_deg, -360.0, 360.0),
+    )
+    for name, value, lo, hi in checks:
+        if not math.isfinite(value) or not lo <= value <= hi:
+            raise InputError(f"{value:g} is outside [{lo:g}, {hi:g}]", field=name)
+
+
+def _copolar(pol_angle_deg: float) -> float:
+    """Copolar fraction of two linear polarisations at a physical angle (DESIGN.md 4.4)."""
+    from labrun.physics.polarisation import copolar_fraction
+
+    two = math.radians(2.0 * pol_angle_deg)  # linear states sit at 2*angle on the Poincare sphere
+    return float(np.clip(copolar_fraction((1.0, 0.0, 0.0), (math.cos(two), math.sin(two), 0.0)),
+                         0.0, 1.0))
+
+
+def run_spectrum(args: argparse.Namespace) -> int:
+    """Print (or write) the spool-output spectrum for the given launch."""
+    from labrun.physics.spool import output_lines
+
+    scenario = load_scenario(args.scenario)
+    try:
+        spool = scenario.spool(args.spool)
+    except KeyError:
+        names = ", ".join(s.name for s in scenario.spools)
+        raise InputError(f"no spool {args.spool!r} in {scenario.source} (spools: {names})",
+                         field="--spool") from None
+    _check_spectrum_args(args)
+    copolar = _copolar(args.pol_angle_deg)
+    lines = output_lines(spool.fibre(), args.wavelength_a_nm, args.spacing_ghz, args.power_a_dbm,
+                         args.power_b_dbm, args.orders, copolar=copolar, model=args.model)
+    if args.out:
+        _write_trace(args, scenario, spool.name, lines)
+    if args.json:
+        print(json.dumps({"spool": spool.name, "copolar": copolar,
+                          "lines": [line.to_dict() for line in lines]}, indent=2))
+    else:
+        print(f"spool {spool.name}: lines at the spool output (copolar fraction {copolar:.3f})")
+        for line in lines:
+            print(f"  {line.line.label():<8} {line.wavelength_nm:10.4f} nm "
+                  f"{line.freq_thz:11.5f} THz {line.power_dbm:9.2f} dBm")
+        if args.out:
+            print(f"trace written to {args.out}")
+    return 0
+
+
+def _write_trace(args: argparse.Namespace, scenario, spool_name: str, lines) -> Path:
+    """Synthesise the OSA trace (through output_to_osa_db, the scenario's OSA floor) as CSV."""
+    from labrun.physics.osa import synthesize_trace
+    from labrun.tracefile import write_trace_csv
+    from labrun.vlab.realism import role_rng
+
+    wl = np.array([x.wavelength_nm for x in lines])
+    p = np.array([x.power_dbm for x in lines]) - scenario.bench.output_to_osa_db
+    margin = max(10.0 * args.rbw_nm, 0.2 * (wl.max() - wl.min()))
+    lo, hi = wl.min() - margin, wl.max() + margin
+    points = int(np.clip(round((hi - lo) / (args.rbw_nm / 5.0)) + 1, 101, 50001))
+    x = np.linspace(lo, hi, points)
+    osa = scenario.instruments.osa
+    real = scenario.realism
+    y = synthesize_trace(
+        x, wl, p, args.rbw_nm,
+        floor_dbm=osa.floor_dbm if osa.floor_dbm is not None else -70.0,
+        noise_db=real.osa_noise_db if real.enabled else 0.0,
+        sensitivity_dbm=osa.sensitivity_dbm if osa.sensitivity_dbm is not None else -90.0,
+        rng=role_rng(args.seed, "spectrum_trace"),
+    )
+    meta = {"spool": spool_name, "rbw_nm": args.rbw_nm, "seed": args.seed,
+            "output_to_osa_db": scenario.bench.output_to_osa_db,
+            "power_a_dbm": args.power_a_dbm, "power_b_dbm": args.power_b_dbm,
+            "spacing_ghz": args.spacing_ghz}
+    try:
+        return write_trace_csv(args.out, x, y, metadata=meta)
+    except OSError as exc:
+        raise InputError(f"cannot write: {exc.strerror or exc}", file=args.out,
+                         field="--out") from None
