@@ -10,6 +10,7 @@ every attempt is logged and recorded in the transcript.
 from __future__ import annotations
 
 import logging
+import socket
 import threading
 import time
 from collections.abc import Callable
@@ -19,13 +20,14 @@ from typing import TypeVar
 
 import numpy as np
 import pyvisa
-from pyvisa import constants
+from pyvisa import constants, rname
 from pyvisa.errors import VisaIOError
 
 from labrun.errors import InputError, InstrumentError
 from labrun.transcript import Direction, Transcript
 
 log = logging.getLogger("labrun.scpi")
+log.addHandler(logging.NullHandler())  # library: shown only when the application configures logging
 
 BACKENDS = ("@py", "@sim", "@ivi")
 MAX_ERROR_QUEUE = 32  # SCPI-1999 queues hold a few dozen entries; more means the reply is bogus
@@ -46,6 +48,22 @@ class ScpiError(InstrumentError):
         extra = f" (+{more} more)" if more else ""
         super().__init__(f'error {code},"{message}" after {command!r}{extra}',
                          role=role, resource=resource)
+
+
+class NoAnswerError(InstrumentError):
+    """The instrument did not answer (timeout, refused or lost connection) after every retry."""
+
+
+def _no_delay(res: object) -> None:
+    """Disable Nagle on raw TCP sockets: a command followed by SYST:ERR? otherwise waits for the
+    peer's delayed ACK (~40 ms on Linux) before the query leaves. pyvisa-py 0.8 does not accept
+    VI_ATTR_TCPIP_NODELAY on SOCKET sessions, so set it on the socket it exposes."""
+    try:
+        sock = res.visalib.sessions[res.session].interface  # type: ignore[attr-defined]
+        if isinstance(sock, socket.socket):
+            sock.setsockopt(socket.IPPROTO_TCP, socket.TCP_NODELAY, 1)
+    except (AttributeError, KeyError, OSError, TypeError):
+        pass  # another backend or resource type: nothing to tune
 
 
 @dataclass(frozen=True)
@@ -147,6 +165,11 @@ class ScpiSession:
         with self._lock:
             if self._res is not None:
                 return self
+            try:
+                rname.parse_resource_name(self.resource)
+            except rname.InvalidResourceName:
+                raise InputError(f"invalid VISA resource string {self.resource!r}",
+                                 field="resource") from None
             rm = resource_manager(self.backend, self.sim_file)
             try:
                 self._res = rm.open_resource(self.resource,
@@ -160,6 +183,7 @@ class ScpiSession:
                 raise self._no_answer(exc) from exc
             except OSError as exc:
                 raise self._no_answer(exc) from exc
+            _no_delay(self._res)
             log.debug("%s: opened %s via %s", self.who, self.resource, self.backend)
             return self
 
@@ -179,9 +203,9 @@ class ScpiSession:
     def __exit__(self, *exc_info: object) -> None:
         self.close()
 
-    def _no_answer(self, exc: BaseException) -> InstrumentError:
+    def _no_answer(self, exc: BaseException) -> NoAnswerError:
         """The one-line error for an instrument that does not answer."""
-        return InstrumentError(
+        return NoAnswerError(
             f"no answer at {self.resource} via {self.backend} ({type(exc).__name__}: {exc}); "
             "check power, cable and address", role=self.role, resource=self.resource)
 

@@ -1,0 +1,167 @@
+"""``labrun probe``: check that every instrument on a bench answers, without changing anything.
+
+For each role: connect, read ``*IDN?``, run every read-only operation its profile maps (and read
+the error queue). Nothing is set and emission is never enabled; the only commands written are
+the profile's init commands (``*CLS``) and, for an OSA, the trace transfer format.
+Exit 0 when every check passed, 1 when an instrument failed one, 2 on bad input.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import sys
+from dataclasses import asdict, dataclass, field
+from typing import Any
+
+import numpy as np
+
+from labrun.bench import Bench, load_bench
+from labrun.errors import InputError, LabrunError
+from labrun.instruments import Adapter, open_instrument
+from labrun.profiles import Operation
+from labrun.scpi import Idn, NoAnswerError
+from labrun.transcript import Transcript
+
+
+@dataclass
+class Check:
+    """One probe check: an operation, whether it passed, and what it read or why it failed."""
+
+    operation: str
+    ok: bool
+    detail: str
+
+
+@dataclass
+class ProbeResult:
+    """Everything probed on one instrument."""
+
+    role: str
+    resource: str
+    idn: str = ""
+    checks: list[Check] = field(default_factory=list)
+
+    @property
+    def ok(self) -> bool:
+        return bool(self.checks) and all(c.ok for c in self.checks)
+
+
+def register(subparsers: argparse._SubParsersAction) -> None:
+    """Add ``labrun probe``."""
+    p = subparsers.add_parser("probe", help="check that every instrument of a bench answers",
+                              description="Open each instrument of a bench, read its identity "
+                                          "and every read-only operation of its profile. "
+                                          "Never sets anything, never enables emission.")
+    p.add_argument("--bench", required=True, metavar="FILE", help="bench file (TOML)")
+    p.add_argument("--json", action="store_true", help="print JSON instead of a table")
+    p.add_argument("--transcript", metavar="FILE",
+                   help="save the instrument traffic as JSON lines")
+    p.set_defaults(func=run_probe)
+
+
+def describe(op: Operation, value: Any) -> str:
+    """A short human reading of a value returned by a read operation."""
+    if isinstance(value, Idn):
+        return str(value)
+    if isinstance(value, np.ndarray):
+        if value.size == 0:
+            return "0 points"
+        unit = f" {op.unit}" if op.unit else ""
+        return f"{value.size} points, {value.min():.6g}..{value.max():.6g}{unit}"
+    if isinstance(value, bool):
+        if op.name == "read_interlock":
+            return "closed" if value else "open"
+        return "on" if value else "off"
+    if isinstance(value, tuple):
+        return "(" + ", ".join(f"{v:.6g}" for v in value) + ")"
+    if isinstance(value, float):
+        return f"{value:.6g}" + (f" {op.unit}" if op.unit else "")
+    return str(value)
+
+
+def _check_operation(adapter: Adapter, op: Operation) -> Check:
+    """Run one read operation (every index of an indexed one); NoAnswerError propagates."""
+    try:
+        if op.index_range is None:
+            detail = describe(op, adapter.read(op.name))
+        else:
+            lo, hi = op.index_range
+            detail = ", ".join(f"{i}: {describe(op, adapter.read(op.name, index=i))}"
+                               for i in range(lo, hi + 1))
+    except NoAnswerError:
+        raise
+    except LabrunError as exc:
+        return Check(op.name, False, str(exc))
+    return Check(op.name, True, detail)
+
+
+def probe_instrument(bench: Bench, role: str, transcript: Transcript | None = None) -> ProbeResult:
+    """Probe one role; an instrument that does not answer yields one failed check, no more."""
+    spec = bench.instruments[role]
+    result = ProbeResult(role=role, resource=spec.resource)
+    try:
+        adapter = open_instrument(bench, role, transcript=transcript)
+    except InputError:
+        raise
+    except LabrunError as exc:
+        result.checks.append(Check("connect", False, str(exc)))
+        return result
+    try:
+        result.idn = str(adapter.idn())
+        result.checks.append(Check("identify", bool(result.idn.strip(",")), result.idn))
+        for op in spec.profile.read_operations():
+            if op.name != "identify":
+                result.checks.append(_check_operation(adapter, op))
+        if spec.profile.error_query:
+            adapter.session.drain_errors("the probe's queries")
+            result.checks.append(Check("error_queue", True, "empty"))
+    except NoAnswerError as exc:
+        result.checks.append(Check("answer", False, str(exc)))
+    except LabrunError as exc:
+        result.checks.append(Check("error_queue" if "error" in str(exc) else "probe", False,
+                                   str(exc)))
+    finally:
+        adapter.close()
+    return result
+
+
+def probe_bench(bench: Bench, transcript: Transcript | None = None) -> list[ProbeResult]:
+    """Probe every instrument of a bench, in file order."""
+    return [probe_instrument(bench, role, transcript) for role in bench.instruments]
+
+
+def format_table(results: list[ProbeResult]) -> str:
+    """Human-readable report: one header line per instrument, one line per check."""
+    lines: list[str] = []
+    for r in results:
+        if not r.idn and not r.ok:  # did not answer: one line says why
+            lines.append(f"{r.role:<15} {'FAILED':<6} {r.checks[-1].detail}")
+            continue
+        status = "ok" if r.ok else "FAILED"
+        lines.append(f"{r.role:<15} {status:<6} {r.resource}  {r.idn}")
+        for c in r.checks:
+            mark = "ok" if c.ok else "FAIL"
+            lines.append(f"{'':<15} {mark:<6} {c.operation:<20} {c.detail}")
+    failed = [r.role for r in results if not r.ok]
+    lines.append(f"{len(results)} instruments, "
+                 + ("all checks ok" if not failed else f"failed: {', '.join(failed)}"))
+    return "\n".join(lines)
+
+
+def run_probe(args: argparse.Namespace) -> int:
+    """Entry point of ``labrun probe``."""
+    bench = load_bench(args.bench)
+    transcript = Transcript()
+    results = probe_bench(bench, transcript)
+    if args.transcript:
+        transcript.save(args.transcript)
+    if args.json:
+        payload = {"bench": str(bench.path), "ok": all(r.ok for r in results),
+                   "instruments": [{"role": r.role, "resource": r.resource, "idn": r.idn,
+                                    "checks": [asdict(c) for c in r.checks]} for r in results]}
+        json.dump(payload, sys.stdout, indent=2)
+        sys.stdout.write("\n")
+    else:
+        print(format_table(results))
+    return 0 if all(r.ok for r in results) else 1

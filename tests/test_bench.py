@@ -1,0 +1,117 @@
+"""Bench loading: the shipped pyvisa-sim bench, and one-line errors naming file and field."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import pytest
+
+from labrun.bench import ROLE_KINDS, SWEEP_ROLES, load_bench
+from labrun.errors import InputError
+from labrun.resources import data_dir
+
+SIM_BENCH = data_dir("sim_instruments") / "bench-pyvisa-sim.toml"
+SIM_TEXT = SIM_BENCH.read_text()
+
+
+def test_sim_bench_loads():
+    bench = load_bench(SIM_BENCH)
+    assert set(bench.instruments) == set(ROLE_KINDS)
+    assert bench.missing_sweep_roles() == []
+    assert bench.settle_scale == 0.0 and bench.max_total_launched_dbm == 20.0
+    assert bench.sim_file is not None and bench.sim_file.name == "fwm-devices.yaml"
+    assert bench.calibration.path_loss_b_db == 3.2 and bench.calibration.input_tap_db == 20.0
+    assert bench.instruments["laser_a"].max_power_dbm == 10.0
+    assert bench.instruments["osa"].profile.name == "generic-osa-ascii"
+    assert bench.instruments["attenuator_b"].kind == "attenuator"
+    assert bench.sources() == ["laser_a", "laser_b", "amplifier"]
+    assert bench.text == SIM_TEXT
+
+
+def test_bench_by_shipped_name():
+    assert load_bench("bench-pyvisa-sim.toml").name == "pyvisa-sim bench"
+
+
+def test_partial_bench_and_defaults(tmp_path):
+    path = tmp_path / "small.toml"
+    path.write_text('[bench]\nname = "osa only"\nmax_total_launched_dbm = 18\n'
+                    '[instruments.osa]\nresource = "TCPIP0::127.0.0.1::5106::SOCKET"\n'
+                    'profile = "generic-osa"\n')
+    bench = load_bench(path)
+    assert bench.settle_scale == 1.0 and bench.calibration.path_loss_a_db == 0.0
+    assert bench.instruments["osa"].backend == "@py"
+    assert "laser_a" in bench.missing_sweep_roles()
+
+
+def _edit(tmp_path: Path, old: str, new: str) -> Path:
+    assert old in SIM_TEXT, old
+    (tmp_path / "fwm-devices.yaml").write_text("spec: '1.1'\n")
+    path = tmp_path / "bench.toml"
+    path.write_text(SIM_TEXT.replace(old, new, 1))
+    return path
+
+
+BAD = [
+    ("unknown role", "[instruments.switch]", "[instruments.switcher]", "instruments.switcher"),
+    ("missing resource", 'resource = "TCPIP0::127.0.0.1::5101::SOCKET"\n', "",
+     "instruments.laser_a.resource"),
+    ("malformed resource", "TCPIP0::127.0.0.1::5101::SOCKET", "TCPIP0::127.0.0.1::SOCKET",
+     "instruments.laser_a.resource"),
+    ("unknown profile", 'profile = "generic-laser"', 'profile = "acme-laser"',
+     "instruments.laser_a.profile"),
+    ("profile of the wrong kind", 'profile = "generic-laser"', 'profile = "generic-switch"',
+     "instruments.laser_a.profile"),
+    ("cap not a number", "max_power_dbm = 10.0", 'max_power_dbm = "high"',
+     "instruments.laser_a.max_power_dbm"),
+    ("source without cap", "max_power_dbm = 10.0\n", "", "instruments.laser_a.max_power_dbm"),
+    ("cap on a non-source", 'profile = "generic-switch"\n',
+     'profile = "generic-switch"\nmax_power_dbm = 3.0\n', "instruments.switch.max_power_dbm"),
+    ("misspelt field", "max_power_dbm = 10.0", "max_power_dbn = 10.0", "max_power_dbn"),
+    ("total cap missing", "max_total_launched_dbm = 20.0\n", "", "bench.max_total_launched_dbm"),
+    ("total cap not a number", "max_total_launched_dbm = 20.0", "max_total_launched_dbm = nan",
+     "bench.max_total_launched_dbm"),
+    ("sim_file missing", 'sim_file = "fwm-devices.yaml"', 'sim_file = "absent.yaml"',
+     "bench.sim_file"),
+    ("@sim without sim_file", 'sim_file = "fwm-devices.yaml"\n', "", "bench.sim_file"),
+    ("unknown backend", 'backend = "@sim"', 'backend = "@gpib"', "instruments.laser_a.backend"),
+    ("negative settle_scale", "settle_scale = 0.0", "settle_scale = -1.0", "bench.settle_scale"),
+    ("tap missing with a power meter", "input_tap_db = 20.0\n", "", "calibration.input_tap_db"),
+    ("bad calibration", "path_loss_a_db = 3.0", 'path_loss_a_db = "3 dB"',
+     "calibration.path_loss_a_db"),
+]
+
+
+@pytest.mark.parametrize("case", BAD, ids=[c[0] for c in BAD])
+def test_bad_bench_names_file_and_field(tmp_path, case):
+    _, old, new, field = case
+    path = _edit(tmp_path, old, new)
+    with pytest.raises(InputError) as info:
+        load_bench(path)
+    message = str(info.value)
+    assert "\n" not in message
+    assert str(path) in message and field in message, message
+
+
+def test_missing_and_malformed_file(tmp_path):
+    with pytest.raises(InputError, match="no such bench file"):
+        load_bench(tmp_path / "absent.toml")
+    bad = tmp_path / "bad.toml"
+    bad.write_text("[bench\n")
+    with pytest.raises(InputError, match="not valid TOML"):
+        load_bench(bad)
+
+
+def test_bad_profile_named_by_bench_reports_profile_file(tmp_path):
+    profile = tmp_path / "my-laser.toml"
+    text = (data_dir("drivers") / "generic-laser.toml").read_text()
+    profile.write_text(text.replace('name = "generic-laser"', 'name = "my-laser"')
+                       .replace("range = [-10.0, 13.0]", "range = [13.0, -10.0]"))
+    path = _edit(tmp_path, 'profile = "generic-laser"', 'profile = "my-laser"')
+    with pytest.raises(InputError) as info:
+        load_bench(path)
+    assert str(profile) in str(info.value)
+    assert "operations.set_power_dbm.range" in str(info.value)
+
+
+def test_sweep_roles_are_roles():
+    assert set(SWEEP_ROLES) <= set(ROLE_KINDS)

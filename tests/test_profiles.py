@@ -1,0 +1,128 @@
+"""Profile loading: shipped profiles are valid; every kind of mistake names file and field."""
+
+from __future__ import annotations
+
+import re
+from pathlib import Path
+
+import pytest
+
+from labrun.errors import InputError
+from labrun.profiles import KIND_OPERATIONS, load_profile
+from labrun.resources import data_dir
+
+SHIPPED = sorted(data_dir("drivers").glob("*.toml"))
+
+LASER = (data_dir("drivers") / "generic-laser.toml").read_text()
+
+
+def test_every_kind_has_a_shipped_profile():
+    kinds = {load_profile(p).kind for p in SHIPPED}
+    assert kinds == set(KIND_OPERATIONS)
+
+
+@pytest.mark.parametrize("path", SHIPPED, ids=lambda p: p.stem)
+def test_shipped_profile_loads_and_renders(path):
+    profile = load_profile(path)
+    assert profile.name == path.stem
+    assert profile.operations["identify"].query == "*IDN?"  # IEEE 488.2 common query
+    for op in profile.operations.values():
+        if op.command and "value" in op.placeholders:
+            lo, hi = op.range
+            sample = int(lo) if op.integer else lo
+            extra = {"index": op.index_range[0]} if op.index_range else {}
+            text = op.render(value=sample, **extra)
+            assert "{" not in text and str(int(lo)) in text
+
+
+def test_load_by_name_and_fields():
+    laser = load_profile("generic-laser")
+    op = laser.operations["set_power_dbm"]
+    assert op.range == (-10.0, 13.0) and op.readback == "read_power_dbm"
+    assert op.render(value=3.14159) == "SOUR:POW 3.142"
+    assert laser.capabilities.interlock and laser.capabilities.output_state
+    assert laser.error_query == "SYST:ERR?" and laser.init == ("*CLS",)
+    osa = load_profile("generic-osa")
+    assert osa.trace.format == "real32" and osa.trace.byte_order == "little"
+    assert load_profile("generic-osa-ascii").trace.format == "ascii"
+    assert osa.operations["set_points"].integer
+
+
+def _write(tmp_path: Path, text: str, name: str = "my-laser") -> Path:
+    path = tmp_path / f"{name}.toml"
+    path.write_text(text.replace('name = "generic-laser"', f'name = "{name}"'))
+    return path
+
+
+BAD_CASES = [
+    # (description, edit of the generic laser profile, field expected in the message)
+    ("unknown operation", lambda t: t + '\n[operations.set_frequency_thz]\n'
+                                        'command = "SOUR:FREQ {value}"\nrange = [1.0, 2.0]\n',
+     "operations.set_frequency_thz"),
+    ("missing placeholder", lambda t: t.replace('SOUR:POW {value:.3f}', 'SOUR:POW 1'),
+     "operations.set_power_dbm"),
+    ("unknown placeholder", lambda t: t.replace('SOUR:POW {value:.3f}', 'SOUR:POW {val:.3f}'),
+     "operations.set_power_dbm"),
+    ("index without index_range", lambda t: t.replace('SOUR:WAV?', 'SOUR{index}:WAV?'),
+     "operations.read_wavelength_nm"),
+    ("bad range order", lambda t: t.replace('range = [-10.0, 13.0]', 'range = [13.0, -10.0]'),
+     "operations.set_power_dbm.range"),
+    ("range not numbers", lambda t: t.replace('range = [-10.0, 13.0]', 'range = ["a", "b"]'),
+     "operations.set_power_dbm.range"),
+    ("missing kind", lambda t: t.replace('kind = "laser"\n', ''), "profile.kind"),
+    ("unknown kind", lambda t: t.replace('kind = "laser"', 'kind = "maser"'), "profile.kind"),
+    ("unknown field", lambda t: t.replace('unit = "dBm"', 'units = "dBm"', 1), "units"),
+    ("readback to nowhere", lambda t: t.replace('readback = "read_power_dbm"',
+                                                'readback = "read_pwr"'),
+     "operations.set_power_dbm.readback"),
+    ("query without parse", lambda t: t.replace('parse = "float"\nunit = "dBm"',
+                                                'unit = "dBm"'),
+     "operations.read_power_dbm"),
+    ("both command and query", lambda t: t.replace('command = "OUTP:STAT OFF"',
+                                                   'command = "OUTP:STAT OFF"\nquery = "X?"'),
+     "operations.output_off"),
+    ("missing safe-off operation", lambda t: re.sub(
+        r'\[operations\.output_off\]\ncommand = "OUTP:STAT OFF"\nreadback = "read_output_state"\n',
+        "", t), "operations.output_off"),
+    ("bad parse", lambda t: t.replace('parse = "bool"', 'parse = "boolean"', 1), "parse"),
+]
+
+
+@pytest.mark.parametrize("case", BAD_CASES, ids=[c[0] for c in BAD_CASES])
+def test_bad_profile_names_file_and_field(tmp_path, case):
+    _, edit, field = case
+    edited = edit(LASER)
+    assert edited != LASER
+    path = _write(tmp_path, edited)
+    with pytest.raises(InputError) as info:
+        load_profile(path)
+    message = str(info.value)
+    assert "\n" not in message
+    assert str(path) in message and field in message, message
+    assert info.value.file == str(path)
+
+
+def test_name_must_match_file(tmp_path):
+    path = tmp_path / "other.toml"
+    path.write_text(LASER)
+    with pytest.raises(InputError, match="profile.name"):
+        load_profile(path)
+
+
+def test_bad_toml_and_missing_file(tmp_path):
+    path = tmp_path / "broken.toml"
+    path.write_text("[profile\nname = 1")
+    with pytest.raises(InputError, match="not valid TOML"):
+        load_profile(path)
+    with pytest.raises(InputError, match="no profile"):
+        load_profile(tmp_path / "absent.toml")
+
+
+def test_osa_needs_trace_table(tmp_path):
+    text = (data_dir("drivers") / "generic-osa.toml").read_text()
+    text = re.sub(r"\[trace\][^\[]*", "", text).replace('name = "generic-osa"',
+                                                        'name = "no-trace"')
+    path = tmp_path / "no-trace.toml"
+    path.write_text(text)
+    with pytest.raises(InputError, match="trace"):
+        load_profile(path)
