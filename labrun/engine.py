@@ -23,7 +23,6 @@ from typing import Any, TextIO
 
 from labrun import __version__
 from labrun.errors import InputError, InstrumentError, SafetyError
-from labrun.lines import grid_ks
 from labrun.physics.units import nm_to_thz, thz_to_nm
 from labrun.plan import StopWatch
 from labrun.shutdown import RunInterrupted, SafeOffGuard
@@ -134,13 +133,10 @@ def safety_text(plan: Any, bench: Any) -> str:
 
     wc = safety.worst_case(plan, bench)
     lines = [f"Worst case: {_describe(wc)}"]
-    with contextlib.suppress(Exception):
-        total = _first_attr(wc, ("total_dbm", "total_launched_dbm", "max_launched_dbm"))
-        wl = _first_attr(wc, ("wavelength_nm",))
-        if total is not None:
-            cls = safety.hazard_class(float(total), float(wl) if wl else 1550.0)
-            lines.append(f"Advisory hazard class (IEC 60825-1, confirm with your laser safety "
-                         f"officer): {cls}")
+    hazard = getattr(wc, "hazard_class", None)
+    if hazard:
+        lines.append(f"Advisory hazard class (IEC 60825-1; your laser safety officer decides): "
+                     f"{hazard}")
     lines.append(str(safety.CAUTIONS).strip())
     return "\n".join(lines)
 
@@ -220,7 +216,8 @@ class Runner:
         """Instrument settings of a point, each with the plan's settle time for its axes."""
         from labrun import safety
 
-        inst = safety.instrument_settings(setpoint, self.bench)
+        amp = bool(getattr(self.plan, "amplifier", False))
+        inst = safety.instrument_settings({**setpoint, "amplifier": amp}, self.bench)
         got = inst if isinstance(inst, dict) else asdict(inst) if is_dataclass(inst) else vars(inst)
         wl_a = setpoint.get("wavelength_a_nm", got.get("wavelength_a_nm"))
         wl_b = setpoint.get("wavelength_b_nm", got.get("wavelength_b_nm"))
@@ -354,7 +351,7 @@ class Runner:
             except InstrumentError as exc:
                 self.fault(spec, attempt, exc)
         red = reduce_trace(x, y, self.rbw_nm, x_unit="nm", orders=self.orders,
-                           expected_thz=expected_thz(spec.setpoint, self.orders))
+                           expected_thz=expected_thz(spec.setpoint))
         return x, y, red, attempt
 
     def fault(self, spec: Any, attempt: int, exc: Exception) -> None:
@@ -421,13 +418,13 @@ class Runner:
 # ------------------------------------------------------------------------------------------------
 # helpers
 # ------------------------------------------------------------------------------------------------
-def expected_thz(setpoint: dict[str, Any], orders: int) -> list[float] | None:
-    """Grid frequencies f_a + k*delta of every line, from the setpoint (None if unknown)."""
+def expected_thz(setpoint: dict[str, Any]) -> tuple[float, float] | None:
+    """Frequencies (THz) of tone a and tone b from the setpoint, to guide the reduction."""
     wl_a, spacing = setpoint.get("wavelength_a_nm"), setpoint.get("spacing_ghz")
     if wl_a is None or spacing is None:
         return None
     f_a = float(nm_to_thz(wl_a))
-    return [f_a + k * spacing / 1000.0 for k in grid_ks(orders)]
+    return f_a, f_a + float(spacing) / 1000.0
 
 
 def _line_dict(line: Any) -> dict[str, Any]:
