@@ -415,10 +415,14 @@ class OsaInstrument(SimInstrument):
 
     def _trace(self, call: Call, axis: str) -> str | bytes:
         osa = self.lab.osa
-        data = osa.x_nm if axis == "x" else osa.y_dbm
-        if osa.sweeps == 0:
-            self.push_error(-230, "no sweep since power-on")
-        elif axis == "y":
+        if osa.sweeps == 0:  # trace memory at power-on: a dark trace at the floor, no error
+            floor = self.lab.scenario.instruments.osa.floor_dbm
+            x = np.linspace(osa.center_nm - osa.span_nm / 2, osa.center_nm + osa.span_nm / 2,
+                            osa.points)
+            data = x if axis == "x" else np.full(x.size, -70.0 if floor is None else floor)
+        else:
+            data = osa.x_nm if axis == "x" else osa.y_dbm
+        if axis == "y" and osa.sweeps:
             short = self.faults.short_trace_length(len(data))
             if short is not None:
                 data = data[:short]
