@@ -79,6 +79,8 @@ KEY_FIELDS = (
 # RBW values a grating OSA offers, 1-2-5 sequence in nm (common practice).
 RBW_STEPS_NM = (0.002, 0.005, 0.01, 0.02, 0.05, 0.1, 0.2, 0.5, 1.0, 2.0)
 # Sample counts, odd so a sample lands on the centre (common practice).
+# dB per (d/FWHM)^2 of a Gaussian filter: 10 log10(e) * 4 ln 2 (mathematical fact).
+GAUSS_DB = 10.0 * math.log10(math.e) * 4.0 * math.log(2.0)
 POINT_STEPS = (101, 201, 501, 1001, 2001, 5001, 10001, 20001, 50001, 100001, 200001)
 
 
@@ -139,6 +141,7 @@ class OsaSpec(_Strict):
     margin: float = Field(0.25, ge=0.0, le=10.0)
     min_margin_nm: float = Field(0.5, ge=0.0, le=50.0)
     samples_per_rbw: float = Field(5.0, ge=5.0, le=1000.0)
+    skirt_db: float = Field(60.0, ge=0.0, le=200.0)
     sweep_s: float | None = Field(None, ge=0.0)
     capture_input: bool = False
     input_every: int = Field(1, ge=1)
@@ -941,28 +944,34 @@ def choose_osa_settings(plan: Plan, bench: Any = None) -> OsaSettings:
         span = math.ceil(need_span * 10 - 1e-9) / 10.0
         reasons.append(f"span {span:g} nm covers {cover} plus {margin:.2f} nm margin each side")
 
-    # RBW must resolve the closest lines: <= spacing/4 at the closest spacing (in nm).
+    # RBW must resolve the closest lines: <= spacing/4 at the closest spacing (in nm), and fine
+    # enough that a Gaussian RBW filter's skirt midway between lines is skirt_db down, so the floor
+    # read there is the OSA's and not the tones' (Gaussian: -10 log10(e) 4 ln2 (d/FWHM)^2 dB).
     sp_nm = min(p.setpoint["wavelength_a_nm"] - p.setpoint["wavelength_b_nm"] for p in pts)
     sp_ghz = min(p.setpoint["spacing_ghz"] for p in pts)
-    limit = sp_nm / 4.0
+    skirt_limit = sp_nm / (2.0 * math.sqrt(spec.skirt_db / GAUSS_DB))
+    limit = min(sp_nm / 4.0, skirt_limit)
+    why_limit = (f"spacing/4 = {sp_nm / 4:.4f} nm" if limit == sp_nm / 4.0 else
+                 f"{limit:.4f} nm (spacing/4 = {sp_nm / 4:.4f} nm, tightened so a Gaussian RBW "
+                 f"skirt is {spec.skirt_db:g} dB down midway between lines)")
     rbw_rng = _op_range(bench, "osa", "set_rbw_nm") or (0.01, 2.0)
     if spec.rbw_nm is not None:
         rbw = spec.rbw_nm
         reasons.append(f"RBW {rbw:g} nm as given")
-        if rbw > limit * (1 + 1e-9):
-            warnings.append(f"RBW {rbw:g} nm exceeds spacing/4 = {limit:.4f} nm "
+        if rbw > sp_nm / 4.0 * (1 + 1e-9):
+            warnings.append(f"RBW {rbw:g} nm exceeds spacing/4 = {sp_nm / 4:.4f} nm "
                             f"({sp_ghz:g} GHz): neighbouring lines may merge")
     else:
         allowed = [r for r in RBW_STEPS_NM if r <= limit * (1 + 1e-9) and
                    rbw_rng[0] - 1e-12 <= r <= rbw_rng[1] + 1e-12]
         if allowed:
             rbw = allowed[-1]
-            reasons.append(f"RBW {rbw:g} nm = largest 1-2-5 step <= spacing/4 = {limit:.4f} nm "
+            reasons.append(f"RBW {rbw:g} nm = largest 1-2-5 step <= {why_limit} "
                            f"(closest spacing {sp_ghz:g} GHz = {sp_nm:.4f} nm)")
         else:
             rbw = rbw_rng[0]
             reasons.append(f"RBW {rbw:g} nm = the OSA's finest")
-            warnings.append(f"the OSA's finest RBW {rbw:g} nm exceeds spacing/4 = {limit:.4f} nm "
+            warnings.append(f"the OSA's finest RBW {rbw:g} nm exceeds {why_limit} "
                             f"({sp_ghz:g} GHz): neighbouring lines may merge")
 
     pts_rng = _op_range(bench, "osa", "set_points") or (101.0, 50001.0)
