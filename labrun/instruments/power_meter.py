@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 from labrun.instruments.base import Adapter
+from labrun.physics.units import dbm_to_mw
 
 
 class PowerMeterAdapter(Adapter):
@@ -18,3 +19,7 @@ class PowerMeterAdapter(Adapter):
 
     def power_dbm(self) -> float:
         return self.read("read_power_dbm")
+
+    def power_mw(self) -> float:
+        """The reading in mW (P[mW] = 10^(P[dBm]/10), common practice)."""
+        return float(dbm_to_mw(self.power_dbm()))
