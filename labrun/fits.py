@@ -1,0 +1,702 @@
+"""Fibre parameters from a run's points: gamma, dispersion, power-law slopes, polarisation.
+
+Pure functions (numpy/scipy and labrun.physics, no I/O), usable from a notebook. Physics and line
+indexing: DESIGN.md sections 3 and 4. Every fit returns a FitResult with value, standard error,
+points used, residual RMS, the model's name and the unit; ``extra`` carries fit-specific details
+(validity ranges, confidence intervals, points left out and why).
+
+Fits:
+- ``gamma_bessel``: each point's first-sideband-to-tone ratio is inverted to the modulation index
+  m of the dual-frequency (Bessel) model (Thompson and Roy 1991; Boskovic et al. 1996), for
+  unequal tone powers too; then m = gamma * 2 L_eff sqrt(P_a P_b) is regressed across points.
+- ``gamma_small_signal``: first sideband against P_a P_b^2 (Inoue 1992), with the efficiency
+  correction when D is known (given, or from the dispersion fit).
+- ``dispersion`` and ``dispersion_slope``: efficiency against spacing (and pump wavelength),
+  bounded nonlinear least squares (scipy.optimize.least_squares), errors from the Jacobian.
+- ``slope_<side>_<order>``: sideband power against total launched power, dB/dB, with a 95 %
+  confidence interval (Student t).
+- ``pol_extinction_db`` (max/min of the first sideband over polarisation states) and
+  ``pol_visibility`` (fit to the scalar projection model of DESIGN.md 4.4).
+"""
+
+from __future__ import annotations
+
+import math
+import re
+from collections.abc import Mapping
+from dataclasses import asdict, dataclass, field
+
+import numpy as np
+from scipy import stats
+from scipy.optimize import least_squares
+from scipy.special import j0, j1
+
+from labrun.physics.fibre import Fibre
+from labrun.physics.fwm import inoue_efficiency, sideband_mismatch_per_km
+from labrun.physics.units import alpha_per_km, effective_length_km
+
+LINE_KEY = re.compile(r"^(tone|sideband)_(low|high)_(\d+)$")
+DB = 10.0 / math.log(10.0)  # dB per neper of power ratio (10 log10 e)
+
+
+@dataclass(frozen=True)
+class FitResult:
+    """One fitted parameter: value, standard error, points used, residual RMS, model, unit."""
+
+    value: float
+    stderr: float
+    n_points: int
+    residual_rms: float
+    model: str
+    unit: str
+    extra: dict = field(default_factory=dict)
+
+    def to_dict(self) -> dict:
+        """JSON-ready dict (NaN becomes None)."""
+        d = asdict(self)
+        for k in ("value", "stderr", "residual_rms"):
+            d[k] = _finite_or_none(d[k])
+        return d
+
+
+def _finite_or_none(v: float) -> float | None:
+    """float, or None for NaN/inf."""
+    return float(v) if v is not None and math.isfinite(v) else None
+
+
+# ---------------------------------------------------------------------------------------------
+# Point table
+
+
+def points_table(points) -> dict[str, np.ndarray]:
+    """Columns as float arrays from a DataFrame or a list of dicts (see fit_run for the names).
+
+    A record's ``lines`` list (DESIGN.md schema: kind, side, order, power_dbm, detected) is
+    flattened into ``<kind>_<side>_<order>`` columns; undetected or missing powers become NaN.
+    """
+    # A pandas DataFrame is read through its own API, so this module needs no pandas import.
+    records = points.to_dict("records") if hasattr(points, "columns") else list(points)
+    flat: list[dict] = []
+    for rec in records:
+        r = {k: v for k, v in dict(rec).items() if k != "lines"}
+        for ln in (rec.get("lines") or []) if isinstance(rec, Mapping) else []:
+            det = ln.get("detected", True)
+            r[f"{ln['kind']}_{ln['side']}_{int(ln['order'])}"] = (
+                ln.get("power_dbm") if det else None
+            )
+        flat.append(r)
+    keys: dict[str, None] = {}
+    for r in flat:
+        keys.update(dict.fromkeys(r))
+    table: dict[str, np.ndarray] = {}
+    for k in keys:
+        vals = [r.get(k) for r in flat]
+        if k in ("pol_stokes_a", "pol_stokes_b", "pol_angles_deg"):
+            table[k] = np.array([_vec3(v) for v in vals], dtype=float).reshape(len(vals), 3)
+            continue
+        try:
+            table[k] = np.array([np.nan if v is None else float(v) for v in vals], dtype=float)
+        except (TypeError, ValueError):
+            continue  # text columns (labels, keys) are not used by the fits
+    return table
+
+
+def _vec3(v) -> list[float]:
+    """A 3-vector or NaNs."""
+    if v is None:
+        return [np.nan] * 3
+    a = [float(x) for x in v]
+    return a if len(a) == 3 else [np.nan] * 3
+
+
+def _col(t: Mapping[str, np.ndarray], name: str, n: int, default: float = np.nan) -> np.ndarray:
+    """A column or a constant."""
+    return t[name] if name in t else np.full(n, default)
+
+
+def _copolar(t: Mapping[str, np.ndarray], n: int) -> np.ndarray:
+    """Co-polarised fraction per point: 'copolar', else from 'pol_stokes_a'/'pol_stokes_b'.
+
+    Missing polarisation information means the tones are taken as co-polarised (1.0).
+    """
+    if "copolar" in t:
+        c = t["copolar"].copy()
+    elif "pol_stokes_a" in t:
+        sa = t["pol_stokes_a"]
+        sb = t["pol_stokes_b"] if "pol_stokes_b" in t else np.tile([1.0, 0.0, 0.0], (n, 1))
+        na = np.linalg.norm(sa, axis=1)
+        nb = np.linalg.norm(sb, axis=1)
+        c = (1.0 + np.sum(sa * sb, axis=1) / (na * nb)) / 2.0  # DESIGN.md 4.4
+    else:
+        c = np.ones(n)
+    return np.where(np.isnan(c), 1.0, c)
+
+
+def _w(dbm: np.ndarray) -> np.ndarray:
+    """dBm -> W (NaN stays NaN)."""
+    return np.power(10.0, np.asarray(dbm, dtype=float) / 10.0) * 1e-3
+
+
+# ---------------------------------------------------------------------------------------------
+# Bessel (dual-frequency) model: ratio of first sidebands to tones as a function of m
+
+
+def _unique_branch(m: np.ndarray, x: np.ndarray, m_star: np.ndarray,
+                   margin: float = 0.9) -> np.ndarray:
+    """Points whose true m lies below the turning point, so their inversion is the right one.
+
+    A ratio alone cannot tell m from its mirror beyond the turning point m*. m grows with
+    x = 2 L_eff sqrt(P_a P_b c), so start from the lowest-x third, estimate gamma, keep the
+    points predicted below margin * m*, and repeat until the set is stable.
+    """
+    finite = np.isfinite(m) & (m > 0)
+    if finite.sum() < 2:
+        return finite
+    order = np.argsort(np.where(finite, x, np.inf))
+    keep = np.zeros_like(finite)
+    keep[order[: max(2, int(finite.sum()) // 3)]] = True
+    keep &= finite
+    for _ in range(20):
+        gamma = float(np.median(m[keep] / x[keep]))
+        new = finite & (gamma * x <= margin * m_star)
+        if new.sum() < 2 or np.array_equal(new, keep):
+            break
+        keep = new
+    return keep
+
+
+def _j012(m: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """J0, J1, J2 at m (J2 from the recurrence J2 = 2 J1/m - J0, series near 0)."""
+    a, b = j0(m), j1(m)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        c = np.where(m > 1e-3, 2.0 * b / np.where(m > 1e-3, m, 1.0) - a, m * m / 8.0)
+    return a, b, c
+
+
+def bessel_ratio(m: np.ndarray, rho: np.ndarray, use_low: np.ndarray,
+                 use_high: np.ndarray) -> np.ndarray:
+    """First-sideband-to-tone power ratio of the Bessel model, P_k ~ P_a J_k^2 + P_b J_(k-1)^2.
+
+    rho = P_b/P_a. With both sides used: (P_-1 + P_2)/(P_0 + P_1), which is
+    (J1^2 + J2^2)/(J0^2 + J1^2) for any rho (Boskovic et al.); one side: P_-1/P_0 or P_2/P_1.
+    """
+    a, b, c = _j012(np.asarray(m, dtype=float))
+    a2, b2, c2 = a * a, b * b, c * c
+    lo, hi = np.asarray(use_low, dtype=float), np.asarray(use_high, dtype=float)
+    num = lo * (b2 + rho * c2) + hi * (c2 + rho * b2)
+    den = lo * (a2 + rho * b2) + hi * (b2 + rho * a2)
+    return num / den
+
+
+def unique_limit(rho: np.ndarray, use_low: np.ndarray, use_high: np.ndarray,
+                 m_max: float = 8.0, step: float = 0.005) -> np.ndarray:
+    """First turning point m* of the ratio: the inversion ratio -> m is unique only below it."""
+    rho = np.asarray(rho, dtype=float)
+    keys = np.stack([np.round(rho, 9), use_low.astype(float), use_high.astype(float)], axis=1)
+    uniq, inv = np.unique(keys, axis=0, return_inverse=True)
+    grid = np.arange(step, m_max, step)
+    r = bessel_ratio(grid[None, :], uniq[:, :1], uniq[:, 1:2], uniq[:, 2:3])
+    falling = np.diff(r, axis=1) <= 0
+    first = np.where(falling.any(axis=1), np.argmax(falling, axis=1), grid.size - 1)
+    return grid[first][inv.ravel()]
+
+
+def invert_ratio(ratio: np.ndarray, rho: np.ndarray, use_low: np.ndarray, use_high: np.ndarray,
+                 m_hi: np.ndarray, iterations: int = 48) -> np.ndarray:
+    """m in [0, m_hi] with bessel_ratio(m) = ratio, by vectorised bisection (NaN if beyond)."""
+    lo = np.zeros_like(ratio)
+    hi = np.array(m_hi, dtype=float)
+    r_hi = bessel_ratio(hi, rho, use_low, use_high)
+    for _ in range(iterations):
+        mid = 0.5 * (lo + hi)
+        above = bessel_ratio(mid, rho, use_low, use_high) > ratio
+        hi = np.where(above, mid, hi)
+        lo = np.where(above, lo, mid)
+    m = 0.5 * (lo + hi)
+    return np.where((ratio > 0) & (ratio <= r_hi), m, np.nan)
+
+
+def fit_gamma_bessel(p_a_w, p_b_w, low1_w, tone_a_w, tone_b_w, high1_w, l_eff_km: float,
+                     copolar=None) -> FitResult | None:
+    """gamma from the Bessel model: m_i from each ratio, then m = gamma x_i by weighted LSQ.
+
+    Line powers (W, NaN when not detected) at the spool output or anywhere after it: only
+    ratios are used, so path losses cancel. With all four lines the ratio is
+    (P_-1 + P_2)/(P_0 + P_1), otherwise one side. x_i = 2 L_eff sqrt(P_a P_b c_i), c_i the
+    co-polar fraction. Weights (d ln R/dm)^2 give each point the precision of its ratio.
+    """
+    p_a, p_b = np.asarray(p_a_w, float), np.asarray(p_b_w, float)
+    lo1, ta, tb, hi1 = (np.asarray(v, float) for v in (low1_w, tone_a_w, tone_b_w, high1_w))
+    cop = np.ones_like(p_a) if copolar is None else np.asarray(copolar, float)
+    use_lo = np.isfinite(lo1) & np.isfinite(ta) & (lo1 > 0) & (ta > 0)
+    use_hi = np.isfinite(hi1) & np.isfinite(tb) & (hi1 > 0) & (tb > 0)
+    ok = (use_lo | use_hi) & (p_a > 0) & (p_b > 0) & (cop > 0)
+    if ok.sum() < 2:
+        return None
+    p_a, p_b, cop, lo1, ta, tb, hi1, use_lo, use_hi = (
+        v[ok] for v in (p_a, p_b, cop, lo1, ta, tb, hi1, use_lo, use_hi))
+    rho = p_b / p_a
+    z = np.zeros_like(p_a)
+    num = np.where(use_lo, lo1, z) + np.where(use_hi, hi1, z)
+    den = np.where(use_lo, ta, z) + np.where(use_hi, tb, z)
+    ratio = num / den
+    m_star = unique_limit(rho, use_lo, use_hi)
+    m_all = invert_ratio(ratio, rho, use_lo, use_hi, m_star)
+    x_all = 2.0 * l_eff_km * np.sqrt(p_a * p_b * cop)
+    good = _unique_branch(m_all, x_all, m_star)
+    n_beyond = int((~good).sum())
+    if good.sum() < 2:
+        return None
+    m = m_all[good]
+    m_star_used = m_star[good]
+    x = x_all[good]
+    h = 1e-4 * np.maximum(m, 1e-3)
+    args = (rho[good], use_lo[good], use_hi[good])
+    dlnr = (np.log(bessel_ratio(m + h, *args)) - np.log(bessel_ratio(np.maximum(m - h, 1e-9),
+                                                                       *args))) / (2 * h)
+    w = dlnr**2
+    gamma = float(np.sum(w * x * m) / np.sum(w * x * x))
+    resid = m - gamma * x
+    n = m.size
+    s2 = float(np.sum(w * resid**2) / max(n - 1, 1))
+    stderr = math.sqrt(s2 / float(np.sum(w * x * x)))
+    ratio_used = bessel_ratio(m, *args)
+    rms_db = float(np.sqrt(np.mean((DB * np.log(bessel_ratio(gamma * x, *args) / ratio_used))
+                                   ** 2)))
+    return FitResult(
+        gamma, stderr, n, rms_db,
+        "dual-frequency Bessel: R(m) from P_k ~ P_a J_k(m)^2 + P_b J_(k-1)(m)^2, "
+        "m = 2 gamma L_eff sqrt(P_a P_b c)", "1/(W km)",
+        {"m_min": float(m.min()), "m_max": float(m.max()),
+         "m_unique_max": float(m_star_used.min()),
+         "n_beyond_unique": n_beyond,
+         "x_max_w_km": float(x.max()),
+         "note": "the ratio is monotonic in m only below its first turning point "
+                 "(m_unique_max); points whose ratio lies beyond it are left out"},
+    )
+
+
+# ---------------------------------------------------------------------------------------------
+# Small-signal FWM (Inoue 1992): gamma and dispersion
+
+
+def _first_sideband_efficiency(spacing_ghz: np.ndarray, wavelength_a_nm: np.ndarray,
+                               side: np.ndarray, length_km: float, loss_db_per_km: float,
+                               dispersion: float, slope: float,
+                               reference_wavelength_nm: float) -> np.ndarray:
+    """Inoue efficiency of each point's first sideband for a fibre with D and S at the reference.
+
+    The phase mismatch is the physics module's (beta2, beta3 at tone a from D(lambda), S).
+    """
+    fib = Fibre(length_km, loss_db_per_km, 1.0, dispersion, slope, reference_wavelength_nm)
+    dbeta = np.empty_like(spacing_ghz)
+    for lam in np.unique(wavelength_a_nm):
+        for s in ("low", "high"):
+            sel = (wavelength_a_nm == lam) & (side == s)
+            if sel.any():
+                dbeta[sel] = sideband_mismatch_per_km(fib, float(lam), spacing_ghz[sel], s)
+    return np.asarray(inoue_efficiency(fib.alpha_per_km, dbeta, length_km), dtype=float)
+
+
+def fit_gamma_small_signal(p_a_w, p_b_w, ratio, l_eff_km: float, *, eta=None, copolar=None,
+                           max_ratio_db: float = -20.0) -> FitResult | None:
+    """gamma from first sideband / its pump tone at the output: R = eta c gamma^2 L_eff^2 P_a P_b.
+
+    That is P_F = eta gamma^2 L_eff^2 P_b^2 P_a exp(-alpha L) (DESIGN.md 4.2) divided by the
+    output pump tone P_b exp(-alpha L), so path losses cancel. Points with R above
+    ``max_ratio_db`` are outside the small-signal regime (pump depletion, higher orders) and are
+    left out. eta defaults to 1 (no mismatch: spacing well inside the efficiency bandwidth).
+    """
+    p_a, p_b, r = (np.asarray(v, float) for v in (p_a_w, p_b_w, ratio))
+    eta = np.ones_like(r) if eta is None else np.asarray(eta, float)
+    cop = np.ones_like(r) if copolar is None else np.asarray(copolar, float)
+    ok = np.isfinite(r) & (r > 0) & (p_a > 0) & (p_b > 0) & (eta > 0) & (cop > 0)
+    small = ok & (DB * np.log(np.where(ok, r, 1.0)) <= max_ratio_db)
+    n = int(small.sum())
+    if n < 2:
+        return None
+    base = eta[small] * cop[small] * l_eff_km**2 * p_a[small] * p_b[small]
+    ln_g = 0.5 * np.log(r[small] / base)
+    g = float(np.exp(ln_g.mean()))
+    sd = float(ln_g.std(ddof=1)) if n > 1 else float("nan")
+    resid_db = 2.0 * DB * (ln_g - ln_g.mean())
+    x = np.log10(p_a[small] * p_b[small] * p_b[small])
+    slope = float(np.polyfit(x, np.log10(r[small] * p_b[small] / eta[small] / cop[small]), 1)[0]) \
+        if np.ptp(x) > 0.1 else float("nan")
+    return FitResult(
+        g, g * sd / math.sqrt(n), n, float(np.sqrt(np.mean(resid_db**2))),
+        "small-signal FWM: P_F = eta gamma^2 L_eff^2 P_b^2 P_a exp(-alpha L) (Inoue 1992), "
+        "referenced to the output pump tone", "1/(W km)",
+        {"n_large_signal": int((ok & ~small).sum()), "max_ratio_db": max_ratio_db,
+         "loglog_slope_vs_pa_pb2": slope, "efficiency_corrected": bool(np.any(eta != 1.0))},
+    )
+
+
+def _mismatch_basis(spacing_ghz: np.ndarray, wavelength_a_nm: np.ndarray, side: np.ndarray,
+                    length_km: float, loss_db_per_km: float,
+                    reference_wavelength_nm: float) -> tuple[np.ndarray, np.ndarray]:
+    """(u, v) with dbeta = D u + S v for every point.
+
+    The physics' mismatch is linear in beta2 and beta3, which are linear in D(lambda) and S,
+    and D(lambda) = D + S (lambda - lambda_ref) is linear in (D, S): two evaluations give all.
+    """
+    def dbeta(d: float, s: float) -> np.ndarray:
+        fib = Fibre(length_km, loss_db_per_km, 1.0, d, s, reference_wavelength_nm)
+        out = np.empty_like(spacing_ghz)
+        for lam in np.unique(wavelength_a_nm):
+            for sd in ("low", "high"):
+                sel = (wavelength_a_nm == lam) & (side == sd)
+                if sel.any():
+                    out[sel] = sideband_mismatch_per_km(fib, float(lam), spacing_ghz[sel], sd)
+        return out
+
+    return dbeta(1.0, 0.0), dbeta(0.0, 1.0)
+
+
+def _grid_dispersion(y: np.ndarray, u: np.ndarray, alpha: float, length_km: float,
+                     d_max: float, n_best: int = 4, max_points: int = 150) -> list[float]:
+    """Candidate |D| values: the best local minima of the residual over a grid of D.
+
+    The grid steps the phase at the largest |u| by 0.6 rad (the efficiency oscillates with
+    dbeta L) plus a log grid to d_max; gamma is solved in closed form at each D.
+    """
+    if y.size > max_points:
+        pick = np.linspace(0, y.size - 1, max_points).astype(int)
+        y, u = y[pick], u[pick]
+    phi = float(np.max(np.abs(u))) * length_km
+    step = 0.6 / phi if phi > 0 else d_max
+    lin = np.arange(0.0, min(d_max, 2000 * step), step)
+    grid = np.unique(np.concatenate([lin, np.geomspace(1e-3, d_max, 200)]))
+    e = DB * np.log(np.maximum(np.asarray(
+        inoue_efficiency(alpha, grid[:, None] * u[None, :], length_km)), 1e-300))
+    r = y[None, :] - e
+    ss = np.sum((r - r.mean(axis=1, keepdims=True)) ** 2, axis=1)
+    inner = np.r_[True, ss[1:] < ss[:-1]] & np.r_[ss[:-1] <= ss[1:], True]
+    cand = np.flatnonzero(inner)
+    cand = cand[np.argsort(ss[cand])][:n_best]
+    return [float(grid[i]) for i in cand]
+
+
+def fit_dispersion(p_a_w, p_b_w, spacing_ghz, wavelength_a_nm, side, ratio, *, length_km: float,
+                   loss_db_per_km: float, reference_wavelength_nm: float, copolar=None,
+                   fit_slope: bool | None = None, d_max: float = 300.0,
+                   s_max: float = 5.0) -> dict[str, FitResult]:
+    """D (and slope S) from first-sideband efficiency against spacing: bounded least squares.
+
+    Residuals in dB of R = eta(dbeta(D, S)) c gamma^2 L_eff^2 P_a P_b, free parameters ln gamma,
+    D in [0, d_max] and, with two or more pump wavelengths (or fit_slope=True), S. eta depends
+    on dbeta^2 only, so the sign of D is not measurable: D is reported >= 0 at the reference
+    wavelength (flip the signs of D and S together for normal dispersion). Starts come from a
+    grid over D (per wavelength), the efficiency being oscillatory; standard errors from the
+    Jacobian at the solution (cov = s^2 (J^T J)^-1).
+    """
+    arrs = [np.asarray(v, float) for v in (p_a_w, p_b_w, spacing_ghz, wavelength_a_nm, ratio)]
+    p_a, p_b, sp, lam, r = arrs
+    side = np.asarray(side)
+    cop = np.ones_like(r) if copolar is None else np.asarray(copolar, float)
+    ok = np.isfinite(r) & (r > 0) & np.isfinite(sp) & np.isfinite(lam) & (cop > 0)
+    if ok.sum() < 4 or np.unique(np.round(np.abs(sp[ok]), 6)).size < 3:
+        return {}
+    p_a, p_b, sp, lam, r, side, cop = (v[ok] for v in (p_a, p_b, sp, lam, r, side, cop))
+    lams = np.unique(lam)
+    with_slope = (lams.size >= 2) if fit_slope is None else bool(fit_slope)
+    alpha = float(alpha_per_km(loss_db_per_km))
+    l_eff = effective_length_km(length_km, loss_db_per_km)
+    y = DB * np.log(r / (cop * l_eff**2 * p_a * p_b))  # = 10 log10(eta gamma^2)
+    u, v = _mismatch_basis(sp, lam, side, length_km, loss_db_per_km, reference_wavelength_nm)
+
+    def resid(theta: np.ndarray) -> np.ndarray:
+        s = theta[2] if with_slope else 0.0
+        eta = np.asarray(inoue_efficiency(alpha, theta[1] * u + s * v, length_km))
+        return 2.0 * DB * theta[0] + DB * np.log(np.maximum(eta, 1e-300)) - y
+
+    starts = _dispersion_starts(y, u, lam, lams, alpha, length_km, d_max, with_slope,
+                                reference_wavelength_nm, s_max)
+    lo = [-np.inf, 0.0] + ([-s_max] if with_slope else [])
+    hi = [np.inf, d_max] + ([s_max] if with_slope else [])
+    sol = None
+    for d0, s0 in starts:
+        eta0 = np.asarray(inoue_efficiency(alpha, d0 * u + s0 * v, length_km))
+        g0 = float(np.mean(y - DB * np.log(np.maximum(eta0, 1e-300)))) / (2.0 * DB)
+        theta0 = [g0, d0] + ([s0] if with_slope else [])
+        try_sol = least_squares(resid, theta0, bounds=(lo, hi), x_scale="jac")
+        if sol is None or try_sol.cost < sol.cost:
+            sol = try_sol
+    n, p = r.size, len(sol.x)
+    cov = _covariance(sol.jac, sol.fun, n, p)
+    rms = float(np.sqrt(np.mean(sol.fun**2)))
+    gamma = float(np.exp(sol.x[0]))
+    model = ("Inoue efficiency vs spacing: R = eta(dbeta) gamma^2 L_eff^2 P_a P_b, dbeta from "
+             "beta2, beta3 at tone a with D(lambda) = D + S (lambda - lambda_ref)")
+    extra = {"gamma_per_w_per_km": gamma, "gamma_stderr": gamma * math.sqrt(cov[0, 0]),
+             "reference_wavelength_nm": reference_wavelength_nm, "n_wavelengths": int(lams.size),
+             "sign": "D >= 0 by convention: efficiency depends on dbeta^2 only",
+             "at_bound": bool(np.any(sol.active_mask != 0))}
+    out = {"dispersion": FitResult(float(sol.x[1]), math.sqrt(cov[1, 1]), n, rms, model,
+                                   "ps/(nm km)", extra)}
+    if with_slope:
+        out["dispersion_slope"] = FitResult(float(sol.x[2]), math.sqrt(cov[2, 2]), n, rms, model,
+                                            "ps/(nm^2 km)", dict(extra))
+    return out
+
+
+def _dispersion_starts(y, u, lam, lams, alpha, length_km, d_max, with_slope, lam_ref,
+                       s_max) -> list[tuple[float, float]]:
+    """Starting (D, S) pairs: grid minima for one wavelength; for several, a line through the
+    per-wavelength |D| with the sign pattern (a zero crossing) that fits best."""
+    if not with_slope or lams.size < 2:
+        return [(d, 0.0) for d in _grid_dispersion(y, u, alpha, length_km, d_max)]
+    d_each = np.array([_grid_dispersion(y[lam == lv], u[lam == lv], alpha, length_km, d_max,
+                                        n_best=1)[0] for lv in lams])
+    best = None
+    for k in range(lams.size + 1):  # negative below the k-th wavelength: one zero crossing
+        signed = np.where(np.arange(lams.size) < k, -d_each, d_each)
+        coef = np.polyfit(lams - lam_ref, signed, 1)
+        ss = float(np.sum((np.polyval(coef, lams - lam_ref) - signed) ** 2))
+        if best is None or ss < best[0]:
+            best = (ss, coef)
+    s0, d0 = float(best[1][0]), float(best[1][1])
+    if d0 < 0:
+        d0, s0 = -d0, -s0
+    s0 = float(np.clip(s0, -s_max, s_max))
+    return [(float(np.clip(d0, 0.0, d_max)), s0), (float(np.median(d_each)), 0.0)]
+
+
+def _covariance(jac: np.ndarray, fun: np.ndarray, n: int, p: int) -> np.ndarray:
+    """s^2 (J^T J)^-1 with s^2 = sum r^2/(n - p); pseudo-inverse for rank-deficient cases."""
+    s2 = float(np.sum(fun**2)) / max(n - p, 1)
+    return np.linalg.pinv(jac.T @ jac) * s2
+
+
+# ---------------------------------------------------------------------------------------------
+# Power-law slopes and polarisation
+
+
+def fit_power_slope(total_dbm, sideband_dbm, groups, order: int, label: str,
+                    confidence: float = 0.95) -> FitResult | None:
+    """dB/dB slope of a sideband against total launched power; one intercept per group.
+
+    Groups are points sharing spacing, wavelength, power ratio and polarisation, so a run that
+    sweeps several axes still gives one common slope. Expected 2n+1 in the small-signal regime
+    (J_n(m) ~ (m/2)^n/n!, DESIGN.md 4.1).
+    """
+    x, y = np.asarray(total_dbm, float), np.asarray(sideband_dbm, float)
+    g = np.asarray(groups)
+    ok = np.isfinite(x) & np.isfinite(y)
+    x, y, g = x[ok], y[ok], g[ok]
+    uniq, gi = np.unique(g, return_inverse=True)
+    keep = np.array([np.ptp(x[gi == i]) >= 0.5 and (gi == i).sum() >= 2
+                     for i in range(uniq.size)], dtype=bool)
+    sel = keep[gi]
+    x, y, gi = x[sel], y[sel], gi[sel]
+    if x.size < 3:
+        return None
+    _, gi = np.unique(gi, return_inverse=True)
+    ng = int(gi.max()) + 1
+    design = np.zeros((x.size, 1 + ng))
+    design[:, 0] = x
+    design[np.arange(x.size), 1 + gi] = 1.0
+    n, p = x.size, 1 + ng
+    if n <= p:
+        return None
+    coef, *_ = np.linalg.lstsq(design, y, rcond=None)
+    res = y - design @ coef
+    s2 = float(res @ res) / (n - p)
+    cov = np.linalg.pinv(design.T @ design) * s2
+    se = math.sqrt(cov[0, 0])
+    t = float(stats.t.ppf(0.5 + confidence / 2.0, n - p))
+    slope = float(coef[0])
+    return FitResult(
+        slope, se, n, float(np.sqrt(np.mean(res**2))),
+        "linear in dB: P_sideband[dBm] = s * P_total[dBm] + b_group", "dB/dB",
+        {"line": label, "ci_low": slope - t * se, "ci_high": slope + t * se,
+         "confidence": confidence, "expected_small_signal": 2 * order + 1, "n_groups": ng},
+    )
+
+
+def fit_polarisation(sideband_w, copolar, groups, pol_key) -> dict[str, FitResult]:
+    """Extinction (max/min, dB) of the first sideband over polarisation states, and a fit of
+    the scalar projection model P = A (c + b), c = (1 + s_a.s_b)/2 (DESIGN.md 4.4).
+
+    Uses the group (same powers, spacing, wavelength) with the most polarisation states. The
+    model's visibility (P(1) - P(0))/(P(1) + P(0)) = 1/(1 + 2b) is 1 for the ideal projection.
+    """
+    p, c = np.asarray(sideband_w, float), np.asarray(copolar, float)
+    g, k = np.asarray(groups), np.asarray(pol_key)
+    ok = np.isfinite(p) & (p > 0)
+    best, best_n = None, 0
+    for gv in np.unique(g[ok]):
+        sel = ok & (g == gv)
+        nstates = np.unique(k[sel]).size
+        if nstates > best_n:
+            best, best_n = sel, nstates
+    if best is None or best_n < 3:
+        return {}
+    p, c = p[best], c[best]
+    n = int(p.size)
+    out: dict[str, FitResult] = {}
+    model_note = "scalar projection: P = A (c + b), c = (1 + s_a.s_b)/2"
+    fit = None
+    if np.ptp(c) > 0.2:
+        fit = _projection_fit(p, c)
+    ext = DB * math.log(p.max() / p.min())
+    sigma = fit[3] if fit else float("nan")
+    out["pol_extinction_db"] = FitResult(
+        ext, math.sqrt(2.0) * sigma, n, float("nan"), "max/min of the first sideband over "
+        "polarisation states", "dB", {"n_states": best_n})
+    if fit:
+        vis, vis_se, a_w, rms = fit
+        out["pol_visibility"] = FitResult(vis, vis_se, n, rms, model_note, "1",
+                                          {"scale_w": a_w, "n_states": best_n})
+    return out
+
+
+def _projection_fit(p: np.ndarray, c: np.ndarray) -> tuple[float, float, float, float]:
+    """(visibility, its stderr, A, residual RMS dB) of P = A (c + b), residuals in dB."""
+    y = DB * np.log(p)
+
+    def resid(theta: np.ndarray) -> np.ndarray:
+        return DB * (theta[0] + np.log(c + theta[1])) - y
+
+    b0 = max(float(p.min() / p.max()), 1e-6)
+    a0 = float(np.log(p.max() / (1.0 + b0)))
+    sol = least_squares(resid, [a0, b0], bounds=([-np.inf, 1e-9], [np.inf, 1e6]),
+                        x_scale="jac")
+    cov = _covariance(sol.jac, sol.fun, p.size, 2)
+    b, sb = float(sol.x[1]), math.sqrt(cov[1, 1])
+    vis = 1.0 / (1.0 + 2.0 * b)
+    return vis, 2.0 * sb * vis**2, float(np.exp(sol.x[0])), float(np.sqrt(np.mean(sol.fun**2)))
+
+
+# ---------------------------------------------------------------------------------------------
+# Entry point
+
+
+def fit_run(points, spool_length_km: float, loss_db_per_km: float, *,
+            dispersion_ps_per_nm_km: float | None = None,
+            slope_ps_per_nm2_km: float = 0.0,
+            reference_wavelength_nm: float = 1550.0,
+            max_order: int = 3,
+            copolar_min: float = 0.95,
+            small_signal_max_ratio_db: float = -20.0,
+            bessel_max_mismatch_rad: float = 0.3) -> dict[str, FitResult]:
+    """Every fit the points support, keyed by name (gamma_bessel, gamma_small_signal,
+    dispersion, dispersion_slope, slope_<side>_<n>, pol_extinction_db, pol_visibility).
+
+    ``points``: a pandas DataFrame or a list of dicts, one row per point, with
+    - ``power_a_dbm``, ``power_b_dbm``: powers launched into the spool (required);
+    - ``spacing_ghz`` (f_b - f_a) and ``wavelength_a_nm``: needed for dispersion (the latter
+      defaults to ``reference_wavelength_nm``);
+    - polarisation, optional: ``copolar`` (fraction (1 + s_a.s_b)/2), or ``pol_stokes_a`` (and
+      ``pol_stokes_b``, default (1, 0, 0)) as 3-sequences; absent means co-polarised;
+    - measured line powers in dBm, flat columns ``tone_low_0``, ``tone_high_0``,
+      ``sideband_low_<n>``, ``sideband_high_<n>`` (None/NaN when not detected; the keys of
+      ``Reduction.powers_by_key()``), or a ``lines`` list of dicts in the DESIGN.md schema
+      (kind, side, order, power_dbm, detected), as in ``Reduction.to_dict()["lines"]``.
+    Line powers may be read anywhere after the spool: only ratios of lines enter the gamma and
+    dispersion fits, and the slopes are insensitive to a constant path loss.
+    Gamma fits use points with copolar >= ``copolar_min``. The Bessel fit drops points whose
+    phase mismatch |dbeta| L exceeds ``bessel_max_mismatch_rad`` when D is known (given, or
+    fitted here from the spacing dependence).
+    """
+    t = points_table(points)
+    if "power_a_dbm" not in t or "power_b_dbm" not in t:
+        raise ValueError("points need power_a_dbm and power_b_dbm columns")
+    n = t["power_a_dbm"].size
+    p_a, p_b = _w(t["power_a_dbm"]), _w(t["power_b_dbm"])
+    spacing = _col(t, "spacing_ghz", n)
+    lam = _col(t, "wavelength_a_nm", n, reference_wavelength_nm)
+    lam = np.where(np.isnan(lam), reference_wavelength_nm, lam)
+    cop = _copolar(t, n)
+    lines = {k: _w(v) for k, v in t.items() if LINE_KEY.match(k)}
+    nan = np.full(n, np.nan)
+    lo1, hi1 = lines.get("sideband_low_1", nan), lines.get("sideband_high_1", nan)
+    ta, tb = lines.get("tone_low_0", nan), lines.get("tone_high_0", nan)
+    co = cop >= copolar_min
+    l_eff = effective_length_km(spool_length_km, loss_db_per_km)
+    results: dict[str, FitResult] = {}
+
+    # Dispersion first: its D feeds the efficiency correction of the gamma fits.
+    side = np.concatenate([np.full(n, "high"), np.full(n, "low")])
+    ratio = np.concatenate([hi1 / tb, lo1 / ta])
+    both = np.concatenate([co, co])
+    small = ratio <= 10 ** (small_signal_max_ratio_db / 10)
+    sel = both & small & np.isfinite(ratio)
+    if np.isfinite(spacing).any():
+        results.update(fit_dispersion(
+            np.tile(p_a, 2)[sel], np.tile(p_b, 2)[sel], np.tile(spacing, 2)[sel],
+            np.tile(lam, 2)[sel], side[sel], ratio[sel], length_km=spool_length_km,
+            loss_db_per_km=loss_db_per_km, reference_wavelength_nm=reference_wavelength_nm,
+            copolar=np.tile(cop, 2)[sel]))
+    d_known, s_known, d_source = dispersion_ps_per_nm_km, slope_ps_per_nm2_km, "given"
+    if d_known is None and "dispersion" in results:
+        d_known, d_source = results["dispersion"].value, "fitted"
+        if "dispersion_slope" in results:
+            s_known = results["dispersion_slope"].value
+    eta_hi = np.ones(n)
+    bessel_ok = co.copy()
+    if d_known is not None and np.isfinite(spacing).all():
+        eta_hi = _first_sideband_efficiency(spacing, lam, np.full(n, "high"), spool_length_km,
+                                            loss_db_per_km, d_known, s_known,
+                                            reference_wavelength_nm)
+        fib = Fibre(spool_length_km, loss_db_per_km, 1.0, d_known, s_known,
+                    reference_wavelength_nm)
+        mis = np.array([abs(float(sideband_mismatch_per_km(fib, float(lv), float(sv), "high")))
+                        for lv, sv in _unique_pairs(lam, spacing)])
+        mis_map = dict(zip(_unique_pairs(lam, spacing), mis, strict=True))
+        mism = np.array([mis_map[(lv, sv)] for lv, sv in zip(lam, spacing, strict=True)])
+        bessel_ok &= mism * spool_length_km <= bessel_max_mismatch_rad
+
+    fb = fit_gamma_bessel(p_a[bessel_ok], p_b[bessel_ok], lo1[bessel_ok], ta[bessel_ok],
+                          tb[bessel_ok], hi1[bessel_ok], l_eff, cop[bessel_ok])
+    if fb is not None:
+        fb.extra["n_dispersion_excluded"] = int((co & ~bessel_ok).sum())
+        results["gamma_bessel"] = fb
+    fs = fit_gamma_small_signal(p_a[co], p_b[co], (hi1 / tb)[co], l_eff, eta=eta_hi[co],
+                                copolar=cop[co], max_ratio_db=small_signal_max_ratio_db)
+    if fs is not None:
+        if d_known is not None:
+            fs.extra["dispersion_source"] = d_source
+        results["gamma_small_signal"] = fs
+
+    groups = _group_keys(t, n, spacing, lam, cop)
+    total_dbm = 10.0 * np.log10((p_a + p_b) * 1e3)
+    for s in ("low", "high"):
+        for order in range(1, max_order + 1):
+            key = f"sideband_{s}_{order}"
+            if key in t:
+                fr = fit_power_slope(total_dbm, t[key], groups, order, key)
+                if fr is not None:
+                    results[f"slope_{s}_{order}"] = fr
+
+    pol_key = _pol_keys(t, n, cop)
+    power_groups = _group_keys(t, n, spacing, lam, None)
+    results.update(fit_polarisation(hi1, cop, power_groups, pol_key))
+    return results
+
+
+def _unique_pairs(a: np.ndarray, b: np.ndarray) -> list[tuple[float, float]]:
+    """Distinct (a, b) pairs, in first-seen order."""
+    return list(dict.fromkeys(zip(a.tolist(), b.tolist(), strict=True)))
+
+
+def _group_keys(t, n: int, spacing, lam, cop) -> np.ndarray:
+    """A string per point naming its spacing, wavelength, power ratio (and polarisation)."""
+    ratio_db = np.round(t["power_a_dbm"] - t["power_b_dbm"], 1)
+    parts = [np.round(spacing, 3).astype(str), np.round(lam, 3).astype(str), ratio_db.astype(str)]
+    if cop is not None:
+        parts.append(np.round(cop, 3).astype(str))
+    else:
+        parts += [np.round(t["power_a_dbm"], 2).astype(str)]
+    out = parts[0]
+    for p in parts[1:]:
+        out = np.char.add(np.char.add(out, "|"), p)
+    return out
+
+
+def _pol_keys(t, n: int, cop: np.ndarray) -> np.ndarray:
+    """A key per point naming its polarisation state (copolar, Stokes or paddle angles)."""
+    for name in ("pol_stokes_a", "pol_angles_deg"):
+        if name in t:
+            return np.array(["|".join(f"{v:.4f}" for v in row) for row in t[name]])
+    return np.round(cop, 4).astype(str)
