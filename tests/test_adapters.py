@@ -261,3 +261,26 @@ def test_open_bench_subset_and_unknown_role(inst_sim_bench_path):
         assert set(ins) == {"osa", "switch"}
     with pytest.raises(InputError, match="not on this bench"):
         open_bench(bench, roles=["laser_c"])
+
+
+def test_real32_trace_and_safe_off_against_virtual_lab(tmp_path):
+    """The REAL,32 block path end to end over TCP (pyvisa-py) against the virtual lab."""
+    vlab = pytest.importorskip("labrun.vlab")
+    with vlab.VirtualLab("default-scenario.toml") as lab:
+        bench = load_bench(lab.write_bench(tmp_path / "bench.toml"))
+        assert bench.instruments["osa"].profile.trace.format == "real32"
+        transcript = Transcript()
+        with open_bench(bench, transcript=transcript, roles=["laser_a", "attenuator_a",
+                                                             "osa"]) as ins:
+            ins["laser_a"].set_power_dbm(5.0)
+            ins["laser_a"].output_on()
+            ins["attenuator_a"].set_attenuation_db(3.0)
+            ins["attenuator_a"].output_on()
+            ins["osa"].configure(1550.0, 4.0, 0.05, 2001)
+            ins["osa"].sweep()
+            x, y = ins["osa"].read_trace()
+            assert x.size == y.size == 2001 and np.all(np.diff(x) > 0)
+            assert y.max() > -30.0  # the laser line stands far above the floor
+            assert ins.safe_off_all() == []
+        assert lab.sources_off()
+        assert "<block 8004 bytes>" in [e.reply for e in transcript.entries]

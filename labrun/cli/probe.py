@@ -108,22 +108,34 @@ def probe_instrument(bench: Bench, role: str, transcript: Transcript | None = No
         result.checks.append(Check("connect", False, str(exc)))
         return result
     try:
-        result.idn = str(adapter.idn())
-        result.checks.append(Check("identify", bool(result.idn.strip(",")), result.idn))
+        try:
+            result.idn = str(adapter.idn())
+            result.checks.append(Check("identify", bool(result.idn.strip(",")), result.idn))
+        except NoAnswerError:
+            raise
+        except LabrunError as exc:
+            result.checks.append(Check("identify", False, str(exc)))
         for op in spec.profile.read_operations():
             if op.name != "identify":
                 result.checks.append(_check_operation(adapter, op))
         if spec.profile.error_query:
-            adapter.session.drain_errors("the probe's queries")
-            result.checks.append(Check("error_queue", True, "empty"))
+            result.checks.append(_check_error_queue(adapter))
     except NoAnswerError as exc:
         result.checks.append(Check("answer", False, str(exc)))
-    except LabrunError as exc:
-        result.checks.append(Check("error_queue" if "error" in str(exc) else "probe", False,
-                                   str(exc)))
     finally:
         adapter.close()
     return result
+
+
+def _check_error_queue(adapter: Adapter) -> Check:
+    """Read the error queue: empty means every probe query was understood."""
+    try:
+        adapter.session.drain_errors("the probe's queries")
+    except NoAnswerError:
+        raise
+    except LabrunError as exc:
+        return Check("error_queue", False, str(exc))
+    return Check("error_queue", True, "empty")
 
 
 def probe_bench(bench: Bench, transcript: Transcript | None = None) -> list[ProbeResult]:
