@@ -300,7 +300,17 @@ class Runner:
             state = adapter.output_state()
             if state is not None and bool(state) != self.emitting:
                 found = "on" if state else "off"
-                raise RunAborted(f"{role} output found {found} unexpectedly")
+                raise RunAborted(f"{role} output found {found} unexpectedly"
+                                 + self._interlock_note())
+
+    def _interlock_note(self) -> str:
+        """' (interlock open on laser_a)' when an interlock explains a surprise, else ''."""
+        opened = []
+        for role in self.sources():
+            with contextlib.suppress(Exception):
+                if self.role(role).interlock_closed() is False:
+                    opened.append(role)
+        return f" (interlock open on {', '.join(opened)})" if opened else ""
 
     def prepare(self, first: Sequence[Setting]) -> None:
         """Apply the first point with outputs off, then switch on: shutters, lasers, amplifier."""
