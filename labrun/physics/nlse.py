@@ -31,6 +31,7 @@ class NlseResult:
     step_error: sum of the local step-doubling error estimates (relative field norm); an upper
     estimate of the step error, since the accepted steps are Richardson-extrapolated.
     alias_fraction: power fraction in the outer half of the window (window truncation check).
+    spectrum: output coefficients, shape (polarisation components, N), FFT bin order.
     """
 
     ks: np.ndarray
@@ -40,7 +41,7 @@ class NlseResult:
     n_samples: int = 0
     alias_fraction: float = 0.0
     method: str = "split-step"
-    spectrum: np.ndarray = field(default_factory=lambda: np.zeros(0, complex), repr=False)
+    spectrum: np.ndarray = field(default_factory=lambda: np.zeros((1, 0), complex), repr=False)
 
 
 @dataclass(frozen=True)
@@ -72,12 +73,17 @@ def propagate_spectrum(
     initial_step_km: float | None = None,
     max_steps: int = 200_000,
 ) -> _Propagation:
-    """Propagate spectral coefficients (FFT bin order, sqrt(W)) over the spool; adaptive steps."""
+    """Propagate spectral coefficients (FFT bin order, sqrt(W)) over the spool; adaptive steps.
+
+    spectrum is (N,) for one polarisation or (M, N) for M polarisation components; the Kerr
+    phase then follows the total intensity (the Manakov form, gamma taken as the effective one).
+    """
     fft, ifft = np.fft.fft, np.fft.ifft
-    c = np.asarray(spectrum, dtype=complex).copy()
-    op = 1j * _linear_operator(c.size, spacing_thz, beta2_ps2_per_km, beta3_ps3_per_km)
+    shape = np.shape(spectrum)
+    c = np.atleast_2d(np.asarray(spectrum, dtype=complex)).copy()
+    op = 1j * _linear_operator(c.shape[-1], spacing_thz, beta2_ps2_per_km, beta3_ps3_per_km)
     alpha, gamma = alpha_per_km, gamma_per_w_per_km
-    p_peak = float(np.sum(np.abs(c))) ** 2  # upper bound of |A|^2
+    p_peak = float(np.sum(np.abs(c).sum(axis=-1) ** 2))  # upper bound of |A|^2
     phi_rate = gamma * p_peak
     h = initial_step_km or min(length_km, 0.05 / phi_rate if phi_rate > 0 else length_km)
     h_min = length_km * 1e-9
@@ -102,8 +108,9 @@ def propagate_spectrum(
         return cache[h]
 
     def kerr(a_t: np.ndarray, loss: complex, phase: complex) -> np.ndarray:
-        """Exact nonlinear-with-loss step, pointwise in time."""
-        return a_t * (loss * np.exp(phase * (a_t.real**2 + a_t.imag**2)))
+        """Exact nonlinear-with-loss step, pointwise in time (phase from the total intensity)."""
+        intensity = (a_t.real**2 + a_t.imag**2).sum(axis=0)
+        return a_t * (loss * np.exp(phase * intensity))
 
     z, total_err, n_steps, n_rej = 0.0, 0.0, 0, 0
     while z < length_km * (1.0 - 1e-12):
@@ -129,7 +136,7 @@ def propagate_spectrum(
             h /= 2.0 ** (1.0 / 3.0)
         elif err < rtol / 2.0:
             h *= 2.0 ** (1.0 / 3.0)
-    return _Propagation(c, total_err, n_steps, n_rej)
+    return _Propagation(c.reshape(shape), total_err, n_steps, n_rej)
 
 
 def _default_samples(p_a_w: float, p_b_w: float, gamma: float, l_eff: float, orders: int) -> int:
@@ -143,10 +150,10 @@ def _default_samples(p_a_w: float, p_b_w: float, gamma: float, l_eff: float, ord
 
 
 def _alias_fraction(c: np.ndarray) -> float:
-    """Power fraction in the outer half of the window (|k| > N/4)."""
-    n = c.size
+    """Power fraction in the outer half of the window (|k| > N/4), all components."""
+    n = c.shape[-1]
     k = np.fft.fftfreq(n, d=1.0 / n)
-    p = np.abs(c) ** 2
+    p = np.sum(np.atleast_2d(np.abs(c) ** 2), axis=0)
     tot = float(p.sum())
     return float(p[np.abs(k) > n / 4].sum() / tot) if tot > 0 else 0.0
 
@@ -166,8 +173,10 @@ def propagate_tones(
 ) -> NlseResult:
     """Two CW tones (a at wavelength_a_nm, b at f_a + spacing) through the spool.
 
-    beta2, beta3 are taken at tone a from the fibre's D and S. Scalar projection model: only
-    the copolar part of tone b (power copolar * P_b) takes part; the rest leaves with loss only.
+    beta2, beta3 are taken at tone a from the fibre's D and S. Polarisation (DESIGN.md 4.4):
+    tone b is split into its part along tone a (power copolar * P_b) and the orthogonal part;
+    only the first beats with tone a, and the Kerr phase of both follows the total intensity, so
+    the modulation index scales with sqrt(copolar) and at copolar = 0 nothing beats.
     method "split-step" always steps; "auto" uses the exact SPM solution (the field picks up
     gamma L_eff |A|^2 pointwise) when beta2 = beta3 = 0, "spm" forces that solution.
     """
@@ -181,19 +190,22 @@ def propagate_tones(
         raise ValueError(f"unknown method {method!r}")
     b2, b3 = fibre.beta2_at(wavelength_a_nm), fibre.beta3_at(wavelength_a_nm)
     gamma, alpha, length = fibre.gamma_per_w_per_km, fibre.alpha_per_km, fibre.length_km
-    p_par, p_perp = copolar * p_b_w, (1.0 - copolar) * p_b_w
     auto_n = n_samples is None
-    n = n_samples or _default_samples(p_a_w, p_par, gamma, fibre.effective_length_km, orders)
+    n = n_samples or _default_samples(p_a_w, p_b_w, gamma, fibre.effective_length_km, orders)
     if n < 2 * orders + 4:
         raise ValueError("n_samples too small for the requested orders")
     use_spm = method == "spm" or (method == "auto" and b2 == 0.0 and b3 == 0.0)
+    # Jones components: tone a along x, tone b split into its part along a and the orthogonal one.
+    n_pol = 1 if copolar == 1.0 else 2
     while True:
-        c0 = np.zeros(n, dtype=complex)
-        c0[0], c0[1] = np.sqrt(p_a_w), np.sqrt(p_par)
+        c0 = np.zeros((n_pol, n), dtype=complex)
+        c0[0, 0], c0[0, 1] = np.sqrt(p_a_w), np.sqrt(copolar * p_b_w)
+        if n_pol == 2:
+            c0[1, 1] = np.sqrt((1.0 - copolar) * p_b_w)
         if use_spm:
-            a_t = np.fft.fft(c0)
-            phase = gamma * fibre.effective_length_km * np.abs(a_t) ** 2
-            c = np.fft.ifft(a_t * np.exp(1j * phase)) * np.exp(-alpha * length / 2.0)
+            a_t = np.fft.fft(c0, axis=-1)
+            phase = gamma * fibre.effective_length_km * np.sum(np.abs(a_t) ** 2, axis=0)
+            c = np.fft.ifft(a_t * np.exp(1j * phase), axis=-1) * np.exp(-alpha * length / 2.0)
             prop = _Propagation(c, 0.0, 0, 0)
         else:
             prop = propagate_spectrum(
@@ -204,8 +216,7 @@ def propagate_tones(
             break
         n *= 2
     ks = np.asarray(grid_ks(orders))
-    powers = np.abs(prop.spectrum[ks % n]) ** 2
-    powers[ks == 1] += p_perp * np.exp(-alpha * length)
+    powers = np.sum(np.abs(prop.spectrum[:, ks % n]) ** 2, axis=0)
     return NlseResult(
         ks=ks,
         powers_w=powers,

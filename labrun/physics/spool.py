@@ -2,8 +2,10 @@
 
 Picks the model: the Bessel model (DESIGN.md 4.1, exact without dispersion, loss included
 through L_eff) when the dispersion phase over the spool is negligible, the split-step NLSE
-(4.3) otherwise. Scalar polarisation projection (4.4): the part of tone b orthogonal to tone a
-does not beat and leaves with loss only.
+(4.3) otherwise. Polarisation projection (4.4): only the part of tone b along tone a beats, so
+the modulation index scales with sqrt(copolar); the Kerr phase of the total intensity acts on
+both polarisation components (Manakov form). At copolar = 0 nothing beats: no sidebands, tone b
+leaves with loss only. Small-signal sidebands on both sides then scale with copolar.
 """
 
 from __future__ import annotations
@@ -84,12 +86,11 @@ def output_powers_w(
         model = choose_model(fibre, wavelength_a_nm, spacing_ghz)
     t = float(np.exp(-fibre.alpha_per_km * fibre.length_km))
     if model == "bessel":
-        p_par = copolar * p_b_w
+        # Only the part of b along a beats (m scales with sqrt(copolar)); the Kerr phase of the
+        # total intensity then modulates every component, so P_b keeps its full weight.
         g, l_eff = fibre.gamma_per_w_per_km, fibre.effective_length_km
-        m = float(modulation_index(g, l_eff, p_a_w, p_par))
-        powers = two_tone_powers(p_a_w, p_par, m, orders, t)
-        powers[np.asarray(grid_ks(orders)) == 1] += (1.0 - copolar) * p_b_w * t
-        return powers, model
+        m = float(modulation_index(g, l_eff, p_a_w, copolar * p_b_w))
+        return two_tone_powers(p_a_w, p_b_w, m, orders, t), model
     res = propagate_tones(
         fibre, wavelength_a_nm, spacing_ghz, p_a_w, p_b_w, orders, copolar=copolar, rtol=rtol
     )
