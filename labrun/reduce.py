@@ -310,7 +310,7 @@ def _find_tones(y: np.ndarray, ax: _Axis, rbw_s: float, expected_thz, floor_gues
     m = y.size // block
     yb = y[: m * block].reshape(m, block).max(axis=1)
     peaks, _ = find_peaks(yb, height=floor_guess + threshold_db,
-                          distance=max(1, int(round(2 * rbw_s / block))))
+                          distance=max(1, int(round(0.8 * rbw_s / block))))
     if peaks.size == 0:
         return np.empty(0), np.empty(0, dtype=int), notes
     top = peaks[np.argsort(yb[peaks])[::-1][:2]]
