@@ -1,0 +1,158 @@
+"""Safety: worst case after calibration, caps and ranges, settings at fixed laser level, hazard."""
+
+from __future__ import annotations
+
+import math
+
+import pytest
+from _plan_support import BASE_PLAN, make_bench, make_plan
+
+from labrun import safety
+from labrun.errors import SafetyError
+
+POWERS = """
+[axes.power_a_dbm]
+values = [0.0, 2.0, 4.0]
+
+[axes.power_b_dbm]
+values = [0.0, 2.0, 4.0]
+
+[order]
+zip = [["power_a_dbm", "power_b_dbm"]]
+"""
+
+
+def _dbm_sum(*dbm: float) -> float:
+    """Sum of powers in dBm via mW (P[mW] = 10^(P[dBm]/10), common practice)."""
+    return 10 * math.log10(sum(10 ** (p / 10) for p in dbm))
+
+
+def test_worst_case_per_path_and_total_after_calibration(tmp_path):
+    bench = make_bench(tmp_path, cap_a=10.0, cap_b=8.0, loss_a=3.0, loss_b=3.6)
+    plan = make_plan(tmp_path, POWERS)
+    wc = safety.worst_case(plan, bench)
+    # max laser power - minimum attenuation (generic attenuator: 0 dB) - path loss
+    assert wc.path_dbm == pytest.approx({"a": 7.0, "b": 4.4})
+    assert wc.total_dbm == pytest.approx(_dbm_sum(7.0, 4.4))
+    assert wc.planned_dbm["a"] == 4.0 and wc.planned_dbm["total"] == pytest.approx(7.0103, 1e-4)
+    assert wc.max_launched_dbm == {"a": 7.0, "b": 4.4, "total": round(_dbm_sum(7.0, 4.4), 2)}
+    assert wc.highest_dbm == 10.0 and not wc.amplifier
+    assert "path a 7.00 dBm" in wc.describe()
+
+
+def test_pinned_laser_level_lowers_the_worst_case(tmp_path):
+    bench = make_bench(tmp_path)
+    plan = make_plan(tmp_path, "laser_a_dbm = 8.0\nlaser_b_dbm = 8.0\n" + POWERS)
+    wc = safety.worst_case(plan, bench)
+    assert wc.path_dbm == pytest.approx({"a": 5.0, "b": 4.4})
+    assert safety.check_caps(plan, bench) == []
+
+
+def test_worst_case_with_amplifier(tmp_path):
+    bench = make_bench(tmp_path, amplifier=20.0, amp_loss=0.5)
+    plan = make_plan(tmp_path, POWERS, head=BASE_PLAN.replace(
+        'spool = "HNLF-A17"', 'spool = "HNLF-A17"\namplifier = true'))
+    wc = safety.worst_case(plan, bench)
+    amp = _dbm_sum(4.0, 4.0) + 0.5  # total launched + amplifier_loss_db
+    assert wc.source_dbm["amplifier"] == pytest.approx(amp)
+    # the whole amplifier output could sit in one tone
+    assert wc.path_dbm == pytest.approx({"a": amp - 0.5, "b": amp - 0.5})
+    assert wc.total_dbm == pytest.approx(amp - 0.5)
+    assert wc.amplifier
+
+
+def test_instrument_settings_realise_launched_power_at_fixed_laser(tmp_path):
+    bench = make_bench(tmp_path, loss_a=3.0, loss_b=3.6)
+    plan = make_plan(tmp_path, POWERS)
+    got = [safety.instrument_settings(p.setpoint, bench) for p in plan.points()]
+    assert {g.laser_a_dbm for g in got} == {10.0} and {g.laser_b_dbm for g in got} == {10.0}
+    for p, g in zip(plan.points(), got, strict=True):
+        # launched = laser - attenuation - path loss (DEVELOPERS.md, "Bench files")
+        assert g.laser_a_dbm - g.attenuation_a_db - 3.0 == pytest.approx(p.setpoint["power_a_dbm"])
+        assert g.laser_b_dbm - g.attenuation_b_db - 3.6 == pytest.approx(p.setpoint["power_b_dbm"])
+        assert g.amplifier_dbm is None
+    assert [g.attenuation_a_db for g in got] == [7.0, 5.0, 3.0]
+
+
+def test_instrument_settings_with_amplifier_sets_ratio_and_total(tmp_path):
+    bench = make_bench(tmp_path, amplifier=20.0, amp_loss=0.5)
+    plan = make_plan(tmp_path, "ratio_db = -2.0\n[axes.total_power_dbm]\nvalues = [10.0, 14.0]\n",
+                     head=BASE_PLAN.replace('spool = "HNLF-A17"',
+                                            'spool = "HNLF-A17"\namplifier = true'))
+    for p in plan.points():
+        g = safety.instrument_settings(p.setpoint, bench)
+        into_a = g.laser_a_dbm - g.attenuation_a_db - 3.0
+        into_b = g.laser_b_dbm - g.attenuation_b_db - 3.6
+        assert into_b - into_a == pytest.approx(-2.0, abs=1e-3)  # tone ratio into the amplifier
+        assert g.amplifier_dbm == pytest.approx(
+            _dbm_sum(p.setpoint["power_a_dbm"], p.setpoint["power_b_dbm"]) + 0.5, abs=1e-3)
+    assert safety.check_caps(plan, bench) == []
+
+
+def test_unreachable_power_is_refused(tmp_path):
+    bench = make_bench(tmp_path, cap_a=10.0, loss_a=3.0)
+    plan = make_plan(tmp_path, "power_b_dbm = 0.0\n[axes.power_a_dbm]\nvalues = [5.0, 8.0]\n")
+    with pytest.raises(SafetyError):
+        safety.instrument_settings(plan.points()[1].setpoint, bench)
+    violations = safety.check_caps(plan, bench)
+    assert len(violations) == 1 and violations[0].point == 1
+    assert "needs laser_a at 11.00 dBm" in str(violations[0])
+
+
+def test_cap_violations(tmp_path):
+    # bench total cap below the worst case
+    bench = make_bench(tmp_path, total=8.0)
+    plan = make_plan(tmp_path, POWERS)
+    v = safety.check_caps(plan, bench)
+    assert [x.field for x in v] == ["max_total_launched_dbm"]
+    assert v[0].kind == "cap" and v[0].limit == 8.0 and v[0].value > 8.0
+    # a pinned laser level above the source's cap
+    bench = make_bench(tmp_path, name="b2.toml", cap_a=6.0)
+    plan = make_plan(tmp_path, "laser_a_dbm = 9.0\n" + POWERS, name="p2.toml")
+    v = safety.check_caps(plan, bench)
+    assert any(x.kind == "cap" and x.role == "laser_a" and x.limit == 6.0 for x in v)
+    with pytest.raises(SafetyError):
+        safety.instrument_settings(plan.points()[0].setpoint, bench)
+
+
+def test_profile_ranges_and_missing_roles(tmp_path):
+    bench = make_bench(tmp_path)
+    head = BASE_PLAN.replace("1550.0", "1480.0")  # generic laser tunes 1500-1630 nm
+    plan = make_plan(tmp_path, "pol_angles_deg = [0.0, 400.0, 0.0]\n" + POWERS, head=head)
+    v = safety.check_caps(plan, bench)
+    fields = {(x.role, x.field) for x in v}
+    assert ("laser_a", "set_wavelength_nm") in fields
+    assert ("pol_controller", "set_angle_deg") in fields
+    assert all(x.kind == "range" for x in v)
+    bench = make_bench(tmp_path, name="b2.toml", drop=("attenuator_b",))
+    v = safety.check_caps(make_plan(tmp_path, POWERS, name="p2.toml"), bench)
+    assert [(x.kind, x.role) for x in v] == [("bench", "attenuator_b")]
+
+
+def test_input_capture_needs_a_switch(tmp_path):
+    plan = make_plan(tmp_path, POWERS + "[osa]\ncapture_input = true\n")
+    assert [x.role for x in safety.check_caps(plan, make_bench(tmp_path))] == ["switch"]
+    assert safety.check_caps(plan, make_bench(tmp_path, name="s.toml", switch=True)) == []
+
+
+@pytest.mark.parametrize(("mw", "expected"), [
+    # Limits from memory (advisory only; consult IEC 60825-1 and your laser safety officer):
+    # Class 1 <= 10 mW, 3R <= 50 mW (5 x Class 1), 3B <= 500 mW, Class 4 above, CW 1.4-1.7 um.
+    (1.0, "Class 1"), (9.99, "Class 1"), (10.0, "Class 1"), (10.01, "Class 3R"),
+    (49.9, "Class 3R"), (50.1, "Class 3B"), (499.0, "Class 3B"), (501.0, "Class 4"),
+    (2000.0, "Class 4"),
+])
+def test_hazard_class_boundaries(mw, expected):
+    assert safety.hazard_class(10 * math.log10(mw), 1550.0) == expected
+
+
+def test_hazard_class_outside_band_is_not_assessed():
+    assert safety.hazard_class(0.0, 1064.0).startswith("not assessed")
+    assert "from memory" in safety.HAZARD_NOTE and "laser safety officer" in safety.HAZARD_NOTE
+
+
+def test_cautions_text():
+    text = safety.CAUTIONS.lower()
+    for phrase in ("eye", "skin", "invisible", "never look into a fibre end", "connector",
+                   "cap every unused connector", "eyewear", "laser safety officer", "local rules"):
+        assert phrase in text
