@@ -1,0 +1,125 @@
+"""Crash and resume: SIGKILL a ``labrun run`` process mid-sweep, then ``labrun resume``.
+
+The resumed run must hold exactly the plan's point set (Plan.points() keys), each once, with
+every point complete; resume refuses a changed plan file or different instruments unless forced.
+"""
+
+from __future__ import annotations
+
+import json
+import signal
+
+import pytest
+from _engine_support import (
+    OPERATOR,
+    count_points,
+    dark,
+    labrun_process,
+    long_powers,
+    scenario,
+    wait_for,
+    write_bench,
+    write_plan,
+)
+from sqlalchemy import func, select
+
+from labrun.cli import main
+from labrun.plan import load_plan
+from labrun.store import Point, open_store
+
+N_POINTS = 300
+
+
+def _kill_mid_run(tmp_path, lab):
+    """Start a run in another process, SIGKILL it after a few points; (plan, bench, db, id)."""
+    plan = write_plan(tmp_path, long_powers(N_POINTS))
+    bench = write_bench(lab, tmp_path)
+    db = tmp_path / "runs.db"
+    proc = labrun_process("run", str(plan), "--bench", str(bench), "--db", str(db),
+                          "--unattended", "--operator", OPERATOR, "--ack-safety",
+                          "--no-progress", cwd=tmp_path)
+    try:
+        assert wait_for(lambda: count_points(db) >= 5, 60) is not None
+        proc.send_signal(signal.SIGKILL)
+        proc.wait(timeout=30)
+    finally:
+        if proc.poll() is None:
+            proc.kill()
+    assert proc.returncode == -signal.SIGKILL
+    store = open_store(db)
+    run_id = store.latest_run_id()
+    run = store.get_run(run_id)
+    assert run.status == "running"  # nobody could record the crash
+    done = store.count_points(run_id)
+    assert 5 <= done < N_POINTS
+    store.close()
+    return plan, bench, db, run_id
+
+
+def test_sigkill_then_resume_gives_the_full_point_set(tmp_path, capsys):
+    from labrun.vlab.lab import VirtualLab
+
+    with VirtualLab(scenario()) as lab:
+        plan, bench, db, run_id = _kill_mid_run(tmp_path, lab)
+        # A killed process cannot switch anything off: 'labrun off' is the remedy.
+        assert main(["off", "--bench", str(bench)]) == 0 and dark(lab)
+        capsys.readouterr()
+        assert main(["resume", str(run_id), "--db", str(db), "--json", "--no-progress"]) == 0
+        rep = json.loads(capsys.readouterr().out)
+        assert rep["status"] == "completed" and rep["points_done"] == N_POINTS
+        assert dark(lab)
+    store = open_store(db)
+    with store.session() as s:
+        keys = s.scalars(select(Point.key).where(Point.run_id == run_id)).all()
+        n_rows = s.scalar(select(func.count(Point.id)))
+        incomplete = [p.key for p in s.scalars(select(Point))
+                      if len(p.traces) != 1 or len(p.lines) != 6]
+    expected = [p.key for p in load_plan(plan).points()]
+    assert n_rows == len(keys) == len(set(keys)) == len(expected)  # no duplicates
+    assert set(keys) == set(expected)  # nothing lost
+    assert incomplete == []
+    kinds = [e.kind for e in store.events(run_id)]
+    assert "resume" in kinds and kinds[-1] == "completed"
+
+
+def test_resume_refuses_a_changed_plan_and_other_instruments(tmp_path, capsys):
+    from labrun.vlab.lab import VirtualLab
+
+    with VirtualLab(scenario()) as lab:
+        plan, bench, db, run_id = _kill_mid_run(tmp_path, lab)
+        done = count_points(db)
+        original = plan.read_text()
+        plan.write_text(original.replace("engine test sweep", "edited sweep"))
+        assert main(["resume", str(run_id), "--db", str(db), "--no-progress"]) == 1
+        assert "changed" in capsys.readouterr().err
+        plan.write_text(original)
+    other = scenario()
+    other["instruments"]["osa"]["idn"] = "LABRUN-VLAB,VOSA-2000,VL0399,1.0"  # another OSA
+    with VirtualLab(other) as lab2:
+        (tmp_path / "b2").mkdir()
+        bench2 = write_bench(lab2, tmp_path / "b2")
+        assert main(["resume", str(run_id), "--db", str(db), "--bench", str(bench2),
+                     "--no-progress"]) == 1
+        err = capsys.readouterr().err
+        assert "instruments differ" in err and "VL0399" in err
+        assert count_points(db) == done and dark(lab2)
+        assert main(["resume", str(run_id), "--db", str(db), "--bench", str(bench2),
+                     "--force", "--no-progress"]) == 0
+        assert count_points(db) == N_POINTS and dark(lab2)
+    store = open_store(db)
+    assert store.events(run_id, ["forced"])
+
+
+def test_resume_of_a_finished_run_is_an_input_error(tmp_path, capsys):
+    from labrun.vlab.lab import VirtualLab
+
+    with VirtualLab(scenario()) as lab:
+        plan = write_plan(tmp_path, [0.0, 1.0])
+        bench = write_bench(lab, tmp_path)
+        db = tmp_path / "r.db"
+        assert main(["run", str(plan), "--bench", str(bench), "--db", str(db), "--unattended",
+                     "--operator", OPERATOR, "--ack-safety", "--no-progress"]) == 0
+        assert main(["resume", "1", "--db", str(db)]) == 2
+        assert "already completed" in capsys.readouterr().err
+        with pytest.raises(SystemExit):
+            main(["resume", "x", "--db", str(db)])
