@@ -339,7 +339,7 @@ def test_two_clients_on_one_port(rm, lab):
 
 
 def test_drop_connections_then_reconnect(rm, lab):
-    inst = open_role(rm, lab, "power_meter", timeout_ms=500)
+    inst = open_role(rm, lab, "power_meter", timeout_ms=200)
     assert inst.query("*IDN?")
     assert lab.drop_connections("power_meter") == 1
     with pytest.raises((VisaIOError, ConnectionError, OSError)):

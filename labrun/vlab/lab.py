@@ -91,8 +91,13 @@ class VirtualLab:
         self._close_servers()
 
     def _close_servers(self) -> None:
-        for server in self.servers.values():
-            server.stop()
+        """Stop every server in parallel (each waits up to one poll interval) and join them."""
+        stoppers = [threading.Thread(target=server.stop, name=f"vlab-stop-{role}")
+                    for role, server in self.servers.items()]
+        for thread in stoppers:
+            thread.start()
+        for thread in stoppers:
+            thread.join()
         self.servers.clear()
 
     def __enter__(self) -> VirtualLab:

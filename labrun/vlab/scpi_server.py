@@ -573,7 +573,7 @@ class _TcpServer(socketserver.ThreadingTCPServer):
         reply = inst.execute(line.decode("latin-1"))
         if decision.spurious:
             with inst.lab.lock:
-                inst.push_error(*decision.spurious)
+                inst.push_error(decision.spurious[0])
         if reply is not None:
             if decision.garble:
                 reply = inst.faults.garble(reply)
