@@ -67,6 +67,19 @@ def test_trace_is_float32_bytes_and_linear_x_is_three_numbers(store):
         np.testing.assert_allclose(tr.y(), y, rtol=2**-23)
 
 
+def test_float32_linear_x_is_a_grid(store):
+    """A float32 x axis (REAL,32 block) of a linear grid is rebuilt within one float32 ulp."""
+    run_id = _run(store)
+    x32 = np.linspace(1548.5, 1551.6, 20001).astype(np.float32)
+    store.add_point(run_id, key="p0", index=0, setpoint={}, traces=[TraceData(x32, x32 * 0)],
+                    lines=[])
+    with store.session() as s:
+        tr = s.scalars(select(Trace)).one()
+        assert tr.x_data is None
+        # one ulp of IEEE 754 binary32 near 1551.6 is 2**-13 (numpy.spacing as the reference)
+        assert np.max(np.abs(tr.x() - x32.astype(float))) <= np.spacing(np.float32(1551.6))
+
+
 def test_irregular_x_kept_exactly(store):
     run_id = _run(store)
     x = np.sort(np.random.default_rng(2).uniform(1540.0, 1560.0, 101))

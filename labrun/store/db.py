@@ -68,8 +68,13 @@ def _sqlite_pragmas(dbapi_conn: Any, _record: Any) -> None:
 
 
 def encode_x(x: np.ndarray) -> tuple[float, float, int, bytes | None]:
-    """(start, stop, n, blob): blob is None when x is a linear grid (then 3 numbers rebuild it)."""
-    xs = np.asarray(x, dtype=np.float64)
+    """(start, stop, n, blob): blob is None when x is a linear grid (then 3 numbers rebuild it).
+
+    An OSA x axis is a linear grid set by centre, span and points; when it arrives as float32,
+    its values sit within float32 rounding of that grid, which counts as linear too.
+    """
+    raw = np.asarray(x)
+    xs = raw.astype(np.float64)
     n = int(xs.size)
     if n == 0:
         return 0.0, 0.0, 0, None
@@ -77,7 +82,10 @@ def encode_x(x: np.ndarray) -> tuple[float, float, int, bytes | None]:
     if n > 1:
         grid = np.linspace(start, stop, n)
         step = abs(stop - start) / (n - 1)
-        if step > 0 and np.max(np.abs(xs - grid)) <= 1e-6 * step:
+        tol = 1e-6 * step
+        if raw.dtype == np.float32:  # within one float32 ulp: what was received, rebuilt
+            tol = max(tol, float(np.finfo(np.float32).eps) * float(np.max(np.abs(xs))))
+        if step > 0 and np.max(np.abs(xs - grid)) <= tol:
             return start, stop, n, None
     return start, stop, n, xs.astype("<f8").tobytes()
 
