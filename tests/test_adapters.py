@@ -284,3 +284,17 @@ def test_real32_trace_and_safe_off_against_virtual_lab(tmp_path):
             assert ins.safe_off_all() == []
         assert lab.sources_off()
         assert "<block 8004 bytes>" in [e.reply for e in transcript.entries]
+
+
+def test_block_osa_falls_back_to_ascii_when_refused(inst_sim_bench_path):
+    """The REAL,32 profile on an OSA that refuses FORM:DATA REAL,32 (pyvisa-sim) reads ASCII."""
+    text = inst_sim_bench_path.read_text().replace('"generic-osa-ascii"', '"generic-osa"')
+    inst_sim_bench_path.write_text(text)
+    bench = load_bench(inst_sim_bench_path)
+    assert bench.instruments["osa"].profile.trace.format == "real32"
+    transcript = Transcript()
+    with open_bench(bench, transcript=transcript, roles=["osa"]) as ins:
+        x, y = ins["osa"].read_trace()
+        assert x.size == y.size == 101
+    sent = [e.text for e in transcript.writes("osa")]
+    assert sent[-2:] == ["FORM:DATA REAL,32", "FORM:DATA ASC"]

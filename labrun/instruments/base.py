@@ -7,6 +7,7 @@ the bench's settle_scale) and verifies by read-back where the profile names one.
 
 from __future__ import annotations
 
+import logging
 import math
 import time
 from typing import Any
@@ -16,7 +17,9 @@ import numpy as np
 from labrun.bench import InstrumentSpec
 from labrun.errors import InputError, InstrumentError, SafetyError
 from labrun.profiles import Operation, Profile
-from labrun.scpi import Idn, ScpiSession, parse_idn
+from labrun.scpi import Idn, ScpiError, ScpiSession, parse_idn
+
+log = logging.getLogger("labrun.instruments")
 
 FLOAT_SLACK = 1e-9  # absorbs binary round-off when comparing against ranges and tolerances
 TRUE_WORDS = {"1", "+1", "ON", "TRUE"}
@@ -62,7 +65,7 @@ class Adapter:
         self.session = session
         self.settle_scale = settle_scale
         self._idn: Idn | None = None
-        self._trace_format_sent = False
+        self._trace_format: str | None = None
 
     # -- life cycle -------------------------------------------------------------------------
 
@@ -151,21 +154,35 @@ class Adapter:
             raise self._instrument_error(str(exc)) from None
 
     def _read_trace_values(self, query: str) -> np.ndarray:
-        """Read one trace array in the profile's transfer format (block or ASCII)."""
+        """Read one trace array in the profile's transfer format (block, or ASCII fallback)."""
+        if self._trace_format is None:
+            self._trace_format = self._select_trace_format()
+        if self._trace_format == "real32":
+            assert self.profile.trace is not None
+            return self.session.query_block_real32(query, self.profile.trace.byte_order)
+        return self.session.query_ascii_floats(query)
+
+    def _select_trace_format(self) -> str:
+        """Send the profile's transfer-format commands once; fall back to ASCII if REAL,32 is
+        refused by the instrument's error queue and the profile names an ASCII command."""
         trace = self.profile.trace
         if trace is None:
             raise InputError("profile has no [trace] table", file=str(self.profile.path),
                              field="trace")
-        if not self._trace_format_sent:
-            commands = ([trace.format_command, trace.byte_order_command]
-                        if trace.format == "real32" else [trace.ascii_command])
-            for cmd in commands:
-                if cmd:
-                    self.session.write(cmd)
-            self._trace_format_sent = True
         if trace.format == "real32":
-            return self.session.query_block_real32(query, trace.byte_order)
-        return self.session.query_ascii_floats(query)
+            try:
+                for cmd in (trace.format_command, trace.byte_order_command):
+                    if cmd:
+                        self.session.write(cmd)
+                return "real32"
+            except ScpiError as exc:
+                if not trace.ascii_command:
+                    raise
+                log.warning("%s: block transfer refused (%s); falling back to ASCII traces",
+                            self.role, exc)
+        if trace.ascii_command:
+            self.session.write(trace.ascii_command)
+        return "ascii"
 
     def apply(self, name: str, value: float | None = None, *, index: int | None = None,
               values: dict[str, float] | None = None, cap: float | None = None,
