@@ -18,7 +18,6 @@ from pathlib import Path
 import numpy as np
 
 from labrun.errors import InputError
-from labrun.vlab.scenario import load_scenario
 
 SPECTRUM_MODELS = ("auto", "bessel", "nlse")
 
@@ -70,6 +69,7 @@ def register(subparsers: argparse._SubParsersAction) -> None:
 def run_serve(args: argparse.Namespace) -> int:
     """Serve the scenario's instruments until Ctrl-C or SIGTERM; exit 0 with sources off."""
     from labrun.vlab.lab import VirtualLab, is_loopback
+    from labrun.vlab.scenario import load_scenario
 
     scenario = load_scenario(args.scenario)
     if not math.isfinite(args.time_scale) or args.time_scale < 0:
@@ -132,6 +132,7 @@ def _copolar(pol_angle_deg: float) -> float:
 def run_spectrum(args: argparse.Namespace) -> int:
     """Print (or write) the spool-output spectrum for the given launch."""
     from labrun.physics.spool import output_lines
+    from labrun.vlab.scenario import load_scenario
 
     scenario = load_scenario(args.scenario)
     try:

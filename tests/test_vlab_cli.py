@@ -1,0 +1,176 @@
+"""``labrun sim spectrum`` and ``labrun sim serve``, and the shipped scenario.
+
+External references: scipy.special.jv for the Bessel two-tone model (DESIGN.md 4.1, Thompson and
+Roy, Phys. Rev. A 43, 4987 (1991)); ITU-T G.652 for the standard-fibre-like spool.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import signal
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import numpy as np
+import pytest
+from scipy.special import jv
+
+from labrun.bench import load_bench
+from labrun.cli import main
+from labrun.errors import InputError
+from labrun.tracefile import read_trace_csv
+from labrun.vlab.scenario import load_scenario
+
+REPO = Path(__file__).resolve().parents[1]
+DEFAULT = REPO / "sim_instruments" / "default-scenario.toml"
+
+FLAT_SCENARIO = """
+connected = "FLAT-Z1"
+[[spools]]
+name = "FLAT-Z1"             # invented dispersion-free spool
+length_km = 2.0
+loss_db_per_km = 0.5
+gamma_per_w_per_km = 10.0
+dispersion_ps_per_nm_km = 0.0
+dispersion_slope_ps_per_nm2_km = 0.0
+reference_wavelength_nm = 1550.0
+"""
+
+
+def run_cli(capsys, *argv: str) -> tuple[int, str, str]:
+    code = main(list(argv))
+    out, err = capsys.readouterr()
+    return code, out, err
+
+
+@pytest.mark.parametrize("pol_deg", [0.0, 40.0])
+def test_spectrum_json_matches_independent_bessel_calculation(tmp_path, capsys, pol_deg):
+    scenario = tmp_path / "flat.toml"
+    scenario.write_text(FLAT_SCENARIO)
+    pa_dbm, pb_dbm = 17.0, 15.0
+    code, out, _ = run_cli(capsys, "sim", "spectrum", "--scenario", str(scenario), "--spool",
+                           "FLAT-Z1", "--power-a-dbm", str(pa_dbm), "--power-b-dbm", str(pb_dbm),
+                           "--wavelength-a-nm", "1550", "--spacing-ghz", "50", "--orders", "3",
+                           "--pol-angle-deg", str(pol_deg), "--json")
+    assert code == 0
+    lines = json.loads(out)["lines"]
+    assert len(lines) == 8
+    # Independent: P_k = T [Pa J_k(m)^2 + Pb J_(k-1)(m)^2] (DESIGN.md 4.1) with scipy.special.jv,
+    # m = 2 gamma L_eff sqrt(Pa Pb) cos(Theta/2) (4.4: the index scales with cos(Theta/2),
+    # Theta = 2 x the angle between linear polarisations, so cos^2(Theta/2) = cos^2(angle)).
+    alpha = 0.5 * np.log(10) / 10
+    l_eff = (1 - np.exp(-alpha * 2.0)) / alpha          # Agrawal, Nonlinear Fiber Optics
+    t = np.exp(-alpha * 2.0)
+    pa, pb = 10 ** (pa_dbm / 10) * 1e-3, 10 ** (pb_dbm / 10) * 1e-3
+    c2 = np.cos(np.radians(pol_deg)) ** 2
+    m = 2 * 10.0 * l_eff * np.sqrt(pa * pb) * np.sqrt(c2)
+    c = 299_792_458.0
+    f_a = c / 1550e-9 * 1e-12
+    for line in lines:
+        k = {("tone", "low"): 0, ("tone", "high"): 1}.get((line["kind"], line["side"]))
+        if k is None:
+            k = -line["order"] if line["side"] == "low" else line["order"] + 1
+        p_k = t * (pa * jv(k, m) ** 2 + pb * jv(k - 1, m) ** 2)
+        expect = 10 * np.log10(p_k * 1e3)
+        assert abs(line["power_dbm"] - expect) < 0.01, (line, expect)
+        assert abs(line["freq_thz"] - (f_a + k * 0.05)) < 1e-9
+        assert abs(line["wavelength_nm"] - c / (line["freq_thz"] * 1e12) * 1e9) < 1e-9
+        assert set(line) == {"kind", "side", "order", "freq_thz", "wavelength_nm", "power_dbm"}
+
+
+def test_spectrum_out_writes_a_readable_trace(tmp_path, capsys):
+    out = tmp_path / "trace.csv"
+    code, text, _ = run_cli(capsys, "sim", "spectrum", "--scenario", str(DEFAULT), "--spool",
+                            "HNLF-A17", "--power-a-dbm", "10", "--power-b-dbm", "10",
+                            "--wavelength-a-nm", "1550", "--spacing-ghz", "100", "--out",
+                            str(out), "--rbw-nm", "0.02")
+    assert code == 0 and "high 1" in text
+    assert out.read_text().splitlines()[0].startswith("# ")
+    trace = read_trace_csv(out)
+    assert trace.x_unit == "nm" and trace.rbw_nm == 0.02
+    assert trace.metadata["spool"] == "HNLF-A17"
+    # tone a at 1550 nm: 10 dBm launched - 0.9 dB spool - 0.5 dB to the OSA, at the peak
+    near = np.abs(trace.x - 1550.0) < 0.05
+    assert abs(trace.y_dbm[near].max() - 8.6) < 0.3
+
+
+@pytest.mark.parametrize("argv, field", [
+    (["--spool", "NOPE"], "--spool"),
+    (["--spacing-ghz", "-5"], "--spacing-ghz"),
+    (["--wavelength-a-nm", "900"], "--wavelength-a-nm"),
+    (["--scenario", "missing.toml"], "missing.toml"),
+])
+def test_spectrum_bad_input_is_one_line_exit_2(capsys, argv, field):
+    base = {"--scenario": str(DEFAULT), "--spool": "SMF-B02", "--power-a-dbm": "5",
+            "--power-b-dbm": "5", "--wavelength-a-nm": "1550", "--spacing-ghz": "50"}
+    base.update(dict(zip(argv[::2], argv[1::2], strict=True)))
+    args = ["sim", "spectrum", *[x for kv in base.items() for x in kv]]
+    code, out, err = run_cli(capsys, *args)
+    assert code == 2 and out == ""
+    assert len(err.strip().splitlines()) == 1 and field in err
+
+
+def test_scenario_errors_name_file_and_field(tmp_path):
+    bad = tmp_path / "bad.toml"
+    bad.write_text(FLAT_SCENARIO.replace("length_km = 2.0", "length_km = -2.0"))
+    with pytest.raises(InputError) as err:
+        load_scenario(bad)
+    assert str(bad) in str(err.value) and "spools[0].length_km" in str(err.value)
+    bad.write_text(FLAT_SCENARIO.replace('connected = "FLAT-Z1"', 'connected = "FLAT-Z9"'))
+    with pytest.raises(InputError, match="connected"):
+        load_scenario(bad)
+    bad.write_text(FLAT_SCENARIO + "\n[instruments.laser_c]\nport = 5\n")
+    with pytest.raises(InputError, match="instruments.laser_c"):
+        load_scenario(bad)
+    bad.write_text(FLAT_SCENARIO + "\n[faults]\ntimeout_probability = 1.5\n")
+    with pytest.raises(InputError, match="faults.timeout_probability"):
+        load_scenario(bad)
+
+
+def test_shipped_scenario_standard_fibre_follows_g652():
+    """SMF-B02 against ITU-T G.652 (limits from memory): loss <= 0.3 dB/km at 1550 nm; the
+    dispersion D(l) = S0 l/4 [1 - (l0/l)^4] of G.652 fitted through D and dD/dl at 1550 nm gives
+    a zero-dispersion wavelength l0 in 1300-1324 nm and a zero slope S0 <= 0.092 ps/(nm^2 km)."""
+    scenario = load_scenario(DEFAULT)
+    smf = scenario.spool("SMF-B02")
+    assert smf.loss_db_per_km <= 0.3
+    lam = smf.reference_wavelength_nm
+    q = smf.dispersion_ps_per_nm_km / (smf.dispersion_slope_ps_per_nm2_km * lam)
+    r = (1 - q) / (1 + 3 * q)                        # r = (l0/l)^4 from D/(S l) = (1-r)/(1+3r)
+    l0 = lam * r ** 0.25
+    s0 = 4 * smf.dispersion_slope_ps_per_nm2_km / (1 + 3 * r)
+    assert 1300 <= l0 <= 1324 and s0 <= 0.092
+    hnlf = scenario.spool("HNLF-A17")
+    assert hnlf.gamma_per_w_per_km > 5 * smf.gamma_per_w_per_km
+    assert scenario.realism.enabled and not scenario.faults.enabled
+
+
+def test_serve_writes_bench_and_exits_cleanly_on_sigterm(tmp_path):
+    bench_path = tmp_path / "bench.toml"
+    proc = subprocess.Popen(
+        [sys.executable, "-m", "labrun", "sim", "serve", "--scenario", str(DEFAULT),
+         "--bench-out", str(bench_path), "--time-scale", "0"],
+        stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
+        env={**os.environ, "PYTHONUNBUFFERED": "1"})
+    try:
+        lines = []
+        deadline = time.monotonic() + 30
+        while time.monotonic() < deadline:
+            line = proc.stdout.readline()
+            lines.append(line)
+            if line.startswith("virtual lab running") or not line:
+                break
+        assert any(x.startswith("laser_a ") and "TCPIP0::127.0.0.1::" in x for x in lines)
+        bench = load_bench(bench_path)
+        assert bench.settle_scale == 0.0 and "osa" in bench.instruments
+        proc.send_signal(signal.SIGTERM)
+        out, err = proc.communicate(timeout=20)
+    finally:
+        if proc.poll() is None:
+            proc.kill()
+            proc.wait()
+    assert proc.returncode == 0, err
+    assert "sources is off" in out or "source is off" in out
