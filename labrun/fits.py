@@ -141,8 +141,16 @@ def _w(dbm: np.ndarray) -> np.ndarray:
 # Bessel (dual-frequency) model: ratio of first sidebands to tones as a function of m
 
 
+def _dlnr_dm(m: np.ndarray, args: tuple) -> np.ndarray:
+    """d ln R / dm of the Bessel ratio, by central differences."""
+    h = 1e-4 * np.maximum(m, 1e-3)
+    up = np.log(bessel_ratio(m + h, *args))
+    down = np.log(bessel_ratio(np.maximum(m - h, 1e-9), *args))
+    return (up - down) / (2 * h)
+
+
 def _unique_branch(m: np.ndarray, x: np.ndarray, m_star: np.ndarray,
-                   margin: float = 0.9) -> np.ndarray:
+                   margin: float = 0.75) -> np.ndarray:
     """Points whose true m lies below the turning point, so their inversion is the right one.
 
     A ratio alone cannot tell m from its mirror beyond the turning point m*. m grows with
@@ -250,12 +258,13 @@ def fit_gamma_bessel(p_a_w, p_b_w, low1_w, tone_a_w, tone_b_w, high1_w, l_eff_km
     m = m_all[good]
     m_star_used = m_star[good]
     x = x_all[good]
-    h = 1e-4 * np.maximum(m, 1e-3)
     args = (rho[good], use_lo[good], use_hi[good])
-    dlnr = (np.log(bessel_ratio(m + h, *args)) - np.log(bessel_ratio(np.maximum(m - h, 1e-9),
-                                                                       *args))) / (2 * h)
-    w = dlnr**2
-    gamma = float(np.sum(w * x * m) / np.sum(w * x * x))
+    # Weighted regression m = gamma x; weights (d ln R/dm)^2 at the model's m (iterated), so a
+    # noisy m near the turning point does not choose its own weight.
+    gamma = float(np.median(m / x))
+    for _ in range(4):
+        w = _dlnr_dm(np.minimum(gamma * x, 0.999 * m_star[good]), args) ** 2
+        gamma = float(np.sum(w * x * m) / np.sum(w * x * x))
     resid = m - gamma * x
     n = m.size
     s2 = float(np.sum(w * resid**2) / max(n - 1, 1))
