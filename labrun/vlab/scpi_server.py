@@ -594,7 +594,10 @@ class InstrumentServer:
     @property
     def resource(self) -> str:
         """VISA resource string of this instrument."""
-        return f"TCPIP0::{self.host}::{self.port}::SOCKET"
+        host = self.host
+        if host in ("0.0.0.0", "::", ""):  # bound to every interface: reach it on loopback
+            host = "127.0.0.1"
+        return f"TCPIP0::{host}::{self.port}::SOCKET"
 
     def start(self) -> None:
         """Start accepting clients."""

@@ -1,0 +1,82 @@
+"""The virtual lab's optics (launched powers, amplifier, shutters) and the probe against it.
+
+Launched power per tone follows DEVELOPERS.md "Bench files": P_laser - attenuation - path loss,
+or with an amplifier P_amp - amplifier_loss_db shared in the ratio the tones enter it.
+dBm <-> mW is common practice (P[mW] = 10^(P[dBm]/10)).
+"""
+
+from __future__ import annotations
+
+import json
+import tomllib
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from labrun.cli import main
+from labrun.vlab import VirtualLab
+from labrun.vlab.scenario import parse_scenario
+from labrun.vlab.state import LabState
+
+REPO = Path(__file__).resolve().parents[1]
+DEFAULT = REPO / "sim_instruments" / "default-scenario.toml"
+
+
+def quiet(amplifier: bool = False) -> LabState:
+    data = tomllib.loads(DEFAULT.read_text())
+    data["realism"] = {"enabled": False}
+    data["instruments"]["amplifier"]["present"] = amplifier
+    state = LabState(parse_scenario(data))
+    for role, wl, p in (("laser_a", 1550.0, 6.0), ("laser_b", 1549.2, 3.0)):
+        laser = state.lasers[role]
+        laser.wavelength_nm, laser.power_dbm, laser.output = wl, p, True
+    for name, att in state.attenuators.items():
+        att.attenuation_db, att.output = (1.0 if name.endswith("a") else 2.0), True
+    return state
+
+
+def mw(dbm: float) -> float:
+    return 10 ** (dbm / 10)
+
+
+def test_launched_powers_follow_the_bench_calibration():
+    state = quiet()
+    cal = state.scenario.bench
+    tones = dict(state.launched().tones)
+    assert tones[1550.0] == pytest.approx(6.0 - 1.0 - cal.path_loss_a_db)
+    assert tones[1549.2] == pytest.approx(3.0 - 2.0 - cal.path_loss_b_db)
+    state.attenuators["attenuator_b"].output = False         # shutter closed: tone b gone
+    assert list(dict(state.launched().tones)) == [1550.0]
+    state.lasers["laser_a"].output = False
+    assert state.launched().tones == ()
+    assert not state.sources_off()                            # laser b still emits
+    state.lasers["laser_b"].output = False
+    assert state.sources_off()
+
+
+def test_amplifier_sets_the_total_and_keeps_the_input_ratio():
+    state = quiet(amplifier=True)
+    cal = state.scenario.bench
+    assert state.launched().tones == ()                       # amplifier present but off
+    state.amplifier.power_dbm, state.amplifier.output = 15.0, True
+    tones = dict(state.launched().tones)
+    total = mw(tones[1550.0]) + mw(tones[1549.2])
+    assert 10 * np.log10(total) == pytest.approx(15.0 - cal.amplifier_loss_db)
+    ratio_in = mw(6.0 - 1.0 - cal.path_loss_a_db) / mw(3.0 - 2.0 - cal.path_loss_b_db)
+    assert mw(tones[1550.0]) / mw(tones[1549.2]) == pytest.approx(ratio_in)
+    assert state.launched().ase_dbm_per_nm is not None
+    state.set_interlock(False)
+    assert state.sources_off() and state.launched().tones == ()
+
+
+def test_probe_passes_every_check_against_the_virtual_lab(tmp_path, capsys):
+    """Issue 3 'done when': labrun probe --bench <virtual-lab bench> --json passes every check."""
+    with VirtualLab(DEFAULT) as lab:
+        bench = lab.write_bench(tmp_path / "bench.toml")
+        code = main(["probe", "--bench", str(bench), "--json"])
+        out, _ = capsys.readouterr()
+    report = json.loads(out)
+    failed = [(i["role"], c) for i in report["instruments"] for c in i["checks"] if not c["ok"]]
+    assert code == 0 and report["ok"] and not failed, failed
+    assert {i["role"] for i in report["instruments"]} == set(lab.scenario.present_roles())
