@@ -17,7 +17,7 @@ from labrun.errors import LabrunError
 
 # Command groups, each in its own module (labrun/cli/<name>.py). A module that does not exist yet
 # is skipped so the tree can grow one group at a time.
-COMMAND_MODULES = ("probe", "sim", "analyze", "check", "run", "status", "off")
+COMMAND_MODULES = ("demo", "probe", "sim", "analyze", "check", "run", "status", "off")
 
 
 class _Parser(argparse.ArgumentParser):

@@ -1,0 +1,76 @@
+"""Read-side questions asked of the run store: a run's points as a table, a stored trace.
+
+Sits above the store and below the CLI; returns plain pandas/numpy objects usable in a notebook.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+from sqlalchemy import select
+
+from labrun.errors import InputError
+from labrun.lines import LineId
+from labrun.store import Line, Point, Store, Trace
+
+
+def line_key(kind: str, side: str, order: int) -> str:
+    """Column name of a line power: 'tone_low_0', 'sideband_high_1' (as fits.fit_run expects)."""
+    return f"{kind}_{side}_{order}"
+
+
+def run_points(store: Store, run_id: int, *, include_reference: bool = True) -> pd.DataFrame:
+    """One row per stored point of a run: setpoint columns plus a dBm column per detected line.
+
+    Undetected lines are NaN (their upper limits stay in the lines table). Reference points are
+    flagged in ``is_reference`` so callers can keep them out of fits.
+    """
+    if store.get_run(run_id) is None:
+        raise InputError(f"no run {run_id} in this database", field="RUN_ID")
+    with store.session() as s:
+        points = s.execute(
+            select(Point.id, Point.index, Point.key, Point.is_reference, Point.repeat,
+                   Point.setpoint, Point.floor_dbm).where(Point.run_id == run_id)
+            .order_by(Point.index)).all()
+        lines = s.execute(
+            select(Line.point_id, Line.kind, Line.side, Line.order, Line.power_dbm, Line.detected)
+            .join(Point, Point.id == Line.point_id).where(Point.run_id == run_id)).all()
+    rows: dict[int, dict] = {}
+    for p in points:
+        row = {"point_id": p.id, "index": p.index, "key": p.key, "is_reference": p.is_reference,
+               "repeat": p.repeat, "floor_dbm": p.floor_dbm}
+        row.update(p.setpoint or {})
+        rows[p.id] = row
+    for ln in lines:
+        value = ln.power_dbm if ln.detected and ln.power_dbm is not None else np.nan
+        rows[ln.point_id][line_key(ln.kind, ln.side, ln.order)] = value
+    table = pd.DataFrame(list(rows.values()))
+    if not include_reference and not table.empty:
+        table = table[~table["is_reference"]].reset_index(drop=True)
+    return table
+
+
+def point_trace(store: Store, point_id: int, kind: str = "output") -> tuple[np.ndarray, np.ndarray,
+                                                                            float | None]:
+    """(x, y_dbm, rbw_nm) of a stored trace; x rebuilt from (start, stop, n) on a linear grid."""
+    with store.session() as s:
+        tr = s.execute(select(Trace).where(Trace.point_id == point_id, Trace.kind == kind)
+                       ).scalars().first()
+        if tr is None:
+            raise InputError(f"point {point_id} has no {kind} trace", field="point")
+        if tr.x_data is None:
+            x = np.linspace(tr.x_start, tr.x_stop, tr.n)
+        else:
+            x = np.frombuffer(tr.x_data, dtype="<f8").copy()
+        y = np.frombuffer(tr.y_data, dtype="<f4").astype(np.float64)
+        return x, y, tr.rbw_nm
+
+
+def line_columns(table: pd.DataFrame) -> list[str]:
+    """The line-power columns of a run_points table, in frequency order."""
+    keys = []
+    for col in table.columns:
+        parts = col.split("_")
+        if len(parts) == 3 and parts[0] in ("tone", "sideband") and parts[2].isdigit():
+            keys.append((LineId(parts[0], parts[1], int(parts[2])).k, col))  # type: ignore[arg-type]
+    return [c for _, c in sorted(keys)]
