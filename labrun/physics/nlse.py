@@ -22,6 +22,7 @@ from labrun.lines import grid_ks
 from labrun.physics.fibre import Fibre
 
 MAX_SAMPLES = 8192
+ALIAS_LIMIT = 1e-10  # window doubled while its outer half holds more than this power fraction
 
 
 @dataclass(frozen=True)
@@ -140,9 +141,10 @@ def propagate_spectrum(
 
 
 def _default_samples(p_a_w: float, p_b_w: float, gamma: float, l_eff: float, orders: int) -> int:
-    """Window size: a power of two well beyond the lines the Kerr phase can reach."""
+    """Starting window: a power of two beyond the lines the Kerr phase can reach (the caller
+    doubles it while the outer half of the window holds any power)."""
     phi_max = gamma * l_eff * (np.sqrt(p_a_w) + np.sqrt(p_b_w)) ** 2
-    need = 4 * (2 * orders + 2 + 2 * int(np.ceil(phi_max)) + 12)
+    need = 2 * (2 * orders + 2 + 2 * int(np.ceil(phi_max)) + 12)
     n = 64
     while n < need and n < MAX_SAMPLES:
         n *= 2
@@ -212,7 +214,7 @@ def propagate_tones(
                 c0, spacing_ghz * 1e-3, length, alpha, b2, b3, gamma, rtol=rtol
             )
         alias = _alias_fraction(prop.spectrum)
-        if not auto_n or alias < 1e-14 or n >= MAX_SAMPLES:
+        if not auto_n or alias < ALIAS_LIMIT or n >= MAX_SAMPLES:
             break
         n *= 2
     ks = np.asarray(grid_ks(orders))
