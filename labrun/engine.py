@@ -179,6 +179,7 @@ class Runner:
         self.emitting = False
         self.osa_settings: Any = None
         self.rbw_nm: float | None = None
+        self.trace_x: Any = None
         self.orders = int(getattr(plan, "orders", DEFAULT_ORDERS) or DEFAULT_ORDERS)
         self.stops = StopWatch(getattr(plan, "stop_conditions", []) or [])
         self.show_progress = progress
@@ -204,6 +205,7 @@ class Runner:
         self.close()
         self.instruments = None
         self.applied.clear()
+        self.trace_x = None
         self.emitting = False
         self.open()
 
@@ -291,13 +293,17 @@ class Runner:
         return [r for r in SOURCE_ROLES if r in self.bench.instruments]
 
     def check_emission(self) -> None:
-        """Abort if an interlock is open, or a source's output is not in the expected state."""
+        """Abort if a source's output is not in the expected state, or its interlock is open.
+
+        An open interlock forces emission off, so where a source reports its output state that
+        one query covers both (the interlock is then read to name the reason); the interlock is
+        read on its own only for sources that do not report their output.
+        """
         for role in self.sources():
             adapter = self.role(role)
-            closed = adapter.interlock_closed()
-            if closed is False:
-                raise RunAborted(f"interlock open on {role}")
             state = adapter.output_state()
+            if state is None and adapter.interlock_closed() is False:
+                raise RunAborted(f"interlock open on {role}")
             if state is not None and bool(state) != self.emitting:
                 found = "on" if state else "off"
                 raise RunAborted(f"{role} output found {found} unexpectedly"
@@ -335,9 +341,27 @@ class Runner:
         s = self.osa_settings.for_point(setpoint)
         wanted = (s.center_nm, s.span_nm, s.rbw_nm, int(s.points))
         if self.applied.get(("osa", "configure")) != wanted:
+            self.trace_x = None
             self.role("osa").configure(*wanted)
             self.applied[("osa", "configure")] = wanted
         self.rbw_nm = float(s.rbw_nm)
+
+    def trace_settings(self, setpoint: dict[str, Any]) -> dict[str, Any]:
+        """The OSA settings of this point's trace (the reasons live once in run.settings)."""
+        o = self.osa_settings.for_point(setpoint)
+        return {"center_nm": o.center_nm, "span_nm": o.span_nm, "rbw_nm": o.rbw_nm,
+                "points": o.points}
+
+    def read_trace(self, osa: Any) -> tuple[Any, Any]:
+        """(x, y) of the last sweep; x is read once per OSA configuration (it is fixed by
+        centre, span and points), then only y travels, halving the transfer per point."""
+        if self.trace_x is not None:
+            y = osa.read("read_trace_y")
+            if y.size == self.trace_x.size:
+                return self.trace_x, y
+        x, y = osa.read_trace()
+        self.trace_x = x
+        return x, y
 
     # ---- one point ---------------------------------------------------------------------------
     def measure(self, spec: Any) -> tuple[Any, Any, Any, int]:
@@ -355,7 +379,7 @@ class Runner:
                 self.wait_until(self.apply(settings))
                 osa = self.role("osa")
                 osa.sweep()
-                x, y = osa.read_trace()
+                x, y = self.read_trace(osa)
                 self.check_emission()
                 break
             except InstrumentError as exc:
@@ -391,8 +415,7 @@ class Runner:
             repeat=int(getattr(spec, "repeat", 0) or 0),
             is_reference=bool(getattr(spec, "is_reference", False)),
             traces=[TraceData(x, y, rbw_nm=self.rbw_nm,
-                              settings=_jsonable(self.osa_settings.for_point(
-                              spec.setpoint).to_dict()))],
+                              settings=self.trace_settings(spec.setpoint))],
             lines=lines, applied=_jsonable(applied),
             spacing_ghz=getattr(red, "spacing_ghz", None),
             floor_dbm=getattr(red, "floor_dbm", None),
