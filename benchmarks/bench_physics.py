@@ -7,6 +7,7 @@ Run: python benchmarks/bench_physics.py
 
 from __future__ import annotations
 
+import os
 import time
 from collections.abc import Callable
 
@@ -108,6 +109,8 @@ def bench_osa() -> None:
 
 
 if __name__ == "__main__":
+    load = os.getloadavg()[0] if hasattr(os, "getloadavg") else float("nan")
+    print(f"{os.cpu_count()} CPUs, load average {load:.2f} (figures are best of 7 runs)")
     bench_split_step()
     bench_spool_accuracy()
     bench_output_lines()
