@@ -38,6 +38,8 @@ def plot_trace(path: str | Path, x: np.ndarray, y_dbm: np.ndarray, reduction: Re
                         color="tab:gray")
     if reduction.floor_dbm is not None:
         ax.axhline(reduction.floor_dbm, ls=":", lw=0.8, color="tab:green", label="floor")
+    top = max([float(np.max(y_dbm))] + [ln.power_dbm or -np.inf for ln in reduction.lines])
+    ax.set_ylim(top=top + 10.0)  # room for the labels above the tallest line
     ax.set_xlabel("wavelength (nm)" if x_unit == "nm" else "frequency (THz)")
     ax.set_ylabel("power (dBm per RBW)")
     spacing = f"{reduction.spacing_ghz:.2f} GHz" if reduction.spacing_ghz else "n/a"

@@ -10,7 +10,7 @@ Method, in order:
    for a Gaussian RBW filter, whose log is a parabola), and measure the spacing;
 3. place the grid ``f_a + k*delta`` for the orders asked and take the maximum of each line in a
    tolerance window around its grid position;
-4. estimate the noise floor in each gap between grid positions, keeping 2 RBW away from lines,
+4. estimate the noise floor in each gap between grid positions, keeping 3 RBW away from lines,
    and interpolate it to each line (left and right gaps averaged in linear units: the
    interpolation idea of IEC 61280-2-9 for OSNR);
 5. a line whose peak is less than ``threshold_db`` above its floor is not detected and carries an
@@ -47,7 +47,7 @@ FLAG_SPAN = "span_too_narrow"
 
 _C_NM_THZ = C_M_PER_S * 1e-3  # f[THz] * lambda[nm] = c * 1e-3
 _PLATEAU_DB = 0.02  # samples within this of the maximum count as a flat (clipped) top
-_GUARD_RBW = 2.0  # floor windows stay this many RBW away from any grid line
+_GUARD_RBW = 3.0  # floor windows stay this many RBW away from any grid line (Gaussian: -108 dB)
 _FIT_HALF_RBW = 0.6  # peak parabola over +-0.6 FWHM (the top 4.3 dB of a Gaussian line)
 
 
@@ -376,9 +376,9 @@ def reduce_trace(
     half = int(max(2, min(max(rbw_s, 2.0), 0.3 * spacing_s)))
     pk = _window_peaks(y, c_grid, half, min(fit_half, half))
 
-    # Floor in the gaps between grid positions, 2 RBW away from each line.
+    # Floor in the middle half of each gap between grid positions, 3 RBW away from each line.
     f_gaps = f_a + (np.arange(ks[0] - 1, ks[-1] + 1) + 0.5) * delta
-    gap_half = int(min(64, max(0, 0.5 * spacing_s - _GUARD_RBW * rbw_s)))
+    gap_half = int(min(64, 0.25 * spacing_s, max(0, 0.5 * spacing_s - _GUARD_RBW * rbw_s)))
     gaps = _gap_floors(y, ax.f_to_index(f_gaps), gap_half)
     left, right = _lin(gaps[:-1]), _lin(gaps[1:])
     both = np.where(np.isnan(left), right, np.where(np.isnan(right), left, 0.5 * (left + right)))

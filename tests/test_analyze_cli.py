@@ -1,0 +1,121 @@
+"""`labrun analyze` on CSV traces: simulator output, hand-made exports with metadata, bad files."""
+
+from __future__ import annotations
+
+import json
+
+import numpy as np
+import pytest
+
+from labrun.cli import main
+from labrun.physics.osa import synthesize_trace
+from labrun.tracefile import read_trace_csv
+
+C_NM_THZ = 299_792.458  # c in nm*THz (SI definition of c)
+
+
+def _run(capsys, *argv):
+    code = main(list(argv))
+    out, err = capsys.readouterr()
+    return code, out, err
+
+
+def test_analyze_reads_the_simulator_trace(tmp_path, capsys):
+    trace = tmp_path / "hnlf.csv"
+    code, out, _ = _run(capsys, "sim", "spectrum", "--scenario", "default-scenario.toml",
+                        "--spool", "HNLF-A17", "--power-a-dbm", "12", "--power-b-dbm", "11",
+                        "--wavelength-a-nm", "1550", "--spacing-ghz", "50", "--json",
+                        "--out", str(trace))
+    assert code == 0
+    model = {(ln["kind"], ln["side"], ln["order"]): ln["power_dbm"]
+             for ln in json.loads(out)["lines"]}
+    osa_loss = float(read_trace_csv(trace).metadata["output_to_osa_db"])
+    code, out, _ = _run(capsys, "analyze", str(trace), "--json")  # RBW from the metadata
+    assert code == 0
+    red = json.loads(out)
+    assert set(red) >= {"spacing_ghz", "floor_dbm", "lines", "flags"}
+    assert red["spacing_ghz"] == pytest.approx(50.0, abs=0.05)
+    assert len(red["lines"]) == 8  # default 3 orders per side
+    for ln in red["lines"]:
+        assert set(ln) >= {"kind", "side", "order", "freq_thz", "wavelength_nm", "power_dbm",
+                           "floor_dbm", "snr_db", "detected"}
+        want = model[(ln["kind"], ln["side"], ln["order"])] - osa_loss
+        if ln["detected"]:
+            assert ln["power_dbm"] == pytest.approx(want, abs=0.1)
+        else:
+            assert ln["power_dbm"] is None and want < ln["upper_limit_dbm"]
+    # Tone a at 1550 nm: f = c / lambda (SI definition of c).
+    tone_a = next(ln for ln in red["lines"] if ln["kind"] == "tone" and ln["side"] == "low")
+    assert tone_a["freq_thz"] == pytest.approx(C_NM_THZ / 1550.0, abs=2e-4)
+
+
+def _handmade(path, *, freq_axis=False):
+    """An instrument-style export: banner, key,value lines, comments, then the data."""
+    rbw = 0.05
+    f = 193.1 + np.array([-1, 0, 1, 2]) * 0.0625  # 62.5 GHz
+    wl = C_NM_THZ / f
+    x = np.arange(wl.min() - 0.6, wl.max() + 0.6, 0.01)
+    y = synthesize_trace(x, wl, [-38.0, 0.0, -1.0, -39.0], rbw, floor_dbm=-65.0, noise_db=0.1,
+                         rng=np.random.default_rng(4))
+    head = ["Virtual OSA export v2.1", "Date,2026-03-14 02:10:44", "Label,SMF-B02 night run",
+            "# rbw_nm: 0.05", "; operator: J. Okafor", ""]
+    if freq_axis:
+        rows = [f"{C_NM_THZ / a:.6f},{b:.3f}" for a, b in zip(x[::-1], y[::-1], strict=True)]
+        header = "frequency_thz,power_dbm"
+    else:
+        rows = [f"{a:.4f},{b:.3f}" for a, b in zip(x, y, strict=True)]
+        header = "wavelength_nm,power_dbm"
+    path.write_text("\n".join(head + [header] + rows) + "\n")
+    return path
+
+
+@pytest.mark.parametrize("freq_axis", [False, True])
+def test_analyze_handmade_csv_with_metadata(tmp_path, capsys, freq_axis):
+    path = _handmade(tmp_path / "export.csv", freq_axis=freq_axis)
+    plot = tmp_path / "export.png"
+    code, out, err = _run(capsys, "analyze", str(path), "--orders", "1", "--json",
+                          "--plot", str(plot))
+    assert code == 0, err
+    red = json.loads(out)
+    assert red["rbw_nm"] == 0.05
+    assert red["spacing_ghz"] == pytest.approx(62.5, abs=0.1)
+    got = [ln["power_dbm"] for ln in red["lines"]]
+    assert np.allclose(got, [-38.0, 0.0, -1.0, -39.0], atol=0.1)
+    assert plot.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"  # PNG signature (PNG specification)
+
+
+def test_analyze_table_output(tmp_path, capsys):
+    path = _handmade(tmp_path / "export.csv")
+    code, out, _ = _run(capsys, "analyze", str(path), "--orders", "2")
+    assert code == 0
+    lines = out.splitlines()
+    assert lines[0].split()[0] == "line"
+    assert any(r.startswith("tone a") for r in lines)
+    assert "not detected" in out  # second order sits in the floor
+    assert lines[-1].startswith("spacing 62.5")
+
+
+@pytest.mark.parametrize("content, needle", [
+    ("wavelength_nm,power_dbm\n1550.0,-3.0\n1550.1,abc\n", "line 4"),
+    ("just,some\nnumbers,here\n", "no header"),
+    ("wavelength_nm,power_dbm\n1550.0,-3\n", "data rows"),
+])
+def test_analyze_bad_file_exits_2_with_one_line(tmp_path, capsys, content, needle):
+    path = tmp_path / "bad.csv"
+    path.write_text("# rbw_nm: 0.02\n" + content)
+    code, out, err = _run(capsys, "analyze", str(path))
+    assert code == 2 and out == ""
+    assert len(err.strip().splitlines()) == 1
+    assert str(path) in err and needle in err
+    assert "Traceback" not in err
+
+
+def test_analyze_missing_rbw_or_file(tmp_path, capsys):
+    path = _handmade(tmp_path / "export.csv")
+    path.write_text(path.read_text().replace("# rbw_nm: 0.05\n", ""))
+    code, _, err = _run(capsys, "analyze", str(path))
+    assert code == 2 and "rbw_nm" in err and len(err.strip().splitlines()) == 1
+    code, _, err = _run(capsys, "analyze", str(path), "--rbw-nm", "0.05")
+    assert code == 0
+    code, _, err = _run(capsys, "analyze", str(tmp_path / "nope.csv"))
+    assert code == 2 and "no such file" in err
