@@ -20,7 +20,8 @@ def register(subparsers: Any) -> None:
         "run", help="run a sweep plan on a bench, storing every point",
         description="Run a sweep plan on a bench. Every point (trace and lines) is stored as it "
                     "is measured; every way out switches the sources off.")
-    p.add_argument("plan", metavar="PLAN", help="sweep plan (TOML)")
+    p.add_argument("plan", metavar="PLAN",
+                   help="sweep plan (TOML), or the name of a shipped example in sweeps/")
     p.add_argument("--bench", required=True, metavar="BENCH", help="bench file (TOML)")
     p.add_argument("--db", default=DEFAULT_DB, metavar="URL_OR_PATH", help=DB_HELP)
     p.add_argument("--unattended", action="store_true",
@@ -82,9 +83,11 @@ def cmd_run(args: argparse.Namespace) -> int:
     from labrun.bench import load_bench
     from labrun.engine import run_plan
     from labrun.plan import load_plan
+    from labrun.resources import find_file
     from labrun.store import open_store
 
-    plan = load_plan(args.plan)
+    # a path, or the name of a shipped example ("power-sweep")
+    plan = load_plan(find_file(args.plan, "sweeps", suffixes=("", ".toml")) or args.plan)
     bench = load_bench(args.bench)
     if args.unattended and not (args.operator and args.ack_safety):
         from labrun.errors import InputError
