@@ -297,14 +297,10 @@ def _first_sideband_efficiency(spacing_ghz: np.ndarray, wavelength_a_nm: np.ndar
 
     The phase mismatch is the physics module's (beta2, beta3 at tone a from D(lambda), S).
     """
-    fib = Fibre(length_km, loss_db_per_km, 1.0, dispersion, slope, reference_wavelength_nm)
-    dbeta = np.empty_like(spacing_ghz)
-    for lam in np.unique(wavelength_a_nm):
-        for s in ("low", "high"):
-            sel = (wavelength_a_nm == lam) & (side == s)
-            if sel.any():
-                dbeta[sel] = sideband_mismatch_per_km(fib, float(lam), spacing_ghz[sel], s)
-    return np.asarray(inoue_efficiency(fib.alpha_per_km, dbeta, length_km), dtype=float)
+    u, v = _mismatch_basis(spacing_ghz, wavelength_a_nm, side, length_km, loss_db_per_km,
+                           reference_wavelength_nm)
+    alpha = float(alpha_per_km(loss_db_per_km))
+    return np.asarray(inoue_efficiency(alpha, dispersion * u + slope * v, length_km), dtype=float)
 
 
 def fit_gamma_small_signal(p_a_w, p_b_w, ratio, l_eff_km: float, *, eta=None, copolar=None,
@@ -362,8 +358,21 @@ def _mismatch_basis(spacing_ghz: np.ndarray, wavelength_a_nm: np.ndarray, side: 
     return dbeta(1.0, 0.0), dbeta(0.0, 1.0)
 
 
+def _inoue_real(alpha: float, dbeta: np.ndarray, length_km: float) -> np.ndarray:
+    """Inoue's efficiency in its published real form (DESIGN.md 4.2), for the coarse grid:
+    alpha^2/(alpha^2 + dbeta^2) [1 + 4 exp(-alpha L) sin^2(dbeta L/2)/(1 - exp(-alpha L))^2].
+
+    The lossless limit is sinc^2(dbeta L/2). The final fit uses physics.fwm.inoue_efficiency.
+    """
+    if alpha * length_km < 1e-9:
+        return np.sinc(dbeta * length_km / (2.0 * np.pi)) ** 2
+    e = math.exp(-alpha * length_km)
+    s = np.sin(0.5 * dbeta * length_km)
+    return alpha**2 / (alpha**2 + dbeta**2) * (1.0 + 4.0 * e * s * s / (1.0 - e) ** 2)
+
+
 def _grid_dispersion(y: np.ndarray, u: np.ndarray, alpha: float, length_km: float,
-                     d_max: float, n_best: int = 4, max_points: int = 150) -> list[float]:
+                     d_max: float, n_best: int = 4, max_points: int = 60) -> list[float]:
     """Candidate |D| values: the best local minima of the residual over a grid of D.
 
     The grid steps the phase at the largest |u| by 0.6 rad (the efficiency oscillates with
@@ -376,8 +385,8 @@ def _grid_dispersion(y: np.ndarray, u: np.ndarray, alpha: float, length_km: floa
     step = 0.6 / phi if phi > 0 else d_max
     lin = np.arange(0.0, min(d_max, 2000 * step), step)
     grid = np.unique(np.concatenate([lin, np.geomspace(1e-3, d_max, 200)]))
-    e = DB * np.log(np.maximum(np.asarray(
-        inoue_efficiency(alpha, grid[:, None] * u[None, :], length_km)), 1e-300))
+    e = DB * np.log(np.maximum(_inoue_real(alpha, grid[:, None] * u[None, :], length_km),
+                               1e-300))
     r = y[None, :] - e
     ss = np.sum((r - r.mean(axis=1, keepdims=True)) ** 2, axis=1)
     inner = np.r_[True, ss[1:] < ss[:-1]] & np.r_[ss[:-1] <= ss[1:], True]
@@ -494,8 +503,11 @@ def fit_power_slope(total_dbm, sideband_dbm, groups, order: int, label: str,
     ok = np.isfinite(x) & np.isfinite(y)
     x, y, g = x[ok], y[ok], g[ok]
     uniq, gi = np.unique(g, return_inverse=True)
-    keep = np.array([np.ptp(x[gi == i]) >= 0.5 and (gi == i).sum() >= 2
-                     for i in range(uniq.size)], dtype=bool)
+    gmax = np.full(uniq.size, -np.inf)
+    gmin = np.full(uniq.size, np.inf)
+    np.maximum.at(gmax, gi, x)
+    np.minimum.at(gmin, gi, x)
+    keep = (gmax - gmin >= 0.5) & (np.bincount(gi, minlength=uniq.size) >= 2)
     sel = keep[gi]
     x, y, gi = x[sel], y[sel], gi[sel]
     if x.size < 3:
@@ -533,14 +545,17 @@ def fit_polarisation(sideband_w, copolar, groups, pol_key) -> dict[str, FitResul
     p, c = np.asarray(sideband_w, float), np.asarray(copolar, float)
     g, k = np.asarray(groups), np.asarray(pol_key)
     ok = np.isfinite(p) & (p > 0)
-    best, best_n = None, 0
-    for gv in np.unique(g[ok]):
-        sel = ok & (g == gv)
-        nstates = np.unique(k[sel]).size
-        if nstates > best_n:
-            best, best_n = sel, nstates
-    if best is None or best_n < 3:
+    if not ok.any():
         return {}
+    _, gi = np.unique(g, return_inverse=True)
+    _, ki = np.unique(k, return_inverse=True)
+    pairs = np.unique(np.stack([gi[ok], ki[ok]], axis=1), axis=0)
+    states = np.bincount(pairs[:, 0], minlength=int(gi.max()) + 1)
+    best_g = int(np.argmax(states))
+    best_n = int(states[best_g])
+    if best_n < 3:
+        return {}
+    best = ok & (gi == best_g)
     p, c = p[best], c[best]
     n = int(p.size)
     out: dict[str, FitResult] = {}
@@ -648,12 +663,9 @@ def fit_run(points, spool_length_km: float, loss_db_per_km: float, *,
         eta_hi = _first_sideband_efficiency(spacing, lam, np.full(n, "high"), spool_length_km,
                                             loss_db_per_km, d_known, s_known,
                                             reference_wavelength_nm)
-        fib = Fibre(spool_length_km, loss_db_per_km, 1.0, d_known, s_known,
-                    reference_wavelength_nm)
-        mis = np.array([abs(float(sideband_mismatch_per_km(fib, float(lv), float(sv), "high")))
-                        for lv, sv in _unique_pairs(lam, spacing)])
-        mis_map = dict(zip(_unique_pairs(lam, spacing), mis, strict=True))
-        mism = np.array([mis_map[(lv, sv)] for lv, sv in zip(lam, spacing, strict=True)])
+        u, v = _mismatch_basis(spacing, lam, np.full(n, "high"), spool_length_km,
+                               loss_db_per_km, reference_wavelength_nm)
+        mism = np.abs(d_known * u + s_known * v)
         bessel_ok &= mism * spool_length_km <= bessel_max_mismatch_rad
 
     fb = fit_gamma_bessel(p_a[bessel_ok], p_b[bessel_ok], lo1[bessel_ok], ta[bessel_ok],
@@ -682,11 +694,6 @@ def fit_run(points, spool_length_km: float, loss_db_per_km: float, *,
     power_groups = _group_keys(t, n, spacing, lam, None)
     results.update(fit_polarisation(hi1, cop, power_groups, pol_key))
     return results
-
-
-def _unique_pairs(a: np.ndarray, b: np.ndarray) -> list[tuple[float, float]]:
-    """Distinct (a, b) pairs, in first-seen order."""
-    return list(dict.fromkeys(zip(a.tolist(), b.tolist(), strict=True)))
 
 
 def _group_keys(t, n: int, spacing, lam, cop) -> np.ndarray:
