@@ -92,7 +92,6 @@ def main() -> None:
                 flag = "ok" if a <= TARGET_MS else "SLOW"
                 print(f"  {spool:<9} {label:<9} compute {a:7.2f} ms [{flag}]   "
                       f"sweep + *OPC? + REAL,32 read over TCP {b:7.2f} ms")
-    rm.close()
 
 
 if __name__ == "__main__":

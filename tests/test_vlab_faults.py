@@ -36,9 +36,9 @@ def scenario_with(faults: dict | None = None, realism: dict | None = None):
 
 @pytest.fixture(scope="module")
 def rm():
-    manager = pyvisa.ResourceManager("@py")
-    yield manager
-    manager.close()
+    # pyvisa keeps one ResourceManager per VISA library, shared with labrun.scpi: never close it
+    # here, only the sessions opened from it.
+    return pyvisa.ResourceManager("@py")
 
 
 def open_role(rm, lab, role, timeout_ms):

@@ -41,9 +41,9 @@ def scenario_data(**changes) -> dict:
 
 @pytest.fixture(scope="module")
 def rm():
-    manager = pyvisa.ResourceManager("@py")
-    yield manager
-    manager.close()
+    # pyvisa keeps one ResourceManager per VISA library, shared with labrun.scpi: never close it
+    # here, only the sessions opened from it.
+    return pyvisa.ResourceManager("@py")
 
 
 @pytest.fixture
