@@ -80,3 +80,20 @@ def test_probe_passes_every_check_against_the_virtual_lab(tmp_path, capsys):
     failed = [(i["role"], c) for i in report["instruments"] for c in i["checks"] if not c["ok"]]
     assert code == 0 and report["ok"] and not failed, failed
     assert {i["role"] for i in report["instruments"]} == set(lab.scenario.present_roles())
+
+
+def test_tone_a_is_the_lower_frequency_whichever_laser_carries_it():
+    """DESIGN.md section 3: tone a is the lower-frequency tone; swapping which laser sits where
+    gives the same spectrum."""
+    state = quiet()
+    for laser in state.lasers.values():
+        laser.power_dbm = 10.0
+    before = sorted(state.osa_input()[0])
+    state.lasers["laser_a"].wavelength_nm, state.lasers["laser_b"].wavelength_nm = 1549.2, 1550.0
+    state.attenuators["attenuator_a"].attenuation_db = 2.0 + state.scenario.bench.path_loss_b_db \
+        - state.scenario.bench.path_loss_a_db
+    state.attenuators["attenuator_b"].attenuation_db = 1.0 + state.scenario.bench.path_loss_a_db \
+        - state.scenario.bench.path_loss_b_db
+    after = sorted(state.osa_input()[0])
+    assert len(before) == len(after) == 12
+    np.testing.assert_allclose(np.array(after), np.array(before), atol=1e-6)

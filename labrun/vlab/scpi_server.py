@@ -186,6 +186,11 @@ class SimInstrument:
             with self.lab.lock:
                 self.push_error(fault.code, fault.detail)
             return None
+        except Exception as exc:  # a simulator bug must not kill the connection: report it
+            log.exception("%s: %s failed", self.role, header)
+            with self.lab.lock:
+                self.push_error(-300, f"{header}: {type(exc).__name__}")
+            return None
 
 
 def _onoff(value: bool) -> str:
