@@ -385,3 +385,38 @@ def test_bench_file_loads_with_the_instrument_layer(lab, tmp_path):
     assert bench.instruments["laser_a"].max_power_dbm == lab.scenario.bench.caps["laser_a"]
     assert bench.calibration.input_tap_db == lab.scenario.bench.input_tap_db
     assert all(spec.backend == "@py" for spec in bench.instruments.values())
+
+
+# Long forms of the mnemonics the generic profiles use (SCPI-1999 command reference; POL, STOK
+# and INTL are device-specific nodes of the generic profiles).
+LONG_FORMS = {"SOUR": "SOURce", "OUTP": "OUTPut", "STAT": "STATe", "WAV": "WAVelength",
+              "POW": "POWer", "INP": "INPut", "ATT": "ATTenuation", "SENS": "SENSe",
+              "CENT": "CENTer", "BAND": "BANDwidth", "RES": "RESolution", "SWE": "SWEep",
+              "POIN": "POINts", "INIT": "INITiate", "IMM": "IMMediate", "TRAC": "TRACe",
+              "FORM": "FORMat", "BORD": "BORDer", "ROUT": "ROUTe", "ANGL": "ANGLe",
+              "STOK": "STOKes", "INTL": "INTLock", "SYST": "SYSTem", "ERR": "ERRor"}
+
+
+def _long_form(text: str) -> str:
+    head, sep, rest = text.partition(" ")
+    nodes = []
+    for node in head.split(":"):
+        stem = node.rstrip("?0123456789")
+        tail = node[len(stem):]
+        nodes.append(LONG_FORMS.get(stem, stem).lower() + tail)
+    return ":".join(nodes) + sep + rest
+
+
+def test_long_lower_case_forms_of_every_profile_command(rm, full_lab):
+    lab = full_lab
+    for role in lab.resources:
+        profile = load_profile(f"generic-{ROLE_KINDS[role].replace('_', '-')}")
+        inst = open_role(rm, lab, role)
+        for op in profile.operations.values():
+            text = _long_form(op.render(**_value_for(op)))
+            if op.is_query:
+                assert inst.query(text) != "", text
+            else:
+                inst.write(text)
+            assert inst.query("system:error?") == '0,"No error"', text
+        inst.close()
