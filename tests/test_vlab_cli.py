@@ -174,3 +174,20 @@ def test_serve_writes_bench_and_exits_cleanly_on_sigterm(tmp_path):
             proc.wait()
     assert proc.returncode == 0, err
     assert "sources is off" in out or "source is off" in out
+
+
+def test_serve_with_a_port_clash_is_one_line_exit_2(tmp_path, capsys):
+    import socket
+    import threading
+
+    with socket.socket() as sock:
+        sock.bind(("127.0.0.1", 0))
+        port = sock.getsockname()[1]
+    scenario = tmp_path / "clash.toml"
+    scenario.write_text(FLAT_SCENARIO + f"[instruments.laser_a]\nport = {port}\n"
+                        f"[instruments.laser_b]\nport = {port}\n")
+    before = set(threading.enumerate())
+    code, out, err = run_cli(capsys, "sim", "serve", "--scenario", str(scenario))
+    assert code == 2 and out == ""
+    assert len(err.strip().splitlines()) == 1 and "instruments.laser_b.port" in err
+    assert set(threading.enumerate()) <= before

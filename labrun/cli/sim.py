@@ -68,7 +68,7 @@ def register(subparsers: argparse._SubParsersAction) -> None:
 # ---- serve ---------------------------------------------------------------------------------
 def run_serve(args: argparse.Namespace) -> int:
     """Serve the scenario's instruments until Ctrl-C or SIGTERM; exit 0 with sources off."""
-    from labrun.vlab.lab import VirtualLab, is_loopback
+    from labrun.vlab.lab import BindError, VirtualLab, is_loopback
     from labrun.vlab.scenario import load_scenario
 
     scenario = load_scenario(args.scenario)
@@ -80,8 +80,11 @@ def run_serve(args: argparse.Namespace) -> int:
     lab = VirtualLab(scenario, time_scale=args.time_scale, seed=args.seed, host=args.host)
     try:
         lab.start()
-    except OSError as exc:
-        raise InputError(f"cannot listen: {exc.strerror or exc}", field="--host") from None
+    except BindError as exc:
+        if exc.port:  # pinned by the scenario
+            raise InputError(exc.strerror, file=scenario.source,
+                             field=f"instruments.{exc.role}.port") from None
+        raise InputError(exc.strerror, field="--host") from None
     stop = threading.Event()
     previous = {sig: signal.signal(sig, lambda *_: stop.set())
                 for sig in (signal.SIGINT, signal.SIGTERM)}

@@ -28,6 +28,15 @@ log = logging.getLogger(__name__)
 DEFAULT_CAPS_DBM = {"laser_a": 10.0, "laser_b": 10.0, "amplifier": 20.0}
 
 
+class BindError(OSError):
+    """An instrument's port could not be bound (address in use, bad host)."""
+
+    def __init__(self, role: str, host: str, port: int, cause: OSError):
+        self.role, self.host, self.port = role, host, port
+        reason = cause.strerror or str(cause)
+        super().__init__(cause.errno, f"{role}: cannot listen on {host}:{port}: {reason}")
+
+
 def is_loopback(host: str) -> bool:
     """True for 127.0.0.0/8, ::1 and 'localhost'."""
     if host == "localhost":
@@ -68,8 +77,11 @@ class VirtualLab:
                 inst = cls(role, self.state, self.scenario.idn(role),
                            FaultInjector(self.scenario.faults, role, self.seed), self._stopping)
                 self.instruments[role] = inst
-                self.servers[role] = InstrumentServer(inst, self.host, spec.port)
-        except OSError:
+                try:
+                    self.servers[role] = InstrumentServer(inst, self.host, spec.port)
+                except OSError as exc:
+                    raise BindError(role, self.host, spec.port, exc) from exc
+        except BindError:
             self._close_servers()
             raise
         self.started_at = time.monotonic()
