@@ -14,10 +14,15 @@ import signal
 import sys
 import threading
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 import numpy as np
 
 from labrun.errors import InputError
+
+if TYPE_CHECKING:
+    from labrun.physics.spool import ModelLine
+    from labrun.vlab.scenario import Scenario
 
 SPECTRUM_MODELS = ("auto", "bessel", "nlse")
 
@@ -163,7 +168,8 @@ def run_spectrum(args: argparse.Namespace) -> int:
     return 0
 
 
-def _write_trace(args: argparse.Namespace, scenario, spool_name: str, lines) -> Path:
+def _write_trace(args: argparse.Namespace, scenario: Scenario, spool_name: str,
+                 lines: list[ModelLine]) -> Path:
     """Synthesise the OSA trace (through output_to_osa_db, the scenario's OSA floor) as CSV."""
     from labrun.physics.osa import synthesize_trace
     from labrun.tracefile import write_trace_csv

@@ -21,7 +21,9 @@ from labrun.vlab.faults import FaultInjector
 from labrun.vlab.scpi import (
     Call,
     CommandTable,
+    Entry,
     ErrorQueue,
+    ParsedCommand,
     ScpiFault,
     boolean,
     esr_bit,
@@ -164,7 +166,8 @@ class SimInstrument:
             return None
         return b";".join(replies) + b"\n"
 
-    def _run(self, cmd, found) -> str | bytes | None:
+    def _run(self, cmd: ParsedCommand, found: tuple[Entry, list[int | None]] | None
+             ) -> str | bytes | None:
         """Check parameters and call the handler under the state lock; errors go to the queue."""
         header = cmd.text.split()[0] if cmd.text.split() else cmd.text
         if found is None:

@@ -18,7 +18,7 @@ import numpy as np
 from labrun.physics.fibre import Fibre
 from labrun.physics.units import C_M_PER_S, dbm_to_mw, mw_to_dbm
 from labrun.vlab.realism import PolarisationWalk, RandomWalk, role_rng
-from labrun.vlab.scenario import Scenario
+from labrun.vlab.scenario import Realism, Scenario
 
 S_A = np.array([1.0, 0.0, 0.0])  # tone a's state of polarisation at the spool input (reference)
 POWER_METER_FLOOR_DBM = -90.0     # reading with no light (invented, typical InGaAs head range)
@@ -162,7 +162,7 @@ class LabState:
         self.osa_rng = role_rng(seed, "osa_noise")
         self.pm_rng = role_rng(seed, "power_meter_noise")
 
-    def _make_laser(self, role: str, real) -> Laser:
+    def _make_laser(self, role: str, real: Realism | None) -> Laser:
         """A laser with its seeded fixed offsets and drift generators."""
         laser = Laser()
         if real is None:
