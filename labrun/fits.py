@@ -56,6 +56,8 @@ class FitResult:
         d = asdict(self)
         for k in ("value", "stderr", "residual_rms"):
             d[k] = _finite_or_none(d[k])
+        d["extra"] = {k: _finite_or_none(v) if isinstance(v, float) else v
+                      for k, v in self.extra.items()}
         return d
 
 

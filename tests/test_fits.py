@@ -3,6 +3,8 @@ published formulas / reference values."""
 
 from __future__ import annotations
 
+import json
+
 import numpy as np
 import pandas as pd
 import pytest
@@ -152,6 +154,9 @@ def test_dispersion_slope_from_several_pump_wavelengths(seed):
     assert abs(d.value - 4.0) < 3 * d.stderr, (d.value, d.stderr)
     assert abs(s.value - 0.07) < 3 * s.stderr, (s.value, s.stderr)
     assert s.unit == "ps/(nm^2 km)"
+    # Every result serialises to strict JSON (NaN becomes null), as the store keeps it.
+    text = json.dumps({k: v.to_dict() for k, v in res.items()}, allow_nan=False)
+    assert json.loads(text)["dispersion"]["unit"] == "ps/(nm km)"
 
 
 def test_small_signal_gamma_with_known_dispersion():
