@@ -312,26 +312,25 @@ def _validate(x, y, rbw: float, x_unit: str, orders: int, threshold_db: float, p
 
 
 def _find_tones(y: np.ndarray, ax: _Axis, rbw_s: float, expected_thz, floor_guess: float,
-                threshold_db: float) -> tuple[np.ndarray, np.ndarray, list[str]]:
+                threshold_db: float) -> tuple[np.ndarray, np.ndarray]:
     """Approximate tone centres (fractional index, 2 values or fewer) and their tolerance."""
-    notes: list[str] = []
     if expected_thz is not None:
         fe = np.sort(np.asarray(expected_thz, dtype=float).ravel())
         if fe.size != 2 or not np.all(fe > 0):
             raise ValueError("expected_thz must hold two positive frequencies")
         ce = ax.f_to_index(fe)
         half = max(2, int(0.25 * abs(ce[1] - ce[0])))
-        return ce, np.array([half, half]), notes
+        return ce, np.array([half, half])
     block = max(1, int(rbw_s / 2))
     m = y.size // block
     yb = y[: m * block].reshape(m, block).max(axis=1)
     peaks, _ = find_peaks(yb, height=floor_guess + threshold_db,
                           distance=max(1, int(round(0.8 * rbw_s / block))))
     if peaks.size == 0:
-        return np.empty(0), np.empty(0, dtype=int), notes
+        return np.empty(0), np.empty(0, dtype=int)
     top = peaks[np.argsort(yb[peaks])[::-1][:2]]
     centres = np.sort(top) * block + (block - 1) / 2.0
-    return centres, np.full(centres.size, block + 1), notes
+    return centres, np.full(centres.size, block + 1)
 
 
 def reduce_trace(
@@ -362,7 +361,7 @@ def reduce_trace(
     flags: list[str] = []
     notes: list[str] = []
 
-    centres, halves, _ = _find_tones(y, ax, rbw_s, expected_thz, floor_guess, threshold_db)
+    centres, halves = _find_tones(y, ax, rbw_s, expected_thz, floor_guess, threshold_db)
     if centres.size < 2:
         found = ", ".join(f"{f:.5f} THz" for f in ax.index_to_f(centres)) or "none"
         return Reduction(
