@@ -71,3 +71,39 @@ def plot_fit(path: str | Path, x: Sequence[float], y: Sequence[float], *, model_
     fig.savefig(out)
     plt.close(fig)
     return out
+
+
+def plot_power_slopes(path: str | Path, points, results: dict, *, max_order: int = 3) -> Path:
+    """Sideband power against total launched power, per order, with each fitted dB/dB slope.
+
+    ``points`` and ``results`` as for and from ``labrun.fits.fit_run``.
+    """
+    from labrun.fits import points_table
+
+    t = points_table(points)
+    total = 10.0 * np.log10(10 ** (t["power_a_dbm"] / 10) + 10 ** (t["power_b_dbm"] / 10))
+    fig, ax = plt.subplots(figsize=(7, 4.5), dpi=110)
+    for side, marker in (("low", "o"), ("high", "s")):
+        for order in range(1, max_order + 1):
+            key = f"sideband_{side}_{order}"
+            if key not in t:
+                continue
+            y = t[key]
+            ok = np.isfinite(y)
+            if not ok.any():
+                continue
+            fit = results.get(f"slope_{side}_{order}")
+            label = f"{side} {order}"
+            if fit is not None:
+                label += f": {fit.value:.2f} ± {fit.stderr:.2f} dB/dB"
+            ax.plot(total[ok], y[ok], marker, ms=3.5, label=label)
+    ax.set_xlabel("total launched power (dBm)")
+    ax.set_ylabel("sideband power (dBm)")
+    ax.set_title("power-law slopes per order", fontsize=9)
+    ax.grid(alpha=0.3)
+    ax.legend(fontsize=7)
+    fig.tight_layout()
+    out = Path(path)
+    fig.savefig(out)
+    plt.close(fig)
+    return out

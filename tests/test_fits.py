@@ -245,3 +245,12 @@ def test_points_as_dataframe_or_nested_lines_agree():
     assert np.isnan(t["sideband_low_1"][0])
     with pytest.raises(ValueError):
         fit_run([{"spacing_ghz": 10.0}], 1.0, 0.5)
+
+
+def test_slope_plot_is_written(tmp_path):
+    from labrun.plots import plot_power_slopes
+
+    fib = Fibre(length_km=1.0, loss_db_per_km=0.5, gamma_per_w_per_km=3.0)
+    pts = _bessel_points(fib, 2, ratio_db=0.0, p_dbm=np.linspace(-2, 8, 6))
+    out = plot_power_slopes(tmp_path / "slopes.png", pts, fit_run(pts, 1.0, 0.5))
+    assert out.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"  # PNG signature (PNG specification)
