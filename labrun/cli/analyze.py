@@ -8,11 +8,12 @@ from __future__ import annotations
 
 import argparse
 import json
+from typing import TYPE_CHECKING
 
 from labrun.errors import InputError
-from labrun.physics.units import nm_to_ghz_at, nm_to_thz, thz_to_nm
-from labrun.reduce import Reduction, reduce_trace
-from labrun.tracefile import read_trace_csv
+
+if TYPE_CHECKING:  # the reduction pulls in scipy.signal: import it only when a trace is reduced
+    from labrun.reduce import Reduction
 
 
 def register(subparsers: argparse._SubParsersAction) -> None:
@@ -39,6 +40,10 @@ def register(subparsers: argparse._SubParsersAction) -> None:
 
 def run_analyze(args: argparse.Namespace) -> int:
     """Read, reduce, print; InputError (exit 2) for a bad file or option."""
+    from labrun.physics.units import nm_to_ghz_at, nm_to_thz, thz_to_nm
+    from labrun.reduce import reduce_trace
+    from labrun.tracefile import read_trace_csv
+
     trace = read_trace_csv(args.trace)
     rbw_nm = args.rbw_nm if args.rbw_nm is not None else trace.rbw_nm
     if rbw_nm is None:
