@@ -15,7 +15,20 @@ matplotlib.use("Agg")
 import matplotlib.pyplot as plt  # noqa: E402
 import numpy as np  # noqa: E402
 
+from labrun.errors import InputError  # noqa: E402
 from labrun.reduce import Reduction  # noqa: E402
+
+
+def _save(fig: plt.Figure, path: str | Path) -> Path:
+    """Write the figure as PNG and close it; an unwritable path is a one-line input error."""
+    out = Path(path)
+    try:
+        fig.savefig(out)
+    except OSError as exc:
+        raise InputError(f"cannot write the plot: {exc.strerror or exc}", file=str(out)) from None
+    finally:
+        plt.close(fig)
+    return out
 
 
 def plot_trace(path: str | Path, x: np.ndarray, y_dbm: np.ndarray, reduction: Reduction, *,
@@ -48,17 +61,18 @@ def plot_trace(path: str | Path, x: np.ndarray, y_dbm: np.ndarray, reduction: Re
     ax.grid(alpha=0.3)
     ax.legend(loc="upper right", fontsize=8)
     fig.tight_layout()
-    out = Path(path)
-    fig.savefig(out)
-    plt.close(fig)
-    return out
+    return _save(fig, path)
 
 
 def plot_fit(path: str | Path, x: Sequence[float], y: Sequence[float], *, model_x=None,
-             model_y=None, xlabel: str = "", ylabel: str = "", title: str = "") -> Path:
-    """Measured points and, when given, a model curve; for fit results against their data."""
+             model_y=None, xlabel: str = "", ylabel: str = "", title: str = "",
+             data_label: str = "data") -> Path:
+    """Data points and, when given, a model curve; for fit results against their data.
+
+    data_label names where the points come from ("measured", "virtual lab", ...).
+    """
     fig, ax = plt.subplots(figsize=(7, 4.5), dpi=110)
-    ax.plot(x, y, "o", ms=4, label="measured")
+    ax.plot(x, y, "o", ms=4, label=data_label)
     if model_x is not None and model_y is not None:
         ax.plot(model_x, model_y, "-", lw=1.2, label="model")
     ax.set_xlabel(xlabel)
@@ -67,10 +81,7 @@ def plot_fit(path: str | Path, x: Sequence[float], y: Sequence[float], *, model_
     ax.grid(alpha=0.3)
     ax.legend(fontsize=8)
     fig.tight_layout()
-    out = Path(path)
-    fig.savefig(out)
-    plt.close(fig)
-    return out
+    return _save(fig, path)
 
 
 def plot_power_slopes(path: str | Path, points, results: dict, *, max_order: int = 3) -> Path:
@@ -103,7 +114,4 @@ def plot_power_slopes(path: str | Path, points, results: dict, *, max_order: int
     ax.grid(alpha=0.3)
     ax.legend(fontsize=7)
     fig.tight_layout()
-    out = Path(path)
-    fig.savefig(out)
-    plt.close(fig)
-    return out
+    return _save(fig, path)

@@ -119,3 +119,12 @@ def test_analyze_missing_rbw_or_file(tmp_path, capsys):
     assert code == 0
     code, _, err = _run(capsys, "analyze", str(tmp_path / "nope.csv"))
     assert code == 2 and "no such file" in err
+
+
+def test_analyze_unwritable_plot_path_is_one_line_exit_2(tmp_path, capsys):
+    path = _handmade(tmp_path / "export.csv")
+    plot = tmp_path / "no-such-folder" / "trace.png"
+    code, out, err = _run(capsys, "analyze", str(path), "--plot", str(plot))
+    assert code == 2 and out == ""
+    assert len(err.strip().splitlines()) == 1
+    assert str(plot) in err and "Traceback" not in err
