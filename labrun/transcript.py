@@ -13,12 +13,35 @@ from dataclasses import asdict, dataclass
 from pathlib import Path
 from typing import Literal
 
+from labrun.errors import InputError
+
 Direction = Literal["write", "query"]
+
+
+def split_units(message: str) -> list[str]:
+    """Split a message at ``;`` outside double-quoted strings (IEEE 488.2 message units).
+
+    Program and response message units are separated by ``;``; string data is double-quoted,
+    with a doubled quote standing for one (IEEE 488.2, string program/response data).
+    """
+    units, start, quoted = [], 0, False
+    for i, ch in enumerate(message):
+        if ch == '"':
+            quoted = not quoted
+        elif ch == ";" and not quoted:
+            units.append(message[start:i].strip())
+            start = i + 1
+    units.append(message[start:].strip())
+    return units
 
 
 @dataclass(frozen=True)
 class TranscriptEntry:
-    """One exchange on the wire; ``reply`` is None for writes, ``error`` set when it failed."""
+    """One exchange on the wire; ``error`` set when it failed.
+
+    ``reply`` is None for a plain write; a "write" that carries queries (an IEEE 488.2 compound
+    message: setting, read-back and error query in one) keeps its response message.
+    """
 
     timestamp: float
     duration_s: float
@@ -54,12 +77,20 @@ class Transcript:
         return [e for e in self.entries
                 if e.direction == "write" and (role is None or e.role == role)]
 
+    def commands(self, role: str | None = None) -> list[str]:
+        """The setting each write carried (the first unit of a compound message), in order."""
+        return [split_units(e.text)[0] for e in self.writes(role)]
+
     def save(self, path: str | Path) -> Path:
         """Write the transcript as JSON lines (one entry per line) and return the path."""
         path = Path(path)
         with self._lock:
             lines = [json.dumps(asdict(e), ensure_ascii=False) for e in self.entries]
-        path.write_text("".join(line + "\n" for line in lines), encoding="utf-8")
+        try:
+            path.write_text("".join(line + "\n" for line in lines), encoding="utf-8")
+        except OSError as exc:
+            raise InputError(f"cannot write the transcript: {exc.strerror or exc}",
+                             file=str(path)) from None
         return path
 
     @classmethod

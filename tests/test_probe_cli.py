@@ -112,3 +112,18 @@ def test_bad_profile_exit_2_names_profile_file_and_field(tmp_path, capsys):
 def test_missing_bench_exit_2(tmp_path, capsys):
     assert main(["probe", "--bench", str(tmp_path / "absent.toml")]) == 2
     assert "absent.toml" in capsys.readouterr().err
+
+
+def test_transcript_in_a_missing_folder_exit_2_before_any_instrument(tmp_path, capsys,
+                                                                    inst_free_port):
+    # The bench points at a closed port: had probe opened anything, it would report exit 1.
+    bench = tmp_path / "bench.toml"
+    bench.write_text('[bench]\nname = "b"\nmax_total_launched_dbm = 20.0\n'
+                     '[instruments.switch]\n'
+                     f'resource = "TCPIP0::127.0.0.1::{inst_free_port}::SOCKET"\n'
+                     'profile = "generic-switch"\n')
+    target = tmp_path / "no-such-folder" / "probe.jsonl"
+    assert main(["probe", "--bench", str(bench), "--transcript", str(target)]) == 2
+    captured = capsys.readouterr()
+    assert captured.out == "" and len(captured.err.strip().splitlines()) == 1
+    assert str(target) in captured.err and "--transcript" in captured.err

@@ -191,3 +191,16 @@ def test_serve_with_a_port_clash_is_one_line_exit_2(tmp_path, capsys):
     assert code == 2 and out == ""
     assert len(err.strip().splitlines()) == 1 and "instruments.laser_b.port" in err
     assert set(threading.enumerate()) <= before
+
+
+def test_serve_with_an_unwritable_bench_out_is_one_line_exit_2(tmp_path, capsys):
+    import threading
+
+    blocker = tmp_path / "a-file"
+    blocker.write_text("not a folder\n")
+    before = set(threading.enumerate())
+    code, out, err = run_cli(capsys, "sim", "serve", "--scenario", "default-scenario.toml",
+                             "--bench-out", str(blocker / "bench.toml"))
+    assert code == 2 and out == ""
+    assert len(err.strip().splitlines()) == 1 and "--bench-out" in err
+    assert set(threading.enumerate()) <= before  # nothing was started

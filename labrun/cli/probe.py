@@ -12,6 +12,7 @@ import argparse
 import json
 import sys
 from dataclasses import asdict, dataclass, field
+from pathlib import Path
 from typing import Any
 
 import numpy as np
@@ -164,6 +165,9 @@ def format_table(results: list[ProbeResult]) -> str:
 def run_probe(args: argparse.Namespace) -> int:
     """Entry point of ``labrun probe``."""
     bench = load_bench(args.bench)
+    if args.transcript and not Path(args.transcript).resolve().parent.is_dir():
+        raise InputError("no such folder for the transcript", file=args.transcript,
+                         field="--transcript")
     transcript = Transcript()
     results = probe_bench(bench, transcript)
     if args.transcript:

@@ -82,6 +82,8 @@ def run_serve(args: argparse.Namespace) -> int:
     if not is_loopback(args.host):
         print(f"labrun: warning: binding {args.host}: the simulated instruments are reachable "
               "from the network", file=sys.stderr)
+    if args.bench_out:
+        _check_writable_folder(args.bench_out, "--bench-out")
     lab = VirtualLab(scenario, time_scale=args.time_scale, seed=args.seed, host=args.host)
     try:
         lab.start()
@@ -97,7 +99,11 @@ def run_serve(args: argparse.Namespace) -> int:
         for role, resource in lab.resources.items():
             print(f"{role:<15} {resource}", flush=True)
         if args.bench_out:
-            path = lab.write_bench(args.bench_out)
+            try:
+                path = lab.write_bench(args.bench_out)
+            except OSError as exc:
+                raise InputError(f"cannot write: {exc.strerror or exc}", file=args.bench_out,
+                                 field="--bench-out") from None
             print(f"bench file: {path}", flush=True)
         print(f"virtual lab running (spool {scenario.connected}, time scale "
               f"{args.time_scale:g}, seed {args.seed}); Ctrl-C to stop", flush=True)
@@ -109,6 +115,15 @@ def run_serve(args: argparse.Namespace) -> int:
             signal.signal(sig, handler)
     print("virtual lab stopped; every simulated source is off", flush=True)
     return 0
+
+
+def _check_writable_folder(path: str, option: str) -> None:
+    """Create the folder of an output file now, so a bad path fails before anything starts."""
+    try:
+        Path(path).parent.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise InputError(f"cannot create its folder: {exc.strerror or exc}", file=path,
+                         field=option) from None
 
 
 # ---- spectrum ------------------------------------------------------------------------------
