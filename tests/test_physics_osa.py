@@ -48,6 +48,8 @@ def test_floor_ase_and_sensitivity_levels() -> None:
 
 
 def test_lines_add_in_linear_power() -> None:
+    # Incoherent lines in one RBW add in mW, not in dBm: 0 dBm + 0 dBm reads 3.01 dBm
+    # (common practice: how an OSA reads unrelated sources).
     x = np.array([1550.0])
     y = synthesize_trace(x, [1550.0, 1550.0], [0.0, 0.0], 0.1, floor_dbm=None)
     assert y[0] == pytest.approx(10 * np.log10(2.0), abs=1e-9)
