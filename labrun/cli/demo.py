@@ -66,7 +66,11 @@ def cmd_demo(args: argparse.Namespace) -> int:
     plan = load_plan(_resolve(args.plan, "sweeps", "--plan"))
     scenario = load_scenario(_resolve(args.scenario, "sim_instruments", "--scenario"))
     out = Path(args.out)
-    out.mkdir(parents=True, exist_ok=True)
+    try:
+        out.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise InputError(f"cannot create the output folder: {exc.strerror}", file=args.out,
+                         field="--out") from None
     say = (lambda *a: None) if args.json else (lambda *a: print(*a, file=sys.stderr))
     say("labrun demo: virtual lab only -- no instrument is touched and no light is emitted.")
     say("On a real bench these cautions apply:\n" + CAUTIONS.rstrip())

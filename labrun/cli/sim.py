@@ -152,6 +152,11 @@ def _copolar(pol_angle_deg: float) -> float:
                          0.0, 1.0))
 
 
+# A line less than this above the OSA floor is reported as an upper limit by the reduction
+# (its default detection threshold), so the planning table uses the same margin.
+SPECTRUM_MARGIN_DB = 3.0
+
+
 def run_spectrum(args: argparse.Namespace) -> int:
     """Print (or write) the spool-output spectrum for the given launch."""
     from labrun.physics.spool import output_lines
@@ -170,14 +175,24 @@ def run_spectrum(args: argparse.Namespace) -> int:
                          args.power_b_dbm, args.orders, copolar=copolar, model=args.model)
     if args.out:
         _write_trace(args, scenario, spool.name, lines)
+    floor = scenario.instruments.osa.floor_dbm
+    floor = -70.0 if floor is None else float(floor)
+    to_osa = float(scenario.bench.output_to_osa_db)
     if args.json:
-        print(json.dumps({"spool": spool.name, "copolar": copolar,
+        print(json.dumps({"spool": spool.name, "copolar": copolar, "osa_floor_dbm": floor,
+                          "output_to_osa_db": to_osa,
                           "lines": [line.to_dict() for line in lines]}, indent=2))
     else:
         print(f"spool {spool.name}: lines at the spool output (copolar fraction {copolar:.3f})")
+        print(f"  {'line':<8} {'wavelength':>13} {'frequency':>15} {'output':>13} {'at OSA':>11}"
+              f"  vs OSA floor {floor:.1f} dBm")
         for line in lines:
+            at_osa = line.power_dbm - to_osa
+            verdict = ("clears" if at_osa >= floor + SPECTRUM_MARGIN_DB
+                       else "below floor + 3 dB: not measurable")
             print(f"  {line.line.label():<8} {line.wavelength_nm:10.4f} nm "
-                  f"{line.freq_thz:11.5f} THz {line.power_dbm:9.2f} dBm")
+                  f"{line.freq_thz:11.5f} THz {line.power_dbm:9.2f} dBm {at_osa:7.2f} dBm"
+                  f"  {verdict}")
         if args.out:
             print(f"trace written to {args.out}")
     return 0
