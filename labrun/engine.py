@@ -78,6 +78,16 @@ class RunOutcome:
         return 1
 
 
+@dataclass
+class Captured:
+    """One trace of a point: kind ("output" or "input"), x (nm), y (dBm per RBW), reduction."""
+
+    kind: str
+    x: Any
+    y: Any
+    reduction: Any = None
+
+
 @dataclass(frozen=True)
 class Setting:
     """One instrument setting of a point: adapter method, value, and the plan's settle time (s).
@@ -105,11 +115,7 @@ def preflight(plan: Any, bench: Any, *, operator: str | None, unattended: bool,
     """
     from labrun import safety
 
-    missing = [r for r in ("laser_a", "laser_b", "attenuator_a", "attenuator_b",
-                           "pol_controller", "osa") if r not in bench.instruments]
-    if missing:
-        raise InputError(f"a sweep needs roles {', '.join(missing)}", file=str(bench.path),
-                         field="instruments")
+    require_roles(plan, bench)
     violations = list(safety.check_caps(plan, bench))
     if violations:
         text = "; ".join(str(v) for v in violations)
@@ -127,18 +133,32 @@ def preflight(plan: Any, bench: Any, *, operator: str | None, unattended: bool,
     return text
 
 
+def require_roles(plan: Any, bench: Any) -> None:
+    """Refuse (InputError, exit 2) a bench that lacks a role the sweep or the plan needs."""
+    missing = [r for r in ("laser_a", "laser_b", "attenuator_a", "attenuator_b",
+                           "pol_controller", "osa") if r not in bench.instruments]
+    if missing:
+        raise InputError(f"a sweep needs roles {', '.join(missing)}", file=str(bench.path),
+                         field="instruments")
+    needs = (("capture_input", "osa.capture_input", "switch", "capture the input spectrum"),
+             ("amplifier", "plan.amplifier", "amplifier", "use an amplifier"))
+    for attr, where, role, what in needs:
+        if getattr(plan, attr, False) and role not in bench.instruments:
+            raise InputError(f"the plan asks to {what} but bench {bench.path} has no {role}",
+                             file=str(getattr(plan, "file", None) or "plan"), field=where)
+
+
 def safety_text(plan: Any, bench: Any) -> str:
     """Worst case launched power, advisory hazard class and the cautions, for the operator."""
     from labrun import safety
 
     wc = safety.worst_case(plan, bench)
-    lines = [f"Worst case: {_describe(wc)}"]
-    hazard = getattr(wc, "hazard_class", None)
-    if hazard:
-        lines.append(f"Advisory hazard class (IEC 60825-1; your laser safety officer decides): "
-                     f"{hazard}")
-    lines.append(str(safety.CAUTIONS).strip())
-    return "\n".join(lines)
+    return "\n".join([
+        f"Worst case: {_describe(wc)}",
+        f"Advisory hazard class (IEC 60825-1; your laser safety officer decides): "
+        f"{wc.hazard_class}",
+        str(safety.CAUTIONS).strip(),
+    ])
 
 
 def _describe(obj: Any) -> str:
@@ -181,6 +201,9 @@ class Runner:
         self.rbw_nm: float | None = None
         self.trace_x: Any = None
         self.orders = int(getattr(plan, "orders", DEFAULT_ORDERS) or DEFAULT_ORDERS)
+        self.use_amplifier = bool(getattr(plan, "amplifier", False))
+        self.input_every = (int(getattr(plan.osa, "input_every", 1) or 1)
+                            if getattr(plan, "capture_input", False) else 0)
         self.stops = StopWatch(getattr(plan, "stop_conditions", []) or [])
         self.show_progress = progress
         self.last_beat = 0.0
@@ -218,9 +241,9 @@ class Runner:
         """Instrument settings of a point, each with the plan's settle time for its axes."""
         from labrun import safety
 
-        amp = bool(getattr(self.plan, "amplifier", False))
-        inst = safety.instrument_settings({**setpoint, "amplifier": amp}, self.bench)
-        got = inst if isinstance(inst, dict) else asdict(inst) if is_dataclass(inst) else vars(inst)
+        inst = safety.instrument_settings({**setpoint, "amplifier": self.use_amplifier},
+                                          self.bench)
+        got = vars(inst) if not isinstance(inst, dict) else inst
         wl_a = setpoint.get("wavelength_a_nm", got.get("wavelength_a_nm"))
         wl_b = setpoint.get("wavelength_b_nm", got.get("wavelength_b_nm"))
         if wl_b is None and wl_a is not None and setpoint.get("spacing_ghz") is not None:
@@ -299,15 +322,21 @@ class Runner:
         one query covers both (the interlock is then read to name the reason); the interlock is
         read on its own only for sources that do not report their output.
         """
-        for role in self.sources():
-            adapter = self.role(role)
-            state = adapter.output_state()
+        from labrun.instruments import output_states
+
+        roles = self.sources()
+        adapters = [self.role(r) for r in roles]
+        for role, adapter, state in zip(roles, adapters, output_states(adapters), strict=True):
             if state is None and adapter.interlock_closed() is False:
                 raise RunAborted(f"interlock open on {role}")
-            if state is not None and bool(state) != self.emitting:
+            if state is not None and bool(state) != self.expected_on(role):
                 found = "on" if state else "off"
                 raise RunAborted(f"{role} output found {found} unexpectedly"
                                  + self._interlock_note())
+
+    def expected_on(self, role: str) -> bool:
+        """Whether a source should emit now (an amplifier the plan does not use stays off)."""
+        return self.emitting and (role != "amplifier" or self.use_amplifier)
 
     def _interlock_note(self) -> str:
         """' (interlock open on laser_a)' when an interlock explains a surprise, else ''."""
@@ -319,7 +348,11 @@ class Runner:
         return f" (interlock open on {', '.join(opened)})" if opened else ""
 
     def prepare(self, first: Sequence[Setting]) -> None:
-        """Apply the first point with outputs off, then switch on: shutters, lasers, amplifier."""
+        """Apply the first point with outputs off, then switch on: shutters, lasers, amplifier.
+
+        The amplifier is switched on only for plans that use it (``plan.amplifier``): the worst
+        case and the settings of other plans assume no gain after the combiner.
+        """
         for role in self.sources():
             if self.role(role).output_state():
                 self.store.add_event(self.run_id, "found_on", f"{role} output was on before the "
@@ -330,7 +363,7 @@ class Runner:
             self.role(role).output_on()
         for role in ("laser_a", "laser_b"):
             self.role(role).output_on()
-        if "amplifier" in self.bench.instruments:
+        if self.use_amplifier:
             self.role("amplifier").output_on()
         self.emitting = True
         self.wait_until(deadline)
@@ -364,11 +397,34 @@ class Runner:
         return x, y
 
     # ---- one point ---------------------------------------------------------------------------
-    def measure(self, spec: Any) -> tuple[Any, Any, Any, int]:
-        """Set, settle, sweep, read and reduce one point, retrying faults; (x, y, red, tries)."""
+    def wants_input(self, spec: Any) -> bool:
+        """True when this point also captures the spool input (every ``osa.input_every``-th
+        point of the plan, by plan index, so a resumed run captures the same points)."""
+        return bool(self.input_every) and int(spec.index) % self.input_every == 0
+
+    def set_path(self, path: int) -> None:
+        """Route the OSA through the switch (1 spool output, 2 input tap), if not already."""
+        if "switch" in self.bench.instruments:
+            self.apply([Setting("switch", "set_path", path)])
+
+    def capture(self, kind: str) -> Captured:
+        """Sweep and read one trace through the switch path of ``kind`` ("output" or "input")."""
+        self.set_path(2 if kind == "input" else 1)
+        osa = self.role("osa")
+        osa.sweep()
+        x, y = self.read_trace(osa)
+        return Captured(kind, x, y)
+
+    def measure(self, spec: Any) -> tuple[list[Captured], Any, int]:
+        """Set, settle, sweep, read and reduce one point, retrying faults.
+
+        Returns the traces (output first; then the spool input when this point captures it,
+        through switch path 2), the output trace's reduction, and the attempts it took.
+        """
         from labrun.reduce import reduce_trace
 
         settings = self.settings_for(spec.setpoint)
+        kinds = ("input", "output") if self.wants_input(spec) else ("output",)
         attempt = 0
         while True:
             attempt += 1
@@ -377,16 +433,17 @@ class Runner:
                 if not self.emitting:
                     self.prepare(settings)
                 self.wait_until(self.apply(settings))
-                osa = self.role("osa")
-                osa.sweep()
-                x, y = self.read_trace(osa)
+                traces = [self.capture(kind) for kind in kinds]
                 self.check_emission()
                 break
             except InstrumentError as exc:
                 self.fault(spec, attempt, exc)
-        red = reduce_trace(x, y, self.rbw_nm, x_unit="nm", orders=self.orders,
-                           expected_thz=expected_thz(spec.setpoint))
-        return x, y, red, attempt
+        traces.sort(key=lambda t: t.kind != "output")
+        tones = expected_thz(spec.setpoint)
+        for tr in traces:
+            tr.reduction = reduce_trace(tr.x, tr.y, self.rbw_nm, x_unit="nm",
+                                        orders=self.orders, expected_thz=tones)
+        return traces, traces[0].reduction, attempt
 
     def fault(self, spec: Any, attempt: int, exc: Exception) -> None:
         """Record a fault; reconnect and let the caller retry, or abort beyond the policy."""
@@ -406,16 +463,21 @@ class Runner:
                     raise RunAborted(f"reconnect failed: {again}") from again
         self.store.add_event(self.run_id, "retry", f"attempt {attempt + 1}", point_key=spec.key)
 
-    def commit(self, spec: Any, x: Any, y: Any, red: Any, attempts: int, started: Any) -> None:
-        """Point, trace and lines in one transaction."""
-        lines = [_line_dict(ml) for ml in red.lines]
+    def commit(self, spec: Any, traces: Sequence[Captured], red: Any, attempts: int,
+               started: Any) -> None:
+        """Point, traces and lines in one transaction (input-trace lines link to that trace)."""
+        lines = [_line_dict(ml, trace=i) for i, tr in enumerate(traces)
+                 for ml in tr.reduction.lines]
         applied = {f"{r}.{m}": v for (r, m), v in self.applied.items()}
+        settings = self.trace_settings(spec.setpoint)
         self.store.add_point(
             self.run_id, key=spec.key, index=spec.index, setpoint=_jsonable(spec.setpoint),
             repeat=int(getattr(spec, "repeat", 0) or 0),
             is_reference=bool(getattr(spec, "is_reference", False)),
-            traces=[TraceData(x, y, rbw_nm=self.rbw_nm,
-                              settings=self.trace_settings(spec.setpoint))],
+            traces=[TraceData(tr.x, tr.y, kind=tr.kind, rbw_nm=self.rbw_nm,
+                              settings=settings if tr.kind == "output"
+                              else {**settings, "switch_path": 2})
+                    for tr in traces],
             lines=lines, applied=_jsonable(applied),
             spacing_ghz=getattr(red, "spacing_ghz", None),
             floor_dbm=getattr(red, "floor_dbm", None),
@@ -433,8 +495,8 @@ class Runner:
             for spec in specs:
                 self.guard.check()
                 started = utcnow()
-                x, y, red, attempts = self.measure(spec)
-                self.commit(spec, x, y, red, attempts, started)
+                traces, red, attempts = self.measure(spec)
+                self.commit(spec, traces, red, attempts, started)
                 done += 1
                 if bar is not None:
                     bar.set_postfix_str(_postfix(red), refresh=False)
@@ -460,13 +522,11 @@ def expected_thz(setpoint: dict[str, Any]) -> tuple[float, float] | None:
     return f_a, f_a + float(spacing) / 1000.0
 
 
-def _line_dict(line: Any) -> dict[str, Any]:
-    """A MeasuredLine as a plain dict for the store."""
-    if isinstance(line, dict):
-        return line
-    if is_dataclass(line):
-        return asdict(line)
-    return dict(vars(line))
+def _line_dict(line: Any, trace: int = 0) -> dict[str, Any]:
+    """A MeasuredLine as a plain dict for the store, linked to trace number ``trace``."""
+    out = dict(line) if isinstance(line, dict) else dict(vars(line))
+    out["trace"] = trace
+    return out
 
 
 def _as_mapping(obj: Any) -> dict[str, Any]:
@@ -554,6 +614,8 @@ def run_plan(plan: Any, bench: Any, store: Store, *, operator: str | None = None
 
     Raises InputError/SafetyError before touching anything when the run may not start.
     """
+    from labrun import safety
+
     text = preflight(plan, bench, operator=operator, unattended=unattended,
                      ack_safety=ack_safety, confirm=confirm)
     if echo is not None and unattended:
@@ -561,9 +623,13 @@ def run_plan(plan: Any, bench: Any, store: Store, *, operator: str | None = None
     specs = list(plan.points())
     run_id = store.create_run(**_run_fields(plan, bench, operator=operator,
                                             unattended=unattended, total=len(specs)))
+    wc = safety.worst_case(plan, bench)
     ack = "acknowledged unattended (--ack-safety)" if unattended else "confirmed interactively"
-    store.add_event(run_id, "safety_ack", f"emission {ack} by {operator or 'operator'}",
-                    data={"operator": operator, "unattended": unattended, "text": text})
+    store.add_event(run_id, "safety_ack", f"emission {ack} by {operator or 'operator'} "
+                    f"(advisory hazard class {wc.hazard_class})",
+                    data={"operator": operator, "unattended": unattended, "text": text,
+                          "hazard_class": wc.hazard_class,
+                          "max_launched_dbm": wc.max_launched_dbm})
     return _execute(plan, bench, store, run_id, specs, done=0, policy=policy,
                     progress=progress, transcript=transcript, first=True)
 

@@ -70,10 +70,11 @@ class _ProfileHead(_Strict):
 
 
 class Capabilities(_Strict):
-    """What the instrument reports: emission state and interlock."""
+    """What the instrument reports (emission state, interlock) and what messages it takes."""
 
     output_state: bool = False
     interlock: bool = False
+    compound_messages: bool = False  # takes IEEE 488.2 compound program messages ("A;:B?;:C?")
 
 
 class TraceSpec(_Strict):

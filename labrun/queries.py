@@ -7,7 +7,7 @@ from __future__ import annotations
 
 import numpy as np
 import pandas as pd
-from sqlalchemy import select
+from sqlalchemy import or_, select
 
 from labrun.errors import InputError
 from labrun.lines import LineId
@@ -23,7 +23,8 @@ def run_points(store: Store, run_id: int, *, include_reference: bool = True) -> 
     """One row per stored point of a run: setpoint columns plus a dBm column per detected line.
 
     Undetected lines are NaN (their upper limits stay in the lines table). Reference points are
-    flagged in ``is_reference`` so callers can keep them out of fits.
+    flagged in ``is_reference`` so callers can keep them out of fits. Lines of input-tap traces
+    (switch path 2) are left out: the columns are the spool output.
     """
     if store.get_run(run_id) is None:
         raise InputError(f"no run {run_id} in this database", field="RUN_ID")
@@ -32,9 +33,13 @@ def run_points(store: Store, run_id: int, *, include_reference: bool = True) -> 
             select(Point.id, Point.index, Point.key, Point.is_reference, Point.repeat,
                    Point.setpoint, Point.floor_dbm).where(Point.run_id == run_id)
             .order_by(Point.index)).all()
+        # lines of the spool output only: input-tap traces (kind "input") have lines of their own
         lines = s.execute(
             select(Line.point_id, Line.kind, Line.side, Line.order, Line.power_dbm, Line.detected)
-            .join(Point, Point.id == Line.point_id).where(Point.run_id == run_id)).all()
+            .join(Point, Point.id == Line.point_id)
+            .outerjoin(Trace, Trace.id == Line.trace_id)
+            .where(Point.run_id == run_id, or_(Trace.kind.is_(None), Trace.kind == "output"))
+        ).all()
     rows: dict[int, dict] = {}
     for p in points:
         row = {"point_id": p.id, "index": p.index, "key": p.key, "is_reference": p.is_reference,

@@ -352,8 +352,9 @@ def check_caps(plan: Plan, bench: Any, *,
             seen.add(tag)
             out.append(v)
 
+    amp = bool(getattr(plan, "amplifier", False))
     for p in pts:
-        for v in _point_violations(p, bench, laser_dbm):
+        for v in _point_violations(p, bench, laser_dbm, amplifier=amp):
             add(v)
     if not any(v.kind == "cap" and v.field == "max_power_dbm" for v in out):
         wc = worst_case(plan, bench, laser_dbm=laser_dbm)
@@ -368,10 +369,12 @@ def check_caps(plan: Plan, bench: Any, *,
     return out
 
 
-def _point_violations(p: PointSpec, bench: Any,
-                      laser_dbm: Mapping[str, float] | None) -> Iterable[Violation]:
-    """Caps and ranges broken by one point."""
-    sp = p.setpoint
+def _point_violations(p: PointSpec, bench: Any, laser_dbm: Mapping[str, float] | None, *,
+                      amplifier: bool) -> Iterable[Violation]:
+    """Caps and ranges broken by one point; ``amplifier`` is the plan's flag (plan.amplifier),
+    so the amplifier set-point is checked whatever the setpoint itself carries."""
+    sp = {**p.setpoint, "amplifier": amplifier}
+    amp_capped = False
     for arm in ARMS:
         role = f"laser_{arm}"
         level = laser_level(sp, bench, arm, laser_dbm)
@@ -389,6 +392,7 @@ def _point_violations(p: PointSpec, bench: Any,
         amp = _dbm(_mw(sp["power_a_dbm"]) + _mw(sp["power_b_dbm"])) + amp_loss
         cap = _cap(bench, "amplifier")
         if cap is not None and amp > cap + 1e-9:
+            amp_capped = True
             yield Violation("cap", f"amplifier: output {amp:.2f} dBm exceeds its bench cap "
                             f"{cap:.2f} dBm (point {p.index})", role="amplifier",
                             field="max_power_dbm", value=round(amp, 3), limit=cap,
@@ -397,6 +401,8 @@ def _point_violations(p: PointSpec, bench: Any,
     try:
         instrument_settings(sp, bench, laser_dbm=laser_dbm)
     except SafetyError as exc:
+        if amp_capped and str(exc).startswith("amplifier:"):
+            return  # the same amplifier cap, reported above with its role and field
         kind = "cap" if "cap" in str(exc) else "range"
         yield Violation(kind, f"{exc} (point {p.index})", role="attenuator",
                         field="launched_power", point=p.index)

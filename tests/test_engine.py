@@ -239,3 +239,32 @@ def test_trace_bytes_match_what_the_osa_sent(tmp_path, lab):
         # practice: a line narrower than the RBW reads its total power at its peak).
         near = np.abs(tr.x() - tone.wavelength_nm) < 0.05
         assert float(y32[near].max()) == pytest.approx(tone.power_dbm, abs=0.1)
+
+
+@pytest.mark.parametrize("args", [
+    ["status"], ["status", "--json"], ["status", "4"], ["resume", "4"],
+    ["status", "--db", "sqlite:///elsewhere.db"],
+])
+def test_status_and_resume_in_an_empty_folder(tmp_path, monkeypatch, capsys, args):
+    """No labrun.db here: one clear line, exit 2, and no database created to say so."""
+    monkeypatch.chdir(tmp_path)
+    assert main(args) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "no run store here" in err[0] and "--db" in err[0]
+    assert list(tmp_path.iterdir()) == []
+
+
+def test_status_refuses_a_file_that_is_not_a_run_store(tmp_path, capsys):
+    junk = tmp_path / "notes.db"
+    junk.write_text("not a database\n")
+    assert main(["status", "--db", str(junk)]) == 2
+    assert "not a labrun run store" in capsys.readouterr().err
+    assert junk.read_text() == "not a database\n"
+
+
+def test_off_without_a_bench_file_is_one_line(tmp_path, monkeypatch, capsys):
+    monkeypatch.chdir(tmp_path)
+    assert main(["off", "--bench", "bench.toml"]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "bench.toml" in err[0]
+    assert list(tmp_path.iterdir()) == []

@@ -156,3 +156,30 @@ def test_cautions_text():
     for phrase in ("eye", "skin", "invisible", "never look into a fibre end", "connector",
                    "cap every unused connector", "eyewear", "laser safety officer", "local rules"):
         assert phrase in text
+
+
+def test_amplifier_set_point_above_its_cap_is_refused(tmp_path, capsys):
+    """plan.amplifier = true: the amplifier output (total launched + amplifier_loss_db) is
+    checked against the amplifier's bench cap, by check_caps and by ``labrun check`` (exit 1)."""
+    from labrun.cli import main
+
+    bench = make_bench(tmp_path, amplifier=10.0, amp_loss=0.5)
+    body = POWERS.replace("4.0]", "7.0]")
+    plan = make_plan(tmp_path, body, head=BASE_PLAN.replace(
+        'spool = "HNLF-A17"', 'spool = "HNLF-A17"\namplifier = true'))
+    assert plan.amplifier
+    amp = _dbm_sum(7.0, 7.0) + 0.5  # 10.51 dBm > 10 dBm cap (P[mW] = 10^(dBm/10), common practice)
+    violations = safety.check_caps(plan, bench)
+    assert [(v.role, v.field, v.point) for v in violations] == [("amplifier", "max_power_dbm", 2)]
+    assert violations[0].value == pytest.approx(amp, abs=1e-3) and violations[0].limit == 10.0
+    rc = main(["check", str(tmp_path / "plan.toml"), "--bench", str(tmp_path / "bench.toml"),
+               "--json"])
+    import json
+
+    report = json.loads(capsys.readouterr().out)
+    assert rc == 1 and report["refused"]
+    assert report["violations"][0]["role"] == "amplifier"
+    assert report["worst_case"]["source_dbm"]["amplifier"] == pytest.approx(amp, abs=0.01)
+    # the same plan with the amplifier cap raised passes
+    ok_bench = make_bench(tmp_path, name="ok.toml", amplifier=11.0, amp_loss=0.5)
+    assert safety.check_caps(plan, ok_bench) == []

@@ -67,11 +67,14 @@ def test_trace_is_float32_bytes_and_linear_x_is_three_numbers(store):
         np.testing.assert_allclose(tr.y(), y, rtol=2**-23)
 
 
-def test_float32_linear_x_is_a_grid(store):
-    """A float32 x axis (REAL,32 block) of a linear grid is rebuilt within one float32 ulp."""
+@pytest.mark.parametrize("widened", [False, True])
+def test_float32_linear_x_is_a_grid(store, widened):
+    """A float32 x axis (REAL,32 block) of a linear grid is rebuilt within one float32 ulp, also
+    when the reader already widened it to float64 (labrun.scpi returns float64 arrays)."""
     run_id = _run(store)
     x32 = np.linspace(1548.5, 1551.6, 20001).astype(np.float32)
-    store.add_point(run_id, key="p0", index=0, setpoint={}, traces=[TraceData(x32, x32 * 0)],
+    x = x32.astype(np.float64) if widened else x32
+    store.add_point(run_id, key="p0", index=0, setpoint={}, traces=[TraceData(x, x * 0)],
                     lines=[])
     with store.session() as s:
         tr = s.scalars(select(Trace)).one()

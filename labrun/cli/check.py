@@ -140,7 +140,7 @@ def dry_run(plan: Plan, bench: Any, *, first: int = FIRST_POINTS) -> dict[str, A
     for n, p in enumerate(pts):
         cmds: list[dict[str, Any]] = []
         try:
-            steps = point_steps(p.setpoint, bench)
+            steps = point_steps({**p.setpoint, "amplifier": plan.amplifier}, bench)
         except SafetyError as exc:
             refused = True
             if n < first:
@@ -163,7 +163,7 @@ def dry_run(plan: Plan, bench: Any, *, first: int = FIRST_POINTS) -> dict[str, A
             cmds.append({"role": s.role, "text": _render(bench, s.role, s.op, s.value, s.index)})
         if n == 0:
             for role in ("attenuator_a", "attenuator_b", "laser_a", "laser_b", "amplifier"):
-                if role == "amplifier" and not p.setpoint.get("amplifier"):
+                if role == "amplifier" and not plan.amplifier:
                     continue
                 text = _render(bench, role, "output_on")
                 if text:
@@ -175,6 +175,10 @@ def dry_run(plan: Plan, bench: Any, *, first: int = FIRST_POINTS) -> dict[str, A
             wait += 2 * _op_settle(bench, "switch", "set_path")
             cmds.append({"role": "switch", "text": _render(bench, "switch", "set_path", 2)})
             cmds.append({"role": "osa", "text": _render(bench, "osa", "sweep")})
+            cmds.append({"role": "switch", "text": _render(bench, "switch", "set_path", 1)})
+        elif n == 0 and "switch" in bench.instruments:
+            # the engine routes the OSA to the spool output once before the first sweep
+            wait += _op_settle(bench, "switch", "set_path")
             cmds.append({"role": "switch", "text": _render(bench, "switch", "set_path", 1)})
         cmds.append({"role": "osa", "text": _render(bench, "osa", "sweep")})
         settle_total += wait * scale

@@ -81,7 +81,7 @@ def _report(outcome: Any, as_json: bool) -> int:
 def cmd_run(args: argparse.Namespace) -> int:
     """labrun run PLAN --bench BENCH ...: validate everything, then run."""
     from labrun.bench import load_bench
-    from labrun.engine import run_plan
+    from labrun.engine import require_roles, run_plan
     from labrun.plan import load_plan
     from labrun.resources import find_file
     from labrun.store import open_store
@@ -94,6 +94,7 @@ def cmd_run(args: argparse.Namespace) -> int:
 
         flag = "--operator NAME" if not args.operator else "--ack-safety"
         raise InputError(f"an unattended run needs {flag}", field=flag.split()[0])
+    require_roles(plan, bench)  # a bench that cannot run the plan: refused before any store
     store = open_store(args.db)
     try:
         outcome = run_plan(plan, bench, store, operator=args.operator,
@@ -109,10 +110,10 @@ def cmd_resume(args: argparse.Namespace) -> int:
     """labrun resume RUN_ID: continue a stored run where it stopped."""
     from labrun.bench import load_bench
     from labrun.engine import resume_run
-    from labrun.store import open_store
+    from labrun.store import open_existing_store
 
     bench = load_bench(args.bench) if args.bench else None
-    store = open_store(args.db)
+    store = open_existing_store(args.db)  # a run to resume must already be stored
     try:
         outcome = resume_run(args.run_id, store, bench=bench, force=args.force,
                              progress=not args.no_progress)

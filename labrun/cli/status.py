@@ -134,13 +134,9 @@ def _text(rep: dict[str, Any]) -> str:
 
 def cmd_status(args: argparse.Namespace) -> int:
     """labrun status [RUN_ID]: print a run's progress."""
-    from pathlib import Path
+    from labrun.store import open_existing_store
 
-    from labrun.store import open_store
-
-    if "://" not in str(args.db) and not Path(args.db).is_file():
-        raise InputError("no run store here (give --db)", file=str(args.db), field="--db")
-    store = open_store(args.db, create=False)
+    store = open_existing_store(args.db)  # never creates a database just to find it empty
     try:
         run_id = args.run_id if args.run_id is not None else store.latest_run_id()
         if run_id is None:

@@ -7,7 +7,8 @@ every source in a safe state (``safe_off_all``) without ever raising.
 from __future__ import annotations
 
 import logging
-from collections.abc import Iterable, Iterator, Mapping
+from collections.abc import Iterable, Iterator, Mapping, Sequence
+from typing import Any
 
 from labrun.bench import Bench
 from labrun.errors import InputError
@@ -19,13 +20,13 @@ from labrun.instruments.osa import OsaAdapter
 from labrun.instruments.pol_controller import PolControllerAdapter
 from labrun.instruments.power_meter import PowerMeterAdapter
 from labrun.instruments.switch import SwitchAdapter
-from labrun.scpi import Idn, ScpiSession
+from labrun.scpi import Idn, ScpiSession, query_each
 from labrun.transcript import Transcript
 
 __all__ = [
     "ADAPTERS", "Adapter", "AmplifierAdapter", "AttenuatorAdapter", "Instruments",
     "LaserAdapter", "OsaAdapter", "PolControllerAdapter", "PowerMeterAdapter", "SwitchAdapter",
-    "open_bench", "open_instrument",
+    "open_bench", "open_instrument", "output_states", "read_each",
 ]
 
 log = logging.getLogger("labrun.instruments")
@@ -39,13 +40,18 @@ SAFE_OFF_ORDER = ("amplifier", "laser_a", "laser_b", "attenuator_a", "attenuator
 
 
 def make_session(bench: Bench, role: str, transcript: Transcript | None = None) -> ScpiSession:
-    """An (unopened) SCPI session for one role, configured from its profile."""
+    """An (unopened) SCPI session for one role, configured from its profile.
+
+    Compound messages are used when the profile declares them, except on pyvisa-sim (``@sim``),
+    whose devices answer only whole messages listed in their YAML file.
+    """
     spec = bench.instruments[role]
     p = spec.profile
+    compound = p.capabilities.compound_messages and spec.backend != "@sim"
     return ScpiSession(spec.resource, spec.backend, write_termination=p.write_termination,
                        read_termination=p.read_termination, timeout_ms=p.timeout_ms,
                        error_query=p.error_query, opc_query=p.opc_query, transcript=transcript,
-                       role=role, sim_file=bench.sim_file)
+                       role=role, sim_file=bench.sim_file, compound=compound)
 
 
 def open_instrument(bench: Bench, role: str, *, transcript: Transcript | None = None) -> Adapter:
@@ -107,6 +113,26 @@ class Instruments(Mapping[str, Adapter]):
     def identities(self) -> dict[str, Idn]:
         """``*IDN?`` of every instrument, by role."""
         return {role: adapter.idn() for role, adapter in self._adapters.items()}
+
+
+def read_each(reads: Sequence[tuple[Adapter, str]]) -> list[Any]:
+    """Read one value query from each of several instruments at once (``scpi.query_each``: all
+    queries sent before any reply is read), parsed per operation. One read per instrument."""
+    ops = [adapter.query_text(name) for adapter, name in reads]
+    replies = query_each([(adapter.session, text) for (adapter, _), (_, text)
+                          in zip(reads, ops, strict=True)])
+    return [adapter.parse(op, reply) for (adapter, _), (op, _), reply
+            in zip(reads, ops, replies, strict=True)]
+
+
+def output_states(adapters: Sequence[Adapter]) -> list[bool | None]:
+    """Emission state of each source (None where the instrument does not report it), read from
+    all of them at once."""
+    reporting = [a for a in adapters if a.profile.capabilities.output_state
+                 and a.profile.has("read_output_state")]
+    states = dict(zip([id(a) for a in reporting],
+                      read_each([(a, "read_output_state") for a in reporting]), strict=True))
+    return [states.get(id(a)) for a in adapters]
 
 
 def open_bench(bench: Bench, *, transcript: Transcript | None = None,

@@ -153,6 +153,21 @@ class Adapter:
         except ValueError as exc:
             raise self._instrument_error(str(exc)) from None
 
+    def query_text(self, name: str) -> tuple[Operation, str]:
+        """The operation and SCPI text of a value query without an index (for batched reads)."""
+        op = self.profile.op(name)
+        if not op.is_query or op.parse == "trace" or op.index_range is not None:
+            raise InputError(f"{name} is not a plain value query", file=str(self.profile.path),
+                             field=f"operations.{name}")
+        return op, op.render()
+
+    def parse(self, op: Operation, reply: str) -> Any:
+        """Parse a reply to ``op`` (an InstrumentError naming this role when it does not fit)."""
+        try:
+            return parse_reply(op, reply)
+        except ValueError as exc:
+            raise self._instrument_error(str(exc)) from None
+
     def _read_trace_values(self, query: str) -> np.ndarray:
         """Read one trace array in the profile's transfer format (block, or ASCII fallback)."""
         if self._trace_format is None:
@@ -208,18 +223,48 @@ class Adapter:
         if missing:
             raise InputError(f"{self.role}: {name} needs {', '.join(missing)}",
                              file=str(self.profile.path), field=f"operations.{name}")
-        self.session.write(op.render(**fields))
+        target: Any = expect
+        if "value" in fields:
+            target = fields["value"]
+        elif values:
+            target = tuple(fields[k] for k in op.placeholders if k != "index")
+        back = self.profile.op(op.readback) if op.readback and target is not None else None
+        text = op.render(**fields)
+        if self._compound_ok() and op.settle_s * self.settle_scale <= 0:
+            self._apply_compound(op, text, back, checked, target)
+            return
+        self.session.write(text)
         self.settle(op.settle_s)
         if op.wait:
             self.session.opc_wait()
-        if op.readback:
-            target: Any = expect
-            if "value" in fields:
-                target = fields["value"]
-            elif values:
-                target = tuple(fields[k] for k in op.placeholders if k != "index")
-            if target is not None:
-                self.verify(op, self.read(op.readback, index=checked), target)
+        if back is not None:
+            self.verify(op, self.read(back.name, index=checked), target)
+
+    def _compound_ok(self) -> bool:
+        """True when settings may travel as one compound message with their follow-up queries."""
+        return bool(self.session.compound and self.session.error_query)
+
+    def _apply_compound(self, op: Operation, text: str, back: Operation | None,
+                        index: int | None, target: Any) -> None:
+        """Setting, ``*OPC?`` (if the operation waits), read-back and error query in ONE message:
+        the same checks as the separate exchanges, in one round trip (no settle time to wait)."""
+        queries: list[str] = []
+        if op.wait and self.session.opc_query:
+            queries.append(self.session.opc_query)
+        if back is not None:
+            queries.append(back.render(**({"index": index} if index is not None else {})))
+        replies = self.session.setting(text, queries)
+        if op.wait and self.session.opc_query:
+            opc = replies.pop(0)
+            if opc.strip().lstrip("+") not in ("1", "1.0"):
+                raise self._instrument_error(f"{self.session.opc_query} answered {opc!r}, "
+                                             "expected 1")
+        if back is not None:
+            try:
+                got = parse_reply(back, replies[0])
+            except ValueError as exc:
+                raise self._instrument_error(str(exc)) from None
+            self.verify(op, got, target)
 
     def verify(self, op: Operation, got: Any, want: Any) -> None:
         """Compare a read-back with the value set, within the operation's tolerance."""

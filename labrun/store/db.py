@@ -16,9 +16,20 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
-from sqlalchemy import Engine, bindparam, create_engine, event, func, insert, select, update
+from sqlalchemy import (
+    Engine,
+    bindparam,
+    create_engine,
+    event,
+    func,
+    insert,
+    inspect,
+    or_,
+    select,
+    update,
+)
 from sqlalchemy.engine import make_url
-from sqlalchemy.exc import ArgumentError
+from sqlalchemy.exc import ArgumentError, SQLAlchemyError
 from sqlalchemy.orm import Session, sessionmaker
 
 from labrun.errors import InputError
@@ -70,8 +81,9 @@ def _sqlite_pragmas(dbapi_conn: Any, _record: Any) -> None:
 def encode_x(x: np.ndarray) -> tuple[float, float, int, bytes | None]:
     """(start, stop, n, blob): blob is None when x is a linear grid (then 3 numbers rebuild it).
 
-    An OSA x axis is a linear grid set by centre, span and points; when it arrives as float32,
-    its values sit within float32 rounding of that grid, which counts as linear too.
+    An OSA x axis is a linear grid set by centre, span and points; when it arrives as float32
+    (also when already widened to float64), its values sit within float32 rounding of that grid,
+    which counts as linear too.
     """
     raw = np.asarray(x)
     xs = raw.astype(np.float64)
@@ -83,7 +95,8 @@ def encode_x(x: np.ndarray) -> tuple[float, float, int, bytes | None]:
         grid = np.linspace(start, stop, n)
         step = abs(stop - start) / (n - 1)
         tol = 1e-6 * step
-        if raw.dtype == np.float32:  # within one float32 ulp: what was received, rebuilt
+        if raw.dtype == np.float32 or np.array_equal(xs, xs.astype(np.float32)):
+            # float32 data: within one float32 ulp is what was received, rebuilt
             tol = max(tol, float(np.finfo(np.float32).eps) * float(np.max(np.abs(xs))))
         if step > 0 and np.max(np.abs(xs - grid)) <= tol:
             return start, stop, n, None
@@ -188,8 +201,11 @@ class Store:
                                    .order_by(Point.id.desc()).limit(recent + 1)))
             last = s.scalars(select(Point).where(Point.run_id == run_id)
                              .order_by(Point.id.desc()).limit(1)).first()
-            last_lines = [] if last is None else list(s.scalars(
-                select(Line).where(Line.point_id == last.id).order_by(Line.id)))
+            last_lines = [] if last is None else list(s.scalars(  # spool output lines only
+                select(Line).outerjoin(Trace, Trace.id == Line.trace_id)
+                .where(Line.point_id == last.id,
+                       or_(Trace.kind.is_(None), Trace.kind == "output"))
+                .order_by(Line.id)))
             faults = int(s.scalar(select(func.count(Event.id)).where(
                 Event.run_id == run_id, Event.kind == "fault")) or 0)
             last_fault = s.scalars(select(Event).where(Event.run_id == run_id,
@@ -281,6 +297,55 @@ def _line_row(point_id: int, trace_ids: Sequence[int], line: dict[str, Any]) -> 
     row["trace_id"] = trace_ids[t] if trace_ids and t is not None else None
     row["point_id"] = point_id
     return row
+
+
+def open_existing_store(url_or_path: str | os.PathLike[str] = DEFAULT_DB) -> Store:
+    """Open a run store that must already exist (status, resume): never creates a database.
+
+    A missing SQLite file, a file that is not SQLite, or a database without labrun's tables is
+    an InputError naming ``--db`` (exit 2); a SQLite file is checked read-only before opening.
+    """
+    url = store_url(url_or_path)
+    where = os.fspath(url_or_path)
+    parsed = make_url(url)
+    if parsed.get_backend_name() == "sqlite":
+        path = Path(parsed.database or "")
+        if not parsed.database or parsed.database == ":memory:" or not path.is_file():
+            raise InputError("no run store here (no such database file); give --db, or start "
+                             "a run with 'labrun run'", file=where, field="--db")
+        if not _sqlite_has_runs(path):
+            raise InputError("not a labrun run store (no runs table)", file=where, field="--db")
+        return open_store(url, create=False)
+    store = open_store(url, create=False)
+    try:
+        found = inspect(store.engine).has_table(Run.__tablename__)
+    except SQLAlchemyError as exc:
+        store.close()
+        raise InputError(f"cannot open the database ({type(exc).__name__})", file=where,
+                         field="--db") from None
+    if not found:
+        store.close()
+        raise InputError("not a labrun run store (no runs table)", file=where, field="--db")
+    return store
+
+
+def _sqlite_has_runs(path: Path) -> bool:
+    """True when the SQLite file at ``path`` has a runs table (opened read-only, unchanged)."""
+    import sqlite3
+
+    try:
+        con = sqlite3.connect(f"{path.resolve().as_uri()}?mode=ro", uri=True,
+                              timeout=BUSY_TIMEOUT_MS / 1000)
+    except sqlite3.Error:
+        return False
+    try:
+        row = con.execute("SELECT 1 FROM sqlite_master WHERE type = 'table' AND name = ?",
+                          (Run.__tablename__,)).fetchone()
+    except sqlite3.Error:  # not a database at all
+        return False
+    finally:
+        con.close()
+    return row is not None
 
 
 def open_store(url_or_path: str | os.PathLike[str] = DEFAULT_DB, *, create: bool = True) -> Store:
