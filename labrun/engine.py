@@ -385,14 +385,14 @@ class Runner:
         return {"center_nm": o.center_nm, "span_nm": o.span_nm, "rbw_nm": o.rbw_nm,
                 "points": o.points}
 
-    def read_trace(self, osa: Any) -> tuple[Any, Any]:
-        """(x, y) of the last sweep; x is read once per OSA configuration (it is fixed by
-        centre, span and points), then only y travels, halving the transfer per point."""
-        if self.trace_x is not None:
-            y = osa.read("read_trace_y")
+    def sweep_and_read(self, osa: Any) -> tuple[Any, Any]:
+        """Sweep and read (x, y); x is read once per OSA configuration (it is fixed by centre,
+        span and points), then only y travels, halving the transfer per point."""
+        x, y = osa.sweep_and_read(with_x=self.trace_x is None)
+        if x is None:
             if y.size == self.trace_x.size:
                 return self.trace_x, y
-        x, y = osa.read_trace()
+            x, y = osa.read_trace()  # the configuration changed behind our back: read both
         self.trace_x = x
         return x, y
 
@@ -410,9 +410,7 @@ class Runner:
     def capture(self, kind: str) -> Captured:
         """Sweep and read one trace through the switch path of ``kind`` ("output" or "input")."""
         self.set_path(2 if kind == "input" else 1)
-        osa = self.role("osa")
-        osa.sweep()
-        x, y = self.read_trace(osa)
+        x, y = self.sweep_and_read(self.role("osa"))
         return Captured(kind, x, y)
 
     def measure(self, spec: Any) -> tuple[list[Captured], Any, int]:

@@ -374,15 +374,18 @@ class ScpiSession:
         with self._lock:
             return self._attempts("query", cmd, action, lambda a: f"<block {4 * a.size} bytes>")
 
-    def _read_block(self, big_endian: bool) -> np.ndarray:
+    def _read_block(self, big_endian: bool, *, head: bytes = b"", last: bool = True
+                    ) -> np.ndarray:
         """Read one definite-length block response (IEEE 488.2 7.7.6) and decode it with pyvisa.
 
-        The header (``#``, digit n, n digits of length) is read first; the body, whose length is
-        then known, is read with the termination character disabled, because binary data holds
-        newline bytes and each one would otherwise end a low-level read (hundreds per trace).
+        The header (``#``, digit n, n digits of length) is read first (``head``: what of it was
+        already read); the body, whose length is then known, is read with the termination
+        character disabled, because binary data holds newline bytes and each one would otherwise
+        end a low-level read (hundreds per trace). ``last``: the block ends the response message
+        (the termination follows); otherwise more response units follow it.
         """
         res = self._res
-        head = res.read_bytes(2)
+        head = head + res.read_bytes(2 - len(head))
         if head[:1] != b"#" or not head[1:2].isdigit() or head[1:2] == b"0":
             raise InstrumentError(f"expected a definite-length block, got {head!r}",
                                   role=self.role, resource=self.resource)
@@ -390,13 +393,13 @@ class ScpiSession:
         if not digits.isdigit():
             raise InstrumentError(f"bad block length {digits!r}", role=self.role,
                                   resource=self.resource)
-        term = (self.read_termination or "").encode("ascii")
+        term = (self.read_termination or "").encode("ascii") if last else b""
         size = int(digits) + len(term)
         res.set_visa_attribute(constants.ResourceAttribute.termchar_enabled, constants.VI_FALSE)
         try:
             body = res.read_bytes(size, chunk_size=max(size, 1))
         finally:
-            if term:
+            if self.read_termination:
                 res.set_visa_attribute(constants.ResourceAttribute.termchar_enabled,
                                        constants.VI_TRUE)
         if term and not body.endswith(term):
@@ -405,6 +408,73 @@ class ScpiSession:
         block = head + digits + body[:len(body) - len(term)]
         return from_ieee_block(block, datatype="f", is_big_endian=big_endian,
                                container=np.array)
+
+    def setting_then_block(self, cmd: str, queries: list[str] | tuple[str, ...], block_query: str,
+                           byte_order: str = "little") -> tuple[list[str], np.ndarray]:
+        """A setting, ``queries``, a REAL,32 block query and the error query in ONE compound
+        message (``INIT:IMM;*OPC?;:TRAC:DATA:Y?;:SYST:ERR?``); the replies to ``queries`` and the
+        block's values. Errors are handled as in :meth:`setting` (the error query comes last)."""
+        if not (self.compound and self.error_query):
+            raise InstrumentError("compound messages are not enabled for this instrument",
+                                  role=self.role, resource=self.resource)
+        message = compound(cmd, [*queries, block_query, self.error_query])
+
+        def action() -> tuple[list[str], np.ndarray | None, str]:
+            self._res.write(message)
+            return self._read_mixed(len(queries), byte_order == "big")
+
+        def describe(r: tuple[list[str], np.ndarray | None, str]) -> str:
+            block = "<no block>" if r[1] is None else f"<block {4 * r[1].size} bytes>"
+            return ";".join([*r[0], block, r[2]])
+
+        with self._lock:
+            units, values, err = self._attempts("write", message, action, describe)
+            try:
+                code, text = parse_error_reply(err)
+            except ValueError as exc:
+                raise InstrumentError(f"{exc} (after {message!r})", role=self.role,
+                                      resource=self.resource) from None
+            if code != 0:
+                raise ScpiError(code, text, cmd, role=self.role, resource=self.resource,
+                                more=self._count_more_errors(cmd))
+            if values is None or len(units) != len(queries):
+                raise InstrumentError(f"reply to {message!r} has {len(units)} text units and "
+                                      f"{'no' if values is None else 'a'} block, expected "
+                                      f"{len(queries)} and a block", role=self.role,
+                                      resource=self.resource)
+            return units, values
+
+    def _read_mixed(self, n_text: int, big_endian: bool
+                    ) -> tuple[list[str], np.ndarray | None, str]:
+        """Read a response of ``n_text`` text units, a block, and a last text unit (the error
+        query's reply); (text units, block values or None, last unit). A response that ends
+        early (a query failed, so its unit is missing) comes back without the block."""
+        res = self._res
+        units: list[str] = []
+        text = bytearray()
+        quoted = False
+        while len(units) < n_text:
+            ch = res.read_bytes(1)
+            if ch == b"\n":  # the message ended before the block: a query gave no reply
+                units.append(text.decode("ascii", "replace").strip())
+                return units[:-1], None, units[-1]
+            if ch == b'"':
+                quoted = not quoted
+            if ch == b";" and not quoted:
+                units.append(text.decode("ascii", "replace").strip())
+                text.clear()
+            else:
+                text += ch
+        first = res.read_bytes(1)
+        if first != b"#":  # no block: what is left is text up to the termination
+            rest = split_units((first + res.read_raw()).decode("ascii", "replace").strip())
+            return units + rest[:-1], None, rest[-1]
+        values = self._read_block(big_endian, head=first, last=False)
+        rest = res.read().strip()
+        if not rest.startswith(";"):
+            raise InstrumentError(f"expected ';' after the block, got {rest[:20]!r}",
+                                  role=self.role, resource=self.resource)
+        return units, values, rest[1:]
 
     def query_ascii_floats(self, cmd: str) -> np.ndarray:
         """Query a comma-separated list of numbers (the SCPI ASCii data format)."""

@@ -33,6 +33,30 @@ class OsaAdapter(Adapter):
         if not op.wait:
             self.session.opc_wait()
 
+    def sweep_and_read(self, *, with_x: bool = True) -> tuple[np.ndarray | None, np.ndarray]:
+        """Sweep, wait for it, and read the trace (y only unless ``with_x``; x is then None).
+
+        Once the REAL,32 transfer is set up, on an instrument that takes compound messages and
+        with no settle time after the sweep, y comes in the same message as the sweep, ``*OPC?``
+        and the error query: one round trip per point instead of two.
+        """
+        op = self.profile.op("sweep")
+        y_op = self.profile.op("read_trace_y")
+        if (not with_x and self._compound_ok() and self._trace_format == "real32"
+                and self.session.opc_query and op.settle_s * self.settle_scale <= 0):
+            assert self.profile.trace is not None
+            (opc,), y = self.session.setting_then_block(
+                op.render(), [self.session.opc_query], y_op.render(),
+                self.profile.trace.byte_order)
+            if opc.strip().lstrip("+") not in ("1", "1.0"):
+                raise self._instrument_error(f"{self.session.opc_query} answered {opc!r}, "
+                                             "expected 1")
+            return None, y
+        self.sweep()
+        if with_x:
+            return self.read_trace()
+        return None, self.read("read_trace_y")
+
     def read_trace(self) -> tuple[np.ndarray, np.ndarray]:
         """The last trace: wavelengths (nm) and powers (dBm per RBW), same length."""
         x = self.read("read_trace_x")
