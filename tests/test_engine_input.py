@@ -57,7 +57,7 @@ def _run(tmp_path, lab, plan_path, transcript=None):
     return store, out
 
 
-def test_input_spectrum_is_captured_through_switch_path_2(tmp_path):
+def test_input_spectrum_is_captured_through_switch_path_2(tmp_path, capsys):
     sc = scenario()
     tap_db = sc["bench"]["input_tap_db"]
     transcript = Transcript()
@@ -109,6 +109,9 @@ def test_input_spectrum_is_captured_through_switch_path_2(tmp_path):
                     for ln in p.lines if ln.kind == "tone" and ln.side == "low"
                     and ln.trace_id == next(t.id for t in p.traces if t.kind == "output")]
     np.testing.assert_allclose(table["tone_low_0"].to_numpy(), tone_out)
+    assert main(["status", "--db", str(tmp_path / "runs.db"), "--json"]) == 0
+    last = json.loads(capsys.readouterr().out)["last_point"]
+    assert len(last["lines"]) == 6  # the output trace's lines, not the input tap's as well
 
 
 def test_input_capture_without_a_switch_is_refused_before_anything(tmp_path, capsys):
@@ -163,3 +166,23 @@ def test_amplifier_on_the_bench_stays_off_for_a_plan_without_it(tmp_path):
         assert out.status == "completed" and dark(lab)
     assert not any(c.startswith("OUTP:STAT ON") for c in transcript.commands("amplifier"))
     assert transcript.commands("amplifier")[-1].startswith("OUTP:STAT OFF")  # the safe-off
+
+
+def test_amplifier_plan_over_the_amplifier_cap_is_refused_before_any_write(tmp_path):
+    """plan.amplifier: output = launched total + amplifier_loss_db (DEVELOPERS.md, "Bench
+    files") must stay under the amplifier's bench cap; refused before anything is sent."""
+    from labrun.errors import SafetyError
+
+    sc = scenario()
+    sc["instruments"]["amplifier"]["present"] = True
+    sc["bench"]["caps"]["amplifier"] = 9.0
+    plan_path = _plan(tmp_path, powers=(6.0, 9.0), capture="false",
+                      plan_extra="amplifier = true")
+    transcript = Transcript()
+    with VirtualLab(sc) as lab:
+        with pytest.raises(SafetyError, match="amplifier"):
+            _run(tmp_path, lab, plan_path, transcript)
+        assert transcript.entries == [] and lab.sources_off()
+    # 9 dBm + amplifier_loss_db from the scenario: above 9 dBm; 6 dBm + loss is not
+    loss = sc["bench"]["amplifier_loss_db"]
+    assert 9.0 + loss > 9.0 >= 6.0 + loss
