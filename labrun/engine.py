@@ -207,15 +207,23 @@ class Runner:
         self.stops = StopWatch(getattr(plan, "stop_conditions", []) or [])
         self.show_progress = progress
         self.last_beat = 0.0
+        self.identities: dict[str, str] | None = None
 
     # ---- connections -------------------------------------------------------------------------
     def open(self) -> dict[str, str]:
         """Open every bench instrument; the identities as strings."""
         from labrun.instruments import open_bench
 
-        self.instruments = open_bench(self.bench, transcript=self.transcript)
-        self.guard.set_instruments(self.instruments)
-        return {role: str(idn) for role, idn in self.instruments.identities().items()}
+        instruments = open_bench(self.bench, transcript=self.transcript)
+        self.instruments = instruments
+        self.guard.set_instruments(instruments)
+        ids = {role: str(idn) for role, idn in instruments.identities().items()}
+        if self.identities is not None and ids != self.identities:
+            changed = ", ".join(r for r in sorted(set(ids) | set(self.identities))
+                                if ids.get(r) != self.identities.get(r))
+            raise RunAborted(f"instrument identity changed on reconnect ({changed})")
+        self.identities = ids
+        return ids
 
     def close(self) -> None:
         """Close the connections (after the safe-off)."""
@@ -427,6 +435,8 @@ class Runner:
         while True:
             attempt += 1
             try:
+                if self.instruments is None:  # a reconnect after a fault failed: try again
+                    self.open()
                 self.configure_osa(spec.setpoint)
                 if not self.emitting:
                     self.prepare(settings)

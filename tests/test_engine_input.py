@@ -186,3 +186,40 @@ def test_amplifier_plan_over_the_amplifier_cap_is_refused_before_any_write(tmp_p
     # 9 dBm + amplifier_loss_db from the scenario: above 9 dBm; 6 dBm + loss is not
     loss = sc["bench"]["amplifier_loss_db"]
     assert 9.0 + loss > 9.0 >= 6.0 + loss
+
+
+def test_a_failed_reconnect_is_retried_not_fatal(tmp_path, monkeypatch):
+    """A fault, then a reconnect that fails once: the next attempt opens the bench again (it
+    used to find no connections at all) and the run completes, dark at the end."""
+    import labrun.instruments
+    from labrun.errors import InstrumentError
+    from labrun.instruments.osa import OsaAdapter
+
+    real_open, real_sweep = labrun.instruments.open_bench, OsaAdapter.sweep_and_read
+    calls = {"open": 0, "sweep": 0}
+
+    def flaky_open(bench, **kw):
+        calls["open"] += 1
+        if calls["open"] == 2:  # the first reconnect
+            raise InstrumentError("no answer (injected by the test)", role="osa")
+        return real_open(bench, **kw)
+
+    def flaky_sweep(self, **kw):
+        calls["sweep"] += 1
+        if calls["sweep"] == 1:
+            raise InstrumentError("sweep timed out (injected by the test)", role="osa")
+        return real_sweep(self, **kw)
+
+    monkeypatch.setattr(labrun.instruments, "open_bench", flaky_open)
+    monkeypatch.setattr(OsaAdapter, "sweep_and_read", flaky_sweep)
+    with VirtualLab(scenario()) as lab:
+        store = open_store(tmp_path / "runs.db")
+        out = run_plan(load_plan(_plan(tmp_path, capture="false")),
+                       load_bench(write_bench(lab, tmp_path)), store, operator=OPERATOR,
+                       unattended=True, ack_safety=True, progress=False,
+                       policy=RetryPolicy(attempts=3, backoff_s=0.0))
+        assert out.status == "completed" and out.points_done == 3 and dark(lab)
+    faults = [e.message for e in store.events(out.run_id, ["fault"])]
+    assert any("sweep timed out" in m for m in faults)
+    assert any(m.startswith("reconnect failed") for m in faults)
+    assert calls["open"] == 3
