@@ -22,6 +22,7 @@ from pydantic import BaseModel, ConfigDict, Field, ValidationError
 
 from labrun.errors import InputError
 from labrun.physics.units import C_M_PER_S
+from labrun.resources import find_file
 
 # ITU-T G.694.1 (DWDM frequency grid): anchor 193.1 THz, fixed grids of 12.5/25/50/100 GHz.
 ITU_ANCHOR_THZ = 193.1
@@ -377,9 +378,13 @@ def _loc(loc: Sequence[Any]) -> str:
 
 
 def load_plan(path: str | Path) -> Plan:
-    """Read, validate and expand a plan file; raises InputError naming file and field."""
-    p = Path(path)
-    fname = str(path)
+    """Read, validate and expand a plan file; raises InputError naming file and field.
+
+    A name that is not an existing path is looked up among the shipped plans (``sweeps/``), so
+    ``power-sweep.toml`` works from any folder.
+    """
+    p = find_file(path, "sweeps", suffixes=("", ".toml")) or Path(path)
+    fname = str(path) if p == Path(path) else str(p)
     try:
         raw = p.read_bytes()
     except OSError as exc:

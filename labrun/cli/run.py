@@ -83,11 +83,10 @@ def cmd_run(args: argparse.Namespace) -> int:
     from labrun.bench import load_bench
     from labrun.engine import require_roles, run_plan
     from labrun.plan import load_plan
-    from labrun.resources import find_file
     from labrun.store import open_store
 
     # a path, or the name of a shipped example ("power-sweep")
-    plan = load_plan(find_file(args.plan, "sweeps", suffixes=("", ".toml")) or args.plan)
+    plan = load_plan(args.plan)
     bench = load_bench(args.bench)
     if args.unattended and not (args.operator and args.ack_safety):
         from labrun.errors import InputError

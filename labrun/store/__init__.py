@@ -1,26 +1,28 @@
-"""The run store: SQLAlchemy models and ``open_store`` (SQLite by default, any SQLAlchemy URL)."""
+"""The run store: SQLAlchemy models and ``open_store`` (SQLite by default, any SQLAlchemy URL).
 
-from labrun.store.db import (
-    DEFAULT_DB,
-    Store,
-    TraceData,
-    open_existing_store,
-    open_store,
-    store_url,
-)
-from labrun.store.models import (
-    FINISHED_STATUSES,
-    RUN_STATUSES,
-    Base,
-    Event,
-    Line,
-    Point,
-    Run,
-    Spool,
-    Trace,
-)
+The names below load SQLAlchemy on first use (PEP 562), so commands that only need
+``DEFAULT_DB`` for their ``--help`` start without it.
+"""
 
-__all__ = [
-    "DEFAULT_DB", "FINISHED_STATUSES", "RUN_STATUSES", "Base", "Event", "Line", "Point", "Run",
-    "Spool", "Store", "Trace", "TraceData", "open_existing_store", "open_store", "store_url",
-]
+from __future__ import annotations
+
+import importlib
+from typing import Any
+
+DEFAULT_DB = "labrun.db"  # SQLite file in the current folder when --db is not given
+
+_LAZY = {
+    "Store": "db", "TraceData": "db", "open_existing_store": "db", "open_store": "db",
+    "store_url": "db",
+    "FINISHED_STATUSES": "models", "RUN_STATUSES": "models", "Base": "models", "Event": "models",
+    "Line": "models", "Point": "models", "Run": "models", "Spool": "models", "Trace": "models",
+}
+
+__all__ = ["DEFAULT_DB", *_LAZY]
+
+
+def __getattr__(name: str) -> Any:
+    """Import the module that defines ``name`` when it is first asked for."""
+    if name in _LAZY:
+        return getattr(importlib.import_module(f"labrun.store.{_LAZY[name]}"), name)
+    raise AttributeError(f"module 'labrun.store' has no attribute {name!r}")

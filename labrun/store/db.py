@@ -33,10 +33,10 @@ from sqlalchemy.exc import ArgumentError, SQLAlchemyError
 from sqlalchemy.orm import Session, sessionmaker
 
 from labrun.errors import InputError
+from labrun.store import DEFAULT_DB
 from labrun.store.models import Base, Event, Line, Point, Run, Spool, Trace, utcnow
 
 BUSY_TIMEOUT_MS = 15_000  # a reader or writer waits this long for a lock before failing
-DEFAULT_DB = "labrun.db"
 
 
 @dataclass
@@ -355,9 +355,20 @@ def open_store(url_or_path: str | os.PathLike[str] = DEFAULT_DB, *, create: bool
     kwargs: dict[str, Any] = {}
     if is_sqlite:
         kwargs["connect_args"] = {"timeout": BUSY_TIMEOUT_MS / 1000}
-    engine = create_engine(url, **kwargs)
+    try:
+        engine = create_engine(url, **kwargs)
+    except ModuleNotFoundError as exc:  # the URL's database driver is not installed
+        hint = " (pip install 'labrun[postgres]')" if url.startswith("postgres") else ""
+        raise InputError(f"database driver {exc.name!r} is not installed{hint}",
+                         file=os.fspath(url_or_path), field="--db") from None
     if is_sqlite:
         event.listen(engine, "connect", _sqlite_pragmas)
     if create:
-        Base.metadata.create_all(engine)
+        try:
+            Base.metadata.create_all(engine)
+        except SQLAlchemyError as exc:
+            engine.dispose()
+            raise InputError(f"cannot open the database ({type(exc).__name__}: "
+                             f"{str(exc.orig if hasattr(exc, 'orig') else exc).splitlines()[0]})",
+                             file=os.fspath(url_or_path), field="--db") from None
     return Store(engine)
