@@ -141,7 +141,7 @@ def _print_report(outcome: Any, report: dict[str, Any], db: str) -> None:
             continue
         err = f" +/- {fit['stderr']:.3g}" if fit["stderr"] is not None else ""
         print(f"  {name:<22} {fit['value']:.4g}{err} {fit['unit']}  "
-              f"({fit['n_points']} points, {fit['model']})")
+              f"({fit['n_points']} points, {fit['model'].split(':')[0]})")
     print("  (+/- is the statistical standard error of the fit; a launched-power calibration error "
           "of 0.1 dB moves gamma by about 2 %, and the virtual lab adds such offsets on purpose)")
     for path in report["files"]:
