@@ -1,0 +1,39 @@
+"""``labrun demo``: the README's main job, end to end on the virtual lab."""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path
+
+import pytest
+
+from labrun.cli import main
+
+
+def test_demo_runs_stores_fits_and_plots(tmp_path: Path, capsys: pytest.CaptureFixture) -> None:
+    out, db = tmp_path / "out", tmp_path / "demo.db"
+    code = main(["demo", "--out", str(out), "--db", str(db), "--json", "--no-progress"])
+    report = json.loads(capsys.readouterr().out)
+    assert code == 0
+    assert report["run"]["status"] == "completed"
+    assert report["run"]["points_done"] == report["run"]["points_total"] == 25
+    assert db.is_file()
+    fits = report["fits"]
+    # The virtual lab's spool has gamma 11 /(W km) (invented); launched-power offsets of a few
+    # hundredths of a dB (scenario realism) allow a few percent.
+    assert fits["gamma_bessel"]["value"] == pytest.approx(11.0, rel=0.05)
+    # Small-signal first and second sidebands grow 3 and 5 dB/dB: J_n(m) ~ (m/2)^n / n!
+    # (Abramowitz and Stegun 9.1.7), the power-law of DESIGN.md 4.1.
+    assert fits["slope_high_1"]["value"] == pytest.approx(3.0, abs=0.05)
+    assert fits["slope_high_2"]["value"] == pytest.approx(5.0, abs=0.1)
+    for name in ("fits.json", "last-trace.png", "sideband-vs-power.png"):
+        assert (out / name).stat().st_size > 0
+
+
+def test_demo_unwritable_output_is_one_line(tmp_path: Path, capsys: pytest.CaptureFixture) -> None:
+    blocker = tmp_path / "file"
+    blocker.write_text("not a folder")
+    code = main(["demo", "--out", str(blocker / "sub"), "--db", str(tmp_path / "d.db")])
+    err = capsys.readouterr().err.strip()
+    assert code == 2
+    assert len(err.splitlines()) == 1 and "--out" in err
