@@ -106,7 +106,7 @@ def plot_power_slopes(path: str | Path, points, results: dict, *, max_order: int
             fit = results.get(f"slope_{side}_{order}")
             label = f"{side} {order}"
             if fit is not None:
-                label += f": {fit.value:.2f} ± {fit.stderr:.2f} dB/dB"
+                label += f": {fit.value:.3f} ± {fit.stderr:.1g} dB/dB"
             ax.plot(total[ok], y[ok], marker, ms=3.5, label=label)
     ax.set_xlabel("total launched power (dBm)")
     ax.set_ylabel("sideband power (dBm)")

@@ -95,10 +95,8 @@ def cmd_demo(args: argparse.Namespace) -> int:
 
 def _fit_and_plot(store: Any, run_id: int, scenario: Any, out: Path) -> dict[str, Any]:
     """Fit the stored points, write plots and fits.json; returns what was written."""
-    import numpy as np
-
     from labrun.fits import fit_run
-    from labrun.plots import plot_fit, plot_trace
+    from labrun.plots import plot_power_slopes, plot_trace
     from labrun.queries import point_trace, run_points
     from labrun.reduce import reduce_trace
 
@@ -121,12 +119,7 @@ def _fit_and_plot(store: Any, run_id: int, scenario: Any, out: Path) -> dict[str
         out / "last-trace.png", x, y, red,
         title=f"{spool.name}: launched {last['power_a_dbm']:+.1f} / {last['power_b_dbm']:+.1f} "
               f"dBm, {red.spacing_ghz:.1f} GHz")))
-    if "sideband_high_1" in table:
-        total = 10 * np.log10(10 ** (table["power_a_dbm"] / 10) + 10 ** (table["power_b_dbm"] / 10))
-        report["files"].append(str(plot_fit(
-            out / "sideband-vs-power.png", total, table["sideband_high_1"],
-            xlabel="total launched power (dBm)", ylabel="high sideband 1 at OSA (dBm)",
-            title=f"{spool.name}: first sideband grows about 3 dB per dB (small-signal model)")))
+    report["files"].append(str(plot_power_slopes(out / "sideband-vs-power.png", table, fits)))
     return report
 
 
