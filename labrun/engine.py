@@ -25,10 +25,14 @@ from labrun import __version__
 from labrun.errors import InputError, InstrumentError, SafetyError
 from labrun.physics.units import nm_to_thz, thz_to_nm
 from labrun.plan import StopWatch
+from labrun.scpi import NoAnswerError
 from labrun.shutdown import RunInterrupted, SafeOffGuard
 from labrun.store import FINISHED_STATUSES, Store, TraceData
 
 SOURCE_ROLES = ("laser_a", "laser_b", "amplifier")
+# Sanity bounds of a trace sample in dBm: an OSA shows nothing outside them; a value outside is a
+# corrupted transfer, not light (common practice).
+TRACE_DBM_BOUNDS = (-300.0, 100.0)
 STALE_HEARTBEAT_S = 60.0  # a running run with an older heartbeat is probably dead
 DEFAULT_ORDERS = 3
 
@@ -43,11 +47,21 @@ class StopRequested(Exception):  # noqa: N818 - an outcome, raised to leave the 
 
 @dataclass(frozen=True)
 class RetryPolicy:
-    """How hard to try a point before aborting: attempts in all, pause between (x settle_scale)."""
+    """How hard to try a point before aborting: attempts in all (also for opening the bench), and
+    the pause before retry n: ``backoff_s * backoff_factor**(n-1)``, at most ``max_backoff_s``
+    (all x the bench's settle_scale, so 0 in the virtual lab at time scale 0). ``reconnect``:
+    an instrument that stopped answering gets fresh connections before the retry."""
 
-    attempts: int = 3
-    backoff_s: float = 2.0
+    attempts: int = 5
+    backoff_s: float = 1.0
     reconnect: bool = True
+    backoff_factor: float = 2.0
+    max_backoff_s: float = 30.0
+
+    def delay_s(self, attempt: int) -> float:
+        """Seconds to wait after failed attempt ``attempt`` (1-based), before the next one."""
+        return min(self.backoff_s * self.backoff_factor ** max(0, attempt - 1),
+                   self.max_backoff_s)
 
 
 @dataclass
@@ -208,22 +222,72 @@ class Runner:
         self.show_progress = progress
         self.last_beat = 0.0
         self.identities: dict[str, str] | None = None
+        self.lit = False  # the run has switched the sources on at least once
+        self.current_key: str | None = None  # the point being measured, for fault events
+        self.faults = 0
+
+    # ---- faults ------------------------------------------------------------------------------
+    def record_fault(self, exc: BaseException, *, attempt: int, level: str,
+                     command: str | None = None, role: str | None = None) -> None:
+        """One ``fault`` event in the store: what failed, where, on which attempt."""
+        self.faults += 1
+        role = role or getattr(exc, "role", None)
+        data: dict[str, Any] = {"attempt": attempt, "type": type(exc).__name__, "level": level}
+        message = str(exc) if isinstance(exc, InstrumentError) else f"{type(exc).__name__}: {exc}"
+        if role and not message.startswith(role):
+            message = f"{role}: {message}"
+        if command is not None:
+            data["command"] = command[:200]
+            message += f" ({command[:80]!r}, attempt {attempt})"
+        if level == "reconnect":
+            message = f"reconnect failed: {message}"
+        self.store.add_event(self.run_id, "fault", message, role=role,
+                             point_key=self.current_key, data=data)
+
+    def command_fault(self, session: Any, text: str, exc: BaseException, attempt: int) -> None:
+        """Session hook: a failed exchange (the session reconnects and retries it itself)."""
+        self.record_fault(exc, attempt=attempt, level="command", command=text,
+                          role=getattr(session, "role", None))
 
     # ---- connections -------------------------------------------------------------------------
     def open(self) -> dict[str, str]:
-        """Open every bench instrument; the identities as strings."""
+        """Open every bench instrument; the identities as strings (each read until two replies
+        agree, so a garbled reply is neither recorded nor mistaken for another instrument)."""
         from labrun.instruments import open_bench
 
-        instruments = open_bench(self.bench, transcript=self.transcript)
-        self.instruments = instruments
+        instruments = open_bench(self.bench, transcript=self.transcript,
+                                 on_fault=self.command_fault)
         self.guard.set_instruments(instruments)
-        ids = {role: str(idn) for role, idn in instruments.identities().items()}
+        try:
+            ids = {role: str(idn) for role, idn in instruments.confirmed_identities().items()}
+        except BaseException:
+            with contextlib.suppress(Exception):
+                instruments.close()
+            raise
+        self.instruments = instruments
         if self.identities is not None and ids != self.identities:
             changed = ", ".join(r for r in sorted(set(ids) | set(self.identities))
                                 if ids.get(r) != self.identities.get(r))
             raise RunAborted(f"instrument identity changed on reconnect ({changed})")
         self.identities = ids
         return ids
+
+    def open_retrying(self) -> dict[str, str]:
+        """Open the bench, retrying per the policy (a fault while connecting is an event too)."""
+        attempt = 0
+        while True:
+            attempt += 1
+            try:
+                return self.open()
+            except InstrumentError as exc:
+                if not getattr(exc, "fault_reported", False):
+                    self.record_fault(exc, attempt=attempt, level="open")
+                if attempt >= self.policy.attempts:
+                    raise RunAborted(f"cannot open the bench: {exc} (after {attempt} attempts)"
+                                     ) from exc
+                self.store.add_event(self.run_id, "retry", f"opening the bench, attempt "
+                                     f"{attempt + 1}", data={"attempt": attempt + 1})
+                self.wait_until(time.monotonic() + self.policy.delay_s(attempt) * self.scale)
 
     def close(self) -> None:
         """Close the connections (after the safe-off)."""
@@ -363,8 +427,10 @@ class Runner:
         """
         for role in self.sources():
             if self.role(role).output_state():
-                self.store.add_event(self.run_id, "found_on", f"{role} output was on before the "
-                                     "run switched anything on; switching it off", role=role)
+                if not self.lit:  # after a reconnect it is on because the run switched it on
+                    self.store.add_event(self.run_id, "found_on", f"{role} output was on before "
+                                         "the run switched anything on; switching it off",
+                                         role=role)
                 self.role(role).output_off()
         deadline = self.apply(first)
         for role in ("attenuator_a", "attenuator_b"):
@@ -373,7 +439,7 @@ class Runner:
             self.role(role).output_on()
         if self.use_amplifier:
             self.role("amplifier").output_on()
-        self.emitting = True
+        self.emitting = self.lit = True
         self.wait_until(deadline)
         self.check_emission()
 
@@ -398,11 +464,27 @@ class Runner:
         span and points), then only y travels, halving the transfer per point."""
         x, y = osa.sweep_and_read(with_x=self.trace_x is None)
         if x is None:
-            if y.size == self.trace_x.size:
-                return self.trace_x, y
-            x, y = osa.read_trace()  # the configuration changed behind our back: read both
+            x = self.trace_x
+        self.check_trace(x, y)
         self.trace_x = x
         return x, y
+
+    def check_trace(self, x: Any, y: Any) -> None:
+        """Refuse (InstrumentError, retried) a trace that is short, ragged or corrupted: the
+        configured number of samples, x increasing, every y finite and inside TRACE_DBM_BOUNDS."""
+        import numpy as np
+
+        want = int(self.applied[("osa", "configure")][3])
+        problem = None
+        if y.size != want or x.size != want:
+            problem = f"short trace: {y.size} y and {x.size} x samples, configured {want}"
+        elif not (np.all(np.isfinite(x)) and np.all(np.diff(x) > 0)):
+            problem = "corrupted trace: x is not finite and increasing"
+        elif not (np.all(np.isfinite(y)) and TRACE_DBM_BOUNDS[0] <= float(y.min())
+                  and float(y.max()) <= TRACE_DBM_BOUNDS[1]):
+            problem = "corrupted trace: y has non-finite or impossible dBm values"
+        if problem:
+            raise InstrumentError(problem, role="osa")
 
     # ---- one point ---------------------------------------------------------------------------
     def wants_input(self, spec: Any) -> bool:
@@ -422,54 +504,68 @@ class Runner:
         return Captured(kind, x, y)
 
     def measure(self, spec: Any) -> tuple[list[Captured], Any, int]:
-        """Set, settle, sweep, read and reduce one point, retrying faults.
+        """Set, settle, sweep, read, check and reduce one point, retrying faults per the policy.
 
         Returns the traces (output first; then the spool input when this point captures it,
         through switch path 2), the output trace's reduction, and the attempts it took.
+        Safety conditions (RunAborted, SafetyError) are never retried.
         """
-        from labrun.reduce import reduce_trace
-
         settings = self.settings_for(spec.setpoint)
         kinds = ("input", "output") if self.wants_input(spec) else ("output",)
+        self.current_key = spec.key
         attempt = 0
         while True:
             attempt += 1
             try:
-                if self.instruments is None:  # a reconnect after a fault failed: try again
-                    self.open()
-                self.configure_osa(spec.setpoint)
-                if not self.emitting:
-                    self.prepare(settings)
-                self.wait_until(self.apply(settings))
-                traces = [self.capture(kind) for kind in kinds]
-                self.check_emission()
-                break
+                traces = self.attempt_point(spec, settings, kinds)
+                return traces, traces[0].reduction, attempt
             except InstrumentError as exc:
                 self.fault(spec, attempt, exc)
+
+    def attempt_point(self, spec: Any, settings: Sequence[Setting],
+                      kinds: Sequence[str]) -> list[Captured]:
+        """One try at a point: its traces, checked and reduced (InstrumentError on any fault)."""
+        from labrun.reduce import reduce_trace
+
+        if self.instruments is None:  # a reconnect after a fault failed: try again
+            self.open()
+        self.configure_osa(spec.setpoint)
+        if not self.emitting:
+            self.prepare(settings)
+        self.wait_until(self.apply(settings))
+        traces = [self.capture(kind) for kind in kinds]
+        self.check_emission()
         traces.sort(key=lambda t: t.kind != "output")
         tones = expected_thz(spec.setpoint)
         for tr in traces:
             tr.reduction = reduce_trace(tr.x, tr.y, self.rbw_nm, x_unit="nm",
                                         orders=self.orders, expected_thz=tones)
-        return traces, traces[0].reduction, attempt
+            check_tones(tr)
+        return traces
 
-    def fault(self, spec: Any, attempt: int, exc: Exception) -> None:
-        """Record a fault; reconnect and let the caller retry, or abort beyond the policy."""
-        role = getattr(exc, "role", None)
-        self.store.add_event(self.run_id, "fault", str(exc), role=role, point_key=spec.key,
-                             data={"attempt": attempt, "type": type(exc).__name__})
+    def fault(self, spec: Any, attempt: int, exc: InstrumentError) -> None:
+        """Record a fault (unless its session already did), then prepare the retry: wait the
+        backoff, and reconnect when an instrument stopped answering; abort beyond the policy.
+
+        A reconnect that fails is a fault too; the next attempt then opens the bench again.
+        Other faults (an error-queue entry, a garbled or short reply, a failed read-back) keep
+        the connections: what failed was never marked applied, so it is set again, and the
+        sweep is taken again.
+        """
+        if not getattr(exc, "fault_reported", False):
+            self.record_fault(exc, attempt=attempt, level="point")
         if attempt >= self.policy.attempts:
             raise RunAborted(f"point {spec.key}: {exc} (after {attempt} attempts)") from exc
-        self.wait_until(time.monotonic() + self.policy.backoff_s * self.scale)
-        if self.policy.reconnect:
+        self.wait_until(time.monotonic() + self.policy.delay_s(attempt) * self.scale)
+        self.trace_x = None  # read x again with the next sweep
+        if self.policy.reconnect and (isinstance(exc, NoAnswerError) or self.instruments is None):
             try:
                 self.reconnect()
             except InstrumentError as again:
-                self.store.add_event(self.run_id, "fault", f"reconnect failed: {again}",
-                                     role=getattr(again, "role", None), point_key=spec.key)
-                if attempt + 1 >= self.policy.attempts:
-                    raise RunAborted(f"reconnect failed: {again}") from again
-        self.store.add_event(self.run_id, "retry", f"attempt {attempt + 1}", point_key=spec.key)
+                if not getattr(again, "fault_reported", False):
+                    self.record_fault(again, attempt=attempt, level="reconnect")
+        self.store.add_event(self.run_id, "retry", f"attempt {attempt + 1}", point_key=spec.key,
+                             data={"attempt": attempt + 1, "after": type(exc).__name__})
 
     def commit(self, spec: Any, traces: Sequence[Captured], red: Any, attempts: int,
                started: Any) -> None:
@@ -528,6 +624,16 @@ def expected_thz(setpoint: dict[str, Any]) -> tuple[float, float] | None:
         return None
     f_a = float(nm_to_thz(wl_a))
     return f_a, f_a + float(spacing) / 1000.0
+
+
+def check_tones(trace: Captured) -> None:
+    """Refuse (InstrumentError, retried) a reduction that did not find both tones: a trace
+    without them is not a good point, whatever garbled or truncated it."""
+    red = trace.reduction
+    tones = [ml for ml in getattr(red, "lines", []) if ml.kind == "tone" and ml.detected]
+    if len(tones) < 2 or getattr(red, "spacing_ghz", None) is None:
+        raise InstrumentError(f"{trace.kind} trace: the reduction found {len(tones)} of the 2 "
+                              "tones", role="osa")
 
 
 def _line_dict(line: Any, trace: int = 0) -> dict[str, Any]:
@@ -658,7 +764,7 @@ def _execute(plan: Any, bench: Any, store: Store, run_id: int, specs: Sequence[A
     guard.install()
     try:
         runner.osa_settings = plan.osa_settings(bench)
-        identities = runner.open()
+        identities = runner.open_retrying()
         if expect_identities is not None:
             check_identities(expect_identities, identities, force=force, run_id=run_id,
                              store=store)

@@ -59,6 +59,11 @@ class NoAnswerError(InstrumentError):
     """The instrument did not answer (timeout, refused or lost connection) after every retry."""
 
 
+# Called once per failed exchange (session, message text, the failure, attempt number), so a run
+# can record every fault as an event, also the ones a reconnect-and-retry inside the session cured.
+FaultHook = Callable[["ScpiSession", str, BaseException, int], None]
+
+
 def _no_delay(res: object) -> None:
     """Disable Nagle on raw TCP sockets: a command followed by SYST:ERR? otherwise waits for the
     peer's delayed ACK (~40 ms on Linux) before the query leaves. pyvisa-py 0.8 does not accept
@@ -156,7 +161,8 @@ class ScpiSession:
                  read_termination: str = "\n", timeout_ms: int = 3000,
                  error_query: str | None = "SYST:ERR?", opc_query: str | None = "*OPC?",
                  transcript: Transcript | None = None, role: str | None = None,
-                 retries: int = 2, sim_file: str | Path | None = None, compound: bool = False):
+                 retries: int = 2, sim_file: str | Path | None = None, compound: bool = False,
+                 on_fault: FaultHook | None = None):
         self.resource = resource
         self.backend = backend
         self.write_termination = write_termination
@@ -169,6 +175,7 @@ class ScpiSession:
         self.retries = max(0, int(retries))
         self.sim_file = sim_file
         self.compound = bool(compound)  # the instrument takes IEEE 488.2 compound messages
+        self.on_fault = on_fault
         self._res = None
         self._lock = threading.RLock()
 
@@ -251,17 +258,27 @@ class ScpiSession:
                     if attempt > 1:
                         self._discard_stale_errors()
                 result = action()
-            except InstrumentError as exc:  # reopen failed: counts as an attempt
+            except InstrumentError as exc:  # reopen failed, or a reply that broke the framing
                 last = exc
                 self._record(direction, text, started, None, str(exc), attempt)
+                self.close()  # what is left on the wire is unknown: never read it as a reply
+                self.report_fault(text, exc, attempt)
+            except ValueError as exc:  # a reply that does not decode or parse: garbled
+                last = InstrumentError(f"garbled reply to {text!r} ({exc})", role=self.role,
+                                       resource=self.resource)
+                self._record(direction, text, started, None, str(last), attempt)
+                self.close()
+                self.report_fault(text, last, attempt)
             except Exception as exc:
                 if not _is_transport_error(exc):
                     self._record(direction, text, started, None, repr(exc), attempt)
+                    self.close()
                     raise
                 last = exc
                 self._record(direction, text, started, None, f"{type(exc).__name__}: {exc}",
                              attempt)
                 self.close()
+                self.report_fault(text, exc, attempt)
             else:
                 reply = describe(result)
                 self._record(direction, text, started, reply, None, attempt)
@@ -274,9 +291,20 @@ class ScpiSession:
         log.error("%s: %s %r failed after %d attempts", self.who, direction, text,
                   self.retries + 1)
         if isinstance(last, InstrumentError):
+            last.fault_reported = True  # type: ignore[attr-defined]
             raise last
         assert last is not None
-        raise self._no_answer(last) from last
+        final = self._no_answer(last)
+        final.fault_reported = True  # type: ignore[attr-defined]
+        raise final from last
+
+    def report_fault(self, text: str, exc: BaseException, attempt: int) -> None:
+        """Tell ``on_fault`` about one failed exchange (a failing hook never hides the fault)."""
+        if self.on_fault is not None:
+            try:
+                self.on_fault(self, text, exc, attempt)
+            except Exception as hook_error:  # noqa: BLE001 - reporting must not change the outcome
+                log.error("%s: fault hook failed: %s", self.who, hook_error)
 
     def _discard_stale_errors(self) -> None:
         """After a reconnect, empty the error queue: old entries must not blame new commands."""
@@ -432,12 +460,14 @@ class ScpiSession:
             try:
                 code, text = parse_error_reply(err)
             except ValueError as exc:
+                self.close()  # a garbled response may have left part of itself on the wire
                 raise InstrumentError(f"{exc} (after {message!r})", role=self.role,
                                       resource=self.resource) from None
             if code != 0:
                 raise ScpiError(code, text, cmd, role=self.role, resource=self.resource,
                                 more=self._count_more_errors(cmd))
             if values is None or len(units) != len(queries):
+                self.close()
                 raise InstrumentError(f"reply to {message!r} has {len(units)} text units and "
                                       f"{'no' if values is None else 'a'} block, expected "
                                       f"{len(queries)} and a block", role=self.role,
@@ -562,6 +592,9 @@ def query_each(requests: list[tuple[ScpiSession, str]]) -> list[str]:
             for s, cmd in requests:
                 s._record("query", cmd, started, None, f"{type(exc).__name__}: {exc}", 1)
                 s.close()
+            owner = next((s for s in sessions if s.role and s.role == getattr(exc, "role", None)),
+                         sessions[0])
+            owner.report_fault(" | ".join(cmd for _, cmd in requests), exc, 1)
             return [s.query(cmd) for s, cmd in requests]
         for (s, cmd), reply in zip(requests, replies, strict=True):
             s._record("query", cmd, started, reply, None, 1)

@@ -157,13 +157,16 @@ def test_safety_ack_names_the_class_that_check_reports(tmp_path, capsys):
 
 def test_amplifier_on_the_bench_stays_off_for_a_plan_without_it(tmp_path):
     """The worst case of a plan without ``amplifier = true`` assumes no gain, so the engine
-    must never switch the amplifier on (and must notice if it comes on)."""
+    must never switch the amplifier on (and must notice if it comes on). The virtual lab's
+    amplifier sits after the combiner and passes no light while off, so no trace shows the
+    tones: each try is a fault and the run aborts without storing a dark trace as a point."""
     sc = scenario()
     sc["instruments"]["amplifier"]["present"] = True
     transcript = Transcript()
     with VirtualLab(sc) as lab:
         store, out = _run(tmp_path, lab, _plan(tmp_path, capture="false"), transcript)
-        assert out.status == "completed" and dark(lab)
+        assert out.status == "aborted" and "tones" in out.reason and dark(lab)
+        assert out.points_done == 0
     assert not any(c.startswith("OUTP:STAT ON") for c in transcript.commands("amplifier"))
     assert transcript.commands("amplifier")[-1].startswith("OUTP:STAT OFF")  # the safe-off
 
@@ -189,11 +192,12 @@ def test_amplifier_plan_over_the_amplifier_cap_is_refused_before_any_write(tmp_p
 
 
 def test_a_failed_reconnect_is_retried_not_fatal(tmp_path, monkeypatch):
-    """A fault, then a reconnect that fails once: the next attempt opens the bench again (it
-    used to find no connections at all) and the run completes, dark at the end."""
+    """An instrument that stops answering, then a reconnect that fails once: the next attempt
+    opens the bench again (it used to find no connections at all) and the run completes, dark
+    at the end."""
     import labrun.instruments
-    from labrun.errors import InstrumentError
     from labrun.instruments.osa import OsaAdapter
+    from labrun.scpi import NoAnswerError
 
     real_open, real_sweep = labrun.instruments.open_bench, OsaAdapter.sweep_and_read
     calls = {"open": 0, "sweep": 0}
@@ -201,13 +205,13 @@ def test_a_failed_reconnect_is_retried_not_fatal(tmp_path, monkeypatch):
     def flaky_open(bench, **kw):
         calls["open"] += 1
         if calls["open"] == 2:  # the first reconnect
-            raise InstrumentError("no answer (injected by the test)", role="osa")
+            raise NoAnswerError("no answer (injected by the test)", role="osa")
         return real_open(bench, **kw)
 
     def flaky_sweep(self, **kw):
         calls["sweep"] += 1
         if calls["sweep"] == 1:
-            raise InstrumentError("sweep timed out (injected by the test)", role="osa")
+            raise NoAnswerError("sweep timed out (injected by the test)", role="osa")
         return real_sweep(self, **kw)
 
     monkeypatch.setattr(labrun.instruments, "open_bench", flaky_open)

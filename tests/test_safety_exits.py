@@ -101,8 +101,12 @@ def test_timeout_beyond_retries(tmp_path, monkeypatch):
         assert out.status == "aborted" and "osa" in out.reason
         assert _dark_within(lab, t_end) <= OFF_WITHIN_S
         assert out.points_done == 2
+        assert "after 2 attempts" in out.reason
+        # every failed exchange is an event: the sweep's own tries, then the reconnect's
         faults = store.events(out.run_id, ["fault"])
-        assert len(faults) == 2 and all(f.role == "osa" for f in faults)
+        assert len(faults) >= 2 and all(f.role == "osa" for f in faults)
+        assert {f.data["level"] for f in faults} >= {"command"}
+        assert len(store.events(out.run_id, ["retry"])) == 1
 
 
 def test_connection_lost_for_good(tmp_path):

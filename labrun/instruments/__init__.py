@@ -20,7 +20,7 @@ from labrun.instruments.osa import OsaAdapter
 from labrun.instruments.pol_controller import PolControllerAdapter
 from labrun.instruments.power_meter import PowerMeterAdapter
 from labrun.instruments.switch import SwitchAdapter
-from labrun.scpi import Idn, ScpiSession, query_each
+from labrun.scpi import FaultHook, Idn, ScpiSession, query_each
 from labrun.transcript import Transcript
 
 __all__ = [
@@ -37,9 +37,11 @@ ADAPTERS: dict[str, type[Adapter]] = {
 }
 # Order in which safe_off_all darkens the bench: the strongest source first, attenuators last.
 SAFE_OFF_ORDER = ("amplifier", "laser_a", "laser_b", "attenuator_a", "attenuator_b")
+SAFE_OFF_TRIES = 3  # a garbled reply or a stray error-queue entry must not leave a source on
 
 
-def make_session(bench: Bench, role: str, transcript: Transcript | None = None) -> ScpiSession:
+def make_session(bench: Bench, role: str, transcript: Transcript | None = None,
+                 on_fault: FaultHook | None = None) -> ScpiSession:
     """An (unopened) SCPI session for one role, configured from its profile.
 
     Compound messages are used when the profile declares them, except on pyvisa-sim (``@sim``),
@@ -51,13 +53,15 @@ def make_session(bench: Bench, role: str, transcript: Transcript | None = None) 
     return ScpiSession(spec.resource, spec.backend, write_termination=p.write_termination,
                        read_termination=p.read_termination, timeout_ms=p.timeout_ms,
                        error_query=p.error_query, opc_query=p.opc_query, transcript=transcript,
-                       role=role, sim_file=bench.sim_file, compound=compound)
+                       role=role, sim_file=bench.sim_file, compound=compound,
+                       on_fault=on_fault)
 
 
-def open_instrument(bench: Bench, role: str, *, transcript: Transcript | None = None) -> Adapter:
+def open_instrument(bench: Bench, role: str, *, transcript: Transcript | None = None,
+                    on_fault: FaultHook | None = None) -> Adapter:
     """Connect one role, send its profile's init commands and return its adapter."""
     spec = bench.instruments[role]
-    session = make_session(bench, role, transcript).open()
+    session = make_session(bench, role, transcript, on_fault).open()
     adapter = ADAPTERS[spec.kind](spec, session, settle_scale=bench.settle_scale)
     try:
         adapter.initialise()
@@ -102,17 +106,26 @@ class Instruments(Mapping[str, Adapter]):
             safe_off = getattr(adapter, "safe_off", None)
             if safe_off is None:
                 continue
-            try:
-                safe_off()
-            except Exception as exc:  # noqa: BLE001 - every source must still be tried
-                message = str(exc) if str(exc).startswith(role) else f"{role}: {exc}"
-                log.error("safe_off failed: %s", message)
-                problems.append(message)
+            for attempt in range(1, SAFE_OFF_TRIES + 1):
+                try:
+                    safe_off()
+                    break
+                except Exception as exc:  # noqa: BLE001 - every source must still be tried
+                    message = str(exc) if str(exc).startswith(role) else f"{role}: {exc}"
+                    log.error("safe_off failed (try %d of %d): %s", attempt, SAFE_OFF_TRIES,
+                              message)
+                    if attempt == SAFE_OFF_TRIES:
+                        problems.append(message)
         return problems
 
     def identities(self) -> dict[str, Idn]:
         """``*IDN?`` of every instrument, by role."""
         return {role: adapter.idn() for role, adapter in self._adapters.items()}
+
+    def confirmed_identities(self, reads: int = 4) -> dict[str, Idn]:
+        """``*IDN?`` of every instrument, each read until two answers in a row agree, so a
+        garbled reply is never taken for an identity (InstrumentError after ``reads`` reads)."""
+        return {role: adapter.confirmed_idn(reads) for role, adapter in self._adapters.items()}
 
 
 def read_each(reads: Sequence[tuple[Adapter, str]]) -> list[Any]:
@@ -136,7 +149,8 @@ def output_states(adapters: Sequence[Adapter]) -> list[bool | None]:
 
 
 def open_bench(bench: Bench, *, transcript: Transcript | None = None,
-               roles: Iterable[str] | None = None) -> Instruments:
+               roles: Iterable[str] | None = None,
+               on_fault: FaultHook | None = None) -> Instruments:
     """Open the instruments of ``bench`` (all, or only ``roles``); closes all if one fails."""
     wanted = list(bench.instruments) if roles is None else list(roles)
     for role in wanted:
@@ -146,7 +160,8 @@ def open_bench(bench: Bench, *, transcript: Transcript | None = None,
     adapters: dict[str, Adapter] = {}
     try:
         for role in wanted:
-            adapters[role] = open_instrument(bench, role, transcript=transcript)
+            adapters[role] = open_instrument(bench, role, transcript=transcript,
+                                             on_fault=on_fault)
     except BaseException:
         for adapter in adapters.values():
             adapter.close()

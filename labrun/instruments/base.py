@@ -86,6 +86,19 @@ class Adapter:
                 self._idn = self.session.idn()
         return self._idn
 
+    def confirmed_idn(self, reads: int = 4) -> Idn:
+        """The identity read afresh until two replies in a row agree (a garbled ``*IDN?`` reply
+        is not an identity); kept for :meth:`idn`. InstrumentError after ``reads`` reads."""
+        previous: Idn | None = None
+        for _ in range(max(2, reads)):
+            self._idn = None
+            got = self.idn()
+            if got == previous:
+                return got
+            previous = got
+        self._idn = None
+        raise self._instrument_error(f"*IDN? gave a different reply each time ({previous})")
+
     # -- errors -----------------------------------------------------------------------------
 
     def _instrument_error(self, message: str) -> InstrumentError:
@@ -231,21 +244,21 @@ class Adapter:
         back = self.profile.op(op.readback) if op.readback and target is not None else None
         text = op.render(**fields)
         if self._compound_ok() and op.settle_s * self.settle_scale <= 0:
-            self._apply_compound(op, text, back, checked, target)
+            self._apply_compound(op, text, back, checked, target, cap)
             return
         self.session.write(text)
         self.settle(op.settle_s)
         if op.wait:
             self.session.opc_wait()
         if back is not None:
-            self.verify(op, self.read(back.name, index=checked), target)
+            self.verify(op, self.read(back.name, index=checked), target, cap=cap)
 
     def _compound_ok(self) -> bool:
         """True when settings may travel as one compound message with their follow-up queries."""
         return bool(self.session.compound and self.session.error_query)
 
     def _apply_compound(self, op: Operation, text: str, back: Operation | None,
-                        index: int | None, target: Any) -> None:
+                        index: int | None, target: Any, cap: float | None = None) -> None:
         """Setting, ``*OPC?`` (if the operation waits), read-back and error query in ONE message:
         the same checks as the separate exchanges, in one round trip (no settle time to wait)."""
         queries: list[str] = []
@@ -264,11 +277,19 @@ class Adapter:
                 got = parse_reply(back, replies[0])
             except ValueError as exc:
                 raise self._instrument_error(str(exc)) from None
-            self.verify(op, got, target)
+            self.verify(op, got, target, cap=cap)
 
-    def verify(self, op: Operation, got: Any, want: Any) -> None:
-        """Compare a read-back with the value set, within the operation's tolerance."""
+    def verify(self, op: Operation, got: Any, want: Any, *, cap: float | None = None) -> None:
+        """Compare a read-back with the value set, within the operation's tolerance.
+
+        A read-back above the bench cap is a safety condition (SafetyError: the run switches
+        everything off and aborts), not a fault to retry.
+        """
         tol = (op.tolerance or 0.0) + FLOAT_SLACK
+        if (cap is not None and isinstance(got, int | float) and not isinstance(got, bool)
+                and float(got) > cap + tol):
+            raise SafetyError(f"{self.role}: read-back of {op.name} is {float(got):g}, above the "
+                              f"bench cap {cap:g}")
         if isinstance(want, bool) or isinstance(got, bool):
             ok = bool(got) == bool(want)
         elif isinstance(want, tuple):

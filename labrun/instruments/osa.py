@@ -49,6 +49,7 @@ class OsaAdapter(Adapter):
                 op.render(), [self.session.opc_query], y_op.render(),
                 self.profile.trace.byte_order)
             if opc.strip().lstrip("+") not in ("1", "1.0"):
+                self.session.close()  # a garbled response: do not trust what follows it
                 raise self._instrument_error(f"{self.session.opc_query} answered {opc!r}, "
                                              "expected 1")
             return None, y
@@ -62,5 +63,5 @@ class OsaAdapter(Adapter):
         x = self.read("read_trace_x")
         y = self.read("read_trace_y")
         if x.size != y.size or x.size == 0:
-            raise self._instrument_error(f"trace x has {x.size} points and y {y.size}")
+            raise self._instrument_error(f"short trace: x has {x.size} points and y {y.size}")
         return x, y
