@@ -590,6 +590,13 @@ class Runner:
         )
         self.last_beat = time.monotonic()
 
+    def flush_transcript(self) -> None:
+        """Flush a streamed transcript once per point: a crash keeps every stored point's
+        traffic on disk."""
+        flush = getattr(self.transcript, "flush", None)
+        if flush is not None:
+            flush()
+
     def run_points(self, specs: Sequence[Any], *, done: int, total: int) -> int:
         """Measure and store every spec in order; returns the number of points stored in all."""
         from labrun.store.models import utcnow
@@ -601,6 +608,7 @@ class Runner:
                 started = utcnow()
                 traces, red, attempts = self.measure(spec)
                 self.commit(spec, traces, red, attempts, started)
+                self.flush_transcript()
                 done += 1
                 if bar is not None:
                     bar.set_postfix_str(_postfix(red), refresh=False)
@@ -728,8 +736,6 @@ def run_plan(plan: Any, bench: Any, store: Store, *, operator: str | None = None
 
     Raises InputError/SafetyError before touching anything when the run may not start.
     """
-    from labrun import safety
-
     text = preflight(plan, bench, operator=operator, unattended=unattended,
                      ack_safety=ack_safety, confirm=confirm)
     if echo is not None and unattended:
@@ -737,15 +743,34 @@ def run_plan(plan: Any, bench: Any, store: Store, *, operator: str | None = None
     specs = list(plan.points())
     run_id = store.create_run(**_run_fields(plan, bench, operator=operator,
                                             unattended=unattended, total=len(specs)))
-    wc = safety.worst_case(plan, bench)
-    ack = "acknowledged unattended (--ack-safety)" if unattended else "confirmed interactively"
-    store.add_event(run_id, "safety_ack", f"emission {ack} by {operator or 'operator'} "
-                    f"(advisory hazard class {wc.hazard_class})",
-                    data={"operator": operator, "unattended": unattended, "text": text,
-                          "hazard_class": wc.hazard_class,
-                          "max_launched_dbm": wc.max_launched_dbm})
+    record_ack(store, run_id, plan, bench, operator=operator, unattended=unattended, text=text)
+    record_transcript(store, run_id, transcript)
     return _execute(plan, bench, store, run_id, specs, done=0, policy=policy,
                     progress=progress, transcript=transcript, first=True)
+
+
+def record_ack(store: Store, run_id: int, plan: Any, bench: Any, *, operator: str | None,
+               unattended: bool, text: str, resumed: bool = False) -> None:
+    """The ``safety_ack`` event: who acknowledged emission, how, and the worst case shown (the
+    event's own time is when). A resume records its own: it emits again, maybe hours later."""
+    from labrun import safety
+
+    wc = safety.worst_case(plan, bench)
+    ack = "acknowledged unattended (--ack-safety)" if unattended else "confirmed interactively"
+    what = "resumed emission" if resumed else "emission"
+    store.add_event(run_id, "safety_ack", f"{what} {ack} by {operator or 'operator'} "
+                    f"(advisory hazard class {wc.hazard_class})",
+                    data={"operator": operator, "unattended": unattended, "text": text,
+                          "hazard_class": wc.hazard_class, "resume": resumed,
+                          "max_launched_dbm": wc.max_launched_dbm})
+
+
+def record_transcript(store: Store, run_id: int, transcript: Any) -> None:
+    """A ``transcript`` event naming the file the instrument traffic streams to (if any)."""
+    path = getattr(transcript, "path", None)
+    if path is not None:
+        store.add_event(run_id, "transcript", f"instrument traffic streamed to {path}",
+                        data={"path": str(path)})
 
 
 def _execute(plan: Any, bench: Any, store: Store, run_id: int, specs: Sequence[Any], *,
@@ -796,6 +821,7 @@ def _execute(plan: Any, bench: Any, store: Store, run_id: int, specs: Sequence[A
         problems = guard.shutdown()
         runner.close()
         guard.uninstall()
+        runner.flush_transcript()
     done = store.count_points(run_id)
     store.add_event(run_id, "safe_off", "all sources off, attenuators at maximum" if not problems
                     else "NOT CONFIRMED OFF: " + "; ".join(problems),
@@ -854,9 +880,15 @@ def plan_from_run(run: Any, *, force: bool) -> Any:
 
 
 def resume_run(run_id: int, store: Store, *, bench: Any = None, force: bool = False,
-               policy: RetryPolicy | None = None, progress: bool = True,
-               transcript: Any = None) -> RunOutcome:
-    """Continue a stored run: same plan (hash checked), same instruments, skip stored points."""
+               operator: str | None = None, unattended: bool = False, ack_safety: bool = False,
+               confirm: Callable[[str], bool] | None = None, policy: RetryPolicy | None = None,
+               progress: bool = True, transcript: Any = None,
+               echo: TextIO | None = None) -> RunOutcome:
+    """Continue a stored run: same plan (hash checked), same instruments, skip stored points.
+
+    Resuming emits light again, perhaps hours later with people in the room, so it asks for the
+    safety acknowledgement again (as ``run_plan``), before any instrument is opened.
+    """
     from labrun.bench import load_bench
 
     run = store.get_run(run_id)
@@ -876,6 +908,13 @@ def resume_run(run_id: int, store: Store, *, bench: Any = None, force: bool = Fa
     if violations:
         raise SafetyError("refused, the plan exceeds a power cap on this bench: "
                           + "; ".join(str(v) for v in violations))
+    text = preflight(plan, bench, operator=operator, unattended=unattended,
+                     ack_safety=ack_safety, confirm=confirm)
+    if echo is not None and unattended:
+        print(text, file=echo)
+    record_ack(store, run_id, plan, bench, operator=operator, unattended=unattended, text=text,
+               resumed=True)
+    record_transcript(store, run_id, transcript)
     done_keys = store.completed_keys(run_id)
     specs = [s for s in plan.points() if s.key not in done_keys]
     store.add_event(run_id, "resume", f"resuming: {len(done_keys)} points stored, "

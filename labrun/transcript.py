@@ -1,7 +1,9 @@
 """Transcript of instrument traffic: every write and query, with time, duration and reply.
 
 A run saves it beside its data (JSON lines) so anyone can later see exactly what went on the wire,
-and tests can prove from it that no setting above a cap was ever written.
+and tests can prove from it that no setting above a cap was ever written. A long run streams it
+to a file as it goes (``Transcript.stream``: one JSON line per exchange, flushed per point)
+without keeping the entries in memory.
 """
 
 from __future__ import annotations
@@ -11,7 +13,7 @@ import threading
 import time
 from dataclasses import asdict, dataclass
 from pathlib import Path
-from typing import Literal
+from typing import Literal, TextIO
 
 from labrun.errors import InputError
 
@@ -55,22 +57,69 @@ class TranscriptEntry:
 
 
 class Transcript:
-    """Thread-safe, append-only record of instrument traffic shared by every session of a bench."""
+    """Thread-safe, append-only record of instrument traffic shared by every session of a bench.
 
-    def __init__(self) -> None:
+    ``sink``: a text file each entry is written to as one JSON line when it is recorded (call
+    :meth:`flush` at safe points, :meth:`close` at the end). ``retain``: keep the entries in
+    ``entries`` too (the default; a streaming run turns it off so memory stays flat).
+    """
+
+    def __init__(self, sink: TextIO | None = None, *, retain: bool = True,
+                 path: str | Path | None = None) -> None:
         self.entries: list[TranscriptEntry] = []
+        self.sink = sink
+        self.retain = retain
+        self.path = Path(path) if path is not None else None
+        self.count = 0  # exchanges recorded, retained or not
         self._lock = threading.Lock()
+
+    @classmethod
+    def stream(cls, path: str | Path, *, append: bool = False,
+               retain: bool = False) -> Transcript:
+        """A transcript that writes JSON lines to ``path`` as exchanges happen (``append``: keep
+        what the file holds, e.g. when a run is resumed). InputError if it cannot be written."""
+        path = Path(path)
+        try:
+            fh = path.open("a" if append else "w", encoding="utf-8")
+        except OSError as exc:
+            raise InputError(f"cannot write the transcript: {exc.strerror or exc}",
+                             file=str(path), field="--transcript") from None
+        return cls(fh, retain=retain, path=path.resolve())
 
     def record(self, *, resource: str, role: str | None, direction: Direction, text: str,
                started: float, reply: str | None = None, error: str | None = None,
                attempt: int = 1) -> TranscriptEntry:
-        """Append one exchange that started at ``started`` (``time.time()``) and ended now."""
+        """Record one exchange that started at ``started`` (``time.time()``) and ended now."""
         entry = TranscriptEntry(timestamp=started, duration_s=max(0.0, time.time() - started),
                                 resource=resource, role=role, direction=direction, text=text,
                                 reply=reply, error=error, attempt=attempt)
         with self._lock:
-            self.entries.append(entry)
+            self.count += 1
+            if self.retain:
+                self.entries.append(entry)
+            if self.sink is not None:
+                self.sink.write(json.dumps(asdict(entry), ensure_ascii=False) + "\n")
         return entry
+
+    def flush(self) -> None:
+        """Push what the sink buffered to the file (a crash after this keeps it)."""
+        with self._lock:
+            if self.sink is not None:
+                self.sink.flush()
+
+    def close(self) -> None:
+        """Flush and close the sink (entries recorded afterwards are only retained)."""
+        with self._lock:
+            sink, self.sink = self.sink, None
+        if sink is not None:
+            sink.flush()
+            sink.close()
+
+    def __enter__(self) -> Transcript:
+        return self
+
+    def __exit__(self, *exc_info: object) -> None:
+        self.close()
 
     def writes(self, role: str | None = None) -> list[TranscriptEntry]:
         """Every write (optionally of one role), in order: what was sent as a command."""
@@ -100,7 +149,8 @@ class Transcript:
         for line in Path(path).read_text(encoding="utf-8").splitlines():
             if line.strip():
                 transcript.entries.append(TranscriptEntry(**json.loads(line)))
+        transcript.count = len(transcript.entries)
         return transcript
 
     def __len__(self) -> int:
-        return len(self.entries)
+        return self.count

@@ -28,6 +28,8 @@ from labrun.plan import load_plan
 from labrun.store import Point, open_store
 
 N_POINTS = 300
+RESUMER = "T. Lindqvist"  # invented: someone else resumes, hours later
+ACK = ["--unattended", "--operator", RESUMER, "--ack-safety"]
 
 
 def _kill_mid_run(tmp_path, lab):
@@ -64,7 +66,8 @@ def test_sigkill_then_resume_gives_the_full_point_set(tmp_path, capsys):
         # A killed process cannot switch anything off: 'labrun off' is the remedy.
         assert main(["off", "--bench", str(bench)]) == 0 and dark(lab)
         capsys.readouterr()
-        assert main(["resume", str(run_id), "--db", str(db), "--json", "--no-progress"]) == 0
+        assert main(["resume", str(run_id), "--db", str(db), "--json", "--no-progress",
+                     *ACK]) == 0
         rep = json.loads(capsys.readouterr().out)
         assert rep["status"] == "completed" and rep["points_done"] == N_POINTS
         assert dark(lab)
@@ -80,6 +83,10 @@ def test_sigkill_then_resume_gives_the_full_point_set(tmp_path, capsys):
     assert incomplete == []
     kinds = [e.kind for e in store.events(run_id)]
     assert "resume" in kinds and kinds[-1] == "completed"
+    first, again = store.events(run_id, ["safety_ack"])  # the run's, then the resume's own
+    assert first.data["operator"] == OPERATOR and not first.data["resume"]
+    assert again.data["operator"] == RESUMER and again.data["resume"] is True
+    assert RESUMER in again.message and again.at >= first.at
 
 
 def test_resume_refuses_a_changed_plan_and_other_instruments(tmp_path, capsys):
@@ -90,7 +97,7 @@ def test_resume_refuses_a_changed_plan_and_other_instruments(tmp_path, capsys):
         done = count_points(db)
         original = plan.read_text()
         plan.write_text(original.replace("engine test sweep", "edited sweep"))
-        assert main(["resume", str(run_id), "--db", str(db), "--no-progress"]) == 1
+        assert main(["resume", str(run_id), "--db", str(db), "--no-progress", *ACK]) == 1
         assert "changed" in capsys.readouterr().err
         plan.write_text(original)
     other = scenario()
@@ -99,12 +106,12 @@ def test_resume_refuses_a_changed_plan_and_other_instruments(tmp_path, capsys):
         (tmp_path / "b2").mkdir()
         bench2 = write_bench(lab2, tmp_path / "b2")
         assert main(["resume", str(run_id), "--db", str(db), "--bench", str(bench2),
-                     "--no-progress"]) == 1
+                     "--no-progress", *ACK]) == 1
         err = capsys.readouterr().err
         assert "instruments differ" in err and "VL0399" in err
         assert count_points(db) == done and dark(lab2)
         assert main(["resume", str(run_id), "--db", str(db), "--bench", str(bench2),
-                     "--force", "--no-progress"]) == 0
+                     "--force", "--no-progress", *ACK]) == 0
         assert count_points(db) == N_POINTS and dark(lab2)
     store = open_store(db)
     assert store.events(run_id, ["forced"])
@@ -119,7 +126,44 @@ def test_resume_of_a_finished_run_is_an_input_error(tmp_path, capsys):
         db = tmp_path / "r.db"
         assert main(["run", str(plan), "--bench", str(bench), "--db", str(db), "--unattended",
                      "--operator", OPERATOR, "--ack-safety", "--no-progress"]) == 0
-        assert main(["resume", "1", "--db", str(db)]) == 2
+        assert main(["resume", "1", "--db", str(db), *ACK]) == 2
         assert "already completed" in capsys.readouterr().err
         with pytest.raises(SystemExit):
             main(["resume", "x", "--db", str(db)])
+
+
+def test_resume_asks_for_the_safety_acknowledgement_again(tmp_path, capsys, monkeypatch):
+    """Resuming switches the light on again: unattended without --ack-safety or --operator is
+    refused (exit 2) and an unconfirmed interactive resume is refused (exit 1), both before any
+    instrument is touched; a typed confirmation is recorded with the operator."""
+    from labrun.vlab.lab import VirtualLab
+
+    with VirtualLab(scenario()) as lab:
+        plan, bench, db, run_id = _kill_mid_run(tmp_path, lab)
+        assert main(["off", "--bench", str(bench)]) == 0 and dark(lab)
+        done = count_points(db)
+        capsys.readouterr()
+        for flags in (["--unattended", "--operator", RESUMER], ["--unattended", "--ack-safety"]):
+            assert main(["resume", str(run_id), "--db", str(db), "--no-progress", *flags]) == 2
+            err = capsys.readouterr().err
+            assert "--ack-safety" in err or "--operator" in err
+        monkeypatch.setattr("labrun.cli.run.ask_operator", lambda text: False)
+        assert main(["resume", str(run_id), "--db", str(db), "--no-progress"]) == 1
+        assert "not confirmed" in capsys.readouterr().err
+        store = open_store(db)
+        assert count_points(db) == done and not store.events(run_id, ["resume"])
+        assert len(store.events(run_id, ["safety_ack"])) == 1  # only the run's own
+        assert dark(lab)
+        shown = {}
+
+        def typed(text):
+            shown["text"] = text
+            return True
+
+        monkeypatch.setattr("labrun.cli.run.ask_operator", typed)
+        assert main(["resume", str(run_id), "--db", str(db), "--no-progress", "--operator",
+                     RESUMER]) == 0
+        assert "Worst case" in shown["text"] and "laser safety officer" in shown["text"]
+        assert count_points(db) == N_POINTS and dark(lab)
+    ack = store.events(run_id, ["safety_ack"])[-1]
+    assert ack.data == {**ack.data, "operator": RESUMER, "unattended": False, "resume": True}

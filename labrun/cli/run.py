@@ -31,7 +31,10 @@ def register(subparsers: Any) -> None:
                    help="acknowledge the worst case and cautions (recorded with name and time)")
     p.add_argument("--json", action="store_true", help="print the outcome as JSON on stdout")
     p.add_argument("--no-progress", action="store_true", help="no progress bar on stderr")
-    p.set_defaults(func=cmd_run)
+    p.add_argument("--transcript", metavar="FILE",
+                   help="stream every instrument exchange to FILE as JSON lines (flushed after "
+                        "each point)")
+    p.set_defaults(func=cmd_run, command_name="run")
 
     r = subparsers.add_parser(
         "resume", help="continue an interrupted run, skipping the points already stored",
@@ -42,9 +45,18 @@ def register(subparsers: Any) -> None:
     r.add_argument("--bench", metavar="BENCH", help="bench file (default: the run's own)")
     r.add_argument("--force", action="store_true",
                    help="resume despite a changed plan file or different instruments")
+    r.add_argument("--unattended", action="store_true",
+                   help="no one at the bench: needs --operator and --ack-safety")
+    r.add_argument("--operator", metavar="NAME", help="who is responsible for the resumed run")
+    r.add_argument("--ack-safety", action="store_true",
+                   help="acknowledge the worst case and cautions again (recorded with name and "
+                        "time): resuming switches the sources on again")
     r.add_argument("--json", action="store_true", help="print the outcome as JSON on stdout")
     r.add_argument("--no-progress", action="store_true", help="no progress bar on stderr")
-    r.set_defaults(func=cmd_resume)
+    r.add_argument("--transcript", metavar="FILE",
+                   help="stream every instrument exchange to FILE as JSON lines, appended to "
+                        "what it holds (flushed after each point)")
+    r.set_defaults(func=cmd_resume, command_name="resume")
 
 
 def ask_operator(text: str) -> bool:
@@ -78,6 +90,16 @@ def _report(outcome: Any, as_json: bool) -> int:
     return outcome.exit_code
 
 
+def check_unattended(args: argparse.Namespace) -> None:
+    """Unattended needs --operator and --ack-safety: InputError (exit 2) before anything opens."""
+    if args.unattended and not (args.operator and args.ack_safety):
+        from labrun.errors import InputError
+
+        flag = "--operator NAME" if not args.operator else "--ack-safety"
+        raise InputError(f"an unattended {args.command_name} needs {flag}",
+                         field=flag.split()[0])
+
+
 def cmd_run(args: argparse.Namespace) -> int:
     """labrun run PLAN --bench BENCH ...: validate everything, then run."""
     from labrun.bench import load_bench
@@ -88,20 +110,21 @@ def cmd_run(args: argparse.Namespace) -> int:
     # a path, or the name of a shipped example ("power-sweep")
     plan = load_plan(args.plan)
     bench = load_bench(args.bench)
-    if args.unattended and not (args.operator and args.ack_safety):
-        from labrun.errors import InputError
-
-        flag = "--operator NAME" if not args.operator else "--ack-safety"
-        raise InputError(f"an unattended run needs {flag}", field=flag.split()[0])
+    check_unattended(args)
     require_roles(plan, bench)  # a bench that cannot run the plan: refused before any store
-    store = open_store(args.db)
+    transcript = open_transcript(args, append=False)
     try:
-        outcome = run_plan(plan, bench, store, operator=args.operator,
-                           unattended=args.unattended, ack_safety=args.ack_safety,
-                           confirm=ask_operator, progress=not args.no_progress,
-                           echo=sys.stderr)
+        store = open_store(args.db)
+        try:
+            outcome = run_plan(plan, bench, store, operator=args.operator,
+                               unattended=args.unattended, ack_safety=args.ack_safety,
+                               confirm=ask_operator, progress=not args.no_progress,
+                               transcript=transcript, echo=sys.stderr)
+        finally:
+            store.close()
     finally:
-        store.close()
+        if transcript is not None:
+            transcript.close()
     return _report(outcome, args.json)
 
 
@@ -111,11 +134,30 @@ def cmd_resume(args: argparse.Namespace) -> int:
     from labrun.engine import resume_run
     from labrun.store import open_existing_store
 
+    check_unattended(args)
     bench = load_bench(args.bench) if args.bench else None
     store = open_existing_store(args.db)  # a run to resume must already be stored
     try:
-        outcome = resume_run(args.run_id, store, bench=bench, force=args.force,
-                             progress=not args.no_progress)
+        transcript = open_transcript(args, append=True)
+        try:
+            outcome = resume_run(args.run_id, store, bench=bench, force=args.force,
+                                 operator=args.operator, unattended=args.unattended,
+                                 ack_safety=args.ack_safety, confirm=ask_operator,
+                                 progress=not args.no_progress, transcript=transcript,
+                                 echo=sys.stderr)
+        finally:
+            if transcript is not None:
+                transcript.close()
     finally:
         store.close()
     return _report(outcome, args.json)
+
+
+def open_transcript(args: argparse.Namespace, *, append: bool) -> Any:
+    """The streaming transcript of ``--transcript FILE`` (entries not kept in memory), or None;
+    an unwritable file is a one-line InputError (exit 2) before any instrument is opened."""
+    if not args.transcript:
+        return None
+    from labrun.transcript import Transcript
+
+    return Transcript.stream(args.transcript, append=append, retain=False)

@@ -1,0 +1,92 @@
+"""``labrun run/resume --transcript FILE``: every instrument exchange streamed to FILE as JSON
+lines while the run goes, flushed per point (a SIGKILL keeps it), not kept in memory."""
+
+from __future__ import annotations
+
+import json
+import signal
+
+from _engine_support import (
+    OPERATOR,
+    count_points,
+    dark,
+    labrun_process,
+    long_powers,
+    scenario,
+    wait_for,
+    write_bench,
+    write_plan,
+)
+
+from labrun.cli import main
+from labrun.store import open_store
+from labrun.transcript import Transcript, TranscriptEntry
+
+ACK = ["--unattended", "--operator", OPERATOR, "--ack-safety", "--no-progress"]
+SWEEP = "INIT:IMM"
+
+
+def _lines(path):
+    return [json.loads(line) for line in path.read_text(encoding="utf-8").splitlines()]
+
+
+def test_a_streaming_transcript_writes_lines_and_keeps_nothing(tmp_path):
+    path = tmp_path / "t.jsonl"
+    with Transcript.stream(path) as tr:
+        for i in range(3):
+            tr.record(resource="TCPIP0::h::1::SOCKET", role="osa", direction="query",
+                      text=f"Q{i}?", started=0.0, reply=str(i))
+        assert tr.entries == [] and len(tr) == 3
+    rows = _lines(path)
+    assert [r["text"] for r in rows] == ["Q0?", "Q1?", "Q2?"]
+    assert TranscriptEntry(**rows[0]).reply == "0"  # round-trips into the dataclass
+    kept = Transcript.stream(tmp_path / "k.jsonl", retain=True)
+    kept.record(resource="r", role=None, direction="write", text="A", started=0.0)
+    kept.close()
+    assert len(kept.entries) == 1 and len(_lines(tmp_path / "k.jsonl")) == 1
+
+
+def test_run_and_resume_stream_the_transcript(tmp_path, capsys):
+    from labrun.vlab.lab import VirtualLab
+
+    with VirtualLab(scenario()) as lab:
+        plan = write_plan(tmp_path, long_powers(200))
+        bench = write_bench(lab, tmp_path)
+        db, log = tmp_path / "runs.db", tmp_path / "traffic.jsonl"
+        proc = labrun_process("run", str(plan), "--bench", str(bench), "--db", str(db),
+                              "--transcript", str(log), *ACK, cwd=tmp_path)
+        try:
+            assert wait_for(lambda: count_points(db) >= 5, 60) is not None
+            proc.send_signal(signal.SIGKILL)
+            proc.wait(timeout=30)
+        finally:
+            if proc.poll() is None:
+                proc.kill()
+        stored = count_points(db)
+        rows = _lines(log)  # what the killed process had flushed
+        sweeps = [r for r in rows if r["role"] == "osa" and r["text"].startswith(SWEEP)]
+        assert len(sweeps) >= stored  # every stored point's sweep is on disk
+        assert main(["off", "--bench", str(bench)]) == 0
+        assert main(["resume", "1", "--db", str(db), "--transcript", str(log), *ACK]) == 0
+        assert dark(lab)
+    rows_after = _lines(log)
+    assert rows_after[:len(rows)] == rows  # appended, not overwritten
+    assert len([r for r in rows_after if r["text"].startswith(SWEEP)]) >= 200
+    assert set(rows_after[0]) == set(TranscriptEntry.__dataclass_fields__)
+    store = open_store(db)
+    events = store.events(1, ["transcript"])
+    assert len(events) == 2 and all(e.data["path"] == str(log.resolve()) for e in events)
+
+
+def test_an_unwritable_transcript_is_an_input_error(tmp_path, capsys):
+    from labrun.vlab.lab import VirtualLab
+
+    with VirtualLab(scenario()) as lab:
+        plan = write_plan(tmp_path, [0.0])
+        bench = write_bench(lab, tmp_path)
+        code = main(["run", str(plan), "--bench", str(bench), "--db", str(tmp_path / "r.db"),
+                     "--transcript", str(tmp_path / "missing" / "t.jsonl"), *ACK])
+        assert code == 2
+        err = capsys.readouterr().err
+        assert "--transcript" in err and "t.jsonl" in err and "Traceback" not in err
+        assert not (tmp_path / "r.db").exists() and dark(lab)
