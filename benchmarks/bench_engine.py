@@ -11,7 +11,9 @@ Prints figures; asserts nothing (speed targets live here, not in the test suite)
 2. Wall time vs instrument-imposed time at a realistic time scale (1.0): imposed = time the
    instruments take to answer (sweeps, *OPC? waits) + settle times the profiles and the plan
    require. Target <= 1.03x.
-3. Memory over many points (resident set size sampled as points are stored). Target: flat.
+3. Memory over many points: labrun's resident set size and traced Python heap, sampled as
+   points are stored, with the virtual lab in its own process (an in-process lab's server
+   threads and trace synthesis used to be counted as labrun's growth). Target: flat.
 
     python benchmarks/bench_engine.py [--points 200] [--repeats 5] [--memory-points 2000]
                                       [--realistic 6]
@@ -248,12 +250,12 @@ def realistic(folder: Path, n: int, time_scale: float) -> None:
     print(f"    ratio {wall / imposed:8.4f}x   (target <= 1.03x)")
 
 
-def _rss_mib() -> float:
-    """Resident set size of this process in MiB (Linux /proc; else peak RSS)."""
-    try:
-        with open("/proc/self/statm") as fh:
-            import os
+def _rss_mib(pid: int | str = "self") -> float:
+    """Resident set size of a process in MiB (Linux /proc; else this process's peak RSS)."""
+    import os
 
+    try:
+        with open(f"/proc/{pid}/statm") as fh:
             return int(fh.read().split()[1]) * os.sysconf("SC_PAGE_SIZE") / 2**20
     except OSError:
         import resource
@@ -261,34 +263,52 @@ def _rss_mib() -> float:
         return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
 
 
+def _slope(samples: list[tuple[int, float]]) -> str:
+    """Growth from the second sample (after warm-up) to the last, per 1000 points."""
+    (k1, m1), (k2, m2) = samples[1], samples[-1]
+    return f"{m2 - m1:+.1f} MiB = {(m2 - m1) / (k2 - k1) * 1000.0:+.3f} MiB per 1000 points"
+
+
 def memory(folder: Path, n: int, samples: int) -> None:
-    """Figure 3: RSS sampled every n/10 stored points."""
-    samples_mib: list[tuple[int, float]] = []
+    """Figure 3: labrun's RSS and traced Python heap sampled every n/10 stored points, with the
+    virtual lab served from its own process (its memory is shown apart: it is not labrun's)."""
+    import tracemalloc
+
+    rows: list[tuple[int, float, float, float | None]] = []
     original = Store.add_point
     count = {"n": 0}
+    proc, bench = _serve(folder, 0.0)
 
     def sampled(self: Store, *args: Any, **kwargs: Any) -> int:
         out = original(self, *args, **kwargs)
         count["n"] += 1
         if count["n"] % max(n // 10, 1) == 0:
-            samples_mib.append((count["n"], _rss_mib()))
+            heap = tracemalloc.get_traced_memory()[0] / 2**20
+            lab = _rss_mib(proc.pid) if proc.poll() is None else None
+            rows.append((count["n"], _rss_mib(), heap, lab))
         return out
 
     Store.add_point = sampled  # type: ignore[method-assign]
+    tracemalloc.start()
     try:
-        with VirtualLab("default-scenario.toml", time_scale=0.0) as lab:
-            t0 = time.perf_counter()
-            _run(folder, lab, n, samples, 0.0, Meter())
-            wall = time.perf_counter() - t0
+        t0 = time.perf_counter()
+        _run_bench(folder, bench, n, samples, Meter())
+        wall = time.perf_counter() - t0
     finally:
+        tracemalloc.stop()
         Store.add_point = original  # type: ignore[method-assign]
-    print(f"[3] memory over {n} points ({samples}-sample traces, {wall:.0f} s)")
-    print("    " + "  ".join(f"{k}:{v:.0f}" for k, v in samples_mib) + "  (points:MiB RSS)")
-    if len(samples_mib) >= 3:
-        (k1, m1), (k2, m2) = samples_mib[1], samples_mib[-1]
-        slope = (m2 - m1) / (k2 - k1) * 1000.0
-        print(f"    growth after warm-up {m2 - m1:+.1f} MiB = {slope:+.3f} MiB per 1000 points "
-              f"(median {statistics.median(v for _, v in samples_mib):.0f} MiB)")
+        proc.terminate()
+        proc.wait(timeout=30)
+    print(f"[3] memory over {n} points ({samples}-sample traces, {wall:.0f} s, virtual lab served "
+          "in its own process, tracemalloc on)")
+    print("    " + "  ".join(f"{k}:{v:.0f}" for k, v, _, _ in rows) + "  (points:MiB labrun RSS)")
+    if len(rows) >= 3:
+        print(f"    labrun RSS growth after warm-up    {_slope([(k, v) for k, v, _, _ in rows])}"
+              "  (target: flat)")
+        print(f"    labrun Python heap (tracemalloc)   {_slope([(k, h) for k, _, h, _ in rows])}")
+        lab_rows = [(k, m) for k, _, _, m in rows if m is not None]
+        if len(lab_rows) >= 3:
+            print(f"    served virtual lab RSS (not labrun) {_slope(lab_rows)}")
 
 
 def main() -> None:
