@@ -61,6 +61,7 @@ settle_s = {settle}
 
 [order]
 zip = [["power_a_dbm", "power_b_dbm"]]
+repeats = {repeats}
 
 [osa]
 points = {samples}
@@ -104,11 +105,21 @@ def _axis(n: int) -> str:
     return f"values = [{vals}]"
 
 
+def _plan_text(n: int, samples: int, settle: float) -> str:
+    """A zipped power sweep of n points (whole-sweep repeats beyond 5,000 values per axis: a
+    plan axis holds at most 10,000)."""
+    repeats = -(-n // 5000)
+    if n % repeats:
+        raise SystemExit(f"{n} points: use a multiple of {repeats}")
+    return PLAN.format(axis=_axis(n // repeats), samples=samples, settle=settle,
+                       repeats=repeats)
+
+
 def _run(folder: Path, lab: VirtualLab, n: int, samples: int, settle: float,
          meter: Meter) -> tuple[float, int]:
     """One unattended run; (wall seconds of run_plan, points stored)."""
     plan_path = folder / f"plan-{n}-{samples}.toml"
-    plan_path.write_text(PLAN.format(axis=_axis(n), samples=samples, settle=settle))
+    plan_path.write_text(_plan_text(n, samples, settle))
     bench = load_bench(lab.write_bench(folder / "bench.toml"))
     store = open_store(folder / f"bench-{time.monotonic_ns()}.db")
     for inst in lab.instruments.values():  # instrument time: the lab executing commands
@@ -219,7 +230,7 @@ def _run_bench(folder: Path, bench_path: Path, n: int, samples: int,
                meter: Meter) -> tuple[float, int]:
     """One unattended run on a served bench; (wall seconds of run_plan, points stored)."""
     plan_path = folder / f"plan-{n}-{samples}.toml"
-    plan_path.write_text(PLAN.format(axis=_axis(n), samples=samples, settle=0.0))
+    plan_path.write_text(_plan_text(n, samples, 0.0))
     store = open_store(folder / f"bench-{time.monotonic_ns()}.db")
     t0 = time.perf_counter()
     out = run_plan(load_plan(plan_path), load_bench(bench_path), store, operator="benchmark",
