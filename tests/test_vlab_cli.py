@@ -181,13 +181,15 @@ def test_serve_with_a_port_clash_is_one_line_exit_2(tmp_path, capsys):
     import threading
 
     with socket.socket() as sock:
+        # The port stays taken by this socket for the whole test: a port released first could
+        # be bound by another process before serve asks for it (a clash on the wrong role).
         sock.bind(("127.0.0.1", 0))
+        sock.listen()
         port = sock.getsockname()[1]
-    scenario = tmp_path / "clash.toml"
-    scenario.write_text(FLAT_SCENARIO + f"[instruments.laser_a]\nport = {port}\n"
-                        f"[instruments.laser_b]\nport = {port}\n")
-    before = set(threading.enumerate())
-    code, out, err = run_cli(capsys, "sim", "serve", "--scenario", str(scenario))
+        scenario = tmp_path / "clash.toml"
+        scenario.write_text(FLAT_SCENARIO + f"[instruments.laser_b]\nport = {port}\n")
+        before = set(threading.enumerate())
+        code, out, err = run_cli(capsys, "sim", "serve", "--scenario", str(scenario))
     assert code == 2 and out == ""
     assert len(err.strip().splitlines()) == 1 and "instruments.laser_b.port" in err
     assert set(threading.enumerate()) <= before

@@ -307,9 +307,12 @@ def test_interlock_open_turns_sources_off_and_refuses_emission(rm, lab):
 
 def test_scenario_event_opens_interlock(rm):
     data = scenario_data(events=[{"at_s": 0.2, "action": "open_interlock"}])
-    with VirtualLab(parse_scenario(data)) as lab:
+    # The event timer starts once the sources are on: light_up may take longer than 0.2 s on a
+    # loaded machine, and an event that fired first would leave nothing on to turn off.
+    with VirtualLab(parse_scenario(data), hold_events=True) as lab:
         s = light_up(rm, lab)
         assert not lab.sources_off()
+        lab.start_events()
         deadline = time.monotonic() + 5
         while not lab.sources_off() and time.monotonic() < deadline:
             time.sleep(0.02)
@@ -321,6 +324,9 @@ def test_scenario_event_opens_interlock(rm):
 def test_two_clients_on_one_port(rm, lab):
     first, second = open_role(rm, lab, "laser_a"), open_role(rm, lab, "laser_a")
     first.write("SOUR:POW 4.25")
+    # IEEE 488.2 *OPC?: answers once the commands before it on that connection are done; only
+    # then may another connection expect to see the new setting.
+    assert first.query("*OPC?") == "1"
     assert second.query("SOUR:POW?") == "4.25"
     replies: list[str] = []
 

@@ -51,19 +51,24 @@ class VirtualLab:
     """Simulated bench: every instrument of a scenario on its own TCP port, sharing one state."""
 
     def __init__(self, scenario: Scenario | str | Path | dict[str, Any], *,
-                 time_scale: float = 0.0, seed: int = 0, host: str = "127.0.0.1"):
+                 time_scale: float = 0.0, seed: int = 0, host: str = "127.0.0.1",
+                 hold_events: bool = False):
+        """``hold_events``: the scenario's timed events count from ``start_events()`` instead of
+        from ``start()`` (a test sets the bench up first, however long that takes)."""
         if time_scale < 0:
             raise ValueError("time_scale must be >= 0")
         self.scenario = as_scenario(scenario)
         self.time_scale = float(time_scale)
         self.seed = int(seed)
         self.host = host
+        self.hold_events = bool(hold_events)
         self.state = LabState(self.scenario, time_scale=self.time_scale, seed=self.seed)
         self._stopping = threading.Event()
         self.instruments: dict[str, SimInstrument] = {}
         self.servers: dict[str, InstrumentServer] = {}
         self._events_thread: threading.Thread | None = None
         self.started_at: float | None = None
+        self.events_from: float | None = None  # time.monotonic() the event times count from
 
     # ---- life cycle --------------------------------------------------------------------------
     def start(self) -> VirtualLab:
@@ -87,11 +92,21 @@ class VirtualLab:
         self.started_at = time.monotonic()
         for server in self.servers.values():
             server.start()
-        if self.scenario.events:
-            self._events_thread = threading.Thread(target=self._run_events, name="vlab-events",
-                                                   daemon=True)
-            self._events_thread.start()
+        if not self.hold_events:
+            self.start_events()
         return self
+
+    def start_events(self) -> None:
+        """Start the timer of the scenario's timed events (once; start() does it unless the lab
+        holds its events): each fires at_s real seconds after this call."""
+        if not self.servers:
+            raise RuntimeError("start the virtual lab before its events")
+        if self._events_thread is not None or not self.scenario.events:
+            return
+        self.events_from = time.monotonic()
+        self._events_thread = threading.Thread(target=self._run_events, name="vlab-events",
+                                               daemon=True)
+        self._events_thread.start()
 
     def stop(self) -> None:
         """Turn sources off, stop the event timer and every server; no thread or port is left."""
@@ -124,10 +139,10 @@ class VirtualLab:
 
     # ---- events and controls -----------------------------------------------------------------
     def _run_events(self) -> None:
-        """Fire the scenario's timed events at their real times after start."""
-        assert self.started_at is not None
+        """Fire the scenario's timed events at their real times after start_events()."""
+        assert self.events_from is not None
         for event in sorted(self.scenario.events, key=lambda e: e.at_s):
-            delay = self.started_at + event.at_s - time.monotonic()
+            delay = self.events_from + event.at_s - time.monotonic()
             if delay > 0 and self._stopping.wait(delay):
                 return
             self.apply_event(event.action, event.role)

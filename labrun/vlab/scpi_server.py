@@ -570,7 +570,8 @@ class _TcpServer(socketserver.ThreadingTCPServer):
         if not line.strip():
             return True
         inst = self.instrument
-        decision = inst.faults.on_command()
+        with inst.lab.lock:  # clients of one instrument share its fault generator and counts
+            decision = inst.faults.on_command()
         if decision.drop:
             log.debug("%s: fault: dropping connection", inst.role)
             sock.shutdown(socket.SHUT_RDWR)
@@ -584,7 +585,8 @@ class _TcpServer(socketserver.ThreadingTCPServer):
                 inst.push_error(decision.spurious[0])
         if reply is not None:
             if decision.garble:
-                reply = inst.faults.garble(reply)
+                with inst.lab.lock:
+                    reply = inst.faults.garble(reply)
             sock.sendall(reply)
         return True
 
