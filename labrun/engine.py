@@ -402,9 +402,27 @@ class Runner:
             if state is None and adapter.interlock_closed() is False:
                 raise RunAborted(f"interlock open on {role}")
             if state is not None and bool(state) != self.expected_on(role):
+                if self._confirm_state(role, adapter) == self.expected_on(role):
+                    continue
                 found = "on" if state else "off"
                 raise RunAborted(f"{role} output found {found} unexpectedly"
                                  + self._interlock_note())
+
+    def _confirm_state(self, role: str, adapter: Any) -> bool | None:
+        """Read a surprising output state once more: one corrupted reply must not end a night.
+
+        The run aborts (sources off) unless the second read shows the expected state; either
+        way the disagreement is recorded as a fault event.
+        """
+        try:
+            again = adapter.output_state()
+        except Exception as exc:  # noqa: BLE001 - any failure leaves the surprise standing
+            again, detail = None, f"re-read failed: {exc}"
+        else:
+            detail = f"re-read says {'on' if again else 'off'}"
+        self.store.add_event(self.run_id, "fault", f"{role} output state reply disagreed with "
+                             f"the expected state; {detail}", role=role)
+        return None if again is None else bool(again)
 
     def expected_on(self, role: str) -> bool:
         """Whether a source should emit now (an amplifier the plan does not use stays off)."""
