@@ -128,8 +128,12 @@ def inst_scpi_peer() -> Iterator[InstPeer]:
 
 
 @pytest.fixture
-def inst_free_port() -> int:
-    """A loopback port with nothing listening (for non-answering instrument tests)."""
+def inst_free_port() -> Iterator[int]:
+    """A loopback port with nothing listening (for non-answering instrument tests).
+
+    The port stays bound (without listen(), so connections are refused) for the whole test:
+    a released port could be taken by a virtual lab of a concurrent test run.
+    """
     with socket.socket() as s:
         s.bind(("127.0.0.1", 0))
-        return s.getsockname()[1]
+        yield s.getsockname()[1]
