@@ -16,7 +16,7 @@ import logging
 import socket
 import threading
 import time
-from collections.abc import Callable
+from collections.abc import Callable, Iterator
 from dataclasses import dataclass
 from pathlib import Path
 from typing import TypeVar
@@ -238,6 +238,18 @@ class ScpiSession:
         return NoAnswerError(
             f"no answer at {self.resource} via {self.backend} ({type(exc).__name__}: {exc}); "
             "check power, cable and address", role=self.role, resource=self.resource)
+
+    @contextlib.contextmanager
+    def single_attempt(self) -> Iterator[ScpiSession]:
+        """Exchanges inside are tried once, never reconnected and sent again by the session: for
+        switching emission on, which after a lost connection (the instrument may have reset, at
+        another power) only the caller may repeat, after checking again."""
+        with self._lock:
+            saved, self.retries = self.retries, 0
+            try:
+                yield self
+            finally:
+                self.retries = saved
 
     def _reconnect(self) -> None:
         """Drop and reopen the resource after a transport failure."""
@@ -579,12 +591,17 @@ def query_each(requests: list[tuple[ScpiSession, str]]) -> list[str]:
         for s in sessions:
             stack.enter_context(s._lock)
         started = time.time()
+        current = sessions[0]  # the session whose exchange failed, for the fault event
         try:
             for s, cmd in requests:
+                current = s
                 if s._res is None:
                     s.open()
                 s._res.write(cmd)
-            replies = [s._res.read().strip() for s in sessions]
+            replies = []
+            for s in sessions:
+                current = s
+                replies.append(s._res.read().strip())
         except Exception as exc:
             if not _is_transport_error(exc) and not isinstance(exc, InstrumentError):
                 raise
@@ -593,7 +610,7 @@ def query_each(requests: list[tuple[ScpiSession, str]]) -> list[str]:
                 s._record("query", cmd, started, None, f"{type(exc).__name__}: {exc}", 1)
                 s.close()
             owner = next((s for s in sessions if s.role and s.role == getattr(exc, "role", None)),
-                         sessions[0])
+                         current)
             owner.report_fault(" | ".join(cmd for _, cmd in requests), exc, 1)
             return [s.query(cmd) for s, cmd in requests]
         for (s, cmd), reply in zip(requests, replies, strict=True):

@@ -35,7 +35,8 @@ class SourceAdapter(Adapter):
         return self.optional_read("read_interlock")
 
     def output_on(self) -> None:
-        """Enable emission, after checking the interlock and that the set power is under the cap."""
+        """Enable emission, after checking the interlock and that the set power is under the cap;
+        sent once (a lost connection is the caller's to retry, checks included)."""
         if self.interlock_closed() is False:
             raise SafetyError(f"{self.role}: interlock is open; emission not enabled")
         if self.cap_dbm is not None and self.profile.has("read_power_dbm"):
@@ -43,7 +44,10 @@ class SourceAdapter(Adapter):
             if current > self.cap_dbm + FLOAT_SLACK:
                 raise SafetyError(f"{self.role}: power is set to {current:g} dBm, above the "
                                   f"bench cap {self.cap_dbm:g} dBm; emission not enabled")
-        self.apply("output_on", expect=True if self._reports_state() else None)
+        # Never resent by the session after a lost connection: the instrument may have reset
+        # (another power, perhaps above the cap); the run's retry sets the power and checks again.
+        with self.session.single_attempt():
+            self.apply("output_on", expect=True if self._reports_state() else None)
 
     def output_off(self) -> None:
         """Disable emission (verified by read-back where the instrument reports its state)."""
