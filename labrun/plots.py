@@ -49,6 +49,9 @@ def plot_trace(path: str | Path, x: np.ndarray, y_dbm: np.ndarray, reduction: Re
             ax.annotate(f"{label}\n<{ln.upper_limit_dbm:.1f}", (xpos, ln.upper_limit_dbm),
                         textcoords="offset points", xytext=(0, 6), ha="center", fontsize=7,
                         color="tab:gray")
+    finite = np.asarray(y_dbm)[np.isfinite(y_dbm)]
+    if finite.size:  # headroom so the labels of the strongest lines stay inside the axes
+        ax.set_ylim(top=float(finite.max()) + 0.12 * float(np.ptp(finite) or 10.0))
     if reduction.floor_dbm is not None:
         ax.axhline(reduction.floor_dbm, ls=":", lw=0.8, color="tab:green", label="floor")
     top = max([float(np.max(y_dbm))] + [ln.power_dbm or -np.inf for ln in reduction.lines])
