@@ -23,6 +23,7 @@ from typing import Any, TextIO
 
 from labrun import __version__
 from labrun.errors import InputError, InstrumentError, SafetyError
+from labrun.instruments.base import FLOAT_SLACK
 from labrun.physics.units import nm_to_thz, thz_to_nm
 from labrun.plan import StopWatch
 from labrun.scpi import NoAnswerError
@@ -359,6 +360,9 @@ class Runner:
         deadline = time.monotonic()
         todo = [s for s in settings if self.applied.get((s.role, s.method)) != s.value]
         for s in sorted(todo, key=lambda s: -s.settle_s):
+            # Unknown until confirmed: a failed setting must not look like a change made
+            # behind labrun's back to the emission watch (check_power).
+            self.applied.pop((s.role, s.method), None)
             getattr(self.role(s.role), s.method)(s.value)
             self.applied[(s.role, s.method)] = s.value
             deadline = max(deadline, time.monotonic() + s.settle_s * self.scale)
@@ -388,17 +392,21 @@ class Runner:
         return [r for r in SOURCE_ROLES if r in self.bench.instruments]
 
     def check_emission(self) -> None:
-        """Abort if a source's output is not in the expected state, or its interlock is open.
+        """Abort if a source's output is not in the expected state, its interlock is open, or
+        its power setting changed behind labrun's back (front panel, reset).
 
         An open interlock forces emission off, so where a source reports its output state that
         one query covers both (the interlock is then read to name the reason); the interlock is
-        read on its own only for sources that do not report their output.
+        read on its own only for sources that do not report their output. The power travels in
+        the same message as the state where the profile takes compound messages.
         """
-        from labrun.instruments import output_states
+        from labrun.instruments import source_readings
 
         roles = self.sources()
         adapters = [self.role(r) for r in roles]
-        for role, adapter, state in zip(roles, adapters, output_states(adapters), strict=True):
+        for role, adapter, reading in zip(roles, adapters, source_readings(adapters),
+                                          strict=True):
+            state, power = reading
             if state is None and adapter.interlock_closed() is False:
                 raise RunAborted(f"interlock open on {role}")
             if state is not None and bool(state) != self.expected_on(role):
@@ -407,6 +415,39 @@ class Runner:
                 found = "on" if state else "off"
                 raise RunAborted(f"{role} output found {found} unexpectedly"
                                  + self._interlock_note())
+            if power is not None and self.expected_on(role):
+                self.check_power(role, adapter, float(power))
+
+    def check_power(self, role: str, adapter: Any, power: float) -> None:
+        """Refuse a source whose power reads above its bench cap (SafetyError at once, never
+        re-read or retried) or, confirmed by a second read, away from the value labrun set by
+        more than the profile's tolerance (RunAborted): a corrupted reply must not end a night."""
+        cap = adapter.cap_dbm
+        if cap is not None and power > cap + FLOAT_SLACK:
+            raise SafetyError(f"{role} power reads {power:g} dBm, above the bench cap "
+                              f"{cap:g} dBm")
+        want = self.applied.get((role, "set_power_dbm"))
+        if want is None:  # not set by this run yet (or its setting failed): only the cap applies
+            return
+        tol = float(adapter.profile.op("set_power_dbm").tolerance or 0.0) + FLOAT_SLACK
+        if abs(power - float(want)) <= tol:
+            return
+        try:
+            again: float | None = float(adapter.power_dbm())
+        except Exception as exc:  # noqa: BLE001 - any failure leaves the surprise standing
+            again, detail = None, f"re-read failed: {exc}"
+        else:
+            detail = f"re-read says {again:g} dBm"
+        self.store.add_event(self.run_id, "fault", f"{role} power reply {power:g} dBm disagreed "
+                             f"with the {float(want):g} dBm set; {detail}", role=role)
+        if again is not None and cap is not None and again > cap + FLOAT_SLACK:
+            raise SafetyError(f"{role} power reads {again:g} dBm, above the bench cap "
+                              f"{cap:g} dBm")
+        if again is not None and abs(again - float(want)) <= tol:
+            return
+        shown = power if again is None else again
+        raise RunAborted(f"{role} power changed behind labrun's back: reads {shown:g} dBm, "
+                         f"set {float(want):g} dBm (tolerance {tol:.3g} dB)")
 
     def _confirm_state(self, role: str, adapter: Any) -> bool | None:
         """Read a surprising output state once more: one corrupted reply must not end a night.

@@ -27,17 +27,17 @@ def _run(tmp_path, lab):
 
 
 def test_one_corrupted_state_reply_is_a_fault_not_an_abort(tmp_path, monkeypatch):
-    real = labrun.instruments.output_states
+    real = labrun.instruments.source_readings
     flipped = {"done": False}
 
     def one_bad_reply(adapters):
-        states = list(real(adapters))
-        if not flipped["done"] and states and states[0] is True:
-            states[0] = False  # as if "1" had arrived as "0" once
+        readings = list(real(adapters))
+        if not flipped["done"] and readings and readings[0].state is True:
+            readings[0] = readings[0]._replace(state=False)  # as if "1" had arrived as "0" once
             flipped["done"] = True
-        return states
+        return readings
 
-    monkeypatch.setattr(labrun.instruments, "output_states", one_bad_reply)
+    monkeypatch.setattr(labrun.instruments, "source_readings", one_bad_reply)
     with VirtualLab(scenario()) as lab:
         outcome, store = _run(tmp_path, lab)
         assert flipped["done"]
@@ -48,18 +48,19 @@ def test_one_corrupted_state_reply_is_a_fault_not_an_abort(tmp_path, monkeypatch
 
 
 def test_a_confirmed_surprise_aborts_with_sources_off(tmp_path, monkeypatch):
-    real = labrun.instruments.output_states
+    real = labrun.instruments.source_readings
     lab_ref = {}
 
     def laser_switched_off_behind_our_back(adapters):
-        states = list(real(adapters))
-        if states and states[0] is True and lab_ref["n"] >= 3:
+        readings = list(real(adapters))
+        if readings and readings[0].state is True and lab_ref["n"] >= 3:
             lab_ref["lab"].state.all_sources_off()  # someone pressed the front-panel button
-            states = list(real(adapters))
+            readings = list(real(adapters))
         lab_ref["n"] += 1
-        return states
+        return readings
 
-    monkeypatch.setattr(labrun.instruments, "output_states", laser_switched_off_behind_our_back)
+    monkeypatch.setattr(labrun.instruments, "source_readings",
+                        laser_switched_off_behind_our_back)
     with VirtualLab(scenario()) as lab:
         lab_ref.update(lab=lab, n=0)
         outcome, store = _run(tmp_path, lab)

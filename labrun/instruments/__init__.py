@@ -8,7 +8,7 @@ from __future__ import annotations
 
 import logging
 from collections.abc import Iterable, Iterator, Mapping, Sequence
-from typing import Any
+from typing import Any, NamedTuple
 
 from labrun.bench import Bench
 from labrun.errors import InputError
@@ -20,13 +20,14 @@ from labrun.instruments.osa import OsaAdapter
 from labrun.instruments.pol_controller import PolControllerAdapter
 from labrun.instruments.power_meter import PowerMeterAdapter
 from labrun.instruments.switch import SwitchAdapter
-from labrun.scpi import FaultHook, Idn, ScpiSession, query_each
-from labrun.transcript import Transcript
+from labrun.scpi import FaultHook, Idn, ScpiSession, compound, query_each
+from labrun.transcript import Transcript, split_units
 
 __all__ = [
     "ADAPTERS", "Adapter", "AmplifierAdapter", "AttenuatorAdapter", "Instruments",
     "LaserAdapter", "OsaAdapter", "PolControllerAdapter", "PowerMeterAdapter", "SwitchAdapter",
-    "open_bench", "open_instrument", "output_states", "read_each",
+    "SourceReading", "open_bench", "open_instrument", "output_states", "read_each",
+    "source_readings",
 ]
 
 log = logging.getLogger("labrun.instruments")
@@ -146,6 +147,53 @@ def output_states(adapters: Sequence[Adapter]) -> list[bool | None]:
     states = dict(zip([id(a) for a in reporting],
                       read_each([(a, "read_output_state") for a in reporting]), strict=True))
     return [states.get(id(a)) for a in adapters]
+
+
+class SourceReading(NamedTuple):
+    """What a source reports during a run: emission state and power setting (None where the
+    instrument does not report it)."""
+
+    state: bool | None
+    power_dbm: float | None
+
+
+def _source_queries(adapter: Adapter) -> list[str]:
+    """The watch queries of one source: output state (if reported), then power (if mapped)."""
+    names = []
+    if adapter.profile.capabilities.output_state and adapter.profile.has("read_output_state"):
+        names.append("read_output_state")
+    if adapter.profile.has("read_power_dbm"):
+        names.append("read_power_dbm")
+    return names
+
+
+def source_readings(adapters: Sequence[Adapter]) -> list[SourceReading]:
+    """Output state and power of each source, read from all of them at once; where the profile
+    takes compound messages both queries travel in one message (``OUTP:STAT?;:SOUR:POW?``), so
+    watching the power costs no extra round trip."""
+    names = [_source_queries(a) for a in adapters]
+    ops = [[a.query_text(n) for n in ns] for a, ns in zip(adapters, names, strict=True)]
+    # messages[i]: the messages to send to adapter i, each a list of the operations it asks
+    messages: list[list[list[Any]]] = []
+    for a, op_texts in zip(adapters, ops, strict=True):
+        if len(op_texts) > 1 and a.session.compound:
+            messages.append([op_texts])
+        else:
+            messages.append([[ot] for ot in op_texts])
+    values: list[dict[str, Any]] = [{} for _ in adapters]
+    for k in range(max((len(m) for m in messages), default=0)):
+        batch = [(i, m[k]) for i, m in enumerate(messages) if k < len(m)]
+        texts = [compound(parts[0][1], [t for _, t in parts[1:]]) for _, parts in batch]
+        replies = query_each([(adapters[i].session, t) for (i, _), t
+                              in zip(batch, texts, strict=True)])
+        for (i, parts), text, reply in zip(batch, texts, replies, strict=True):
+            units = split_units(reply) if len(parts) > 1 else [reply]
+            if len(units) != len(parts):
+                raise adapters[i]._instrument_error(f"reply {reply!r} to {text!r} has "
+                                                    f"{len(units)} units, expected {len(parts)}")
+            for (op, _), unit in zip(parts, units, strict=True):
+                values[i][op.name] = adapters[i].parse(op, unit)
+    return [SourceReading(v.get("read_output_state"), v.get("read_power_dbm")) for v in values]
 
 
 def open_bench(bench: Bench, *, transcript: Transcript | None = None,
