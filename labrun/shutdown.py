@@ -4,7 +4,8 @@
 main thread (so the current point is abandoned at once, never half-stored); during the safe-off
 itself a signal is only recorded, so a second Ctrl-C cannot cut it short. ``safe_off`` first uses
 the run's own connections, then, if anything is left unconfirmed (a dropped link, a reply cut in
-half by the signal), opens fresh connections to every source and attenuator and tries again.
+half by the signal), opens fresh connections to every source and attenuator (no init commands,
+a few short rounds, every role tried in each) and switches them off.
 """
 
 from __future__ import annotations
@@ -14,6 +15,7 @@ import contextlib
 import logging
 import signal
 import threading
+import time
 from collections.abc import Callable
 from types import FrameType
 from typing import Any
@@ -22,6 +24,9 @@ log = logging.getLogger(__name__)
 
 # Roles that carry light to the spool, switched off (or closed) on every exit.
 OFF_ROLES = ("laser_a", "laser_b", "amplifier", "attenuator_a", "attenuator_b")
+FRESH_ORDER = ("amplifier", "laser_a", "laser_b", "attenuator_a", "attenuator_b")  # strongest first
+FRESH_TRIES = 3      # rounds of the fresh-connection pass (a link may come back within a second)
+FRESH_PAUSE_S = 0.2  # between rounds: short, the light may be on meanwhile
 HANDLED_SIGNALS = tuple(
     s for s in (getattr(signal, n, None) for n in ("SIGINT", "SIGTERM", "SIGHUP")) if s is not None
 )
@@ -48,25 +53,46 @@ def safe_off_instruments(instruments: Any) -> list[str]:
         return [f"safe_off_all raised {type(exc).__name__}: {exc}"]
 
 
-def safe_off_fresh(bench: Any) -> list[str]:
-    """Pass 2: open new connections to every source/attenuator role and switch each off."""
-    from labrun.instruments import open_bench
+def safe_off_fresh(bench: Any, *, tries: int = FRESH_TRIES,
+                   pause_s: float = FRESH_PAUSE_S) -> list[str]:
+    """Pass 2: new connections to every source/attenuator role, each switched off; the problems
+    left. No init commands (a refused ``*CLS`` must not keep a laser on); a role that cannot be
+    opened or switched off is tried again, up to ``tries`` rounds ``pause_s`` apart, while the
+    other roles go on being darkened."""
+    pending = [role for role in FRESH_ORDER if role in bench.instruments]
+    last: dict[str, str] = {}
+    for attempt in range(1, max(1, tries) + 1):
+        if attempt > 1:
+            time.sleep(pause_s)
+        left = []
+        for role in pending:
+            problem = _fresh_off_role(bench, role)
+            if problem is not None:
+                last[role] = problem
+                left.append(role)
+        pending = left
+        if not pending:
+            break
+        log.warning("fresh safe-off, round %d of %d, left: %s", attempt, tries,
+                    "; ".join(last[r] for r in pending))
+    return [last[role] for role in pending]
 
-    problems: list[str] = []
-    for role in OFF_ROLES:
-        if role not in bench.instruments:
-            continue
-        inst = None
-        try:
-            inst = open_bench(bench, roles=[role])
-            problems.extend(inst.safe_off_all())
-        except Exception as exc:  # noqa: BLE001 - report and go on to the next source
-            problems.append(f"{role}: {type(exc).__name__}: {exc}")
-        finally:
-            if inst is not None:
-                with contextlib.suppress(Exception):  # closing is best effort
-                    inst.close()
-    return problems
+
+def _fresh_off_role(bench: Any, role: str) -> str | None:
+    """Open one role without its init commands and switch it off; the problem, or None."""
+    from labrun.instruments import Instruments, open_instrument
+
+    adapter = None
+    try:
+        adapter = open_instrument(bench, role, initialise=False)
+        problems = Instruments(bench, {role: adapter}).safe_off_all()
+    except Exception as exc:  # noqa: BLE001 - report; the caller tries again and goes on
+        return f"{role}: {type(exc).__name__}: {exc}"
+    finally:
+        if adapter is not None:
+            with contextlib.suppress(Exception):  # closing is best effort
+                adapter.close()
+    return "; ".join(problems) or None
 
 
 def safe_off(instruments: Any, bench: Any) -> list[str]:

@@ -59,11 +59,14 @@ def make_session(bench: Bench, role: str, transcript: Transcript | None = None,
 
 
 def open_instrument(bench: Bench, role: str, *, transcript: Transcript | None = None,
-                    on_fault: FaultHook | None = None) -> Adapter:
-    """Connect one role, send its profile's init commands and return its adapter."""
+                    on_fault: FaultHook | None = None, initialise: bool = True) -> Adapter:
+    """Connect one role, send its profile's init commands (unless ``initialise`` is False: the
+    safe-off fallback sends only what switching off needs) and return its adapter."""
     spec = bench.instruments[role]
     session = make_session(bench, role, transcript, on_fault).open()
     adapter = ADAPTERS[spec.kind](spec, session, settle_scale=bench.settle_scale)
+    if not initialise:
+        return adapter
     try:
         adapter.initialise()
     except Exception:

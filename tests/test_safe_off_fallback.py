@@ -1,0 +1,133 @@
+"""The fresh-connection safe-off fallback: when the run's own connections cannot switch a source
+off, new ones do, opened without init commands, retried briefly, every role still tried.
+
+Checked on the virtual lab's own state (``lab.sources_off()``), not on mocks.
+"""
+
+from __future__ import annotations
+
+import re
+import time
+from pathlib import Path
+
+import pytest
+from _engine_support import OPERATOR, dark, long_powers, scenario, write_bench, write_plan
+
+import labrun.instruments
+import labrun.reduce
+from labrun.bench import load_bench
+from labrun.engine import run_plan
+from labrun.plan import load_plan
+from labrun.resources import find_file
+from labrun.scpi import NoAnswerError, ScpiSession
+from labrun.shutdown import safe_off_fresh
+from labrun.store import open_store
+from labrun.vlab.lab import VirtualLab
+
+
+def _light(lab: VirtualLab, *roles: str) -> None:
+    """Leave lasers emitting in the lab state (as a run or the front panel would)."""
+    with lab.state.lock:
+        for role in roles:
+            lab.state.lasers[role].output = True
+    assert not lab.sources_off()
+
+
+def _bench_with_laser_a(lab: VirtualLab, folder: Path, *, init: list[str] | None = None,
+                        port: int | None = None) -> Path:
+    """The lab's bench, with laser_a's profile init commands or its port changed."""
+    bench = write_bench(lab, folder)
+    text = bench.read_text(encoding="utf-8")
+    if init is not None:
+        src = Path(find_file("generic-laser.toml", "drivers")).read_text(encoding="utf-8")
+        src = src.replace('name = "generic-laser"', 'name = "fussy-laser"')
+        src = re.sub(r"^init = .*$", "init = " + repr(init).replace("'", '"'), src, flags=re.M)
+        prof = folder / "fussy-laser.toml"
+        prof.write_text(src, encoding="utf-8")
+        head, _, tail = text.partition("[instruments.laser_a]")
+        tail = tail.replace('profile = "generic-laser"', f'profile = "{prof}"', 1)
+        text = head + "[instruments.laser_a]" + tail
+    if port is not None:
+        resource = lab.resources["laser_a"]
+        text = text.replace(resource, f"TCPIP0::127.0.0.1::{port}::SOCKET")
+    bench.write_text(text, encoding="utf-8")
+    return bench
+
+
+def test_a_broken_run_connection_still_ends_dark(tmp_path, monkeypatch, inst_free_port):
+    """The run's own link to laser_a goes dead (every reconnect lands on a port that refuses)
+    and the reduction fails: the first safe-off pass cannot reach laser_a, the fallback's fresh
+    connection switches it off."""
+    real_open, real_reduce = labrun.instruments.open_bench, labrun.reduce.reduce_trace
+    run_instruments: dict = {}
+    calls = {"n": 0}
+
+    def open_and_keep(bench, **kw):
+        ins = real_open(bench, **kw)
+        run_instruments.setdefault("ins", ins)
+        return ins
+
+    def break_link_then_fail(*args, **kwargs):
+        calls["n"] += 1
+        if calls["n"] == 3:
+            assert not lab.sources_off()
+            session = run_instruments["ins"]["laser_a"].session
+            session.resource = f"TCPIP0::127.0.0.1::{inst_free_port}::SOCKET"
+            session.close()
+            raise RuntimeError("reduction blew up")
+        return real_reduce(*args, **kwargs)
+
+    monkeypatch.setattr(labrun.instruments, "open_bench", open_and_keep)
+    monkeypatch.setattr(labrun.reduce, "reduce_trace", break_link_then_fail)
+    with VirtualLab(scenario()) as lab:
+        plan = load_plan(write_plan(tmp_path, long_powers(20)))
+        bench = load_bench(write_bench(lab, tmp_path))
+        store = open_store(tmp_path / "runs.db")
+        with pytest.raises(RuntimeError, match="blew up"):
+            run_plan(plan, bench, store, operator=OPERATOR, unattended=True, ack_safety=True,
+                     progress=False)
+        assert dark(lab)
+        (event,) = store.events(store.latest_run_id(), ["safe_off"])
+        assert event.data == {"problems": []}
+
+
+def test_fallback_skips_init_commands(tmp_path):
+    """A laser that refuses one of its profile's init commands (an error-queue entry) is still
+    switched off by the fallback: only what switching off needs is sent."""
+    with VirtualLab(scenario()) as lab:
+        # SYST:BOOT:WAIT is unknown to the virtual laser: -113 in its error queue
+        bench = load_bench(_bench_with_laser_a(lab, tmp_path, init=["*CLS", "SYST:BOOT:WAIT"]))
+        _light(lab, "laser_a", "laser_b")
+        assert safe_off_fresh(bench) == []
+        assert dark(lab)
+
+
+def test_fallback_retries_opening(tmp_path, monkeypatch):
+    """laser_b refuses the first connection (its LAN module still starting): the fallback
+    opens it again a moment later and switches it off."""
+    real_open = ScpiSession.open
+    refused = {"n": 0}
+
+    def open_refusing_once(self):
+        if self.role == "laser_b" and refused["n"] == 0:
+            refused["n"] += 1
+            raise NoAnswerError("connection refused (injected by the test)", role=self.role)
+        return real_open(self)
+
+    with VirtualLab(scenario()) as lab:
+        bench = load_bench(write_bench(lab, tmp_path))
+        _light(lab, "laser_a", "laser_b")
+        monkeypatch.setattr(ScpiSession, "open", open_refusing_once)
+        assert safe_off_fresh(bench, pause_s=0.05) == []
+        assert refused["n"] == 1 and dark(lab)
+
+
+def test_fallback_darkens_the_others_when_one_role_never_answers(tmp_path, inst_free_port):
+    with VirtualLab(scenario()) as lab:
+        bench = load_bench(_bench_with_laser_a(lab, tmp_path, port=inst_free_port))
+        _light(lab, "laser_b")
+        t0 = time.monotonic()
+        problems = safe_off_fresh(bench, pause_s=0.05)
+        assert time.monotonic() - t0 < 5.0  # bounded: refused connections fail fast
+        assert len(problems) == 1 and problems[0].startswith("laser_a")
+        assert lab.sources_off() and dark(lab)  # laser_b off, attenuators at maximum
