@@ -955,8 +955,11 @@ def resume_run(run_id: int, store: Store, *, bench: Any = None, force: bool = Fa
         raise InputError(f"no run {run_id} in {store.url}", field="RUN_ID")
     if run.status in FINISHED_STATUSES:
         raise InputError(f"run {run_id} is already {run.status}", field="RUN_ID")
-    if run.status == "running" and process_alive(run) and not force:
-        raise SafetyError(f"run {run_id} is still running (pid {run.pid} on {run.host})")
+    # Never overridden, not even by --force (which only covers a changed plan or different
+    # instruments): two processes must not drive the same lasers.
+    if run.status == "running" and process_alive(run):
+        raise SafetyError(f"run {run_id} is still running (pid {run.pid} on {run.host}); "
+                          "--force does not override this")
     if bench is None:
         if not run.bench_path or not Path(run.bench_path).is_file():
             raise InputError(f"the run's bench file {run.bench_path} is gone; give --bench",

@@ -167,3 +167,37 @@ def test_resume_asks_for_the_safety_acknowledgement_again(tmp_path, capsys, monk
         assert count_points(db) == N_POINTS and dark(lab)
     ack = store.events(run_id, ["safety_ack"])[-1]
     assert ack.data == {**ack.data, "operator": RESUMER, "unattended": False, "resume": True}
+
+
+def test_force_never_resumes_a_run_whose_process_is_alive(tmp_path, capsys):
+    """--force overrides a changed plan or other instruments, never a live original process:
+    two processes must not drive the same lasers."""
+    from labrun.vlab.lab import VirtualLab
+
+    with VirtualLab(scenario()) as lab:
+        plan = write_plan(tmp_path, long_powers(N_POINTS))
+        bench = write_bench(lab, tmp_path)
+        db = tmp_path / "runs.db"
+        proc = labrun_process("run", str(plan), "--bench", str(bench), "--db", str(db),
+                              "--unattended", "--operator", OPERATOR, "--ack-safety",
+                              "--no-progress", cwd=tmp_path)
+        try:
+            assert wait_for(lambda: count_points(db) >= 2, 60) is not None
+            store = open_store(db)
+            run_id = store.latest_run_id()
+            assert main(["resume", str(run_id), "--db", str(db), "--force", "--no-progress",
+                         *ACK]) == 1
+            err = capsys.readouterr().err
+            assert "still running" in err and str(proc.pid) in err
+            assert proc.poll() is None  # the original run goes on, alone
+            assert not store.events(run_id, ["resume", "forced"])
+            assert len(store.events(run_id, ["safety_ack"])) == 1
+            store.close()
+        finally:
+            proc.send_signal(signal.SIGTERM)
+            try:
+                proc.wait(timeout=30)
+            finally:
+                if proc.poll() is None:
+                    proc.kill()
+        assert wait_for(lambda: dark(lab), 5) is not None

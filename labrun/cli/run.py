@@ -44,7 +44,8 @@ def register(subparsers: Any) -> None:
     r.add_argument("--db", default=DEFAULT_DB, metavar="URL_OR_PATH", help=DB_HELP)
     r.add_argument("--bench", metavar="BENCH", help="bench file (default: the run's own)")
     r.add_argument("--force", action="store_true",
-                   help="resume despite a changed plan file or different instruments")
+                   help="resume despite a changed plan file or different instruments (never "
+                        "while the run's own process is still alive)")
     r.add_argument("--unattended", action="store_true",
                    help="no one at the bench: needs --operator and --ack-safety")
     r.add_argument("--operator", metavar="NAME", help="who is responsible for the resumed run")
