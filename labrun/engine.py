@@ -13,6 +13,7 @@ from __future__ import annotations
 import contextlib
 import math
 import os
+import signal as _signal
 import socket
 import sys
 import time
@@ -36,6 +37,7 @@ SOURCE_ROLES = ("laser_a", "laser_b", "amplifier")
 TRACE_DBM_BOUNDS = (-300.0, 100.0)
 STALE_HEARTBEAT_S = 60.0  # a running run with an older heartbeat is probably dead
 DEFAULT_ORDERS = 3
+SIGINT = int(_signal.SIGINT)  # Ctrl-C; KeyboardInterrupt counts as this signal
 
 
 class RunAborted(Exception):  # noqa: N818 - an outcome, raised to leave the loop
@@ -76,6 +78,7 @@ class RunOutcome:
     reason: str | None = None
     db: str | None = None
     safe_off_problems: list[str] = field(default_factory=list)
+    signal: int | None = None  # the signal that interrupted the run (2 SIGINT, 15 SIGTERM)
 
     def to_dict(self) -> dict[str, Any]:
         """JSON-ready summary (run_id, status, points_done, points_total, reason, db, ...)."""
@@ -89,7 +92,7 @@ class RunOutcome:
         if self.status in FINISHED_STATUSES:
             return 0
         if self.status == "interrupted":
-            return 130
+            return 128 + (self.signal or SIGINT)
         return 1
 
 
@@ -840,59 +843,77 @@ def _execute(plan: Any, bench: Any, store: Store, run_id: int, specs: Sequence[A
     from labrun.store.models import utcnow
 
     total = int(store.get_run(run_id).points_total)
-    status, reason = "failed", None
     guard = SafeOffGuard(bench)
     runner = Runner(plan, bench, store, run_id, guard, policy=policy or RetryPolicy(),
                     progress=progress, transcript=transcript)
-    error: BaseException | None = None
     guard.install()
+    caught: BaseException | None = None
+    finished = False
     try:
-        runner.osa_settings = plan.osa_settings(bench)
-        identities = runner.open_retrying()
-        if expect_identities is not None:
-            check_identities(expect_identities, identities, force=force, run_id=run_id,
-                             store=store)
-        fields: dict[str, Any] = {"status": "running", "heartbeat_at": utcnow(),
-                                  "pid": os.getpid(), "host": socket.gethostname()}
-        if first:
-            fields.update(identities=identities, started_at=utcnow(),
-                          settings={"osa": _jsonable(runner.osa_settings.to_dict()),
-                                    "settle_scale": runner.scale,
-                                    "retry": asdict(runner.policy)})
-        store.update_run(run_id, **fields)
-        done = runner.run_points(specs, done=done, total=total)
-        status = "completed"
-    except StopRequested as exc:
-        status, reason = "stopped", str(exc)
-    except RunInterrupted as exc:
-        status, reason = "interrupted", str(exc)
-    except KeyboardInterrupt:
-        status, reason = "interrupted", "interrupted (KeyboardInterrupt)"
-    except RunAborted as exc:
-        status, reason = "aborted", str(exc)
-    except InstrumentError as exc:
-        status, reason, error = "aborted", str(exc), exc
-    except SafetyError as exc:
-        status, reason, error = "aborted", str(exc), exc
-    except Exception as exc:  # noqa: BLE001 - recorded, the light switched off, then re-raised
-        status, reason, error = "failed", f"{type(exc).__name__}: {exc}", exc
-    finally:
+        try:
+            runner.osa_settings = plan.osa_settings(bench)
+            identities = runner.open_retrying()
+            if expect_identities is not None:
+                check_identities(expect_identities, identities, force=force, run_id=run_id,
+                                 store=store)
+            fields: dict[str, Any] = {"status": "running", "heartbeat_at": utcnow(),
+                                      "pid": os.getpid(), "host": socket.gethostname()}
+            if first:
+                fields.update(identities=identities, started_at=utcnow(),
+                              settings={"osa": _jsonable(runner.osa_settings.to_dict()),
+                                        "settle_scale": runner.scale,
+                                        "retry": asdict(runner.policy)})
+            store.update_run(run_id, **fields)
+            runner.run_points(specs, done=done, total=total)
+            finished = True
+        except BaseException as exc:  # noqa: BLE001 - classified below, re-raised if unexpected
+            caught = exc
+        finally:
+            guard.defer()  # from here on a signal is only recorded: nothing may cut the way out
+    except RunInterrupted as late:  # the one signal, between the run's end and defer()
+        if caught is None and not finished:  # it cut short the line above: keep what ended it
+            caught = late.__context__ or late
+    try:
+        status, reason, error, signum = _classify(caught)
         problems = guard.shutdown()
         runner.close()
-        guard.uninstall()
         runner.flush_transcript()
-    done = store.count_points(run_id)
-    store.add_event(run_id, "safe_off", "all sources off, attenuators at maximum" if not problems
-                    else "NOT CONFIRMED OFF: " + "; ".join(problems),
-                    data={"problems": problems})
-    if status == "completed" and done < total:
-        status, reason = "failed", f"only {done} of {total} points stored"
-    store.add_event(run_id, status, reason or status)
-    store.set_status(run_id, status, reason, finished=True)
+        done = store.count_points(run_id)
+        store.add_event(run_id, "safe_off", "all sources off, attenuators at maximum"
+                        if not problems else "NOT CONFIRMED OFF: " + "; ".join(problems),
+                        data={"problems": problems})
+        if status == "completed" and done < total:
+            status, reason = "failed", f"only {done} of {total} points stored"
+        if signum is None and guard.signum is not None:
+            store.add_event(run_id, "signal", f"{_signal.Signals(guard.signum).name} received "
+                            f"while the run was finishing ({status}); recorded, not acted on")
+        store.add_event(run_id, status, reason or status)
+        store.set_status(run_id, status, reason, finished=True)
+    finally:
+        guard.uninstall()
     if error is not None and not isinstance(error, InstrumentError | SafetyError):
         raise error
     return RunOutcome(run_id=run_id, status=status, points_done=done, points_total=total,
-                      reason=reason, db=store.url, safe_off_problems=problems)
+                      reason=reason, db=store.url, safe_off_problems=problems, signal=signum)
+
+
+def _classify(exc: BaseException | None) -> tuple[str, str | None, BaseException | None,
+                                                  int | None]:
+    """How a run ended, from what left its loop: (status, reason, error to re-raise or report,
+    signal number). None: every point was measured."""
+    if exc is None:
+        return "completed", None, None, None
+    if isinstance(exc, StopRequested):
+        return "stopped", str(exc), None, None
+    if isinstance(exc, RunInterrupted):
+        return "interrupted", str(exc), None, exc.signum
+    if isinstance(exc, KeyboardInterrupt):
+        return "interrupted", "interrupted (KeyboardInterrupt)", None, SIGINT
+    if isinstance(exc, RunAborted):
+        return "aborted", str(exc), None, None
+    if isinstance(exc, InstrumentError | SafetyError):
+        return "aborted", str(exc), exc, None
+    return "failed", f"{type(exc).__name__}: {exc}", exc, None
 
 
 def check_identities(expected: dict[str, str], found: dict[str, str], *, force: bool,

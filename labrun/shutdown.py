@@ -1,8 +1,9 @@
 """Every way out leaves the light off: signal handlers, an atexit hook and a two-pass safe-off.
 
 ``SafeOffGuard`` is armed around a run. SIGINT, SIGTERM and SIGHUP raise ``RunInterrupted`` in the
-main thread (so the current point is abandoned at once, never half-stored); during the safe-off
-itself a signal is only recorded, so a second Ctrl-C cannot cut it short. ``safe_off`` first uses
+main thread (so the current point is abandoned at once, never half-stored), at most once; once
+the run is on its way out (``defer()``: safe-off and bookkeeping) a signal is only recorded, so
+no Ctrl-C or SIGTERM can cut the way out short. ``safe_off`` first uses
 the run's own connections, then, if anything is left unconfirmed (a dropped link, a reply cut in
 half by the signal), opens fresh connections to every source and attenuator (no init commands,
 a few short rounds, every role tried in each) and switches them off.
@@ -119,6 +120,7 @@ class SafeOffGuard:
         self.problems: list[str] | None = None
         self._on_signal = on_signal
         self._critical = False
+        self._deferred = False
         self._done = False
         self._lock = threading.Lock()
         self._previous: dict[int, Any] = {}
@@ -159,12 +161,17 @@ class SafeOffGuard:
         if self._on_signal is not None:
             with contextlib.suppress(Exception):  # a handler must not fail
                 self._on_signal(signum)
-        if not self._critical and not self._done and first:
+        if not self._critical and not self._deferred and not self._done and first:
             raise RunInterrupted(signum)
 
     def _atexit(self) -> None:
         """Interpreter exit without a clean shutdown (an unexpected path): switch off anyway."""
         self.shutdown()
+
+    def defer(self) -> None:
+        """From now on a signal is only recorded (``signum``), never raised: the run is on its
+        way out (safe-off, bookkeeping), which nothing may cut short."""
+        self._deferred = True
 
     def check(self) -> None:
         """Raise RunInterrupted if a signal arrived while it could not be raised."""
