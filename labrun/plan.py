@@ -889,7 +889,7 @@ def _interleave(regular: list[tuple[dict[str, Any], int, bool]], ref: dict[str, 
 # ----------------------------------------------------------------------------- OSA choice
 
 
-def _op_range(bench: Any, role: str, op: str) -> tuple[float, float] | None:
+def op_range(bench: Any, role: str, op: str) -> tuple[float, float] | None:
     """Allowed value range of a profile operation on the bench, or None if unknown."""
     if bench is None:
         return None
@@ -901,7 +901,7 @@ def _op_range(bench: Any, role: str, op: str) -> tuple[float, float] | None:
     return (float(rng[0]), float(rng[1])) if rng else None
 
 
-def _op_settle(bench: Any, role: str, op: str) -> float:
+def op_settle(bench: Any, role: str, op: str) -> float:
     """Settle time of a profile operation (0 when unknown)."""
     spec = getattr(bench, "instruments", {}).get(role) if bench is not None else None
     if spec is None:
@@ -959,7 +959,7 @@ def choose_osa_settings(plan: Plan, bench: Any = None) -> OsaSettings:
     why_limit = (f"spacing/4 = {sp_nm / 4:.4f} nm" if limit == sp_nm / 4.0 else
                  f"{limit:.4f} nm (spacing/4 = {sp_nm / 4:.4f} nm, tightened so a Gaussian RBW "
                  f"skirt is {spec.skirt_db:g} dB down midway between lines)")
-    rbw_rng = _op_range(bench, "osa", "set_rbw_nm") or (0.01, 2.0)
+    rbw_rng = op_range(bench, "osa", "set_rbw_nm") or (0.01, 2.0)
     if spec.rbw_nm is not None:
         rbw = spec.rbw_nm
         reasons.append(f"RBW {rbw:g} nm as given")
@@ -979,7 +979,7 @@ def choose_osa_settings(plan: Plan, bench: Any = None) -> OsaSettings:
             warnings.append(f"the OSA's finest RBW {rbw:g} nm exceeds {why_limit} "
                             f"({sp_ghz:g} GHz): neighbouring lines may merge")
 
-    pts_rng = _op_range(bench, "osa", "set_points") or (101.0, 50001.0)
+    pts_rng = op_range(bench, "osa", "set_points") or (101.0, 50001.0)
     need_pts = math.ceil(spec.samples_per_rbw * span / rbw) + 1
     if spec.points is not None:
         n = spec.points
@@ -994,7 +994,7 @@ def choose_osa_settings(plan: Plan, bench: Any = None) -> OsaSettings:
     if per_rbw < 5 - 1e-9:
         warnings.append(f"only {per_rbw:.1f} samples per RBW (< 5): peak powers will be low")
     sweep = spec.sweep_s if spec.sweep_s is not None else estimate_sweep_s(span, rbw, n)
-    sweep += _op_settle(bench, "osa", "sweep")
+    sweep += op_settle(bench, "osa", "sweep")
     return OsaSettings(center_nm=round(center, 4), span_nm=round(span, 4), rbw_nm=rbw, points=n,
                        reason="; ".join(reasons), per_point_center=per_point,
                        warnings=tuple(warnings), sweep_estimate_s=round(sweep, 4), orders=orders)

@@ -15,7 +15,7 @@ from dataclasses import asdict, dataclass, field
 from typing import Any
 
 from labrun.errors import SafetyError
-from labrun.plan import Plan, PointSpec, wavelength_b_nm
+from labrun.plan import Plan, PointSpec, op_range, wavelength_b_nm
 
 SWEEP_ROLES = ("laser_a", "laser_b", "attenuator_a", "attenuator_b", "pol_controller", "osa")
 ARMS = ("a", "b")
@@ -147,16 +147,6 @@ def _dbm(mw: float) -> float:
     return 10.0 * math.log10(mw) if mw > 0 else -math.inf
 
 
-def _op_range(bench: Any, role: str, op: str) -> tuple[float, float] | None:
-    """Range of a profile operation on the bench, or None if the role or range is absent."""
-    spec = bench.instruments.get(role)
-    if spec is None:
-        return None
-    operation = spec.profile.operations.get(op)
-    rng = getattr(operation, "range", None)
-    return (float(rng[0]), float(rng[1])) if rng else None
-
-
 def _cap(bench: Any, role: str) -> float | None:
     """The bench's hard cap of a source, or None."""
     spec = bench.instruments.get(role)
@@ -170,13 +160,13 @@ def _loss(bench: Any, arm: str) -> float:
 
 def _att_range(bench: Any, arm: str) -> tuple[float, float]:
     """Attenuation range of an arm's attenuator (0..60 dB when the profile says nothing)."""
-    return _op_range(bench, f"attenuator_{arm}", "set_attenuation_db") or (0.0, 60.0)
+    return op_range(bench, f"attenuator_{arm}", "set_attenuation_db") or (0.0, 60.0)
 
 
 def default_laser_dbm(bench: Any, role: str) -> float:
     """Fixed laser level when the plan pins none: the bench cap clipped to the profile range."""
     cap = _cap(bench, role)
-    rng = _op_range(bench, role, "set_power_dbm")
+    rng = op_range(bench, role, "set_power_dbm")
     levels = [v for v in (cap, rng[1] if rng else None) if v is not None]
     if not levels:
         raise SafetyError(f"{role}: no power cap in the bench and no range in its profile")
@@ -232,7 +222,7 @@ def _check_level(bench: Any, role: str, level: float) -> None:
     cap = _cap(bench, role)
     if cap is not None and level > cap + 1e-9:
         raise SafetyError(f"{role}: {level:.2f} dBm is above the bench cap {cap:.2f} dBm")
-    rng = _op_range(bench, role, "set_power_dbm")
+    rng = op_range(bench, role, "set_power_dbm")
     if rng and not rng[0] - 1e-9 <= level <= rng[1] + 1e-9:
         raise SafetyError(f"{role}: {level:.2f} dBm is outside the profile range "
                           f"[{rng[0]:g}, {rng[1]:g}] dBm")
@@ -418,7 +408,7 @@ def _point_violations(p: PointSpec, bench: Any, laser_dbm: Mapping[str, float] |
 def _range(bench: Any, role: str, op: str, value: float, point: int | None, unit: str,
            label: str | None = None) -> Iterable[Violation]:
     """A Violation when ``value`` lies outside the profile range of ``op`` on ``role``."""
-    rng = _op_range(bench, role, op)
+    rng = op_range(bench, role, op)
     spec = bench.instruments.get(role)
     if rng is None or spec is not None and op not in spec.profile.operations:
         return

@@ -17,7 +17,8 @@ from typing import Any
 from labrun import safety
 from labrun.bench import load_bench
 from labrun.errors import SafetyError
-from labrun.plan import OsaSettings, Plan, load_plan
+from labrun.plan import OsaSettings, Plan, load_plan, op_settle
+from labrun.profiles import VALUE_PLACEHOLDERS
 
 FIRST_POINTS = 3
 POWER_AXES = ("power_a_dbm", "power_b_dbm", "attenuation_a_db", "attenuation_b_db",
@@ -92,11 +93,8 @@ def point_steps(setpoint: Mapping[str, Any], bench: Any) -> list[Step]:
 
 def _settle(bench: Any, plan: Plan, step: Step) -> float:
     """Settle time of a step: the larger of its profile operation's and its plan axes'."""
-    spec = bench.instruments.get(step.role)
-    op = spec.profile.operations.get(step.op) if spec else None
-    profile_s = float(getattr(op, "settle_s", 0.0) or 0.0)
     axis_s = max([plan.settle_s.get(d, 0.0) for d in step.drives] + [0.0])
-    return max(profile_s, axis_s)
+    return max(op_settle(bench, step.role, step.op), axis_s)
 
 
 def _render(bench: Any, role: str, op_name: str, value: Any = None,
@@ -106,18 +104,17 @@ def _render(bench: Any, role: str, op_name: str, value: Any = None,
     op = spec.profile.operations.get(op_name) if spec else None
     if op is None:
         return None
-    template = op.command if op.command is not None else op.query
     kwargs: dict[str, Any] = {}
-    if op_name == "set_stokes":
-        kwargs = dict(zip(("s1", "s2", "s3"), (float(v) for v in value), strict=True))
+    if op_name in VALUE_PLACEHOLDERS:
+        kwargs = dict(zip(VALUE_PLACEHOLDERS[op_name], (float(v) for v in value), strict=True))
     elif value is not None:
-        kwargs["value"] = int(value) if getattr(op, "integer", False) else float(value)
+        kwargs["value"] = int(value) if op.integer else float(value)
     if index is not None:
         kwargs["index"] = index
     try:
-        return template.format(**kwargs)
+        return op.render(**kwargs)
     except (KeyError, ValueError, IndexError):
-        return f"{template} <{value}>"
+        return f"{op.template} <{value}>"
 
 
 def _osa_steps(osa: OsaSettings) -> list[tuple[str, Any]]:
@@ -168,17 +165,17 @@ def dry_run(plan: Plan, bench: Any, *, first: int = FIRST_POINTS) -> dict[str, A
                 text = _render(bench, role, "output_on")
                 if text:
                     cmds.append({"role": role, "text": text})
-                    wait = max(wait, _op_settle(bench, role, "output_on"))
+                    wait = max(wait, op_settle(bench, role, "output_on"))
         sweeps = 1
         if plan.capture_input and n % plan.osa.input_every == 0:
             sweeps = 2
-            wait += 2 * _op_settle(bench, "switch", "set_path")
+            wait += 2 * op_settle(bench, "switch", "set_path")
             cmds.append({"role": "switch", "text": _render(bench, "switch", "set_path", 2)})
             cmds.append({"role": "osa", "text": _render(bench, "osa", "sweep")})
             cmds.append({"role": "switch", "text": _render(bench, "switch", "set_path", 1)})
         elif n == 0 and "switch" in bench.instruments:
             # the engine routes the OSA to the spool output once before the first sweep
-            wait += _op_settle(bench, "switch", "set_path")
+            wait += op_settle(bench, "switch", "set_path")
             cmds.append({"role": "switch", "text": _render(bench, "switch", "set_path", 1)})
         cmds.append({"role": "osa", "text": _render(bench, "osa", "sweep")})
         settle_total += wait * scale
@@ -211,13 +208,6 @@ def dry_run(plan: Plan, bench: Any, *, first: int = FIRST_POINTS) -> dict[str, A
         "first_points": first_points,
         "cautions": safety.CAUTIONS,
     }
-
-
-def _op_settle(bench: Any, role: str, op_name: str) -> float:
-    """Profile settle time of one operation (0 when absent)."""
-    spec = bench.instruments.get(role)
-    op = spec.profile.operations.get(op_name) if spec else None
-    return float(getattr(op, "settle_s", 0.0) or 0.0)
 
 
 def _jsonable(obj: Any) -> Any:
