@@ -20,23 +20,25 @@ import time
 from collections.abc import Callable, Sequence
 from dataclasses import asdict, dataclass, field, is_dataclass
 from pathlib import Path
-from typing import Any, TextIO
+from typing import TYPE_CHECKING, Any, TextIO
 
 from labrun import __version__
 from labrun.errors import InputError, InstrumentError, SafetyError
 from labrun.instruments.base import FLOAT_SLACK
 from labrun.physics.units import nm_to_thz, thz_to_nm
-from labrun.plan import StopWatch
+from labrun.plan import Plan, PointSpec, StopWatch
 from labrun.scpi import NoAnswerError
 from labrun.shutdown import RunInterrupted, SafeOffGuard
 from labrun.store import FINISHED_STATUSES, Store, TraceData
+
+if TYPE_CHECKING:
+    from labrun.reduce import Reduction
 
 SOURCE_ROLES = ("laser_a", "laser_b", "amplifier")
 # Sanity bounds of a trace sample in dBm: an OSA shows nothing outside them; a value outside is a
 # corrupted transfer, not light (common practice).
 TRACE_DBM_BOUNDS = (-300.0, 100.0)
 STALE_HEARTBEAT_S = 60.0  # a running run with an older heartbeat is probably dead
-DEFAULT_ORDERS = 3
 SIGINT = int(_signal.SIGINT)  # Ctrl-C; KeyboardInterrupt counts as this signal
 
 
@@ -189,23 +191,13 @@ def _describe(obj: Any) -> str:
     return str(obj)
 
 
-def _first_attr(obj: Any, names: Sequence[str]) -> Any:
-    """The first of ``names`` that ``obj`` has (attribute or mapping key), else None."""
-    for name in names:
-        if isinstance(obj, dict) and name in obj:
-            return obj[name]
-        if hasattr(obj, name):
-            return getattr(obj, name)
-    return None
-
-
 # ------------------------------------------------------------------------------------------------
 # the per-point engine
 # ------------------------------------------------------------------------------------------------
 class Runner:
     """Runs points of one run: owns the connections, the applied-state cache and the guard."""
 
-    def __init__(self, plan: Any, bench: Any, store: Store, run_id: int, guard: SafeOffGuard, *,
+    def __init__(self, plan: Plan, bench: Any, store: Store, run_id: int, guard: SafeOffGuard, *,
                  policy: RetryPolicy, progress: bool = True, transcript: Any = None,
                  sleep: Callable[[float], None] = time.sleep):
         self.plan, self.bench, self.store, self.run_id = plan, bench, store, run_id
@@ -217,12 +209,15 @@ class Runner:
         self.emitting = False
         self.osa_settings: Any = None
         self.rbw_nm: float | None = None
+        self.trace_meta: dict[str, Any] = {}  # the configured OSA settings of the output trace
+        self.input_meta: dict[str, Any] = {}  # the same for the input trace (switch path 2)
         self.trace_x: Any = None
-        self.orders = int(getattr(plan, "orders", DEFAULT_ORDERS) or DEFAULT_ORDERS)
-        self.use_amplifier = bool(getattr(plan, "amplifier", False))
-        self.input_every = (int(getattr(plan.osa, "input_every", 1) or 1)
-                            if getattr(plan, "capture_input", False) else 0)
-        self.stops = StopWatch(getattr(plan, "stop_conditions", []) or [])
+        self.orders = plan.orders
+        self.use_amplifier = plan.amplifier
+        self.input_every = plan.osa.input_every if plan.capture_input else 0
+        self.stops = StopWatch(plan.stop_conditions)
+        # Fixed for the run: the bench's source roles (read on every emission check).
+        self.source_roles = [r for r in SOURCE_ROLES if r in bench.instruments]
         self.show_progress = progress
         self.last_beat = 0.0
         self.identities: dict[str, str] | None = None
@@ -324,10 +319,10 @@ class Runner:
         wl_b = setpoint.get("wavelength_b_nm", got.get("wavelength_b_nm"))
         if wl_b is None and wl_a is not None and setpoint.get("spacing_ghz") is not None:
             wl_b = float(thz_to_nm(nm_to_thz(wl_a) + setpoint["spacing_ghz"] / 1000.0))
-        plan_settle = dict(getattr(self.plan, "settle_s", {}) or {})
+        plan_settle = self.plan.settle_s
 
         def axis_settle(*axes: str) -> float:
-            return max([float(plan_settle.get(a, 0.0)) for a in axes] + [0.0])
+            return max([plan_settle.get(a, 0.0) for a in axes] + [0.0])
 
         out: list[Setting] = []
 
@@ -392,7 +387,7 @@ class Runner:
     # ---- emission ----------------------------------------------------------------------------
     def sources(self) -> list[str]:
         """Source roles on this bench."""
-        return [r for r in SOURCE_ROLES if r in self.bench.instruments]
+        return self.source_roles
 
     def check_emission(self) -> None:
         """Abort if a source's output is not in the expected state, its interlock is open, or
@@ -513,13 +508,11 @@ class Runner:
             self.trace_x = None
             self.role("osa").configure(*wanted)
             self.applied[("osa", "configure")] = wanted
+            # Stored with each trace; built once per OSA configuration, not per point.
+            self.trace_meta = {"center_nm": s.center_nm, "span_nm": s.span_nm,
+                               "rbw_nm": s.rbw_nm, "points": s.points}
+            self.input_meta = {**self.trace_meta, "switch_path": 2}
         self.rbw_nm = float(s.rbw_nm)
-
-    def trace_settings(self, setpoint: dict[str, Any]) -> dict[str, Any]:
-        """The OSA settings of this point's trace (the reasons live once in run.settings)."""
-        o = self.osa_settings.for_point(setpoint)
-        return {"center_nm": o.center_nm, "span_nm": o.span_nm, "rbw_nm": o.rbw_nm,
-                "points": o.points}
 
     def sweep_and_read(self, osa: Any) -> tuple[Any, Any]:
         """Sweep and read (x, y); x is read once per OSA configuration (it is fixed by centre,
@@ -565,7 +558,7 @@ class Runner:
         x, y = self.sweep_and_read(self.role("osa"))
         return Captured(kind, x, y)
 
-    def measure(self, spec: Any) -> tuple[list[Captured], Any, int]:
+    def measure(self, spec: PointSpec) -> tuple[list[Captured], Reduction, int]:
         """Set, settle, sweep, read, check and reduce one point, retrying faults per the policy.
 
         Returns the traces (output first; then the spool input when this point captures it,
@@ -584,7 +577,7 @@ class Runner:
             except InstrumentError as exc:
                 self.fault(spec, attempt, exc)
 
-    def attempt_point(self, spec: Any, settings: Sequence[Setting],
+    def attempt_point(self, spec: PointSpec, settings: Sequence[Setting],
                       kinds: Sequence[str]) -> list[Captured]:
         """One try at a point: its traces, checked and reduced (InstrumentError on any fault)."""
         from labrun.reduce import reduce_trace
@@ -629,25 +622,21 @@ class Runner:
         self.store.add_event(self.run_id, "retry", f"attempt {attempt + 1}", point_key=spec.key,
                              data={"attempt": attempt + 1, "after": type(exc).__name__})
 
-    def commit(self, spec: Any, traces: Sequence[Captured], red: Any, attempts: int,
+    def commit(self, spec: PointSpec, traces: Sequence[Captured], red: Reduction, attempts: int,
                started: Any) -> None:
         """Point, traces and lines in one transaction (input-trace lines link to that trace)."""
         lines = [_line_dict(ml, trace=i) for i, tr in enumerate(traces)
                  for ml in tr.reduction.lines]
         applied = {f"{r}.{m}": v for (r, m), v in self.applied.items()}
-        settings = self.trace_settings(spec.setpoint)
         self.store.add_point(
             self.run_id, key=spec.key, index=spec.index, setpoint=_jsonable(spec.setpoint),
-            repeat=int(getattr(spec, "repeat", 0) or 0),
-            is_reference=bool(getattr(spec, "is_reference", False)),
+            repeat=spec.repeat, is_reference=spec.is_reference,
             traces=[TraceData(tr.x, tr.y, kind=tr.kind, rbw_nm=self.rbw_nm,
-                              settings=settings if tr.kind == "output"
-                              else {**settings, "switch_path": 2})
+                              settings=self.trace_meta if tr.kind == "output"
+                              else self.input_meta)
                     for tr in traces],
             lines=lines, applied=_jsonable(applied),
-            spacing_ghz=getattr(red, "spacing_ghz", None),
-            floor_dbm=getattr(red, "floor_dbm", None),
-            flags=[str(f) for f in (getattr(red, "flags", None) or [])],
+            spacing_ghz=red.spacing_ghz, floor_dbm=red.floor_dbm, flags=list(red.flags),
             attempts=attempts, started_at=started,
         )
         self.last_beat = time.monotonic()
@@ -711,19 +700,6 @@ def _line_dict(line: Any, trace: int = 0) -> dict[str, Any]:
     out = dict(line) if isinstance(line, dict) else dict(vars(line))
     out["trace"] = trace
     return out
-
-
-def _as_mapping(obj: Any) -> dict[str, Any]:
-    """A settings object as a dict."""
-    if obj is None:
-        return {}
-    if isinstance(obj, dict):
-        return obj
-    if is_dataclass(obj):
-        return asdict(obj)
-    if hasattr(obj, "model_dump"):
-        return obj.model_dump()
-    return dict(vars(obj))
 
 
 def _jsonable(obj: Any) -> Any:
