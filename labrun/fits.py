@@ -33,7 +33,7 @@ from scipy.special import j0, j1
 
 from labrun.physics.fibre import Fibre
 from labrun.physics.fwm import inoue_efficiency, sideband_mismatch_per_km
-from labrun.physics.units import alpha_per_km, effective_length_km
+from labrun.physics.units import alpha_per_km, dbm_to_w, effective_length_km
 
 LINE_KEY = re.compile(r"^(tone|sideband)_(low|high)_(\d+)$")
 DB = 10.0 / math.log(10.0)  # dB per neper of power ratio (10 log10 e)
@@ -132,11 +132,6 @@ def _copolar(t: Mapping[str, np.ndarray], n: int) -> np.ndarray:
     else:
         c = np.ones(n)
     return np.where(np.isnan(c), 1.0, c)
-
-
-def _w(dbm: np.ndarray) -> np.ndarray:
-    """dBm -> W (NaN stays NaN)."""
-    return np.power(10.0, np.asarray(dbm, dtype=float) / 10.0) * 1e-3
 
 
 # ---------------------------------------------------------------------------------------------
@@ -629,12 +624,12 @@ def fit_run(points, spool_length_km: float, loss_db_per_km: float, *,
     if "power_a_dbm" not in t or "power_b_dbm" not in t:
         raise ValueError("points need power_a_dbm and power_b_dbm columns")
     n = t["power_a_dbm"].size
-    p_a, p_b = _w(t["power_a_dbm"]), _w(t["power_b_dbm"])
+    p_a, p_b = dbm_to_w(t["power_a_dbm"]), dbm_to_w(t["power_b_dbm"])
     spacing = _col(t, "spacing_ghz", n)
     lam = _col(t, "wavelength_a_nm", n, reference_wavelength_nm)
     lam = np.where(np.isnan(lam), reference_wavelength_nm, lam)
     cop = _copolar(t, n)
-    lines = {k: _w(v) for k, v in t.items() if LINE_KEY.match(k)}
+    lines = {k: dbm_to_w(v) for k, v in t.items() if LINE_KEY.match(k)}
     nan = np.full(n, np.nan)
     lo1, hi1 = lines.get("sideband_low_1", nan), lines.get("sideband_high_1", nan)
     ta, tb = lines.get("tone_low_0", nan), lines.get("tone_high_0", nan)

@@ -16,7 +16,7 @@ from functools import lru_cache
 import numpy as np
 
 from labrun.physics.fibre import Fibre
-from labrun.physics.units import C_M_PER_S, dbm_to_mw, mw_to_dbm
+from labrun.physics.units import dbm_to_mw, mw_to_dbm, nm_to_thz
 from labrun.vlab.realism import PolarisationWalk, RandomWalk, role_rng
 from labrun.vlab.scenario import Realism, Scenario
 
@@ -124,7 +124,7 @@ def spool_output(fibre: Fibre, tones: tuple[tuple[float, float], ...], copolar: 
     if len(tones) != 2:
         return [(wl, p - loss_db) for wl, p in tones]
     (wl1, p1), (wl2, p2) = tones
-    f1, f2 = (C_M_PER_S / (wl * 1e-9) * 1e-12 for wl in (wl1, wl2))
+    f1, f2 = float(nm_to_thz(wl1)), float(nm_to_thz(wl2))
     if abs(f2 - f1) * 1e3 < SAME_LINE_GHZ:
         total = float(mw_to_dbm(dbm_to_mw(p1) + dbm_to_mw(p2)))
         return [(wl1, total - loss_db)]
