@@ -38,6 +38,14 @@ log = logging.getLogger(__name__)
 MAX_INPUT_BYTES = 1 << 20  # a message longer than this without a newline overruns the buffer
 
 
+def _source_switch(call: Call, lab: LabState) -> bool:
+    """OUTP:STAT value for a light source; switching on with the interlock open is error -221."""
+    on = boolean(call)
+    if on and not lab.interlock_closed:
+        raise ScpiFault(-221, "interlock open")
+    return on
+
+
 class SimInstrument:
     """Common part of every simulated instrument: IEEE 488.2 commands and the error queue."""
 
@@ -234,10 +242,7 @@ class LaserInstrument(SimInstrument):
         self._state().power_dbm = number(call, *self.POWER_DBM, 0.0)
 
     def _set_output(self, call: Call) -> None:
-        on = boolean(call)
-        if on and not self.lab.interlock_closed:
-            raise ScpiFault(-221, "interlock open")
-        self._state().output = on
+        self._state().output = _source_switch(call, self.lab)
 
 
 class AmplifierInstrument(SimInstrument):
@@ -264,10 +269,7 @@ class AmplifierInstrument(SimInstrument):
         self.lab.amplifier.power_dbm = number(call, *self.POWER_DBM, 10.0)
 
     def _set_output(self, call: Call) -> None:
-        on = boolean(call)
-        if on and not self.lab.interlock_closed:
-            raise ScpiFault(-221, "interlock open")
-        self.lab.amplifier.output = on
+        self.lab.amplifier.output = _source_switch(call, self.lab)
 
 
 class AttenuatorInstrument(SimInstrument):
