@@ -2,14 +2,16 @@
 
 from __future__ import annotations
 
+import contextlib
 import copy
 import os
 import re
+import signal
 import subprocess
 import sys
 import time
 import tomllib
-from collections.abc import Callable
+from collections.abc import Callable, Iterator
 from pathlib import Path
 from typing import Any
 
@@ -108,6 +110,32 @@ def labrun_process(*args: str, cwd: Path) -> subprocess.Popen:
     env = dict(os.environ, PYTHONUNBUFFERED="1")
     return subprocess.Popen([sys.executable, "-m", "labrun", *args], cwd=cwd, env=env,
                             stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+
+
+@contextlib.contextmanager
+def run_in_process(lab: VirtualLab, folder: Path, n_points: int, *extra: str, min_points: int,
+                   stop: int = signal.SIGKILL
+                   ) -> Iterator[tuple[subprocess.Popen, Path, Path, Path]]:
+    """``labrun run`` of an ``n_points`` sweep (unattended, acknowledged) in another process,
+    once ``min_points`` are stored; yields (process, plan, bench, db). On the way out a process
+    still alive gets ``stop`` (then SIGKILL if it lingers 30 s)."""
+    plan = write_plan(folder, long_powers(n_points))
+    bench = write_bench(lab, folder)
+    db = folder / "runs.db"
+    proc = labrun_process("run", str(plan), "--bench", str(bench), "--db", str(db),
+                          "--unattended", "--operator", OPERATOR, "--ack-safety",
+                          "--no-progress", *extra, cwd=folder)
+    try:
+        assert wait_for(lambda: count_points(db) >= min_points, 60) is not None, proc.stderr
+        yield proc, plan, bench, db
+    finally:
+        if proc.poll() is None:
+            proc.send_signal(stop)
+            try:
+                proc.wait(timeout=30)
+            finally:
+                if proc.poll() is None:
+                    proc.kill()
 
 
 def count_points(db: Path) -> int:

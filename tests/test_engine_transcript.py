@@ -4,16 +4,13 @@ lines while the run goes, flushed per point (a SIGKILL keeps it), not kept in me
 from __future__ import annotations
 
 import json
-import signal
 
 from _engine_support import (
     OPERATOR,
     count_points,
     dark,
-    labrun_process,
-    long_powers,
+    run_in_process,
     scenario,
-    wait_for,
     write_bench,
     write_plan,
 )
@@ -50,18 +47,10 @@ def test_run_and_resume_stream_the_transcript(tmp_path, capsys):
     from labrun.vlab.lab import VirtualLab
 
     with VirtualLab(scenario()) as lab:
-        plan = write_plan(tmp_path, long_powers(200))
-        bench = write_bench(lab, tmp_path)
-        db, log = tmp_path / "runs.db", tmp_path / "traffic.jsonl"
-        proc = labrun_process("run", str(plan), "--bench", str(bench), "--db", str(db),
-                              "--transcript", str(log), *ACK, cwd=tmp_path)
-        try:
-            assert wait_for(lambda: count_points(db) >= 5, 60) is not None
-            proc.send_signal(signal.SIGKILL)
-            proc.wait(timeout=30)
-        finally:
-            if proc.poll() is None:
-                proc.kill()
+        log = tmp_path / "traffic.jsonl"
+        with run_in_process(lab, tmp_path, 200, "--transcript", str(log),
+                            min_points=5) as (_, _, bench, db):
+            pass  # leaving kills it
         stored = count_points(db)
         rows = _lines(log)  # what the killed process had flushed
         sweeps = [r for r in rows if r["role"] == "osa" and r["text"].startswith(SWEEP)]

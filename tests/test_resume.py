@@ -14,8 +14,7 @@ from _engine_support import (
     OPERATOR,
     count_points,
     dark,
-    labrun_process,
-    long_powers,
+    run_in_process,
     scenario,
     wait_for,
     write_bench,
@@ -34,19 +33,8 @@ ACK = ["--unattended", "--operator", RESUMER, "--ack-safety"]
 
 def _kill_mid_run(tmp_path, lab):
     """Start a run in another process, SIGKILL it after a few points; (plan, bench, db, id)."""
-    plan = write_plan(tmp_path, long_powers(N_POINTS))
-    bench = write_bench(lab, tmp_path)
-    db = tmp_path / "runs.db"
-    proc = labrun_process("run", str(plan), "--bench", str(bench), "--db", str(db),
-                          "--unattended", "--operator", OPERATOR, "--ack-safety",
-                          "--no-progress", cwd=tmp_path)
-    try:
-        assert wait_for(lambda: count_points(db) >= 5, 60) is not None
-        proc.send_signal(signal.SIGKILL)
-        proc.wait(timeout=30)
-    finally:
-        if proc.poll() is None:
-            proc.kill()
+    with run_in_process(lab, tmp_path, N_POINTS, min_points=5) as (proc, plan, bench, db):
+        pass  # leaving kills it
     assert proc.returncode == -signal.SIGKILL
     store = open_store(db)
     run_id = store.latest_run_id()
@@ -175,14 +163,8 @@ def test_force_never_resumes_a_run_whose_process_is_alive(tmp_path, capsys):
     from labrun.vlab.lab import VirtualLab
 
     with VirtualLab(scenario()) as lab:
-        plan = write_plan(tmp_path, long_powers(N_POINTS))
-        bench = write_bench(lab, tmp_path)
-        db = tmp_path / "runs.db"
-        proc = labrun_process("run", str(plan), "--bench", str(bench), "--db", str(db),
-                              "--unattended", "--operator", OPERATOR, "--ack-safety",
-                              "--no-progress", cwd=tmp_path)
-        try:
-            assert wait_for(lambda: count_points(db) >= 2, 60) is not None
+        with run_in_process(lab, tmp_path, N_POINTS, min_points=2,
+                            stop=signal.SIGTERM) as (proc, _, _, db):
             store = open_store(db)
             run_id = store.latest_run_id()
             assert main(["resume", str(run_id), "--db", str(db), "--force", "--no-progress",
@@ -193,11 +175,4 @@ def test_force_never_resumes_a_run_whose_process_is_alive(tmp_path, capsys):
             assert not store.events(run_id, ["resume", "forced"])
             assert len(store.events(run_id, ["safety_ack"])) == 1
             store.close()
-        finally:
-            proc.send_signal(signal.SIGTERM)
-            try:
-                proc.wait(timeout=30)
-            finally:
-                if proc.poll() is None:
-                    proc.kill()
         assert wait_for(lambda: dark(lab), 5) is not None

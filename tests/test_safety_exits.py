@@ -17,8 +17,8 @@ from _engine_support import (
     OPERATOR,
     count_points,
     dark,
-    labrun_process,
     long_powers,
+    run_in_process,
     scenario,
     wait_for,
     write_bench,
@@ -154,22 +154,12 @@ def test_interlock_opened_by_the_scenario(tmp_path):
 @pytest.mark.parametrize("sig", [signal.SIGINT, signal.SIGTERM])
 def test_signal_to_the_run_process(tmp_path, sig):
     with VirtualLab(scenario()) as lab:
-        plan_path = write_plan(tmp_path, long_powers(3000))
-        bench = write_bench(lab, tmp_path)
-        db = tmp_path / "runs.db"
-        proc = labrun_process("run", str(plan_path), "--bench", str(bench), "--db", str(db),
-                              "--unattended", "--operator", OPERATOR, "--ack-safety", "--json",
-                              "--no-progress", cwd=tmp_path)
-        try:
-            assert wait_for(lambda: count_points(db) >= 3, 60) is not None, proc.stderr
+        with run_in_process(lab, tmp_path, 3000, "--json", min_points=3) as (proc, _, _, db):
             assert not lab.sources_off()
             t_sig = time.monotonic()
             proc.send_signal(sig)
             assert _dark_within(lab, t_sig) <= OFF_WITHIN_S
             stdout, stderr = proc.communicate(timeout=30)
-        finally:
-            if proc.poll() is None:
-                proc.kill()
         assert proc.returncode == 128 + sig, stderr  # 130 for SIGINT, 143 for SIGTERM
         assert '"status": "interrupted"' in stdout
         store = open_store(db)
