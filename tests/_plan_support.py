@@ -22,6 +22,18 @@ wavelength_a_nm = 1550.0
 spacing_ghz = 100.0
 """
 
+# Two power axes zipped, 3 points (the sweep most safety and check tests start from).
+POWERS = """
+[axes.power_a_dbm]
+values = [0.0, 2.0, 4.0]
+
+[axes.power_b_dbm]
+values = [0.0, 2.0, 4.0]
+
+[order]
+zip = [["power_a_dbm", "power_b_dbm"]]
+"""
+
 
 def write_plan(folder: Path, text: str, name: str = "plan.toml") -> Path:
     """Write plan text to a file and return its path."""

@@ -10,7 +10,7 @@ from pathlib import Path
 
 import pytest
 import pyvisa
-from _plan_support import BASE_PLAN, bench_text, write_plan
+from _plan_support import BASE_PLAN, POWERS, bench_text, write_plan
 
 from labrun.cli import main
 from labrun.plan import load_plan
@@ -18,17 +18,6 @@ from labrun.resources import find_file
 from labrun.vlab.lab import VirtualLab
 
 SWEEPS = Path(__file__).resolve().parents[1] / "sweeps"
-
-POWERS = """
-[axes.power_a_dbm]
-values = [0.0, 2.0, 4.0]
-
-[axes.power_b_dbm]
-values = [0.0, 2.0, 4.0]
-
-[order]
-zip = [["power_a_dbm", "power_b_dbm"]]
-"""
 
 
 @pytest.fixture

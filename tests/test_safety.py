@@ -5,21 +5,10 @@ from __future__ import annotations
 import math
 
 import pytest
-from _plan_support import BASE_PLAN, make_bench, make_plan
+from _plan_support import BASE_PLAN, POWERS, make_bench, make_plan
 
 from labrun import safety
 from labrun.errors import SafetyError
-
-POWERS = """
-[axes.power_a_dbm]
-values = [0.0, 2.0, 4.0]
-
-[axes.power_b_dbm]
-values = [0.0, 2.0, 4.0]
-
-[order]
-zip = [["power_a_dbm", "power_b_dbm"]]
-"""
 
 
 def _dbm_sum(*dbm: float) -> float:
