@@ -3,20 +3,13 @@
 from __future__ import annotations
 
 from labrun.errors import InstrumentError
-from labrun.instruments.base import Adapter
+from labrun.instruments.base import WavelengthAdapter
 
 
-class AttenuatorAdapter(Adapter):
+class AttenuatorAdapter(WavelengthAdapter):
     """One variable attenuator (role attenuator_a or attenuator_b)."""
 
     kind = "attenuator"
-
-    def set_wavelength_nm(self, nm: float) -> None:
-        """Set the calibration wavelength."""
-        self.apply("set_wavelength_nm", nm)
-
-    def wavelength_nm(self) -> float:
-        return self.read("read_wavelength_nm")
 
     def set_attenuation_db(self, db: float) -> None:
         self.apply("set_attenuation_db", db)

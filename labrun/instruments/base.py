@@ -310,3 +310,15 @@ class Adapter:
     def optional_read(self, name: str) -> Any:
         """Read an operation the profile may not map; None when it does not."""
         return self.read(name) if self.profile.has(name) else None
+
+
+class WavelengthAdapter(Adapter):
+    """An adapter with a wavelength setting: a laser's tuning, an attenuator's or meter's
+    calibration wavelength (the same profile operations for all three kinds)."""
+
+    def set_wavelength_nm(self, nm: float) -> None:
+        """Set the wavelength (vacuum, nm)."""
+        self.apply("set_wavelength_nm", nm)
+
+    def wavelength_nm(self) -> float:
+        return self.read("read_wavelength_nm")
