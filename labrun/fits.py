@@ -355,19 +355,6 @@ def _mismatch_basis(spacing_ghz: np.ndarray, wavelength_a_nm: np.ndarray, side: 
     return dbeta(1.0, 0.0), dbeta(0.0, 1.0)
 
 
-def _inoue_real(alpha: float, dbeta: np.ndarray, length_km: float) -> np.ndarray:
-    """Inoue's efficiency in its published real form (DESIGN.md 4.2), for the coarse grid:
-    alpha^2/(alpha^2 + dbeta^2) [1 + 4 exp(-alpha L) sin^2(dbeta L/2)/(1 - exp(-alpha L))^2].
-
-    The lossless limit is sinc^2(dbeta L/2). The final fit uses physics.fwm.inoue_efficiency.
-    """
-    if alpha * length_km < 1e-9:
-        return np.sinc(dbeta * length_km / (2.0 * np.pi)) ** 2
-    e = math.exp(-alpha * length_km)
-    s = np.sin(0.5 * dbeta * length_km)
-    return alpha**2 / (alpha**2 + dbeta**2) * (1.0 + 4.0 * e * s * s / (1.0 - e) ** 2)
-
-
 def _grid_dispersion(y: np.ndarray, u: np.ndarray, alpha: float, length_km: float,
                      d_max: float, n_best: int = 4, max_points: int = 60) -> list[float]:
     """Candidate |D| values: the best local minima of the residual over a grid of D.
@@ -382,7 +369,7 @@ def _grid_dispersion(y: np.ndarray, u: np.ndarray, alpha: float, length_km: floa
     step = 0.6 / phi if phi > 0 else d_max
     lin = np.arange(0.0, min(d_max, 2000 * step), step)
     grid = np.unique(np.concatenate([lin, np.geomspace(1e-3, d_max, 200)]))
-    e = DB * np.log(np.maximum(_inoue_real(alpha, grid[:, None] * u[None, :], length_km),
+    e = DB * np.log(np.maximum(inoue_efficiency(alpha, grid[:, None] * u[None, :], length_km),
                                1e-300))
     r = y[None, :] - e
     ss = np.sum((r - r.mean(axis=1, keepdims=True)) ** 2, axis=1)
