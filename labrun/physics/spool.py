@@ -15,7 +15,7 @@ from typing import Any
 
 import numpy as np
 
-from labrun.lines import LineId, grid_ks, line_id
+from labrun.lines import LineId, grid_freq_thz, grid_ks, line_id
 from labrun.physics.bessel import modulation_index, two_tone_powers
 from labrun.physics.fibre import Fibre
 from labrun.physics.nlse import propagate_tones
@@ -130,6 +130,6 @@ def output_lines(
     dbm = np.maximum(w_to_dbm(powers), MIN_POWER_DBM)
     out = []
     for k, p in zip(grid_ks(orders), dbm, strict=True):
-        f = f_a + k * delta
+        f = grid_freq_thz(f_a, delta, k)
         out.append(ModelLine(line_id(k), f, float(thz_to_nm(f)), float(p)))
     return out
