@@ -6,7 +6,6 @@ its path.
 
 from __future__ import annotations
 
-from collections.abc import Sequence
 from pathlib import Path
 
 import matplotlib
@@ -63,26 +62,6 @@ def plot_trace(path: str | Path, x: np.ndarray, y_dbm: np.ndarray, reduction: Re
     ax.set_title(title or f"spacing {spacing}{flags}", fontsize=9)
     ax.grid(alpha=0.3)
     ax.legend(loc="upper right", fontsize=8)
-    fig.tight_layout()
-    return _save(fig, path)
-
-
-def plot_fit(path: str | Path, x: Sequence[float], y: Sequence[float], *, model_x=None,
-             model_y=None, xlabel: str = "", ylabel: str = "", title: str = "",
-             data_label: str = "data") -> Path:
-    """Data points and, when given, a model curve; for fit results against their data.
-
-    data_label names where the points come from ("measured", "virtual lab", ...).
-    """
-    fig, ax = plt.subplots(figsize=(7, 4.5), dpi=110)
-    ax.plot(x, y, "o", ms=4, label=data_label)
-    if model_x is not None and model_y is not None:
-        ax.plot(model_x, model_y, "-", lw=1.2, label="model")
-    ax.set_xlabel(xlabel)
-    ax.set_ylabel(ylabel)
-    ax.set_title(title, fontsize=9)
-    ax.grid(alpha=0.3)
-    ax.legend(fontsize=8)
     fig.tight_layout()
     return _save(fig, path)
 
