@@ -14,7 +14,8 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Literal
 
-from pydantic import BaseModel, ConfigDict, ValidationError, model_validator
+from pydantic import BaseModel, ConfigDict, ValidationError, field_validator, model_validator
+from pydantic_core import PydanticCustomError
 
 from labrun.errors import InputError
 from labrun.resources import find_file
@@ -87,7 +88,11 @@ class TraceSpec(_Strict):
     byte_order_command: str | None = None
 
 
-class _OperationModel(_Strict):
+class Operation(_Strict):
+    """One generic operation: SCPI template, parsing, unit, limits, settling and read-back."""
+
+    model_config = ConfigDict(extra="forbid", strict=False, frozen=True)
+
     command: str | None = None
     query: str | None = None
     parse: Parse | None = None
@@ -98,9 +103,17 @@ class _OperationModel(_Strict):
     readback: str | None = None
     tolerance: float | None = None
     wait: bool = False
+    # The key in [operations], filled in by parse_profile; last, so a "name" in the file is
+    # reported where an unknown key would be.
+    name: str = ""
+
+    @field_validator("name", mode="before")
+    @classmethod
+    def _not_from_file(cls, value: Any) -> Any:
+        raise PydanticCustomError("extra_forbidden", "Extra inputs are not permitted")
 
     @model_validator(mode="after")
-    def _one_of(self) -> _OperationModel:
+    def _one_of(self) -> Operation:
         if (self.command is None) == (self.query is None):
             raise ValueError("give exactly one of 'command' (a setting) or 'query'")
         if self.query is not None and self.parse is None:
@@ -110,30 +123,6 @@ class _OperationModel(_Strict):
         if self.settle_s < 0 or not math.isfinite(self.settle_s):
             raise ValueError("'settle_s' must be a finite number >= 0")
         return self
-
-
-class _ProfileFile(_Strict):
-    profile: _ProfileHead
-    capabilities: Capabilities = Capabilities()
-    trace: TraceSpec | None = None
-    operations: dict[str, _OperationModel]
-
-
-@dataclass(frozen=True)
-class Operation:
-    """One generic operation: SCPI template, parsing, unit, limits, settling and read-back."""
-
-    name: str
-    command: str | None = None
-    query: str | None = None
-    parse: str | None = None
-    unit: str | None = None
-    range: tuple[float, float] | None = None
-    index_range: tuple[int, int] | None = None
-    settle_s: float = 0.0
-    readback: str | None = None
-    tolerance: float | None = None
-    wait: bool = False
 
     @property
     def template(self) -> str:
@@ -160,6 +149,13 @@ class Operation:
     def render(self, **values: Any) -> str:
         """The SCPI text with placeholders filled (values already checked by the caller)."""
         return self.template.format(**values)
+
+
+class _ProfileFile(_Strict):
+    profile: _ProfileHead
+    capabilities: Capabilities = Capabilities()
+    trace: TraceSpec | None = None
+    operations: dict[str, Operation]
 
 
 @dataclass(frozen=True)
@@ -264,7 +260,7 @@ def parse_profile(data: dict[str, Any], path: Path) -> Profile:
         raise _fail(path, "profile.name", f"{head.name!r} must equal the file name {path.stem!r}")
     if head.timeout_ms <= 0:
         raise _fail(path, "profile.timeout_ms", "must be > 0")
-    ops = {name: Operation(name=name, **m.model_dump()) for name, m in model.operations.items()}
+    ops = {name: op.model_copy(update={"name": name}) for name, op in model.operations.items()}
     for name, op in ops.items():
         _check_operation(path, head.kind, name, op, ops)
     for name in REQUIRED_OPERATIONS[head.kind]:
