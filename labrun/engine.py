@@ -420,29 +420,20 @@ class Runner:
         """Refuse a source whose power reads above its bench cap (SafetyError at once, never
         re-read or retried) or, confirmed by a second read, away from the value labrun set by
         more than the profile's tolerance (RunAborted): a corrupted reply must not end a night."""
-        cap = adapter.cap_dbm
-        if cap is not None and power > cap + FLOAT_SLACK:
-            raise SafetyError(f"{role} power reads {power:g} dBm, above the bench cap "
-                              f"{cap:g} dBm")
+        _check_cap(role, power, adapter.cap_dbm)
         want = self.applied.get((role, "set_power_dbm"))
         if want is None:  # not set by this run yet (or its setting failed): only the cap applies
             return
         tol = float(adapter.profile.op("set_power_dbm").tolerance or 0.0) + FLOAT_SLACK
         if abs(power - float(want)) <= tol:
             return
-        try:
-            again: float | None = float(adapter.power_dbm())
-        except Exception as exc:  # noqa: BLE001 - any failure leaves the surprise standing
-            again, detail = None, f"re-read failed: {exc}"
-        else:
-            detail = f"re-read says {again:g} dBm"
-        self.store.add_event(self.run_id, "fault", f"{role} power reply {power:g} dBm disagreed "
-                             f"with the {float(want):g} dBm set; {detail}", role=role)
-        if again is not None and cap is not None and again > cap + FLOAT_SLACK:
-            raise SafetyError(f"{role} power reads {again:g} dBm, above the bench cap "
-                              f"{cap:g} dBm")
-        if again is not None and abs(again - float(want)) <= tol:
-            return
+        again = self._reread(role, lambda: float(adapter.power_dbm()), lambda v: f"{v:g} dBm",
+                             f"power reply {power:g} dBm disagreed with the {float(want):g} "
+                             "dBm set")
+        if again is not None:
+            _check_cap(role, again, adapter.cap_dbm)
+            if abs(again - float(want)) <= tol:
+                return
         shown = power if again is None else again
         raise RunAborted(f"{role} power changed behind labrun's back: reads {shown:g} dBm, "
                          f"set {float(want):g} dBm (tolerance {tol:.3g} dB)")
@@ -453,15 +444,22 @@ class Runner:
         The run aborts (sources off) unless the second read shows the expected state; either
         way the disagreement is recorded as a fault event.
         """
+        again = self._reread(role, adapter.output_state, lambda v: "on" if v else "off",
+                             "output state reply disagreed with the expected state")
+        return None if again is None else bool(again)
+
+    def _reread(self, role: str, read: Callable[[], Any], show: Callable[[Any], str],
+                surprise: str) -> Any:
+        """Read a surprising reply once more and record the disagreement as a fault event; the
+        second reading, or None when it failed."""
         try:
-            again = adapter.output_state()
+            again = read()
         except Exception as exc:  # noqa: BLE001 - any failure leaves the surprise standing
             again, detail = None, f"re-read failed: {exc}"
         else:
-            detail = f"re-read says {'on' if again else 'off'}"
-        self.store.add_event(self.run_id, "fault", f"{role} output state reply disagreed with "
-                             f"the expected state; {detail}", role=role)
-        return None if again is None else bool(again)
+            detail = f"re-read says {show(again)}"
+        self.store.add_event(self.run_id, "fault", f"{role} {surprise}; {detail}", role=role)
+        return again
 
     def expected_on(self, role: str) -> bool:
         """Whether a source should emit now (an amplifier the plan does not use stays off)."""
@@ -685,6 +683,12 @@ def expected_thz(setpoint: dict[str, Any]) -> tuple[float, float] | None:
     return f_a, f_a + float(spacing) / 1000.0
 
 
+def _check_cap(role: str, power: float, cap: float | None) -> None:
+    """Refuse (SafetyError, never retried) a source power reading above its bench cap."""
+    if cap is not None and power > cap + FLOAT_SLACK:
+        raise SafetyError(f"{role} power reads {power:g} dBm, above the bench cap {cap:g} dBm")
+
+
 def check_tones(trace: Captured) -> None:
     """Refuse (InstrumentError, retried) a reduction that did not find both tones: a trace
     without them is not a good point, whatever garbled or truncated it."""
@@ -717,13 +721,12 @@ def _jsonable(obj: Any) -> Any:
     return obj
 
 
-def _postfix(red: Any) -> str:
+def _postfix(red: Reduction) -> str:
     """'tone a -1.2 dBm, low 1 -31.0 dBm' from a reduction, for the progress bar."""
     parts = []
-    for ml in getattr(red, "lines", []):
-        if ml.order <= 1 and (ml.kind == "tone" and ml.side == "low" or ml.kind == "sideband"
-                              and ml.side == "low"):
-            label = "tone a" if ml.kind == "tone" else "low 1"
+    for ml in red.lines:
+        if ml.side == "low" and ml.order <= 1:  # tone a and the first low sideband
+            label = ml.line_id.label()
             if ml.detected and ml.power_dbm is not None and math.isfinite(ml.power_dbm):
                 parts.append(f"{label} {ml.power_dbm:.1f} dBm")
             else:
