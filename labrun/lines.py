@@ -27,6 +27,11 @@ class LineId:
         """Index on the grid f_a + k*delta."""
         return grid_index(self.kind, self.side, self.order)
 
+    @property
+    def key(self) -> str:
+        """Flat column key: 'tone_low_0', 'sideband_high_2' (the point columns fits expect)."""
+        return f"{self.kind}_{self.side}_{self.order}"
+
     def label(self) -> str:
         """Short human label: 'tone a', 'tone b', 'low 1', 'high 2'."""
         if self.kind == "tone":

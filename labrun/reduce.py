@@ -81,7 +81,7 @@ class MeasuredLine:
     @property
     def key(self) -> str:
         """Flat key such as 'tone_low_0' or 'sideband_high_2' (the column names fits use)."""
-        return f"{self.kind}_{self.side}_{self.order}"
+        return self.line_id.key
 
     def to_dict(self) -> dict:
         """JSON-ready dict; undetected lines have power_dbm null."""

@@ -33,8 +33,7 @@ def _spacing_sweep(seed: int) -> list[dict]:
             row = {"power_a_dbm": p_dbm, "power_b_dbm": p_dbm, "spacing_ghz": float(spacing),
                    "wavelength_a_nm": 1550.0}
             for ln in output_lines(SPOOL, 1550.0, float(spacing), p_dbm, p_dbm, 2, model="nlse"):
-                key = f"{ln.line.kind}_{ln.line.side}_{ln.line.order}"
-                row[key] = ln.power_dbm + rng.normal(0.0, 0.05)
+                row[ln.line.key] = ln.power_dbm + rng.normal(0.0, 0.05)
             points.append(row)
     return points
 
