@@ -158,6 +158,16 @@ def _loss(bench: Any, arm: str) -> float:
     return float(getattr(bench.calibration, f"path_loss_{arm}_db", 0.0) or 0.0)
 
 
+def _amp_loss(bench: Any) -> float:
+    """Loss amplifier output -> spool input (calibration)."""
+    return float(getattr(bench.calibration, "amplifier_loss_db", 0.0) or 0.0)
+
+
+def _amp_output_dbm(setpoint: Mapping[str, Any], bench: Any) -> float:
+    """Amplifier output that launches the setpoint's two tones: their total plus the loss."""
+    return _dbm(_mw(setpoint["power_a_dbm"]) + _mw(setpoint["power_b_dbm"])) + _amp_loss(bench)
+
+
 def _att_range(bench: Any, arm: str) -> tuple[float, float]:
     """Attenuation range of an arm's attenuator (0..60 dB when the profile says nothing)."""
     return op_range(bench, f"attenuator_{arm}", "set_attenuation_db") or (0.0, 60.0)
@@ -251,8 +261,7 @@ def _amplified(setpoint: Mapping[str, Any], bench: Any,
                levels: Mapping[str, float]) -> tuple[dict[str, float], float, dict[str, float]]:
     """Attenuations (set the tone ratio into the amplifier) and amplifier output (the total)."""
     pa, pb = float(setpoint["power_a_dbm"]), float(setpoint["power_b_dbm"])
-    amp_loss = float(getattr(bench.calibration, "amplifier_loss_db", 0.0) or 0.0)
-    amp = round(_dbm(_mw(pa) + _mw(pb)) + amp_loss, 3)
+    amp = round(_amp_output_dbm(setpoint, bench), 3)
     _check_level(bench, "amplifier", amp)
     # Highest input each arm can give (attenuator at its minimum); weaken one to set the ratio.
     top = {a: levels[a] - _att_range(bench, a)[0] - _loss(bench, a) for a in ARMS}
@@ -289,9 +298,8 @@ def worst_case(plan: Plan, bench: Any, *,
     sources = {f"laser_{arm}": levels[arm] for arm in ARMS}
     notes = []
     if amp_used:
-        amp_loss = float(getattr(bench.calibration, "amplifier_loss_db", 0.0) or 0.0)
-        amp_max = max(_dbm(_mw(p.setpoint["power_a_dbm"]) + _mw(p.setpoint["power_b_dbm"]))
-                      + amp_loss for p in pts)
+        amp_loss = _amp_loss(bench)
+        amp_max = max(_amp_output_dbm(p.setpoint, bench) for p in pts)
         sources["amplifier"] = amp_max
         path = {arm: amp_max - amp_loss for arm in ARMS}
         total = amp_max - amp_loss
@@ -378,8 +386,7 @@ def _point_violations(p: PointSpec, bench: Any, laser_dbm: Mapping[str, float] |
         yield from _range(bench, role, "set_wavelength_nm", wl, p.index, "nm")
         yield from _range(bench, f"attenuator_{arm}", "set_wavelength_nm", wl, p.index, "nm")
     if sp.get("amplifier"):
-        amp_loss = float(getattr(bench.calibration, "amplifier_loss_db", 0.0) or 0.0)
-        amp = _dbm(_mw(sp["power_a_dbm"]) + _mw(sp["power_b_dbm"])) + amp_loss
+        amp = _amp_output_dbm(sp, bench)
         cap = _cap(bench, "amplifier")
         if cap is not None and amp > cap + 1e-9:
             amp_capped = True
