@@ -176,3 +176,29 @@ def test_force_never_resumes_a_run_whose_process_is_alive(tmp_path, capsys):
             assert len(store.events(run_id, ["safety_ack"])) == 1
             store.close()
         assert wait_for(lambda: dark(lab), 5) is not None
+
+
+def test_resume_on_a_bench_with_a_lower_cap_is_refused(tmp_path, capsys):
+    """The caps are checked again against the bench a run resumes on: a laser cap below what the
+    plan needs is a SafetyError (exit 1) before any acknowledgement or instrument."""
+    from labrun.vlab.lab import VirtualLab
+
+    with VirtualLab(scenario()) as lab:
+        plan = write_plan(tmp_path, [0.0, 1.0])
+        bench = write_bench(lab, tmp_path)
+        db = tmp_path / "r.db"
+        assert main(["run", str(plan), "--bench", str(bench), "--db", str(db), "--unattended",
+                     "--operator", OPERATOR, "--ack-safety", "--no-progress"]) == 0
+        store = open_store(db)
+        store.set_status(1, "aborted", "invented: the operator stopped it", finished=True)
+        low = tmp_path / "low-cap.toml"  # invented: a bench whose laser_a may give 0 dBm
+        low.write_text(bench.read_text(encoding="utf-8").replace("max_power_dbm = 10.0",
+                                                                 "max_power_dbm = 0.0", 1),
+                       encoding="utf-8")
+        capsys.readouterr()
+        assert main(["resume", "1", "--db", str(db), "--bench", str(low), "--no-progress",
+                     *ACK]) == 1
+        assert "power cap" in capsys.readouterr().err
+        assert not store.events(1, ["resume"]) and len(store.events(1, ["safety_ack"])) == 1
+        assert store.count_points(1) == 2 and dark(lab)
+        store.close()
