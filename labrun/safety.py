@@ -14,10 +14,10 @@ from collections.abc import Iterable, Mapping
 from dataclasses import asdict, dataclass, field
 from typing import Any
 
+from labrun.bench import SWEEP_ROLES
 from labrun.errors import SafetyError
 from labrun.plan import Plan, PointSpec, op_range, wavelength_b_nm
 
-SWEEP_ROLES = ("laser_a", "laser_b", "attenuator_a", "attenuator_b", "pol_controller", "osa")
 ARMS = ("a", "b")
 
 CAUTIONS = """\
