@@ -126,7 +126,7 @@ class Setting:
 # ------------------------------------------------------------------------------------------------
 # checks before anything is opened
 # ------------------------------------------------------------------------------------------------
-def preflight(plan: Any, bench: Any, *, operator: str | None, unattended: bool,
+def preflight(plan: Plan, bench: Any, *, operator: str | None, unattended: bool,
               ack_safety: bool, confirm: Callable[[str], bool] | None) -> str:
     """Refuse an unsafe or unacknowledged run before any instrument is opened; the safety text.
 
@@ -153,22 +153,22 @@ def preflight(plan: Any, bench: Any, *, operator: str | None, unattended: bool,
     return text
 
 
-def require_roles(plan: Any, bench: Any) -> None:
+def require_roles(plan: Plan, bench: Any) -> None:
     """Refuse (InputError, exit 2) a bench that lacks a role the sweep or the plan needs."""
     missing = [r for r in ("laser_a", "laser_b", "attenuator_a", "attenuator_b",
                            "pol_controller", "osa") if r not in bench.instruments]
     if missing:
         raise InputError(f"a sweep needs roles {', '.join(missing)}", file=str(bench.path),
                          field="instruments")
-    needs = (("capture_input", "osa.capture_input", "switch", "capture the input spectrum"),
-             ("amplifier", "plan.amplifier", "amplifier", "use an amplifier"))
-    for attr, where, role, what in needs:
-        if getattr(plan, attr, False) and role not in bench.instruments:
+    needs = ((plan.capture_input, "osa.capture_input", "switch", "capture the input spectrum"),
+             (plan.amplifier, "plan.amplifier", "amplifier", "use an amplifier"))
+    for wanted, where, role, what in needs:
+        if wanted and role not in bench.instruments:
             raise InputError(f"the plan asks to {what} but bench {bench.path} has no {role}",
-                             file=str(getattr(plan, "file", None) or "plan"), field=where)
+                             file=plan.file, field=where)
 
 
-def safety_text(plan: Any, bench: Any) -> str:
+def safety_text(plan: Plan, bench: Any) -> str:
     """Worst case launched power, advisory hazard class and the cautions, for the operator."""
     from labrun import safety
 
@@ -540,10 +540,10 @@ class Runner:
             raise InstrumentError(problem, role="osa")
 
     # ---- one point ---------------------------------------------------------------------------
-    def wants_input(self, spec: Any) -> bool:
+    def wants_input(self, spec: PointSpec) -> bool:
         """True when this point also captures the spool input (every ``osa.input_every``-th
         point of the plan, by plan index, so a resumed run captures the same points)."""
-        return bool(self.input_every) and int(spec.index) % self.input_every == 0
+        return bool(self.input_every) and spec.index % self.input_every == 0
 
     def set_path(self, path: int) -> None:
         """Route the OSA through the switch (1 spool output, 2 input tap), if not already."""
@@ -596,7 +596,7 @@ class Runner:
             check_tones(tr)
         return traces
 
-    def fault(self, spec: Any, attempt: int, exc: InstrumentError) -> None:
+    def fault(self, spec: PointSpec, attempt: int, exc: InstrumentError) -> None:
         """Record a fault (unless its session already did), then prepare the retry: wait the
         backoff, and reconnect when an instrument stopped answering; abort beyond the policy.
 
@@ -646,7 +646,7 @@ class Runner:
         if flush is not None:
             flush()
 
-    def run_points(self, specs: Sequence[Any], *, done: int, total: int) -> int:
+    def run_points(self, specs: Sequence[PointSpec], *, done: int, total: int) -> int:
         """Measure and store every spec in order; returns the number of points stored in all."""
         from labrun.store.models import utcnow
 
@@ -754,12 +754,12 @@ def _abspath(path: Any) -> str | None:
     return str(Path(path).resolve())
 
 
-def _run_fields(plan: Any, bench: Any, *, operator: str | None, unattended: bool,
+def _run_fields(plan: Plan, bench: Any, *, operator: str | None, unattended: bool,
                 total: int) -> dict[str, Any]:
     """Columns of a new Run row."""
     return dict(
-        status="created", plan_name=getattr(plan, "name", None),
-        plan_path=_abspath(getattr(plan, "file", None)), plan_text=plan.text,
+        status="created", plan_name=plan.name,
+        plan_path=_abspath(plan.file), plan_text=plan.text,
         plan_sha256=plan.sha256, bench_name=bench.name,
         bench_path=_abspath(bench.path), bench_text=bench.text, operator=operator,
         unattended=unattended,
@@ -768,7 +768,7 @@ def _run_fields(plan: Any, bench: Any, *, operator: str | None, unattended: bool
     )
 
 
-def run_plan(plan: Any, bench: Any, store: Store, *, operator: str | None = None,
+def run_plan(plan: Plan, bench: Any, store: Store, *, operator: str | None = None,
              unattended: bool = False, ack_safety: bool = False,
              confirm: Callable[[str], bool] | None = None, policy: RetryPolicy | None = None,
              progress: bool = True, transcript: Any = None,
@@ -790,7 +790,7 @@ def run_plan(plan: Any, bench: Any, store: Store, *, operator: str | None = None
                     progress=progress, transcript=transcript, first=True)
 
 
-def record_ack(store: Store, run_id: int, plan: Any, bench: Any, *, operator: str | None,
+def record_ack(store: Store, run_id: int, plan: Plan, bench: Any, *, operator: str | None,
                unattended: bool, text: str, resumed: bool = False) -> None:
     """The ``safety_ack`` event: who acknowledged emission, how, and the worst case shown (the
     event's own time is when). A resume records its own: it emits again, maybe hours later."""
@@ -814,7 +814,7 @@ def record_transcript(store: Store, run_id: int, transcript: Any) -> None:
                         data={"path": str(path)})
 
 
-def _execute(plan: Any, bench: Any, store: Store, run_id: int, specs: Sequence[Any], *,
+def _execute(plan: Plan, bench: Any, store: Store, run_id: int, specs: Sequence[PointSpec], *,
              done: int, policy: RetryPolicy | None, progress: bool, transcript: Any,
              first: bool, expect_identities: dict[str, str] | None = None,
              force: bool = False) -> RunOutcome:
@@ -909,7 +909,7 @@ def check_identities(expected: dict[str, str], found: dict[str, str], *, force: 
     store.add_event(run_id, "forced", "resumed on different instruments: " + "; ".join(diffs))
 
 
-def plan_from_run(run: Any, *, force: bool) -> Any:
+def plan_from_run(run: Any, *, force: bool) -> Plan:
     """The plan of a stored run, rebuilt from its stored text; checks hash and the file on disk."""
     import hashlib
     import tempfile
