@@ -21,7 +21,7 @@ import numpy as np
 from pydantic import BaseModel, ConfigDict, Field, ValidationError
 
 from labrun.errors import InputError
-from labrun.physics.units import C_M_PER_S
+from labrun.physics.units import nm_to_thz, thz_to_nm
 from labrun.resources import find_file
 
 # ITU-T G.694.1 (DWDM frequency grid): anchor 193.1 THz, fixed grids of 12.5/25/50/100 GHz.
@@ -325,31 +325,21 @@ def itu_grid_thz(n: int, grid_ghz: float = 50.0) -> float:
     return round(ITU_ANCHOR_THZ + n * grid_ghz / 1000.0, 9)
 
 
-def thz_to_nm(freq_thz: float) -> float:
-    """Vacuum wavelength (nm) of a frequency (THz)."""
-    return C_M_PER_S / (freq_thz * 1e12) * 1e9
-
-
-def nm_to_thz(wavelength_nm: float) -> float:
-    """Frequency (THz) of a vacuum wavelength (nm)."""
-    return C_M_PER_S / (wavelength_nm * 1e-9) * 1e-12
-
-
 def spacing_nm_to_ghz(spacing_nm: float, wavelength_a_nm: float) -> float:
     """Tone spacing in GHz when tone b sits ``spacing_nm`` below tone a in wavelength (exact)."""
-    return (nm_to_thz(wavelength_a_nm - spacing_nm) - nm_to_thz(wavelength_a_nm)) * 1000.0
+    return float(nm_to_thz(wavelength_a_nm - spacing_nm) - nm_to_thz(wavelength_a_nm)) * 1000.0
 
 
 def wavelength_b_nm(wavelength_a_nm: float, spacing_ghz: float) -> float:
     """Wavelength of tone b, which sits ``spacing_ghz`` above tone a in frequency."""
-    return thz_to_nm(nm_to_thz(wavelength_a_nm) + spacing_ghz / 1000.0)
+    return float(thz_to_nm(nm_to_thz(wavelength_a_nm) + spacing_ghz / 1000.0))
 
 
 def line_extent_nm(wavelength_a_nm: float, spacing_ghz: float, orders: int) -> tuple[float, float]:
     """Wavelengths (low, high) of the outermost lines: high sideband n and low sideband n."""
-    f_a = nm_to_thz(wavelength_a_nm)
+    f_a = float(nm_to_thz(wavelength_a_nm))
     d = spacing_ghz / 1000.0
-    return thz_to_nm(f_a + (orders + 1) * d), thz_to_nm(f_a - orders * d)
+    return float(thz_to_nm(f_a + (orders + 1) * d)), float(thz_to_nm(f_a - orders * d))
 
 
 def estimate_sweep_s(span_nm: float, rbw_nm: float, points: int) -> float:
@@ -758,8 +748,8 @@ class Plan:
     def _setpoint(self, v: Mapping[str, Any], where: str) -> dict[str, Any]:
         """Canonical setpoint from plan variables (launched powers, spacing in GHz, ...)."""
         grid = v.get("grid_ghz")
-        wl = v["wavelength_a_nm"] if "wavelength_a_nm" in v else thz_to_nm(
-            itu_grid_thz(v["channel_a"], grid))
+        wl = v["wavelength_a_nm"] if "wavelength_a_nm" in v else float(thz_to_nm(
+            itu_grid_thz(v["channel_a"], grid)))
         if "spacing_ghz" in v:
             sp = v["spacing_ghz"]
         elif "spacing_nm" in v:
