@@ -10,7 +10,6 @@ import pandas as pd
 from sqlalchemy import or_, select
 
 from labrun.errors import InputError
-from labrun.lines import LineId
 from labrun.store import Line, Point, Store, Trace
 
 
@@ -70,12 +69,3 @@ def point_trace(store: Store, point_id: int, kind: str = "output") -> tuple[np.n
         y = np.frombuffer(tr.y_data, dtype="<f4").astype(np.float64)
         return x, y, tr.rbw_nm
 
-
-def line_columns(table: pd.DataFrame) -> list[str]:
-    """The line-power columns of a run_points table, in frequency order."""
-    keys = []
-    for col in table.columns:
-        parts = col.split("_")
-        if len(parts) == 3 and parts[0] in ("tone", "sideband") and parts[2].isdigit():
-            keys.append((LineId(parts[0], parts[1], int(parts[2])).k, col))  # type: ignore[arg-type]
-    return [c for _, c in sorted(keys)]

@@ -17,7 +17,6 @@ import logging
 import signal
 import threading
 import time
-from collections.abc import Callable
 from types import FrameType
 from typing import Any
 
@@ -109,16 +108,15 @@ def safe_off(instruments: Any, bench: Any) -> list[str]:
 class SafeOffGuard:
     """Arms signal handlers and an atexit hook that switch every source off.
 
-    Use as a context manager around a run; ``set_instruments`` keeps it pointing at the current
-    connections (they change on reconnect). ``shutdown()`` does the safe-off exactly once.
+    ``install`` before the run, ``uninstall`` after; ``set_instruments`` keeps it pointing at the
+    current connections (they change on reconnect). ``shutdown()`` does the safe-off exactly once.
     """
 
-    def __init__(self, bench: Any, *, on_signal: Callable[[int], None] | None = None):
+    def __init__(self, bench: Any):
         self.bench = bench
         self.instruments: Any = None
         self.signum: int | None = None
         self.problems: list[str] | None = None
-        self._on_signal = on_signal
         self._critical = False
         self._deferred = False
         self._done = False
@@ -126,14 +124,6 @@ class SafeOffGuard:
         self._previous: dict[int, Any] = {}
 
     # ---- arming ------------------------------------------------------------------------------
-    def __enter__(self) -> SafeOffGuard:
-        self.install()
-        return self
-
-    def __exit__(self, *exc: object) -> None:
-        self.shutdown()
-        self.uninstall()
-
     def install(self) -> None:
         """Register the atexit hook and, in the main thread, the signal handlers."""
         atexit.register(self._atexit)
@@ -158,9 +148,6 @@ class SafeOffGuard:
         first = self.signum is None
         if first:
             self.signum = signum
-        if self._on_signal is not None:
-            with contextlib.suppress(Exception):  # a handler must not fail
-                self._on_signal(signum)
         if not self._critical and not self._deferred and not self._done and first:
             raise RunInterrupted(signum)
 
