@@ -16,6 +16,7 @@ from _engine_support import OPERATOR, dark, long_powers, scenario, write_bench, 
 import labrun.instruments
 import labrun.reduce
 from labrun.bench import load_bench
+from labrun.cli import main
 from labrun.engine import run_plan
 from labrun.plan import load_plan
 from labrun.resources import find_file
@@ -93,12 +94,15 @@ def test_a_broken_run_connection_still_ends_dark(tmp_path, monkeypatch, inst_fre
 
 def test_fallback_skips_init_commands(tmp_path):
     """A laser that refuses one of its profile's init commands (an error-queue entry) is still
-    switched off by the fallback: only what switching off needs is sent."""
+    switched off by the fallback and by 'labrun off': only what switching off needs is sent."""
     with VirtualLab(scenario()) as lab:
         # SYST:BOOT:WAIT is unknown to the virtual laser: -113 in its error queue
-        bench = load_bench(_bench_with_laser_a(lab, tmp_path, init=["*CLS", "SYST:BOOT:WAIT"]))
+        path = _bench_with_laser_a(lab, tmp_path, init=["*CLS", "SYST:BOOT:WAIT"])
         _light(lab, "laser_a", "laser_b")
-        assert safe_off_fresh(bench) == []
+        assert safe_off_fresh(load_bench(path)) == []
+        assert dark(lab)
+        _light(lab, "laser_a", "laser_b")
+        assert main(["off", "--bench", str(path)]) == 0
         assert dark(lab)
 
 

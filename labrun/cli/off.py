@@ -28,14 +28,16 @@ def register(subparsers: Any) -> None:
 
 
 def off_role(bench: Any, role: str) -> dict[str, Any]:
-    """Darken one role over a fresh connection; what was done and what the instrument reports."""
-    from labrun.instruments import open_bench
+    """Darken one role over a fresh connection; what was done and what the instrument reports.
+
+    Opened without the profile's init commands, as the safe-off fallback does: a refused init
+    command must not keep a laser on."""
+    from labrun.instruments import open_instrument
 
     result: dict[str, Any] = {"role": role, "ok": False, "output": None, "detail": ""}
-    inst = None
+    adapter = None
     try:
-        inst = open_bench(bench, roles=[role])
-        adapter = inst[role]
+        adapter = open_instrument(bench, role, initialise=False)
         adapter.safe_off()
         state = adapter.output_state()
         result["output"] = None if state is None else ("on" if state else "off")
@@ -52,9 +54,9 @@ def off_role(bench: Any, role: str) -> dict[str, Any]:
     except Exception as exc:  # noqa: BLE001 - report this role and go on to the next
         result["detail"] = f"{type(exc).__name__}: {exc}"
     finally:
-        if inst is not None:
+        if adapter is not None:
             with contextlib.suppress(Exception):
-                inst.close()
+                adapter.close()
     return result
 
 
