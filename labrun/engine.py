@@ -25,7 +25,7 @@ from typing import TYPE_CHECKING, Any, TextIO
 from labrun import __version__
 from labrun.errors import InputError, InstrumentError, SafetyError
 from labrun.instruments.base import FLOAT_SLACK
-from labrun.physics.units import nm_to_thz, thz_to_nm
+from labrun.physics.units import nm_to_thz
 from labrun.plan import Plan, PointSpec, StopWatch
 from labrun.scpi import NoAnswerError
 from labrun.shutdown import RunInterrupted, SafeOffGuard
@@ -39,6 +39,15 @@ SOURCE_ROLES = ("laser_a", "laser_b", "amplifier")
 # corrupted transfer, not light (common practice).
 TRACE_DBM_BOUNDS = (-300.0, 100.0)
 STALE_HEARTBEAT_S = 60.0  # a running run with an older heartbeat is probably dead
+# Which plan axes drive each group of instrument settings (their settle times apply to it).
+SETTLE_AXES = {
+    "wavelength_a": ("wavelength_a_nm",),
+    "wavelength_b": ("wavelength_a_nm", "spacing_ghz"),
+    "power": ("power_a_dbm", "power_b_dbm", "total_power_dbm", "attenuation_a_db",
+              "attenuation_b_db"),
+    "pol_angles_deg": ("pol_angles_deg",),
+    "pol_stokes": ("pol_stokes",),
+}
 SIGINT = int(_signal.SIGINT)  # Ctrl-C; KeyboardInterrupt counts as this signal
 
 
@@ -216,6 +225,9 @@ class Runner:
         self.use_amplifier = plan.amplifier
         self.input_every = plan.osa.input_every if plan.capture_input else 0
         self.stops = StopWatch(plan.stop_conditions)
+        # The plan's settle time of each group of settings: the longest of the axes driving it.
+        self.settle = {group: max([plan.settle_s.get(a, 0.0) for a in axes] + [0.0])
+                       for group, axes in SETTLE_AXES.items()}
         # Fixed for the run: the bench's source roles (read on every emission check).
         self.source_roles = [r for r in SOURCE_ROLES if r in bench.instruments]
         self.show_progress = progress
@@ -312,36 +324,26 @@ class Runner:
         """Instrument settings of a point, each with the plan's settle time for its axes."""
         from labrun import safety
 
-        inst = safety.instrument_settings({**setpoint, "amplifier": self.use_amplifier},
-                                          self.bench)
-        got = vars(inst) if not isinstance(inst, dict) else inst
-        wl_a = setpoint.get("wavelength_a_nm", got.get("wavelength_a_nm"))
-        wl_b = setpoint.get("wavelength_b_nm", got.get("wavelength_b_nm"))
-        if wl_b is None and wl_a is not None and setpoint.get("spacing_ghz") is not None:
-            wl_b = float(thz_to_nm(nm_to_thz(wl_a) + setpoint["spacing_ghz"] / 1000.0))
-        plan_settle = self.plan.settle_s
-
-        def axis_settle(*axes: str) -> float:
-            return max([plan_settle.get(a, 0.0) for a in axes] + [0.0])
-
+        got = safety.instrument_settings({**setpoint, "amplifier": self.use_amplifier},
+                                         self.bench)
+        # Plan setpoints carry both wavelengths (the plan derives tone b from the spacing).
+        wl_a, wl_b = setpoint["wavelength_a_nm"], setpoint["wavelength_b_nm"]
         out: list[Setting] = []
 
-        def add(role: str, method: str, value: Any, *axes: str) -> None:
+        def add(role: str, method: str, value: Any, group: str) -> None:
             if value is None or role not in self.bench.instruments:
                 return
-            out.append(Setting(role, method, value, axis_settle(*axes)))
+            out.append(Setting(role, method, value, self.settle[group]))
 
-        add("laser_a", "set_wavelength_nm", wl_a, "wavelength_a_nm")
-        add("laser_b", "set_wavelength_nm", wl_b, "wavelength_a_nm", "spacing_ghz")
-        add("attenuator_a", "set_wavelength_nm", wl_a, "wavelength_a_nm")
-        add("attenuator_b", "set_wavelength_nm", wl_b, "wavelength_a_nm", "spacing_ghz")
-        pw = ("power_a_dbm", "power_b_dbm", "total_power_dbm", "attenuation_a_db",
-              "attenuation_b_db")
-        add("laser_a", "set_power_dbm", got.get("laser_a_dbm"), *pw)
-        add("laser_b", "set_power_dbm", got.get("laser_b_dbm"), *pw)
-        add("attenuator_a", "set_attenuation_db", got.get("attenuation_a_db"), *pw)
-        add("attenuator_b", "set_attenuation_db", got.get("attenuation_b_db"), *pw)
-        add("amplifier", "set_power_dbm", got.get("amplifier_dbm"), *pw)
+        add("laser_a", "set_wavelength_nm", wl_a, "wavelength_a")
+        add("laser_b", "set_wavelength_nm", wl_b, "wavelength_b")
+        add("attenuator_a", "set_wavelength_nm", wl_a, "wavelength_a")
+        add("attenuator_b", "set_wavelength_nm", wl_b, "wavelength_b")
+        add("laser_a", "set_power_dbm", got.laser_a_dbm, "power")
+        add("laser_b", "set_power_dbm", got.laser_b_dbm, "power")
+        add("attenuator_a", "set_attenuation_db", got.attenuation_a_db, "power")
+        add("attenuator_b", "set_attenuation_db", got.attenuation_b_db, "power")
+        add("amplifier", "set_power_dbm", got.amplifier_dbm, "power")
         if setpoint.get("pol_angles_deg") is not None:
             add("pol_controller", "set_angles_deg", tuple(setpoint["pol_angles_deg"]),
                 "pol_angles_deg")

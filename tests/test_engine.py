@@ -287,3 +287,26 @@ def test_off_without_a_bench_file_is_one_line(tmp_path, monkeypatch, capsys):
     err = capsys.readouterr().err.strip().splitlines()
     assert len(err) == 1 and "bench.toml" in err[0]
     assert list(tmp_path.iterdir()) == []
+
+
+def test_plan_settle_times_go_to_the_settings_their_axes_drive(tmp_path, lab):
+    """A settle_s on the power axes waits after the power settings (lasers, attenuators), not
+    after the wavelengths, which no settled axis drives (invented values)."""
+    from labrun.engine import Runner
+    from labrun.shutdown import SafeOffGuard
+
+    path = write_plan(tmp_path, [0.0, 1.0])
+    text = path.read_text(encoding="utf-8")
+    path.write_text(text.replace("[axes.power_a_dbm]\n", "[axes.power_a_dbm]\nsettle_s = 2.5\n")
+                    .replace("[axes.power_b_dbm]\n", "[axes.power_b_dbm]\nsettle_s = 1.5\n"),
+                    encoding="utf-8")
+    plan = load_plan(path)
+    bench = load_bench(write_bench(lab, tmp_path))
+    runner = Runner(plan, bench, None, 0, SafeOffGuard(bench), policy=RetryPolicy())
+    settings = runner.settings_for(plan.points()[0].setpoint)
+    settle = {(s.role, s.method): s.settle_s for s in settings}
+    for role in ("laser_a", "laser_b"):
+        assert settle[(role, "set_power_dbm")] == 2.5
+        assert settle[(role, "set_wavelength_nm")] == 0.0
+    for role in ("attenuator_a", "attenuator_b"):
+        assert settle[(role, "set_attenuation_db")] == 2.5
