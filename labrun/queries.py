@@ -10,12 +10,8 @@ import pandas as pd
 from sqlalchemy import or_, select
 
 from labrun.errors import InputError
+from labrun.lines import LineId
 from labrun.store import Line, Point, Store, Trace
-
-
-def line_key(kind: str, side: str, order: int) -> str:
-    """Column name of a line power: 'tone_low_0', 'sideband_high_1' (as fits.fit_run expects)."""
-    return f"{kind}_{side}_{order}"
 
 
 def run_points(store: Store, run_id: int, *, include_reference: bool = True) -> pd.DataFrame:
@@ -47,7 +43,7 @@ def run_points(store: Store, run_id: int, *, include_reference: bool = True) -> 
         rows[p.id] = row
     for ln in lines:
         value = ln.power_dbm if ln.detected and ln.power_dbm is not None else np.nan
-        rows[ln.point_id][line_key(ln.kind, ln.side, ln.order)] = value
+        rows[ln.point_id][LineId(ln.kind, ln.side, ln.order).key] = value
     table = pd.DataFrame(list(rows.values()))
     if not include_reference and not table.empty:
         table = table[~table["is_reference"]].reset_index(drop=True)
