@@ -26,7 +26,7 @@ from labrun import __version__
 from labrun.errors import InputError, InstrumentError, SafetyError
 from labrun.instruments.base import FLOAT_SLACK
 from labrun.physics.units import nm_to_thz
-from labrun.plan import Plan, PointSpec, StopWatch
+from labrun.plan import POWER_SETPOINTS, Plan, PointSpec, StopWatch
 from labrun.scpi import NoAnswerError
 from labrun.shutdown import RunInterrupted, SafeOffGuard
 from labrun.store import FINISHED_STATUSES, Store, TraceData
@@ -43,8 +43,7 @@ STALE_HEARTBEAT_S = 60.0  # a running run with an older heartbeat is probably de
 SETTLE_AXES = {
     "wavelength_a": ("wavelength_a_nm",),
     "wavelength_b": ("wavelength_a_nm", "spacing_ghz"),
-    "power": ("power_a_dbm", "power_b_dbm", "total_power_dbm", "attenuation_a_db",
-              "attenuation_b_db"),
+    "power": POWER_SETPOINTS,
     "pol_angles_deg": ("pol_angles_deg",),
     "pol_stokes": ("pol_stokes",),
 }

@@ -51,6 +51,10 @@ VARIABLES: dict[str, tuple[str, float, float, str]] = {
     "laser_b_dbm": ("float", -60.0, 40.0, "dBm"),
 }
 FIXED_ONLY = {"grid_ghz"}
+# Setpoint names that move laser, attenuator or amplifier levels: a change of any of them is a
+# power step, and its settle time applies to the power settings (engine and check agree on this).
+POWER_SETPOINTS = ("power_a_dbm", "power_b_dbm", "attenuation_a_db", "attenuation_b_db",
+                   "laser_a_dbm", "laser_b_dbm")
 
 # Which setpoint names each plan variable drives (for per-axis settle times).
 DRIVES: dict[str, tuple[str, ...]] = {

@@ -310,3 +310,22 @@ def test_plan_settle_times_go_to_the_settings_their_axes_drive(tmp_path, lab):
         assert settle[(role, "set_wavelength_nm")] == 0.0
     for role in ("attenuator_a", "attenuator_b"):
         assert settle[(role, "set_attenuation_db")] == 2.5
+
+
+def test_a_laser_level_axis_settles_the_power_settings(tmp_path, lab):
+    """A settle_s on a laser_a_dbm axis waits after the power settings, as `labrun check`
+    estimates it (both read plan.POWER_SETPOINTS; invented values)."""
+    from labrun.engine import Runner
+    from labrun.shutdown import SafeOffGuard
+
+    path = write_plan(tmp_path, [0.0], extra="")
+    text = path.read_text(encoding="utf-8")
+    path.write_text(text + "\n[axes.laser_a_dbm]\nvalues = [8.0, 9.0]\nsettle_s = 3.0\n",
+                    encoding="utf-8")
+    plan = load_plan(path)
+    bench = load_bench(write_bench(lab, tmp_path))
+    runner = Runner(plan, bench, None, 0, SafeOffGuard(bench), policy=RetryPolicy())
+    settle = {(s.role, s.method): s.settle_s
+              for s in runner.settings_for(plan.points()[0].setpoint)}
+    assert settle[("laser_a", "set_power_dbm")] == 3.0
+    assert settle[("attenuator_a", "set_attenuation_db")] == 3.0

@@ -17,12 +17,11 @@ from typing import Any
 from labrun import safety
 from labrun.bench import load_bench
 from labrun.errors import SafetyError
-from labrun.plan import OsaSettings, Plan, load_plan, op_settle
+from labrun.plan import POWER_SETPOINTS, OsaSettings, Plan, load_plan, op_settle
 from labrun.profiles import VALUE_PLACEHOLDERS
 
 FIRST_POINTS = 3
-POWER_AXES = ("power_a_dbm", "power_b_dbm", "attenuation_a_db", "attenuation_b_db",
-              "laser_a_dbm", "laser_b_dbm")
+POWER_AXES = POWER_SETPOINTS
 
 
 @dataclass(frozen=True)
