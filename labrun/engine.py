@@ -30,6 +30,7 @@ from labrun.plan import POWER_SETPOINTS, Plan, PointSpec, StopWatch
 from labrun.scpi import NoAnswerError
 from labrun.shutdown import RunInterrupted, SafeOffGuard
 from labrun.store import FINISHED_STATUSES, Store, TraceData
+from labrun.trafficlog import EVENT_KIND
 
 if TYPE_CHECKING:
     from labrun.reduce import Reduction
@@ -206,10 +207,10 @@ class Runner:
     """Runs points of one run: owns the connections, the applied-state cache and the guard."""
 
     def __init__(self, plan: Plan, bench: Any, store: Store, run_id: int, guard: SafeOffGuard, *,
-                 policy: RetryPolicy, progress: bool = True, transcript: Any = None,
+                 policy: RetryPolicy, progress: bool = True, traffic_log: Any = None,
                  sleep: Callable[[float], None] = time.sleep):
         self.plan, self.bench, self.store, self.run_id = plan, bench, store, run_id
-        self.guard, self.policy, self.transcript = guard, policy, transcript
+        self.guard, self.policy, self.traffic_log = guard, policy, traffic_log
         self.scale = float(getattr(bench, "settle_scale", 1.0))
         self.sleep = sleep
         self.instruments: Any = None
@@ -265,7 +266,7 @@ class Runner:
         agree, so a garbled reply is neither recorded nor mistaken for another instrument)."""
         from labrun.instruments import open_bench
 
-        instruments = open_bench(self.bench, transcript=self.transcript,
+        instruments = open_bench(self.bench, traffic_log=self.traffic_log,
                                  on_fault=self.command_fault)
         self.guard.set_instruments(instruments)
         try:
@@ -640,10 +641,10 @@ class Runner:
         )
         self.last_beat = time.monotonic()
 
-    def flush_transcript(self) -> None:
-        """Flush a streamed transcript once per point: a crash keeps every stored point's
+    def flush_traffic_log(self) -> None:
+        """Flush a streamed traffic log once per point: a crash keeps every stored point's
         traffic on disk."""
-        flush = getattr(self.transcript, "flush", None)
+        flush = getattr(self.traffic_log, "flush", None)
         if flush is not None:
             flush()
 
@@ -658,7 +659,7 @@ class Runner:
                 started = utcnow()
                 traces, red, attempts = self.measure(spec)
                 self.commit(spec, traces, red, attempts, started)
-                self.flush_transcript()
+                self.flush_traffic_log()
                 done += 1
                 if bar is not None:
                     bar.set_postfix_str(_postfix(red), refresh=False)
@@ -772,7 +773,7 @@ def _run_fields(plan: Plan, bench: Any, *, operator: str | None, unattended: boo
 def run_plan(plan: Plan, bench: Any, store: Store, *, operator: str | None = None,
              unattended: bool = False, ack_safety: bool = False,
              confirm: Callable[[str], bool] | None = None, policy: RetryPolicy | None = None,
-             progress: bool = True, transcript: Any = None,
+             progress: bool = True, traffic_log: Any = None,
              echo: TextIO | None = None) -> RunOutcome:
     """Run a plan on a bench into the store; returns how it ended (never leaves a source on).
 
@@ -786,9 +787,9 @@ def run_plan(plan: Plan, bench: Any, store: Store, *, operator: str | None = Non
     run_id = store.create_run(**_run_fields(plan, bench, operator=operator,
                                             unattended=unattended, total=len(specs)))
     record_ack(store, run_id, plan, bench, operator=operator, unattended=unattended, text=text)
-    record_transcript(store, run_id, transcript)
+    record_traffic_log(store, run_id, traffic_log)
     return _execute(plan, bench, store, run_id, specs, done=0, policy=policy,
-                    progress=progress, transcript=transcript, first=True)
+                    progress=progress, traffic_log=traffic_log, first=True)
 
 
 def record_ack(store: Store, run_id: int, plan: Plan, bench: Any, *, operator: str | None,
@@ -807,16 +808,16 @@ def record_ack(store: Store, run_id: int, plan: Plan, bench: Any, *, operator: s
                           "max_launched_dbm": wc.max_launched_dbm})
 
 
-def record_transcript(store: Store, run_id: int, transcript: Any) -> None:
-    """A ``transcript`` event naming the file the instrument traffic streams to (if any)."""
-    path = getattr(transcript, "path", None)
+def record_traffic_log(store: Store, run_id: int, traffic_log: Any) -> None:
+    """A ``traffic_log`` event naming the file the instrument traffic streams to (if any)."""
+    path = getattr(traffic_log, "path", None)
     if path is not None:
-        store.add_event(run_id, "transcript", f"instrument traffic streamed to {path}",
+        store.add_event(run_id, EVENT_KIND, f"instrument traffic streamed to {path}",
                         data={"path": str(path)})
 
 
 def _execute(plan: Plan, bench: Any, store: Store, run_id: int, specs: Sequence[PointSpec], *,
-             done: int, policy: RetryPolicy | None, progress: bool, transcript: Any,
+             done: int, policy: RetryPolicy | None, progress: bool, traffic_log: Any,
              first: bool, expect_identities: dict[str, str] | None = None,
              force: bool = False) -> RunOutcome:
     """Open, run ``specs``, and close run ``run_id`` under the safe-off guard."""
@@ -825,7 +826,7 @@ def _execute(plan: Plan, bench: Any, store: Store, run_id: int, specs: Sequence[
     total = int(store.get_run(run_id).points_total)
     guard = SafeOffGuard(bench)
     runner = Runner(plan, bench, store, run_id, guard, policy=policy or RetryPolicy(),
-                    progress=progress, transcript=transcript)
+                    progress=progress, traffic_log=traffic_log)
     guard.install()
     caught: BaseException | None = None
     finished = False
@@ -857,7 +858,7 @@ def _execute(plan: Plan, bench: Any, store: Store, run_id: int, specs: Sequence[
         status, reason, error, signum = _classify(caught)
         problems = guard.shutdown()
         runner.close()
-        runner.flush_transcript()
+        runner.flush_traffic_log()
         done = store.count_points(run_id)
         store.add_event(run_id, "safe_off", "all sources off, attenuators at maximum"
                         if not problems else "NOT CONFIRMED OFF: " + "; ".join(problems),
@@ -942,7 +943,7 @@ def plan_from_run(run: Any, *, force: bool) -> Plan:
 def resume_run(run_id: int, store: Store, *, bench: Any = None, force: bool = False,
                operator: str | None = None, unattended: bool = False, ack_safety: bool = False,
                confirm: Callable[[str], bool] | None = None, policy: RetryPolicy | None = None,
-               progress: bool = True, transcript: Any = None,
+               progress: bool = True, traffic_log: Any = None,
                echo: TextIO | None = None) -> RunOutcome:
     """Continue a stored run: same plan (hash checked), same instruments, skip stored points.
 
@@ -973,13 +974,13 @@ def resume_run(run_id: int, store: Store, *, bench: Any = None, force: bool = Fa
         print(text, file=echo)
     record_ack(store, run_id, plan, bench, operator=operator, unattended=unattended, text=text,
                resumed=True)
-    record_transcript(store, run_id, transcript)
+    record_traffic_log(store, run_id, traffic_log)
     done_keys = store.completed_keys(run_id)
     specs = [s for s in plan.points() if s.key not in done_keys]
     store.add_event(run_id, "resume", f"resuming: {len(done_keys)} points stored, "
                     f"{len(specs)} to go", data={"force": force, "bench": str(bench.path)})
     return _execute(plan, bench, store, run_id, specs, done=len(done_keys), policy=policy,
-                    progress=progress, transcript=transcript, first=False,
+                    progress=progress, traffic_log=traffic_log, first=False,
                     expect_identities=dict(run.identities or {}), force=force)
 
 

@@ -4,7 +4,7 @@ Everything on the wire goes through pyvisa (and a backend chosen by name: ``@py`
 ``@sim`` pyvisa-sim, ``@ivi`` vendor VISA). Blocks use pyvisa's own IEEE 488.2 definite-length
 parser; after each setting the SCPI-1999 error queue is read until code 0 ("0,\"No error\"").
 Timeouts and lost connections are retried a bounded number of times, reconnecting each time;
-every attempt is logged and recorded in the transcript. When the profile says the instrument takes
+every attempt is logged and recorded in the traffic log. When the profile says the instrument takes
 IEEE 488.2 compound program messages, a setting, its follow-up queries and the error query travel
 as one message (``INP:ATT 3.000;:INP:ATT?;:SYST:ERR?``): one round trip instead of three.
 """
@@ -28,7 +28,7 @@ from pyvisa.errors import VisaIOError
 from pyvisa.util import from_ieee_block
 
 from labrun.errors import InputError, InstrumentError
-from labrun.transcript import Direction, Transcript, split_units
+from labrun.trafficlog import Direction, TrafficLog, split_units
 
 log = logging.getLogger("labrun.scpi")
 log.addHandler(logging.NullHandler())  # library: shown only when the application configures logging
@@ -155,12 +155,12 @@ def _is_transport_error(exc: BaseException) -> bool:
 
 
 class ScpiSession:
-    """A message-based VISA session speaking SCPI, with error draining, retries and a transcript."""
+    """A message-based VISA session speaking SCPI, with error draining, retries, traffic log."""
 
     def __init__(self, resource: str, backend: str = "@py", *, write_termination: str = "\n",
                  read_termination: str = "\n", timeout_ms: int = 3000,
                  error_query: str | None = "SYST:ERR?", opc_query: str | None = "*OPC?",
-                 transcript: Transcript | None = None, role: str | None = None,
+                 traffic_log: TrafficLog | None = None, role: str | None = None,
                  retries: int = 2, sim_file: str | Path | None = None, compound: bool = False,
                  on_fault: FaultHook | None = None):
         self.resource = resource
@@ -170,7 +170,7 @@ class ScpiSession:
         self.timeout_ms = timeout_ms
         self.error_query = error_query
         self.opc_query = opc_query
-        self.transcript = transcript
+        self.traffic_log = traffic_log
         self.role = role
         self.retries = max(0, int(retries))
         self.sim_file = sim_file
@@ -334,8 +334,8 @@ class ScpiSession:
 
     def _record(self, direction: Direction, text: str, started: float, reply: str | None,
                 error: str | None, attempt: int) -> None:
-        if self.transcript is not None:
-            self.transcript.record(resource=self.resource, role=self.role, direction=direction,
+        if self.traffic_log is not None:
+            self.traffic_log.record(resource=self.resource, role=self.role, direction=direction,
                                    text=text, started=started, reply=reply, error=error,
                                    attempt=attempt)
 

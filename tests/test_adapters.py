@@ -22,16 +22,16 @@ from labrun.instruments import (
 )
 from labrun.physics.units import dbm_to_mw, mw_to_dbm
 from labrun.scpi import ScpiError
-from labrun.transcript import Transcript
+from labrun.trafficlog import TrafficLog
 
 
 @pytest.fixture
 def inst_bench(inst_sim_bench_path):
-    """Open instruments of a private pyvisa-sim bench, with a transcript."""
+    """Open instruments of a private pyvisa-sim bench, with a traffic log."""
     bench = load_bench(inst_sim_bench_path)
-    transcript = Transcript()
-    instruments = open_bench(bench, transcript=transcript)
-    yield bench, instruments, transcript
+    traffic_log = TrafficLog()
+    instruments = open_bench(bench, traffic_log=traffic_log)
+    yield bench, instruments, traffic_log
     instruments.close()
 
 
@@ -50,7 +50,7 @@ def test_adapter_types(inst_bench):
 
 @pytest.mark.parametrize("role", ["laser_a", "laser_b"])
 def test_laser_every_operation(inst_bench, role):
-    _, ins, transcript = inst_bench
+    _, ins, traffic_log = inst_bench
     laser = ins[role]
     laser.set_wavelength_nm(1549.3152)
     assert laser.wavelength_nm() == pytest.approx(1549.3152, abs=1e-4)
@@ -62,35 +62,35 @@ def test_laser_every_operation(inst_bench, role):
     assert laser.output_state() is True
     laser.output_off()
     assert laser.output_state() is False
-    sent = [e.text for e in transcript.writes(role)]
+    sent = [e.text for e in traffic_log.writes(role)]
     assert sent[-4:] == ["SOUR:WAV 1549.3152", "SOUR:POW 6.500", "OUTP:STAT ON", "OUTP:STAT OFF"]
     # every setting was followed by an error-queue read and a read-back
-    texts = [e.text for e in transcript.entries if e.role == role]
+    texts = [e.text for e in traffic_log.entries if e.role == role]
     i = texts.index("SOUR:POW 6.500")
     assert texts[i + 1:i + 3] == ["SYST:ERR?", "SOUR:POW?"]
 
 
 def test_laser_refuses_before_writing(inst_bench):
-    _, ins, transcript = inst_bench
+    _, ins, traffic_log = inst_bench
     laser = ins["laser_a"]
-    before = len(transcript.writes())
+    before = len(traffic_log.writes())
     with pytest.raises(SafetyError, match="max_power_dbm"):
         laser.set_power_dbm(11.0)          # inside the profile range, above the bench cap
     with pytest.raises(InputError, match="set_wavelength_nm.range"):
         laser.set_wavelength_nm(1490.0)    # outside the profile range
     with pytest.raises(InputError):
         laser.set_power_dbm(float("nan"))
-    assert len(transcript.writes()) == before
+    assert len(traffic_log.writes()) == before
 
 
 def test_output_on_refused_when_power_above_cap(inst_bench):
     """Power raised behind labrun's back (e.g. front panel) must block emission."""
-    _, ins, transcript = inst_bench
+    _, ins, traffic_log = inst_bench
     laser = ins["laser_b"]
     laser.session.write("SOUR:POW 12.000")
     with pytest.raises(SafetyError, match="emission not enabled"):
         laser.output_on()
-    assert "OUTP:STAT ON" not in [e.text for e in transcript.writes("laser_b")]
+    assert "OUTP:STAT ON" not in [e.text for e in traffic_log.writes("laser_b")]
     assert laser.output_state() is False
 
 
@@ -120,35 +120,35 @@ def test_attenuator_every_operation(inst_bench):
 
 
 def test_pol_controller_every_operation(inst_bench):
-    _, ins, transcript = inst_bench
+    _, ins, traffic_log = inst_bench
     pc = ins["pol_controller"]
     pc.set_angles_deg((12.5, 90.0, 359.99))
     assert pc.angles_deg() == pytest.approx((12.5, 90.0, 359.99))
     pc.set_stokes((0.0, 0.6, -0.8))
     assert pc.stokes() == pytest.approx((0.0, 0.6, -0.8))
-    assert "POL:STOK 0.0000,0.6000,-0.8000" in [e.text for e in transcript.writes()]
-    before = len(transcript.writes())
+    assert "POL:STOK 0.0000,0.6000,-0.8000" in [e.text for e in traffic_log.writes()]
+    before = len(traffic_log.writes())
     with pytest.raises(InputError):
         pc.set_angles_deg((10.0, 20.0, 400.0))  # third out of range: none of the three is sent
     with pytest.raises(InputError, match="length"):
         pc.set_stokes((1.0, 1.0, 0.0))
-    assert len(transcript.writes()) == before
+    assert len(traffic_log.writes()) == before
 
 
 def test_osa_every_operation(inst_bench):
-    _, ins, transcript = inst_bench
+    _, ins, traffic_log = inst_bench
     osa = ins["osa"]
     osa.configure(1549.8, 2.0, 0.05, 101)
     assert osa.settings() == pytest.approx({"center_nm": 1549.8, "span_nm": 2.0,
                                             "rbw_nm": 0.05, "points": 101})
     osa.sweep()
-    assert [e.text for e in transcript.entries][-3:] == ["INIT:IMM", "SYST:ERR?", "*OPC?"]
+    assert [e.text for e in traffic_log.entries][-3:] == ["INIT:IMM", "SYST:ERR?", "*OPC?"]
     x, y = osa.read_trace()
     assert x.size == y.size == 101
     assert x[0] == pytest.approx(1548.8) and x[-1] == pytest.approx(1550.8)
     assert np.all(np.diff(x) > 0)
     assert x[np.argmax(y)] in (pytest.approx(1549.6), pytest.approx(1550.0))
-    assert "FORM:DATA ASC" in [e.text for e in transcript.writes("osa")]
+    assert "FORM:DATA ASC" in [e.text for e in traffic_log.writes("osa")]
     with pytest.raises(InputError):
         osa.configure(1549.8, 2.0, 0.05, 100.5)  # points must be a whole number in range
 
@@ -235,17 +235,17 @@ def test_safe_off_all_tries_every_source_and_never_raises(inst_bench, inst_free_
     assert ins["laser_a"].output_state() is False and ins["laser_b"].output_state() is False
 
 
-def test_transcript_proves_no_setting_above_cap(inst_bench, tmp_path):
-    """Read the saved transcript back and check every power ever written against the caps."""
-    bench, ins, transcript = inst_bench
+def test_traffic_log_proves_no_setting_above_cap(inst_bench, tmp_path):
+    """Read the saved traffic log back and check every power ever written against the caps."""
+    bench, ins, traffic_log = inst_bench
     attempts = {"laser_a": [5.0, 10.0, 10.5, 13.0, -3.0], "laser_b": [9.99, 11.0, 0.0],
                 "amplifier": [15.0, 20.0, 20.01, 27.0]}
     for role, values in attempts.items():
         for value in values:
             with contextlib.suppress(SafetyError):
                 ins[role].set_power_dbm(value)
-    saved = Transcript.load(transcript.save(tmp_path / "transcript.jsonl"))
-    assert len(saved) == len(transcript)
+    saved = TrafficLog.load(traffic_log.save(tmp_path / "traffic_log.jsonl"))
+    assert len(saved) == len(traffic_log)
     for role, values in attempts.items():
         cap = bench.instruments[role].max_power_dbm
         pattern = re.compile(r"^SOUR:POW (\S+)$")  # the set_power_dbm template of the profile
@@ -269,8 +269,8 @@ def test_real32_trace_and_safe_off_against_virtual_lab(tmp_path):
     with vlab.VirtualLab("default-scenario.toml") as lab:
         bench = load_bench(lab.write_bench(tmp_path / "bench.toml"))
         assert bench.instruments["osa"].profile.trace.format == "real32"
-        transcript = Transcript()
-        with open_bench(bench, transcript=transcript, roles=["laser_a", "attenuator_a",
+        traffic_log = TrafficLog()
+        with open_bench(bench, traffic_log=traffic_log, roles=["laser_a", "attenuator_a",
                                                              "osa"]) as ins:
             ins["laser_a"].set_power_dbm(5.0)
             ins["laser_a"].output_on()
@@ -283,7 +283,7 @@ def test_real32_trace_and_safe_off_against_virtual_lab(tmp_path):
             assert y.max() > -30.0  # the laser line stands far above the floor
             assert ins.safe_off_all() == []
         assert lab.sources_off()
-        assert "<block 8004 bytes>" in [e.reply for e in transcript.entries]
+        assert "<block 8004 bytes>" in [e.reply for e in traffic_log.entries]
 
 
 def test_block_osa_falls_back_to_ascii_when_refused(inst_sim_bench_path):
@@ -292,9 +292,9 @@ def test_block_osa_falls_back_to_ascii_when_refused(inst_sim_bench_path):
     inst_sim_bench_path.write_text(text)
     bench = load_bench(inst_sim_bench_path)
     assert bench.instruments["osa"].profile.trace.format == "real32"
-    transcript = Transcript()
-    with open_bench(bench, transcript=transcript, roles=["osa"]) as ins:
+    traffic_log = TrafficLog()
+    with open_bench(bench, traffic_log=traffic_log, roles=["osa"]) as ins:
         x, y = ins["osa"].read_trace()
         assert x.size == y.size == 101
-    sent = [e.text for e in transcript.writes("osa")]
+    sent = [e.text for e in traffic_log.writes("osa")]
     assert sent[-2:] == ["FORM:DATA REAL,32", "FORM:DATA ASC"]

@@ -15,7 +15,7 @@ from labrun.bench import load_bench
 from labrun.instruments import make_session, open_bench, output_states
 from labrun.resources import find_file
 from labrun.scpi import ScpiError, ScpiSession, compound, query_each, split_units
-from labrun.transcript import Transcript
+from labrun.trafficlog import TrafficLog
 from labrun.vlab.lab import VirtualLab
 
 
@@ -43,14 +43,14 @@ def test_units_split_at_semicolons_outside_strings():
 
 
 def test_setting_readback_and_error_query_in_one_message(lab, tmp_path):
-    transcript = Transcript()
+    traffic_log = TrafficLog()
     bench = load_bench(lab.write_bench(tmp_path / "bench.toml"))
-    with open_bench(bench, roles=["attenuator_a"], transcript=transcript) as ins:
+    with open_bench(bench, roles=["attenuator_a"], traffic_log=traffic_log) as ins:
         ins["attenuator_a"].set_attenuation_db(12.5)
-    (entry,) = [e for e in transcript.writes() if "INP:ATT 12.500" in e.text]
+    (entry,) = [e for e in traffic_log.writes() if "INP:ATT 12.500" in e.text]
     assert entry.text == "INP:ATT 12.500;:INP:ATT?;:SYST:ERR?"
     assert entry.reply == '12.5;0,"No error"'
-    assert transcript.commands("attenuator_a")[-1] == "INP:ATT 12.500"
+    assert traffic_log.commands("attenuator_a")[-1] == "INP:ATT 12.500"
     with lab.state.lock:
         assert lab.state.attenuators["attenuator_a"].attenuation_db == 12.5
 
@@ -80,12 +80,12 @@ def test_profile_without_the_capability_keeps_separate_messages(lab, tmp_path):
     text = bench_path.read_text(encoding="utf-8")
     bench_path.write_text(text.replace('profile = "generic-attenuator"',
                                        f'profile = "{plain}"', 1), encoding="utf-8")
-    transcript = Transcript()
+    traffic_log = TrafficLog()
     with open_bench(load_bench(bench_path), roles=["attenuator_a"],
-                    transcript=transcript) as ins:
+                    traffic_log=traffic_log) as ins:
         assert not ins["attenuator_a"].session.compound
         ins["attenuator_a"].set_attenuation_db(7.25)
-    texts = [e.text for e in transcript.entries]
+    texts = [e.text for e in traffic_log.entries]
     i = texts.index("INP:ATT 7.250")
     assert texts[i:i + 3] == ["INP:ATT 7.250", "SYST:ERR?", "INP:ATT?"]
 
@@ -99,9 +99,9 @@ def test_pyvisa_sim_never_gets_compound_messages(inst_sim_bench_path):
 
 
 def test_parallel_queries_and_their_fallback(lab, tmp_path):
-    transcript = Transcript()
+    traffic_log = TrafficLog()
     bench = load_bench(lab.write_bench(tmp_path / "bench.toml"))
-    with open_bench(bench, roles=["laser_a", "laser_b"], transcript=transcript) as ins:
+    with open_bench(bench, roles=["laser_a", "laser_b"], traffic_log=traffic_log) as ins:
         lasers = [ins["laser_a"], ins["laser_b"]]
         lasers[1].output_on()
         assert output_states(lasers) == [False, True]
@@ -112,7 +112,7 @@ def test_parallel_queries_and_their_fallback(lab, tmp_path):
         with pytest.raises(ValueError):
             query_each([(lasers[0].session, "*IDN?"), (lasers[0].session, "*IDN?")])
         lasers[1].output_off()
-    asked = [e for e in transcript.entries if e.text == "OUTP:STAT?"]
+    asked = [e for e in traffic_log.entries if e.text == "OUTP:STAT?"]
     assert [e.role for e in asked if e.error] == ["laser_a", "laser_b"]  # the failed pair
     assert {e.role for e in asked if e.reply is not None} == {"laser_a", "laser_b"}
 

@@ -26,7 +26,7 @@ from labrun.engine import RetryPolicy, run_plan
 from labrun.errors import InputError, SafetyError
 from labrun.plan import load_plan
 from labrun.store import Event, Line, Point, Trace, open_store
-from labrun.transcript import Transcript
+from labrun.trafficlog import TrafficLog
 from labrun.vlab.lab import VirtualLab
 
 POWERS = [0.0, 2.0, 4.0]
@@ -106,11 +106,11 @@ def test_cap_violation_refused_before_any_write(tmp_path, lab):
     plan = load_plan(write_plan(tmp_path, [0.0, 9.5]))  # 9.5 dBm launched > 10 - 3 dB path
     bench = load_bench(write_bench(lab, tmp_path))
     store = open_store(tmp_path / "runs.db")
-    transcript = Transcript()
+    traffic_log = TrafficLog()
     with pytest.raises(SafetyError, match="cap"):
         run_plan(plan, bench, store, operator=OPERATOR, unattended=True, ack_safety=True,
-                 progress=False, transcript=transcript)
-    assert transcript.writes() == [] and transcript.entries == []
+                 progress=False, traffic_log=traffic_log)
+    assert traffic_log.writes() == [] and traffic_log.entries == []
     assert store.latest_run_id() is None
     with lab.state.lock:  # untouched: the lab's power-on defaults
         assert all(not la.output and la.power_dbm == 0.0 for la in lab.state.lasers.values())
@@ -147,16 +147,16 @@ def test_interactive_run_needs_the_typed_word(tmp_path, lab):
     bench = load_bench(write_bench(lab, tmp_path))
     store = open_store(tmp_path / "runs.db")
     shown: list[str] = []
-    transcript = Transcript()
+    traffic_log = TrafficLog()
 
     def decline(text: str) -> bool:
         shown.append(text)
         return False
 
     with pytest.raises(SafetyError, match="not confirmed"):
-        run_plan(plan, bench, store, confirm=decline, progress=False, transcript=transcript)
+        run_plan(plan, bench, store, confirm=decline, progress=False, traffic_log=traffic_log)
     assert "Worst case" in shown[0] and "laser safety officer" in shown[0]
-    assert transcript.entries == [] and store.latest_run_id() is None
+    assert traffic_log.entries == [] and store.latest_run_id() is None
     out = run_plan(plan, bench, store, operator="bench user", confirm=lambda text: True,
                    progress=False)
     assert out.status == "completed" and dark(lab)

@@ -18,7 +18,7 @@ from labrun.errors import InputError
 from labrun.plan import load_plan
 from labrun.queries import run_points
 from labrun.store import Event, Point, open_store
-from labrun.transcript import Transcript
+from labrun.trafficlog import TrafficLog
 from labrun.vlab.lab import VirtualLab
 
 # Three points, total power 6 dBm split equally; input every 2nd point (invented lab values).
@@ -49,20 +49,20 @@ def _plan(tmp_path, *, powers=(2.0, 4.0, 6.0), capture="true", plan_extra=""):
     return path
 
 
-def _run(tmp_path, lab, plan_path, transcript=None):
+def _run(tmp_path, lab, plan_path, traffic_log=None):
     store = open_store(tmp_path / "runs.db")
     out = run_plan(load_plan(plan_path), load_bench(write_bench(lab, tmp_path)), store,
                    operator=OPERATOR, unattended=True, ack_safety=True, progress=False,
-                   policy=RetryPolicy(attempts=2, backoff_s=0.0), transcript=transcript)
+                   policy=RetryPolicy(attempts=2, backoff_s=0.0), traffic_log=traffic_log)
     return store, out
 
 
 def test_input_spectrum_is_captured_through_switch_path_2(tmp_path, capsys):
     sc = scenario()
     tap_db = sc["bench"]["input_tap_db"]
-    transcript = Transcript()
+    traffic_log = TrafficLog()
     with VirtualLab(sc) as lab:
-        store, out = _run(tmp_path, lab, _plan(tmp_path), transcript)
+        store, out = _run(tmp_path, lab, _plan(tmp_path), traffic_log)
         assert out.status == "completed" and out.points_done == 3 and dark(lab)
         with lab.state.lock:
             assert lab.state.switch.path == 1  # left on the spool output
@@ -97,7 +97,7 @@ def test_input_spectrum_is_captured_through_switch_path_2(tmp_path, capsys):
                     ln = in_lines[("sideband", side, order)]
                     assert not ln.detected and ln.power_dbm is None
     # The input sweep happens on path 2, then the switch goes back to path 1 for the output.
-    texts = [(e.role, e.text.split(";")[0]) for e in transcript.writes()]
+    texts = [(e.role, e.text.split(";")[0]) for e in traffic_log.writes()]
     sweeps = [i for i, (r, t) in enumerate(texts) if r == "osa" and t == "INIT:IMM"]
     paths = [(i, t) for i, (r, t) in enumerate(texts) if r == "switch" and t != "*CLS"]
     assert [t for _, t in paths][:2] == ["ROUT:PATH 2", "ROUT:PATH 1"]
@@ -119,12 +119,12 @@ def test_input_capture_without_a_switch_is_refused_before_anything(tmp_path, cap
     sc["instruments"]["switch"]["present"] = False
     with VirtualLab(sc) as lab:
         plan_path = _plan(tmp_path)
-        transcript = Transcript()
+        traffic_log = TrafficLog()
         with pytest.raises(InputError) as info:
-            _run(tmp_path, lab, plan_path, transcript)
+            _run(tmp_path, lab, plan_path, traffic_log)
         assert info.value.field == "osa.capture_input"
         assert str(tmp_path / "bench.toml") in str(info.value) and "switch" in str(info.value)
-        assert transcript.entries == []
+        assert traffic_log.entries == []
         db = tmp_path / "cli.db"
         rc = main(["run", str(plan_path), "--bench", str(tmp_path / "bench.toml"), "--db",
                    str(db), "--unattended", "--operator", OPERATOR, "--ack-safety"])
@@ -162,13 +162,13 @@ def test_amplifier_on_the_bench_stays_off_for_a_plan_without_it(tmp_path):
     tones: each try is a fault and the run aborts without storing a dark trace as a point."""
     sc = scenario()
     sc["instruments"]["amplifier"]["present"] = True
-    transcript = Transcript()
+    traffic_log = TrafficLog()
     with VirtualLab(sc) as lab:
-        store, out = _run(tmp_path, lab, _plan(tmp_path, capture="false"), transcript)
+        store, out = _run(tmp_path, lab, _plan(tmp_path, capture="false"), traffic_log)
         assert out.status == "aborted" and "tones" in out.reason and dark(lab)
         assert out.points_done == 0
-    assert not any(c.startswith("OUTP:STAT ON") for c in transcript.commands("amplifier"))
-    assert transcript.commands("amplifier")[-1].startswith("OUTP:STAT OFF")  # the safe-off
+    assert not any(c.startswith("OUTP:STAT ON") for c in traffic_log.commands("amplifier"))
+    assert traffic_log.commands("amplifier")[-1].startswith("OUTP:STAT OFF")  # the safe-off
 
 
 def test_amplifier_plan_over_the_amplifier_cap_is_refused_before_any_write(tmp_path):
@@ -181,11 +181,11 @@ def test_amplifier_plan_over_the_amplifier_cap_is_refused_before_any_write(tmp_p
     sc["bench"]["caps"]["amplifier"] = 9.0
     plan_path = _plan(tmp_path, powers=(6.0, 9.0), capture="false",
                       plan_extra="amplifier = true")
-    transcript = Transcript()
+    traffic_log = TrafficLog()
     with VirtualLab(sc) as lab:
         with pytest.raises(SafetyError, match="amplifier"):
-            _run(tmp_path, lab, plan_path, transcript)
-        assert transcript.entries == [] and lab.sources_off()
+            _run(tmp_path, lab, plan_path, traffic_log)
+        assert traffic_log.entries == [] and lab.sources_off()
     # 9 dBm + amplifier_loss_db from the scenario: above 9 dBm; 6 dBm + loss is not
     loss = sc["bench"]["amplifier_loss_db"]
     assert 9.0 + loss > 9.0 >= 6.0 + loss

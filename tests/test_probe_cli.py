@@ -6,7 +6,7 @@ import json
 
 from labrun.cli import main
 from labrun.resources import data_dir
-from labrun.transcript import Transcript
+from labrun.trafficlog import TrafficLog
 
 ROLES = {"laser_a", "laser_b", "attenuator_a", "attenuator_b", "pol_controller", "osa",
          "power_meter", "amplifier", "switch"}
@@ -15,7 +15,7 @@ ROLES = {"laser_a", "laser_b", "attenuator_a", "attenuator_b", "pol_controller",
 def test_probe_sim_bench_json(inst_sim_bench_path, capsys, tmp_path):
     saved = tmp_path / "probe.jsonl"
     code = main(["probe", "--bench", str(inst_sim_bench_path), "--json",
-                 "--transcript", str(saved)])
+                 "--traffic-log", str(saved)])
     out = json.loads(capsys.readouterr().out)
     assert code == 0 and out["ok"] is True
     by_role = {i["role"]: i for i in out["instruments"]}
@@ -36,7 +36,7 @@ def test_probe_sim_bench_json(inst_sim_bench_path, capsys, tmp_path):
         wanted = {op.name for op in spec.profile.read_operations()}
         assert wanted <= {c["operation"] for c in by_role[role]["checks"]}
     # read-only: nothing but *CLS (profile init) and the OSA transfer format was written
-    writes = {e.text for e in Transcript.load(saved).writes()}
+    writes = {e.text for e in TrafficLog.load(saved).writes()}
     assert writes == {"*CLS", "FORM:DATA ASC"}
 
 
@@ -114,7 +114,7 @@ def test_missing_bench_exit_2(tmp_path, capsys):
     assert "absent.toml" in capsys.readouterr().err
 
 
-def test_transcript_in_a_missing_folder_exit_2_before_any_instrument(tmp_path, capsys,
+def test_traffic_log_in_a_missing_folder_exit_2_before_any_instrument(tmp_path, capsys,
                                                                     inst_free_port):
     # The bench points at a closed port: had probe opened anything, it would report exit 1.
     bench = tmp_path / "bench.toml"
@@ -123,7 +123,7 @@ def test_transcript_in_a_missing_folder_exit_2_before_any_instrument(tmp_path, c
                      f'resource = "TCPIP0::127.0.0.1::{inst_free_port}::SOCKET"\n'
                      'profile = "generic-switch"\n')
     target = tmp_path / "no-such-folder" / "probe.jsonl"
-    assert main(["probe", "--bench", str(bench), "--transcript", str(target)]) == 2
+    assert main(["probe", "--bench", str(bench), "--traffic-log", str(target)]) == 2
     captured = capsys.readouterr()
     assert captured.out == "" and len(captured.err.strip().splitlines()) == 1
-    assert str(target) in captured.err and "--transcript" in captured.err
+    assert str(target) in captured.err and "--traffic-log" in captured.err

@@ -19,12 +19,12 @@ from labrun.scpi import (
     parse_idn,
     visa_library_spec,
 )
-from labrun.transcript import Transcript
+from labrun.trafficlog import TrafficLog
 
 
-def _session(peer, transcript=None, **kw) -> ScpiSession:
+def _session(peer, traffic_log=None, **kw) -> ScpiSession:
     kw.setdefault("timeout_ms", 2000)
-    return ScpiSession(peer.resource, "@py", transcript=transcript, role="peer", **kw).open()
+    return ScpiSession(peer.resource, "@py", traffic_log=traffic_log, role="peer", **kw).open()
 
 
 # -- IEEE 488.2 definite-length arbitrary block ------------------------------------------------
@@ -35,12 +35,12 @@ def test_block_real32_matches_pyvisa_codec(inst_scpi_peer, byte_order):
     values = np.linspace(-80.0, 12.5, 257).astype(np.float32)
     inst_scpi_peer.state.trace = values.tolist()
     inst_scpi_peer.state.big_endian = byte_order == "big"
-    transcript = Transcript()
-    with _session(inst_scpi_peer, transcript) as s:
+    traffic_log = TrafficLog()
+    with _session(inst_scpi_peer, traffic_log) as s:
         got = s.query_block_real32("TRAC:DATA:Y?", byte_order)
     np.testing.assert_array_equal(got, values.astype(float))
-    # the transcript keeps the size, not the bytes
-    assert transcript.entries[-1].reply == f"<block {4 * values.size} bytes>"
+    # the traffic log keeps the size, not the bytes
+    assert traffic_log.entries[-1].reply == f"<block {4 * values.size} bytes>"
 
 
 def test_block_header_follows_ieee_488_2(inst_scpi_peer):
@@ -88,15 +88,15 @@ def test_drain_reads_until_no_error_and_names_command(inst_scpi_peer):
     """SCPI-1999 / IEEE 488.2: each SYST:ERR? pops the oldest entry; 0,"No error" ends it."""
     inst_scpi_peer.state.errors = ['-113,"Undefined header"', '-222,"Data out of range"',
                                    '-350,"Queue overflow"']
-    transcript = Transcript()
-    with _session(inst_scpi_peer, transcript) as s:
+    traffic_log = TrafficLog()
+    with _session(inst_scpi_peer, traffic_log) as s:
         with pytest.raises(ScpiError) as info:
             s.write("SOUR:POW 1.000")
         err = info.value
         assert (err.code, err.error_message, err.command) == (-113, "Undefined header",
                                                               "SOUR:POW 1.000")
         assert "SOUR:POW 1.000" in str(err) and "+2 more" in str(err)
-        polls = [e for e in transcript.entries if e.text == "SYST:ERR?"]
+        polls = [e for e in traffic_log.entries if e.text == "SYST:ERR?"]
         assert [p.reply for p in polls][-1] == '0,"No error"'
         assert len(polls) == 4  # three entries, then the one that ends the queue
         s.write("SOUR:POW 2.000")  # queue now empty: no error
@@ -119,11 +119,11 @@ def test_error_queue_that_never_empties_is_bounded(inst_scpi_peer):
 
 def test_timeout_is_retried_after_reconnect(inst_scpi_peer, caplog):
     inst_scpi_peer.state.silent = 1
-    transcript = Transcript()
+    traffic_log = TrafficLog()
     with (caplog.at_level(logging.WARNING, logger="labrun.scpi"),
-          _session(inst_scpi_peer, transcript, timeout_ms=200) as s):
+          _session(inst_scpi_peer, traffic_log, timeout_ms=200) as s):
         assert s.idn().model == "BLK-1"
-    idn_tries = [e for e in transcript.entries if e.text == "*IDN?"]
+    idn_tries = [e for e in traffic_log.entries if e.text == "*IDN?"]
     assert [e.attempt for e in idn_tries] == [1, 2]
     assert "TMO" in (idn_tries[0].error or "") and idn_tries[1].reply
     assert any("attempt 1 of 3" in r.message for r in caplog.records)
@@ -131,21 +131,21 @@ def test_timeout_is_retried_after_reconnect(inst_scpi_peer, caplog):
 
 
 def test_lost_connection_is_retried(inst_scpi_peer):
-    transcript = Transcript()
-    with _session(inst_scpi_peer, transcript, timeout_ms=500) as s:
+    traffic_log = TrafficLog()
+    with _session(inst_scpi_peer, traffic_log, timeout_ms=500) as s:
         inst_scpi_peer.state.drop = 1
         assert s.query("SOUR:POW?") == "0.000"
-    tries = [e for e in transcript.entries if e.text == "SOUR:POW?"]
+    tries = [e for e in traffic_log.entries if e.text == "SOUR:POW?"]
     assert len(tries) == 2 and tries[0].error and tries[1].error is None
 
 
 def test_retries_are_bounded(inst_scpi_peer):
     inst_scpi_peer.state.silent = 10
-    transcript = Transcript()
-    with (_session(inst_scpi_peer, transcript, timeout_ms=100, retries=2) as s,
+    traffic_log = TrafficLog()
+    with (_session(inst_scpi_peer, traffic_log, timeout_ms=100, retries=2) as s,
           pytest.raises(NoAnswerError, match="no answer")):
         s.query("*IDN?")
-    assert len([e for e in transcript.entries if e.text == "*IDN?"]) == 3
+    assert len([e for e in traffic_log.entries if e.text == "*IDN?"]) == 3
 
 
 def test_refused_connection_is_one_line_instrument_error(inst_free_port):

@@ -14,7 +14,7 @@ from labrun.errors import InstrumentError, SafetyError
 from labrun.instruments import open_bench
 from labrun.plan import load_plan
 from labrun.store import open_store
-from labrun.transcript import Transcript
+from labrun.trafficlog import TrafficLog
 from labrun.vlab.lab import DEFAULT_CAPS_DBM, VirtualLab
 from labrun.vlab.state import Laser
 
@@ -55,14 +55,14 @@ def test_readback_above_the_cap_is_a_safety_error(tmp_path):
 def test_output_on_checks_the_interlock_before_sending(tmp_path):
     with VirtualLab(scenario()) as lab:
         bench = load_bench(write_bench(lab, tmp_path))
-        transcript = Transcript()
-        with open_bench(bench, roles=["laser_a"], transcript=transcript) as ins:
+        traffic_log = TrafficLog()
+        with open_bench(bench, roles=["laser_a"], traffic_log=traffic_log) as ins:
             laser = ins["laser_a"]
             laser.set_power_dbm(2.0)
             lab.open_interlock()
             with pytest.raises(SafetyError, match="interlock is open"):
                 laser.output_on()
-            sent = [e.text for e in transcript.writes("laser_a")]
+            sent = [e.text for e in traffic_log.writes("laser_a")]
             assert not any("OUTP:STAT ON" in text for text in sent), sent
             lab.close_interlock()
             laser.output_on()  # the same call goes through once the interlock is closed

@@ -27,6 +27,14 @@ class _Parser(argparse.ArgumentParser):
         self.exit(2, f"{self.prog}: error: {message}\n")
 
 
+def add_traffic_log_option(parser: argparse.ArgumentParser, help_text: str) -> None:
+    """``--traffic-log FILE``, and its name before 0.2 (``--transcript``) as a hidden alias so
+    scripts written against it keep working."""
+    parser.add_argument("--traffic-log", dest="traffic_log", metavar="FILE", help=help_text)
+    parser.add_argument("--transcript", dest="traffic_log", metavar="FILE",
+                        help=argparse.SUPPRESS)
+
+
 def build_parser() -> argparse.ArgumentParser:
     """The full ``labrun`` parser with every available command group registered."""
     parser = _Parser(prog="labrun", description="Four-wave-mixing sweeps on optical fibre.")

@@ -18,11 +18,12 @@ from typing import Any
 import numpy as np
 
 from labrun.bench import Bench, load_bench
+from labrun.cli import add_traffic_log_option
 from labrun.errors import InputError, LabrunError
 from labrun.instruments import Adapter, open_instrument
 from labrun.profiles import Operation
 from labrun.scpi import Idn, NoAnswerError
-from labrun.transcript import Transcript
+from labrun.trafficlog import TrafficLog
 
 
 @dataclass
@@ -56,8 +57,7 @@ def register(subparsers: argparse._SubParsersAction) -> None:
                                           "Never sets anything, never enables emission.")
     p.add_argument("--bench", required=True, metavar="FILE", help="bench file (TOML)")
     p.add_argument("--json", action="store_true", help="print JSON instead of a table")
-    p.add_argument("--transcript", metavar="FILE",
-                   help="save the instrument traffic as JSON lines")
+    add_traffic_log_option(p, "save the instrument traffic as JSON lines")
     p.set_defaults(func=run_probe)
 
 
@@ -97,12 +97,12 @@ def _check_operation(adapter: Adapter, op: Operation) -> Check:
     return Check(op.name, True, detail)
 
 
-def probe_instrument(bench: Bench, role: str, transcript: Transcript | None = None) -> ProbeResult:
+def probe_instrument(bench: Bench, role: str, traffic_log: TrafficLog | None = None) -> ProbeResult:
     """Probe one role; an instrument that does not answer yields one failed check, no more."""
     spec = bench.instruments[role]
     result = ProbeResult(role=role, resource=spec.resource)
     try:
-        adapter = open_instrument(bench, role, transcript=transcript)
+        adapter = open_instrument(bench, role, traffic_log=traffic_log)
     except InputError:
         raise
     except LabrunError as exc:
@@ -139,9 +139,9 @@ def _check_error_queue(adapter: Adapter) -> Check:
     return Check("error_queue", True, "empty")
 
 
-def probe_bench(bench: Bench, transcript: Transcript | None = None) -> list[ProbeResult]:
+def probe_bench(bench: Bench, traffic_log: TrafficLog | None = None) -> list[ProbeResult]:
     """Probe every instrument of a bench, in file order."""
-    return [probe_instrument(bench, role, transcript) for role in bench.instruments]
+    return [probe_instrument(bench, role, traffic_log) for role in bench.instruments]
 
 
 def format_table(results: list[ProbeResult]) -> str:
@@ -165,13 +165,13 @@ def format_table(results: list[ProbeResult]) -> str:
 def run_probe(args: argparse.Namespace) -> int:
     """Entry point of ``labrun probe``."""
     bench = load_bench(args.bench)
-    if args.transcript and not Path(args.transcript).resolve().parent.is_dir():
-        raise InputError("no such folder for the transcript", file=args.transcript,
-                         field="--transcript")
-    transcript = Transcript()
-    results = probe_bench(bench, transcript)
-    if args.transcript:
-        transcript.save(args.transcript)
+    if args.traffic_log and not Path(args.traffic_log).resolve().parent.is_dir():
+        raise InputError("no such folder for the traffic log", file=args.traffic_log,
+                         field="--traffic-log")
+    traffic_log = TrafficLog()
+    results = probe_bench(bench, traffic_log)
+    if args.traffic_log:
+        traffic_log.save(args.traffic_log)
     if args.json:
         payload = {"bench": str(bench.path), "ok": all(r.ok for r in results),
                    "instruments": [{"role": r.role, "resource": r.resource, "idn": r.idn,

@@ -7,6 +7,7 @@ import json
 import sys
 from typing import Any
 
+from labrun.cli import add_traffic_log_option
 from labrun.store import DEFAULT_DB
 
 DB_HELP = (f"SQLAlchemy URL or SQLite file path of the run store (default: {DEFAULT_DB} in the "
@@ -31,9 +32,8 @@ def register(subparsers: Any) -> None:
                    help="acknowledge the worst case and cautions (recorded with name and time)")
     p.add_argument("--json", action="store_true", help="print the outcome as JSON on stdout")
     p.add_argument("--no-progress", action="store_true", help="no progress bar on stderr")
-    p.add_argument("--transcript", metavar="FILE",
-                   help="stream every instrument exchange to FILE as JSON lines (flushed after "
-                        "each point)")
+    add_traffic_log_option(p, "stream every instrument exchange to FILE as JSON lines "
+                              "(flushed after each point)")
     p.set_defaults(func=cmd_run, command_name="run")
 
     r = subparsers.add_parser(
@@ -54,9 +54,8 @@ def register(subparsers: Any) -> None:
                         "time): resuming switches the sources on again")
     r.add_argument("--json", action="store_true", help="print the outcome as JSON on stdout")
     r.add_argument("--no-progress", action="store_true", help="no progress bar on stderr")
-    r.add_argument("--transcript", metavar="FILE",
-                   help="stream every instrument exchange to FILE as JSON lines, appended to "
-                        "what it holds (flushed after each point)")
+    add_traffic_log_option(r, "stream every instrument exchange to FILE as JSON lines, "
+                              "appended to what it holds (flushed after each point)")
     r.set_defaults(func=cmd_resume, command_name="resume")
 
 
@@ -113,19 +112,19 @@ def cmd_run(args: argparse.Namespace) -> int:
     bench = load_bench(args.bench)
     check_unattended(args)
     require_roles(plan, bench)  # a bench that cannot run the plan: refused before any store
-    transcript = open_transcript(args, append=False)
+    traffic_log = open_traffic_log(args, append=False)
     try:
         store = open_store(args.db)
         try:
             outcome = run_plan(plan, bench, store, operator=args.operator,
                                unattended=args.unattended, ack_safety=args.ack_safety,
                                confirm=ask_operator, progress=not args.no_progress,
-                               transcript=transcript, echo=sys.stderr)
+                               traffic_log=traffic_log, echo=sys.stderr)
         finally:
             store.close()
     finally:
-        if transcript is not None:
-            transcript.close()
+        if traffic_log is not None:
+            traffic_log.close()
     return _report(outcome, args.json)
 
 
@@ -139,26 +138,26 @@ def cmd_resume(args: argparse.Namespace) -> int:
     bench = load_bench(args.bench) if args.bench else None
     store = open_existing_store(args.db)  # a run to resume must already be stored
     try:
-        transcript = open_transcript(args, append=True)
+        traffic_log = open_traffic_log(args, append=True)
         try:
             outcome = resume_run(args.run_id, store, bench=bench, force=args.force,
                                  operator=args.operator, unattended=args.unattended,
                                  ack_safety=args.ack_safety, confirm=ask_operator,
-                                 progress=not args.no_progress, transcript=transcript,
+                                 progress=not args.no_progress, traffic_log=traffic_log,
                                  echo=sys.stderr)
         finally:
-            if transcript is not None:
-                transcript.close()
+            if traffic_log is not None:
+                traffic_log.close()
     finally:
         store.close()
     return _report(outcome, args.json)
 
 
-def open_transcript(args: argparse.Namespace, *, append: bool) -> Any:
-    """The streaming transcript of ``--transcript FILE`` (entries not kept in memory), or None;
+def open_traffic_log(args: argparse.Namespace, *, append: bool) -> Any:
+    """The streaming traffic log of ``--traffic-log FILE`` (entries not kept in memory), or None;
     an unwritable file is a one-line InputError (exit 2) before any instrument is opened."""
-    if not args.transcript:
+    if not args.traffic_log:
         return None
-    from labrun.transcript import Transcript
+    from labrun.trafficlog import TrafficLog
 
-    return Transcript.stream(args.transcript, append=append, retain=False)
+    return TrafficLog.stream(args.traffic_log, append=append, retain=False)

@@ -21,7 +21,7 @@ from labrun.instruments.pol_controller import PolControllerAdapter
 from labrun.instruments.power_meter import PowerMeterAdapter
 from labrun.instruments.switch import SwitchAdapter
 from labrun.scpi import FaultHook, Idn, ScpiSession, compound, query_each
-from labrun.transcript import Transcript, split_units
+from labrun.trafficlog import TrafficLog, split_units
 
 __all__ = [
     "ADAPTERS", "Adapter", "AmplifierAdapter", "AttenuatorAdapter", "Instruments",
@@ -41,7 +41,7 @@ SAFE_OFF_ORDER = ("amplifier", "laser_a", "laser_b", "attenuator_a", "attenuator
 SAFE_OFF_TRIES = 3  # a garbled reply or a stray error-queue entry must not leave a source on
 
 
-def make_session(bench: Bench, role: str, transcript: Transcript | None = None,
+def make_session(bench: Bench, role: str, traffic_log: TrafficLog | None = None,
                  on_fault: FaultHook | None = None) -> ScpiSession:
     """An (unopened) SCPI session for one role, configured from its profile.
 
@@ -53,17 +53,17 @@ def make_session(bench: Bench, role: str, transcript: Transcript | None = None,
     compound = p.capabilities.compound_messages and spec.backend != "@sim"
     return ScpiSession(spec.resource, spec.backend, write_termination=p.write_termination,
                        read_termination=p.read_termination, timeout_ms=p.timeout_ms,
-                       error_query=p.error_query, opc_query=p.opc_query, transcript=transcript,
+                       error_query=p.error_query, opc_query=p.opc_query, traffic_log=traffic_log,
                        role=role, sim_file=bench.sim_file, compound=compound,
                        on_fault=on_fault)
 
 
-def open_instrument(bench: Bench, role: str, *, transcript: Transcript | None = None,
+def open_instrument(bench: Bench, role: str, *, traffic_log: TrafficLog | None = None,
                     on_fault: FaultHook | None = None, initialise: bool = True) -> Adapter:
     """Connect one role, send its profile's init commands (unless ``initialise`` is False: the
     safe-off fallback sends only what switching off needs) and return its adapter."""
     spec = bench.instruments[role]
-    session = make_session(bench, role, transcript, on_fault).open()
+    session = make_session(bench, role, traffic_log, on_fault).open()
     adapter = ADAPTERS[spec.kind](spec, session, settle_scale=bench.settle_scale)
     if not initialise:
         return adapter
@@ -199,7 +199,7 @@ def source_readings(adapters: Sequence[Adapter]) -> list[SourceReading]:
     return [SourceReading(v.get("read_output_state"), v.get("read_power_dbm")) for v in values]
 
 
-def open_bench(bench: Bench, *, transcript: Transcript | None = None,
+def open_bench(bench: Bench, *, traffic_log: TrafficLog | None = None,
                roles: Iterable[str] | None = None,
                on_fault: FaultHook | None = None) -> Instruments:
     """Open the instruments of ``bench`` (all, or only ``roles``); closes all if one fails."""
@@ -211,7 +211,7 @@ def open_bench(bench: Bench, *, transcript: Transcript | None = None,
     adapters: dict[str, Adapter] = {}
     try:
         for role in wanted:
-            adapters[role] = open_instrument(bench, role, transcript=transcript,
+            adapters[role] = open_instrument(bench, role, traffic_log=traffic_log,
                                              on_fault=on_fault)
     except BaseException:
         for adapter in adapters.values():

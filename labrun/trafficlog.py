@@ -1,8 +1,8 @@
-"""Transcript of instrument traffic: every write and query, with time, duration and reply.
+"""Traffic log of instrument traffic: every write and query, with time, duration and reply.
 
 A run saves it beside its data (JSON lines) so anyone can later see exactly what went on the wire,
 and tests can prove from it that no setting above a cap was ever written. A long run streams it
-to a file as it goes (``Transcript.stream``: one JSON line per exchange, flushed per point)
+to a file as it goes (``TrafficLog.stream``: one JSON line per exchange, flushed per point)
 without keeping the entries in memory.
 """
 
@@ -18,6 +18,10 @@ from typing import Literal, TextIO
 from labrun.errors import InputError
 
 Direction = Literal["write", "query"]
+
+EVENT_KIND = "traffic_log"  # the run event naming the file a run's traffic streamed to
+# every event kind that names such a file: "transcript" is the name runs stored before 0.2
+EVENT_KINDS = (EVENT_KIND, "transcript")
 
 
 def split_units(message: str) -> list[str]:
@@ -38,7 +42,7 @@ def split_units(message: str) -> list[str]:
 
 
 @dataclass(frozen=True)
-class TranscriptEntry:
+class TrafficLogEntry:
     """One exchange on the wire; ``error`` set when it failed.
 
     ``reply`` is None for a plain write; a "write" that carries queries (an IEEE 488.2 compound
@@ -56,7 +60,7 @@ class TranscriptEntry:
     attempt: int = 1
 
 
-class Transcript:
+class TrafficLog:
     """Thread-safe, append-only record of instrument traffic shared by every session of a bench.
 
     ``sink``: a text file each entry is written to as one JSON line when it is recorded (call
@@ -66,7 +70,7 @@ class Transcript:
 
     def __init__(self, sink: TextIO | None = None, *, retain: bool = True,
                  path: str | Path | None = None) -> None:
-        self.entries: list[TranscriptEntry] = []
+        self.entries: list[TrafficLogEntry] = []
         self.sink = sink
         self.retain = retain
         self.path = Path(path) if path is not None else None
@@ -75,22 +79,22 @@ class Transcript:
 
     @classmethod
     def stream(cls, path: str | Path, *, append: bool = False,
-               retain: bool = False) -> Transcript:
-        """A transcript that writes JSON lines to ``path`` as exchanges happen (``append``: keep
+               retain: bool = False) -> TrafficLog:
+        """A traffic log that writes JSON lines to ``path`` as exchanges happen (``append``: keep
         what the file holds, e.g. when a run is resumed). InputError if it cannot be written."""
         path = Path(path)
         try:
             fh = path.open("a" if append else "w", encoding="utf-8")
         except OSError as exc:
-            raise InputError(f"cannot write the transcript: {exc.strerror or exc}",
-                             file=str(path), field="--transcript") from None
+            raise InputError(f"cannot write the traffic log: {exc.strerror or exc}",
+                             file=str(path), field="--traffic-log") from None
         return cls(fh, retain=retain, path=path.resolve())
 
     def record(self, *, resource: str, role: str | None, direction: Direction, text: str,
                started: float, reply: str | None = None, error: str | None = None,
-               attempt: int = 1) -> TranscriptEntry:
+               attempt: int = 1) -> TrafficLogEntry:
         """Record one exchange that started at ``started`` (``time.time()``) and ended now."""
-        entry = TranscriptEntry(timestamp=started, duration_s=max(0.0, time.time() - started),
+        entry = TrafficLogEntry(timestamp=started, duration_s=max(0.0, time.time() - started),
                                 resource=resource, role=role, direction=direction, text=text,
                                 reply=reply, error=error, attempt=attempt)
         with self._lock:
@@ -115,13 +119,13 @@ class Transcript:
             sink.flush()
             sink.close()
 
-    def __enter__(self) -> Transcript:
+    def __enter__(self) -> TrafficLog:
         return self
 
     def __exit__(self, *exc_info: object) -> None:
         self.close()
 
-    def writes(self, role: str | None = None) -> list[TranscriptEntry]:
+    def writes(self, role: str | None = None) -> list[TrafficLogEntry]:
         """Every write (optionally of one role), in order: what was sent as a command."""
         return [e for e in self.entries
                 if e.direction == "write" and (role is None or e.role == role)]
@@ -131,26 +135,26 @@ class Transcript:
         return [split_units(e.text)[0] for e in self.writes(role)]
 
     def save(self, path: str | Path) -> Path:
-        """Write the transcript as JSON lines (one entry per line) and return the path."""
+        """Write the traffic log as JSON lines (one entry per line) and return the path."""
         path = Path(path)
         with self._lock:
             lines = [json.dumps(asdict(e), ensure_ascii=False) for e in self.entries]
         try:
             path.write_text("".join(line + "\n" for line in lines), encoding="utf-8")
         except OSError as exc:
-            raise InputError(f"cannot write the transcript: {exc.strerror or exc}",
+            raise InputError(f"cannot write the traffic log: {exc.strerror or exc}",
                              file=str(path)) from None
         return path
 
     @classmethod
-    def load(cls, path: str | Path) -> Transcript:
-        """Read a transcript saved by :meth:`save`."""
-        transcript = cls()
+    def load(cls, path: str | Path) -> TrafficLog:
+        """Read a traffic log saved by :meth:`save`."""
+        traffic_log = cls()
         for line in Path(path).read_text(encoding="utf-8").splitlines():
             if line.strip():
-                transcript.entries.append(TranscriptEntry(**json.loads(line)))
-        transcript.count = len(transcript.entries)
-        return transcript
+                traffic_log.entries.append(TrafficLogEntry(**json.loads(line)))
+        traffic_log.count = len(traffic_log.entries)
+        return traffic_log
 
     def __len__(self) -> int:
         return self.count
