@@ -1,7 +1,7 @@
 """Fibre parameters from a run's points: gamma, dispersion, power-law slopes, polarisation.
 
 Pure functions (numpy/scipy and labrun.physics, no I/O), usable from a notebook. Physics and line
-indexing: DESIGN.md sections 3 and 4. Every fit returns a FitResult with value, standard error,
+indexing: docs/design.md §2.1 and §5. Every fit returns a FitResult with value, standard error,
 points used, residual RMS, the model's name and the unit; ``extra`` carries fit-specific details
 (validity ranges, confidence intervals, points left out and why).
 
@@ -16,7 +16,7 @@ Fits:
 - ``slope_<side>_<order>``: sideband power against total launched power, dB/dB, with a 95 %
   confidence interval (Student t).
 - ``pol_extinction_db`` (max/min of the first sideband over polarisation states) and
-  ``pol_visibility`` (fit to the scalar projection model of DESIGN.md 4.4).
+  ``pol_visibility`` (fit to the scalar projection model of docs/design.md §5.5).
 """
 
 from __future__ import annotations
@@ -73,7 +73,8 @@ def _finite_or_none(v: float) -> float | None:
 def points_table(points) -> dict[str, np.ndarray]:
     """Columns as float arrays from a DataFrame or a list of dicts (see fit_run for the names).
 
-    A record's ``lines`` list (DESIGN.md schema: kind, side, order, power_dbm, detected) is
+    A record's ``lines`` list (line schema of docs/design.md §2.1: kind, side, order,
+    power_dbm, detected) is
     flattened into ``<kind>_<side>_<order>`` columns; undetected or missing powers become NaN.
     """
     # A pandas DataFrame is read through its own API, so this module needs no pandas import.
@@ -128,7 +129,7 @@ def _copolar(t: Mapping[str, np.ndarray], n: int) -> np.ndarray:
         sb = t["pol_stokes_b"] if "pol_stokes_b" in t else np.tile([1.0, 0.0, 0.0], (n, 1))
         na = np.linalg.norm(sa, axis=1)
         nb = np.linalg.norm(sb, axis=1)
-        c = (1.0 + np.sum(sa * sb, axis=1) / (na * nb)) / 2.0  # DESIGN.md 4.4
+        c = (1.0 + np.sum(sa * sb, axis=1) / (na * nb)) / 2.0  # docs/design.md §5.5
     else:
         c = np.ones(n)
     return np.where(np.isnan(c), 1.0, c)
@@ -304,7 +305,7 @@ def fit_gamma_small_signal(p_a_w, p_b_w, ratio, l_eff_km: float, *, eta=None, co
                            max_ratio_db: float = -20.0) -> FitResult | None:
     """gamma from first sideband / its pump tone at the output: R = eta c gamma^2 L_eff^2 P_a P_b.
 
-    That is P_F = eta gamma^2 L_eff^2 P_b^2 P_a exp(-alpha L) (DESIGN.md 4.2) divided by the
+    That is P_F = eta gamma^2 L_eff^2 P_b^2 P_a exp(-alpha L) (docs/design.md §5.3) divided by the
     output pump tone P_b exp(-alpha L), so path losses cancel. Points with R above
     ``max_ratio_db`` are outside the small-signal regime (pump depletion, higher orders) and are
     left out. eta defaults to 1 (no mismatch: spacing well inside the efficiency bandwidth).
@@ -480,7 +481,7 @@ def fit_power_slope(total_dbm, sideband_dbm, groups, order: int, label: str,
 
     Groups are points sharing spacing, wavelength, power ratio and polarisation, so a run that
     sweeps several axes still gives one common slope. Expected 2n+1 in the small-signal regime
-    (J_n(m) ~ (m/2)^n/n!, DESIGN.md 4.1).
+    (J_n(m) ~ (m/2)^n/n!, docs/design.md §5.2).
     """
     x, y = np.asarray(total_dbm, float), np.asarray(sideband_dbm, float)
     g = np.asarray(groups)
@@ -521,7 +522,7 @@ def fit_power_slope(total_dbm, sideband_dbm, groups, order: int, label: str,
 
 def fit_polarisation(sideband_w, copolar, groups, pol_key) -> dict[str, FitResult]:
     """Extinction (max/min, dB) of the first sideband over polarisation states, and a fit of
-    the scalar projection model P = A (c + b), c = (1 + s_a.s_b)/2 (DESIGN.md 4.4).
+    the scalar projection model P = A (c + b), c = (1 + s_a.s_b)/2 (docs/design.md §5.5).
 
     Uses the group (same powers, spacing, wavelength) with the most polarisation states. The
     model's visibility (P(1) - P(0))/(P(1) + P(0)) = 1/(1 + 2b) is 1 for the ideal projection.
@@ -599,7 +600,8 @@ def fit_run(points, spool_length_km: float, loss_db_per_km: float, *,
       ``pol_stokes_b``, default (1, 0, 0)) as 3-sequences; absent means co-polarised;
     - measured line powers in dBm, flat columns ``tone_low_0``, ``tone_high_0``,
       ``sideband_low_<n>``, ``sideband_high_<n>`` (None/NaN when not detected; the keys of
-      ``Reduction.powers_by_key()``), or a ``lines`` list of dicts in the DESIGN.md schema
+      ``Reduction.powers_by_key()``), or a ``lines`` list of dicts in the line schema of
+      docs/design.md §2.1
       (kind, side, order, power_dbm, detected), as in ``Reduction.to_dict()["lines"]``.
     Line powers may be read anywhere after the spool: only ratios of lines enter the gamma and
     dispersion fits, and the slopes are insensitive to a constant path loss.

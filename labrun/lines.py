@@ -1,6 +1,6 @@
 """Line indexing shared by the physics, the reduction, the store and every JSON output.
 
-Lines sit on the grid ``f_a + k*delta`` (delta = f_b - f_a > 0). DESIGN.md section 3:
+Lines sit on the grid ``f_a + k*delta`` (delta = f_b - f_a > 0). docs/design.md §2.1:
 tone a: kind="tone", side="low", order=0 (k=0); tone b: kind="tone", side="high", order=0 (k=1);
 low sideband n: kind="sideband", side="low", order=n (k=-n); high sideband n: side="high" (k=n+1).
 """
@@ -16,7 +16,7 @@ Side = Literal["low", "high"]
 
 @dataclass(frozen=True, order=True)
 class LineId:
-    """Which line: kind, side and order, as in DESIGN.md section 3."""
+    """Which line: kind, side and order, as in docs/design.md §2.1."""
 
     kind: Kind
     side: Side

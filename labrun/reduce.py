@@ -1,6 +1,6 @@
 """Spectrum reduction: one OSA trace (x, y in dBm per RBW) -> tone and sideband powers.
 
-DESIGN.md sections 3 (line indexing) and 4.5 (reading an OSA trace). Pure numpy/scipy, no I/O.
+docs/design.md §2.1 (line indexing) and §5.6 (reading an OSA trace). Pure numpy/scipy, no I/O.
 Every step is vectorised over samples; the only Python loops run over the few lines of the grid.
 
 Method, in order:
@@ -55,7 +55,7 @@ _FIT_HALF_RBW = 0.6  # peak parabola over +-0.6 FWHM (the top 4.3 dB of a Gaussi
 
 @dataclass(frozen=True)
 class MeasuredLine:
-    """One tone or sideband found in a trace (DESIGN.md section 3 indexing).
+    """One tone or sideband found in a trace (docs/design.md §2.1 indexing).
 
     ``power_dbm`` is None when the line is not detected; ``upper_limit_dbm`` is then the largest
     power the line can have. Lines outside the trace have every measured field None.

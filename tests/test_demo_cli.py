@@ -23,7 +23,7 @@ def test_demo_runs_stores_fits_and_plots(tmp_path: Path, capsys: pytest.CaptureF
     # hundredths of a dB (scenario realism) allow a few percent.
     assert fits["gamma_bessel"]["value"] == pytest.approx(11.0, rel=0.05)
     # Small-signal first and second sidebands grow 3 and 5 dB/dB: J_n(m) ~ (m/2)^n / n!
-    # (Abramowitz and Stegun 9.1.7), the power-law of DESIGN.md 4.1.
+    # (Abramowitz and Stegun 9.1.7), the power-law of docs/design.md §5.2.
     assert fits["slope_high_1"]["value"] == pytest.approx(3.0, abs=0.05)
     assert fits["slope_high_2"]["value"] == pytest.approx(5.0, abs=0.1)
     for name in ("fits.json", "last-trace.png", "sideband-vs-power.png"):

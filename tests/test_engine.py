@@ -59,7 +59,7 @@ def test_run_stores_every_point_and_leaves_the_bench_dark(tmp_path, lab):
         for p in points:
             (tr,) = p.traces
             assert tr.n == osa.points and tr.y().shape == (osa.points,)
-            # tones + orders 1..2 each side: grid_ks(2) has 2*2+2 lines (DESIGN.md section 3)
+            # tones + orders 1..2 each side: grid_ks(2) has 2*2+2 lines (docs/design.md §2.1)
             assert len(p.lines) == 6
         run = store.get_run(out.run_id)
         raw = (tmp_path / "plan.toml").read_bytes()
@@ -81,7 +81,7 @@ def test_stored_lines_follow_loss_and_the_bessel_model(tmp_path):
     """
     sc = scenario()
     spool = sc["spools"][0]
-    # dispersion-free, so the Bessel model holds exactly (DESIGN.md section 4.1)
+    # dispersion-free, so the Bessel model holds exactly (docs/design.md §5.2)
     spool["dispersion_ps_per_nm_km"] = spool["dispersion_slope_ps_per_nm2_km"] = 0.0
     with VirtualLab(sc) as lab0:
         _, store, out = _run(tmp_path, lab0)

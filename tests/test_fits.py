@@ -188,7 +188,7 @@ def test_inoue_efficiency_limits():
 
 
 def test_power_slopes_per_order():
-    # Small signal: sideband n grows as P^(2n+1) (J_n(m) ~ (m/2)^n / n!, DESIGN.md 4.1; the
+    # Small signal: sideband n grows as P^(2n+1) (J_n(m) ~ (m/2)^n / n!, docs/design.md §5.2; the
     # limiting form from Abramowitz and Stegun 9.1.7).
     fib = Fibre(length_km=1.0, loss_db_per_km=0.5, gamma_per_w_per_km=3.0)
     pts = _bessel_points(fib, 11, ratio_db=0.0, p_dbm=np.linspace(-2, 8, 11), noise_db=0.05)
@@ -211,7 +211,7 @@ def test_power_slope_with_group_offsets():
 
 
 def test_polarisation_visibility_and_extinction():
-    # Scalar projection model (DESIGN.md 4.4): small-signal sideband power proportional to the
+    # Scalar projection model (docs/design.md §5.5): small-signal sideband power proportional to the
     # copolar fraction (1 + s_a . s_b)/2, plus a residual b0; visibility (max - min)/(max + min).
     rng = np.random.default_rng(5)
     c = np.linspace(0.0, 1.0, 11)

@@ -1,4 +1,4 @@
-"""The Bessel (dual-frequency) two-tone model, DESIGN.md 4.1, against outside references."""
+"""The Bessel (dual-frequency) two-tone model, docs/design.md §5.2, against outside references."""
 
 from __future__ import annotations
 
@@ -74,7 +74,8 @@ def test_model_against_direct_fft_of_phase_modulated_field(
 
 
 def test_modulation_index_formula() -> None:
-    # m = 2 gamma L_eff sqrt(P_a P_b) (DESIGN.md 4.1), worked by hand: 2 * 10 * 0.5 * 0.02 = 0.2.
+    # m = 2 gamma L_eff sqrt(P_a P_b) (docs/design.md §5.2), worked by hand:
+    # 2 * 10 * 0.5 * 0.02 = 0.2.
     assert modulation_index(10.0, 0.5, 0.01, 0.04) == pytest.approx(0.2, rel=1e-12)
     powers = two_tone_powers_dispersionless(10.0, 0.5, 0.01, 0.04, orders=2)
     assert powers[grid_ks(2).index(0)] == pytest.approx(

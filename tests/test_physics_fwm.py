@@ -1,4 +1,4 @@
-"""Small-signal FWM (DESIGN.md 4.2): mismatch units, Inoue's efficiency and its first null."""
+"""Small-signal FWM (docs/design.md §5.3): mismatch units, Inoue's efficiency and its first null."""
 
 from __future__ import annotations
 
@@ -40,7 +40,7 @@ def test_beta2_of_standard_fibre() -> None:
 
 
 def test_mismatch_units_per_km() -> None:
-    # dbeta = (2 pi lambda^2/c) D delta^2 (DESIGN.md 4.2), worked in SI then reported in 1/km:
+    # dbeta = (2 pi lambda^2/c) D delta^2 (docs/design.md §5.3), worked in SI then reported in 1/km:
     # 2 pi (1550e-9)^2 / c * 17e-6 s/m^2 * (100e9 Hz)^2 = 8.56e-3 1/m = 8.56 1/km.
     by_hand = 2 * np.pi * (1550e-9) ** 2 / C * 17e-6 * (100e9) ** 2 * 1e3
     assert phase_mismatch_per_km(1550.0, 100.0, 17.0) == pytest.approx(by_hand, rel=1e-12)
@@ -78,7 +78,7 @@ def test_inoue_efficiency_limits_and_literal_formula() -> None:
     np.testing.assert_allclose(
         inoue_efficiency(0.0, db, 10.0), np.sinc(db * 10.0 / 2 / np.pi) ** 2, atol=1e-12
     )
-    # The expression as printed in DESIGN.md 4.2, evaluated literally.
+    # The expression as printed in docs/design.md §5.3, evaluated literally.
     a, length = 0.2 * np.log(10) / 10, 10.0
     e = np.exp(-a * length)
     literal = a**2 / (a**2 + db**2) * (1 + 4 * e * np.sin(db * length / 2) ** 2 / (1 - e) ** 2)
@@ -130,7 +130,7 @@ def test_first_null_g652_with_loss_is_shallow_and_near_analytic() -> None:
 
 
 def test_phase_matched_sideband_equals_bessel_small_signal() -> None:
-    # With D = 0, P_F = gamma^2 L_eff^2 P_b^2 P_a exp(-alpha L) (DESIGN.md 4.2) must equal the
+    # With D = 0, P_F = gamma^2 L_eff^2 P_b^2 P_a exp(-alpha L) (docs/design.md §5.3) must equal the
     # small-m limit of the Bessel line P_b J_1(m)^2 exp(-alpha L) (scipy.special.jv), m -> 0.
     fibre = Fibre(1.0, 0.8, 10.0)
     p_a, p_b = 2e-5, 5e-5

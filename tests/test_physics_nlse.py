@@ -1,4 +1,4 @@
-"""Split-step Fourier NLSE (DESIGN.md 4.3) against the Bessel model, Inoue and parametric gain."""
+"""Split-step Fourier NLSE (docs/design.md §5.4) vs the Bessel model, Inoue, parametric gain."""
 
 from __future__ import annotations
 
@@ -19,8 +19,9 @@ G652 = Fibre(10.0, 0.2, 1.3, 17.0, 0.057, 1550.0)
 
 @pytest.mark.parametrize(("p_a", "p_b"), [(0.1, 0.1), (0.15, 0.04)])
 def test_split_step_without_dispersion_reproduces_bessel_model(p_a: float, p_b: float) -> None:
-    # DESIGN.md 4.3: with beta2 = beta3 = 0 the split-step must reproduce 4.1 (Thompson and Roy;
-    # line powers from scipy.special.jv). The stepping itself is run, not the SPM short cut.
+    # docs/design.md §5.4: with beta2 = beta3 = 0 the split-step must reproduce §5.2
+    # (Thompson and Roy; line powers from scipy.special.jv). The stepping itself is run, not the
+    # SPM short cut.
     res = propagate_tones(HNLF_FLAT, 1550.0, 50.0, p_a, p_b, orders=5, method="split-step")
     assert res.method == "split-step" and res.n_steps > 1
     fibre = HNLF_FLAT
@@ -40,7 +41,7 @@ def test_spm_short_cut_equals_split_step() -> None:
 
 
 def test_low_power_split_step_matches_inoue_over_spacing() -> None:
-    # DESIGN.md 4.3: at low power the split-step must reproduce Inoue's efficiency (Inoue,
+    # docs/design.md §5.4: at low power the split-step must reproduce Inoue's efficiency (Inoue,
     # J. Lightwave Technol. 10, 1553 (1992)) for both first sidebands, within 2 %, across the
     # spacing range of the first two efficiency nulls of a 10 km G.652-like spool.
     p = 1e-4
@@ -105,7 +106,7 @@ def test_step_error_estimate_tracks_tolerance() -> None:
 
 
 def test_orthogonal_part_of_tone_b_only_loses_power() -> None:
-    # Scalar projection (DESIGN.md 4.4): orthogonal tone b does not beat with tone a.
+    # Scalar projection (docs/design.md §5.5): orthogonal tone b does not beat with tone a.
     res = propagate_tones(G652, 1550.0, 50.0, 0.05, 0.05, 2, copolar=0.0)
     t = np.exp(-G652.alpha_per_km * G652.length_km)
     ks = grid_ks(2)
@@ -115,8 +116,8 @@ def test_orthogonal_part_of_tone_b_only_loses_power() -> None:
 
 
 def test_partly_copolar_tones_split_step_against_bessel_with_scaled_index() -> None:
-    # DESIGN.md 4.4: the modulation index scales with sqrt(copolar); with the Kerr phase of the
-    # total intensity on both components the Bessel lines keep the full tone powers (4.1).
+    # docs/design.md §5.5: the modulation index scales with sqrt(copolar); with the Kerr phase
+    # of the total intensity on both components the Bessel lines keep the full tone powers (§5.2).
     c, p_a, p_b = 0.3, 0.1, 0.08
     res = propagate_tones(HNLF_FLAT, 1550.0, 50.0, p_a, p_b, 4, copolar=c, method="split-step")
     f = HNLF_FLAT
@@ -127,7 +128,7 @@ def test_partly_copolar_tones_split_step_against_bessel_with_scaled_index() -> N
 
 
 def test_small_signal_sidebands_scale_with_copolar_fraction() -> None:
-    # DESIGN.md 4.4: small-signal sideband power scales with (1 + s_a . s_b)/2, on both sides.
+    # docs/design.md §5.5: small-signal sideband power scales with (1 + s_a . s_b)/2, on both sides.
     ks = grid_ks(1)
     full = propagate_tones(G652, 1550.0, 20.0, 1e-3, 1e-3, 1, copolar=1.0)
     half = propagate_tones(G652, 1550.0, 20.0, 1e-3, 1e-3, 1, copolar=0.5)
@@ -137,7 +138,7 @@ def test_small_signal_sidebands_scale_with_copolar_fraction() -> None:
 
 
 def test_small_signal_slopes_in_dispersive_fibre() -> None:
-    # Sideband n grows as power^(2n+1) at small signal (DESIGN.md 4.1: 3 dB/dB first order,
+    # Sideband n grows as power^(2n+1) at small signal (docs/design.md §5.2: 3 dB/dB first order,
     # 5 dB/dB second), also with phase mismatch: the split-step on a G.652-like spool.
     p_dbm = np.array([-20.0, -15.0, -10.0])
     ks = grid_ks(2)

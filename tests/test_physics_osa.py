@@ -1,4 +1,4 @@
-"""OSA trace synthesis (DESIGN.md 4.5): RBW shape, ENBW, floor, ASE, sensitivity, seeded noise."""
+"""OSA trace synthesis (docs/design.md §5.6): RBW shape, ENBW, floor, ASE, sensitivity, noise."""
 
 from __future__ import annotations
 

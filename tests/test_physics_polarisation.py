@@ -1,4 +1,4 @@
-"""Polarisation (DESIGN.md 4.4): copolar fraction and the quarter-half-quarter paddles."""
+"""Polarisation (docs/design.md §5.5): copolar fraction and the quarter-half-quarter paddles."""
 
 from __future__ import annotations
 
@@ -16,7 +16,7 @@ from labrun.physics.polarisation import (
 
 
 def test_copolar_fraction_parallel_orthogonal_and_between() -> None:
-    # Scalar projection: (1 + s_a . s_b)/2 = cos^2(Theta/2) (DESIGN.md 4.4; Poincare sphere).
+    # Scalar projection: (1 + s_a . s_b)/2 = cos^2(Theta/2) (docs/design.md §5.5; Poincare sphere).
     h, v, d = (1, 0, 0), (-1, 0, 0), (0, 1, 0)
     assert copolar_fraction(h, h) == pytest.approx(1.0)
     assert copolar_fraction(h, v) == pytest.approx(0.0)

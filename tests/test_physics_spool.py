@@ -27,7 +27,7 @@ G652 = Fibre(10.0, 0.2, 1.3, 17.0, 0.057, 1550.0)
 
 def test_dispersion_free_spool_matches_independent_bessel_within_0_01_db() -> None:
     # Issue 3 "done when": a dispersion-free spool matches an independent Bessel calculation
-    # (here written out from DESIGN.md 4.1 with scipy.special.jv) within 0.01 dB.
+    # (here written out from docs/design.md §5.2 with scipy.special.jv) within 0.01 dB.
     p_a_dbm, p_b_dbm, lam, spacing = 18.0, 16.0, 1551.0, 75.0
     lines = output_lines(HNLF_FLAT, lam, spacing, p_a_dbm, p_b_dbm, orders=3)
     pa, pb = 1e-3 * 10 ** (p_a_dbm / 10), 1e-3 * 10 ** (p_b_dbm / 10)
@@ -60,7 +60,7 @@ def test_lines_are_labelled_and_placed_on_the_grid() -> None:
 
 
 def test_model_choice_follows_dispersion_figure() -> None:
-    # DESIGN.md 4.1: Bessel valid while |beta2| (2 pi delta)^2 L << 1.
+    # docs/design.md §5.2: Bessel valid while |beta2| (2 pi delta)^2 L << 1.
     assert dispersion_figure(HNLF_FLAT, 1550.0, 100.0) == 0.0
     assert choose_model(HNLF_FLAT, 1550.0, 100.0) == "bessel"
     assert choose_model(G652, 1550.0, 50.0) == "nlse"

@@ -1,4 +1,4 @@
-"""Units and the fibre record (DESIGN.md 4) against standards and textbook values."""
+"""Units and the fibre record (docs/design.md §5.1) against standards and textbook values."""
 
 from __future__ import annotations
 

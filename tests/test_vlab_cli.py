@@ -1,7 +1,7 @@
 """``labrun sim spectrum`` and ``labrun sim serve``, and the shipped scenario.
 
-External references: scipy.special.jv for the Bessel two-tone model (DESIGN.md 4.1, Thompson and
-Roy, Phys. Rev. A 43, 4987 (1991)); ITU-T G.652 for the standard-fibre-like spool.
+External references: scipy.special.jv for the Bessel two-tone model (docs/design.md §5.2,
+Thompson and Roy, Phys. Rev. A 43, 4987 (1991)); ITU-T G.652 for the standard-fibre-like spool.
 """
 
 from __future__ import annotations
@@ -58,9 +58,10 @@ def test_spectrum_json_matches_independent_bessel_calculation(tmp_path, capsys, 
     assert code == 0
     lines = json.loads(out)["lines"]
     assert len(lines) == 8
-    # Independent: P_k = T [Pa J_k(m)^2 + Pb J_(k-1)(m)^2] (DESIGN.md 4.1) with scipy.special.jv,
-    # m = 2 gamma L_eff sqrt(Pa Pb) cos(Theta/2) (4.4: the index scales with cos(Theta/2),
-    # Theta = 2 x the angle between linear polarisations, so cos^2(Theta/2) = cos^2(angle)).
+    # Independent: P_k = T [Pa J_k(m)^2 + Pb J_(k-1)(m)^2] (docs/design.md §5.2) with
+    # scipy.special.jv, m = 2 gamma L_eff sqrt(Pa Pb) cos(Theta/2) (§5.5: the index scales with
+    # cos(Theta/2), Theta = 2 x the angle between linear polarisations, so
+    # cos^2(Theta/2) = cos^2(angle)).
     alpha = 0.5 * np.log(10) / 10
     l_eff = (1 - np.exp(-alpha * 2.0)) / alpha          # Agrawal, Nonlinear Fiber Optics
     t = np.exp(-alpha * 2.0)

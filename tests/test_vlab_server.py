@@ -2,7 +2,7 @@
 
 External references named beside the checks: SCPI-1999 (error codes and queue), IEEE 488.2
 (common commands, definite-length blocks), pyvisa's own block codec, scipy.special.jv for the
-Bessel line powers (DESIGN.md 4.1), scipy.signal.find_peaks for locating lines.
+Bessel line powers (docs/design.md §5.2), scipy.signal.find_peaks for locating lines.
 """
 
 from __future__ import annotations
@@ -217,7 +217,7 @@ def test_real32_block_matches_ascii_read_of_the_same_sweep(rm, lab):
 
 def test_sweep_matches_bessel_model_for_dispersion_free_spool(rm):
     """Lines read through the OSA match P_k = T [Pa J_k(m)^2 + Pb J_(k-1)(m)^2]
-    (DESIGN.md 4.1, Thompson and Roy 1991) computed here with scipy.special.jv."""
+    (docs/design.md §5.2, Thompson and Roy 1991) computed here with scipy.special.jv."""
     spool = {"name": "FLAT-T1", "length_km": 1.0, "loss_db_per_km": 0.8,
              "gamma_per_w_per_km": 10.0, "dispersion_ps_per_nm_km": 0.0,
              "dispersion_slope_ps_per_nm2_km": 0.0, "reference_wavelength_nm": 1550.0}
@@ -284,7 +284,7 @@ def test_orthogonal_polarisation_suppresses_sidebands(rm, lab):
     s["pol_controller"].write("POL:STOK -1,0,0")        # orthogonal to tone a's (1,0,0)
     assert s["pol_controller"].query("POL:STOK?") == "-1.000000,0.000000,0.000000"
     crossed = first_sideband()
-    assert parallel > -45 and crossed < -70            # DESIGN.md 4.4: (1 + s_a.s_b)/2 = 0
+    assert parallel > -45 and crossed < -70            # docs/design.md §5.5: (1 + s_a.s_b)/2 = 0
     close_all(s)
 
 

@@ -83,7 +83,7 @@ def test_probe_passes_every_check_against_the_virtual_lab(tmp_path, capsys):
 
 
 def test_tone_a_is_the_lower_frequency_whichever_laser_carries_it():
-    """DESIGN.md section 3: tone a is the lower-frequency tone; swapping which laser sits where
+    """docs/design.md §2.1: tone a is the lower-frequency tone; swapping which laser sits where
     gives the same spectrum."""
     state = quiet()
     for laser in state.lasers.values():

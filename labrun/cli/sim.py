@@ -144,7 +144,7 @@ def _check_spectrum_args(args: argparse.Namespace) -> None:
 
 
 def _copolar(pol_angle_deg: float) -> float:
-    """Copolar fraction of two linear polarisations at a physical angle (DESIGN.md 4.4)."""
+    """Copolar fraction of two linear polarisations at a physical angle (docs/design.md §5.5)."""
     from labrun.physics.polarisation import copolar_fraction
 
     two = math.radians(2.0 * pol_angle_deg)  # linear states sit at 2*angle on the Poincare sphere

@@ -1,4 +1,4 @@
-"""Two tones without dispersion: the Bessel (dual-frequency) model of DESIGN.md 4.1.
+"""Two tones without dispersion: the Bessel (dual-frequency) model of docs/design.md §5.2.
 
 Thompson and Roy, Phys. Rev. A 43, 4987 (1991); Boskovic et al., Opt. Lett. 21, 1966 (1996).
 The Kerr phase gamma L_eff |E|^2 of two beating tones carries a cosine at the spacing; the

@@ -1,4 +1,4 @@
-"""Small-signal four-wave mixing with phase mismatch (DESIGN.md 4.2).
+"""Small-signal four-wave mixing with phase mismatch (docs/design.md §5.3).
 
 Shibata, Braun and Waarts, IEEE J. Quantum Electron. 23, 1205 (1987); Inoue, J. Lightwave
 Technol. 10, 1553 (1992). A product at f_F = f_i + f_j - f_k has output power
@@ -30,7 +30,7 @@ def phase_mismatch_per_km(
     dispersion_ps_per_nm_km: ArrayLike,
     slope_ps_per_nm2_km: ArrayLike = 0.0,
 ) -> float | np.ndarray:
-    """Degenerate mismatch (1/km): dbeta = (2 pi l^2/c) d^2 [D + (l^2/c) d S] (DESIGN.md 4.2).
+    """Degenerate mismatch (1/km): dbeta = (2 pi l^2/c) d^2 [D + (l^2/c) d S] (docs/design.md §5.3).
 
     Inoue's degenerate form; l, D and S are taken at one wavelength (pump_wavelength_nm), d is
     signed. The mismatch is set by D at the degenerate pump; the bracket is D moved along the

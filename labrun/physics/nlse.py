@@ -1,4 +1,4 @@
-"""Split-step Fourier solution of the NLSE for CW tone sets (DESIGN.md 4.3).
+"""Split-step Fourier solution of the NLSE for CW tone sets (docs/design.md §5.4).
 
 dA/dz = -(alpha/2) A - i (beta2/2) d2A/dT2 + (beta3/6) d3A/dT3 + i gamma |A|^2 A (Agrawal).
 Tones on the grid f_a + k delta are periodic in time with period 1/delta, so one beat period
@@ -175,7 +175,7 @@ def propagate_tones(
 ) -> NlseResult:
     """Two CW tones (a at wavelength_a_nm, b at f_a + spacing) through the spool.
 
-    beta2, beta3 are taken at tone a from the fibre's D and S. Polarisation (DESIGN.md 4.4):
+    beta2, beta3 are taken at tone a from the fibre's D and S. Polarisation (docs/design.md §5.5):
     tone b is split into its part along tone a (power copolar * P_b) and the orthogonal part;
     only the first beats with tone a, and the Kerr phase of both follows the total intensity, so
     the modulation index scales with sqrt(copolar) and at copolar = 0 nothing beats.

@@ -1,4 +1,6 @@
-"""OSA trace synthesis: lines through a Gaussian RBW filter, floor, ASE, noise (DESIGN.md 4.5).
+"""OSA trace synthesis: lines through a Gaussian RBW filter, floor, ASE and noise.
+
+Model: docs/design.md §5.6 (OSA traces).
 
 An OSA reports power per resolution bandwidth. The RBW filter is modelled as a Gaussian of
 FWHM = RBW with unit peak, so a line narrower than the RBW reads its total power at its peak

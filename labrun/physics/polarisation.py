@@ -1,4 +1,4 @@
-"""Polarisation: the scalar projection model (DESIGN.md 4.4) and a three-paddle controller.
+"""Polarisation: the scalar projection model (docs/design.md §5.5) and a three-paddle controller.
 
 Only the co-polarised part of the two tones beats. With Stokes unit vectors s_a, s_b the
 copolar power fraction of tone b is (1 + s_a . s_b)/2 = cos^2(Theta/2), Theta their angle on the

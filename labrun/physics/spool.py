@@ -1,8 +1,8 @@
 """The spool as the virtual lab and `labrun sim spectrum` see it: launched tones in, lines out.
 
-Picks the model: the Bessel model (DESIGN.md 4.1, exact without dispersion, loss included
+Picks the model: the Bessel model (docs/design.md §5.2, exact without dispersion, loss included
 through L_eff) when the dispersion phase over the spool is negligible, the split-step NLSE
-(4.3) otherwise. Polarisation projection (4.4): only the part of tone b along tone a beats, so
+(§5.4) otherwise. Polarisation projection (§5.5): only the part of tone b along tone a beats, so
 the modulation index scales with sqrt(copolar); the Kerr phase of the total intensity acts on
 both polarisation components (Manakov form). At copolar = 0 nothing beats: no sidebands, tone b
 leaves with loss only. Small-signal sidebands on both sides then scale with copolar.
@@ -21,7 +21,8 @@ from labrun.physics.fibre import Fibre
 from labrun.physics.nlse import propagate_tones
 from labrun.physics.units import dbm_to_w, nm_to_thz, thz_to_nm, w_to_dbm
 
-BESSEL_LIMIT = 1e-3  # |beta2| (2 pi delta)^2 L below this: dispersion negligible (DESIGN.md 4.1)
+# |beta2| (2 pi delta)^2 L below this: dispersion negligible (docs/design.md §5.2)
+BESSEL_LIMIT = 1e-3
 SPOOL_RTOL = 1e-4  # split-step tolerance here: within ~2e-3 dB of a converged run (benchmarks)
 MIN_POWER_DBM = -200.0  # a line with no power at all is reported at this level, never -inf
 MODELS = ("auto", "bessel", "nlse")
@@ -37,7 +38,8 @@ class ModelLine:
     power_dbm: float
 
     def to_dict(self) -> dict[str, Any]:
-        """The DESIGN.md line schema: kind, side, order, freq_thz, wavelength_nm, power_dbm."""
+        """Line schema of docs/design.md §2.1: kind, side, order, freq_thz, wavelength_nm,
+        power_dbm."""
         return {
             "kind": self.line.kind,
             "side": self.line.side,

@@ -1,4 +1,4 @@
-"""Unit conversions used everywhere (DESIGN.md section 4). Pure numpy, no I/O.
+"""Unit conversions used everywhere (docs/design.md §5.1). Pure numpy, no I/O.
 
 c is exact (SI). dBm <-> mW is common practice: P[mW] = 10^(P[dBm]/10).
 """

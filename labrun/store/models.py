@@ -180,7 +180,7 @@ class Trace(Base):
 
 
 class Line(Base):
-    """A tone or sideband found in a trace (DESIGN.md section 3 indexing)."""
+    """A tone or sideband found in a trace (docs/design.md §2.1 indexing)."""
 
     __tablename__ = "lines"
     __table_args__ = (Index("ix_lines_point_kind", "point_id", "kind", "side", "order"),)

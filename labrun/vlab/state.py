@@ -128,7 +128,7 @@ def spool_output(fibre: Fibre, tones: tuple[tuple[float, float], ...], copolar: 
     if abs(f2 - f1) * 1e3 < SAME_LINE_GHZ:
         total = float(mw_to_dbm(dbm_to_mw(p1) + dbm_to_mw(p2)))
         return [(wl1, total - loss_db)]
-    if f2 < f1:  # tone a is the lower frequency (DESIGN.md section 3)
+    if f2 < f1:  # tone a is the lower frequency (docs/design.md §2.1)
         (wl1, p1), (wl2, p2), f1, f2 = (wl2, p2), (wl1, p1), f2, f1
     # Quantised so slow drifts reuse the cached model (0.01 dB, 0.1 pm, 1 MHz: below OSA noise).
     key = (round(wl1, 4), round((f2 - f1) * 1e3, 3), round(p1, 2), round(p2, 2),
