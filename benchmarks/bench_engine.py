@@ -1,45 +1,46 @@
-"""Engine benchmark: labrun's own overhead per point, wall time vs instrument time, memory.
+"""Engine benchmark: labrun against the time the instruments impose and against a plain script.
 
-Prints figures; asserts nothing (speed targets live here, not in the test suite).
+Prints figures; asserts nothing (speed targets live here, not in the test suite). Everything runs
+on the virtual lab served from its own process (``labrun sim serve``), so its CPU is not counted
+as labrun's.
 
-1. Overhead per point at time scale 0 with 20,001-sample traces: wall time per point minus the
-   time the (in-process) virtual lab spends executing commands, i.e. commands, transfer,
-   parsing, reduction and the commit. Target <= 5 ms. Also printed: labrun's own CPU time per
-   point (process time, the unambiguous "own time") and the served lab's CPU time per point
-   (its command execution plus its socket handling), and wall minus that. The machine's speed
-   drifts, so the run is repeated and the best and the median repeat are shown.
-2. Wall time vs instrument-imposed time at a realistic time scale (1.0): imposed = time the
-   instruments take to answer (sweeps, *OPC? waits) + settle times the profiles and the plan
-   require. Target <= 1.03x.
+1. Time scale 1 (realistic): a zipped power sweep (10 points, 0.3 s plan settle). The imposed
+   time is computed here, independently of labrun's waits: per point, the longest settle time of
+   what moved (the larger of the profile's, read from the driver files, and the plan's) plus the
+   OSA sweep time of the virtual lab's own model (``vlab.state.sweep_time_s``), both x the time
+   scale. Printed: a minimal plain pyvisa script (``plain_pyvisa.py``: the same points, the same
+   setting commands, binary trace, ``*OPC?`` for each sweep, a CSV row per point) and labrun,
+   each as a ratio to the imposed time. Target: labrun's point loop <= 1.03x imposed.
+2. Time scale 0, 20,001-sample traces: labrun's time per point against the plain script's on the
+   same points (best and median of repeats; the machine's speed drifts). Target <= 0.8x.
 3. Memory over many points: labrun's resident set size and traced Python heap, sampled as
-   points are stored, with the virtual lab in its own process (an in-process lab's server
-   threads and trace synthesis used to be counted as labrun's growth). Target: flat.
+   points are stored. Target: flat.
 
-    python benchmarks/bench_engine.py [--points 200] [--repeats 5] [--memory-points 2000]
-                                      [--realistic 6]
+    python benchmarks/bench_engine.py [--points 10] [--settle 0.3] [--fast-points 200]
+                                      [--repeats 5] [--memory-points 2000]
 """
 
 from __future__ import annotations
 
 import argparse
-import functools
 import statistics
 import subprocess
 import sys
 import tempfile
 import time
-from collections.abc import Callable
+import tomllib
 from pathlib import Path
 from typing import Any
 
-import labrun.reduce
+import plain_pyvisa
+from plain_pyvisa import Step
+
+from labrun import safety
 from labrun.bench import load_bench
 from labrun.engine import Runner, run_plan
-from labrun.instruments.base import Adapter
 from labrun.plan import load_plan
-from labrun.scpi import ScpiSession
 from labrun.store import Store, open_store
-from labrun.vlab.lab import VirtualLab
+from labrun.vlab.state import sweep_time_s
 
 PLAN = """[plan]
 name = "benchmark sweep"
@@ -68,37 +69,6 @@ points = {samples}
 """
 
 
-class Meter:
-    """Accumulates seconds spent inside wrapped callables, by label."""
-
-    def __init__(self) -> None:
-        self.seconds: dict[str, float] = {}
-        self.calls: dict[str, int] = {}
-        self._undo: list[Callable[[], None]] = []
-
-    def wrap(self, owner: Any, name: str, label: str) -> None:
-        """Time every call of owner.name (a module, class or instance attribute)."""
-        original = getattr(owner, name)
-
-        @functools.wraps(original)
-        def timed(*args: Any, **kwargs: Any) -> Any:
-            t0 = time.perf_counter()
-            try:
-                return original(*args, **kwargs)
-            finally:
-                self.seconds[label] = self.seconds.get(label, 0.0) + time.perf_counter() - t0
-                self.calls[label] = self.calls.get(label, 0) + 1
-
-        setattr(owner, name, timed)
-        self._undo.append(lambda: setattr(owner, name, original))
-
-    def restore(self) -> None:
-        """Undo every wrap."""
-        for undo in reversed(self._undo):
-            undo()
-        self._undo.clear()
-
-
 def _axis(n: int) -> str:
     """n distinct powers from -6 to 4 dBm (invented)."""
     vals = ", ".join(f"{-6.0 + 10.0 * i / max(n - 1, 1):.4f}" for i in range(n))
@@ -113,25 +83,6 @@ def _plan_text(n: int, samples: int, settle: float) -> str:
         raise SystemExit(f"{n} points: use a multiple of {repeats}")
     return PLAN.format(axis=_axis(n // repeats), samples=samples, settle=settle,
                        repeats=repeats)
-
-
-def _run(folder: Path, lab: VirtualLab, n: int, samples: int, settle: float,
-         meter: Meter) -> tuple[float, int]:
-    """One unattended run; (wall seconds of run_plan, points stored)."""
-    plan_path = folder / f"plan-{n}-{samples}.toml"
-    plan_path.write_text(_plan_text(n, samples, settle))
-    bench = load_bench(lab.write_bench(folder / "bench.toml"))
-    store = open_store(folder / f"bench-{time.monotonic_ns()}.db")
-    for inst in lab.instruments.values():  # instrument time: the lab executing commands
-        meter.wrap(inst, "execute", "instrument")
-    t0 = time.perf_counter()
-    out = run_plan(load_plan(plan_path), bench, store, operator="benchmark", unattended=True,
-                   ack_safety=True, progress=False)
-    wall = time.perf_counter() - t0
-    store.close()
-    if out.status != "completed":
-        raise SystemExit(f"benchmark run ended {out.status}: {out.reason}")
-    return wall, out.points_done
 
 
 def _serve(folder: Path, time_scale: float) -> tuple[subprocess.Popen, Path]:
@@ -150,87 +101,10 @@ def _serve(folder: Path, time_scale: float) -> tuple[subprocess.Popen, Path]:
     return proc, bench
 
 
-def _lab_time_per_point(samples: int, n: int = 50) -> float:
-    """Seconds the virtual lab itself spends per point (sweep + REAL,32 y block + the setting
-    commands), measured by calling its command interpreter directly, without sockets."""
-    with VirtualLab("default-scenario.toml", time_scale=0.0) as lab:
-        osa, att = lab.instruments["osa"], lab.instruments["attenuator_a"]
-        for cmd in ("FORM:DATA REAL,32", "FORM:BORD SWAP", "SENS:WAV:CENT 1549.6",
-                    "SENS:WAV:SPAN 4.0", "SENS:BAND:RES 0.02", f"SENS:SWE:POIN {samples}"):
-            osa.execute(cmd)
-        for role in ("laser_a", "laser_b"):
-            lab.instruments[role].execute("OUTP:STAT ON")
-        t0 = time.perf_counter()
-        for i in range(n):
-            att.execute(f"INP:ATT {10 + i * 0.01:.3f}")
-            osa.execute("INIT:IMM")
-            osa.execute("*OPC?")
-            osa.execute("TRAC:DATA:Y?")
-        return (time.perf_counter() - t0) / n
-
-
-def _cpu_s(pid: int) -> float | None:
-    """User + system CPU seconds of another process (Linux /proc; None elsewhere)."""
-    import os
-
-    try:
-        with open(f"/proc/{pid}/stat") as fh:
-            fields = fh.read().rsplit(")", 1)[1].split()
-        return (int(fields[11]) + int(fields[12])) / os.sysconf("SC_CLK_TCK")
-    except (OSError, IndexError, ValueError):
-        return None
-
-
-def overhead(folder: Path, n: int, repeats: int = 5) -> None:
-    """Figure 1: labrun's own time per point at time scale 0, 20,001-sample traces."""
-    meter = Meter()
-    meter.wrap(labrun.reduce, "reduce_trace", "reduction")
-    meter.wrap(Store, "add_point", "commit")
-    meter.wrap(ScpiSession, "_read_block", "trace_read")  # block transfer and decoding
-    proc, bench = _serve(folder, 0.0)
-    rows: list[tuple[float, float, float | None, dict[str, float]]] = []
-    try:
-        _run_bench(folder, bench, 3, 20001, Meter())  # warm-up
-        for _ in range(max(1, repeats)):
-            meter.seconds.clear()
-            cpu0, lab0 = time.process_time(), _cpu_s(proc.pid)
-            wall, done = _run_bench(folder, bench, n, 20001, meter)
-            cpu, lab1 = time.process_time() - cpu0, _cpu_s(proc.pid)
-            served = None if lab0 is None or lab1 is None else (lab1 - lab0) / done
-            rows.append((wall / done, cpu / done, served,
-                         {k: v / done for k, v in meter.seconds.items()}))
-    finally:
-        meter.restore()
-        proc.terminate()
-        proc.wait(timeout=30)
-    lab = _lab_time_per_point(20001)
-    rows.sort(key=lambda r: r[0])
-    print(f"[1] time scale 0, 20,001-sample traces, {n} points x {len(rows)} repeats, virtual lab "
-          "in its own process (best repeat | median repeat)")
-
-    def show(label: str, values: list[float | None], note: str = "") -> None:
-        got = [v for v in values if v is not None]
-        if got:
-            print(f"    {label:<30}{1e3 * got[0]:7.2f} |{1e3 * statistics.median(got):6.2f} ms"
-                  f"{note}")
-
-    show("wall per point", [r[0] for r in rows], "  (run_plan total / points)")
-    print(f"    virtual lab's own work        {1e3 * lab:7.2f} ms (sweep synthesis, y block; "
-          "measured without sockets)")
-    show("labrun overhead per point", [r[0] - lab for r in rows], "  (target <= 5 ms)")
-    for label in ("trace_read", "reduction", "commit"):
-        show(f"  of which {label}", [r[3].get(label, 0.0) for r in rows])
-    show("labrun CPU time per point", [r[1] for r in rows], "  (process time: labrun's own work)")
-    show("served lab CPU per point", [r[2] for r in rows], "  (commands + its socket handling)")
-    if all(r[2] is not None for r in rows):
-        show("wall minus served lab CPU", [r[0] - r[2] for r in rows])  # type: ignore[operator]
-
-
 def _run_bench(folder: Path, bench_path: Path, n: int, samples: int,
-               meter: Meter) -> tuple[float, int]:
+               settle: float) -> tuple[float, int]:
     """One unattended run on a served bench; (wall seconds of run_plan, points stored)."""
-    plan_path = folder / f"plan-{n}-{samples}.toml"
-    plan_path.write_text(_plan_text(n, samples, 0.0))
+    plan_path = _write_plan(folder, n, samples, settle)
     store = open_store(folder / f"bench-{time.monotonic_ns()}.db")
     t0 = time.perf_counter()
     out = run_plan(load_plan(plan_path), load_bench(bench_path), store, operator="benchmark",
@@ -242,23 +116,197 @@ def _run_bench(folder: Path, bench_path: Path, n: int, samples: int,
     return wall, out.points_done
 
 
-def realistic(folder: Path, n: int, time_scale: float) -> None:
-    """Figure 2: wall time against the time the instruments and settle times impose."""
-    meter = Meter()
-    meter.wrap(Adapter, "settle", "settle")  # profile settle times (sleeps in the adapters)
-    meter.wrap(Runner, "wait_until", "plan_settle")  # plan axis settle times
+# ------------------------------------------------------------------------------------------------
+# the independent yardsticks: imposed time and the plain script's command table
+# ------------------------------------------------------------------------------------------------
+DRIVERS = Path(__file__).resolve().parents[1] / "drivers"
+POWER_OPS = {("laser_a", "set_power_dbm"), ("laser_b", "set_power_dbm"),
+             ("attenuator_a", "set_attenuation_db"), ("attenuator_b", "set_attenuation_db")}
+
+
+def _driver_ops(bench_path: Path) -> dict[str, dict[str, dict[str, Any]]]:
+    """Operations of each role's profile, read straight from the driver TOML files."""
+    bench = tomllib.loads(bench_path.read_text())
+    return {role: tomllib.loads((DRIVERS / f"{spec['profile']}.toml").read_text())["operations"]
+            for role, spec in bench["instruments"].items()}
+
+
+def _settings(setpoint: dict[str, Any], bench: Any) -> list[tuple[str, str, Any, int | None]]:
+    """(role, operation, value, index) of every setting a point needs. The values (laser
+    levels, attenuations) come from labrun's calibration arithmetic, so both sides send the same
+    commands; the timing below does not use labrun."""
+    got = safety.instrument_settings(setpoint, bench)
+    out: list[tuple[str, str, Any, int | None]] = [
+        ("laser_a", "set_wavelength_nm", got.wavelength_a_nm, None),
+        ("laser_b", "set_wavelength_nm", got.wavelength_b_nm, None),
+        ("attenuator_a", "set_wavelength_nm", got.wavelength_a_nm, None),
+        ("attenuator_b", "set_wavelength_nm", got.wavelength_b_nm, None),
+        ("laser_a", "set_power_dbm", got.laser_a_dbm, None),
+        ("laser_b", "set_power_dbm", got.laser_b_dbm, None),
+        ("attenuator_a", "set_attenuation_db", got.attenuation_a_db, None),
+        ("attenuator_b", "set_attenuation_db", got.attenuation_b_db, None),
+    ]
+    for i, angle in enumerate(setpoint.get("pol_angles_deg") or (), start=1):
+        out.append(("pol_controller", "set_angle_deg", angle, i))
+    return out
+
+
+def yardsticks(plan: Any, bench: Any, bench_path: Path, time_scale: float, plan_settle: float
+               ) -> tuple[dict[str, list[str]], list[Step], list[float], dict[str, str]]:
+    """The plain script's set-up and points, and the imposed seconds of each point.
+
+    Imposed per point = time_scale x (longest settle of what moved, the larger of the profile's
+    and the plan's for each setting, + the virtual lab's OSA sweep time).
+    """
+    ops = _driver_ops(bench_path)
+    osa_ops = ops["osa"]
+    osa = plan.osa_settings(bench)
+    setup = {"osa": [osa_ops["set_center_nm"]["command"].format(value=osa.center_nm),
+                     osa_ops["set_span_nm"]["command"].format(value=osa.span_nm),
+                     osa_ops["set_rbw_nm"]["command"].format(value=osa.rbw_nm),
+                     osa_ops["set_points"]["command"].format(value=int(osa.points)),
+                     "FORM:DATA REAL,32", "FORM:BORD SWAP"]}
+    first_settle = 0.0
+    if "switch" in ops:
+        setup["switch"] = [ops["switch"]["set_path"]["command"].format(value=1)]
+        first_settle = float(ops["switch"]["set_path"].get("settle_s", 0.0))
+    sweep_s = sweep_time_s(osa.span_nm, osa.rbw_nm, int(osa.points))
+    steps: list[Step] = []
+    imposed: list[float] = []
+    last: dict[tuple[str, str, int | None], Any] = {}
+    for n, spec in enumerate(plan.points()):
+        commands: dict[str, list[str]] = {}
+        settle = first_settle if n == 0 else 0.0
+        for role, name, value, index in _settings(spec.setpoint, bench):
+            if last.get((role, name, index)) == value:
+                continue
+            last[(role, name, index)] = value
+            op = ops[role][name]
+            fields = {"value": value} if index is None else {"value": value, "index": index}
+            commands.setdefault(role, []).append(op["command"].format(**fields))
+            plan_s = plan_settle if (role, name) in POWER_OPS else 0.0
+            settle = max(settle, float(op.get("settle_s", 0.0)), plan_s)
+        if n == 0:  # the sources are switched on at the first point
+            settle = max([settle] + [float(ops[r]["output_on"].get("settle_s", 0.0))
+                                     for r in ("laser_a", "laser_b", "attenuator_a",
+                                               "attenuator_b")])
+        steps.append(Step(commands, settle * time_scale,
+                          [spec.setpoint.get("power_a_dbm"), spec.setpoint.get("power_b_dbm")]))
+        imposed.append((settle + sweep_s) * time_scale)
+    osa_cmds = {"sweep": osa_ops["sweep"]["command"], "trace_y": osa_ops["read_trace_y"]["query"]}
+    return setup, steps, imposed, osa_cmds
+
+
+def _resources(bench_path: Path) -> dict[str, str]:
+    """role -> VISA resource of a served bench file."""
+    return {role: spec["resource"]
+            for role, spec in tomllib.loads(bench_path.read_text())["instruments"].items()}
+
+
+def plain(folder: Path, time_scale: float, n: int, samples: int, settle: float
+          ) -> tuple[float, list[float], list[float]]:
+    """The plain script on a fresh served lab: (loop seconds, seconds per point, imposed per
+    point)."""
+    proc, bench_path = _serve(folder, time_scale)
     try:
-        with VirtualLab("default-scenario.toml", time_scale=time_scale) as lab:
-            wall, done = _run(folder, lab, n, 20001, 0.3, meter)
+        plan = load_plan(_write_plan(folder, n, samples, settle))
+        setup, steps, imposed, osa = yardsticks(plan, load_bench(bench_path), bench_path,
+                                                time_scale, settle)
+        total, per_point = plain_pyvisa.run(_resources(bench_path), setup, steps, folder,
+                                            sweep=osa["sweep"], trace_y=osa["trace_y"])
     finally:
-        meter.restore()
-    imposed = sum(meter.seconds.get(k, 0.0) for k in ("instrument", "settle", "plan_settle"))
-    print(f"[2] time scale {time_scale:g}, {done} points, 0.3 s plan settle per power step")
-    print(f"    wall {wall:8.2f} s, instrument-imposed {imposed:8.2f} s "
-          f"(instruments {meter.seconds.get('instrument', 0.0):.2f} s, profile settles "
-          f"{meter.seconds.get('settle', 0.0):.2f} s, plan settles "
-          f"{meter.seconds.get('plan_settle', 0.0):.2f} s)")
-    print(f"    ratio {wall / imposed:8.4f}x   (target <= 1.03x)")
+        proc.terminate()
+        proc.wait(timeout=30)
+    return total, per_point, imposed
+
+
+def _write_plan(folder: Path, n: int, samples: int, settle: float) -> Path:
+    """The benchmark plan file."""
+    path = folder / f"plan-{n}-{samples}-{settle:g}.toml"
+    path.write_text(_plan_text(n, samples, settle))
+    return path
+
+
+class LoopClock:
+    """Times labrun's point loop (Runner.run_points) and when each point was stored."""
+
+    def __init__(self) -> None:
+        self.loop_start = 0.0
+        self.stored: list[float] = []
+        original_run, original_add = Runner.run_points, Store.add_point
+        clock = self
+
+        def run_points(runner: Runner, *args: Any, **kwargs: Any) -> int:
+            clock.loop_start = time.perf_counter()
+            return original_run(runner, *args, **kwargs)
+
+        def add_point(store: Store, *args: Any, **kwargs: Any) -> int:
+            out = original_add(store, *args, **kwargs)
+            clock.stored.append(time.perf_counter())
+            return out
+
+        Runner.run_points = run_points  # type: ignore[method-assign]
+        Store.add_point = add_point  # type: ignore[method-assign]
+        self._undo = (original_run, original_add)
+
+    def restore(self) -> None:
+        """Undo the hooks."""
+        Runner.run_points, Store.add_point = self._undo  # type: ignore[method-assign]
+
+    @property
+    def loop_s(self) -> float:
+        """From the loop's start to the last point stored (the last commit included)."""
+        return self.stored[-1] - self.loop_start if self.stored else 0.0
+
+
+def labrun_run(folder: Path, time_scale: float, n: int, samples: int, settle: float
+               ) -> tuple[float, float, list[float]]:
+    """labrun on a fresh served lab: (start-to-exit seconds of run_plan, point-loop seconds,
+    seconds per point)."""
+    proc, bench_path = _serve(folder, time_scale)
+    clock = LoopClock()
+    try:
+        wall, _ = _run_bench(folder, bench_path, n, samples, settle)
+    finally:
+        clock.restore()
+        proc.terminate()
+        proc.wait(timeout=30)
+    marks = [clock.loop_start, *clock.stored]
+    return wall, clock.loop_s, [b - a for a, b in zip(marks, marks[1:], strict=False)]
+
+
+def realistic(folder: Path, n: int, time_scale: float, settle: float) -> None:
+    """Figure 1: plain script and labrun against the imposed time, at a realistic time scale."""
+    p_total, p_points, imposed = plain(folder, time_scale, n, 20001, settle)
+    wall, loop, l_points = labrun_run(folder, time_scale, n, 20001, settle)
+    total = sum(imposed)
+    print(f"[1] time scale {time_scale:g}, {n} points, 20,001 samples, {settle:g} s plan settle "
+          "per power step; imposed = longest settle of what moved + the lab's OSA sweep time")
+    print(f"    imposed         {total:8.3f} s  (first point {imposed[0]:.3f} s, then "
+          f"{statistics.mean(imposed[1:]) if len(imposed) > 1 else 0:.3f} s per point)")
+    print(f"    plain script    {p_total:8.3f} s  ratio {p_total / total:6.3f}x  (first point "
+          f"{p_points[0]:.3f} s)")
+    print(f"    labrun loop     {loop:8.3f} s  ratio {loop / total:6.3f}x  (first point "
+          f"{l_points[0]:.3f} s)   target <= 1.03x")
+    print(f"    labrun run_plan {wall:8.3f} s  ratio {wall / total:6.3f}x  (start to exit: "
+          f"fixed start-up {wall - loop:.3f} s)")
+
+
+def overhead(folder: Path, n: int, repeats: int = 5) -> None:
+    """Figure 2: labrun's time per point against the plain script's at time scale 0."""
+    rows: list[tuple[float, float]] = []
+    for _ in range(max(1, repeats)):
+        _, p_points, _ = plain(folder, 0.0, n, 20001, 0.0)
+        _, loop, _ = labrun_run(folder, 0.0, n, 20001, 0.0)
+        rows.append((statistics.mean(p_points[1:]), loop / n))
+    print(f"[2] time scale 0, 20,001-sample traces, {n} points x {len(rows)} repeats "
+          "(best repeat | median repeat)")
+    for label, k in (("plain script per point", 0), ("labrun per point", 1)):
+        vals = sorted(r[k] for r in rows)
+        print(f"    {label:<26}{1e3 * vals[0]:7.2f} |{1e3 * statistics.median(vals):6.2f} ms")
+    ratios = sorted(r[1] / r[0] for r in rows)
+    print(f"    labrun / plain            {ratios[0]:7.3f} |{statistics.median(ratios):6.3f} x"
+          "   target <= 0.8x")
 
 
 def _rss_mib(pid: int | str = "self") -> float:
@@ -303,7 +351,7 @@ def memory(folder: Path, n: int, samples: int) -> None:
     tracemalloc.start()
     try:
         t0 = time.perf_counter()
-        _run_bench(folder, bench, n, samples, Meter())
+        _run_bench(folder, bench, n, samples, 0.0)
         wall = time.perf_counter() - t0
     finally:
         tracemalloc.stop()
@@ -323,21 +371,23 @@ def memory(folder: Path, n: int, samples: int) -> None:
 
 
 def main() -> None:
-    """Run the three figures."""
+    """Run the figures."""
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    ap.add_argument("--points", type=int, default=200, help="points for figure 1")
-    ap.add_argument("--repeats", type=int, default=5, help="repeats of figure 1")
-    ap.add_argument("--realistic", type=int, default=6, help="points for figure 2")
-    ap.add_argument("--time-scale", type=float, default=1.0, help="time scale of figure 2")
+    ap.add_argument("--points", type=int, default=10, help="points for figure 1")
+    ap.add_argument("--settle", type=float, default=0.3, help="plan settle (s), figure 1")
+    ap.add_argument("--time-scale", type=float, default=1.0, help="time scale of figure 1")
+    ap.add_argument("--fast-points", type=int, default=200, help="points for figure 2")
+    ap.add_argument("--repeats", type=int, default=5, help="repeats of figure 2")
     ap.add_argument("--memory-points", type=int, default=2000, help="points for figure 3 "
-                    "(the issue's 20,000 takes several minutes)")
+                    "(0 skips it; the issue's 20,000 takes several minutes)")
     ap.add_argument("--memory-samples", type=int, default=20001, help="trace samples, figure 3")
     args = ap.parse_args()
     with tempfile.TemporaryDirectory() as tmp:
         folder = Path(tmp)
-        overhead(folder, args.points, args.repeats)
-        realistic(folder, args.realistic, args.time_scale)
-        memory(folder, args.memory_points, args.memory_samples)
+        realistic(folder, args.points, args.time_scale, args.settle)
+        overhead(folder, args.fast_points, args.repeats)
+        if args.memory_points:
+            memory(folder, args.memory_points, args.memory_samples)
 
 
 if __name__ == "__main__":
