@@ -3,12 +3,17 @@
 Each module in ``labrun.cli`` listed in COMMAND_MODULES exposes ``register(subparsers)``, which adds
 its sub-commands and sets ``func`` (called with the parsed namespace, returns an exit code).
 Errors that labrun raises on purpose become one line on stderr and their exit code; no traceback.
+A reader that closes the pipe early (``labrun status --json | head -1``) is a normal end: the
+command stops writing and exits quietly with 141 (128 + SIGPIPE, what a shell tool killed by the
+signal reports).
 """
 
 from __future__ import annotations
 
 import argparse
 import importlib
+import os
+import signal
 import sys
 from collections.abc import Sequence
 
@@ -18,6 +23,7 @@ from labrun.errors import LabrunError
 # Command groups, each in its own module (labrun/cli/<name>.py). A module that does not exist yet
 # is skipped so the tree can grow one group at a time.
 COMMAND_MODULES = ("demo", "probe", "sim", "analyze", "check", "run", "status", "off")
+EXIT_BROKEN_PIPE = 128 + int(signal.SIGPIPE)  # 141
 
 
 class _Parser(argparse.ArgumentParser):
@@ -53,7 +59,31 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 def main(argv: Sequence[str] | None = None) -> int:
-    """Run one labrun command; returns the process exit code."""
+    """Run one labrun command; returns the process exit code (141 when stdout's reader left)."""
+    try:
+        try:
+            return _main(argv)
+        finally:  # also after --help or --version (SystemExit): output still in the buffer
+            sys.stdout.flush()
+    except BrokenPipeError:
+        _silence_stdout()
+        return EXIT_BROKEN_PIPE
+
+
+def _silence_stdout() -> None:
+    """Point stdout at /dev/null so the interpreter's final flush does not fail a second time
+    (the recipe of the Python documentation's note on SIGPIPE)."""
+    devnull = os.open(os.devnull, os.O_WRONLY)
+    try:
+        os.dup2(devnull, sys.stdout.fileno())
+    except (OSError, ValueError):  # stdout replaced by an object without a file descriptor
+        pass
+    finally:
+        os.close(devnull)
+
+
+def _main(argv: Sequence[str] | None) -> int:
+    """Parse the arguments and run the command's function; labrun's own errors become one line."""
     parser = build_parser()
     args = parser.parse_args(argv)
     if args.verbose:
