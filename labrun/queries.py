@@ -58,10 +58,5 @@ def point_trace(store: Store, point_id: int, kind: str = "output") -> tuple[np.n
                        ).scalars().first()
         if tr is None:
             raise InputError(f"point {point_id} has no {kind} trace", field="point")
-        if tr.x_data is None:
-            x = np.linspace(tr.x_start, tr.x_stop, tr.n)
-        else:
-            x = np.frombuffer(tr.x_data, dtype="<f8").copy()
-        y = np.frombuffer(tr.y_data, dtype="<f4").astype(np.float64)
-        return x, y, tr.rbw_nm
+        return tr.x(), tr.y(), tr.rbw_nm
 

@@ -137,3 +137,57 @@ def inst_free_port() -> Iterator[int]:
     with socket.socket() as s:
         s.bind(("127.0.0.1", 0))
         yield s.getsockname()[1]
+
+
+# ----- databases: SQLite always, PostgreSQL when .ci/run (or you) started one ---------------------
+# LABRUN_TEST_PG_URL names a PostgreSQL database the tests may use (each test gets its own schema,
+# dropped afterwards). Without it the PostgreSQL variants are skipped, except under CI=true, where a
+# missing server is a failure (a green CI must have run them).
+PG_ENV = "LABRUN_TEST_PG_URL"
+
+
+def pg_base_url() -> str:
+    """The PostgreSQL URL given to the tests; skips (or fails under CI=true) when there is none."""
+    import os
+
+    url = os.environ.get(PG_ENV, "")
+    if not url:
+        if os.environ.get("CI", "").lower() == "true":
+            pytest.fail(f"{PG_ENV} is not set: CI must run the PostgreSQL tests (.ci/run starts "
+                        "a server)", pytrace=False)
+        pytest.skip(f"no PostgreSQL server ({PG_ENV} not set; .ci/run starts one)")
+    return url
+
+
+@pytest.fixture
+def pg_url(request: pytest.FixtureRequest) -> Iterator[str]:
+    """A SQLAlchemy URL of a fresh, empty PostgreSQL schema (search_path), dropped afterwards."""
+    import uuid
+
+    from sqlalchemy import create_engine, text
+    from sqlalchemy.engine import make_url
+
+    base = pg_base_url()
+    name = f"t_{uuid.uuid4().hex[:12]}"
+    admin = create_engine(base)
+    try:
+        with admin.begin() as conn:
+            conn.execute(text(f'CREATE SCHEMA "{name}"'))
+    except Exception as exc:  # noqa: BLE001 - any failure to reach the server fails the test
+        admin.dispose()
+        pytest.fail(f"PostgreSQL at {base} is not usable: {exc}", pytrace=False)
+    url = make_url(base).update_query_dict({"options": f"-csearch_path={name}"})
+    try:
+        yield url.render_as_string(hide_password=False)
+    finally:
+        with admin.begin() as conn:
+            conn.execute(text(f'DROP SCHEMA "{name}" CASCADE'))
+        admin.dispose()
+
+
+@pytest.fixture(params=["sqlite", "postgresql"])
+def db_url(request: pytest.FixtureRequest, tmp_path: Path) -> str:
+    """A fresh run-store location on each backend: a SQLite file path, or a PostgreSQL URL."""
+    if request.param == "sqlite":
+        return str(tmp_path / "runs.db")
+    return request.getfixturevalue("pg_url")

@@ -247,11 +247,12 @@ def test_input_errors_are_one_line(tmp_path, lab, capsys):
 
 
 def test_trace_bytes_match_what_the_osa_sent(tmp_path, lab):
-    """The stored y is the OSA's REAL,32 data (IEEE 488.2 block of IEEE 754 binary32)."""
+    """The stored y is the OSA's REAL,32 data (IEEE 488.2 block of IEEE 754 binary32), kept
+    within the store's 0.001 dB quantum."""
     _, store, out = _run(tmp_path, lab, powers=[1.0])
     with store.session() as s:
         tr = s.scalars(select(Trace)).one()
-        y32 = np.frombuffer(tr.y_data, dtype="<f4")
+        y32 = tr.y()
         assert np.isfinite(y32).all() and y32.max() > -10.0  # a tone is in the trace
         tone = s.scalars(select(Line).where(Line.kind == "tone", Line.side == "low")).one()
         # The reduced tone power sits within 0.1 dB of the trace maximum near it (common

@@ -42,3 +42,7 @@ def test_wheel_carries_data_folders(tmp_path: Path) -> None:
         for name in shipped:
             assert f"labrun/{data_dir}/{name}" in names, f"{data_dir}/{name} missing from wheel"
     assert "labrun/drivers/generic-laser.toml" in names
+    # the schema migrations travel too: an installed labrun must upgrade an old store
+    assert "labrun/store/migrations/env.py" in names
+    assert "labrun/store/migrations/script.py.mako" in names
+    assert "labrun/store/migrations/versions/0001_baseline.py" in names

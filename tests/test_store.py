@@ -5,6 +5,7 @@ from __future__ import annotations
 import struct
 import subprocess
 import sys
+import zlib
 
 import numpy as np
 import pytest
@@ -28,7 +29,15 @@ def _line(kind="tone", side="low", order=0, power=-3.0, **kw):
 
 
 @pytest.fixture()
-def store(tmp_path):
+def store(db_url):
+    """A new store on each backend (SQLite file; PostgreSQL schema when a server is given)."""
+    s = open_store(db_url)
+    yield s
+    s.close()
+
+
+@pytest.fixture()
+def sqlite_store(tmp_path):
     s = open_store(tmp_path / "runs.db")
     yield s
     s.close()
@@ -41,15 +50,29 @@ def test_path_becomes_sqlite_url_and_urls_pass(tmp_path):
         store_url(tmp_path / "missing-folder" / "a.db")
 
 
-def test_sqlite_pragmas(store):
+def test_sqlite_pragmas(sqlite_store):
     # journal_mode=wal, foreign_keys=1: SQLite documentation, "PRAGMA Statements".
-    with store.engine.connect() as conn:
+    with sqlite_store.engine.connect() as conn:
         assert conn.exec_driver_sql("PRAGMA journal_mode").scalar() == "wal"
         assert conn.exec_driver_sql("PRAGMA foreign_keys").scalar() == 1
         assert conn.exec_driver_sql("PRAGMA busy_timeout").scalar() >= 5000
 
 
-def test_trace_is_float32_bytes_and_linear_x_is_three_numbers(store):
+def _decode_mdb_dz1(blob: bytes, n: int) -> list[float]:
+    """The documented mdb-dz1 layout decoded with Python's zlib and struct modules only: inflate,
+    four byte planes of n bytes each, little-endian uint32 zigzag (n >> 1 ^ -(n & 1)), running
+    sum of the differences, thousandths of a dB."""
+    raw = zlib.decompress(blob)
+    assert len(raw) == 4 * n
+    total, out = 0, []
+    for i in range(n):
+        z = struct.unpack("<I", bytes(raw[j * n + i] for j in range(4)))[0]
+        total += (z >> 1) ^ -(z & 1)
+        out.append(total / 1000)
+    return out
+
+
+def test_trace_is_compact_and_linear_x_is_three_numbers(store):
     run_id = _run(store)
     x = np.linspace(1549.0, 1556.0, 20001)
     y = np.random.default_rng(1).normal(-50.0, 5.0, x.size)
@@ -58,13 +81,27 @@ def test_trace_is_float32_bytes_and_linear_x_is_three_numbers(store):
     with store.session() as s:
         tr = s.scalars(select(Trace)).one()
         assert tr.x_data is None and tr.n == x.size
-        assert len(tr.y_data) == 4 * x.size
-        # IEEE 754 binary32, little-endian, decoded independently with Python's struct module.
-        first = struct.unpack("<f", tr.y_data[:4])[0]
-        assert first == pytest.approx(y[0], rel=1e-6)
+        assert tr.encoding == "mdb-dz1"
+        # white noise of 5 dB rms is the worst case for delta coding: still under 2 B/sample
+        assert len(tr.y_data) < 2.0 * x.size
         np.testing.assert_allclose(tr.x(), x, rtol=0, atol=1e-9)
-        # float32 keeps ~7 significant digits (IEEE 754: 24-bit significand).
-        np.testing.assert_allclose(tr.y(), y, rtol=2**-23)
+        assert np.max(np.abs(tr.y() - y)) <= 0.0005 + 1e-9  # half the 0.001 dB quantum
+        independent = _decode_mdb_dz1(tr.y_data, tr.n)
+        np.testing.assert_allclose(independent, y, rtol=0, atol=5e-4 + 1e-9)
+
+
+def test_old_float32_rows_stay_readable(store):
+    """A trace row written by labrun 0.1.0 (float32 bytes, encoding column filled "f32" by the
+    migration) decodes as IEEE 754 binary32 (checked with Python's struct module)."""
+    run_id = _run(store)
+    y = np.array([-60.25, -3.5, 0.125, -75.125])
+    store.add_point(run_id, key="p0", index=0, setpoint={}, traces=[TraceData(y, y)], lines=[])
+    blob = struct.pack("<4f", *y)
+    with store.engine.begin() as conn:
+        conn.execute(Trace.__table__.update().values(y_data=blob, encoding="f32"))
+    with store.session() as s:
+        tr = s.scalars(select(Trace)).one()
+        np.testing.assert_array_equal(tr.y(), y)  # all four exact in binary32
 
 
 @pytest.mark.parametrize("widened", [False, True])

@@ -136,7 +136,7 @@ def cmd_resume(args: argparse.Namespace) -> int:
 
     check_unattended(args)
     bench = load_bench(args.bench) if args.bench else None
-    store = open_existing_store(args.db)  # a run to resume must already be stored
+    store = open_existing_store(args.db, upgrade=True)  # a run to resume must be stored
     try:
         traffic_log = open_traffic_log(args, append=True)
         try:

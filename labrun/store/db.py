@@ -33,8 +33,9 @@ from sqlalchemy.exc import ArgumentError, SQLAlchemyError
 from sqlalchemy.orm import Session, sessionmaker
 
 from labrun.errors import InputError
-from labrun.store import DEFAULT_DB
+from labrun.store import DEFAULT_DB, schema
 from labrun.store.models import Base, Event, Line, Point, Run, Spool, Trace, utcnow
+from labrun.store.tracecodec import encode_y
 
 BUSY_TIMEOUT_MS = 15_000  # a reader or writer waits this long for a lock before failing
 
@@ -103,11 +104,6 @@ def encode_x(x: np.ndarray) -> tuple[float, float, int, bytes | None]:
     return start, stop, n, xs.astype("<f8").tobytes()
 
 
-def encode_y(y: np.ndarray) -> bytes:
-    """y as little-endian float32 bytes: 4 bytes a sample, ~7 significant digits (ample for dBm)."""
-    return np.asarray(y, dtype="<f4").tobytes()
-
-
 class Store:
     """A handle on one run database: engine, sessions and the engine's write operations."""
 
@@ -115,6 +111,7 @@ class Store:
         self.engine = engine
         self.url = engine.url.render_as_string(hide_password=True)
         self.sessions = sessionmaker(engine, expire_on_commit=False)
+        self.upgraded_from: str | None = None  # schema revision before opening upgraded it
 
     @contextmanager
     def session(self) -> Iterator[Session]:
@@ -253,10 +250,12 @@ class Store:
             trace_ids = []
             for tr in traces:
                 x_start, x_stop, n, x_blob = encode_x(tr.x)
+                y_blob, encoding = encode_y(tr.y)
                 trace_ids.append(conn.execute(_INSERT_TRACE, {
                     "point_id": point_id, "kind": tr.kind, "x_unit": tr.x_unit, "n": n,
                     "x_start": x_start, "x_stop": x_stop, "x_data": x_blob,
-                    "y_data": encode_y(tr.y), "rbw_nm": tr.rbw_nm, "settings": tr.settings,
+                    "y_data": y_blob, "encoding": encoding, "rbw_nm": tr.rbw_nm,
+                    "settings": tr.settings,
                 }).inserted_primary_key[0])
             rows = [_line_row(point_id, trace_ids, ln) for ln in lines]
             if rows:
@@ -299,11 +298,14 @@ def _line_row(point_id: int, trace_ids: Sequence[int], line: dict[str, Any]) -> 
     return row
 
 
-def open_existing_store(url_or_path: str | os.PathLike[str] = DEFAULT_DB) -> Store:
+def open_existing_store(url_or_path: str | os.PathLike[str] = DEFAULT_DB, *,
+                        upgrade: bool = False) -> Store:
     """Open a run store that must already exist (status, resume): never creates a database.
 
     A missing SQLite file, a file that is not SQLite, or a database without labrun's tables is
     an InputError naming ``--db`` (exit 2); a SQLite file is checked read-only before opening.
+    An older schema is upgraded when ``upgrade`` (commands that write), otherwise refused with
+    the ``labrun db upgrade`` hint; a newer schema is always refused (both exit 2).
     """
     url = store_url(url_or_path)
     where = os.fspath(url_or_path)
@@ -315,7 +317,9 @@ def open_existing_store(url_or_path: str | os.PathLike[str] = DEFAULT_DB) -> Sto
                              "a run with 'labrun run'", file=where, field="--db")
         if not _sqlite_has_runs(path):
             raise InputError("not a labrun run store (no runs table)", file=where, field="--db")
-        return open_store(url, create=False)
+        store = open_store(url, create=False)
+        _check_revision(store, where, upgrade=upgrade)
+        return store
     store = open_store(url, create=False)
     try:
         found = inspect(store.engine).has_table(Run.__tablename__)
@@ -326,7 +330,49 @@ def open_existing_store(url_or_path: str | os.PathLike[str] = DEFAULT_DB) -> Sto
     if not found:
         store.close()
         raise InputError("not a labrun run store (no runs table)", file=where, field="--db")
+    _check_revision(store, where, upgrade=upgrade)
     return store
+
+
+def _check_revision(store: Store, where: str, *, upgrade: bool) -> None:
+    """Refuse (or, with ``upgrade``, upgrade) a store whose schema is not this labrun's HEAD."""
+    with store.engine.connect() as conn:
+        revision = schema.revision_of(conn)
+    if revision == schema.HEAD:
+        return
+    try:
+        _require_known(revision, where)
+        if not upgrade:
+            raise InputError(f"the database schema is revision {revision}, older than this "
+                             f"labrun's {schema.HEAD}: run 'labrun db upgrade --db {where}' first",
+                             file=where, field="--db")
+        store.upgraded_from = schema.upgrade(store.engine)[0]
+    except BaseException:
+        store.close()
+        raise
+
+
+def _require_known(revision: str, where: str) -> None:
+    """A schema revision this labrun does not ship is from a newer labrun: refuse it (exit 2)."""
+    if revision not in schema.known_revisions():
+        raise InputError(f"the database schema is revision {revision}, newer than this labrun "
+                         f"knows (up to {schema.HEAD}): open it with a newer labrun",
+                         file=where, field="--db")
+
+
+def _prepare_schema(engine: Engine, where: str) -> None:
+    """Create the tables of a new database (stamped HEAD), or upgrade an older one."""
+    with engine.connect() as conn, conn.begin():
+        schema.lock(conn)
+        revision = schema.revision_of(conn)
+        if revision == schema.SchemaState.EMPTY:
+            Base.metadata.create_all(conn)
+            schema.stamp(conn, schema.HEAD)
+            return
+    if revision == schema.HEAD:
+        return
+    _require_known(revision, where)
+    schema.upgrade(engine)
 
 
 def _sqlite_has_runs(path: Path) -> bool:
@@ -349,7 +395,8 @@ def _sqlite_has_runs(path: Path) -> bool:
 
 
 def open_store(url_or_path: str | os.PathLike[str] = DEFAULT_DB, *, create: bool = True) -> Store:
-    """Open (and create the schema of) the store at a SQLAlchemy URL or a SQLite file path."""
+    """Open the store at a SQLAlchemy URL or a SQLite file path; ``create`` makes the tables of a
+    new database and upgrades an older schema (a newer one is refused, exit 2)."""
     url = store_url(url_or_path)
     is_sqlite = url.startswith("sqlite")
     kwargs: dict[str, Any] = {}
@@ -365,7 +412,10 @@ def open_store(url_or_path: str | os.PathLike[str] = DEFAULT_DB, *, create: bool
         event.listen(engine, "connect", _sqlite_pragmas)
     if create:
         try:
-            Base.metadata.create_all(engine)
+            _prepare_schema(engine, os.fspath(url_or_path))
+        except InputError:
+            engine.dispose()
+            raise
         except SQLAlchemyError as exc:
             engine.dispose()
             raise InputError(f"cannot open the database ({type(exc).__name__}: "

@@ -1,8 +1,11 @@
-"""SQLAlchemy 2 declarative models of the run store: spools, runs, points, traces, lines, events.
+"""SQLAlchemy 2 declarative models of the run store: spools, runs, points, traces, lines, events,
+fits.
 
-One run holds its points; a point holds its traces (compact float32 y, x as a linear grid or
-float64 bytes) and the lines reduced from them. Events log faults, acknowledgements and exits.
-Times are stored as UTC; ``(run_id, key)`` is unique so a resumed run can never duplicate a point.
+One run holds its points; a point holds its traces (compact y, see ``labrun.store.tracecodec``;
+x as a linear grid or float64 bytes) and the lines reduced from them. Events log faults,
+acknowledgements and exits. A fit holds one row per fitted parameter. Times are stored as UTC;
+``(run_id, key)`` is unique so a resumed run can never duplicate a point. Every schema change is
+an Alembic revision in ``labrun/store/migrations/versions`` (see ``labrun.store.schema``).
 """
 
 from __future__ import annotations
@@ -66,7 +69,7 @@ class Base(DeclarativeBase):
 
 
 class Spool(Base):
-    """A fibre under test: label, length, nominal loss, and parameters that fits produce."""
+    """A fibre under test: label, length, nominal loss, fibre type, notes; runs and fits link."""
 
     __tablename__ = "spools"
 
@@ -74,11 +77,14 @@ class Spool(Base):
     label: Mapped[str] = mapped_column(String(200), unique=True)
     length_km: Mapped[float | None] = mapped_column(Float)
     loss_db_per_km: Mapped[float | None] = mapped_column(Float)
+    fibre_type: Mapped[str | None] = mapped_column(String(100))
     note: Mapped[str | None] = mapped_column(Text)
     params: Mapped[dict[str, Any]] = mapped_column(JSON, default=dict)
     created_at: Mapped[datetime] = mapped_column(UtcDateTime, default=utcnow)
+    updated_at: Mapped[datetime | None] = mapped_column(UtcDateTime)
 
     runs: Mapped[list[Run]] = relationship(back_populates="spool")
+    fits: Mapped[list[Fit]] = relationship(back_populates="spool")
 
 
 class Run(Base):
@@ -150,7 +156,8 @@ class Point(Base):
 
 
 class Trace(Base):
-    """One captured spectrum: y as float32 bytes (dBm per RBW), x as a linear grid or float64."""
+    """One captured spectrum: y (dBm per RBW) encoded as ``encoding`` says, x as a linear grid or
+    float64 bytes."""
 
     __tablename__ = "traces"
 
@@ -162,7 +169,8 @@ class Trace(Base):
     x_start: Mapped[float] = mapped_column(Float)
     x_stop: Mapped[float] = mapped_column(Float)
     x_data: Mapped[bytes | None] = mapped_column(LargeBinary)  # float64 LE; None = linear grid
-    y_data: Mapped[bytes] = mapped_column(LargeBinary)  # float32 LE
+    y_data: Mapped[bytes] = mapped_column(LargeBinary)  # see labrun.store.tracecodec
+    encoding: Mapped[str] = mapped_column(String(16), default="f32", server_default="f32")
     rbw_nm: Mapped[float | None] = mapped_column(Float)
     settings: Mapped[dict[str, Any]] = mapped_column(JSON, default=dict)
 
@@ -175,8 +183,10 @@ class Trace(Base):
         return np.linspace(self.x_start, self.x_stop, self.n)
 
     def y(self) -> np.ndarray:
-        """The y values (dBm per RBW) as float64."""
-        return np.frombuffer(self.y_data, dtype="<f4").astype(np.float64)
+        """The y values (dBm per RBW) as float64, decoded by the row's own encoding."""
+        from labrun.store.tracecodec import decode_y
+
+        return decode_y(self.y_data, self.encoding, self.n)
 
 
 class Line(Base):
@@ -217,3 +227,43 @@ class Event(Base):
     data: Mapped[dict[str, Any]] = mapped_column(JSON, default=dict)
 
     run: Mapped[Run] = relationship(back_populates="events")
+
+
+class Fit(Base):
+    """One fit of one spool's stored runs: which runs, by what method, with which software."""
+
+    __tablename__ = "fits"
+
+    id: Mapped[int] = mapped_column(Integer, primary_key=True)
+    spool_id: Mapped[int | None] = mapped_column(ForeignKey("spools.id"), index=True)
+    run_ids: Mapped[list[int]] = mapped_column(JSON, default=list)
+    method: Mapped[str] = mapped_column(String(200))
+    software_version: Mapped[str] = mapped_column(String(50))
+    created_at: Mapped[datetime] = mapped_column(UtcDateTime, default=utcnow)
+    spool_snapshot: Mapped[dict[str, Any]] = mapped_column(JSON, default=dict)
+
+    spool: Mapped[Spool | None] = relationship(back_populates="fits")
+    parameters: Mapped[list[FitParameter]] = relationship(
+        back_populates="fit", cascade="all, delete-orphan", passive_deletes=True
+    )
+
+
+class FitParameter(Base):
+    """One fitted parameter: value, standard uncertainty, 95 % expanded uncertainty, unit."""
+
+    __tablename__ = "fit_parameters"
+    __table_args__ = (UniqueConstraint("fit_id", "name", name="uq_fit_parameters_fit_name"),)
+
+    id: Mapped[int] = mapped_column(Integer, primary_key=True)
+    fit_id: Mapped[int] = mapped_column(ForeignKey("fits.id", ondelete="CASCADE"), index=True)
+    name: Mapped[str] = mapped_column(String(60))
+    value: Mapped[float | None] = mapped_column(Float)
+    stderr: Mapped[float | None] = mapped_column(Float)
+    u95: Mapped[float | None] = mapped_column(Float)
+    unit: Mapped[str] = mapped_column(String(40))
+    model: Mapped[str] = mapped_column(Text)
+    n_points: Mapped[int] = mapped_column(Integer)
+    residual_rms: Mapped[float | None] = mapped_column(Float)
+    extra: Mapped[dict[str, Any]] = mapped_column(JSON, default=dict)
+
+    fit: Mapped[Fit] = relationship(back_populates="parameters")

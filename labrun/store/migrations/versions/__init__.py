@@ -1,0 +1,1 @@
+"""Alembic revisions of the run store, one file per schema change, oldest first."""
