@@ -63,7 +63,7 @@ def test_non_degenerate_product_carries_degeneracy_factor_four() -> None:
     c0 = np.zeros(64, complex)
     c0[[0, 1, 4]] = np.sqrt([p0, p1, p4])
     b2, b3 = fibre.beta2_at(1550.0), fibre.beta3_at(1550.0)
-    out = propagate_spectrum(c0, d, fibre.length_km, fibre.alpha_per_km, b2, b3, 10.0, rtol=1e-9)
+    out = propagate_spectrum(c0, d, fibre.length_km, fibre.alpha_per_km, b2, b3, 10.0, rtol=1e-6)
     predicted = small_signal_product_w(fibre, 1550.0, (0.0, 4 * d, d), (p0, p4, p1))
     assert abs(out.spectrum[3]) ** 2 == pytest.approx(predicted, rel=0.02)
 
@@ -77,7 +77,7 @@ def test_parametric_gain_of_weak_probe(beta2: float) -> None:
     p, gamma, length, d = 0.2, 10.0, 1.0, 0.199
     c0 = np.zeros(64, complex)
     c0[0], c0[1] = np.sqrt(p), np.sqrt(1e-9)
-    out = propagate_spectrum(c0, d, length, 0.0, beta2, 0.0, gamma, rtol=1e-8)
+    out = propagate_spectrum(c0, d, length, 0.0, beta2, 0.0, gamma, rtol=1e-6)
     kappa = beta2 * (2 * np.pi * d) ** 2 + 2 * gamma * p
     g = np.sqrt(complex((gamma * p) ** 2 - (kappa / 2) ** 2))
     expected = 1 + abs(gamma * p * np.sinh(g * length) / g) ** 2
@@ -96,8 +96,8 @@ def test_power_conservation_and_loss() -> None:
 
 def test_step_error_estimate_tracks_tolerance() -> None:
     # Step doubling: tighter rtol -> more steps, smaller error estimate, converging lines.
-    loose = propagate_tones(G652, 1550.0, 50.0, 0.05, 0.05, 2, rtol=1e-4)
-    tight = propagate_tones(G652, 1550.0, 50.0, 0.05, 0.05, 2, rtol=1e-9)
+    loose = propagate_tones(G652, 1550.0, 50.0, 0.05, 0.05, 2, rtol=1e-3)
+    tight = propagate_tones(G652, 1550.0, 50.0, 0.05, 0.05, 2, rtol=1e-6)
     assert tight.n_steps > loose.n_steps
     assert tight.step_error < loose.step_error
     db = 10 * np.log10(loose.powers_w / tight.powers_w)
