@@ -13,13 +13,8 @@ from dataclasses import dataclass
 from labrun.vlab.realism import role_rng
 from labrun.vlab.scenario import Faults
 
-# Real SCPI-1999 codes, used for spurious entries in the error queue.
-SPURIOUS_ERRORS: tuple[tuple[int, str], ...] = (
-    (-300, "Device-specific error"),
-    (-310, "System error"),
-    (-221, "Settings conflict"),
-    (-230, "Data corrupt or stale"),
-)
+# SCPI-1999 codes of the spurious error-queue entries (messages from labrun.vlab.scpi.ERRORS).
+SPURIOUS_CODES: tuple[int, ...] = (-300, -310, -221, -230)
 _PRINTABLE = b"ABCDEFGHIJKLMNOPQRSTUVWXYZabcdefghijklmnopqrstuvwxyz0123456789#?!*%$&"
 
 
@@ -30,7 +25,7 @@ class Decision:
     drop: bool = False
     timeout: bool = False
     garble: bool = False
-    spurious: tuple[int, str] | None = None
+    spurious: int | None = None
 
 
 NO_FAULT = Decision()
@@ -53,7 +48,7 @@ class FaultInjector:
         u = self._rng.random(5)
         spurious = None
         if u[3] < f.spurious_error_probability:
-            spurious = SPURIOUS_ERRORS[int(u[4] * len(SPURIOUS_ERRORS)) % len(SPURIOUS_ERRORS)]
+            spurious = SPURIOUS_CODES[int(u[4] * len(SPURIOUS_CODES)) % len(SPURIOUS_CODES)]
         decision = Decision(drop=bool(u[0] < f.drop_probability),
                             timeout=bool(u[1] < f.timeout_probability),
                             garble=bool(u[2] < f.garble_probability), spurious=spurious)

@@ -12,7 +12,8 @@ from collections import deque
 from collections.abc import Callable
 from dataclasses import dataclass, field
 
-# SCPI-1999 error codes used by the simulator (standard numbers and messages).
+# Every error code the simulator can queue, with its SCPI-1999 message (vol. 2, 21.8). A code
+# missing here is a simulator bug: ErrorQueue.push and ScpiFault refuse it (KeyError).
 ERRORS: dict[int, str] = {
     0: "No error",
     -100: "Command error",
@@ -27,6 +28,8 @@ ERRORS: dict[int, str] = {
     -222: "Data out of range",
     -224: "Illegal parameter value",
     -230: "Data corrupt or stale",
+    -300: "Device-specific error",
+    -310: "System error",
     -350: "Queue overflow",
     -363: "Input buffer overrun",
     -410: "Query INTERRUPTED",
@@ -43,7 +46,7 @@ class ScpiFault(Exception):
     def __init__(self, code: int, detail: str = ""):
         self.code = code
         self.detail = detail
-        super().__init__(f"{code},{ERRORS.get(code, 'Error')}{';' + detail if detail else ''}")
+        super().__init__(f"{code},{ERRORS[code]}{';' + detail if detail else ''}")
 
 
 @dataclass(frozen=True)
@@ -237,7 +240,7 @@ class ErrorQueue:
 
     def push(self, code: int, detail: str = "") -> None:
         """Add an error (SCPI-1999 vol. 2, 21.8: overflow replaces the last entry with -350)."""
-        msg = ERRORS.get(code, "Error") + (f";{detail}" if detail else "")
+        msg = ERRORS[code] + (f";{detail}" if detail else "")
         if len(self._q) >= self.size:
             self._q[-1] = (-350, ERRORS[-350])
         else:

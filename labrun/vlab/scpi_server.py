@@ -584,7 +584,7 @@ class _TcpServer(socketserver.ThreadingTCPServer):
         reply = inst.execute(line.decode("latin-1"))
         if decision.spurious:
             with inst.lab.lock:
-                inst.push_error(decision.spurious[0])
+                inst.push_error(decision.spurious)
         if reply is not None:
             if decision.garble:
                 with inst.lab.lock:
