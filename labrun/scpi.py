@@ -3,16 +3,20 @@
 Everything on the wire goes through pyvisa (and a backend chosen by name: ``@py`` pyvisa-py,
 ``@sim`` pyvisa-sim, ``@ivi`` vendor VISA). Blocks use pyvisa's own IEEE 488.2 definite-length
 parser; after each setting the SCPI-1999 error queue is read until code 0 ("0,\"No error\"").
-Timeouts and lost connections are retried a bounded number of times, reconnecting each time;
-every attempt is logged and recorded in the traffic log. When the profile says the instrument takes
-IEEE 488.2 compound program messages, a setting, its follow-up queries and the error query travel
-as one message (``INP:ATT 3.000;:INP:ATT?;:SYST:ERR?``): one round trip instead of three.
+Lost connections and garbled replies are retried a bounded number of times, reconnecting each
+time, within two timeouts; an instrument that stays silent on an open connection is not asked
+again (so a hung instrument costs one timeout, not three); every attempt is logged and recorded
+in the traffic log.
+When the profile says the instrument takes IEEE 488.2 compound program messages, a setting, its
+follow-up queries and the error query travel as one message
+(``INP:ATT 3.000;:INP:ATT?;:SYST:ERR?``): one round trip instead of three.
 """
 
 from __future__ import annotations
 
 import contextlib
 import logging
+import select
 import socket
 import threading
 import time
@@ -147,6 +151,27 @@ def resource_manager(backend: str, sim_file: str | Path | None = None) -> pyvisa
         return rm
 
 
+def is_timeout(exc: BaseException | None) -> bool:
+    """True for an exchange that ran out its timeout (the instrument accepted it, never replied):
+    trying it again costs another whole timeout, so a session does not (see ``_attempts``)."""
+    if isinstance(exc, VisaIOError):
+        return exc.error_code == constants.StatusCode.error_timeout
+    return isinstance(exc, TimeoutError | socket.timeout)
+
+
+def peer_closed(res: object) -> bool:
+    """True when the peer of a raw TCP session has closed the connection (end of stream waits
+    to be read): pyvisa-py reports that as a read that timed out, as for a silent peer."""
+    try:
+        sock = res.visalib.sessions[res.session].interface  # type: ignore[attr-defined]
+        if not isinstance(sock, socket.socket):
+            return False
+        readable, _, _ = select.select([sock], [], [], 0)
+        return bool(readable) and sock.recv(1, socket.MSG_PEEK) == b""
+    except (AttributeError, KeyError, OSError, TypeError, ValueError):
+        return False
+
+
 def _is_transport_error(exc: BaseException) -> bool:
     """True for failures a reconnect may cure: timeouts, lost or refused connections, I/O."""
     if isinstance(exc, VisaIOError):
@@ -251,6 +276,30 @@ class ScpiSession:
             finally:
                 self.retries = saved
 
+    @contextlib.contextmanager
+    def quick(self, timeout_ms: int, *, wait_s: float = 0.1) -> Iterator[ScpiSession]:
+        """Exchanges inside use at most ``timeout_ms`` and are tried once (for the safe-off: an
+        unanswered exchange must not hold up the light going off). NoAnswerError when another
+        thread holds the session for longer than ``wait_s``."""
+        if not self._lock.acquire(timeout=max(0.0, wait_s)):
+            raise NoAnswerError(f"session busy for more than {wait_s:g} s", role=self.role,
+                                resource=self.resource)
+        saved = self.timeout_ms, self.retries
+        try:
+            self.timeout_ms, self.retries = max(1, min(self.timeout_ms, int(timeout_ms))), 0
+            self._set_timeout(self.timeout_ms)
+            yield self
+        finally:
+            self.timeout_ms, self.retries = saved
+            self._set_timeout(self.timeout_ms)
+            self._lock.release()
+
+    def _set_timeout(self, timeout_ms: int) -> None:
+        """Give an open resource a new timeout (a lost resource needs none)."""
+        if self._res is not None:
+            with contextlib.suppress(VisaIOError, OSError, AttributeError):
+                self._res.timeout = timeout_ms
+
     def _reconnect(self) -> None:
         """Drop and reopen the resource after a transport failure."""
         self.close()
@@ -260,9 +309,20 @@ class ScpiSession:
 
     def _attempts(self, direction: Direction, text: str, action: Callable[[], T],
                   describe: Callable[[T], str | None]) -> T:
-        """Run ``action`` with bounded reconnect-and-retry; record and log every attempt."""
+        """Run ``action`` with bounded reconnect-and-retry; record and log every attempt.
+
+        A silent instrument (the exchange ran out its timeout on a connection still open: it
+        accepted the message and never replied) is not asked again: the caller decides, the
+        engine with the light off. Other failures (a dropped or refused connection, a garbled
+        reply) are retried while less than two timeouts have passed since the first try. So
+        one call lasts at most one timeout for a hung instrument and about two for a dropped
+        connection (pyvisa-py notices a closed peer only when the read times out), never
+        ``retries + 1`` timeouts.
+        """
         last: BaseException | None = None
+        first = time.monotonic()
         for attempt in range(1, self.retries + 2):
+            silent = False  # the instrument kept the connection and did not reply in time
             started = time.time()
             try:
                 if self._res is None:
@@ -286,6 +346,7 @@ class ScpiSession:
                     self._record(direction, text, started, None, repr(exc), attempt)
                     self.close()
                     raise
+                silent = is_timeout(exc) and not peer_closed(self._res)
                 last = exc
                 self._record(direction, text, started, None, f"{type(exc).__name__}: {exc}",
                              attempt)
@@ -296,12 +357,13 @@ class ScpiSession:
                 self._record(direction, text, started, reply, None, attempt)
                 log.debug("%s: %s %r -> %r", self.who, direction, text, reply)
                 return result
+            if silent or time.monotonic() - first >= 2 * self.timeout_ms / 1000.0:
+                break
             if attempt <= self.retries:
                 log.warning("%s: %s %r failed (attempt %d of %d): %s; reconnecting",
                             self.who, direction, text, attempt, self.retries + 1, last)
                 time.sleep(min(0.05 * attempt, 0.5))
-        log.error("%s: %s %r failed after %d attempts", self.who, direction, text,
-                  self.retries + 1)
+        log.error("%s: %s %r failed after %d attempts", self.who, direction, text, attempt)
         if isinstance(last, InstrumentError):
             last.fault_reported = True  # type: ignore[attr-defined]
             raise last
@@ -605,6 +667,7 @@ def query_each(requests: list[tuple[ScpiSession, str]]) -> list[str]:
         except Exception as exc:
             if not _is_transport_error(exc) and not isinstance(exc, InstrumentError):
                 raise
+            silent = is_timeout(exc) and not peer_closed(current._res)
             log.warning("parallel queries failed (%s); asking one at a time", exc)
             for s, cmd in requests:
                 s._record("query", cmd, started, None, f"{type(exc).__name__}: {exc}", 1)
@@ -612,6 +675,10 @@ def query_each(requests: list[tuple[ScpiSession, str]]) -> list[str]:
             owner = next((s for s in sessions if s.role and s.role == getattr(exc, "role", None)),
                          current)
             owner.report_fault(" | ".join(cmd for _, cmd in requests), exc, 1)
+            if silent:  # asking a silent instrument again would cost another timeout
+                final = owner._no_answer(exc)
+                final.fault_reported = True  # type: ignore[attr-defined]
+                raise final from exc
             return [s.query(cmd) for s, cmd in requests]
         for (s, cmd), reply in zip(requests, replies, strict=True):
             s._record("query", cmd, started, reply, None, 1)

@@ -1,32 +1,28 @@
-"""Every way out leaves the light off: signal handlers, an atexit hook and a two-pass safe-off.
+"""Every way out leaves the light off: signal handlers, an atexit hook and the safe-off call.
 
 ``SafeOffGuard`` is armed around a run. SIGINT, SIGTERM and SIGHUP raise ``RunInterrupted`` in the
 main thread (so the current point is abandoned at once, never half-stored), at most once; once
 the run is on its way out (``defer()``: safe-off and bookkeeping) a signal is only recorded, so
-no Ctrl-C or SIGTERM can cut the way out short. ``safe_off`` first uses
-the run's own connections, then, if anything is left unconfirmed (a dropped link, a reply cut in
-half by the signal), opens fresh connections to every source and attenuator (no init commands,
-a few short rounds, every role tried in each) and switches them off.
+no Ctrl-C or SIGTERM can cut the way out short. ``safe_off`` darkens every role at once
+(labrun/safe_off.py): the run's own connection first, briefly, then fresh connections without
+init commands, so an unreachable laser never delays closing its attenuator.
 """
 
 from __future__ import annotations
 
 import atexit
-import contextlib
 import logging
 import signal
 import threading
-import time
 from types import FrameType
 from typing import Any
 
+from labrun.safe_off import BUDGET_S, OFF_ROLES, PAUSE_S, darken
+
+__all__ = ["OFF_ROLES", "RunInterrupted", "SafeOffGuard", "safe_off", "safe_off_fresh"]
+
 log = logging.getLogger(__name__)
 
-# Roles that carry light to the spool, switched off (or closed) on every exit.
-OFF_ROLES = ("laser_a", "laser_b", "amplifier", "attenuator_a", "attenuator_b")
-FRESH_ORDER = ("amplifier", "laser_a", "laser_b", "attenuator_a", "attenuator_b")  # strongest first
-FRESH_TRIES = 3      # rounds of the fresh-connection pass (a link may come back within a second)
-FRESH_PAUSE_S = 0.2  # between rounds: short, the light may be on meanwhile
 HANDLED_SIGNALS = tuple(
     s for s in (getattr(signal, n, None) for n in ("SIGINT", "SIGTERM", "SIGHUP")) if s is not None
 )
@@ -43,66 +39,19 @@ class RunInterrupted(BaseException):  # noqa: N818 - a control-flow signal, like
         super().__init__(f"interrupted by {signal.Signals(signum).name}")
 
 
-def safe_off_instruments(instruments: Any) -> list[str]:
-    """Pass 1: sources off and attenuators to maximum over the open connections; problems found."""
-    if instruments is None:
-        return ["no open connections"]
-    try:
-        return list(instruments.safe_off_all())
-    except Exception as exc:  # noqa: BLE001 - safe_off_all should never raise; be sure anyway
-        return [f"safe_off_all raised {type(exc).__name__}: {exc}"]
-
-
-def safe_off_fresh(bench: Any, *, tries: int = FRESH_TRIES,
-                   pause_s: float = FRESH_PAUSE_S) -> list[str]:
-    """Pass 2: new connections to every source/attenuator role, each switched off; the problems
-    left. No init commands (a refused ``*CLS`` must not keep a laser on); a role that cannot be
-    opened or switched off is tried again, up to ``tries`` rounds ``pause_s`` apart, while the
-    other roles go on being darkened."""
-    pending = [role for role in FRESH_ORDER if role in bench.instruments]
-    last: dict[str, str] = {}
-    for attempt in range(1, max(1, tries) + 1):
-        if attempt > 1:
-            time.sleep(pause_s)
-        left = []
-        for role in pending:
-            problem = _fresh_off_role(bench, role)
-            if problem is not None:
-                last[role] = problem
-                left.append(role)
-        pending = left
-        if not pending:
-            break
-        log.warning("fresh safe-off, round %d of %d, left: %s", attempt, tries,
-                    "; ".join(last[r] for r in pending))
-    return [last[role] for role in pending]
-
-
-def _fresh_off_role(bench: Any, role: str) -> str | None:
-    """Open one role without its init commands and switch it off; the problem, or None."""
-    from labrun.instruments import Instruments, open_instrument
-
-    adapter = None
-    try:
-        adapter = open_instrument(bench, role, initialise=False)
-        problems = Instruments(bench, {role: adapter}).safe_off_all()
-    except Exception as exc:  # noqa: BLE001 - report; the caller tries again and goes on
-        return f"{role}: {type(exc).__name__}: {exc}"
-    finally:
-        if adapter is not None:
-            with contextlib.suppress(Exception):  # closing is best effort
-                adapter.close()
-    return "; ".join(problems) or None
+def safe_off_fresh(bench: Any, *, pause_s: float = PAUSE_S,
+                   budget_s: float = BUDGET_S) -> list[str]:
+    """Fresh connections only (no init commands), every role at once; the problems left."""
+    return darken(bench, None, pause_s=pause_s, budget_s=budget_s)
 
 
 def safe_off(instruments: Any, bench: Any) -> list[str]:
-    """Everything off: own connections first, fresh ones if anything stayed unconfirmed."""
-    problems = safe_off_instruments(instruments)
-    if not problems:
-        return []
-    log.warning("safe-off over the run's connections left: %s; retrying on fresh ones",
-                "; ".join(problems))
-    return safe_off_fresh(bench)
+    """Everything off at once: each role over the run's own connection first, a fresh one if
+    that fails (labrun/safe_off.py); the problems left."""
+    try:
+        return darken(bench, instruments)
+    except Exception as exc:  # noqa: BLE001 - darken never raises; be sure anyway
+        return [f"safe-off raised {type(exc).__name__}: {exc}"]
 
 
 class SafeOffGuard:

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import logging
 import struct
+import time
 
 import numpy as np
 import pytest
@@ -117,20 +118,26 @@ def test_error_queue_that_never_empties_is_bounded(inst_scpi_peer):
 
 # -- retries ---------------------------------------------------------------------------------
 
-def test_timeout_is_retried_after_reconnect(inst_scpi_peer, caplog):
+def test_timeout_is_not_sent_again(inst_scpi_peer, caplog):
+    """An exchange that ran out its timeout is reported at once, not re-sent: a hung instrument
+    must cost one timeout before the engine can switch the light off, not retries + 1."""
     inst_scpi_peer.state.silent = 1
     traffic_log = TrafficLog()
     with (caplog.at_level(logging.WARNING, logger="labrun.scpi"),
-          _session(inst_scpi_peer, traffic_log, timeout_ms=200) as s):
-        assert s.idn().model == "BLK-1"
+          _session(inst_scpi_peer, traffic_log, timeout_ms=200, retries=2) as s):
+        t0 = time.monotonic()
+        with pytest.raises(NoAnswerError, match="no answer"):
+            s.idn()
+        assert time.monotonic() - t0 < 0.2 * 1.9  # one timeout, not two or three
+        assert s.idn().model == "BLK-1"  # the next call reconnects and is answered
     idn_tries = [e for e in traffic_log.entries if e.text == "*IDN?"]
-    assert [e.attempt for e in idn_tries] == [1, 2]
+    assert [e.attempt for e in idn_tries] == [1, 1]
     assert "TMO" in (idn_tries[0].error or "") and idn_tries[1].reply
-    assert any("attempt 1 of 3" in r.message for r in caplog.records)
     assert inst_scpi_peer.state.connections == 2
 
 
 def test_lost_connection_is_retried(inst_scpi_peer):
+    """A peer that closed the connection is not a silent one: reconnected and asked again."""
     traffic_log = TrafficLog()
     with _session(inst_scpi_peer, traffic_log, timeout_ms=500) as s:
         inst_scpi_peer.state.drop = 1
@@ -139,13 +146,30 @@ def test_lost_connection_is_retried(inst_scpi_peer):
     assert len(tries) == 2 and tries[0].error and tries[1].error is None
 
 
-def test_retries_are_bounded(inst_scpi_peer):
-    inst_scpi_peer.state.silent = 10
+def test_retries_are_bounded(inst_free_port):
+    """Refused connections fail fast and are retried ``retries`` times, then reported."""
     traffic_log = TrafficLog()
-    with (_session(inst_scpi_peer, traffic_log, timeout_ms=100, retries=2) as s,
-          pytest.raises(NoAnswerError, match="no answer")):
+    resource = f"TCPIP0::127.0.0.1::{inst_free_port}::SOCKET"
+    s = ScpiSession(resource, "@py", timeout_ms=2000, retries=2, role="laser_a",
+                    traffic_log=traffic_log)
+    t0 = time.monotonic()
+    with pytest.raises(NoAnswerError, match="no answer"):
         s.query("*IDN?")
+    assert time.monotonic() - t0 < 1.0
     assert len([e for e in traffic_log.entries if e.text == "*IDN?"]) == 3
+
+
+def test_quick_bounds_the_timeout_and_restores_it(inst_scpi_peer):
+    """The safe-off's short exchanges: one try within the short timeout, then the profile's
+    own timeout and retries again."""
+    inst_scpi_peer.state.silent = 1
+    with _session(inst_scpi_peer, timeout_ms=2000, retries=2) as s:
+        t0 = time.monotonic()
+        with s.quick(150), pytest.raises(NoAnswerError):
+            s.query("*IDN?")
+        assert time.monotonic() - t0 < 1.0  # 0.15 s, not the 2 s of the profile
+        assert (s.timeout_ms, s.retries) == (2000, 2)
+        assert s.idn().model == "BLK-1"
 
 
 def test_refused_connection_is_one_line_instrument_error(inst_free_port):

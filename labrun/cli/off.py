@@ -1,8 +1,9 @@
 """``labrun off --bench BENCH``: every source off and every attenuator closed, now.
 
-Opens its own connection to each source and attenuator (independently, so one dead instrument
-does not stop the others), even while a run process holds its own connections, then reads each
-state back and reports it. Exit 0 only when every source is confirmed off.
+Opens its own connection to each source and attenuator, all at once (labrun/safe_off.py: short
+timeouts, one thread per role, so one dead instrument delays none of the others), even while a
+run process holds its own connections, then reads each state back and reports it. Exit 0 only
+when every source is confirmed off.
 """
 
 from __future__ import annotations
@@ -11,9 +12,10 @@ import argparse
 import contextlib
 import json
 import sys
+import time
 from typing import Any
 
-from labrun.shutdown import OFF_ROLES
+from labrun.safe_off import BUDGET_S, OFF_ROLES, PAUSE_S, in_parallel, quick_adapter
 
 
 def register(subparsers: Any) -> None:
@@ -27,17 +29,24 @@ def register(subparsers: Any) -> None:
     p.set_defaults(func=cmd_off)
 
 
-def off_role(bench: Any, role: str) -> dict[str, Any]:
-    """Darken one role over a fresh connection; what was done and what the instrument reports.
+def off_role(bench: Any, role: str, *, budget_s: float = BUDGET_S) -> dict[str, Any]:
+    """Darken one role over a fresh connection, tried again until ``budget_s``; what was done
+    and what the instrument reports."""
+    deadline = time.monotonic() + budget_s
+    while True:
+        result = _off_once(bench, role)
+        if result["ok"] or deadline - time.monotonic() <= PAUSE_S:
+            return result
+        time.sleep(PAUSE_S)
 
-    Opened without the profile's init commands, as the safe-off fallback does: a refused init
-    command must not keep a laser on."""
-    from labrun.instruments import open_instrument
 
+def _off_once(bench: Any, role: str) -> dict[str, Any]:
+    """One try: open without the profile's init commands (as the safe-off fallback does: a
+    refused init command must not keep a laser on), switch off, read the state back."""
     result: dict[str, Any] = {"role": role, "ok": False, "output": None, "detail": ""}
     adapter = None
     try:
-        adapter = open_instrument(bench, role, initialise=False)
+        adapter = quick_adapter(bench, role)
         adapter.safe_off()
         state = adapter.output_state()
         result["output"] = None if state is None else ("on" if state else "off")
@@ -65,7 +74,11 @@ def cmd_off(args: argparse.Namespace) -> int:
     from labrun.bench import load_bench
 
     bench = load_bench(args.bench)
-    results = [off_role(bench, role) for role in OFF_ROLES if role in bench.instruments]
+    roles = [role for role in OFF_ROLES if role in bench.instruments]
+    done = in_parallel(roles, lambda role: off_role(bench, role), BUDGET_S,
+                       lambda role: {"role": role, "ok": False, "output": None,
+                                     "detail": f"no answer within {BUDGET_S:g} s"})
+    results = [done[role] for role in roles]
     all_off = all(r["ok"] for r in results)
     if args.json:
         print(json.dumps({"bench": bench.name, "all_off": all_off, "roles": results}, indent=2))

@@ -1,5 +1,6 @@
 """Seeded fault injection for one simulated instrument: swallowed commands (the client times out),
-dropped connections, garbled replies, spurious error-queue entries and short traces.
+dropped connections, garbled replies, spurious error-queue entries and short traces; and, on
+demand, a hung instrument (``hung``: accepts connections and commands, never replies).
 
 Each instrument draws from its own generator (seed, role), so its fault sequence does not depend on
 how the threads of other instruments interleave.
@@ -29,6 +30,7 @@ class Decision:
 
 
 NO_FAULT = Decision()
+HUNG = Decision(timeout=True)
 
 
 class FaultInjector:
@@ -39,9 +41,13 @@ class FaultInjector:
         self.active = faults.enabled and (not faults.roles or role in faults.roles)
         self._rng = role_rng(seed, "faults", role)
         self.counts: Counter[str] = Counter()
+        self.hung = False  # set by VirtualLab.hang(): every command swallowed, no draw made
 
     def on_command(self) -> Decision:
         """Decide the fate of one received command (always draws the same number of variates)."""
+        if self.hung:
+            self.counts["hung"] += 1
+            return HUNG
         if not self.active:
             return NO_FAULT
         f = self.faults

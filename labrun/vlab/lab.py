@@ -20,12 +20,18 @@ from typing import Any
 
 from labrun.vlab.faults import FaultInjector
 from labrun.vlab.scenario import ROLE_KINDS, SOURCE_ROLES, Scenario, as_scenario
-from labrun.vlab.scpi_server import INSTRUMENT_CLASSES, InstrumentServer, SimInstrument
+from labrun.vlab.scpi_server import (
+    INSTRUMENT_CLASSES,
+    AttenuatorInstrument,
+    InstrumentServer,
+    SimInstrument,
+)
 from labrun.vlab.state import LabState
 
 log = logging.getLogger(__name__)
 # Caps written into the bench when [bench.caps] names none for a source (invented, safe side).
 DEFAULT_CAPS_DBM = {"laser_a": 10.0, "laser_b": 10.0, "amplifier": 20.0}
+MAX_ATTENUATION_DB = AttenuatorInstrument.ATTENUATION_DB[1]  # the simulated attenuator's darkest
 
 
 class BindError(OSError):
@@ -182,6 +188,31 @@ class VirtualLab:
     def sources_off(self) -> bool:
         """True when every laser and amplifier output is off."""
         return self.state.sources_off()
+
+    def hang(self, role: str, hung: bool = True) -> None:
+        """The instrument keeps accepting connections and commands but never replies (a hung
+        firmware), until ``hang(role, False)``."""
+        with self.state.lock:
+            self.instruments[role].faults.hung = hung
+
+    def refuse(self, role: str) -> None:
+        """The instrument goes away: its port closes (new connections are refused) and every
+        open connection is dropped (a power cut or a pulled cable); until the lab stops."""
+        server = self.servers[role]
+        server.stop()
+        server.drop_connections()
+
+    def role_dark(self, role: str) -> bool:
+        """One role in its safe state: a source's output off; an attenuator at its maximum
+        (MAX_ATTENUATION_DB) with its shutter closed. True for a role not in the lab."""
+        with self.state.lock:
+            if role in self.state.lasers:
+                return not self.state.lasers[role].output
+            if role == "amplifier":
+                return self.state.amplifier is None or not self.state.amplifier.output
+            att = self.state.attenuators.get(role)
+            return att is None or (not att.output
+                                   and att.attenuation_db >= MAX_ATTENUATION_DB - 1e-9)
 
     # ---- addresses and bench -----------------------------------------------------------------
     @property
