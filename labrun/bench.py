@@ -8,16 +8,15 @@ The format is in DEVELOPERS.md ("Bench files").
 
 from __future__ import annotations
 
-import math
-import tomllib
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
-from pydantic import BaseModel, ConfigDict, ValidationError
+from pydantic import BaseModel, Field, ValidationError
 from pyvisa import rname
 
 from labrun.errors import InputError
+from labrun.inputfile import FILE_MODEL_CONFIG, decode, parse_toml, read_bytes
 from labrun.profiles import Profile, load_profile
 from labrun.resources import find_file
 from labrun.scpi import BACKENDS
@@ -32,14 +31,20 @@ SWEEP_ROLES = ("laser_a", "laser_b", "attenuator_a", "attenuator_b", "pol_contro
 SOURCE_ROLES = ("laser_a", "laser_b", "amplifier")
 
 
+# Physical ranges of bench values (refused outside them, before anything is opened): powers
+# within what fibre benches carry (-60 dBm to 10 W), losses 0-60 dB, settle times scaled 0-100x.
+POWER_DBM = {"ge": -60.0, "le": 40.0}
+LOSS_DB = {"ge": 0.0, "le": 60.0}
+
+
 class _Strict(BaseModel):
-    model_config = ConfigDict(extra="forbid")
+    model_config = FILE_MODEL_CONFIG
 
 
 class _BenchHead(_Strict):
     name: str
-    max_total_launched_dbm: float
-    settle_scale: float = 1.0
+    max_total_launched_dbm: float = Field(**POWER_DBM)
+    settle_scale: float = Field(1.0, ge=0.0, le=100.0)
     sim_file: str | None = None
 
 
@@ -49,18 +54,18 @@ class Calibration(_Strict):
     Path and OSA losses default to 0 dB, which overstates launched power (the safe side).
     """
 
-    path_loss_a_db: float = 0.0
-    path_loss_b_db: float = 0.0
-    amplifier_loss_db: float = 0.0
-    output_to_osa_db: float = 0.0
-    input_tap_db: float = 0.0
+    path_loss_a_db: float = Field(0.0, **LOSS_DB)
+    path_loss_b_db: float = Field(0.0, **LOSS_DB)
+    amplifier_loss_db: float = Field(0.0, **LOSS_DB)
+    output_to_osa_db: float = Field(0.0, **LOSS_DB)
+    input_tap_db: float = Field(0.0, **LOSS_DB)
 
 
 class _InstrumentModel(_Strict):
     resource: str
     backend: str = "@py"
     profile: str
-    max_power_dbm: float | None = None
+    max_power_dbm: float | None = Field(None, **POWER_DBM)
 
 
 class _BenchFile(_Strict):
@@ -110,11 +115,6 @@ def _fail(path: Path, field_name: str, message: str) -> InputError:
     return InputError(message, file=str(path), field=field_name)
 
 
-def _check_finite(path: Path, field_name: str, value: float | None) -> None:
-    if value is not None and not math.isfinite(value):
-        raise _fail(path, field_name, f"must be a finite number, got {value}")
-
-
 def _instrument(path: Path, role: str, model: _InstrumentModel) -> InstrumentSpec:
     """Validate one [instruments.<role>] table and load its profile."""
     where = f"instruments.{role}"
@@ -139,17 +139,13 @@ def _instrument(path: Path, role: str, model: _InstrumentModel) -> InstrumentSpe
         raise _fail(path, f"{where}.max_power_dbm", "a source needs a power cap in dBm")
     if role not in SOURCE_ROLES and model.max_power_dbm is not None:
         raise _fail(path, f"{where}.max_power_dbm", "only sources (lasers, amplifier) take a cap")
-    _check_finite(path, f"{where}.max_power_dbm", model.max_power_dbm)
     return InstrumentSpec(role=role, resource=model.resource, backend=model.backend,
                           profile=profile, max_power_dbm=model.max_power_dbm)
 
 
 def parse_bench(text: str, path: Path) -> Bench:
     """Validate bench TOML text; raise a one-line InputError on the first flaw."""
-    try:
-        data: dict[str, Any] = tomllib.loads(text)
-    except tomllib.TOMLDecodeError as exc:
-        raise InputError(f"not valid TOML: {exc}", file=str(path)) from None
+    data: dict[str, Any] = parse_toml(text, str(path))
     try:
         model = _BenchFile.model_validate(data)
     except ValidationError as exc:
@@ -157,11 +153,6 @@ def parse_bench(text: str, path: Path) -> Bench:
         loc = ".".join(str(p) for p in err["loc"]) or "(top)"
         raise _fail(path, loc, err["msg"]) from None
     head = model.bench
-    _check_finite(path, "bench.max_total_launched_dbm", head.max_total_launched_dbm)
-    if not (math.isfinite(head.settle_scale) and head.settle_scale >= 0):
-        raise _fail(path, "bench.settle_scale", "must be a number >= 0")
-    for name, value in model.calibration.model_dump().items():
-        _check_finite(path, f"calibration.{name}", value)
     calib_given = data.get("calibration", {})
     for role, key in (("amplifier", "amplifier_loss_db"), ("power_meter", "input_tap_db")):
         if role in model.instruments and key not in calib_given:
@@ -194,8 +185,4 @@ def load_bench(path: str | Path) -> Bench:
                                        or find_file(raw, "sweeps", suffixes=("", ".toml")))
     if found is None:
         raise InputError("no such bench file", file=str(path))
-    try:
-        text = found.read_text(encoding="utf-8")
-    except OSError as exc:
-        raise InputError(f"cannot read: {exc.strerror}", file=str(path)) from None
-    return parse_bench(text, found)
+    return parse_bench(decode(read_bytes(found, name=str(path)), str(path)), found)

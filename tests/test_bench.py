@@ -78,6 +78,30 @@ BAD = [
     ("tap missing with a power meter", "input_tap_db = 20.0\n", "", "calibration.input_tap_db"),
     ("bad calibration", "path_loss_a_db = 3.0", 'path_loss_a_db = "3 dB"',
      "calibration.path_loss_a_db"),
+    # issue 13: finite numbers within physical ranges, booleans are not numbers
+    ("infinite total cap", "max_total_launched_dbm = 20.0", "max_total_launched_dbm = inf",
+     "bench.max_total_launched_dbm"),
+    ("total cap of 1e308 dBm", "max_total_launched_dbm = 20.0",
+     "max_total_launched_dbm = 1e308", "bench.max_total_launched_dbm"),
+    ("total cap above 10 W", "max_total_launched_dbm = 20.0", "max_total_launched_dbm = 40.5",
+     "bench.max_total_launched_dbm"),
+    ("total cap a boolean", "max_total_launched_dbm = 20.0", "max_total_launched_dbm = true",
+     "bench.max_total_launched_dbm"),
+    ("nan settle_scale", "settle_scale = 0.0", "settle_scale = nan", "bench.settle_scale"),
+    ("infinite settle_scale", "settle_scale = 0.0", "settle_scale = inf", "bench.settle_scale"),
+    ("huge settle_scale", "settle_scale = 0.0", "settle_scale = 1e6", "bench.settle_scale"),
+    ("infinite path loss", "path_loss_a_db = 3.0", "path_loss_a_db = inf",
+     "calibration.path_loss_a_db"),
+    ("nan path loss", "path_loss_b_db = 3.2", "path_loss_b_db = nan",
+     "calibration.path_loss_b_db"),
+    ("negative path loss", "path_loss_a_db = 3.0", "path_loss_a_db = -3.0",
+     "calibration.path_loss_a_db"),
+    ("path loss a boolean", "path_loss_a_db = 3.0", "path_loss_a_db = true",
+     "calibration.path_loss_a_db"),
+    ("infinite cap", "max_power_dbm = 10.0", "max_power_dbm = inf",
+     "instruments.laser_a.max_power_dbm"),
+    ("cap a boolean", "max_power_dbm = 10.0", "max_power_dbm = false",
+     "instruments.laser_a.max_power_dbm"),
 ]
 
 
@@ -99,6 +123,29 @@ def test_missing_and_malformed_file(tmp_path):
     bad.write_text("[bench\n")
     with pytest.raises(InputError, match="not valid TOML"):
         load_bench(bad)
+
+
+def test_unreadable_files_are_one_line(tmp_path, monkeypatch):
+    """Non-UTF-8, deeply nested and oversized bench files: one line naming the file."""
+    import labrun.inputfile as inputfile
+
+    cases = {
+        "latin1.toml": SIM_TEXT.replace('name = "pyvisa-sim bench"', 'name = "b\u00e9nch"')
+                               .encode("latin-1"),
+        "deep.toml": b"x = " + b"[" * 5000 + b"]" * 5000 + b"\n",
+        "nested.toml": b"x = " + b"[" * 40 + b"]" * 40 + b"\n",
+        "big.toml": b"# " + b"x" * 20_000 + b"\n",
+    }
+    monkeypatch.setattr(inputfile, "MAX_TOML_BYTES", 12_000)
+    expect = {"latin1.toml": "not UTF-8", "deep.toml": "nested deeper",
+              "nested.toml": "nested deeper", "big.toml": "larger than"}
+    for name, raw in cases.items():
+        path = tmp_path / name
+        path.write_bytes(raw)
+        with pytest.raises(InputError) as info:
+            load_bench(path)
+        message = str(info.value)
+        assert "\n" not in message and str(path) in message and expect[name] in message, message
 
 
 def test_bad_profile_named_by_bench_reports_profile_file(tmp_path):

@@ -131,6 +131,89 @@ def test_scenario_errors_name_file_and_field(tmp_path):
         load_scenario(bad)
 
 
+SCENARIO_BAD = [
+    # issue 13: NaN, infinity and booleans refused; ranges physical
+    ("length_km = 2.0", "length_km = nan", "spools[0].length_km"),
+    ("gamma_per_w_per_km = 10.0", "gamma_per_w_per_km = inf", "spools[0].gamma_per_w_per_km"),
+    ("gamma_per_w_per_km = 10.0", "gamma_per_w_per_km = true", "spools[0].gamma_per_w_per_km"),
+    ("loss_db_per_km = 0.5", "loss_db_per_km = 1e308", "spools[0].loss_db_per_km"),
+]
+SCENARIO_EXTRA_BAD = [
+    ("[bench]\ncaps = { laser_a = nan }", "bench.caps.laser_a"),
+    ("[bench]\ncaps = { laser_b = inf }", "bench.caps.laser_b"),
+    ("[bench]\ncaps = { amplifier = 1e308 }", "bench.caps.amplifier"),
+    ("[bench]\npath_loss_a_db = inf", "bench.path_loss_a_db"),
+    ("[bench]\nmax_total_launched_dbm = -inf", "bench.max_total_launched_dbm"),
+    ("[instruments.laser_a]\nport = true", "instruments.laser_a.port"),
+    ("[instruments.laser_a]\npresent = 1", "instruments.laser_a.present"),
+    ("[instruments.osa]\nfloor_dbm = nan", "instruments.osa.floor_dbm"),
+    ("[realism]\nosa_noise_db = inf", "realism.osa_noise_db"),
+    ("[faults]\nenabled = true\ndrop_probability = nan", "faults.drop_probability"),
+    ("[[events]]\nat_s = inf\naction = 'open_interlock'", "events[0].at_s"),
+]
+
+
+@pytest.mark.parametrize("old, new, field", SCENARIO_BAD, ids=[c[1] for c in SCENARIO_BAD])
+def test_scenario_refuses_non_finite_and_boolean_numbers(tmp_path, old, new, field):
+    bad = tmp_path / "bad.toml"
+    bad.write_text(FLAT_SCENARIO.replace(old, new))
+    with pytest.raises(InputError) as err:
+        load_scenario(bad)
+    assert str(bad) in str(err.value) and field in str(err.value), str(err.value)
+
+
+@pytest.mark.parametrize("extra, field", SCENARIO_EXTRA_BAD, ids=[c[1] for c in SCENARIO_EXTRA_BAD])
+def test_scenario_refuses_bad_tables(tmp_path, extra, field):
+    bad = tmp_path / "bad.toml"
+    bad.write_text(FLAT_SCENARIO + "\n" + extra + "\n")
+    with pytest.raises(InputError) as err:
+        load_scenario(bad)
+    assert str(bad) in str(err.value) and field in str(err.value), str(err.value)
+
+
+def test_scenario_not_utf8_is_one_line(tmp_path):
+    bad = tmp_path / "bad.toml"
+    bad.write_bytes(FLAT_SCENARIO.replace("FLAT-Z1", "FLAT-\u00c51").encode("latin-1"))
+    with pytest.raises(InputError, match="not UTF-8") as err:
+        load_scenario(bad)
+    assert str(bad) in str(err.value)
+
+
+def test_scenario_spool_beyond_the_models_reach_is_refused_up_front(tmp_path, capsys):
+    """gamma = 1e5 /(W km) on 2 km at the 20 dBm bench cap: peak nonlinear phase
+    gamma L_eff 2 P = 1e5 * 1.79 * 0.2 ~ 3.6e4 rad (L_eff = (1 - e^-aL)/a, Agrawal, Nonlinear Fiber
+    Optics, ch. 4): refused when read, before any model runs (it once took 160 s of CPU)."""
+    bad = tmp_path / "bad.toml"
+    bad.write_text(FLAT_SCENARIO.replace("gamma_per_w_per_km = 10.0",
+                                         "gamma_per_w_per_km = 100000.0"))
+    start = time.process_time()
+    code, out, err = run_cli(capsys, "sim", "spectrum", "--scenario", str(bad), "--spool",
+                             "FLAT-Z1", "--power-a-dbm", "10", "--power-b-dbm", "10",
+                             "--wavelength-a-nm", "1550", "--spacing-ghz", "50")
+    assert code == 2 and out == "" and len(err.strip().splitlines()) == 1
+    assert "spools[0].gamma_per_w_per_km" in err and "nonlinear phase" in err
+    assert time.process_time() - start < 5.0
+    # 2 km at 0.5 dB/km: L_eff = 1.786 km; gamma 279 gives 99.7 rad (accepted), 280 gives 100.04
+    ok = FLAT_SCENARIO.replace("gamma_per_w_per_km = 10.0", "gamma_per_w_per_km = 279.0")
+    bad.write_text(ok)
+    assert load_scenario(bad).spools[0].gamma_per_w_per_km == 279.0
+    bad.write_text(ok.replace("279.0", "280.0"))
+    with pytest.raises(InputError, match="nonlinear phase"):
+        load_scenario(bad)
+
+
+def test_spectrum_launch_beyond_the_models_reach_is_one_line(capsys):
+    """HNLF-A17 (11 /(W km), L_eff ~ 0.91 km) at 30 dBm per tone: 11 * 0.91 * 4 W ~ 40 rad is
+    computed; at 36 dBm per tone ~ 160 rad exceeds the 100 rad bound and is refused at once."""
+    base = ["sim", "spectrum", "--scenario", str(DEFAULT), "--spool", "HNLF-A17",
+            "--wavelength-a-nm", "1550", "--spacing-ghz", "50"]
+    start = time.process_time()
+    code, out, err = run_cli(capsys, *base, "--power-a-dbm", "36", "--power-b-dbm", "36")
+    assert code == 2 and out == "" and "nonlinear phase" in err
+    assert len(err.strip().splitlines()) == 1
+    assert time.process_time() - start < 5.0
+
+
 def test_shipped_scenario_standard_fibre_follows_g652():
     """SMF-B02 against ITU-T G.652 (limits from memory): loss <= 0.3 dB/km at 1550 nm; the
     dispersion D(l) = S0 l/4 [1 - (l0/l)^4] of G.652 fitted through D and dD/dl at 1550 nm gives

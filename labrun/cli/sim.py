@@ -171,8 +171,12 @@ def run_spectrum(args: argparse.Namespace) -> int:
                          field="--spool") from None
     _check_spectrum_args(args)
     copolar = _copolar(args.pol_angle_deg)
-    lines = output_lines(spool.fibre(), args.wavelength_a_nm, args.spacing_ghz, args.power_a_dbm,
-                         args.power_b_dbm, args.orders, copolar=copolar, model=args.model)
+    try:
+        lines = output_lines(spool.fibre(), args.wavelength_a_nm, args.spacing_ghz,
+                             args.power_a_dbm, args.power_b_dbm, args.orders, copolar=copolar,
+                             model=args.model)
+    except ValueError as exc:  # the model refuses work it cannot do in reasonable time
+        raise InputError(str(exc), field="--power-a-dbm/--power-b-dbm") from None
     if args.out:
         _write_trace(args, scenario, spool.name, lines)
     floor = scenario.instruments.osa.floor_dbm

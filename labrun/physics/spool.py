@@ -27,6 +27,11 @@ SPOOL_RTOL = 1e-3  # per-line split-step tolerance: every line down to 90 dB bel
 # 0.01 dB of the RK4IP reference (worst 0.005 dB measured: benchmarks/bench_nlse_accuracy.py)
 MIN_POWER_DBM = -200.0  # a line with no power at all is reported at this level, never -inf
 MODELS = ("auto", "bessel", "nlse")
+# Largest peak nonlinear phase gamma L_eff (sqrt(Pa) + sqrt(Pb))^2 the models are asked for: the
+# split-step cost grows steeply with it (measured when this bound was set, one core: about 0.06 s
+# at 40 rad, 1.6 s at 117 rad, 23 s at 235 rad, 43 s at 361 rad, and no result at all past a few
+# hundred rad), while FWM measurements on fibre stay well below it.
+MAX_NONLINEAR_PHASE_RAD = 100.0
 
 
 @dataclass(frozen=True)
@@ -60,6 +65,12 @@ def dispersion_figure(fibre: Fibre, wavelength_a_nm: float, spacing_ghz: float) 
     return b2 * (2.0 * np.pi * delta_thz) ** 2 * fibre.length_km
 
 
+def nonlinear_phase_rad(fibre: Fibre, p_a_w: float, p_b_w: float) -> float:
+    """Peak nonlinear phase gamma L_eff (sqrt(Pa) + sqrt(Pb))^2 of the two tones (rad)."""
+    peak = (np.sqrt(p_a_w) + np.sqrt(p_b_w)) ** 2
+    return float(fibre.gamma_per_w_per_km * fibre.effective_length_km * peak)
+
+
 def choose_model(fibre: Fibre, wavelength_a_nm: float, spacing_ghz: float) -> str:
     """'bessel' when dispersion_figure < BESSEL_LIMIT, else 'nlse'."""
     fig = dispersion_figure(fibre, wavelength_a_nm, spacing_ghz)
@@ -85,6 +96,10 @@ def output_powers_w(
         raise ValueError("spacing_ghz must be > 0 (tone b above tone a in frequency)")
     if not 0.0 <= copolar <= 1.0:
         raise ValueError("copolar must be within [0, 1]")
+    phi = nonlinear_phase_rad(fibre, p_a_w, p_b_w)
+    if not phi <= MAX_NONLINEAR_PHASE_RAD:
+        raise ValueError(f"nonlinear phase {phi:.3g} rad exceeds the {MAX_NONLINEAR_PHASE_RAD:g} "
+                         "rad the spool models compute in reasonable time")
     if model == "auto":
         model = choose_model(fibre, wavelength_a_nm, spacing_ghz)
     t = float(np.exp(-fibre.alpha_per_km * fibre.length_km))

@@ -6,14 +6,16 @@ the dotted field (for example ``instruments.laser_a.port``).
 
 from __future__ import annotations
 
-import tomllib
 from pathlib import Path
-from typing import Any, Literal
+from typing import Annotated, Any, Literal
 
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, model_validator
 
 from labrun.errors import InputError
+from labrun.inputfile import FILE_MODEL_CONFIG, load_toml
 from labrun.physics.fibre import Fibre
+from labrun.physics.spool import MAX_NONLINEAR_PHASE_RAD, nonlinear_phase_rad
+from labrun.physics.units import dbm_to_w
 from labrun.resources import find_file
 
 # role -> instrument kind (the kinds of drivers/README.md)
@@ -48,7 +50,7 @@ DEFAULT_IDN: dict[str, str] = {
 class _Strict(BaseModel):
     """Base: unknown keys are errors (catches typos in hand-written scenarios)."""
 
-    model_config = ConfigDict(extra="forbid", frozen=True)
+    model_config = ConfigDict(**FILE_MODEL_CONFIG, frozen=True)
 
 
 class SpoolSpec(_Strict):
@@ -78,13 +80,14 @@ class BenchLayout(_Strict):
     """Optical layout and the calibration/caps written into the generated bench file."""
 
     name: str = "virtual lab bench"
-    max_total_launched_dbm: float = Field(default=20.0, le=40)
+    max_total_launched_dbm: float = Field(default=20.0, ge=-60, le=40)
     path_loss_a_db: float = Field(default=3.0, ge=0, le=60)
     path_loss_b_db: float = Field(default=3.0, ge=0, le=60)
     amplifier_loss_db: float = Field(default=0.5, ge=0, le=60)
     output_to_osa_db: float = Field(default=0.5, ge=0, le=60)
     input_tap_db: float = Field(default=20.0, ge=0, le=60)
-    caps: dict[Literal["laser_a", "laser_b", "amplifier"], float] = Field(default_factory=dict)
+    caps: dict[Literal["laser_a", "laser_b", "amplifier"], Annotated[float, Field(ge=-60, le=40)]
+               ] = Field(default_factory=dict)
 
 
 class InstrumentSpec(_Strict):
@@ -228,7 +231,25 @@ def parse_scenario(data: dict[str, Any], *, file: str = "<scenario>") -> Scenari
     if scenario.connected not in names:
         raise InputError(f"{scenario.connected!r} names no spool in [[spools]]", file=file,
                          field="connected")
+    _check_workload(scenario, file)
     return scenario
+
+
+def _check_workload(scenario: Scenario, file: str) -> None:
+    """Refuse a spool the models cannot compute in reasonable time at the bench's power cap.
+
+    The split-step cost grows with the peak nonlinear phase; the cap bounds what labrun launches
+    (all of it in one line pair: (sqrt(Pa) + sqrt(Pb))^2 <= 2 P_total).
+    """
+    p_total = float(dbm_to_w(scenario.bench.max_total_launched_dbm))
+    for i, spool in enumerate(scenario.spools):
+        phi = nonlinear_phase_rad(spool.fibre(), p_total / 2.0, p_total / 2.0)
+        if phi > MAX_NONLINEAR_PHASE_RAD:
+            raise InputError(
+                f"nonlinear phase {phi:.3g} rad at the bench cap of "
+                f"{scenario.bench.max_total_launched_dbm:g} dBm exceeds the "
+                f"{MAX_NONLINEAR_PHASE_RAD:g} rad the spool models compute in reasonable time",
+                file=file, field=f"spools[{i}].gamma_per_w_per_km")
 
 
 def load_scenario(path: str | Path) -> Scenario:
@@ -236,10 +257,7 @@ def load_scenario(path: str | Path) -> Scenario:
     found = find_file(path, "sim_instruments", suffixes=("", ".toml"))
     if found is None:
         raise InputError("no such scenario file", file=str(path), field="scenario")
-    try:
-        data = tomllib.loads(found.read_text(encoding="utf-8"))
-    except tomllib.TOMLDecodeError as exc:
-        raise InputError(f"not valid TOML ({exc})", file=str(found), field="scenario") from None
+    _, data = load_toml(found)
     return parse_scenario(data, file=str(found))
 
 
