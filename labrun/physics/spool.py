@@ -28,9 +28,9 @@ SPOOL_RTOL = 1e-3  # per-line split-step tolerance: every line down to 90 dB bel
 MIN_POWER_DBM = -200.0  # a line with no power at all is reported at this level, never -inf
 MODELS = ("auto", "bessel", "nlse")
 # Largest peak nonlinear phase gamma L_eff (sqrt(Pa) + sqrt(Pb))^2 the models are asked for: the
-# split-step cost grows steeply with it (measured when this bound was set, one core: about 0.06 s
-# at 40 rad, 1.6 s at 117 rad, 23 s at 235 rad, 43 s at 361 rad, and no result at all past a few
-# hundred rad), while FWM measurements on fibre stay well below it.
+# split-step cost grows steeply with it (measured when this bound was set, one core, 1 km of
+# HNLF-like fibre at 100 GHz: about 0.8 s at 40 rad, 3 s at 86 rad, 14 s at 98 rad; earlier runs
+# gave up after minutes past a few hundred rad), while FWM measurements on fibre stay below it.
 MAX_NONLINEAR_PHASE_RAD = 100.0
 
 
