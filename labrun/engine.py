@@ -785,7 +785,8 @@ def run_plan(plan: Plan, bench: Any, store: Store, *, operator: str | None = Non
         print(text, file=echo)
     specs = list(plan.points())
     run_id = store.create_run(**_run_fields(plan, bench, operator=operator,
-                                            unattended=unattended, total=len(specs)))
+                                            unattended=unattended, total=len(specs)),
+                              spool_id=store.spool_id(plan.spool, **plan.spool_info))
     record_ack(store, run_id, plan, bench, operator=operator, unattended=unattended, text=text)
     record_traffic_log(store, run_id, traffic_log)
     return _execute(plan, bench, store, run_id, specs, done=0, policy=policy,

@@ -164,10 +164,24 @@ class StopSpec(_Strict):
     consecutive: int = Field(1, ge=1)
 
 
+class SpoolSpec(_Strict):
+    """[spool]: what is known of the spool named in [plan] (recorded on its spool row, optional)."""
+
+    length_km: float | None = Field(None, gt=0.0, le=1.0e5)
+    loss_db_per_km: float | None = Field(None, ge=0.0, le=100.0)
+    fibre_type: str | None = Field(None, min_length=1, max_length=100)
+    note: str | None = None
+
+    def known(self) -> dict[str, Any]:
+        """The fields given in the file (what a new or incomplete spool row takes)."""
+        return {k: v for k, v in self.model_dump().items() if v is not None}
+
+
 class PlanFile(_Strict):
     """The whole plan file."""
 
     plan: MetaSpec
+    spool: SpoolSpec = SpoolSpec()
     fixed: dict[str, Any] = {}
     axes: dict[str, AxisSpec] = {}
     order: OrderSpec = OrderSpec()
@@ -422,6 +436,7 @@ class Plan:
         self.sha256 = hashlib.sha256(raw).hexdigest()
         self.name = spec.plan.name
         self.spool = spec.plan.spool
+        self.spool_info = spec.spool.known()
         self.note = spec.plan.note
         self.orders = spec.plan.orders
         self.amplifier = spec.plan.amplifier

@@ -114,14 +114,15 @@ def labrun_process(*args: str, cwd: Path) -> subprocess.Popen:
 
 @contextlib.contextmanager
 def run_in_process(lab: VirtualLab, folder: Path, n_points: int, *extra: str, min_points: int,
-                   stop: int = signal.SIGKILL
-                   ) -> Iterator[tuple[subprocess.Popen, Path, Path, Path]]:
+                   stop: int = signal.SIGKILL, db: str | Path | None = None
+                   ) -> Iterator[tuple[subprocess.Popen, Path, Path, Path | str]]:
     """``labrun run`` of an ``n_points`` sweep (unattended, acknowledged) in another process,
     once ``min_points`` are stored; yields (process, plan, bench, db). On the way out a process
-    still alive gets ``stop`` (then SIGKILL if it lingers 30 s)."""
+    still alive gets ``stop`` (then SIGKILL if it lingers 30 s). ``db``: a SQLite path or a
+    database URL (default: runs.db in ``folder``)."""
     plan = write_plan(folder, long_powers(n_points))
     bench = write_bench(lab, folder)
-    db = folder / "runs.db"
+    db = folder / "runs.db" if db is None else db
     proc = labrun_process("run", str(plan), "--bench", str(bench), "--db", str(db),
                           "--unattended", "--operator", OPERATOR, "--ack-safety",
                           "--no-progress", *extra, cwd=folder)
@@ -138,10 +139,23 @@ def run_in_process(lab: VirtualLab, folder: Path, n_points: int, *extra: str, mi
                     proc.kill()
 
 
-def count_points(db: Path) -> int:
-    """Points stored so far (read-only peek through sqlite3, as another process would)."""
+def count_points(db: Path | str) -> int:
+    """Points stored so far (read-only peek through sqlite3, as another process would; a
+    database URL is read through SQLAlchemy)."""
     import sqlite3
 
+    if "://" in str(db):
+        from sqlalchemy import create_engine, text
+
+        engine = create_engine(str(db))
+        try:
+            with engine.connect() as conn:
+                return int(conn.execute(text("SELECT count(*) FROM points")).scalar())
+        except Exception:  # noqa: BLE001 - no table yet
+            return 0
+        finally:
+            engine.dispose()
+    db = Path(db)
     if not db.exists():
         return 0
     con = sqlite3.connect(f"file:{db}?mode=ro", uri=True, timeout=5)

@@ -6,6 +6,7 @@ state) and a small loopback TCP SCPI peer for block transfer, error queue and re
 
 from __future__ import annotations
 
+import contextlib
 import shutil
 import socket
 import socketserver
@@ -159,8 +160,8 @@ def pg_base_url() -> str:
     return url
 
 
-@pytest.fixture
-def pg_url(request: pytest.FixtureRequest) -> Iterator[str]:
+@contextlib.contextmanager
+def pg_schema() -> Iterator[str]:
     """A SQLAlchemy URL of a fresh, empty PostgreSQL schema (search_path), dropped afterwards."""
     import uuid
 
@@ -183,6 +184,13 @@ def pg_url(request: pytest.FixtureRequest) -> Iterator[str]:
         with admin.begin() as conn:
             conn.execute(text(f'DROP SCHEMA "{name}" CASCADE'))
         admin.dispose()
+
+
+@pytest.fixture
+def pg_url() -> Iterator[str]:
+    """A fresh PostgreSQL schema's URL for one test."""
+    with pg_schema() as url:
+        yield url
 
 
 @pytest.fixture(params=["sqlite", "postgresql"])

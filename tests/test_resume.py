@@ -31,9 +31,10 @@ RESUMER = "T. Lindqvist"  # invented: someone else resumes, hours later
 ACK = ["--unattended", "--operator", RESUMER, "--ack-safety"]
 
 
-def _kill_mid_run(tmp_path, lab):
+def _kill_mid_run(tmp_path, lab, db=None):
     """Start a run in another process, SIGKILL it after a few points; (plan, bench, db, id)."""
-    with run_in_process(lab, tmp_path, N_POINTS, min_points=5) as (proc, plan, bench, db):
+    with run_in_process(lab, tmp_path, N_POINTS, min_points=5, db=db) as (proc, plan, bench,
+                                                                           db):
         pass  # leaving kills it
     assert proc.returncode == -signal.SIGKILL
     store = open_store(db)
@@ -46,11 +47,12 @@ def _kill_mid_run(tmp_path, lab):
     return plan, bench, db, run_id
 
 
-def test_sigkill_then_resume_gives_the_full_point_set(tmp_path, capsys):
+def test_sigkill_then_resume_gives_the_full_point_set(tmp_path, capsys, db_url):
+    """On SQLite and on PostgreSQL."""
     from labrun.vlab.lab import VirtualLab
 
     with VirtualLab(scenario()) as lab:
-        plan, bench, db, run_id = _kill_mid_run(tmp_path, lab)
+        plan, bench, db, run_id = _kill_mid_run(tmp_path, lab, db_url)
         # A killed process cannot switch anything off: 'labrun off' is the remedy.
         assert main(["off", "--bench", str(bench)]) == 0 and dark(lab)
         capsys.readouterr()

@@ -65,6 +65,8 @@ def cmd_demo(args: argparse.Namespace) -> int:
         raise InputError("must be >= 0", field="--time-scale")
     plan = load_plan(_resolve(args.plan, "sweeps", "--plan"))
     scenario = load_scenario(_resolve(args.scenario, "sim_instruments", "--scenario"))
+    if plan.spool in {sp.name for sp in scenario.spools}:  # splice in the spool the plan names
+        scenario = scenario.model_copy(update={"connected": plan.spool})
     out = Path(args.out)
     try:
         out.mkdir(parents=True, exist_ok=True)

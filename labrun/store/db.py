@@ -29,7 +29,7 @@ from sqlalchemy import (
     update,
 )
 from sqlalchemy.engine import make_url
-from sqlalchemy.exc import ArgumentError, SQLAlchemyError
+from sqlalchemy.exc import ArgumentError, IntegrityError, SQLAlchemyError
 from sqlalchemy.orm import Session, sessionmaker
 
 from labrun.errors import InputError
@@ -160,14 +160,28 @@ class Store:
         self.update_run(run_id, heartbeat_at=utcnow())
 
     def spool_id(self, label: str, **fields: Any) -> int:
-        """Id of the spool with this label, creating it (with ``fields``) when new."""
-        with self.session() as s:
-            spool = s.scalar(select(Spool).where(Spool.label == label))
-            if spool is None:
-                spool = Spool(label=label, **fields)
-                s.add(spool)
-                s.flush()
-            return spool.id
+        """Id of the spool with this label, creating it when new; ``fields`` (length_km, ...)
+        fill only what the row does not say yet (``labrun spool set`` edits overwrite).
+
+        Two rigs may create the same spool at once: the loser of the unique label re-reads.
+        """
+        for _ in range(3):
+            try:
+                with self.session() as s:
+                    spool = s.scalar(select(Spool).where(Spool.label == label))
+                    if spool is None:
+                        spool = Spool(label=label, **fields)
+                        s.add(spool)
+                    else:
+                        for name, value in fields.items():
+                            if getattr(spool, name) is None and value is not None:
+                                setattr(spool, name, value)
+                    s.flush()
+                    return spool.id
+            except IntegrityError:
+                continue
+        raise InputError(f"cannot record spool {label!r} (another process keeps changing it)",
+                         field="spool")
 
     # ----- events -----------------------------------------------------------------------------
     def add_event(self, run_id: int, kind: str, message: str = "", *, role: str | None = None,

@@ -1,0 +1,161 @@
+"""``labrun spools`` (list spools with their latest fitted values) and ``labrun spool set``."""
+
+from __future__ import annotations
+
+import argparse
+import json
+from typing import Any
+
+from labrun.store import DEFAULT_DB
+
+# What ``spools`` and ``compare`` show of a fit, in order: (column, fit parameter names in order
+# of preference). Gamma from the dual-frequency Bessel fit when there is one.
+HEADLINE = (("gamma_per_w_per_km", ("gamma_bessel", "gamma_small_signal")),
+            ("dispersion_ps_per_nm_km", ("dispersion",)),
+            ("dispersion_slope_ps_per_nm2_km", ("dispersion_slope",)))
+
+
+def _db_arg(p: argparse.ArgumentParser) -> None:
+    p.add_argument("--db", default=DEFAULT_DB, metavar="URL_OR_PATH",
+                   help=f"SQLAlchemy URL or SQLite file path (default: {DEFAULT_DB} here)")
+
+
+def register(subparsers: Any) -> None:
+    """Add the spools and spool commands."""
+    p = subparsers.add_parser("spools", help="list spools with their latest fitted values",
+                              description="Every spool in the store: length, loss, fibre type, "
+                                          "runs, and the values of its latest stored fit.")
+    _db_arg(p)
+    p.add_argument("--json", action="store_true", help="print JSON on stdout")
+    p.set_defaults(func=cmd_spools)
+
+    sp = subparsers.add_parser("spool", help="edit a spool's record",
+                               description="Edit what is recorded of a spool.")
+    sub = sp.add_subparsers(dest="spool_command", metavar="ACTION", required=True,
+                            parser_class=type(sp))
+    st = sub.add_parser("set", help="set a spool's length, loss, fibre type or note",
+                        description="Set fields of a spool's record (created when new). "
+                                    "Later fits use the new length and loss.")
+    st.add_argument("label", metavar="LABEL", help="spool label")
+    st.add_argument("--length-km", type=float, metavar="KM")
+    st.add_argument("--loss-db-per-km", type=float, metavar="DB")
+    st.add_argument("--fibre-type", metavar="TEXT")
+    st.add_argument("--note", metavar="TEXT")
+    _db_arg(st)
+    st.add_argument("--json", action="store_true", help="print the spool as JSON")
+    st.set_defaults(func=cmd_spool_set)
+
+
+def headline(record: Any) -> dict[str, Any]:
+    """The headline parameters of a fit (see HEADLINE), each with its runs."""
+    out: dict[str, Any] = {}
+    if record is None:
+        return out
+    for column, names in HEADLINE:
+        for name in names:
+            p = record.parameters.get(name)
+            if p is not None and p.value is not None:
+                out[column] = {**p.to_dict(), "parameter": name, "runs": record.run_ids,
+                               "fit_id": record.fit_id}
+                break
+    return out
+
+
+def spool_rows(store: Any) -> list[dict[str, Any]]:
+    """One dict per spool: its record, run count, latest fit id and headline values."""
+    from sqlalchemy import func, select
+
+    from labrun.spoolfits import latest_fits
+    from labrun.store.models import Run, Spool
+
+    fits = latest_fits(store)
+    with store.session() as s:
+        counts = dict(s.execute(select(Run.spool_id, func.count(Run.id))
+                                .group_by(Run.spool_id)).all())
+        spools = s.scalars(select(Spool).order_by(Spool.label)).all()
+    rows = []
+    for sp in spools:
+        fit = fits.get(sp.label)
+        rows.append({"spool": sp.label, "length_km": sp.length_km,
+                     "loss_db_per_km": sp.loss_db_per_km, "fibre_type": sp.fibre_type,
+                     "note": sp.note, "runs": int(counts.get(sp.id, 0)),
+                     "latest_fit": fit.fit_id if fit else None,
+                     "fitted_at": fit.created_at.isoformat() if fit else None,
+                     **headline(fit)})
+    return rows
+
+
+def _short(p: dict[str, Any] | None) -> str:
+    if not p:
+        return "-"
+    err = f" +/- {p['stderr']:.2g}" if p.get("stderr") is not None else ""
+    return f"{p['value']:.4g}{err}"
+
+
+def cmd_spools(args: argparse.Namespace) -> int:
+    """labrun spools: the spools table."""
+    from labrun.store import open_existing_store
+
+    store = open_existing_store(args.db)
+    try:
+        rows = spool_rows(store)
+    finally:
+        store.close()
+    if args.json:
+        print(json.dumps({"spools": rows}, indent=2))
+        return 0
+    if not rows:
+        print("no spools recorded yet")
+        return 0
+    print(f"{'spool':<12} {'km':>7} {'dB/km':>6} {'runs':>4} {'fit':>4}  "
+          f"{'gamma 1/(W km)':<20} {'D ps/(nm km)':<20} type")
+    for r in rows:
+        print(f"{r['spool']:<12} {_opt(r['length_km']):>7} {_opt(r['loss_db_per_km']):>6} "
+              f"{r['runs']:>4} {r['latest_fit'] or '-':>4}  "
+              f"{_short(r.get('gamma_per_w_per_km')):<20} "
+              f"{_short(r.get('dispersion_ps_per_nm_km')):<20} {r['fibre_type'] or ''}")
+    return 0
+
+
+def _opt(v: float | None) -> str:
+    return "-" if v is None else f"{v:g}"
+
+
+def cmd_spool_set(args: argparse.Namespace) -> int:
+    """labrun spool set LABEL ...: edit (or create) a spool record."""
+    from sqlalchemy import select
+
+    from labrun.errors import InputError
+    from labrun.store import open_existing_store
+    from labrun.store.models import Spool, utcnow
+
+    fields = {"length_km": args.length_km, "loss_db_per_km": args.loss_db_per_km,
+              "fibre_type": args.fibre_type, "note": args.note}
+    given = {k: v for k, v in fields.items() if v is not None}
+    if not given:
+        raise InputError("nothing to set: give --length-km, --loss-db-per-km, --fibre-type "
+                         "or --note", field="LABEL")
+    for name, low, high in (("length_km", 0.0, 1.0e5), ("loss_db_per_km", 0.0, 100.0)):
+        v = given.get(name)
+        if v is not None and not (low < v <= high if name == "length_km" else low <= v <= high):
+            raise InputError(f"must be within {low:g}..{high:g}",
+                             field="--" + name.replace("_", "-"))
+    store = open_existing_store(args.db, upgrade=True)
+    try:
+        store.spool_id(args.label)
+        with store.session() as s:
+            spool = s.scalar(select(Spool).where(Spool.label == args.label))
+            for name, value in given.items():
+                setattr(spool, name, value)
+            spool.updated_at = utcnow()
+            out = {"spool": spool.label, "length_km": spool.length_km,
+                   "loss_db_per_km": spool.loss_db_per_km, "fibre_type": spool.fibre_type,
+                   "note": spool.note}
+    finally:
+        store.close()
+    if args.json:
+        print(json.dumps(out, indent=2))
+    else:
+        print(f"spool {out['spool']}: " + ", ".join(f"{k} = {v}" for k, v in out.items()
+                                                     if k != "spool" and v is not None))
+    return 0

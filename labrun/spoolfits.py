@@ -1,0 +1,211 @@
+"""Fits of a spool's stored runs: gather the runs' points, fit them together, store the result.
+
+``fit_runs`` reads the points of one or more runs of ONE spool (a spacing run supplies the
+dispersion a power run lacks), fits them with ``_fit_table`` (the one place that names the fit
+model of ``labrun.fits``), adds the 95 % expanded uncertainty of each parameter and, unless told
+not to, stores the fit (tables ``fits`` and ``fit_parameters``). ``latest_fits`` and
+``fit_history`` read stored fits back for ``labrun spools`` and ``labrun compare``.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+from datetime import datetime
+from typing import Any
+
+from sqlalchemy import select
+
+from labrun import __version__
+from labrun.errors import InputError
+from labrun.store import Store
+from labrun.store.models import Fit, FitParameter, Run, Spool
+
+COVERAGE_P = 0.95  # expanded uncertainty coverage probability (GUM 6.2, 6.3)
+METHOD = "labrun.fits.fit_run on the runs' points together"
+
+
+@dataclass
+class ParameterRecord:
+    """One fitted parameter as stored and reported (JSON keys of ``labrun fit --json``)."""
+
+    value: float | None
+    stderr: float | None
+    u95: float | None
+    unit: str
+    model: str
+    n_points: int
+    residual_rms: float | None
+    extra: dict[str, Any] = field(default_factory=dict)
+
+    def to_dict(self) -> dict[str, Any]:
+        """JSON-ready: value, stderr, u95, unit, model, n_points, residual_rms."""
+        return {"value": self.value, "stderr": self.stderr, "u95": self.u95, "unit": self.unit,
+                "model": self.model, "n_points": self.n_points,
+                "residual_rms": self.residual_rms}
+
+
+@dataclass
+class FitRecord:
+    """A fit of one spool's runs: parameters by name, and where they came from."""
+
+    spool: str
+    run_ids: list[int]
+    parameters: dict[str, ParameterRecord]
+    method: str = METHOD
+    software_version: str = __version__
+    fit_id: int | None = None
+    created_at: datetime | None = None
+    spool_snapshot: dict[str, Any] = field(default_factory=dict)
+
+    def to_dict(self) -> dict[str, Any]:
+        """JSON-ready: fit id, spool, runs, time, and every parameter keyed by its name."""
+        return {"fit_id": self.fit_id, "spool": self.spool, "runs": self.run_ids,
+                "created_at": self.created_at.isoformat() if self.created_at else None,
+                "software_version": self.software_version, "method": self.method,
+                "spool_properties": self.spool_snapshot,
+                "parameters": {k: p.to_dict() for k, p in self.parameters.items()}}
+
+
+def coverage_factor(dof: int, p: float = COVERAGE_P) -> float:
+    """Student-t coverage factor t_p(dof) for an expanded uncertainty (GUM G.3, Table G.2)."""
+    from scipy.stats import t
+
+    return float(t.ppf(0.5 + p / 2.0, max(int(dof), 1)))
+
+
+def expanded(stderr: float | None, n_points: int) -> float | None:
+    """95 % expanded uncertainty U = t_95(n - 1) u; None without a finite standard error.
+
+    Degrees of freedom n - 1 (one location-like parameter per fit); a fit that reports its own
+    degrees of freedom in ``extra["dof"]`` is expected to be passed through ``from_fit`` instead.
+    """
+    if stderr is None or not math.isfinite(stderr) or n_points < 2:
+        return None
+    return coverage_factor(n_points - 1) * stderr
+
+
+def _finite(v: Any) -> float | None:
+    """float, or None for NaN/inf/None."""
+    return float(v) if v is not None and math.isfinite(float(v)) else None
+
+
+def from_fit(result: Any) -> ParameterRecord:
+    """A ParameterRecord from a ``labrun.fits.FitResult`` (u95 from the fit when it has one)."""
+    stderr = _finite(result.stderr)
+    u95 = getattr(result, "u95", None)
+    if u95 is None:
+        dof = (result.extra or {}).get("dof")
+        u95 = (coverage_factor(dof) * stderr if dof and stderr is not None
+               else expanded(stderr, int(result.n_points)))
+    extra = {k: v for k, v in (result.extra or {}).items()
+             if isinstance(v, str | int | float | bool) or v is None}
+    return ParameterRecord(value=_finite(result.value), stderr=stderr, u95=_finite(u95),
+                           unit=result.unit, model=result.model,
+                           n_points=int(result.n_points),
+                           residual_rms=_finite(result.residual_rms), extra=extra)
+
+
+def _fit_table(table: Any, spool: Spool) -> dict[str, Any]:
+    """Fit the points of one spool's runs (the one call to switch to another fit model)."""
+    from labrun.fits import fit_run
+
+    return fit_run(table, spool.length_km, spool.loss_db_per_km)
+
+
+def _spool_of(store: Store, run_ids: list[int]) -> Spool:
+    """The one spool the runs were measured on (InputError: unknown run, mixed or no spool)."""
+    with store.session() as s:
+        runs = {r.id: r for r in s.scalars(select(Run).where(Run.id.in_(run_ids)))}
+        missing = [r for r in run_ids if r not in runs]
+        if missing:
+            raise InputError(f"no run {missing[0]} in this database", field="RUN_ID")
+        spool_ids = {runs[r].spool_id for r in run_ids}
+        if None in spool_ids:
+            bad = next(r for r in run_ids if runs[r].spool_id is None)
+            raise InputError(f"run {bad} is not linked to a spool (stored by labrun 0.1.0?); "
+                             "fit it with Python (labrun.fits) instead", field="RUN_ID")
+        if len(spool_ids) > 1:
+            labels = sorted({runs[r].spool.label for r in run_ids})
+            raise InputError(f"the runs are of different spools ({', '.join(labels)}): fit one "
+                             "spool at a time", field="RUN_ID")
+        spool = s.get(Spool, spool_ids.pop())
+    return spool
+
+
+def fit_runs(store: Store, run_ids: list[int], *, save: bool = True) -> FitRecord:
+    """Fit the runs of one spool together; stores the fit unless ``save`` is False."""
+    import pandas as pd
+
+    from labrun.queries import run_points
+
+    run_ids = list(dict.fromkeys(int(r) for r in run_ids))
+    spool = _spool_of(store, run_ids)
+    if spool.length_km is None or spool.loss_db_per_km is None:
+        raise InputError(f"spool {spool.label} has no length or loss on record: "
+                         f"labrun spool set {spool.label} --length-km KM --loss-db-per-km DB",
+                         field="spool")
+    tables = [run_points(store, r, include_reference=False).assign(run_id=r) for r in run_ids]
+    table = pd.concat([t for t in tables if not t.empty], ignore_index=True) \
+        if any(not t.empty for t in tables) else pd.DataFrame()
+    if table.empty:
+        raise InputError("the runs have no stored points to fit", field="RUN_ID")
+    results = _fit_table(table, spool)
+    params = {name: from_fit(r) for name, r in results.items()}
+    record = FitRecord(spool=spool.label, run_ids=run_ids, parameters=params,
+                       spool_snapshot={"length_km": spool.length_km,
+                                       "loss_db_per_km": spool.loss_db_per_km,
+                                       "fibre_type": spool.fibre_type})
+    if save:
+        store_fit(store, spool.id, record)
+    return record
+
+
+def store_fit(store: Store, spool_id: int, record: FitRecord) -> int:
+    """Write a fit and its parameters in one transaction; sets and returns ``record.fit_id``."""
+    with store.session() as s:
+        fit = Fit(spool_id=spool_id, run_ids=record.run_ids, method=record.method,
+                  software_version=record.software_version,
+                  spool_snapshot=record.spool_snapshot)
+        fit.parameters = [FitParameter(name=name, **vars(p)) for name, p in
+                          record.parameters.items()]
+        s.add(fit)
+        s.flush()
+        record.fit_id, record.created_at = fit.id, fit.created_at
+    return int(record.fit_id)
+
+
+def _record(fit: Fit, label: str) -> FitRecord:
+    """A FitRecord from a stored fit row (parameters loaded)."""
+    params = {p.name: ParameterRecord(value=p.value, stderr=p.stderr, u95=p.u95, unit=p.unit,
+                                      model=p.model, n_points=p.n_points,
+                                      residual_rms=p.residual_rms, extra=p.extra or {})
+              for p in fit.parameters}
+    return FitRecord(spool=label, run_ids=list(fit.run_ids), parameters=params,
+                     method=fit.method, software_version=fit.software_version, fit_id=fit.id,
+                     created_at=fit.created_at, spool_snapshot=fit.spool_snapshot or {})
+
+
+def fit_history(store: Store, label: str) -> list[FitRecord]:
+    """Every stored fit of a spool, oldest first (InputError for an unknown label)."""
+    from sqlalchemy.orm import selectinload
+
+    with store.session() as s:
+        spool = s.scalar(select(Spool).where(Spool.label == label))
+        if spool is None:
+            raise InputError(f"no spool {label!r} in this database", field="LABEL")
+        fits = s.scalars(select(Fit).where(Fit.spool_id == spool.id)
+                         .options(selectinload(Fit.parameters)).order_by(Fit.id)).all()
+        return [_record(f, label) for f in fits]
+
+
+def latest_fits(store: Store) -> dict[str, FitRecord]:
+    """The newest stored fit of every spool that has one, by spool label."""
+    from sqlalchemy import func
+    from sqlalchemy.orm import selectinload
+
+    with store.session() as s:
+        newest = select(func.max(Fit.id)).group_by(Fit.spool_id).scalar_subquery()
+        rows = s.execute(select(Fit, Spool.label).join(Spool, Spool.id == Fit.spool_id)
+                         .where(Fit.id.in_(newest)).options(selectinload(Fit.parameters))).all()
+        return {label: _record(fit, label) for fit, label in rows}

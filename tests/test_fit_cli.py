@@ -1,0 +1,136 @@
+"""``labrun fit``, ``labrun spools`` and ``labrun spool set`` on stored virtual-lab runs, on SQLite
+and PostgreSQL: the fit recovers the scenario's gamma, the expanded uncertainty uses Student's t
+(GUM), the fit is stored (or not), bad input is one line with exit 2."""
+
+from __future__ import annotations
+
+import json
+
+import pytest
+from _store_support import HNLF_GAMMA, run_plan_file
+from sqlalchemy import func, select
+
+from labrun.cli import main
+from labrun.store import open_store
+from labrun.store.models import Fit, FitParameter, Run, Spool
+
+
+@pytest.fixture(scope="module", params=["sqlite", "postgresql"])
+def power_db(request, tmp_path_factory):
+    """A store holding one shipped power sweep of HNLF-A17 (run 1)."""
+    folder = tmp_path_factory.mktemp("fitdb")
+    if request.param == "sqlite":
+        db = str(folder / "runs.db")
+        run_plan_file(db, "power-sweep.toml", folder)
+        yield db
+        return
+    from conftest import pg_schema
+
+    with pg_schema() as db:
+        run_plan_file(db, "power-sweep.toml", folder)
+        yield db
+
+
+def _fit_json(capsys, db, *args):
+    capsys.readouterr()
+    assert main(["fit", *args, "--db", db, "--json"]) == 0
+    return json.loads(capsys.readouterr().out)
+
+
+def _count(db, model) -> int:
+    store = open_store(db)
+    try:
+        with store.session() as s:
+            return int(s.scalar(select(func.count()).select_from(model)))
+    finally:
+        store.close()
+
+
+def test_fit_recovers_gamma_and_stores_it(power_db, capsys):
+    before = _count(power_db, Fit)
+    rep = _fit_json(capsys, power_db, "1")
+    assert rep["spool"] == "HNLF-A17" and rep["runs"] == [1] and rep["fit_id"] is not None
+    g = rep["parameters"]["gamma_bessel"]
+    assert set(g) >= {"value", "stderr", "u95", "unit", "model"}
+    assert g["unit"] == "1/(W km)"
+    # the virtual lab's spool (realism off): gamma = 11.0 /(W km) in default-scenario.toml
+    assert g["value"] == pytest.approx(HNLF_GAMMA, rel=0.01)
+    # expanded uncertainty U = t_95(nu) u with nu = n - 1: GUM (JCGM 100:2008) Table G.2 gives
+    # t_95(20) = 2.09 for the 21 power points (fails with k = 2 or k = 1.96)
+    assert g["n_points"] == 21
+    assert g["u95"] / g["stderr"] == pytest.approx(2.09, abs=0.005)
+    assert _count(power_db, Fit) == before + 1
+    store = open_store(power_db)
+    try:
+        with store.session() as s:
+            row = s.scalars(select(FitParameter).where(FitParameter.fit_id == rep["fit_id"],
+                                                       FitParameter.name == "gamma_bessel")).one()
+            assert row.value == g["value"] and row.u95 == g["u95"]
+            fit = s.get(Fit, rep["fit_id"])
+            assert fit.run_ids == [1] and fit.spool.label == "HNLF-A17"
+            assert fit.spool_snapshot["length_km"] == 1.0
+    finally:
+        store.close()
+
+
+def test_no_store_leaves_the_fits_table_alone(power_db, capsys):
+    before = _count(power_db, Fit)
+    rep = _fit_json(capsys, power_db, "1", "--no-store")
+    assert rep["fit_id"] is None and "gamma_bessel" in rep["parameters"]
+    assert _count(power_db, Fit) == before
+
+
+def test_spools_lists_latest_fit(power_db, capsys):
+    rep = _fit_json(capsys, power_db, "1")
+    assert main(["spools", "--db", power_db, "--json"]) == 0
+    rows = json.loads(capsys.readouterr().out)["spools"]
+    (row,) = [r for r in rows if r["spool"] == "HNLF-A17"]
+    assert row["latest_fit"] == rep["fit_id"] and row["runs"] >= 1
+    assert row["length_km"] == 1.0 and row["fibre_type"] == "highly nonlinear fibre"
+    gamma = row["gamma_per_w_per_km"]
+    assert gamma["value"] == rep["parameters"]["gamma_bessel"]["value"]
+    assert gamma["runs"] == [1] and gamma["u95"] is not None
+    assert main(["spools", "--db", power_db]) == 0
+    assert "HNLF-A17" in capsys.readouterr().out
+
+
+def _one_line_error(capsys, argv, *words):
+    capsys.readouterr()
+    assert main(argv) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1, err
+    for w in words:
+        assert w in err[0]
+
+
+def test_bad_fit_requests(power_db, capsys):
+    _one_line_error(capsys, ["fit", "99", "--db", power_db], "no run 99")
+    store = open_store(power_db)
+    try:  # a run of another spool, recorded directly
+        other = store.spool_id("SMF-B02")
+        run2 = store.create_run(plan_text="", plan_sha256="0", bench_text="",
+                                software_version="t", spool_id=other)
+        bare = store.spool_id("BARE-01")
+        run3 = store.create_run(plan_text="", plan_sha256="0", bench_text="",
+                                software_version="t", spool_id=bare)
+    finally:
+        store.close()
+    _one_line_error(capsys, ["fit", "1", str(run2), "--db", power_db], "different spools")
+    _one_line_error(capsys, ["fit", str(run3), "--db", power_db], "labrun spool set BARE-01")
+    _one_line_error(capsys, ["spool", "set", "BARE-01", "--length-km", "-1", "--db", power_db],
+                    "--length-km")
+    _one_line_error(capsys, ["spool", "set", "BARE-01", "--db", power_db], "nothing to set")
+    assert main(["spool", "set", "BARE-01", "--length-km", "2.5", "--loss-db-per-km", "0.4",
+                 "--fibre-type", "dispersion-shifted", "--note", "invented", "--db",
+                 power_db]) == 0
+    _one_line_error(capsys, ["fit", str(run3), "--db", power_db], "no stored points")
+    store = open_store(power_db)
+    try:
+        with store.session() as s:
+            sp = s.scalar(select(Spool).where(Spool.label == "BARE-01"))
+            assert (sp.length_km, sp.loss_db_per_km, sp.fibre_type, sp.note) == (
+                2.5, 0.4, "dispersion-shifted", "invented")
+            assert sp.updated_at is not None
+            s.execute(Run.__table__.delete().where(Run.id.in_([run2, run3])))
+    finally:
+        store.close()
