@@ -57,7 +57,7 @@ def in_process(lab: VirtualLab, vary: bool, n: int = 20) -> float:
 
 
 def over_wire(lab: VirtualLab, rm: pyvisa.ResourceManager, vary: bool, n: int = 20) -> float:
-    """Median ms of INIT:IMM, *OPC? and a REAL,32 TRAC:DATA:Y? read through pyvisa-py."""
+    """Median ms of INIT:IMM, *OPC? and a REAL,32 TRAC:DATA? LEVEL read through pyvisa-py."""
     osa = rm.open_resource(lab.resources["osa"], read_termination="\n",
                            write_termination="\n", timeout=5000)
     laser = rm.open_resource(lab.resources["laser_a"], read_termination="\n",
@@ -71,7 +71,7 @@ def over_wire(lab: VirtualLab, rm: pyvisa.ResourceManager, vary: bool, n: int = 
         t0 = time.perf_counter()
         osa.write("INIT:IMM")
         osa.query("*OPC?")
-        y = osa.query_binary_values("TRAC:DATA:Y?", datatype="f", container=np.array)
+        y = osa.query_binary_values("TRAC:DATA? LEVEL", datatype="f", container=np.array)
         times.append((time.perf_counter() - t0) * 1e3)
         assert y.size == POINTS
     osa.close()

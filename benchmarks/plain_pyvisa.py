@@ -33,7 +33,7 @@ class Step:
 
 
 def run(resources: dict[str, str], setup: dict[str, list[str]], steps: list[Step],
-        folder: Path, *, sweep: str = "INIT:IMM", trace_y: str = "TRAC:DATA:Y?"
+        folder: Path, *, sweep: str = "INIT:IMM", trace_y: str = "TRAC:DATA? LEVEL"
         ) -> tuple[float, list[float]]:
     """Measure every step; (seconds from the first setting to the last row, seconds per point).
 

@@ -83,10 +83,12 @@ KEY_FIELDS = (
 
 # RBW values a grating OSA offers, 1-2-5 sequence in nm (common practice).
 RBW_STEPS_NM = (0.002, 0.005, 0.01, 0.02, 0.05, 0.1, 0.2, 0.5, 1.0, 2.0)
-# Sample counts, odd so a sample lands on the centre (common practice).
 # dB per (d/FWHM)^2 of a Gaussian filter: 10 log10(e) * 4 ln 2 (mathematical fact).
 GAUSS_DB = 10.0 * math.log10(math.e) * 4.0 * math.log(2.0)
-POINT_STEPS = (101, 201, 501, 1001, 2001, 5001, 10001, 20001, 50001, 100001, 200001)
+# Sample counts labrun offers (its own choice): odd, so a sample lands on the centre, and 2^n + 1,
+# so each step halves the sample spacing of the one before and keeps every earlier sample.
+POINT_STEPS = tuple(2**n + 1 for n in range(5, 19))  # 33 ... 262145
+OSA_POINTS_RANGE = (33.0, 65537.0)  # sampling points when the OSA profile states no range
 
 
 # ----------------------------------------------------------------------------- file structure
@@ -988,7 +990,7 @@ def choose_osa_settings(plan: Plan, bench: Any = None) -> OsaSettings:
             warnings.append(f"the OSA's finest RBW {rbw:g} nm exceeds {why_limit} "
                             f"({sp_ghz:g} GHz): neighbouring lines may merge")
 
-    pts_rng = op_range(bench, "osa", "set_points") or (101.0, 50001.0)
+    pts_rng = op_range(bench, "osa", "set_points") or OSA_POINTS_RANGE
     need_pts = math.ceil(spec.samples_per_rbw * span / rbw) + 1
     if spec.points is not None:
         n = spec.points

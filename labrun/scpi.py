@@ -514,8 +514,9 @@ class ScpiSession:
     def setting_then_block(self, cmd: str, queries: list[str] | tuple[str, ...], block_query: str,
                            byte_order: str = "little") -> tuple[list[str], np.ndarray]:
         """A setting, ``queries``, a REAL,32 block query and the error query in ONE compound
-        message (``INIT:IMM;*OPC?;:TRAC:DATA:Y?;:SYST:ERR?``); the replies to ``queries`` and the
-        block's values. Errors are handled as in :meth:`setting` (the error query comes last)."""
+        message (``INIT:IMM;*OPC?;:TRAC:DATA? LEVEL;:SYST:ERR?``); the replies to ``queries``
+        and the block's values. Errors are handled as in :meth:`setting` (the error query comes
+        last)."""
         if not (self.compound and self.error_query):
             raise InstrumentError("compound messages are not enabled for this instrument",
                                   role=self.role, resource=self.resource)

@@ -61,7 +61,7 @@ def _peer_reply(state: InstPeerState, line: str) -> bytes | None:
         if state.endless_errors:
             return b'-350,"Queue overflow"\n'
         return (state.errors.pop(0) if state.errors else '0,"No error"').encode() + b"\n"
-    if line == "TRAC:DATA:Y?":
+    if line == "TRAC:DATA? LEVEL":
         return bytes(to_ieee_block(state.trace, "f", state.big_endian)) + b"\n"
     if line == "TRAC:ASC?":
         return (",".join(repr(v) for v in state.trace) + "\n").encode()

@@ -44,7 +44,7 @@ def test_adapter_types(inst_bench):
                 "switch": SwitchAdapter}
     assert {role: type(a) for role, a in ins.items()} == expected
     idns = ins.identities()
-    assert idns["laser_a"].serial == "SIM-LA-0001" and idns["laser_b"].serial == "SIM-LB-0002"
+    assert idns["laser_a"].serial == "PS00A1" and idns["laser_b"].serial == "PS00B2"
     assert all(i.manufacturer for i in idns.values())
 
 
@@ -138,14 +138,14 @@ def test_pol_controller_every_operation(inst_bench):
 def test_osa_every_operation(inst_bench):
     _, ins, traffic_log = inst_bench
     osa = ins["osa"]
-    osa.configure(1549.8, 2.0, 0.05, 101)
-    assert osa.settings() == pytest.approx({"center_nm": 1549.8, "span_nm": 2.0,
-                                            "rbw_nm": 0.05, "points": 101})
+    osa.configure(1549.8, 2.56, 0.05, 129)
+    assert osa.settings() == pytest.approx({"center_nm": 1549.8, "span_nm": 2.56,
+                                            "rbw_nm": 0.05, "points": 129})
     osa.sweep()
     assert [e.text for e in traffic_log.entries][-3:] == ["INIT:IMM", "SYST:ERR?", "*OPC?"]
     x, y = osa.read_trace()
-    assert x.size == y.size == 101
-    assert x[0] == pytest.approx(1548.8) and x[-1] == pytest.approx(1550.8)
+    assert x.size == y.size == 129
+    assert x[0] == pytest.approx(1548.52) and x[-1] == pytest.approx(1551.08)
     assert np.all(np.diff(x) > 0)
     assert x[np.argmax(y)] in (pytest.approx(1549.6), pytest.approx(1550.0))
     assert "FORM:DATA ASC" in [e.text for e in traffic_log.writes("osa")]
@@ -276,14 +276,14 @@ def test_real32_trace_and_safe_off_against_virtual_lab(tmp_path):
             ins["laser_a"].output_on()
             ins["attenuator_a"].set_attenuation_db(3.0)
             ins["attenuator_a"].output_on()
-            ins["osa"].configure(1550.0, 4.0, 0.05, 2001)
+            ins["osa"].configure(1550.0, 4.0, 0.05, 2049)
             ins["osa"].sweep()
             x, y = ins["osa"].read_trace()
-            assert x.size == y.size == 2001 and np.all(np.diff(x) > 0)
+            assert x.size == y.size == 2049 and np.all(np.diff(x) > 0)
             assert y.max() > -30.0  # the laser line stands far above the floor
             assert ins.safe_off_all() == []
         assert lab.sources_off()
-        assert "<block 8004 bytes>" in [e.reply for e in traffic_log.entries]
+        assert "<block 8196 bytes>" in [e.reply for e in traffic_log.entries]
 
 
 def test_block_osa_falls_back_to_ascii_when_refused(inst_sim_bench_path):
@@ -295,6 +295,6 @@ def test_block_osa_falls_back_to_ascii_when_refused(inst_sim_bench_path):
     traffic_log = TrafficLog()
     with open_bench(bench, traffic_log=traffic_log, roles=["osa"]) as ins:
         x, y = ins["osa"].read_trace()
-        assert x.size == y.size == 101
+        assert x.size == y.size == 129
     sent = [e.text for e in traffic_log.writes("osa")]
     assert sent[-2:] == ["FORM:DATA REAL,32", "FORM:DATA ASC"]

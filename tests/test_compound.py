@@ -130,22 +130,24 @@ def test_block_with_newline_bytes_is_read_whole(inst_scpi_peer):
     np.testing.assert_array_equal(from_ieee_block(block, "f", False), values)
     inst_scpi_peer.state.trace = values.tolist()
     with ScpiSession(inst_scpi_peer.resource, "@py", timeout_ms=2000) as s:
-        got = s.query_block_real32("TRAC:DATA:Y?", "little")
+        got = s.query_block_real32("TRAC:DATA? LEVEL", "little")
         assert s.query("*IDN?").startswith("Loopback")  # nothing left over on the connection
     np.testing.assert_array_equal(got, values.astype(float))
 
 
 def test_sweep_and_trace_in_one_message(lab):
-    """INIT:IMM;*OPC?;:TRAC:DATA:Y?;:SYST:ERR? : a block inside a compound response (IEEE 488.2
-    arbitrary block response data among ';'-separated units) decodes to the same values as a
-    separate TRAC:DATA:Y? of that sweep; a failing block query names the setting."""
+    """INIT:IMM;*OPC?;:TRAC:DATA? LEVEL;:SYST:ERR? : a block inside a compound response
+    (IEEE 488.2 arbitrary block response data among ';'-separated units) decodes to the same
+    values as a separate TRAC:DATA? LEVEL of that sweep; a failing block query names the
+    setting."""
     with _session(lab, "osa", compound=True) as s:
-        for cmd in ("FORM:DATA REAL,32", "FORM:BORD SWAP", "SENS:SWE:POIN 101"):
+        for cmd in ("FORM:DATA REAL,32", "FORM:BORD SWAP", "SENS:SWE:POIN 129"):
             s.setting(cmd)
-        units, y = s.setting_then_block("INIT:IMM", ["*OPC?"], "TRAC:DATA:Y?", "little")
-        assert units == ["1"] and y.shape == (101,)
-        np.testing.assert_array_equal(y, s.query_block_real32("TRAC:DATA:Y?", "little"))
+        units, y = s.setting_then_block("INIT:IMM", ["*OPC?"], "TRAC:DATA? LEVEL", "little")
+        assert units == ["1"] and y.shape == (129,)
+        np.testing.assert_array_equal(y, s.query_block_real32("TRAC:DATA? LEVEL", "little"))
         with pytest.raises(ScpiError) as info:
-            s.setting_then_block("INIT:IMM", ["*OPC?"], "TRAC:DATA:BOGUS?", "little")
-        assert info.value.code == -113 and info.value.command == "INIT:IMM"  # SCPI-1999
+            s.setting_then_block("INIT:IMM", ["*OPC?"], "TRAC:DATA? BOGUS", "little")
+        # SCPI-1999 -141 Invalid character data: BOGUS is no trace name of this OSA.
+        assert info.value.code == -141 and info.value.command == "INIT:IMM"
         assert s.query("SYST:ERR?") == '0,"No error"' and s.query("*OPC?") == "1"

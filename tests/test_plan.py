@@ -480,9 +480,9 @@ values = [1540.0, 1560.0]
 
 
 def test_osa_explicit_values_and_warnings(tmp_path):
-    plan = make_plan(tmp_path, ZIP_POWERS + "[osa]\nrbw_nm = 0.5\nspan_nm = 2.0\npoints = 101\n")
+    plan = make_plan(tmp_path, ZIP_POWERS + "[osa]\nrbw_nm = 0.5\nspan_nm = 2.0\npoints = 129\n")
     osa = plan.osa_settings()
-    assert (osa.rbw_nm, osa.span_nm, osa.points) == (0.5, 2.0, 101)
+    assert (osa.rbw_nm, osa.span_nm, osa.points) == (0.5, 2.0, 129)
     text = " ".join(osa.warnings)
     assert "spacing/4" in text and "does not cover" in text
     assert "as given" in osa.reason

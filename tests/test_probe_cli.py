@@ -21,13 +21,13 @@ def test_probe_sim_bench_json(inst_sim_bench_path, capsys, tmp_path):
     by_role = {i["role"]: i for i in out["instruments"]}
     assert set(by_role) == ROLES
     for item in by_role.values():
-        assert item["idn"].startswith("Simulated Photonics,")
+        assert item["idn"].startswith("LABRUN-PYSIM,")
         assert item["checks"] and all(c["ok"] for c in item["checks"]), item
         assert set(item) == {"role", "resource", "idn", "checks"}
         assert all(set(c) == {"operation", "ok", "detail"} for c in item["checks"])
     ops = {c["operation"] for c in by_role["osa"]["checks"]}
     assert {"read_trace_x", "read_trace_y", "read_rbw_nm", "read_points"} <= ops
-    assert "101 points" in next(c["detail"] for c in by_role["osa"]["checks"]
+    assert "129 points" in next(c["detail"] for c in by_role["osa"]["checks"]
                                 if c["operation"] == "read_trace_y")
     # every read operation of every profile was exercised
     from labrun.bench import load_bench

@@ -38,7 +38,7 @@ def test_block_real32_matches_pyvisa_codec(inst_scpi_peer, byte_order):
     inst_scpi_peer.state.big_endian = byte_order == "big"
     traffic_log = TrafficLog()
     with _session(inst_scpi_peer, traffic_log) as s:
-        got = s.query_block_real32("TRAC:DATA:Y?", byte_order)
+        got = s.query_block_real32("TRAC:DATA? LEVEL", byte_order)
     np.testing.assert_array_equal(got, values.astype(float))
     # the traffic log keeps the size, not the bytes
     assert traffic_log.entries[-1].reply == f"<block {4 * values.size} bytes>"
@@ -58,14 +58,14 @@ def test_block_header_follows_ieee_488_2(inst_scpi_peer):
     assert bytes(to_ieee_block(values, "f", False)) == block
     inst_scpi_peer.state.trace = values
     with _session(inst_scpi_peer) as s:
-        assert s.query_block_real32("TRAC:DATA:Y?", "little").tolist() == values
+        assert s.query_block_real32("TRAC:DATA? LEVEL", "little").tolist() == values
 
 
 def test_wrong_byte_order_gives_different_values(inst_scpi_peer):
     """A block read with the wrong byte order must not silently equal the right one."""
     inst_scpi_peer.state.trace = [1.0, 2.0, 3.0]
     with _session(inst_scpi_peer) as s:
-        assert s.query_block_real32("TRAC:DATA:Y?", "big").tolist() != [1.0, 2.0, 3.0]
+        assert s.query_block_real32("TRAC:DATA? LEVEL", "big").tolist() != [1.0, 2.0, 3.0]
 
 
 def test_ascii_fallback(inst_scpi_peer):

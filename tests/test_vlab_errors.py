@@ -34,6 +34,7 @@ STANDARD = {
     -109: "Missing parameter",
     -113: "Undefined header",
     -114: "Header suffix out of range",
+    -141: "Invalid character data",
     -200: "Execution error",
     -221: "Settings conflict",
     -222: "Data out of range",
@@ -63,7 +64,7 @@ def test_every_message_is_the_standards() -> None:
 
 def test_every_code_the_virtual_lab_can_raise_has_its_message() -> None:
     raised = _codes_in_source()
-    assert {-104, -108, -109, -113, -114, -221, -222, -224, -300, -310, -363} <= raised
+    assert {-104, -108, -109, -113, -114, -141, -221, -222, -224, -300, -310, -363} <= raised
     assert raised <= set(ERRORS), sorted(raised - set(ERRORS))
     with pytest.raises(KeyError):  # a code without a message is refused, not sent as "Error"
         ErrorQueue().push(-999)
@@ -118,6 +119,8 @@ def _open(rm, lab, role):
     ("switch", "ROUT:PATH 7", -222),
     ("switch", "ROUT:PATH 1.5", -224),
     ("pol_controller", "POL:ANGL4 10", -114),
+    ("osa", "TRAC:DATA? SPECTRUM", -141),  # not one of its trace names
+    ("osa", "TRAC:DATA?", -109),
     ("laser_a", "OUTP:STAT ON", -221),     # the interlock is open in this test
 ])
 def test_each_error_over_the_wire_carries_the_standard_message(rm, role, message, code):

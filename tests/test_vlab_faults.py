@@ -125,12 +125,12 @@ def test_garbled_reply_spurious_error_and_short_trace_over_the_wire(rm):
     scenario = scenario_with({"short_trace_probability": 1.0, "roles": ["osa"]})
     with VirtualLab(scenario, seed=3) as lab:
         osa = open_role(rm, lab, "osa", timeout_ms=2000)
-        osa.write("SENS:SWE:POIN 1001;:INIT:IMM")
+        osa.write("SENS:SWE:POIN 1025;:INIT:IMM")
         assert osa.query("*OPC?") == "1"
         osa.write("FORM:DATA REAL,32;:FORM:BORD SWAP")
-        y = osa.query_binary_values("TRAC:DATA:Y?", datatype="f", container=np.array)
-        x = osa.query_binary_values("TRAC:DATA:X?", datatype="f", container=np.array)
-        assert x.size == 1001 and 100 <= y.size < 1001
+        y = osa.query_binary_values("TRAC:DATA? LEVEL", datatype="f", container=np.array)
+        x = osa.query_binary_values("TRAC:DATA? WLEN", datatype="f", container=np.array)
+        assert x.size == 1025 and 102 <= y.size < 1025
         osa.close()
 
 

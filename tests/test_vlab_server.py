@@ -190,26 +190,26 @@ def test_short_long_forms_case_and_compound_messages(rm, lab):
 def test_real32_block_matches_ascii_read_of_the_same_sweep(rm, lab):
     s = light_up(rm, lab)
     osa = s["osa"]
-    osa.write("SENS:WAV:CENT 1549.6;SPAN 4;:SENS:BAND:RES 0.05;:SENS:SWE:POIN 2001")
+    osa.write("SENS:WAV:CENT 1549.6;SPAN 4;:SENS:BAND:RES 0.05;:SENS:SWE:POIN 2049")
     osa.write("INIT:IMM")
     assert osa.query("*OPC?") == "1"
     osa.write("FORM:DATA ASC")
-    y_ascii = np.array(osa.query_ascii_values("TRAC:DATA:Y?"))
-    x_ascii = np.array(osa.query_ascii_values("TRAC:DATA:X?"))
+    y_ascii = np.array(osa.query_ascii_values("TRAC:DATA? LEVEL"))
+    x_ascii = np.array(osa.query_ascii_values("TRAC:DATA? WLEN"))
     osa.write("FORM:DATA REAL,32")
     for border, big in (("SWAP", False), ("NORM", True)):   # SCPI-1999 FORM:BORD
         osa.write(f"FORM:BORD {border}")
         # pyvisa's own IEEE 488.2 definite-length block codec decodes the reply
-        y = osa.query_binary_values("TRAC:DATA:Y?", datatype="f", is_big_endian=big,
+        y = osa.query_binary_values("TRAC:DATA? LEVEL", datatype="f", is_big_endian=big,
                                     container=np.array)
-        x = osa.query_binary_values("TRAC:DATA:X?", datatype="f", is_big_endian=big,
+        x = osa.query_binary_values("TRAC:DATA? WLEN", datatype="f", is_big_endian=big,
                                     container=np.array)
-        assert y.size == x.size == 2001
+        assert y.size == x.size == 2049
         np.testing.assert_allclose(y, y_ascii, atol=6e-4)    # ASCII carries 3 decimals
         np.testing.assert_allclose(x, x_ascii, atol=2e-4)    # float32 near 1550 nm: ~1e-4
     osa.write("FORM:BORD SWAP")
-    raw = osa.query_binary_values("TRAC:DATA:Y?", datatype="B", container=bytes)
-    assert len(raw) == 4 * 2001
+    raw = osa.query_binary_values("TRAC:DATA? LEVEL", datatype="B", container=bytes)
+    assert len(raw) == 4 * 2049
     assert osa.query("FORM?") == "REAL,32" and osa.query("FORM:BORD?") == "SWAP"
     assert error(osa) == 0
     close_all(s)
@@ -228,8 +228,8 @@ def test_sweep_matches_bessel_model_for_dispersion_free_spool(rm):
         osa.write("SENS:WAV:CENT 1549.6;SPAN 6;:SENS:BAND:RES 0.05;:SENS:SWE:POIN 6001")
         osa.write("INIT:IMM;*WAI")
         osa.write("FORM:DATA REAL,32;BORD SWAP")
-        y = osa.query_binary_values("TRAC:DATA:Y?", datatype="f", container=np.array)
-        x = osa.query_binary_values("TRAC:DATA:X?", datatype="f", container=np.array)
+        y = osa.query_binary_values("TRAC:DATA? LEVEL", datatype="f", container=np.array)
+        x = osa.query_binary_values("TRAC:DATA? WLEN", datatype="f", container=np.array)
         close_all(s)
     bench = data["bench"]
     pa = 10 ** ((10.0 - bench["path_loss_a_db"]) / 10) * 1e-3   # launched, W
@@ -256,7 +256,7 @@ def test_switch_path_2_shows_the_input_tap_and_power_meter_reads_it(rm, lab):
     osa.write("SENS:WAV:CENT 1549.6;SPAN 4;:SENS:SWE:POIN 4001")
     osa.write("INIT:IMM")
     osa.query("*OPC?")
-    y = np.array(osa.query_ascii_values("TRAC:DATA:Y?"))
+    y = np.array(osa.query_ascii_values("TRAC:DATA? LEVEL"))
     cal = lab.scenario.bench
     tap_a = 6.0 - cal.path_loss_a_db - cal.input_tap_db
     assert abs(y.max() - max(tap_a, 6.0 - cal.path_loss_b_db - cal.input_tap_db)) < 0.05
@@ -276,8 +276,8 @@ def test_orthogonal_polarisation_suppresses_sidebands(rm, lab):
     def first_sideband() -> float:
         osa.write("INIT:IMM")
         osa.query("*OPC?")
-        y = np.array(osa.query_ascii_values("TRAC:DATA:Y?"))
-        x = np.array(osa.query_ascii_values("TRAC:DATA:X?"))
+        y = np.array(osa.query_ascii_values("TRAC:DATA? LEVEL"))
+        x = np.array(osa.query_ascii_values("TRAC:DATA? WLEN"))
         return float(y[np.argmin(np.abs(x - 1548.4))])
 
     parallel = first_sideband()
@@ -359,11 +359,11 @@ def test_drop_connections_then_reconnect(rm, lab):
 def test_opc_query_waits_for_the_sweep_at_nonzero_time_scale(rm):
     with VirtualLab(parse_scenario(scenario_data()), time_scale=0.5) as lab:
         osa = open_role(rm, lab, "osa")
-        osa.write("SENS:WAV:SPAN 10;:SENS:BAND:RES 0.05;:SENS:SWE:POIN 1001")
+        osa.write("SENS:WAV:SPAN 10;:SENS:BAND:RES 0.05;:SENS:SWE:POIN 1025")
         t0 = time.perf_counter()
         osa.write("INIT:IMM")
         assert osa.query("*OPC?") == "1"
-        # sweep time model 0.05 + 1001*20e-6 + 10/(0.05*2000) = 0.170 s, times 0.5
+        # sweep time model 0.05 + 1025*20e-6 + 10/(0.05*2000) = 0.1705 s, times 0.5
         assert time.perf_counter() - t0 >= 0.08
         osa.close()
 

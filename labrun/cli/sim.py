@@ -202,6 +202,16 @@ def run_spectrum(args: argparse.Namespace) -> int:
     return 0
 
 
+def _sample_count(need: int) -> int:
+    """The smallest of the plans' sample counts (labrun.plan.POINT_STEPS) that holds ``need``
+    samples, within the OSA's sampling-point range, as a plan would set the OSA."""
+    from labrun.plan import OSA_POINTS_RANGE, POINT_STEPS
+
+    lo, hi = OSA_POINTS_RANGE
+    fits = [n for n in POINT_STEPS if n >= need and lo <= n <= hi]
+    return fits[0] if fits else int(hi)
+
+
 def _write_trace(args: argparse.Namespace, scenario: Scenario, spool_name: str,
                  lines: list[ModelLine]) -> Path:
     """Synthesise the OSA trace (through output_to_osa_db, the scenario's OSA floor) as CSV."""
@@ -213,7 +223,7 @@ def _write_trace(args: argparse.Namespace, scenario: Scenario, spool_name: str,
     p = np.array([x.power_dbm for x in lines]) - scenario.bench.output_to_osa_db
     margin = max(10.0 * args.rbw_nm, 0.2 * (wl.max() - wl.min()))
     lo, hi = wl.min() - margin, wl.max() + margin
-    points = int(np.clip(round((hi - lo) / (args.rbw_nm / 5.0)) + 1, 101, 50001))
+    points = _sample_count(round((hi - lo) / (args.rbw_nm / 5.0)) + 1)
     x = np.linspace(lo, hi, points)
     osa = scenario.instruments.osa
     real = scenario.realism

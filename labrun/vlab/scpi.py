@@ -23,6 +23,7 @@ ERRORS: dict[int, str] = {
     -109: "Missing parameter",
     -113: "Undefined header",
     -114: "Header suffix out of range",
+    -141: "Invalid character data",
     -200: "Execution error",
     -221: "Settings conflict",
     -222: "Data out of range",

@@ -36,6 +36,10 @@ from labrun.vlab.state import LabState
 
 log = logging.getLogger(__name__)
 MAX_INPUT_BYTES = 1 << 20  # a message longer than this without a newline overruns the buffer
+# The wavelength-calibration node of labrun's attenuator and power meter (one form for both).
+WAVELENGTH_CAL = "CALibration#:WLENgth"
+# Trace names of the OSA's TRAC:DATA? query: wavelength axis and level axis.
+TRACE_NAMES = {"WLEN": "x", "LEVEL": "y"}
 
 
 def _source_switch(call: Call, lab: LabState) -> bool:
@@ -273,7 +277,7 @@ class AmplifierInstrument(SimInstrument):
 
 
 class AttenuatorInstrument(SimInstrument):
-    """Variable attenuator with shutter: INP:WAV, INP:ATT, OUTP:STAT (generic-attenuator)."""
+    """Variable attenuator with shutter: CAL:WLEN, INP:ATT, OUTP:STAT (generic-attenuator)."""
 
     kind = "attenuator"
     WAVELENGTH_NM = (1250.0, 1650.0)
@@ -284,8 +288,8 @@ class AttenuatorInstrument(SimInstrument):
 
     def register(self) -> None:
         t = self.table
-        t.add("INPut#:WAVelength", self._set_wavelength)
-        t.add("INPut#:WAVelength", lambda c: fmt(self._state().wavelength_nm), query=True)
+        t.add(WAVELENGTH_CAL, self._set_wavelength)
+        t.add(WAVELENGTH_CAL, lambda c: fmt(self._state().wavelength_nm), query=True)
         t.add("INPut#:ATTenuation", self._set_attenuation)
         t.add("INPut#:ATTenuation", lambda c: fmt(self._state().attenuation_db), query=True)
         t.add("OUTPut#[:STATe]", self._set_output)
@@ -356,7 +360,9 @@ class PolControllerInstrument(SimInstrument):
 
 class OsaInstrument(SimInstrument):
     """Optical spectrum analyser: SENS:WAV:CENT/SPAN, SENS:BAND:RES, SENS:SWE:POIN, INIT:IMM,
-    TRAC:DATA:X?/Y?, FORM:DATA, FORM:BORD (generic-osa)."""
+    TRAC:DATA? WLEN|LEVEL, FORM:DATA, FORM:BORD (generic-osa)."""
+
+    POINTS = (33, 65537)  # sampling points, as drivers/generic-osa.toml
 
     kind = "osa"
 
@@ -372,8 +378,8 @@ class OsaInstrument(SimInstrument):
         t.add("[SENSe]:SWEep:POINts", self._set_points)
         t.add("[SENSe]:SWEep:POINts", lambda c: str(osa.points), query=True)
         t.add("INITiate[:IMMediate]", self._init, nargs=(0, 0), waits=True)
-        t.add("TRACe[:DATA]:X", lambda c: self._trace(c, "x"), query=True, waits=True)
-        t.add("TRACe[:DATA]:Y", lambda c: self._trace(c, "y"), query=True, waits=True)
+        # SCPI-1999 TRACe[:DATA]? <trace_name>, with trace names of labrun's own.
+        t.add("TRACe[:DATA]", self._named_trace, query=True, waits=True, nargs=(1, 1))
         t.add("FORMat[:DATA]", self._set_format, nargs=(1, 2))
         t.add("FORMat[:DATA]", lambda c: "REAL,32" if osa.real32 else "ASC,8", query=True)
         t.add("FORMat:BORDer", self._set_border)
@@ -381,7 +387,7 @@ class OsaInstrument(SimInstrument):
 
     def reset(self) -> None:
         osa = self.lab.osa
-        osa.center_nm, osa.span_nm, osa.rbw_nm, osa.points = 1550.0, 10.0, 0.05, 1001
+        osa.center_nm, osa.span_nm, osa.rbw_nm, osa.points = 1550.0, 10.0, 0.05, 1025
         osa.real32, osa.little_endian = False, False
 
     def _setter(self, name: str, lo: float, hi: float):
@@ -390,7 +396,7 @@ class OsaInstrument(SimInstrument):
         return handler
 
     def _set_points(self, call: Call) -> None:
-        self.lab.osa.points = int(round(number(call, 101, 50001, 1001)))
+        self.lab.osa.points = int(round(number(call, *self.POINTS, 1025)))
 
     def _set_format(self, call: Call) -> None:
         kind = call.args[0].upper()
@@ -423,6 +429,14 @@ class OsaInstrument(SimInstrument):
     def _init(self, call: Call) -> None:
         self.lab.sweep()
 
+    def _named_trace(self, call: Call) -> str | bytes:
+        """TRAC:DATA? WLEN (wavelengths, nm) or TRAC:DATA? LEVEL (dBm per RBW); another name
+        is -141 Invalid character data (SCPI-1999 vol. 2, 21.8)."""
+        axis = TRACE_NAMES.get(call.args[0].strip().upper())
+        if axis is None:
+            raise ScpiFault(-141, f"{call.header} {call.args[0]}")
+        return self._trace(call, axis)
+
     def _trace(self, call: Call, axis: str) -> str | bytes:
         osa = self.lab.osa
         if osa.sweeps == 0:  # trace memory at power-on: a dark trace at the floor, no error
@@ -445,15 +459,15 @@ class OsaInstrument(SimInstrument):
 
 
 class PowerMeterInstrument(SimInstrument):
-    """Power meter on the spool-input tap: SENS:POW:WAV, READ:POW? (generic-power-meter)."""
+    """Power meter on the spool-input tap: CAL:WLEN, READ:POW? (generic-power-meter)."""
 
     kind = "power_meter"
 
     def register(self) -> None:
         t = self.table
         pm = self.lab.power_meter
-        t.add("[SENSe#]:POWer:WAVelength", self._set_wavelength)
-        t.add("[SENSe#]:POWer:WAVelength", lambda c: fmt(pm.wavelength_nm), query=True)
+        t.add(WAVELENGTH_CAL, self._set_wavelength)
+        t.add(WAVELENGTH_CAL, lambda c: fmt(pm.wavelength_nm), query=True)
         for pattern in ("READ#[:SCALar]:POWer[:DC]", "FETCh#[:SCALar]:POWer[:DC]",
                         "MEASure#[:SCALar]:POWer[:DC]"):
             t.add(pattern, lambda c: f"{self.lab.tap_power_dbm():.4f}", query=True)

@@ -70,7 +70,7 @@ class Osa:
     center_nm: float = 1550.0
     span_nm: float = 10.0
     rbw_nm: float = 0.05
-    points: int = 1001
+    points: int = 1025
     real32: bool = False          # FORM:DATA REAL,32 (True) or ASCii (False, the *RST default)
     little_endian: bool = False   # FORM:BORD SWAP (True) or NORMal (False, the *RST default)
     x_nm: np.ndarray = field(default_factory=lambda: np.zeros(0))
