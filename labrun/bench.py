@@ -8,15 +8,16 @@ The format is in DEVELOPERS.md ("Bench files").
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any
+from typing import Any, Literal
 
 from pydantic import BaseModel, Field, ValidationError
 from pyvisa import rname
 
 from labrun.errors import InputError
-from labrun.inputfile import FILE_MODEL_CONFIG, decode, parse_toml, read_bytes
+from labrun.inputfile import FILE_MODEL_CONFIG, Number, decode, parse_toml, read_bytes
 from labrun.profiles import Profile, load_profile
 from labrun.resources import find_file
 from labrun.scpi import BACKENDS
@@ -61,6 +62,19 @@ class Calibration(_Strict):
     input_tap_db: float = Field(0.0, **LOSS_DB)
 
 
+class Polarisation(_Strict):
+    """How polarisation setpoints map to the tones' relative state (fits; docs/design.md §5.5).
+
+    pol_stokes setpoints are tone b's Stokes vector in the frame where tone a is tone_a_stokes;
+    pol_angles_deg become a Stokes vector only through a controller model, here
+    "quarter-half-quarter" paddles fed with input_stokes. Without one, fits refuse varying angles.
+    """
+
+    tone_a_stokes: tuple[Number, Number, Number] = Field((1.0, 0.0, 0.0), strict=False)
+    controller: Literal["quarter-half-quarter"] | None = None
+    input_stokes: tuple[Number, Number, Number] = Field((1.0, 0.0, 0.0), strict=False)
+
+
 class _InstrumentModel(_Strict):
     resource: str
     backend: str = "@py"
@@ -71,6 +85,7 @@ class _InstrumentModel(_Strict):
 class _BenchFile(_Strict):
     bench: _BenchHead
     calibration: Calibration = Calibration()
+    polarisation: Polarisation = Polarisation()
     instruments: dict[str, _InstrumentModel]
 
 
@@ -101,6 +116,7 @@ class Bench:
     sim_file: Path | None
     calibration: Calibration
     instruments: dict[str, InstrumentSpec] = field(default_factory=dict)
+    polarisation: Polarisation = field(default_factory=Polarisation)
 
     def missing_sweep_roles(self) -> list[str]:
         """Roles a sweep needs that this bench lacks (a probe works on any subset)."""
@@ -153,6 +169,9 @@ def parse_bench(text: str, path: Path) -> Bench:
         loc = ".".join(str(p) for p in err["loc"]) or "(top)"
         raise _fail(path, loc, err["msg"]) from None
     head = model.bench
+    for name in ("tone_a_stokes", "input_stokes"):
+        if math.hypot(*getattr(model.polarisation, name)) == 0.0:
+            raise _fail(path, f"polarisation.{name}", "a Stokes vector must not be all zeros")
     calib_given = data.get("calibration", {})
     for role, key in (("amplifier", "amplifier_loss_db"), ("power_meter", "input_tap_db")):
         if role in model.instruments and key not in calib_given:
@@ -175,7 +194,8 @@ def parse_bench(text: str, path: Path) -> Bench:
     return Bench(path=path, text=text, name=head.name,
                  max_total_launched_dbm=head.max_total_launched_dbm,
                  settle_scale=head.settle_scale, sim_file=sim_file,
-                 calibration=model.calibration, instruments=instruments)
+                 calibration=model.calibration, instruments=instruments,
+                 polarisation=model.polarisation)
 
 
 def load_bench(path: str | Path) -> Bench:

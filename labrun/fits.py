@@ -33,6 +33,7 @@ from scipy.special import j0, j1
 
 from labrun.physics.fibre import Fibre
 from labrun.physics.fwm import inoue_efficiency, sideband_mismatch_per_km
+from labrun.physics.polarisation import copolar_fraction, paddles_to_stokes
 from labrun.physics.units import alpha_per_km, dbm_to_w, effective_length_km
 
 LINE_KEY = re.compile(r"^(tone|sideband)_(low|high)_(\d+)$")
@@ -50,6 +51,8 @@ class FitResult:
     model: str
     unit: str
     extra: dict = field(default_factory=dict)
+    warnings: list[str] = field(default_factory=list)  # what the fit lacked or assumed
+    conventions: str = ""  # sign and frame conventions of the value, in words
 
     def to_dict(self) -> dict:
         """JSON-ready dict (NaN becomes None)."""
@@ -94,7 +97,7 @@ def points_table(points) -> dict[str, np.ndarray]:
     table: dict[str, np.ndarray] = {}
     for k in keys:
         vals = [r.get(k) for r in flat]
-        if k in ("pol_stokes_a", "pol_stokes_b", "pol_angles_deg"):
+        if k in ("pol_stokes", "pol_stokes_a", "pol_stokes_b", "pol_angles_deg"):
             table[k] = np.array([_vec3(v) for v in vals], dtype=float).reshape(len(vals), 3)
             continue
         try:
@@ -117,22 +120,96 @@ def _col(t: Mapping[str, np.ndarray], name: str, n: int, default: float = np.nan
     return t[name] if name in t else np.full(n, default)
 
 
-def _copolar(t: Mapping[str, np.ndarray], n: int) -> np.ndarray:
-    """Co-polarised fraction per point: 'copolar', else from 'pol_stokes_a'/'pol_stokes_b'.
+@dataclass(frozen=True)
+class PolFrame:
+    """How a run's polarisation setpoints map to the tones' relative state (docs/design.md §5.5).
 
-    Missing polarisation information means the tones are taken as co-polarised (1.0).
+    ``pol_stokes`` is tone b's Stokes vector at the spool input and ``tone_a_stokes`` tone a's,
+    in the same frame (the plan's convention: tone a along +s1). ``pol_angles_deg`` are paddle
+    angles; they become a Stokes vector only through a declared ``controller`` model
+    ("quarter-half-quarter": quarter-, half-, quarter-wave paddles fed with ``input_stokes``).
+    A bench file declares this in its [polarisation] table.
     """
+
+    tone_a_stokes: tuple[float, float, float] = (1.0, 0.0, 0.0)
+    controller: str | None = None
+    input_stokes: tuple[float, float, float] = (1.0, 0.0, 0.0)
+
+    @classmethod
+    def from_bench(cls, pol) -> PolFrame:
+        """From a bench file's [polarisation] table (labrun.bench.Polarisation)."""
+        return cls(tuple(pol.tone_a_stokes), pol.controller, tuple(pol.input_stokes))
+
+
+CONTROLLERS = ("quarter-half-quarter",)
+
+
+def _copolar(t: Mapping[str, np.ndarray], n: int,
+             frame: PolFrame | None = None) -> tuple[np.ndarray, list[str]]:
+    """Co-polarised fraction (1 + s_a.s_b)/2 per point, and what was assumed or is missing.
+
+    Read from, in order: ``copolar``; ``pol_stokes_a``/``pol_stokes_b``; ``pol_stokes`` (tone
+    b, against the frame's tone a); ``pol_angles_deg`` through the frame's controller model.
+    Points without polarisation are taken as co-polarised, and the note says so. Paddle angles
+    that vary without a controller model leave the fraction unknown (NaN) and say why.
+    """
+    frame = frame or PolFrame()
+    sa_frame = np.asarray(frame.tone_a_stokes, dtype=float)
     if "copolar" in t:
-        c = t["copolar"].copy()
+        c, notes = t["copolar"].copy(), []
     elif "pol_stokes_a" in t:
-        sa = t["pol_stokes_a"]
         sb = t["pol_stokes_b"] if "pol_stokes_b" in t else np.tile([1.0, 0.0, 0.0], (n, 1))
-        na = np.linalg.norm(sa, axis=1)
-        nb = np.linalg.norm(sb, axis=1)
-        c = (1.0 + np.sum(sa * sb, axis=1) / (na * nb)) / 2.0  # docs/design.md §5.5
+        c = _copolar_rows(t["pol_stokes_a"], sb)
+        notes = []
+    elif "pol_stokes" in t:
+        c = _copolar_rows(np.tile(sa_frame, (n, 1)), t["pol_stokes"])
+        notes = [f"copolar fraction from pol_stokes (tone b) against tone a at "
+                 f"{tuple(float(v) for v in sa_frame)} (bench [polarisation].tone_a_stokes)"]
+    elif "pol_angles_deg" in t:
+        return _copolar_from_angles(t["pol_angles_deg"], frame)
     else:
-        c = np.ones(n)
-    return np.where(np.isnan(c), 1.0, c)
+        return np.ones(n), ["no polarisation recorded: tones taken as co-polarised"]
+    missing = np.isnan(c)
+    if missing.any():
+        notes.append(f"{int(missing.sum())} point(s) without polarisation taken as co-polarised")
+    return np.where(missing, 1.0, c), notes
+
+
+def _copolar_rows(s_a: np.ndarray, s_b: np.ndarray) -> np.ndarray:
+    """(1 + s_a.s_b)/2 row by row (physics.polarisation.copolar_fraction), NaN rows kept."""
+    out = np.full(s_a.shape[0], np.nan)
+    ok = np.isfinite(s_a).all(axis=1) & np.isfinite(s_b).all(axis=1)
+    ok &= (np.linalg.norm(s_a, axis=1) > 0) & (np.linalg.norm(s_b, axis=1) > 0)
+    if ok.any():
+        out[ok] = copolar_fraction(s_a[ok], s_b[ok])
+    return out
+
+
+def _copolar_from_angles(angles: np.ndarray, frame: PolFrame) -> tuple[np.ndarray, list[str]]:
+    """Copolar fraction from paddle angles through the declared controller model."""
+    n = angles.shape[0]
+    finite = np.isfinite(angles).all(axis=1)
+    if frame.controller is None:
+        states = np.unique(np.round(angles[finite], 6), axis=0)
+        if states.shape[0] <= 1:
+            return np.ones(n), ["pol_angles_deg constant and no controller model declared "
+                                "(bench [polarisation].controller): tones taken as co-polarised"]
+        return np.full(n, np.nan), [
+            "refused: pol_angles_deg vary but no controller model is declared (bench "
+            "[polarisation].controller = \"quarter-half-quarter\"), so the copolar fraction "
+            "of each point is unknown"]
+    if frame.controller not in CONTROLLERS:
+        return np.full(n, np.nan), [f"refused: unknown controller model {frame.controller!r}; "
+                                    f"known: {', '.join(CONTROLLERS)}"]
+    sb = np.full((n, 3), np.nan)
+    for i in np.flatnonzero(finite):
+        sb[i] = paddles_to_stokes(angles[i], frame.input_stokes)
+    c = _copolar_rows(np.tile(np.asarray(frame.tone_a_stokes, float), (n, 1)), sb)
+    notes = [f"copolar fraction from pol_angles_deg through the {frame.controller} controller "
+             f"model (input {tuple(frame.input_stokes)}, tone a {tuple(frame.tone_a_stokes)})"]
+    if np.isnan(c).any():
+        notes.append(f"{int(np.isnan(c).sum())} point(s) without paddle angles left out")
+    return c, notes
 
 
 # ---------------------------------------------------------------------------------------------
@@ -555,8 +632,11 @@ def fit_polarisation(sideband_w, copolar, groups, pol_key) -> dict[str, FitResul
         "polarisation states", "dB", {"n_states": best_n})
     if fit:
         vis, vis_se, a_w, rms = fit
-        out["pol_visibility"] = FitResult(vis, vis_se, n, rms, model_note, "1",
-                                          {"scale_w": a_w, "n_states": best_n})
+        out["pol_visibility"] = FitResult(
+            vis, vis_se, n, rms, model_note, "1",
+            {"scale_w": a_w, "n_states": best_n, "offset_b": (1.0 / vis - 1.0) / 2.0},
+            conventions="visibility (P(c=1) - P(c=0))/(P(c=1) + P(c=0)) of the high first "
+                        "sideband; 1 for the ideal scalar projection")
     return out
 
 
@@ -581,14 +661,21 @@ def _projection_fit(p: np.ndarray, c: np.ndarray) -> tuple[float, float, float, 
 # Entry point
 
 
+def refused(model: str, unit: str, reason: str, **extra) -> FitResult:
+    """A result that could not be fitted: NaN value, the reason as its first warning."""
+    return FitResult(float("nan"), float("nan"), 0, float("nan"), model, unit, dict(extra),
+                     [f"refused: {reason}"])
+
+
 def fit_run(points, spool_length_km: float, loss_db_per_km: float, *,
             dispersion_ps_per_nm_km: float | None = None,
             slope_ps_per_nm2_km: float = 0.0,
             reference_wavelength_nm: float = 1550.0,
             max_order: int = 3,
-            copolar_min: float = 0.95,
+            copolar_min: float = 0.5,
             small_signal_max_ratio_db: float = -20.0,
-            bessel_max_mismatch_rad: float = 0.3) -> dict[str, FitResult]:
+            bessel_max_mismatch_rad: float = 0.3,
+            polarisation: PolFrame | None = None) -> dict[str, FitResult]:
     """Every fit the points support, keyed by name (gamma_bessel, gamma_small_signal,
     dispersion, dispersion_slope, slope_<side>_<n>, pol_extinction_db, pol_visibility).
 
@@ -596,18 +683,22 @@ def fit_run(points, spool_length_km: float, loss_db_per_km: float, *,
     - ``power_a_dbm``, ``power_b_dbm``: powers launched into the spool (required);
     - ``spacing_ghz`` (f_b - f_a) and ``wavelength_a_nm``: needed for dispersion (the latter
       defaults to ``reference_wavelength_nm``);
-    - polarisation, optional: ``copolar`` (fraction (1 + s_a.s_b)/2), or ``pol_stokes_a`` (and
-      ``pol_stokes_b``, default (1, 0, 0)) as 3-sequences; absent means co-polarised;
+    - polarisation, optional: ``copolar`` (fraction (1 + s_a.s_b)/2), ``pol_stokes_a`` (and
+      ``pol_stokes_b``), ``pol_stokes`` (tone b's state; tone a's from ``polarisation``) or
+      ``pol_angles_deg`` (through the controller model of ``polarisation``); absent means
+      co-polarised, and every result says so in its warnings;
     - measured line powers in dBm, flat columns ``tone_low_0``, ``tone_high_0``,
       ``sideband_low_<n>``, ``sideband_high_<n>`` (None/NaN when not detected; the keys of
-      ``Reduction.powers_by_key()``), or a ``lines`` list of dicts in the line schema of
-      docs/design.md §2.1
+      ``Reduction.powers_by_key()``), or a ``lines`` list of dicts in the docs/design.md schema
       (kind, side, order, power_dbm, detected), as in ``Reduction.to_dict()["lines"]``.
     Line powers may be read anywhere after the spool: only ratios of lines enter the gamma and
     dispersion fits, and the slopes are insensitive to a constant path loss.
-    Gamma fits use points with copolar >= ``copolar_min``. The Bessel fit drops points whose
-    phase mismatch |dbeta| L exceeds ``bessel_max_mismatch_rad`` when D is known (given, or
-    fitted here from the spacing dependence).
+    Gamma fits use points with copolar >= ``copolar_min``, each corrected by its co-polar
+    fraction (through the measured visibility when the run sweeps polarisation). The Bessel
+    fit drops points whose phase mismatch |dbeta| L exceeds ``bessel_max_mismatch_rad`` when
+    D is known (given, or fitted here from the spacing dependence). What a fit lacked or assumed
+    is in its ``warnings``; a fit that could not be made is returned with a NaN value and the
+    reason (``refused``).
     """
     t = points_table(points)
     if "power_a_dbm" not in t or "power_b_dbm" not in t:
@@ -617,14 +708,27 @@ def fit_run(points, spool_length_km: float, loss_db_per_km: float, *,
     spacing = _col(t, "spacing_ghz", n)
     lam = _col(t, "wavelength_a_nm", n, reference_wavelength_nm)
     lam = np.where(np.isnan(lam), reference_wavelength_nm, lam)
-    cop = _copolar(t, n)
+    cop, pol_notes = _copolar(t, n, polarisation)
+    known = np.isfinite(cop)
     lines = {k: dbm_to_w(v) for k, v in t.items() if LINE_KEY.match(k)}
     nan = np.full(n, np.nan)
     lo1, hi1 = lines.get("sideband_low_1", nan), lines.get("sideband_high_1", nan)
     ta, tb = lines.get("tone_low_0", nan), lines.get("tone_high_0", nan)
-    co = cop >= copolar_min
     l_eff = effective_length_km(spool_length_km, loss_db_per_km)
     results: dict[str, FitResult] = {}
+
+    # Polarisation first: its visibility turns each point's copolar fraction into the factor
+    # its sidebands actually follow, c_eff = (c + b)/(1 + b) (b = 0 for the ideal projection).
+    pol = _polarisation_results(t, n, hi1, cop, known, spacing, lam, pol_notes)
+    results.update(pol)
+    b_off = pol["pol_visibility"].extra.get("offset_b", 0.0) if "pol_visibility" in pol else 0.0
+    b_off = b_off if math.isfinite(b_off) else 0.0
+    c_eff = np.where(known, (np.where(known, cop, 0.0) + b_off) / (1.0 + b_off), np.nan)
+    co = known & (np.where(known, cop, 0.0) >= copolar_min)
+    notes = list(pol_notes)
+    if b_off > 0:
+        notes.append(f"copolar fraction corrected by the measured visibility "
+                     f"{pol['pol_visibility'].value:.4f}")
 
     # Dispersion first: its D feeds the efficiency correction of the gamma fits.
     side = np.concatenate([np.full(n, "high"), np.full(n, "low")])
@@ -637,7 +741,7 @@ def fit_run(points, spool_length_km: float, loss_db_per_km: float, *,
             np.tile(p_a, 2)[sel], np.tile(p_b, 2)[sel], np.tile(spacing, 2)[sel],
             np.tile(lam, 2)[sel], side[sel], ratio[sel], length_km=spool_length_km,
             loss_db_per_km=loss_db_per_km, reference_wavelength_nm=reference_wavelength_nm,
-            copolar=np.tile(cop, 2)[sel]))
+            copolar=np.tile(c_eff, 2)[sel]))
     d_known, s_known, d_source = dispersion_ps_per_nm_km, slope_ps_per_nm2_km, "given"
     if d_known is None and "dispersion" in results:
         d_known, d_source = results["dispersion"].value, "fitted"
@@ -645,6 +749,7 @@ def fit_run(points, spool_length_km: float, loss_db_per_km: float, *,
             s_known = results["dispersion_slope"].value
     eta_hi = np.ones(n)
     bessel_ok = co.copy()
+    gamma_notes = list(notes)
     if d_known is not None and np.isfinite(spacing).all():
         eta_hi = _first_sideband_efficiency(spacing, lam, np.full(n, "high"), spool_length_km,
                                             loss_db_per_km, d_known, s_known,
@@ -653,19 +758,48 @@ def fit_run(points, spool_length_km: float, loss_db_per_km: float, *,
                                loss_db_per_km, reference_wavelength_nm)
         mism = np.abs(d_known * u + s_known * v)
         bessel_ok &= mism * spool_length_km <= bessel_max_mismatch_rad
+    elif d_known is None:
+        gamma_notes.append("no dispersion given and none fitted (no spacing dependence): no "
+                           "phase-mismatch correction (eta = 1), gamma biased low where "
+                           "|dbeta| L is not small")
+    else:
+        gamma_notes.append("spacing missing on some points: no phase-mismatch correction")
+    if not co.any():
+        why = ("the copolar fraction is unknown" if not known.any()
+               else f"no point with copolar fraction >= {copolar_min}")
+        for name in ("gamma_bessel", "gamma_small_signal"):
+            results[name] = refused(name, "1/(W km)", why)
+            results[name].warnings.extend(gamma_notes)
+        _add_slopes(results, t, n, p_a, p_b, spacing, lam, cop, max_order)
+        return results
 
     fb = fit_gamma_bessel(p_a[bessel_ok], p_b[bessel_ok], lo1[bessel_ok], ta[bessel_ok],
-                          tb[bessel_ok], hi1[bessel_ok], l_eff, cop[bessel_ok])
-    if fb is not None:
-        fb.extra["n_dispersion_excluded"] = int((co & ~bessel_ok).sum())
-        results["gamma_bessel"] = fb
+                          tb[bessel_ok], hi1[bessel_ok], l_eff, c_eff[bessel_ok])
+    if fb is None:
+        fb = refused("dual-frequency Bessel", "1/(W km)",
+                     "fewer than 2 points with a first sideband inside the unique range of "
+                     "the Bessel ratio and within the mismatch limit "
+                     f"(|dbeta| L <= {bessel_max_mismatch_rad} rad)")
+    fb.extra["n_dispersion_excluded"] = int((co & ~bessel_ok).sum())
+    fb.warnings.extend(gamma_notes)
+    results["gamma_bessel"] = fb
     fs = fit_gamma_small_signal(p_a[co], p_b[co], (hi1 / tb)[co], l_eff, eta=eta_hi[co],
-                                copolar=cop[co], max_ratio_db=small_signal_max_ratio_db)
-    if fs is not None:
-        if d_known is not None:
-            fs.extra["dispersion_source"] = d_source
-        results["gamma_small_signal"] = fs
+                                copolar=c_eff[co], max_ratio_db=small_signal_max_ratio_db)
+    if fs is None:
+        fs = refused("small-signal FWM", "1/(W km)",
+                     f"fewer than 2 points with a first-sideband ratio <= "
+                     f"{small_signal_max_ratio_db} dB")
+    if d_known is not None:
+        fs.extra["dispersion_source"] = d_source
+    fs.warnings.extend(gamma_notes)
+    results["gamma_small_signal"] = fs
+    _add_slopes(results, t, n, p_a, p_b, spacing, lam, cop, max_order)
+    return results
 
+
+def _add_slopes(results: dict[str, FitResult], t, n: int, p_a, p_b, spacing, lam, cop,
+                max_order: int) -> None:
+    """slope_<side>_<order>: dB/dB of each sideband against total launched power."""
     groups = _group_keys(t, n, spacing, lam, cop)
     total_dbm = 10.0 * np.log10((p_a + p_b) * 1e3)
     for s in ("low", "high"):
@@ -676,10 +810,24 @@ def fit_run(points, spool_length_km: float, loss_db_per_km: float, *,
                 if fr is not None:
                     results[f"slope_{s}_{order}"] = fr
 
+
+def _polarisation_results(t, n: int, hi1, cop, known, spacing, lam,
+                          notes: list[str]) -> dict[str, FitResult]:
+    """pol_extinction_db and pol_visibility, or a refusal when the states cannot be told."""
     pol_key = _pol_keys(t, n, cop)
+    varies = np.unique(pol_key).size > 1
+    refusal = [x for x in notes if x.startswith("refused:")]
+    if refusal and varies:
+        reason = refusal[0].removeprefix("refused: ")
+        return {"pol_visibility": refused("scalar projection", "1", reason),
+                "pol_extinction_db": refused("max/min of the first sideband", "dB", reason)}
+    if not known.any():
+        return {}
     power_groups = _group_keys(t, n, spacing, lam, None)
-    results.update(fit_polarisation(hi1, cop, power_groups, pol_key))
-    return results
+    out = fit_polarisation(hi1[known], cop[known], power_groups[known], pol_key[known])
+    for r in out.values():
+        r.warnings.extend(notes)
+    return out
 
 
 def _group_keys(t, n: int, spacing, lam, cop) -> np.ndarray:
@@ -698,7 +846,7 @@ def _group_keys(t, n: int, spacing, lam, cop) -> np.ndarray:
 
 def _pol_keys(t, n: int, cop: np.ndarray) -> np.ndarray:
     """A key per point naming its polarisation state (copolar, Stokes or paddle angles)."""
-    for name in ("pol_stokes_a", "pol_angles_deg"):
+    for name in ("pol_stokes_a", "pol_stokes", "pol_angles_deg"):
         if name in t:
             return np.array(["|".join(f"{v:.4f}" for v in row) for row in t[name]])
     return np.round(cop, 4).astype(str)

@@ -85,7 +85,7 @@ def cmd_demo(args: argparse.Namespace) -> int:
             outcome = run_plan(plan, bench, store, operator="demo (virtual lab)",
                                unattended=True, ack_safety=True,
                                progress=not (args.no_progress or args.json))
-        report = _fit_and_plot(store, outcome.run_id, scenario, out)
+        report = _fit_and_plot(store, outcome.run_id, scenario, bench, out)
     finally:
         store.close()
     if args.json:
@@ -95,9 +95,10 @@ def cmd_demo(args: argparse.Namespace) -> int:
     return outcome.exit_code
 
 
-def _fit_and_plot(store: Any, run_id: int, scenario: Any, out: Path) -> dict[str, Any]:
+def _fit_and_plot(store: Any, run_id: int, scenario: Any, bench: Any,
+                  out: Path) -> dict[str, Any]:
     """Fit the stored points, write plots and fits.json; returns what was written."""
-    from labrun.fits import fit_run
+    from labrun.fits import PolFrame, fit_run
     from labrun.plots import plot_power_slopes, plot_trace
     from labrun.queries import point_trace, run_points
     from labrun.reduce import reduce_trace
@@ -109,7 +110,8 @@ def _fit_and_plot(store: Any, run_id: int, scenario: Any, out: Path) -> dict[str
     if table.empty:
         return report
     fits = fit_run(table, spool.length_km, spool.loss_db_per_km,
-                   dispersion_ps_per_nm_km=spool.dispersion_ps_per_nm_km)
+                   dispersion_ps_per_nm_km=spool.dispersion_ps_per_nm_km,
+                   polarisation=PolFrame.from_bench(bench.polarisation))
     report["fits"] = {name: fit.to_dict() for name, fit in fits.items()}
     (out / "fits.json").write_text(json.dumps(report["fits"], indent=2))
     report["files"].append(str(out / "fits.json"))
@@ -133,10 +135,13 @@ def _print_report(outcome: Any, report: dict[str, Any], db: str) -> None:
           f"{report['model_gamma_per_w_per_km']:g} 1/(W km))")
     for name, fit in report["fits"].items():
         if fit["value"] is None:
-            continue
-        err = f" +/- {fit['stderr']:.3g}" if fit["stderr"] is not None else ""
-        print(f"  {name:<22} {fit['value']:.4g}{err} {fit['unit']}  "
-              f"({fit['n_points']} points, {fit['model'].split(':')[0]})")
+            print(f"  {name:<22} not fitted")
+        else:
+            err = f" +/- {fit['stderr']:.3g}" if fit["stderr"] is not None else ""
+            print(f"  {name:<22} {fit['value']:.4g}{err} {fit['unit']}  "
+                  f"({fit['n_points']} points, {fit['model'].split(':')[0]})")
+        for note in fit.get("warnings", []):
+            print(f"    ! {note}")
     print("  (+/- is the statistical standard error of the fit; a launched-power calibration error "
           "of 0.1 dB moves gamma by about 2 %, and the virtual lab adds such offsets on purpose)")
     for path in report["files"]:

@@ -242,6 +242,11 @@ class VirtualLab:
             f"amplifier_loss_db = {layout.amplifier_loss_db!r}",
             f"output_to_osa_db = {layout.output_to_osa_db!r}",
             f"input_tap_db = {layout.input_tap_db!r}",
+            "",
+            "[polarisation]  # the virtual controller: tone a along +s1, paddles fed with +s1",
+            'controller = "quarter-half-quarter"',
+            "tone_a_stokes = [1.0, 0.0, 0.0]",
+            "input_stokes = [1.0, 0.0, 0.0]",
         ]
         for role, server in self.servers.items():
             lines += ["", f"[instruments.{role}]", f"resource = {q(server.resource)}",
