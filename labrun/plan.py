@@ -11,16 +11,16 @@ from __future__ import annotations
 import hashlib
 import math
 import random
-import tomllib
 from collections.abc import Iterable, Iterator, Mapping, Sequence
 from dataclasses import dataclass, replace
 from pathlib import Path
-from typing import Any, Literal
+from typing import Annotated, Any, Literal
 
 import numpy as np
 from pydantic import BaseModel, ConfigDict, Field, ValidationError
 
 from labrun.errors import InputError
+from labrun.inputfile import FILE_MODEL_CONFIG, Number, decode, parse_toml, read_bytes
 from labrun.physics.units import nm_to_thz, thz_to_nm
 from labrun.resources import find_file
 
@@ -30,6 +30,9 @@ ITU_GRIDS_GHZ = (12.5, 25.0, 50.0, 100.0)
 
 MAX_VALUES_PER_AXIS = 10_000
 MAX_POINTS = 1_000_000
+# Where the lines of a plan (tones and every requested sideband) may lie: what silica fibre
+# carries and grating OSAs cover (common practice).
+LINE_RANGE_NM = (600.0, 2500.0)
 
 # Plan variables: name -> (kind, low, high, unit). kind: "float", "int", "triple", "stokes".
 # Bounds are sanity limits against typos; the bench caps and profile ranges are checked later.
@@ -97,7 +100,7 @@ OSA_POINTS_RANGE = (33.0, 65537.0)  # sampling points when the OSA profile state
 class _Strict(BaseModel):
     """Base for plan tables: unknown keys are errors (catches typos with their field path)."""
 
-    model_config = ConfigDict(extra="forbid", frozen=True)
+    model_config = ConfigDict(**FILE_MODEL_CONFIG, frozen=True)
 
 
 class MetaSpec(_Strict):
@@ -117,11 +120,11 @@ class AxisSpec(_Strict):
     start: float | None = None
     stop: float | None = None
     step: float | None = None
-    num: int | None = Field(None, ge=1)
+    num: int | None = Field(None, ge=1, le=MAX_VALUES_PER_AXIS)  # bounded before allocation
     scale: Literal["linear", "log"] = "linear"
     settle_s: float = Field(0.0, ge=0.0, le=3600.0)
     paddle: int | None = Field(None, ge=1, le=3)
-    base: tuple[float, float, float] | None = None
+    base: Annotated[tuple[Number, Number, Number] | None, Field(strict=False)] = None
     plane: Literal["s1s2", "s1s3", "s2s3"] = "s1s2"
 
 
@@ -141,29 +144,29 @@ class OrderSpec(_Strict):
 class OsaSpec(_Strict):
     """[osa]: explicit values override the automatic choice field by field."""
 
-    center_nm: float | None = Field(None, gt=0)
-    span_nm: float | None = Field(None, gt=0)
-    rbw_nm: float | None = Field(None, gt=0)
-    points: int | None = Field(None, ge=3)
+    center_nm: float | None = Field(None, ge=LINE_RANGE_NM[0], le=LINE_RANGE_NM[1])
+    span_nm: float | None = Field(None, gt=0, le=LINE_RANGE_NM[1] - LINE_RANGE_NM[0])
+    rbw_nm: float | None = Field(None, ge=0.001, le=10.0)  # finer than any grating OSA: refused
+    points: int | None = Field(None, ge=3, le=POINT_STEPS[-1])
     margin: float = Field(0.25, ge=0.0, le=10.0)
     min_margin_nm: float = Field(0.5, ge=0.0, le=50.0)
     samples_per_rbw: float = Field(5.0, ge=5.0, le=1000.0)
-    skirt_db: float = Field(60.0, ge=0.0, le=200.0)
-    sweep_s: float | None = Field(None, ge=0.0)
+    skirt_db: float = Field(60.0, gt=0.0, le=200.0)
+    sweep_s: float | None = Field(None, ge=0.0, le=3600.0)
     capture_input: bool = False
-    input_every: int = Field(1, ge=1)
+    input_every: int = Field(1, ge=1, le=MAX_POINTS)
 
 
 class StopSpec(_Strict):
     """[[stop]]: a condition on the reduced lines that ends the run early."""
 
     when: Literal["sideband_above", "line_above", "tone_snr_below"]
-    dbm: float | None = None
-    db: float | None = None
-    order: int | None = Field(None, ge=1)
+    dbm: float | None = Field(None, ge=-200.0, le=60.0)  # beyond any OSA's display range
+    db: float | None = Field(None, ge=0.0, le=200.0)  # an SNR threshold
+    order: int | None = Field(None, ge=1, le=10)
     side: Literal["low", "high", "any"] = "any"
     tone: Literal["a", "b", "any"] = "any"
-    consecutive: int = Field(1, ge=1)
+    consecutive: int = Field(1, ge=1, le=MAX_POINTS)
 
 
 class SpoolSpec(_Strict):
@@ -395,21 +398,12 @@ def load_plan(path: str | Path) -> Plan:
     """
     p = find_file(path, "sweeps", suffixes=("", ".toml")) or Path(path)
     fname = str(path) if p == Path(path) else str(p)
-    try:
-        raw = p.read_bytes()
-    except OSError as exc:
-        raise InputError(f"cannot read plan: {exc.strerror or exc}", file=fname) from None
-    return parse_plan(raw, fname)
+    return parse_plan(read_bytes(p, name=fname), fname)
 
 
 def parse_plan(raw: bytes, file: str = "<plan>") -> Plan:
     """Validate plan bytes (TOML); ``file`` names the source in errors."""
-    try:
-        data = tomllib.loads(raw.decode("utf-8"))
-    except UnicodeDecodeError:
-        raise _fail(file, "", "not UTF-8 text") from None
-    except tomllib.TOMLDecodeError as exc:
-        raise InputError(f"invalid TOML: {exc}", file=file) from None
+    data = parse_toml(decode(raw, file), file)
     try:
         spec = PlanFile.model_validate(data)
     except ValidationError as exc:
@@ -434,7 +428,7 @@ class Plan:
         self.file = file
         self.path = Path(file)
         self.raw = raw
-        self.text = raw.decode("utf-8")
+        self.text = raw.decode("utf-8-sig")
         self.sha256 = hashlib.sha256(raw).hexdigest()
         self.name = spec.plan.name
         self.spool = spec.plan.spool
@@ -598,10 +592,11 @@ class Plan:
             if (stop - start) * step < 0:
                 raise _fail(self.file, f"{path}.step", f"sign of step {step:g} does not go "
                             f"from start {start:g} towards stop {stop:g}")
-            n = int(math.floor((stop - start) / step + 1e-9)) + 1
-            if n > MAX_VALUES_PER_AXIS:
-                raise _fail(self.file, f"{path}.step", f"gives {n} values; at most "
-                            f"{MAX_VALUES_PER_AXIS}")
+            count = (stop - start) / step  # may overflow to inf: checked before int()
+            if not count < MAX_VALUES_PER_AXIS:
+                raise _fail(self.file, f"{path}.step", f"gives more than {MAX_VALUES_PER_AXIS} "
+                            "values")
+            n = int(math.floor(count + 1e-9)) + 1
             raw = start + step * np.arange(n)
         if len(raw) > MAX_VALUES_PER_AXIS:
             raise _fail(self.file, f"{path}.num", f"at most {MAX_VALUES_PER_AXIS} values")
@@ -779,6 +774,7 @@ class Plan:
             sp = spacing_nm_to_ghz(v["spacing_nm"], wl)
         else:
             sp = v["spacing_steps"] * grid
+        self._check_lines(wl, sp, where)
         out: dict[str, Any] = {"wavelength_a_nm": _tidy(wl), "spacing_ghz": _tidy(sp),
                                "wavelength_b_nm": _tidy(wavelength_b_nm(wl, sp))}
         if "total_power_dbm" in v:
@@ -795,6 +791,16 @@ class Plan:
         if self.amplifier:
             out["amplifier"] = True
         return out
+
+    def _check_lines(self, wavelength_a_nm: float, spacing_ghz: float, where: str) -> None:
+        """Every line up to plan.orders must lie in LINE_RANGE_NM (and at a positive frequency)."""
+        f_a, d = float(nm_to_thz(wavelength_a_nm)), spacing_ghz / 1000.0
+        f_low, f_high = f_a - self.orders * d, f_a + (self.orders + 1) * d
+        lo_nm, hi_nm = LINE_RANGE_NM
+        if not (float(nm_to_thz(hi_nm)) <= f_low and f_high <= float(nm_to_thz(lo_nm))):
+            raise _fail(self.file, where, f"tone a at {wavelength_a_nm:.6g} nm with spacing "
+                        f"{spacing_ghz:g} GHz puts order-{self.orders} lines outside "
+                        f"{lo_nm:g}-{hi_nm:g} nm; lower the spacing or plan.orders")
 
     def _stop(self, i: int, s: StopSpec) -> StopCondition:
         """Validate one [[stop]] entry."""

@@ -128,3 +128,18 @@ def test_analyze_unwritable_plot_path_is_one_line_exit_2(tmp_path, capsys):
     assert code == 2 and out == ""
     assert len(err.strip().splitlines()) == 1
     assert str(plot) in err and "Traceback" not in err
+
+
+@pytest.mark.parametrize("option, value", [
+    ("--threshold-db", "nan"), ("--threshold-db", "inf"), ("--threshold-db", "-3"),
+    ("--rbw-nm", "nan"), ("--rbw-nm", "inf"), ("--rbw-nm", "1e308"),
+    ("--tones-nm", "nan"),
+])
+def test_analyze_options_must_be_finite_and_in_range(tmp_path, capsys, option, value):
+    """issue 13: `--threshold-db nan` was accepted (no line could ever be 'detected' against it)."""
+    path = _handmade(tmp_path / "export.csv")
+    extra = [option, value] if option != "--tones-nm" else [option, value, "1550.8"]
+    code, out, err = _run(capsys, "analyze", str(path), *extra)
+    assert code == 2 and out == ""
+    assert len(err.strip().splitlines()) == 1 and option.lstrip("-").replace("-", "_") in \
+        err.replace("-", "_")

@@ -393,6 +393,39 @@ BAD = [
     ("[axes.power_a_dbm]\nvalues = [0.0]\n[order]\nnesting = [\"spacing\"]\n", "order.nesting[0]"),
     ("[axes.power_a_dbm]\nvalues = [0.0]\n[[stop]]\nwhen = \"sideband_above\"\n", "stop[0].dbm"),
     ("[axes.power_a_dbm]\nvalues = [0.0]\n[osa]\nrbw_nm = -0.1\n", "osa.rbw_nm"),
+    # issue 13: NaN, infinity and booleans refused; ranges bounded before any allocation
+    ("[axes.power_a_dbm]\nvalues = [0.0]\n[[stop]]\nwhen = \"sideband_above\"\ndbm = nan\n",
+     "stop[0].dbm"),
+    ("[axes.power_a_dbm]\nvalues = [0.0]\n[[stop]]\nwhen = \"line_above\"\ndbm = inf\n",
+     "stop[0].dbm"),
+    ("[axes.power_a_dbm]\nvalues = [0.0]\n[[stop]]\nwhen = \"line_above\"\ndbm = 1e308\n",
+     "stop[0].dbm"),
+    ("[axes.power_a_dbm]\nvalues = [0.0]\n[[stop]]\nwhen = \"tone_snr_below\"\ndb = nan\n",
+     "stop[0].db"),
+    ("[axes.power_a_dbm]\nvalues = [0.0]\n[[stop]]\nwhen = \"line_above\"\ndbm = 5.0\n"
+     "consecutive = true\n", "stop[0].consecutive"),
+    ("[axes.power_a_dbm]\nstart = 0.0\nstop = 5.0\nnum = 1000000000\n", "axes.power_a_dbm.num"),
+    ("[axes.power_a_dbm]\nstart = 0.0\nstop = 5.0\nnum = true\n", "axes.power_a_dbm.num"),
+    ("[axes.power_a_dbm]\nstart = 0.0\nstop = inf\nnum = 3\n", "axes.power_a_dbm.stop"),
+    ("[axes.power_a_dbm]\nstart = -1e308\nstop = 1e308\nstep = 1e-300\n",
+     "axes.power_a_dbm.step"),
+    ("[axes.power_a_dbm]\nstart = 0.0\nstop = 5.0\nstep = 1e-9\n", "axes.power_a_dbm.step"),
+    ("[axes.power_a_dbm]\nvalues = [0.0, nan]\n", "axes.power_a_dbm.values[1]"),
+    ("[axes.power_a_dbm]\nvalues = [0.0, true]\n", "axes.power_a_dbm.values[1]"),
+    ("[axes.power_a_dbm]\nvalues = [0.0]\nsettle_s = nan\n", "axes.power_a_dbm.settle_s"),
+    ("[axes.pol_angles_deg]\npaddle = 1\nstart = 0.0\nstop = 90.0\nnum = 3\n"
+     "base = [0.0, true, 0.0]\n[axes.power_a_dbm]\nvalues = [0.0]\n",
+     "axes.pol_angles_deg.base[1]"),
+    ("[axes.power_a_dbm]\nvalues = [0.0]\n[osa]\ncenter_nm = inf\n", "osa.center_nm"),
+    ("[axes.power_a_dbm]\nvalues = [0.0]\n[osa]\nspan_nm = nan\n", "osa.span_nm"),
+    ("[axes.power_a_dbm]\nvalues = [0.0]\n[osa]\nspan_nm = 1e308\n", "osa.span_nm"),
+    ("[axes.power_a_dbm]\nvalues = [0.0]\n[osa]\nrbw_nm = 1e-320\nspan_nm = 1.0\n",
+     "osa.rbw_nm"),
+    ("[axes.power_a_dbm]\nvalues = [0.0]\n[osa]\npoints = 1000000000\n", "osa.points"),
+    ("[axes.power_a_dbm]\nvalues = [0.0]\n[osa]\nskirt_db = 0.0\n", "osa.skirt_db"),
+    ("[axes.power_a_dbm]\nvalues = [0.0]\n[osa]\nsweep_s = inf\n", "osa.sweep_s"),
+    ("[axes.power_a_dbm]\nvalues = [0.0]\n[osa]\ncapture_input = 1\n", "osa.capture_input"),
+    ("[axes.power_a_dbm]\nvalues = [0.0]\n[order]\nrepeats = true\n", "order.repeats"),
 ]
 
 
@@ -419,6 +452,37 @@ def test_missing_metadata_and_duplicate_setting(tmp_path):
         make_plan(tmp_path, "power_b_dbm = 1.0\n[axes.power_a_dbm]\nvalues = [0.0]\n"
                   "[axes.total_power_dbm]\nvalues=[1.0]\n", head=BASE_PLAN + "ratio_db = 0.0\n")
     assert "power of tone" in str(err.value)
+
+
+def test_lines_outside_the_optical_range_are_refused(tmp_path):
+    """3 orders of 19 THz below tone a at 1550 nm (193.4 THz) fall at 136.4 THz = 2198 nm, inside
+    600-2500 nm; the high side 193.4 + 4 x 19 = 269.4 THz = 1113 nm too: accepted. 5 orders reach
+    98.4 THz = 3047 nm: refused (c = 299792.458 nm THz, SI)."""
+    head = BASE_PLAN.replace("spacing_ghz = 100.0\n", "")
+    body = "power_b_dbm = 0.0\n[axes.spacing_ghz]\nvalues = [19000.0]\n[axes.power_a_dbm]\n" \
+           "values = [0.0]\n"
+    assert make_plan(tmp_path, body, head=head).points()
+    with pytest.raises(InputError, match="outside 600-2500 nm") as err:
+        make_plan(tmp_path, body, head=head.replace('spool = "HNLF-A17"\n',
+                                                    'spool = "HNLF-A17"\norders = 5\n'))
+    assert err.value.field == "axes"
+
+
+def test_channel_beyond_zero_frequency_is_refused(tmp_path):
+    """Channel -2000 on the 100 GHz grid is 193.1 - 200 THz < 0 (ITU-T G.694.1 formula)."""
+    head = BASE_PLAN.replace("wavelength_a_nm = 1550.0\n", "grid_ghz = 100.0\n")
+    with pytest.raises(InputError, match="outside 600-2500 nm"):
+        make_plan(tmp_path, "power_b_dbm = 0.0\n[axes.channel_a]\nvalues = [-2000]\n"
+                  "[axes.power_a_dbm]\nvalues = [0.0]\n", head=head)
+
+
+def test_non_utf8_plan_is_one_line(tmp_path):
+    path = tmp_path / "latin1.toml"
+    path.write_bytes((BASE_PLAN + "power_b_dbm = 0.0\n[axes.power_a_dbm]\nvalues = [0.0]\n")
+                     .replace("test sweep", "s\u00e9rie").encode("latin-1"))
+    with pytest.raises(InputError, match="not UTF-8") as err:
+        load_plan(path)
+    assert str(path) in str(err.value) and len(str(err.value).splitlines()) == 1
 
 
 def test_bad_toml_names_file(tmp_path):

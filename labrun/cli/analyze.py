@@ -49,10 +49,16 @@ def run_analyze(args: argparse.Namespace) -> int:
     if rbw_nm is None:
         raise InputError("no RBW: give --rbw-nm or a '# rbw_nm: VALUE' line", file=args.trace,
                          field="rbw_nm")
-    if not rbw_nm > 0:
-        raise InputError("RBW must be positive", file=args.trace, field="rbw_nm")
+    if not 0 < rbw_nm <= 10.0:  # NaN fails too
+        raise InputError(f"RBW {rbw_nm:g} nm is outside (0, 10] nm", file=args.trace,
+                         field="rbw_nm")
     if not 0 <= args.orders <= 20:
         raise InputError("--orders must be between 0 and 20", field="--orders")
+    if not 0.0 <= args.threshold_db <= 100.0:
+        raise InputError(f"{args.threshold_db:g} dB is outside [0, 100] dB", field="--threshold-db")
+    for value in args.tones_nm or ():
+        if not 600.0 <= value <= 2500.0:
+            raise InputError(f"{value:g} nm is outside [600, 2500] nm", field="--tones-nm")
     centre = float(trace.x[trace.x.size // 2])
     if trace.x_unit == "nm":
         rbw = rbw_nm
