@@ -36,6 +36,12 @@ from labrun.physics.fwm import inoue_efficiency, sideband_mismatch_per_km
 from labrun.physics.polarisation import copolar_fraction, paddles_to_stokes
 from labrun.physics.units import alpha_per_km, dbm_to_w, effective_length_km
 
+DISPERSION_CONVENTION = (
+    "|D| at the reference wavelength, ps/(nm km): four-wave mixing measures dbeta^2, so D and "
+    "-D (with the slope) give the same data; D > 0 is anomalous dispersion (beta2 < 0)")
+SLOPE_CONVENTION = (
+    "d|D|/d(lambda) at the reference wavelength, ps/(nm^2 km): the data determine how |D| "
+    "changes with wavelength; this is the slope S when D > 0 and -S when D < 0")
 LINE_KEY = re.compile(r"^(tone|sideband)_(low|high)_(\d+)$")
 DB = 10.0 / math.log(10.0)  # dB per neper of power ratio (10 log10 e)
 
@@ -510,13 +516,16 @@ def fit_dispersion(p_a_w, p_b_w, spacing_ghz, wavelength_a_nm, side, ratio, *, l
              "beta2, beta3 at tone a with D(lambda) = D + S (lambda - lambda_ref)")
     extra = {"gamma_per_w_per_km": gamma, "gamma_stderr": gamma * math.sqrt(cov[0, 0]),
              "reference_wavelength_nm": reference_wavelength_nm, "n_wavelengths": int(lams.size),
-             "sign": "D >= 0 by convention: efficiency depends on dbeta^2 only",
+             "sign": "not determined: the efficiency depends on dbeta^2 only",
              "at_bound": bool(np.any(sol.active_mask != 0))}
+    warn = ["the efficiency depends on dbeta^2 only: the sign of D is not measured, |D| is "
+            "reported"] + (["at a bound of the search range"] if extra["at_bound"] else [])
     out = {"dispersion": FitResult(float(sol.x[1]), math.sqrt(cov[1, 1]), n, rms, model,
-                                   "ps/(nm km)", extra)}
+                                   "ps/(nm km)", extra, list(warn), DISPERSION_CONVENTION)}
     if with_slope:
         out["dispersion_slope"] = FitResult(float(sol.x[2]), math.sqrt(cov[2, 2]), n, rms, model,
-                                            "ps/(nm^2 km)", dict(extra))
+                                            "ps/(nm^2 km)", dict(extra), list(warn),
+                                            SLOPE_CONVENTION)
     return out
 
 
@@ -736,14 +745,21 @@ def fit_run(points, spool_length_km: float, loss_db_per_km: float, *,
     both = np.concatenate([co, co])
     small = ratio <= 10 ** (small_signal_max_ratio_db / 10)
     sel = both & small & np.isfinite(ratio)
-    if np.isfinite(spacing).any():
+    n_spacings = np.unique(np.round(spacing[np.isfinite(spacing)], 6)).size
+    if n_spacings >= 2:
         results.update(fit_dispersion(
             np.tile(p_a, 2)[sel], np.tile(p_b, 2)[sel], np.tile(spacing, 2)[sel],
             np.tile(lam, 2)[sel], side[sel], ratio[sel], length_km=spool_length_km,
             loss_db_per_km=loss_db_per_km, reference_wavelength_nm=reference_wavelength_nm,
             copolar=np.tile(c_eff, 2)[sel]))
+        if "dispersion" not in results:
+            results["dispersion"] = refused(
+                "Inoue efficiency vs spacing", "ps/(nm km)",
+                f"needs >= 4 first-sideband ratios <= {small_signal_max_ratio_db} dB on >= 3 "
+                f"spacings of co-polarised points; the run has {int(sel.sum())} on "
+                f"{np.unique(np.round(np.tile(spacing, 2)[sel], 6)).size} spacing(s)")
     d_known, s_known, d_source = dispersion_ps_per_nm_km, slope_ps_per_nm2_km, "given"
-    if d_known is None and "dispersion" in results:
+    if d_known is None and math.isfinite(results.get("dispersion", refused("", "", "")).value):
         d_known, d_source = results["dispersion"].value, "fitted"
         if "dispersion_slope" in results:
             s_known = results["dispersion_slope"].value

@@ -4,6 +4,7 @@ published formulas / reference values."""
 from __future__ import annotations
 
 import json
+import math
 
 import numpy as np
 import pandas as pd
@@ -157,6 +158,34 @@ def test_dispersion_slope_from_several_pump_wavelengths(seed):
     # Every result serialises to strict JSON (NaN becomes null), as the store keeps it.
     text = json.dumps({k: v.to_dict() for k, v in res.items()}, allow_nan=False)
     assert json.loads(text)["dispersion"]["unit"] == "ps/(nm km)"
+
+
+@pytest.mark.parametrize("seed", range(2))
+def test_normal_dispersion_reports_abs_d_and_the_slope_of_abs_d(seed):
+    # D = -4 ps/(nm km), S = +0.07: the data fix only dbeta^2, so D and -D (with -S) fit
+    # alike. The fit reports |D| = 4 and d|D|/dlambda = -S = -0.07, and says so.
+    fib = Fibre(length_km=4.0, loss_db_per_km=0.5, gamma_per_w_per_km=2.0,
+                dispersion_ps_per_nm_km=-4.0, dispersion_slope_ps_per_nm2_km=0.07,
+                reference_wavelength_nm=1550.0)
+    pts = _fwm_points(fib, seed, wavelengths=(1535.0, 1550.0, 1565.0))
+    res = fit_run(pts, fib.length_km, fib.loss_db_per_km, reference_wavelength_nm=1550.0)
+    d, s = res["dispersion"], res["dispersion_slope"]
+    assert abs(d.value - 4.0) < 3 * d.stderr, (d.value, d.stderr)
+    assert abs(s.value + 0.07) < 3 * s.stderr, (s.value, s.stderr)
+    assert "|D|" in d.conventions and "d|D|/d(lambda)" in s.conventions
+    assert any("sign of D is not measured" in w for w in d.warnings)
+
+
+def test_gamma_without_dispersion_says_it_is_uncorrected():
+    fib = Fibre(length_km=2.0, loss_db_per_km=0.7, gamma_per_w_per_km=9.0,
+                dispersion_ps_per_nm_km=3.0)
+    pts = _fwm_points(fib, 7, spacings=np.array([60.0]), p_dbm=3.0)
+    res = fit_run(pts, 2.0, 0.7)
+    assert "dispersion" not in res  # one spacing: nothing to fit, nothing claimed
+    assert any("no phase-mismatch correction" in w for w in res["gamma_small_signal"].warnings)
+    two = _fwm_points(fib, 7, spacings=np.array([20.0, 60.0]), p_dbm=3.0)
+    refusal = fit_run(two, 2.0, 0.7)["dispersion"]
+    assert math.isnan(refusal.value) and refusal.warnings[0].startswith("refused:")
 
 
 def test_small_signal_gamma_with_known_dispersion():
