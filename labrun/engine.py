@@ -1,11 +1,12 @@
 """The run engine: takes a validated plan and bench through every point, safely, into the store.
 
 ``run_plan`` refuses anything unsafe before an instrument is opened (caps, missing
-acknowledgement), records the run, then per point: applies the settings (slowest-settling first,
-waits overlapping), sweeps the OSA, reads and reduces the trace, and commits point, traces and
-lines in one transaction. Faults are retried per ``RetryPolicy``; a signal abandons the current
-point; interlock or an unexpected output state aborts. Whatever happens, ``SafeOffGuard`` leaves
-every source off and the attenuators at maximum. ``resume_run`` continues a run by point key.
+acknowledgement), records the run, then per point: checks every setting, writes them all, waits
+once for the longest settle of what moved, reads them all back, sweeps the OSA, reads and
+reduces the trace, and commits point, traces and lines in one transaction. Faults are retried
+per ``RetryPolicy``; a signal abandons the current point; interlock or an unexpected output
+state aborts. Whatever happens, ``SafeOffGuard`` leaves every source off and the attenuators at
+maximum. ``resume_run`` continues a run by point key.
 """
 
 from __future__ import annotations
@@ -26,8 +27,10 @@ from labrun import __version__
 from labrun.errors import InputError, InstrumentError, SafetyError
 from labrun.instruments.base import FLOAT_SLACK
 from labrun.physics.units import nm_to_thz
-from labrun.plan import POWER_SETPOINTS, Plan, PointSpec, StopWatch
+from labrun.plan import Plan, PointSpec, StopWatch
+from labrun.preload import preload
 from labrun.scpi import NoAnswerError
+from labrun.settle import group_settles, setting_s, wait_s
 from labrun.shutdown import RunInterrupted, SafeOffGuard
 from labrun.store import FINISHED_STATUSES, Store, TraceData
 from labrun.trafficlog import EVENT_KIND
@@ -40,14 +43,6 @@ SOURCE_ROLES = ("laser_a", "laser_b", "amplifier")
 # corrupted transfer, not light (common practice).
 TRACE_DBM_BOUNDS = (-300.0, 100.0)
 STALE_HEARTBEAT_S = 60.0  # a running run with an older heartbeat is probably dead
-# Which plan axes drive each group of instrument settings (their settle times apply to it).
-SETTLE_AXES = {
-    "wavelength_a": ("wavelength_a_nm",),
-    "wavelength_b": ("wavelength_a_nm", "spacing_ghz"),
-    "power": POWER_SETPOINTS,
-    "pol_angles_deg": ("pol_angles_deg",),
-    "pol_stokes": ("pol_stokes",),
-}
 SIGINT = int(_signal.SIGINT)  # Ctrl-C; KeyboardInterrupt counts as this signal
 
 
@@ -118,11 +113,24 @@ class Captured:
 
 
 @dataclass(frozen=True)
+class Pending:
+    """Settings written and not yet verified: the engine settings, the profile settings they
+    stand for, the one wait they need (s, scaled) and when it ends (time.monotonic()), and
+    whether the read-backs already came with the writes."""
+
+    settings: Sequence[Setting]
+    planned: Sequence[Any]
+    wait_s: float
+    deadline: float
+    confirmed: bool = False
+
+
+@dataclass(frozen=True)
 class Setting:
     """One instrument setting of a point: adapter method, value, and the plan's settle time (s).
 
-    The adapter already waits its profile's settle time after each write; ``settle_s`` is the
-    extra time the plan asks for the axis that drives this setting.
+    The engine waits the larger of this and the profile operation's settle time
+    (``labrun.settle``), once per point for everything that moved.
     """
 
     role: str
@@ -226,8 +234,7 @@ class Runner:
         self.input_every = plan.osa.input_every if plan.capture_input else 0
         self.stops = StopWatch(plan.stop_conditions)
         # The plan's settle time of each group of settings: the longest of the axes driving it.
-        self.settle = {group: max([plan.settle_s.get(a, 0.0) for a in axes] + [0.0])
-                       for group, axes in SETTLE_AXES.items()}
+        self.settle = group_settles(plan.settle_s)
         # Fixed for the run: the bench's source roles (read on every emission check).
         self.source_roles = [r for r in SOURCE_ROLES if r in bench.instruments]
         self.show_progress = progress
@@ -351,22 +358,45 @@ class Runner:
             add("pol_controller", "set_stokes", tuple(setpoint["pol_stokes"]), "pol_stokes")
         return out
 
-    def apply(self, settings: Sequence[Setting]) -> float:
-        """Write the settings that changed, slowest-settling first; the settle deadline.
+    def write(self, settings: Sequence[Setting]) -> Pending:
+        """Check every setting that changed (ranges, caps: nothing is sent if one fails), then
+        write them all, every instrument at once; the deadline of the one settle wait.
 
-        Settling overlaps: each setting's plan settle clock starts when it is written, and the
-        point waits until the last of them has settled (not the sum).
+        Without a settle time to wait, the read-backs travel with the writes (confirmed).
         """
-        deadline = time.monotonic()
+        from labrun.instruments.batch import write_all
+
         todo = [s for s in settings if self.applied.get((s.role, s.method)) != s.value]
-        for s in sorted(todo, key=lambda s: -s.settle_s):
+        planned: list[Any] = []
+        settles: list[float] = []
+        for s in todo:
+            ops = self.role(s.role).planned(s.method, s.value)
+            planned += ops
+            settles.append(setting_s([p.op.settle_s for p in ops], s.settle_s))
+        wait = wait_s(settles, self.scale)
+        for s in todo:
             # Unknown until confirmed: a failed setting must not look like a change made
             # behind labrun's back to the emission watch (check_power).
             self.applied.pop((s.role, s.method), None)
-            getattr(self.role(s.role), s.method)(s.value)
+        write_all(planned, read_back=wait <= 0)
+        return Pending(todo, planned, wait, time.monotonic() + wait, confirmed=wait <= 0)
+
+    def confirm(self, pending: Pending) -> None:
+        """Read back and verify every setting written (all instruments at once), then mark them
+        applied."""
+        from labrun.instruments.batch import read_back_all
+
+        if not pending.confirmed:
+            read_back_all(pending.planned)
+        for s in pending.settings:
             self.applied[(s.role, s.method)] = s.value
-            deadline = max(deadline, time.monotonic() + s.settle_s * self.scale)
-        return deadline
+
+    def apply(self, settings: Sequence[Setting]) -> None:
+        """Set, wait once, read back: write every setting that changed, wait for the longest
+        settle time of what moved (settles overlap, as on a real bench), verify them all."""
+        pending = self.write(settings)
+        self.wait_until(pending.deadline)
+        self.confirm(pending)
 
     def wait_until(self, deadline: float) -> None:
         """Sleep until ``deadline``, watching emission and beating the heartbeat meanwhile."""
@@ -489,15 +519,21 @@ class Runner:
                                          "the run switched anything on; switching it off",
                                          role=role)
                 self.role(role).output_off()
-        deadline = self.apply(first)
-        for role in ("attenuator_a", "attenuator_b"):
-            self.role(role).output_on()
-        for role in ("laser_a", "laser_b"):
-            self.role(role).output_on()
-        if self.use_amplifier:
-            self.role("amplifier").output_on()
+        pending = self.write(first)
+        if not pending.confirmed:  # a source goes on only once its power is set and confirmed
+            from labrun.instruments.batch import read_back_all
+
+            read_back_all([p for p in pending.planned if p.op.name == "set_power_dbm"])
+        deadline = pending.deadline
+        on = ["attenuator_a", "attenuator_b", "laser_a", "laser_b"]
+        for role in on + (["amplifier"] if self.use_amplifier else []):
+            adapter = self.role(role)
+            adapter.output_on(settle=False)  # its settle time overlaps the settings' wait
+            op_s = adapter.profile.op("output_on").settle_s
+            deadline = max(deadline, time.monotonic() + wait_s([op_s], self.scale))
         self.emitting = self.lit = True
         self.wait_until(deadline)
+        self.confirm(pending)
         self.check_emission()
 
     def configure_osa(self, setpoint: dict[str, Any]) -> None:
@@ -547,14 +583,17 @@ class Runner:
         point of the plan, by plan index, so a resumed run captures the same points)."""
         return bool(self.input_every) and spec.index % self.input_every == 0
 
-    def set_path(self, path: int) -> None:
-        """Route the OSA through the switch (1 spool output, 2 input tap), if not already."""
-        if "switch" in self.bench.instruments:
-            self.apply([Setting("switch", "set_path", path)])
+    def path_settings(self, kind: str) -> list[Setting]:
+        """The switch setting that routes the OSA to ``kind``'s trace (path 1 spool output, 2
+        input tap); none without a switch."""
+        if "switch" not in self.bench.instruments:
+            return []
+        return [Setting("switch", "set_path", 2 if kind == "input" else 1)]
 
     def capture(self, kind: str) -> Captured:
-        """Sweep and read one trace through the switch path of ``kind`` ("output" or "input")."""
-        self.set_path(2 if kind == "input" else 1)
+        """Sweep and read one trace through the switch path of ``kind`` ("output" or "input");
+        the switch is set (and waited for) only when it is not there yet."""
+        self.apply(self.path_settings(kind))
         x, y = self.sweep_and_read(self.role("osa"))
         return Captured(kind, x, y)
 
@@ -565,8 +604,9 @@ class Runner:
         through switch path 2), the output trace's reduction, and the attempts it took.
         Safety conditions (RunAborted, SafetyError) are never retried.
         """
-        settings = self.settings_for(spec.setpoint)
         kinds = ("input", "output") if self.wants_input(spec) else ("output",)
+        # The first trace's switch path moves with the other settings (one wait for all).
+        settings = self.settings_for(spec.setpoint) + self.path_settings(kinds[0])
         self.current_key = spec.key
         attempt = 0
         while True:
@@ -580,17 +620,17 @@ class Runner:
     def attempt_point(self, spec: PointSpec, settings: Sequence[Setting],
                       kinds: Sequence[str]) -> list[Captured]:
         """One try at a point: its traces, checked and reduced (InstrumentError on any fault)."""
-        from labrun.reduce import reduce_trace
-
         if self.instruments is None:  # a reconnect after a fault failed: try again
             self.open()
         self.configure_osa(spec.setpoint)
         if not self.emitting:
             self.prepare(settings)
-        self.wait_until(self.apply(settings))
+        self.apply(settings)
         traces = [self.capture(kind) for kind in kinds]
         self.check_emission()
         traces.sort(key=lambda t: t.kind != "output")
+        from labrun.reduce import reduce_trace  # here: preloaded while the first point settled
+
         tones = expected_thz(spec.setpoint)
         for tr in traces:
             tr.reduction = reduce_trace(tr.x, tr.y, self.rbw_nm, x_unit="nm",
@@ -642,8 +682,8 @@ class Runner:
         self.last_beat = time.monotonic()
 
     def flush_traffic_log(self) -> None:
-        """Flush a streamed traffic log once per point: a crash keeps every stored point's
-        traffic on disk."""
+        """Flush a streamed traffic log once per point, before its commit: a crash keeps every
+        stored point's traffic on disk."""
         flush = getattr(self.traffic_log, "flush", None)
         if flush is not None:
             flush()
@@ -658,8 +698,8 @@ class Runner:
                 self.guard.check()
                 started = utcnow()
                 traces, red, attempts = self.measure(spec)
+                self.flush_traffic_log()  # before the commit: a stored point's traffic is on disk
                 self.commit(spec, traces, red, attempts, started)
-                self.flush_traffic_log()
                 done += 1
                 if bar is not None:
                     bar.set_postfix_str(_postfix(red), refresh=False)
@@ -824,6 +864,7 @@ def _execute(plan: Plan, bench: Any, store: Store, run_id: int, specs: Sequence[
     """Open, run ``specs``, and close run ``run_id`` under the safe-off guard."""
     from labrun.store.models import utcnow
 
+    preload("labrun.reduce")  # scipy: imported while the bench opens and the first point settles
     total = int(store.get_run(run_id).points_total)
     guard = SafeOffGuard(bench)
     runner = Runner(plan, bench, store, run_id, guard, policy=policy or RetryPolicy(),

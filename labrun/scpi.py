@@ -427,23 +427,27 @@ class ScpiSession:
                                   role=self.role, resource=self.resource)
         message = compound(cmd, [*queries, self.error_query])
         with self._lock:
-            reply = self._attempts("write", message, lambda: self._res.query(message).strip(),
-                                   lambda r: r)
-            units = split_units(reply)
-            try:
-                code, text = parse_error_reply(units[-1])
-            except ValueError as exc:
-                raise InstrumentError(f"{exc} (after {message!r})", role=self.role,
-                                      resource=self.resource) from None
-            if code != 0:
-                more = self._count_more_errors(cmd)
-                raise ScpiError(code, text, cmd, role=self.role, resource=self.resource,
-                                more=more)
-            if len(units) != len(queries) + 1:
-                raise InstrumentError(f"reply {reply!r} to {message!r} has {len(units)} "
-                                      f"units, expected {len(queries) + 1}", role=self.role,
-                                      resource=self.resource)
-            return units[:-1]
+            reply = self.query(message, direction="write")
+            return self.check_reply(cmd, message, reply, len(queries))
+
+    def check_reply(self, cmd: str, message: str, reply: str, queries: int) -> list[str]:
+        """The replies to ``queries`` queries of a compound ``message`` whose last unit is the
+        error query: ScpiError naming ``cmd`` (the queue drained) on an entry, InstrumentError
+        when the reply does not have one unit per query."""
+        units = split_units(reply)
+        try:
+            code, text = parse_error_reply(units[-1])
+        except ValueError as exc:
+            raise InstrumentError(f"{exc} (after {message!r})", role=self.role,
+                                  resource=self.resource) from None
+        if code != 0:
+            more = self._count_more_errors(cmd)
+            raise ScpiError(code, text, cmd, role=self.role, resource=self.resource, more=more)
+        if len(units) != queries + 1:
+            raise InstrumentError(f"reply {reply!r} to {message!r} has {len(units)} "
+                                  f"units, expected {queries + 1}", role=self.role,
+                                  resource=self.resource)
+        return units[:-1]
 
     def _count_more_errors(self, after_cmd: str) -> int:
         """Drain what is left in the error queue after a first entry; how many entries it held."""
@@ -458,10 +462,11 @@ class ScpiSession:
         raise InstrumentError(f"error queue did not empty after {MAX_ERROR_QUEUE} reads "
                               f"(after {after_cmd!r})", role=self.role, resource=self.resource)
 
-    def query(self, cmd: str) -> str:
-        """Send a query and return its reply without the read termination."""
+    def query(self, cmd: str, *, direction: Direction = "query") -> str:
+        """Send a query and return its reply without the read termination (``direction``
+        "write": a message that carries settings, recorded as such in the traffic log)."""
         with self._lock:
-            return self._attempts("query", cmd, lambda: self._res.query(cmd).strip(),
+            return self._attempts(direction, cmd, lambda: self._res.query(cmd).strip(),
                                   lambda r: r)
 
     def query_block_real32(self, cmd: str, byte_order: str = "little") -> np.ndarray:
@@ -639,13 +644,15 @@ class ScpiSession:
         return parse_idn(self.query("*IDN?"))
 
 
-def query_each(requests: list[tuple[ScpiSession, str]]) -> list[str]:
+def query_each(requests: list[tuple[ScpiSession, str]], *,
+               direction: Direction = "query") -> list[str]:
     """One query to each of several instruments, all sent before any reply is read.
 
     Each instrument has its own connection, so they answer in parallel: N instruments cost about
     one round trip instead of N. If anything goes wrong on the wire, every connection involved
     is closed (a reply left pending must never answer a later query) and the queries are asked
-    again one at a time, with the usual reconnect-and-retry.
+    again one at a time, with the usual reconnect-and-retry. ``direction`` "write": messages
+    that carry settings (with their error query), recorded as writes in the traffic log.
     """
     sessions = [s for s, _ in requests]
     if len({id(s) for s in sessions}) != len(sessions):
@@ -671,7 +678,7 @@ def query_each(requests: list[tuple[ScpiSession, str]]) -> list[str]:
             silent = is_timeout(exc) and not peer_closed(current._res)
             log.warning("parallel queries failed (%s); asking one at a time", exc)
             for s, cmd in requests:
-                s._record("query", cmd, started, None, f"{type(exc).__name__}: {exc}", 1)
+                s._record(direction, cmd, started, None, f"{type(exc).__name__}: {exc}", 1)
                 s.close()
             owner = next((s for s in sessions if s.role and s.role == getattr(exc, "role", None)),
                          current)
@@ -680,7 +687,7 @@ def query_each(requests: list[tuple[ScpiSession, str]]) -> list[str]:
                 final = owner._no_answer(exc)
                 final.fault_reported = True  # type: ignore[attr-defined]
                 raise final from exc
-            return [s.query(cmd) for s, cmd in requests]
+            return [s.query(cmd, direction=direction) for s, cmd in requests]
         for (s, cmd), reply in zip(requests, replies, strict=True):
-            s._record("query", cmd, started, reply, None, 1)
+            s._record(direction, cmd, started, reply, None, 1)
         return replies

@@ -131,8 +131,10 @@ class TrafficLog:
                 if e.direction == "write" and (role is None or e.role == role)]
 
     def commands(self, role: str | None = None) -> list[str]:
-        """The setting each write carried (the first unit of a compound message), in order."""
-        return [split_units(e.text)[0] for e in self.writes(role)]
+        """The settings the writes carried, in order: every unit of a write's message that is
+        not a query (a compound message may carry several), without its root colon."""
+        return [unit.lstrip(":") for e in self.writes(role) for unit in split_units(e.text)
+                if unit and not unit.split(" ", 1)[0].endswith("?")]
 
     def save(self, path: str | Path) -> Path:
         """Write the traffic log as JSON lines (one entry per line) and return the path."""

@@ -14,7 +14,7 @@ from labrun.errors import InstrumentError, SafetyError
 from labrun.instruments import open_bench
 from labrun.plan import load_plan
 from labrun.store import open_store
-from labrun.trafficlog import TrafficLog
+from labrun.trafficlog import TrafficLog, split_units
 from labrun.vlab.lab import DEFAULT_CAPS_DBM, VirtualLab
 from labrun.vlab.state import Laser
 
@@ -83,9 +83,10 @@ def test_a_run_switches_off_sources_found_on_before_anything_else(tmp_path):
         settings: list[tuple[str, bool]] = []  # (setting received, laser_a emitting then)
 
         def execute(message: str):
-            if message.upper().startswith(("SOUR:WAV ", "SOUR:POW ")):
-                with lab.state.lock:
-                    settings.append((message, lab.state.lasers["laser_a"].output))
+            for unit in split_units(message):  # a compound message carries several settings
+                if unit.lstrip(":").upper().startswith(("SOUR:WAV ", "SOUR:POW ")):
+                    with lab.state.lock:
+                        settings.append((unit, lab.state.lasers["laser_a"].output))
             return real(message)
 
         inst.execute = execute

@@ -24,9 +24,9 @@ class AttenuatorAdapter(WavelengthAdapter):
         assert rng is not None  # profiles.py requires a range for value settings
         return rng[1]
 
-    def output_on(self) -> None:
-        """Open the shutter."""
-        self.apply("output_on", expect=True if self._reports_state() else None)
+    def output_on(self, *, settle: bool = True) -> None:
+        """Open the shutter (``settle`` False: the caller waits its settle time)."""
+        self.apply("output_on", expect=True if self._reports_state() else None, settle=settle)
 
     def output_off(self) -> None:
         """Close the shutter."""

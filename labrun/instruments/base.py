@@ -10,6 +10,7 @@ from __future__ import annotations
 import logging
 import math
 import time
+from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
@@ -51,6 +52,20 @@ def parse_reply(op: Operation, reply: str) -> Any:
         return text
     except ValueError:
         raise ValueError(f"reply {text!r} to {op.query!r} is not {op.parse}") from None
+
+
+@dataclass(frozen=True)
+class PlannedSetting:
+    """One setting checked and rendered, not yet sent: what to write and how to verify it."""
+
+    adapter: Adapter
+    op: Operation
+    text: str
+    back: Operation | None = None
+    back_text: str | None = None
+    target: Any = None
+    cap: float | None = None
+    index: int | None = None
 
 
 class Adapter:
@@ -212,10 +227,10 @@ class Adapter:
             self.session.write(trace.ascii_command)
         return "ascii"
 
-    def apply(self, name: str, value: float | None = None, *, index: int | None = None,
-              values: dict[str, float] | None = None, cap: float | None = None,
-              expect: Any = None) -> None:
-        """Check, send, settle and verify one setting.
+    def prepare(self, name: str, value: float | None = None, *, index: int | None = None,
+                values: dict[str, float] | None = None, cap: float | None = None,
+                expect: Any = None) -> PlannedSetting:
+        """Check one setting and render it, sending nothing (range, cap, index, placeholders).
 
         ``value`` fills ``{value}``; ``values`` fills named placeholders (``{s1}``...); ``expect``
         is the read-back expected from a value-less command (True after ``output_on``).
@@ -242,16 +257,35 @@ class Adapter:
         elif values:
             target = tuple(fields[k] for k in op.placeholders if k != "index")
         back = self.profile.op(op.readback) if op.readback and target is not None else None
-        text = op.render(**fields)
-        if self._compound_ok() and op.settle_s * self.settle_scale <= 0:
-            self._apply_compound(op, text, back, checked, target, cap)
+        back_text = None
+        if back is not None:
+            back_text = back.render(**({"index": checked} if checked is not None else {}))
+        return PlannedSetting(self, op, op.render(**fields), back, back_text, target, cap,
+                              checked)
+
+    def planned(self, method: str, value: Any) -> list[PlannedSetting]:
+        """The checked profile settings an engine setting (adapter method, value) stands for, not
+        sent: the engine checks every setting of a point before it writes any."""
+        return [self.prepare(method, value)]
+
+    def apply(self, name: str, value: float | None = None, *, index: int | None = None,
+              values: dict[str, float] | None = None, cap: float | None = None,
+              expect: Any = None, settle: bool = True) -> None:
+        """Check, send, settle and verify one setting (``settle`` False: the caller waits the
+        operation's settle time itself, overlapped with others)."""
+        p = self.prepare(name, value, index=index, values=values, cap=cap, expect=expect)
+        op = p.op
+        settle_s = op.settle_s * self.settle_scale if settle else 0.0
+        if self._compound_ok() and settle_s <= 0:
+            self._apply_compound(op, p.text, p.back, p.index, p.target, cap)
             return
-        self.session.write(text)
-        self.settle(op.settle_s)
+        self.session.write(p.text)
+        if settle:
+            self.settle(op.settle_s)
         if op.wait:
             self.session.opc_wait()
-        if back is not None:
-            self.verify(op, self.read(back.name, index=checked), target, cap=cap)
+        if p.back is not None:
+            self.verify(op, self.read(p.back.name, index=p.index), p.target, cap=cap)
 
     def _compound_ok(self) -> bool:
         """True when settings may travel as one compound message with their follow-up queries."""

@@ -4,9 +4,10 @@ from __future__ import annotations
 
 import math
 from collections.abc import Sequence
+from typing import Any
 
 from labrun.errors import InputError
-from labrun.instruments.base import Adapter
+from labrun.instruments.base import Adapter, PlannedSetting
 
 PADDLES = (1, 2, 3)  # quarter, half, quarter wave (generic profile)
 NORM_TOLERANCE = 0.01
@@ -34,6 +35,10 @@ class PolControllerAdapter(Adapter):
 
     def set_stokes(self, stokes: Sequence[float]) -> None:
         """Drive to a normalised Stokes vector (s1, s2, s3); refused if not of unit length."""
+        self.apply("set_stokes", values=self._stokes_values(stokes))
+
+    def _stokes_values(self, stokes: Sequence[float]) -> dict[str, float]:
+        """{s1, s2, s3} of a Stokes vector; InputError unless 3 components of unit length."""
         if len(stokes) != 3:
             raise InputError(f"{self.role}: a Stokes vector has 3 components, got {len(stokes)}")
         norm = math.sqrt(sum(float(s) ** 2 for s in stokes))
@@ -41,7 +46,19 @@ class PolControllerAdapter(Adapter):
             raise InputError(f"{self.role}: Stokes vector {tuple(stokes)} has length {norm:.3f}, "
                              "not 1")
         s1, s2, s3 = (float(s) for s in stokes)
-        self.apply("set_stokes", values={"s1": s1, "s2": s2, "s3": s3})
+        return {"s1": s1, "s2": s2, "s3": s3}
+
+    def planned(self, method: str, value: Any) -> list[PlannedSetting]:
+        """As Adapter.planned: three paddle angles are three settings, a Stokes vector one."""
+        if method == "set_angles_deg":
+            if len(value) != len(PADDLES):
+                raise InputError(f"{self.role}: need {len(PADDLES)} paddle angles, got "
+                                 f"{len(value)}")
+            return [self.prepare("set_angle_deg", angle, index=paddle)
+                    for paddle, angle in zip(PADDLES, value, strict=True)]
+        if method == "set_stokes":
+            return [self.prepare("set_stokes", values=self._stokes_values(value))]
+        return super().planned(method, value)
 
     def stokes(self) -> tuple[float, float, float]:
         values = self.read("read_stokes")

@@ -2,8 +2,10 @@
 
 from __future__ import annotations
 
+from typing import Any
+
 from labrun.errors import SafetyError
-from labrun.instruments.base import FLOAT_SLACK, Adapter
+from labrun.instruments.base import FLOAT_SLACK, Adapter, PlannedSetting
 
 
 class SourceAdapter(Adapter):
@@ -17,6 +19,12 @@ class SourceAdapter(Adapter):
     def set_power_dbm(self, dbm: float) -> None:
         """Set the output power; refused above the bench cap or the profile range."""
         self.apply("set_power_dbm", dbm, cap=self.cap_dbm)
+
+    def planned(self, method: str, value: Any) -> list[PlannedSetting]:
+        """As Adapter.planned; the power is checked against the bench cap too."""
+        if method == "set_power_dbm":
+            return [self.prepare(method, value, cap=self.cap_dbm)]
+        return super().planned(method, value)
 
     def power_dbm(self) -> float:
         """The power setting as the instrument reports it."""
@@ -34,9 +42,10 @@ class SourceAdapter(Adapter):
             return None
         return self.optional_read("read_interlock")
 
-    def output_on(self) -> None:
+    def output_on(self, *, settle: bool = True) -> None:
         """Enable emission, after checking the interlock and that the set power is under the cap;
-        sent once (a lost connection is the caller's to retry, checks included)."""
+        sent once (a lost connection is the caller's to retry, checks included). ``settle``
+        False: the caller waits the operation's settle time, overlapped with other settles."""
         if self.interlock_closed() is False:
             raise SafetyError(f"{self.role}: interlock is open; emission not enabled")
         if self.cap_dbm is not None and self.profile.has("read_power_dbm"):
@@ -47,7 +56,8 @@ class SourceAdapter(Adapter):
         # Never resent by the session after a lost connection: the instrument may have reset
         # (another power, perhaps above the cap); the run's retry sets the power and checks again.
         with self.session.single_attempt():
-            self.apply("output_on", expect=True if self._reports_state() else None)
+            self.apply("output_on", expect=True if self._reports_state() else None,
+                       settle=settle)
 
     def output_off(self) -> None:
         """Disable emission (verified by read-back where the instrument reports its state)."""
