@@ -833,6 +833,32 @@ def run_plan(plan: Plan, bench: Any, store: Store, *, operator: str | None = Non
                     progress=progress, traffic_log=traffic_log, first=True)
 
 
+def run_virtual(plan: Plan, bench: Any, store: Store, *, replay_of: int, mode: str,
+                policy: RetryPolicy | None = None, progress: bool = False,
+                traffic_log: Any = None,
+                created: Callable[[int], None] | None = None) -> RunOutcome:
+    """Run a plan on instruments that emit no light (a replay, labrun.replay): the caps are
+    checked as for any run, no acknowledgement is asked; a ``replay`` event links the new run
+    to run ``replay_of``. ``created(run_id)`` is called once the run row exists."""
+    from labrun import safety
+
+    require_roles(plan, bench)
+    violations = list(safety.check_caps(plan, bench))
+    if violations:
+        raise SafetyError("refused, the plan exceeds a power cap: "
+                          + "; ".join(str(v) for v in violations))
+    specs = list(plan.points())
+    run_id = store.create_run(**_run_fields(plan, bench, operator=None, unattended=True,
+                                            total=len(specs)))
+    store.add_event(run_id, "replay", f"replay of run {replay_of} ({mode}): virtual, no light "
+                    "emitted", data={"replay_of": replay_of, "mode": mode})
+    if created is not None:
+        created(run_id)
+    record_traffic_log(store, run_id, traffic_log)
+    return _execute(plan, bench, store, run_id, specs, done=0, policy=policy,
+                    progress=progress, traffic_log=traffic_log, first=True)
+
+
 def record_ack(store: Store, run_id: int, plan: Plan, bench: Any, *, operator: str | None,
                unattended: bool, text: str, resumed: bool = False) -> None:
     """The ``safety_ack`` event: who acknowledged emission, how, and the worst case shown (the

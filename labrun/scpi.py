@@ -14,6 +14,7 @@ follow-up queries and the error query travel as one message
 
 from __future__ import annotations
 
+import base64
 import contextlib
 import logging
 import select
@@ -27,9 +28,9 @@ from typing import TypeVar
 
 import numpy as np
 import pyvisa
-from pyvisa import constants, rname
+from pyvisa import constants, highlevel, rname
 from pyvisa.errors import VisaIOError
-from pyvisa.util import from_ieee_block
+from pyvisa.util import from_ascii_block, from_ieee_block
 
 from labrun.errors import InputError, InstrumentError
 from labrun.trafficlog import Direction, TrafficLog, split_units
@@ -44,6 +45,7 @@ T = TypeVar("T")
 
 _RM_LOCK = threading.Lock()
 _RESOURCE_MANAGERS: dict[str, pyvisa.ResourceManager] = {}
+_OVERRIDE: pyvisa.ResourceManager | None = None  # set by visa_library_override
 
 
 class ScpiError(InstrumentError):
@@ -137,10 +139,29 @@ def visa_library_spec(backend: str, sim_file: str | Path | None = None) -> str:
     return backend
 
 
+@contextlib.contextmanager
+def visa_library_override(library: highlevel.VisaLibraryBase) -> Iterator[None]:
+    """Inside, every session opens its resource through ``library`` whatever the bench's
+    backend says (a traffic-log replay: ``labrun.visareplay``)."""
+    global _OVERRIDE
+    rm = pyvisa.ResourceManager(library)
+    with _RM_LOCK:
+        saved, _OVERRIDE = _OVERRIDE, rm
+    try:
+        yield
+    finally:
+        with _RM_LOCK:
+            _OVERRIDE = saved
+        with contextlib.suppress(Exception):
+            rm.close()
+
+
 def resource_manager(backend: str, sim_file: str | Path | None = None) -> pyvisa.ResourceManager:
     """One shared ResourceManager per backend (and per sim file), created on first use."""
     spec = visa_library_spec(backend, sim_file)
     with _RM_LOCK:
+        if _OVERRIDE is not None:
+            return _OVERRIDE
         rm = _RESOURCE_MANAGERS.get(spec)
         if rm is None:
             try:
@@ -202,6 +223,7 @@ class ScpiSession:
         self.compound = bool(compound)  # the instrument takes IEEE 488.2 compound messages
         self.on_fault = on_fault
         self._res = None
+        self._last_block: bytes | None = None  # the last block read, for the traffic log
         self._lock = threading.RLock()
 
     # -- connection -------------------------------------------------------------------------
@@ -353,8 +375,9 @@ class ScpiSession:
                 self.close()
                 self.report_fault(text, exc, attempt)
             else:
-                reply = describe(result)
-                self._record(direction, text, started, reply, None, attempt)
+                described = describe(result)
+                reply, data = described if isinstance(described, tuple) else (described, None)
+                self._record(direction, text, started, reply, None, attempt, data)
                 log.debug("%s: %s %r -> %r", self.who, direction, text, reply)
                 return result
             if silent or time.monotonic() - first >= 2 * self.timeout_ms / 1000.0:
@@ -385,7 +408,9 @@ class ScpiSession:
         if not self.error_query or self._res is None:
             return
         for _ in range(MAX_ERROR_QUEUE):
+            started = time.time()
             reply = self._res.query(self.error_query)
+            self._record("query", self.error_query, started, reply.strip(), None, 1)
             try:
                 code, message = parse_error_reply(reply)
             except ValueError:
@@ -395,11 +420,18 @@ class ScpiSession:
             log.warning("%s: discarded stale error %d,%r after reconnect", self.who, code, message)
 
     def _record(self, direction: Direction, text: str, started: float, reply: str | None,
-                error: str | None, attempt: int) -> None:
+                error: str | None, attempt: int, data: str | None = None) -> None:
         if self.traffic_log is not None:
             self.traffic_log.record(resource=self.resource, role=self.role, direction=direction,
-                                   text=text, started=started, reply=reply, error=error,
-                                   attempt=attempt)
+                                    text=text, started=started, reply=reply, error=error,
+                                    attempt=attempt, data=data)
+
+    def _block_data(self) -> str | None:
+        """The last block as received (header and body), base64, for the traffic log: what its
+        ``<block N bytes>`` summary stands for, so a replay can serve it again exactly."""
+        if self.traffic_log is None or self._last_block is None:
+            return None
+        return base64.b64encode(self._last_block).decode("ascii")
 
     def write(self, cmd: str, *, check_errors: bool = True) -> None:
         """Send one command; then drain the error queue and raise ScpiError if it held errors.
@@ -479,7 +511,8 @@ class ScpiSession:
             return np.asarray(self._read_block(byte_order == "big"), dtype=float)
 
         with self._lock:
-            return self._attempts("query", cmd, action, lambda a: f"<block {4 * a.size} bytes>")
+            return self._attempts("query", cmd, action,
+                                  lambda a: (f"<block {4 * a.size} bytes>", self._block_data()))
 
     def _read_block(self, big_endian: bool, *, head: bytes = b"", last: bool = True
                     ) -> np.ndarray:
@@ -513,6 +546,7 @@ class ScpiSession:
             raise InstrumentError("block not followed by the read termination",
                                   role=self.role, resource=self.resource)
         block = head + digits + body[:len(body) - len(term)]
+        self._last_block = block
         return from_ieee_block(block, datatype="f", is_big_endian=big_endian,
                                container=np.array)
 
@@ -531,9 +565,9 @@ class ScpiSession:
             self._res.write(message)
             return self._read_mixed(len(queries), byte_order == "big")
 
-        def describe(r: tuple[list[str], np.ndarray | None, str]) -> str:
+        def describe(r: tuple[list[str], np.ndarray | None, str]) -> tuple[str, str | None]:
             block = "<no block>" if r[1] is None else f"<block {4 * r[1].size} bytes>"
-            return ";".join([*r[0], block, r[2]])
+            return ";".join([*r[0], block, r[2]]), None if r[1] is None else self._block_data()
 
         with self._lock:
             units, values, err = self._attempts("write", message, action, describe)
@@ -588,12 +622,16 @@ class ScpiSession:
 
     def query_ascii_floats(self, cmd: str) -> np.ndarray:
         """Query a comma-separated list of numbers (the SCPI ASCii data format)."""
-        def action() -> np.ndarray:
-            return np.asarray(self._res.query_ascii_values(cmd, converter="f", separator=",",
-                                                           container=np.array), dtype=float)
+        def action() -> tuple[np.ndarray, str]:
+            text = self._res.query(cmd)  # parsed as pyvisa's query_ascii_values parses it
+            values = from_ascii_block(text, converter="f", separator=",", container=np.array)
+            return np.asarray(values, dtype=float), text
+
+        def describe(r: tuple[np.ndarray, str]) -> tuple[str, str | None]:
+            return f"<{r[0].size} ascii values>", r[1] if self.traffic_log is not None else None
 
         with self._lock:
-            return self._attempts("query", cmd, action, lambda a: f"<{a.size} ascii values>")
+            return self._attempts("query", cmd, action, describe)[0]
 
     def opc_wait(self, timeout_ms: int | None = None) -> None:
         """Block until pending operations finish (IEEE 488.2 ``*OPC?`` answers 1)."""

@@ -46,7 +46,10 @@ class TrafficLogEntry:
     """One exchange on the wire; ``error`` set when it failed.
 
     ``reply`` is None for a plain write; a "write" that carries queries (an IEEE 488.2 compound
-    message: setting, read-back and error query in one) keeps its response message.
+    message: setting, read-back and error query in one) keeps its response message. A block or
+    a list of values stands in ``reply`` as a summary (``<block 8004 bytes>``); ``data`` keeps
+    what the summary stands for (base64 of the block as received, or the value list's text), so
+    the exchange can be played back exactly (``labrun replay --traffic-log``).
     """
 
     timestamp: float
@@ -58,6 +61,15 @@ class TrafficLogEntry:
     reply: str | None = None
     error: str | None = None
     attempt: int = 1
+    data: str | None = None
+
+
+def json_line(entry: TrafficLogEntry) -> str:
+    """One entry as a JSON line (``data`` only when there is a payload: most lines have none)."""
+    row = asdict(entry)
+    if row["data"] is None:
+        del row["data"]
+    return json.dumps(row, ensure_ascii=False)
 
 
 class TrafficLog:
@@ -92,17 +104,17 @@ class TrafficLog:
 
     def record(self, *, resource: str, role: str | None, direction: Direction, text: str,
                started: float, reply: str | None = None, error: str | None = None,
-               attempt: int = 1) -> TrafficLogEntry:
+               attempt: int = 1, data: str | None = None) -> TrafficLogEntry:
         """Record one exchange that started at ``started`` (``time.time()``) and ended now."""
         entry = TrafficLogEntry(timestamp=started, duration_s=max(0.0, time.time() - started),
                                 resource=resource, role=role, direction=direction, text=text,
-                                reply=reply, error=error, attempt=attempt)
+                                reply=reply, error=error, attempt=attempt, data=data)
         with self._lock:
             self.count += 1
             if self.retain:
                 self.entries.append(entry)
             if self.sink is not None:
-                self.sink.write(json.dumps(asdict(entry), ensure_ascii=False) + "\n")
+                self.sink.write(json_line(entry) + "\n")
         return entry
 
     def flush(self) -> None:
@@ -140,7 +152,7 @@ class TrafficLog:
         """Write the traffic log as JSON lines (one entry per line) and return the path."""
         path = Path(path)
         with self._lock:
-            lines = [json.dumps(asdict(e), ensure_ascii=False) for e in self.entries]
+            lines = [json_line(e) for e in self.entries]
         try:
             path.write_text("".join(line + "\n" for line in lines), encoding="utf-8")
         except OSError as exc:

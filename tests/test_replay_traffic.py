@@ -1,0 +1,134 @@
+"""``labrun replay RUN_ID --traffic-log FILE``: a run's recorded traffic played back through a
+simulated VISA backend (no instrument, no physics) gives the original's lines bit for bit; a
+command that differs from the recording stops the replay with a clear error."""
+
+from __future__ import annotations
+
+import json
+
+import numpy as np
+import pytest
+from _engine_support import OPERATOR, scenario, write_bench, write_plan
+from pyvisa.util import from_ieee_block
+
+from labrun.cli import main
+from labrun.queries import run_points
+from labrun.store import Trace, open_store
+from labrun.trafficlog import TrafficLog
+
+ACK = ["--unattended", "--operator", OPERATOR, "--ack-safety", "--no-progress"]
+
+
+@pytest.fixture(scope="module")
+def recorded(tmp_path_factory):
+    """A 4-point run on the virtual lab (realism on, seeded) with its traffic log."""
+    from labrun.vlab.lab import VirtualLab
+
+    folder = tmp_path_factory.mktemp("recorded")
+    data = scenario()
+    data["realism"]["enabled"] = True
+    with VirtualLab(data, seed=3) as lab:
+        plan = write_plan(folder, [-2.0, 0.0, 2.0, 4.0])
+        bench = write_bench(lab, folder)
+        db, log = folder / "runs.db", folder / "traffic.jsonl"
+        assert main(["run", str(plan), "--bench", str(bench), "--db", str(db),
+                     "--traffic-log", str(log), *ACK]) == 0
+    return folder, db, log
+
+
+def _y_bytes(db, run_id):
+    store = open_store(db)
+    from sqlalchemy import select
+
+    from labrun.store import Point
+    with store.session() as s:
+        return list(s.scalars(select(Trace.y_data).join(Point, Point.id == Trace.point_id)
+                              .where(Point.run_id == run_id).order_by(Point.index)))
+
+
+def test_a_replayed_log_gives_the_same_lines_bit_for_bit(recorded, capsys):
+    folder, db, log = recorded
+    capsys.readouterr()
+    assert main(["replay", "1", "--db", str(db), "--traffic-log", str(log), "--json"]) == 0
+    out = json.loads(capsys.readouterr().out)
+    assert out["identical"] is True and out["status"] == "completed" and out["replay_of"] == 1
+    assert out["unused_exchanges"] == 0
+    store = open_store(db)
+    a = run_points(store, 1).drop(columns=["point_id"])
+    b = run_points(store, out["run_id"]).drop(columns=["point_id"])
+    assert a.equals(b)  # every line power, every setpoint column, NaN where undetected
+    assert _y_bytes(db, 1) == _y_bytes(db, out["run_id"])  # the stored traces too
+    replay_events = store.events(out["run_id"], ["replay"])
+    assert replay_events[0].data == {"replay_of": 1, "mode": "traffic log"}
+
+
+def test_the_log_keeps_each_block_as_received(recorded):
+    """The ``data`` of a sweep's exchange is the IEEE 488.2 definite-length block: decoded with
+    pyvisa's own parser it has the size the summary states and the stored trace's values."""
+    _, db, log = recorded
+    sweep = next(e for e in TrafficLog.load(log).entries
+                 if e.data and e.role == "osa" and e.text.startswith("INIT:IMM"))
+    import base64
+    raw = base64.b64decode(sweep.data)
+    values = from_ieee_block(raw, datatype="f", is_big_endian=False, container=np.array)
+    assert f"<block {4 * values.size} bytes>" in sweep.reply
+    assert values.astype("<f4").tobytes() in _y_bytes(db, 1)
+
+
+def test_a_changed_command_stops_the_replay_naming_point_instrument_and_commands(
+        recorded, tmp_path, capsys):
+    _, db, log = recorded
+    text = log.read_text(encoding="utf-8")
+    target = "INP:ATT 5.000"  # attenuator a at the third point (laser 10 dBm, path loss 3 dB)
+    assert text.count(target) == 1
+    bad = tmp_path / "changed.jsonl"
+    bad.write_text(text.replace(target, "INP:ATT 5.500"), encoding="utf-8")
+    capsys.readouterr()
+    assert main(["replay", "1", "--db", str(db), "--traffic-log", str(bad), "--no-progress"]) == 1
+    err = capsys.readouterr().err
+    assert "Traceback" not in err and len(err.strip().splitlines()) == 1
+    assert "power_a_dbm=2|" in err and "attenuator_a" in err
+    assert "expected 'INP:ATT 5.500" in err and "got 'INP:ATT 5.000" in err
+    store = open_store(db)
+    failed = store.get_run(store.latest_run_id())
+    assert failed.status == "failed" and "attenuator_a" in failed.reason
+    assert store.count_points(failed.id) == 2  # the points before the difference
+
+
+def test_a_log_without_block_bytes_is_refused_before_anything_runs(recorded, tmp_path, capsys):
+    _, db, log = recorded
+    rows = [json.loads(line) for line in log.read_text(encoding="utf-8").splitlines()]
+    for row in rows:
+        row.pop("data", None)  # what a log written before 0.2 holds
+    old = tmp_path / "old.jsonl"
+    old.write_text("".join(json.dumps(r) + "\n" for r in rows), encoding="utf-8")
+    before = open_store(db).latest_run_id()
+    assert main(["replay", "1", "--db", str(db), "--traffic-log", str(old)]) == 2
+    err = capsys.readouterr().err
+    assert "old.jsonl" in err and "--traffic-log" in err and "block" in err
+    assert open_store(db).latest_run_id() == before
+
+
+def test_a_recorded_fault_is_played_back_and_retried_as_it_was(tmp_path, capsys):
+    """Garbled replies and stray error-queue entries injected by the virtual lab are in the log;
+    played back, they make the same faults, retried as they were, and the lines agree."""
+    from labrun.vlab.lab import VirtualLab
+
+    data = scenario()
+    data["faults"] = {"enabled": True, "garble_probability": 0.1,
+                      "spurious_error_probability": 0.05,
+                      "roles": ["laser_b", "attenuator_b"]}
+    with VirtualLab(data, seed=5) as lab:
+        plan = write_plan(tmp_path, [-2.0, 0.0, 2.0, 4.0, 5.0])
+        bench = write_bench(lab, tmp_path)
+        db, log = tmp_path / "runs.db", tmp_path / "traffic.jsonl"
+        assert main(["run", str(plan), "--bench", str(bench), "--db", str(db),
+                     "--traffic-log", str(log), *ACK]) == 0
+    store = open_store(db)
+    faults = [e.message for e in store.events(1, ["fault"])]
+    assert faults  # the seeded faults happened
+    capsys.readouterr()
+    assert main(["replay", "1", "--db", str(db), "--traffic-log", str(log), "--json"]) == 0
+    out = json.loads(capsys.readouterr().out)
+    assert out["identical"] is True
+    assert [e.message for e in store.events(out["run_id"], ["fault"])] == faults
