@@ -12,8 +12,8 @@ from _engine_support import OPERATOR, scenario, write_bench, write_plan
 from pyvisa.util import from_ieee_block
 
 from labrun.cli import main
-from labrun.queries import run_points
-from labrun.store import Trace, open_store
+from labrun.queries import point_trace, run_points
+from labrun.store import open_store
 from labrun.trafficlog import TrafficLog
 
 ACK = ["--unattended", "--operator", OPERATOR, "--ack-safety", "--no-progress"]
@@ -36,14 +36,11 @@ def recorded(tmp_path_factory):
     return folder, db, log
 
 
-def _y_bytes(db, run_id):
+def _traces(db, run_id):
+    """The stored output traces (y in dBm) of a run, in point order."""
     store = open_store(db)
-    from sqlalchemy import select
-
-    from labrun.store import Point
-    with store.session() as s:
-        return list(s.scalars(select(Trace.y_data).join(Point, Point.id == Trace.point_id)
-                              .where(Point.run_id == run_id).order_by(Point.index)))
+    table = run_points(store, run_id)
+    return [point_trace(store, int(pid))[1] for pid in table["point_id"]]
 
 
 def test_a_replayed_log_gives_the_same_lines_bit_for_bit(recorded, capsys):
@@ -57,22 +54,30 @@ def test_a_replayed_log_gives_the_same_lines_bit_for_bit(recorded, capsys):
     a = run_points(store, 1).drop(columns=["point_id"])
     b = run_points(store, out["run_id"]).drop(columns=["point_id"])
     assert a.equals(b)  # every line power, every setpoint column, NaN where undetected
-    assert _y_bytes(db, 1) == _y_bytes(db, out["run_id"])  # the stored traces too
+    for ya, yb in zip(_traces(db, 1), _traces(db, out["run_id"]), strict=True):
+        assert np.array_equal(ya, yb)  # the stored traces too
     replay_events = store.events(out["run_id"], ["replay"])
     assert replay_events[0].data == {"replay_of": 1, "mode": "traffic log"}
 
 
 def test_the_log_keeps_each_block_as_received(recorded):
     """The ``data`` of a sweep's exchange is the IEEE 488.2 definite-length block: decoded with
-    pyvisa's own parser it has the size the summary states and the stored trace's values."""
-    _, db, log = recorded
-    sweep = next(e for e in TrafficLog.load(log).entries
-                 if e.data and e.role == "osa" and e.text.startswith("INIT:IMM"))
+    pyvisa's own parser it has the size the summary states, and each stored trace is one of the
+    sweeps (the store keeps whole milli-dB: within 0.0005 dB)."""
     import base64
-    raw = base64.b64decode(sweep.data)
-    values = from_ieee_block(raw, datatype="f", is_big_endian=False, container=np.array)
-    assert f"<block {4 * values.size} bytes>" in sweep.reply
-    assert values.astype("<f4").tobytes() in _y_bytes(db, 1)
+
+    _, db, log = recorded
+    blocks = []
+    for e in TrafficLog.load(log).entries:
+        if e.data and e.role == "osa" and "DATA:Y?" in e.text:
+            raw = base64.b64decode(e.data)
+            values = from_ieee_block(raw, datatype="f", is_big_endian=False, container=np.array)
+            assert f"<block {4 * values.size} bytes>" in e.reply
+            blocks.append(values)
+    stored = _traces(db, 1)
+    assert len(blocks) == len(stored) == 4
+    for y in stored:
+        assert any(v.size == y.size and np.max(np.abs(v - y)) <= 0.0005 + 1e-6 for v in blocks)
 
 
 def test_a_changed_command_stops_the_replay_naming_point_instrument_and_commands(
