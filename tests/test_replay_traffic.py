@@ -66,10 +66,14 @@ def test_the_log_keeps_each_block_as_received(recorded):
     sweeps (the store keeps whole milli-dB: within 0.0005 dB)."""
     import base64
 
+    from labrun.profiles import load_profile
+    from labrun.resources import find_file
+
     _, db, log = recorded
+    y_query = load_profile(find_file("generic-osa.toml", "drivers")).op("read_trace_y").query
     blocks = []
     for e in TrafficLog.load(log).entries:
-        if e.data and e.role == "osa" and "DATA:Y?" in e.text:
+        if e.data and e.role == "osa" and y_query in e.text:
             raw = base64.b64decode(e.data)
             values = from_ieee_block(raw, datatype="f", is_big_endian=False, container=np.array)
             assert f"<block {4 * values.size} bytes>" in e.reply
