@@ -25,10 +25,18 @@ from typing import TYPE_CHECKING, Any, TextIO
 
 from labrun import __version__
 from labrun.errors import InputError, InstrumentError, SafetyError
+from labrun.faults import (
+    PointOverrun,
+    PointWatchdog,
+    RetryPolicy,
+    darkens,
+    point_bound_s,
+)
 from labrun.instruments.base import FLOAT_SLACK
 from labrun.physics.units import nm_to_thz
 from labrun.plan import Plan, PointSpec, StopWatch
 from labrun.preload import preload
+from labrun.safe_off import darken
 from labrun.scpi import NoAnswerError
 from labrun.settle import group_settles, setting_s, wait_s
 from labrun.shutdown import RunInterrupted, SafeOffGuard
@@ -52,25 +60,6 @@ class RunAborted(Exception):  # noqa: N818 - an outcome, raised to leave the loo
 
 class StopRequested(Exception):  # noqa: N818 - an outcome, raised to leave the loop
     """A plan stop condition was met: the run ends normally, early."""
-
-
-@dataclass(frozen=True)
-class RetryPolicy:
-    """How hard to try a point before aborting: attempts in all (also for opening the bench), and
-    the pause before retry n: ``backoff_s * backoff_factor**(n-1)``, at most ``max_backoff_s``
-    (all x the bench's settle_scale, so 0 in the virtual lab at time scale 0). ``reconnect``:
-    an instrument that stopped answering gets fresh connections before the retry."""
-
-    attempts: int = 5
-    backoff_s: float = 1.0
-    reconnect: bool = True
-    backoff_factor: float = 2.0
-    max_backoff_s: float = 30.0
-
-    def delay_s(self, attempt: int) -> float:
-        """Seconds to wait after failed attempt ``attempt`` (1-based), before the next one."""
-        return min(self.backoff_s * self.backoff_factor ** max(0, attempt - 1),
-                   self.max_backoff_s)
 
 
 @dataclass
@@ -243,6 +232,13 @@ class Runner:
         self.lit = False  # the run has switched the sources on at least once
         self.current_key: str | None = None  # the point being measured, for fault events
         self.faults = 0
+        # No light without progress (labrun/faults.py): when a fault darkened the bench, the
+        # watchdog of the current attempt, and what every point's settling may take.
+        self.dark_since: float | None = None
+        self.may_emit = True  # something may have been switched on since the last go_dark
+        self.watchdog: PointWatchdog | None = None
+        self.profile_settle_s = sum(op.settle_s for spec in bench.instruments.values()
+                                    for op in spec.profile.operations.values())
 
     # ---- faults ------------------------------------------------------------------------------
     def record_fault(self, exc: BaseException, *, attempt: int, level: str,
@@ -366,6 +362,7 @@ class Runner:
         """
         from labrun.instruments.batch import write_all
 
+        self.check_progress()
         todo = [s for s in settings if self.applied.get((s.role, s.method)) != s.value]
         planned: list[Any] = []
         settles: list[float] = []
@@ -432,6 +429,7 @@ class Runner:
         """
         from labrun.instruments import source_readings
 
+        self.check_progress()
         roles = self.sources()
         adapters = [self.role(r) for r in roles]
         for role, adapter, reading in zip(roles, adapters, source_readings(adapters),
@@ -512,6 +510,12 @@ class Runner:
         The amplifier is switched on only for plans that use it (``plan.amplifier``): the worst
         case and the settings of other plans assume no gain after the combiner.
         """
+        self.guard.check()  # the acknowledgement holds only while nobody asked the run to stop
+        self.may_emit = True
+        if self.dark_since is not None:
+            self.store.add_event(self.run_id, "relight", "switching on again after a fault "
+                                 "(power set and read back, caps and interlock checked)",
+                                 point_key=self.current_key)
         for role in self.sources():
             if self.role(role).output_state():
                 if not self.lit:  # after a reconnect it is on because the run switched it on
@@ -608,14 +612,52 @@ class Runner:
         # The first trace's switch path moves with the other settings (one wait for all).
         settings = self.settings_for(spec.setpoint) + self.path_settings(kinds[0])
         self.current_key = spec.key
+        settle = max([s.settle_s for s in settings] + [0.0]) + self.profile_settle_s
+        bound = point_bound_s(settle * self.scale, len(kinds), self.bench)
         attempt = 0
         while True:
             attempt += 1
             try:
-                traces = self.attempt_point(spec, settings, kinds)
+                with PointWatchdog(bound, self.overrun) as self.watchdog:
+                    traces = self.attempt_point(spec, settings, kinds)
+                self.dark_since = None
                 return traces, traces[0].reduction, attempt
             except InstrumentError as exc:
                 self.fault(spec, attempt, exc)
+            finally:
+                self.watchdog = None
+
+    # ---- no light without progress (policy: labrun/faults.py) -------------------------------
+    def overrun(self) -> None:
+        """Watchdog thread: the attempt outlived its bound; darken now, over fresh connections
+        where the run loop holds a session (it is told by ``check_progress``)."""
+        darken(self.bench, self.instruments)
+
+    def check_progress(self) -> None:
+        """In the run loop: PointOverrun once the current attempt's watchdog fired."""
+        dog = self.watchdog
+        if dog is not None and dog.fired.is_set():
+            raise PointOverrun(f"point took longer than its bound of {dog.bound_s:.1f} s; "
+                               "sources switched off")
+
+    def go_dark(self, reason: str, *, done: bool = False) -> None:
+        """Every source off at once (attenuators to maximum), recorded as a ``dark`` event;
+        everything is set again, and emission comes back only through ``prepare``.
+        ``done``: the watchdog already darkened the bench."""
+        if not self.may_emit and not done:
+            return  # still dark from the last fault: nothing was switched on since
+        problems = [] if done else darken(self.bench, self.instruments)
+        self.may_emit = False
+        self.emitting = False
+        self.applied.clear()
+        self.trace_x = None
+        if self.dark_since is None:
+            self.dark_since = time.monotonic()
+        note = "" if not problems else "; NOT CONFIRMED OFF: " + "; ".join(problems)
+        self.store.add_event(self.run_id, "dark", f"sources off after a fault: {reason}{note}",
+                             point_key=self.current_key,
+                             data={"problems": problems, "reason": reason[:200],
+                                   "limit_s": self.policy.dark_limit_s})
 
     def attempt_point(self, spec: PointSpec, settings: Sequence[Setting],
                       kinds: Sequence[str]) -> list[Captured]:
@@ -639,18 +681,28 @@ class Runner:
         return traces
 
     def fault(self, spec: PointSpec, attempt: int, exc: InstrumentError) -> None:
-        """Record a fault (unless its session already did), then prepare the retry: wait the
-        backoff, and reconnect when an instrument stopped answering; abort beyond the policy.
+        """Darken first when the policy says so (``faults.darkens``: no answer, an overrun, or
+        a second failure in a row), record the fault (unless its session already did), then
+        prepare the retry: wait the backoff, and reconnect when an instrument stopped answering;
+        abort beyond the policy (attempts, or ``dark_limit_s`` spent dark).
 
         A reconnect that fails is a fault too; the next attempt then opens the bench again.
         Other faults (an error-queue entry, a garbled or short reply, a failed read-back) keep
         the connections: what failed was never marked applied, so it is set again, and the
         sweep is taken again.
         """
+        overran = isinstance(exc, PointOverrun)
+        if darkens(exc, attempt, overran):
+            self.go_dark(str(exc), done=overran)
         if not getattr(exc, "fault_reported", False):
             self.record_fault(exc, attempt=attempt, level="point")
         if attempt >= self.policy.attempts:
             raise RunAborted(f"point {spec.key}: {exc} (after {attempt} attempts)") from exc
+        dark_s = 0.0 if self.dark_since is None else time.monotonic() - self.dark_since
+        if dark_s >= self.policy.dark_limit_s:
+            raise RunAborted(f"point {spec.key}: {exc} (dark for {dark_s:.0f} s after "
+                             f"{attempt} attempts, limit {self.policy.dark_limit_s:g} s)"
+                             ) from exc
         self.wait_until(time.monotonic() + self.policy.delay_s(attempt) * self.scale)
         self.trace_x = None  # read x again with the next sweep
         if self.policy.reconnect and (isinstance(exc, NoAnswerError) or self.instruments is None):
