@@ -22,7 +22,8 @@ class InputError(LabrunError):
         self.file = file
         self.field = field
         where = ": ".join(p for p in (file, field) if p)
-        super().__init__(f"{where}: {message}" if where else message)
+        text = f"{where}: {message}" if where else message
+        super().__init__(" ".join(text.splitlines()))  # one line, whatever a message quoted
 
 
 class InstrumentError(LabrunError):

@@ -7,17 +7,24 @@ one-line InputError naming the file and the field. See drivers/README.md for the
 
 from __future__ import annotations
 
-import math
+import re
 import string
-import tomllib
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any, Literal
+from typing import Annotated, Any, Literal
 
-from pydantic import BaseModel, ConfigDict, ValidationError, field_validator, model_validator
+from pydantic import (
+    BaseModel,
+    ConfigDict,
+    Field,
+    ValidationError,
+    field_validator,
+    model_validator,
+)
 from pydantic_core import PydanticCustomError
 
 from labrun.errors import InputError
+from labrun.inputfile import FILE_MODEL_CONFIG, Number, load_toml
 from labrun.resources import find_file
 
 Kind = Literal["laser", "attenuator", "pol_controller", "osa", "power_meter", "amplifier",
@@ -52,10 +59,22 @@ REQUIRED_OPERATIONS: dict[str, tuple[str, ...]] = {
 VALUE_PLACEHOLDERS: dict[str, tuple[str, ...]] = {"set_stokes": ("s1", "s2", "s3")}
 SETTINGS_WITHOUT_VALUE = ("output_on", "output_off", "sweep", "reset", "clear_status")
 INDEX = "index"
+# Operations that switch light: each travels alone, never inside a compound message.
+SOURCE_SWITCHES = ("output_on", "output_off")
+# Line ends a profile may use as termination (IEEE 488.2 7.5: NL, optionally after CR).
+TERMINATIONS = ("\n", "\r\n", "\r")
+# A template holds one program message unit: no unit separator, no line end, no control byte.
+_NOT_ONE_COMMAND = re.compile(r"[;\x00-\x1f\x7f]")
+# Plain format specs only: optional precision (at most 17 digits) and a number type, no width,
+# fill or nested fields ({value:.3f}, {value:d}, {value:g}, {value:.6e}).
+_PLAIN_SPEC = re.compile(r"(\.(1[0-7]|[0-9])[efg]|[dfeg])?")
+# An init command that would switch light on: an OUTPut or STATe node set ON or 1 (short or long
+# SCPI forms, any numeric suffix, e.g. OUTP ON, OUTP:STAT ON, SOUR:POW:STAT 1).
+_SWITCH_NODES = {"OUTP", "OUTPUT", "STAT", "STATE"}
 
 
 class _Strict(BaseModel):
-    model_config = ConfigDict(extra="forbid", strict=False)
+    model_config = FILE_MODEL_CONFIG
 
 
 class _ProfileHead(_Strict):
@@ -64,7 +83,7 @@ class _ProfileHead(_Strict):
     description: str = ""
     write_termination: str = "\n"
     read_termination: str = "\n"
-    timeout_ms: int = 3000
+    timeout_ms: int = Field(3000, gt=0, le=600_000)
     error_query: str | None = "SYST:ERR?"
     opc_query: str | None = "*OPC?"
     init: list[str] = []
@@ -91,17 +110,18 @@ class TraceSpec(_Strict):
 class Operation(_Strict):
     """One generic operation: SCPI template, parsing, unit, limits, settling and read-back."""
 
-    model_config = ConfigDict(extra="forbid", strict=False, frozen=True)
+    model_config = ConfigDict(**FILE_MODEL_CONFIG, frozen=True)
 
     command: str | None = None
     query: str | None = None
     parse: Parse | None = None
     unit: str | None = None
-    range: tuple[float, float] | None = None
-    index_range: tuple[int, int] | None = None
-    settle_s: float = 0.0
+    range: Annotated[tuple[Number, Number] | None, Field(strict=False)] = None
+    index_range: Annotated[tuple[Annotated[int, Field(strict=True)], Annotated[int, Field(
+        strict=True)]] | None, Field(strict=False)] = None
+    settle_s: float = Field(0.0, ge=0.0, le=3600.0)
     readback: str | None = None
-    tolerance: float | None = None
+    tolerance: float | None = Field(None, ge=0.0)
     wait: bool = False
     # The key in [operations], filled in by parse_profile; last, so a "name" in the file is
     # reported where an unknown key would be.
@@ -120,8 +140,6 @@ class Operation(_Strict):
             raise ValueError("a query needs 'parse'")
         if self.command is not None and self.parse is not None:
             raise ValueError("'parse' belongs to queries, not commands")
-        if self.settle_s < 0 or not math.isfinite(self.settle_s):
-            raise ValueError("'settle_s' must be a finite number >= 0")
         return self
 
     @property
@@ -227,11 +245,15 @@ def _check_operation(path: Path, kind: str, name: str, op: Operation,
     for extra in (n for n in names if n not in wanted):
         hint = " (add index_range)" if extra == INDEX else ""
         raise _fail(path, where, f"unknown placeholder {{{extra}}} in {op.template!r}{hint}")
+    _check_specs(path, where, op.template)
     for key, rng in (("range", op.range), ("index_range", op.index_range)):
-        if rng is not None and not (math.isfinite(rng[0]) and math.isfinite(rng[1])
-                                    and rng[0] < rng[1]):
-            raise _fail(path, f"{where}.{key}", f"range must be [low, high] with low < high, "
-                                               f"got {list(rng)}")
+        if rng is not None and not (rng[0] < rng[1] and max(abs(rng[0]), abs(rng[1])) <= 1e9):
+            raise _fail(path, f"{where}.{key}", f"range must be [low, high] with low < high "
+                                               f"within +-1e9, got {list(rng)}")
+    if op.tolerance is not None and op.range is not None and \
+            not op.tolerance < (op.range[1] - op.range[0]) / 10.0:
+        raise _fail(path, f"{where}.tolerance", f"{op.tolerance:g} is not below a tenth of the "
+                                                "range (a read-back check that cannot fail)")
     if wanted and "value" in wanted and op.range is None:
         raise _fail(path, f"{where}.range", "a setting with {value} needs a range")
     if op.readback is not None:
@@ -248,6 +270,55 @@ def _check_operation(path: Path, kind: str, name: str, op: Operation,
         raise _fail(path, where, f"template {op.template!r} cannot be filled: {exc}") from None
 
 
+def _check_one_command(path: Path, where: str, text: str | None) -> None:
+    """A template or command holds one program message unit: no ';' and no line end."""
+    if text is not None and _NOT_ONE_COMMAND.search(text):
+        raise _fail(path, where, f"{text!r} holds a message separator or line end (';', CR, LF "
+                                 "or another control character); one command per template")
+
+
+def _check_specs(path: Path, where: str, template: str) -> None:
+    """Placeholders take plain format specs only (precision and type; no width, no fill)."""
+    try:
+        fields = list(string.Formatter().parse(template))
+    except ValueError as exc:
+        raise _fail(path, where, f"malformed template {template!r}: {exc}") from None
+    for _, name, spec, conversion in fields:
+        if name is None:
+            continue
+        if conversion is not None or not _PLAIN_SPEC.fullmatch(spec or ""):
+            raise _fail(path, where, f"placeholder {{{name}}} in {template!r} needs a plain "
+                                     "format spec (.3f, .6e, g or d; no width, fill or '!')")
+
+
+def switches_source_on(command: str) -> bool:
+    """True when ``command`` would switch light on: an OUTPut or STATe node set ON or 1."""
+    header, _, argument = command.strip().upper().partition(" ")
+    nodes = {re.sub(r"\d+$", "", node) for node in header.lstrip(":").split(":")}
+    return bool(nodes & _SWITCH_NODES) and argument.strip() in ("ON", "1")
+
+
+def _check_messages(path: Path, head: _ProfileHead, trace: TraceSpec | None,
+                    ops: dict[str, Operation]) -> None:
+    """One command per template everywhere; line ends only as terminations; init stays dark."""
+    for key in ("write_termination", "read_termination"):
+        if getattr(head, key) not in TERMINATIONS:
+            raise _fail(path, f"profile.{key}", "must be a line end: \\n, \\r\\n or \\r")
+    for key in ("error_query", "opc_query"):
+        _check_one_command(path, f"profile.{key}", getattr(head, key))
+    on = ops.get("output_on")
+    for i, command in enumerate(head.init):
+        _check_one_command(path, f"profile.init[{i}]", command)
+        if switches_source_on(command) or (on is not None and on.command is not None and
+                                           command.strip().upper() == on.command.strip().upper()):
+            raise _fail(path, f"profile.init[{i}]", f"{command!r} would switch a source on; "
+                                                    "init may not (output_on does, after checks)")
+    for key in ("format_command", "ascii_command", "byte_order_command"):
+        _check_one_command(path, f"trace.{key}", getattr(trace, key, None))
+    for name, op in ops.items():
+        _check_one_command(path, f"operations.{name}", op.template)
+
+
 def parse_profile(data: dict[str, Any], path: Path) -> Profile:
     """Validate a profile already read from TOML; raise a one-line InputError on the first flaw."""
     try:
@@ -258,9 +329,8 @@ def parse_profile(data: dict[str, Any], path: Path) -> Profile:
     head = model.profile
     if head.name != path.stem:
         raise _fail(path, "profile.name", f"{head.name!r} must equal the file name {path.stem!r}")
-    if head.timeout_ms <= 0:
-        raise _fail(path, "profile.timeout_ms", "must be > 0")
     ops = {name: op.model_copy(update={"name": name}) for name, op in model.operations.items()}
+    _check_messages(path, head, model.trace, ops)
     for name, op in ops.items():
         _check_operation(path, head.kind, name, op, ops)
     for name in REQUIRED_OPERATIONS[head.kind]:
@@ -289,10 +359,5 @@ def load_profile(name_or_path: str | Path, *, base: Path | None = None) -> Profi
     if path is None:
         raise InputError(f"no profile {str(name_or_path)!r} (not a file, not in drivers/)",
                          file=str(name_or_path))
-    try:
-        data = tomllib.loads(path.read_text(encoding="utf-8"))
-    except tomllib.TOMLDecodeError as exc:
-        raise InputError(f"not valid TOML: {exc}", file=str(path)) from None
-    except OSError as exc:
-        raise InputError(f"cannot read: {exc.strerror}", file=str(path)) from None
+    _, data = load_toml(path)
     return parse_profile(data, path)

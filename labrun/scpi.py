@@ -433,12 +433,13 @@ class ScpiSession:
             return None
         return base64.b64encode(self._last_block).decode("ascii")
 
-    def write(self, cmd: str, *, check_errors: bool = True) -> None:
+    def write(self, cmd: str, *, check_errors: bool = True, alone: bool = False) -> None:
         """Send one command; then drain the error queue and raise ScpiError if it held errors.
 
-        With compound messages the first error-queue read travels with the command.
+        With compound messages the first error-queue read travels with the command, unless
+        ``alone`` (a command that switches light is always a message of its own).
         """
-        if check_errors and self.error_query and self.compound:
+        if check_errors and self.error_query and self.compound and not alone:
             self.setting(cmd)
             return
         with self._lock:

@@ -151,3 +151,22 @@ def test_sweep_and_trace_in_one_message(lab):
         # SCPI-1999 -141 Invalid character data: BOGUS is no trace name of this OSA.
         assert info.value.code == -141 and info.value.command == "INIT:IMM"
         assert s.query("SYST:ERR?") == '0,"No error"' and s.query("*OPC?") == "1"
+
+
+def test_source_switches_travel_alone(lab, tmp_path):
+    """issue 13: several commands in one message only where the profile declares it, and never
+    to switch light: output_on/output_off go alone (their read-back and error query follow as
+    separate exchanges), while a power setting on the same instrument still travels compound."""
+    traffic_log = TrafficLog()
+    bench = load_bench(lab.write_bench(tmp_path / "bench.toml"))
+    assert bench.settle_scale == 0.0
+    with open_bench(bench, roles=["laser_b"], traffic_log=traffic_log) as ins:
+        laser = ins["laser_b"]
+        assert laser.session.compound
+        laser.apply("set_power_dbm", 0.0)
+        laser.output_on()
+        laser.output_off()
+    sent = [e.text for e in traffic_log.entries if e.role == "laser_b"]
+    switched = [t for t in sent if "OUTP:STAT O" in t]
+    assert switched == ["OUTP:STAT ON", "OUTP:STAT OFF"], sent
+    assert any(t.startswith("SOUR:POW 0.000;") for t in sent), sent

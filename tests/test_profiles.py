@@ -88,6 +88,96 @@ BAD_CASES = [
 ]
 
 
+def _sub(old: str, new: str, count: int = 1):
+    """An edit of the shipped laser profile (asserting the text to edit is there)."""
+    def edit(text: str) -> str:
+        assert old in text, old
+        return text.replace(old, new, count)
+    return edit
+
+
+# issue 13: every template holds one command (IEEE 488.2 7.4.1: ';' separates program message
+# units; a line end terminates the message), plain format specs, init never switches light on,
+# numbers finite and within range, booleans not numbers.
+ONE_COMMAND_CASES = [
+    ("second command after output_off", _sub('"OUTP:STAT OFF"', '"OUTP:STAT OFF;:OUTP:STAT ON"'),
+     "operations.output_off"),
+    ("second command after the power", _sub('"SOUR:POW {value:.3f}"',
+                                           '"SOUR:POW {value:.3f};:SOUR:POW 13"'),
+     "operations.set_power_dbm"),
+    ("newline inside a template", _sub('"SOUR:POW?"', '"SOUR:POW?\\nOUTP:STAT ON"'),
+     "operations.read_power_dbm"),
+    ("carriage return inside a template", _sub('"OUTP:STAT OFF"', '"OUTP:STAT OFF\\rOUTP ON"'),
+     "operations.output_off"),
+    ("command inside the write termination", _sub('write_termination = "\\n"',
+                                                 'write_termination = ";:OUTP:STAT ON\\n"'),
+     "profile.write_termination"),
+    ("odd read termination", _sub('read_termination = "\\n"', 'read_termination = "X"'),
+     "profile.read_termination"),
+    ("second command in the error query", _sub('error_query = "SYST:ERR?"',
+                                               'error_query = "SYST:ERR?;:OUTP ON"'),
+     "profile.error_query"),
+    ("second command in init", _sub('init = ["*CLS"]', 'init = ["*CLS;:OUTP:STAT ON"]'),
+     "profile.init[0]"),
+    ("init switches on (OUTP:STAT ON)", _sub('init = ["*CLS"]', 'init = ["*CLS", "OUTP:STAT ON"]'),
+     "profile.init[1]"),
+    ("init switches on (OUTP ON)", _sub('init = ["*CLS"]', 'init = ["outp on"]'),
+     "profile.init[0]"),
+    ("init switches on (SOUR:POW:STAT ON)", _sub('init = ["*CLS"]', 'init = [":SOUR:POW:STAT 1"]'),
+     "profile.init[0]"),
+    ("init switches on (long form)", _sub('init = ["*CLS"]', 'init = ["OUTPUT2:STATE ON"]'),
+     "profile.init[0]"),
+    ("wide format spec", _sub("{value:.3f}", "{value:>99999999999}"), "operations.set_power_dbm"),
+    ("width in a format spec", _sub("{value:.3f}", "{value:20.3f}"), "operations.set_power_dbm"),
+    ("nested format spec", _sub("{value:.3f}", "{value:.{value}f}"), "operations.set_power_dbm"),
+    ("conversion in a placeholder", _sub("{value:.3f}", "{value!r}"), "operations.set_power_dbm"),
+    ("tolerance nan", _sub("tolerance = 0.05", "tolerance = nan"),
+     "operations.set_power_dbm.tolerance"),
+    ("tolerance inf", _sub("tolerance = 0.05", "tolerance = inf"),
+     "operations.set_power_dbm.tolerance"),
+    ("tolerance negative", _sub("tolerance = 0.05", "tolerance = -1"),
+     "operations.set_power_dbm.tolerance"),
+    ("tolerance wider than a tenth of the range", _sub("tolerance = 0.05", "tolerance = 2.5"),
+     "operations.set_power_dbm.tolerance"),
+    ("tolerance a boolean", _sub("tolerance = 0.05", "tolerance = true"),
+     "operations.set_power_dbm.tolerance"),
+    ("range with infinity", _sub("range = [-10.0, 13.0]", "range = [-10.0, inf]"),
+     "operations.set_power_dbm.range"),
+    ("range of booleans", _sub("range = [-10.0, 13.0]", "range = [false, true]"),
+     "operations.set_power_dbm.range"),
+    ("settle_s nan", _sub("settle_s = 0.2", "settle_s = nan"), "operations.set_power_dbm.settle_s"),
+    ("settle_s a day", _sub("settle_s = 0.2", "settle_s = 86400.0"),
+     "operations.set_power_dbm.settle_s"),
+    ("timeout a boolean", _sub("timeout_ms = 3000", "timeout_ms = true"), "profile.timeout_ms"),
+    ("timeout of years", _sub("timeout_ms = 3000", "timeout_ms = 100000000000"),
+     "profile.timeout_ms"),
+    ("capability a number", _sub("output_state = true", "output_state = 1"),
+     "capabilities.output_state"),
+]
+
+
+@pytest.mark.parametrize("case", ONE_COMMAND_CASES, ids=[c[0] for c in ONE_COMMAND_CASES])
+def test_templates_hold_one_command_and_plain_numbers(tmp_path, case):
+    _, edit, field = case
+    path = _write(tmp_path, edit(LASER))
+    with pytest.raises(InputError) as info:
+        load_profile(path)
+    message = str(info.value)
+    assert "\n" not in message and str(path) in message and field in message, message
+
+
+def test_plain_specs_and_dark_init_are_accepted(tmp_path):
+    """The rules refuse only what they name: precision/type specs, OUTP:STAT OFF and a query of
+    the state in init, and ';' inside a quoted description stay valid."""
+    text = (LASER.replace("{value:.3f}", "{value:.6e}")
+            .replace('init = ["*CLS"]', 'init = ["*CLS", "OUTP:STAT OFF", "OUTP:STAT?", '
+                                        '"SOUR:POW:STAT 0"]')
+            .replace('description = "', 'description = "a; b '))
+    profile = load_profile(_write(tmp_path, text))
+    assert profile.operations["set_power_dbm"].render(value=1.5) == "SOUR:POW 1.500000e+00"
+    assert profile.init == ("*CLS", "OUTP:STAT OFF", "OUTP:STAT?", "SOUR:POW:STAT 0")
+
+
 @pytest.mark.parametrize("case", BAD_CASES, ids=[c[0] for c in BAD_CASES])
 def test_bad_profile_names_file_and_field(tmp_path, case):
     _, edit, field = case

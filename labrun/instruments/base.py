@@ -17,7 +17,7 @@ import numpy as np
 
 from labrun.bench import InstrumentSpec
 from labrun.errors import InputError, InstrumentError, SafetyError
-from labrun.profiles import Operation, Profile
+from labrun.profiles import SOURCE_SWITCHES, Operation, Profile
 from labrun.scpi import Idn, ScpiError, ScpiSession, parse_idn
 
 log = logging.getLogger("labrun.instruments")
@@ -276,10 +276,11 @@ class Adapter:
         p = self.prepare(name, value, index=index, values=values, cap=cap, expect=expect)
         op = p.op
         settle_s = op.settle_s * self.settle_scale if settle else 0.0
-        if self._compound_ok() and settle_s <= 0:
+        if self._compound_ok() and settle_s <= 0 \
+                and name not in SOURCE_SWITCHES:  # switching light travels alone
             self._apply_compound(op, p.text, p.back, p.index, p.target, cap)
             return
-        self.session.write(p.text)
+        self.session.write(p.text, alone=name in SOURCE_SWITCHES)
         if settle:
             self.settle(op.settle_s)
         if op.wait:
