@@ -20,17 +20,8 @@ from labrun.errors import InputError
 from labrun.inputfile import FILE_MODEL_CONFIG, Number, decode, parse_toml, read_bytes
 from labrun.profiles import Profile, load_profile
 from labrun.resources import find_file
+from labrun.roles import ROLE_KINDS, SOURCE_ROLES, SWEEP_ROLES
 from labrun.scpi import BACKENDS
-
-ROLE_KINDS: dict[str, str] = {
-    "laser_a": "laser", "laser_b": "laser",
-    "attenuator_a": "attenuator", "attenuator_b": "attenuator",
-    "pol_controller": "pol_controller", "osa": "osa",
-    "amplifier": "amplifier", "power_meter": "power_meter", "switch": "switch",
-}
-SWEEP_ROLES = ("laser_a", "laser_b", "attenuator_a", "attenuator_b", "pol_controller", "osa")
-SOURCE_ROLES = ("laser_a", "laser_b", "amplifier")
-
 
 # Physical ranges of bench values (refused outside them, before anything is opened): powers
 # within what fibre benches carry (-60 dBm to 10 W), losses 0-60 dB, settle times scaled 0-100x.

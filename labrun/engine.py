@@ -36,6 +36,7 @@ from labrun.instruments.base import FLOAT_SLACK
 from labrun.physics.units import nm_to_thz
 from labrun.plan import Plan, PointSpec, StopWatch
 from labrun.preload import preload
+from labrun.roles import SOURCE_ROLES
 from labrun.safe_off import darken
 from labrun.scpi import NoAnswerError
 from labrun.settle import group_settles, setting_s, wait_s
@@ -46,7 +47,6 @@ from labrun.trafficlog import EVENT_KIND
 if TYPE_CHECKING:
     from labrun.reduce import Reduction
 
-SOURCE_ROLES = ("laser_a", "laser_b", "amplifier")
 # Sanity bounds of a trace sample in dBm: an OSA shows nothing outside them; a value outside is a
 # corrupted transfer, not light (common practice).
 TRACE_DBM_BOUNDS = (-300.0, 100.0)

@@ -22,6 +22,7 @@ from pydantic import BaseModel, ConfigDict, Field, ValidationError
 from labrun.errors import InputError
 from labrun.inputfile import FILE_MODEL_CONFIG, Number, decode, parse_toml, read_bytes
 from labrun.physics.units import nm_to_thz, thz_to_nm
+from labrun.profiles import generic_profile
 from labrun.resources import find_file
 
 # ITU-T G.694.1 (DWDM frequency grid): anchor 193.1 THz, fixed grids of 12.5/25/50/100 GHz.
@@ -91,7 +92,6 @@ GAUSS_DB = 10.0 * math.log10(math.e) * 4.0 * math.log(2.0)
 # Sample counts labrun offers (its own choice): odd, so a sample lands on the centre, and 2^n + 1,
 # so each step halves the sample spacing of the one before and keeps every earlier sample.
 POINT_STEPS = tuple(2**n + 1 for n in range(5, 19))  # 33 ... 262145
-OSA_POINTS_RANGE = (33.0, 65537.0)  # sampling points when the OSA profile states no range
 
 
 # ----------------------------------------------------------------------------- file structure
@@ -918,6 +918,14 @@ def op_range(bench: Any, role: str, op: str) -> tuple[float, float] | None:
     return (float(rng[0]), float(rng[1])) if rng else None
 
 
+def _osa_range(bench: Any, op: str) -> tuple[float, float]:
+    """The bench OSA's range for ``op``; without one (no bench, or the profile maps no such
+    setting), the generic OSA profile's."""
+    rng = op_range(bench, "osa", op) or generic_profile("osa").op(op).range
+    assert rng is not None  # the generic profile ranges every setting (profiles refuse less)
+    return (float(rng[0]), float(rng[1]))
+
+
 def op_settle(bench: Any, role: str, op: str) -> float:
     """Settle time of a profile operation (0 when unknown)."""
     spec = getattr(bench, "instruments", {}).get(role) if bench is not None else None
@@ -976,7 +984,7 @@ def choose_osa_settings(plan: Plan, bench: Any = None) -> OsaSettings:
     why_limit = (f"spacing/4 = {sp_nm / 4:.4f} nm" if limit == sp_nm / 4.0 else
                  f"{limit:.4f} nm (spacing/4 = {sp_nm / 4:.4f} nm, tightened so a Gaussian RBW "
                  f"skirt is {spec.skirt_db:g} dB down midway between lines)")
-    rbw_rng = op_range(bench, "osa", "set_rbw_nm") or (0.01, 2.0)
+    rbw_rng = _osa_range(bench, "set_rbw_nm")
     if spec.rbw_nm is not None:
         rbw = spec.rbw_nm
         reasons.append(f"RBW {rbw:g} nm as given")
@@ -996,7 +1004,7 @@ def choose_osa_settings(plan: Plan, bench: Any = None) -> OsaSettings:
             warnings.append(f"the OSA's finest RBW {rbw:g} nm exceeds {why_limit} "
                             f"({sp_ghz:g} GHz): neighbouring lines may merge")
 
-    pts_rng = op_range(bench, "osa", "set_points") or OSA_POINTS_RANGE
+    pts_rng = _osa_range(bench, "set_points")
     need_pts = math.ceil(spec.samples_per_rbw * span / rbw) + 1
     if spec.points is not None:
         n = spec.points

@@ -7,6 +7,7 @@ one-line InputError naming the file and the field. See drivers/README.md for the
 
 from __future__ import annotations
 
+import functools
 import re
 import string
 from dataclasses import dataclass, field
@@ -208,6 +209,18 @@ class Profile:
     def read_operations(self) -> list[Operation]:
         """Every query operation, in file order: what a probe may exercise safely."""
         return [op for op in self.operations.values() if op.is_query]
+
+
+def generic_profile_name(kind: str) -> str:
+    """File name (without .toml) of the shipped generic profile of a kind."""
+    return "generic-" + kind.replace("_", "-")
+
+
+@functools.cache
+def generic_profile(kind: str) -> Profile:
+    """The shipped generic profile of a kind, loaded once: the virtual lab speaks it and takes
+    its instruments' ranges from it."""
+    return load_profile(generic_profile_name(kind))
 
 
 def placeholders(template: str) -> tuple[str, ...]:

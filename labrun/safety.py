@@ -14,9 +14,9 @@ from collections.abc import Iterable, Mapping
 from dataclasses import asdict, dataclass, field
 from typing import Any
 
-from labrun.bench import SWEEP_ROLES
 from labrun.errors import SafetyError
 from labrun.plan import Plan, PointSpec, op_range, wavelength_b_nm
+from labrun.roles import SWEEP_ROLES
 
 ARMS = ("a", "b")
 

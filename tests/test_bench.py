@@ -6,9 +6,10 @@ from pathlib import Path
 
 import pytest
 
-from labrun.bench import ROLE_KINDS, SWEEP_ROLES, load_bench
+from labrun.bench import load_bench
 from labrun.errors import InputError
 from labrun.resources import data_dir
+from labrun.roles import ROLE_KINDS, SWEEP_ROLES
 
 SIM_BENCH = data_dir("sim_instruments") / "bench-pyvisa-sim.toml"
 SIM_TEXT = SIM_BENCH.read_text()

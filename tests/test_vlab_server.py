@@ -24,8 +24,9 @@ from scipy.special import jv
 from labrun.bench import load_bench
 from labrun.physics.units import effective_length_km
 from labrun.profiles import load_profile
+from labrun.roles import ROLE_KINDS
 from labrun.vlab import VirtualLab
-from labrun.vlab.scenario import ROLE_KINDS, parse_scenario
+from labrun.vlab.scenario import parse_scenario
 
 REPO = Path(__file__).resolve().parents[1]
 DEFAULT = REPO / "sim_instruments" / "default-scenario.toml"

@@ -204,10 +204,11 @@ def run_spectrum(args: argparse.Namespace) -> int:
 
 def _sample_count(need: int) -> int:
     """The smallest of the plans' sample counts (labrun.plan.POINT_STEPS) that holds ``need``
-    samples, within the OSA's sampling-point range, as a plan would set the OSA."""
-    from labrun.plan import OSA_POINTS_RANGE, POINT_STEPS
+    samples, within the virtual lab OSA's sampling-point range (its generic profile)."""
+    from labrun.plan import POINT_STEPS
+    from labrun.profiles import generic_profile
 
-    lo, hi = OSA_POINTS_RANGE
+    lo, hi = generic_profile("osa").op("set_points").range or (POINT_STEPS[0], POINT_STEPS[-1])
     fits = [n for n in POINT_STEPS if n >= need and lo <= n <= hi]
     return fits[0] if fits else int(hi)
 

@@ -18,8 +18,10 @@ import time
 from pathlib import Path
 from typing import Any
 
+from labrun.profiles import generic_profile_name
+from labrun.roles import ROLE_KINDS, SOURCE_ROLES
 from labrun.vlab.faults import FaultInjector
-from labrun.vlab.scenario import ROLE_KINDS, SOURCE_ROLES, Scenario, as_scenario
+from labrun.vlab.scenario import Scenario, as_scenario
 from labrun.vlab.scpi_server import (
     INSTRUMENT_CLASSES,
     AttenuatorInstrument,
@@ -31,7 +33,8 @@ from labrun.vlab.state import LabState
 log = logging.getLogger(__name__)
 # Caps written into the bench when [bench.caps] names none for a source (invented, safe side).
 DEFAULT_CAPS_DBM = {"laser_a": 10.0, "laser_b": 10.0, "amplifier": 20.0}
-MAX_ATTENUATION_DB = AttenuatorInstrument.ATTENUATION_DB[1]  # the simulated attenuator's darkest
+# The simulated attenuator's darkest setting: the top of the generic attenuator profile's range.
+MAX_ATTENUATION_DB = AttenuatorInstrument.limits("set_attenuation_db")[1]
 
 
 class BindError(OSError):
@@ -251,7 +254,7 @@ class VirtualLab:
         for role, server in self.servers.items():
             lines += ["", f"[instruments.{role}]", f"resource = {q(server.resource)}",
                       'backend = "@py"',
-                      f"profile = {q('generic-' + ROLE_KINDS[role].replace('_', '-'))}"]
+                      f"profile = {q(generic_profile_name(ROLE_KINDS[role]))}"]
             if role in SOURCE_ROLES:
                 cap = layout.caps.get(role, DEFAULT_CAPS_DBM[role])
                 lines.append(f"max_power_dbm = {cap!r}")

@@ -17,21 +17,7 @@ from labrun.physics.fibre import Fibre
 from labrun.physics.spool import MAX_NONLINEAR_PHASE_RAD, nonlinear_phase_rad
 from labrun.physics.units import dbm_to_w
 from labrun.resources import find_file
-
-# role -> instrument kind (the kinds of drivers/README.md)
-ROLE_KINDS: dict[str, str] = {
-    "laser_a": "laser",
-    "laser_b": "laser",
-    "attenuator_a": "attenuator",
-    "attenuator_b": "attenuator",
-    "pol_controller": "pol_controller",
-    "osa": "osa",
-    "amplifier": "amplifier",
-    "power_meter": "power_meter",
-    "switch": "switch",
-}
-REQUIRED_ROLES = ("laser_a", "laser_b", "attenuator_a", "attenuator_b", "pol_controller", "osa")
-SOURCE_ROLES = ("laser_a", "laser_b", "amplifier")
+from labrun.roles import ROLE_KINDS, SWEEP_ROLES
 
 # Invented identities of the simulated instruments (IEEE 488.2 *IDN? format: maker,model,serial,fw).
 DEFAULT_IDN: dict[str, str] = {
@@ -119,7 +105,7 @@ class Instruments(_Strict):
 
     @model_validator(mode="after")
     def _required_present(self) -> Instruments:
-        for role in REQUIRED_ROLES:
+        for role in SWEEP_ROLES:  # a scenario simulates every role a sweep needs
             if not getattr(self, role).present:
                 raise ValueError(f"{role} is required for a sweep and cannot be absent")
         return self

@@ -2,8 +2,10 @@
 terminated, speaking the SCPI of the generic profiles in drivers/.
 
 Each ``SimInstrument`` owns an IEEE 488.2 status model (error queue, event status register) and a
-command table; all of them change one shared ``LabState`` under its lock. ``InstrumentServer``
-serves one instrument on a threading TCP server (several clients at once).
+command table; all of them change one shared ``LabState`` under its lock. Every value range
+an instrument accepts comes from the generic profile of its kind (drivers/generic-<kind>.toml,
+the profile the lab's bench file names), so the lab and the profiles cannot disagree.
+``InstrumentServer`` serves one instrument on a threading TCP server (several clients at once).
 """
 
 from __future__ import annotations
@@ -17,6 +19,7 @@ import time
 
 import numpy as np
 
+from labrun.profiles import generic_profile
 from labrun.vlab.faults import FaultInjector
 from labrun.vlab.scpi import (
     Call,
@@ -91,6 +94,14 @@ class SimInstrument:
 
     def register(self) -> None:
         """Kind-specific commands (overridden)."""
+
+    @classmethod
+    def limits(cls, operation: str) -> tuple[float, float]:
+        """The range the generic profile of this kind gives ``operation`` (a setting)."""
+        rng = generic_profile(cls.kind).op(operation).range
+        if rng is None:
+            raise ValueError(f"generic {cls.kind} profile gives {operation} no range")
+        return rng
 
     def reset(self) -> None:
         """Kind-specific *RST state (overridden)."""
@@ -216,8 +227,6 @@ class LaserInstrument(SimInstrument):
     """Tunable CW laser: SOUR:WAV, SOUR:POW, OUTP:STAT, OUTP:INTL? (generic-laser profile)."""
 
     kind = "laser"
-    WAVELENGTH_NM = (1500.0, 1630.0)
-    POWER_DBM = (-10.0, 13.0)
 
     def _state(self):
         return self.lab.lasers[self.role]
@@ -240,10 +249,10 @@ class LaserInstrument(SimInstrument):
         laser.power_dbm = 0.0
 
     def _set_wavelength(self, call: Call) -> None:
-        self._state().wavelength_nm = number(call, *self.WAVELENGTH_NM, 1550.0)
+        self._state().wavelength_nm = number(call, *self.limits("set_wavelength_nm"), 1550.0)
 
     def _set_power(self, call: Call) -> None:
-        self._state().power_dbm = number(call, *self.POWER_DBM, 0.0)
+        self._state().power_dbm = number(call, *self.limits("set_power_dbm"), 0.0)
 
     def _set_output(self, call: Call) -> None:
         self._state().output = _source_switch(call, self.lab)
@@ -253,7 +262,6 @@ class AmplifierInstrument(SimInstrument):
     """Constant-output-power amplifier: SOUR:POW, OUTP:STAT, OUTP:INTL? (generic-amplifier)."""
 
     kind = "amplifier"
-    POWER_DBM = (0.0, 27.0)
 
     def register(self) -> None:
         t = self.table
@@ -270,7 +278,7 @@ class AmplifierInstrument(SimInstrument):
         self.lab.amplifier.power_dbm = 10.0
 
     def _set_power(self, call: Call) -> None:
-        self.lab.amplifier.power_dbm = number(call, *self.POWER_DBM, 10.0)
+        self.lab.amplifier.power_dbm = number(call, *self.limits("set_power_dbm"), 10.0)
 
     def _set_output(self, call: Call) -> None:
         self.lab.amplifier.output = _source_switch(call, self.lab)
@@ -280,8 +288,6 @@ class AttenuatorInstrument(SimInstrument):
     """Variable attenuator with shutter: CAL:WLEN, INP:ATT, OUTP:STAT (generic-attenuator)."""
 
     kind = "attenuator"
-    WAVELENGTH_NM = (1250.0, 1650.0)
-    ATTENUATION_DB = (0.0, 60.0)
 
     def _state(self):
         return self.lab.attenuators[self.role]
@@ -297,15 +303,16 @@ class AttenuatorInstrument(SimInstrument):
 
     def reset(self) -> None:
         att = self._state()
-        att.attenuation_db = self.ATTENUATION_DB[1]
+        att.attenuation_db = self.limits("set_attenuation_db")[1]
         att.output = False
         att.wavelength_nm = 1550.0
 
     def _set_wavelength(self, call: Call) -> None:
-        self._state().wavelength_nm = number(call, *self.WAVELENGTH_NM, 1550.0)
+        self._state().wavelength_nm = number(call, *self.limits("set_wavelength_nm"), 1550.0)
 
     def _set_attenuation(self, call: Call) -> None:
-        self._state().attenuation_db = number(call, *self.ATTENUATION_DB, 60.0)
+        lo, hi = self.limits("set_attenuation_db")
+        self._state().attenuation_db = number(call, lo, hi, hi)
 
     def _set_output(self, call: Call) -> None:
         self._state().output = boolean(call)
@@ -329,20 +336,22 @@ class PolControllerInstrument(SimInstrument):
 
     def _paddle(self, call: Call) -> int:
         n = call.suffix(1)
-        if not 1 <= n <= 3:
+        first, last = generic_profile(self.kind).op("set_angle_deg").index_range or (1, 3)
+        if not first <= n <= last:
             raise ScpiFault(-114, call.header)
         return n
 
     def _set_angle(self, call: Call) -> None:
         n = self._paddle(call)
-        self.lab.pol.angles_deg[n - 1] = number(call, 0.0, 360.0, 0.0)
+        self.lab.pol.angles_deg[n - 1] = number(call, *self.limits("set_angle_deg"), 0.0)
         self.lab.pol.stokes_target = None
 
     def _angle(self, call: Call) -> str:
         return fmt(self.lab.pol.angles_deg[self._paddle(call) - 1])
 
     def _set_stokes(self, call: Call) -> None:
-        s = np.array([number(call, -1.0, 1.0, 0.0, i) for i in range(3)])
+        lo, hi = self.limits("set_stokes")
+        s = np.array([number(call, lo, hi, 0.0, i) for i in range(3)])
         norm = float(np.linalg.norm(s))
         if norm < 0.5:
             raise ScpiFault(-222, f"{call.header} not a polarised state")
@@ -362,18 +371,16 @@ class OsaInstrument(SimInstrument):
     """Optical spectrum analyser: SENS:WAV:CENT/SPAN, SENS:BAND:RES, SENS:SWE:POIN, INIT:IMM,
     TRAC:DATA? WLEN|LEVEL, FORM:DATA, FORM:BORD (generic-osa)."""
 
-    POINTS = (33, 65537)  # sampling points, as drivers/generic-osa.toml
-
     kind = "osa"
 
     def register(self) -> None:
         t = self.table
         osa = self.lab.osa
-        t.add("[SENSe]:WAVelength:CENTer", self._setter("center_nm", 1200.0, 1700.0))
+        t.add("[SENSe]:WAVelength:CENTer", self._setter("center_nm", "set_center_nm"))
         t.add("[SENSe]:WAVelength:CENTer", lambda c: fmt(osa.center_nm), query=True)
-        t.add("[SENSe]:WAVelength:SPAN", self._setter("span_nm", 0.1, 200.0))
+        t.add("[SENSe]:WAVelength:SPAN", self._setter("span_nm", "set_span_nm"))
         t.add("[SENSe]:WAVelength:SPAN", lambda c: fmt(osa.span_nm), query=True)
-        t.add("[SENSe]:BANDwidth[:RESolution]", self._setter("rbw_nm", 0.01, 2.0))
+        t.add("[SENSe]:BANDwidth[:RESolution]", self._setter("rbw_nm", "set_rbw_nm"))
         t.add("[SENSe]:BANDwidth[:RESolution]", lambda c: fmt(osa.rbw_nm), query=True)
         t.add("[SENSe]:SWEep:POINts", self._set_points)
         t.add("[SENSe]:SWEep:POINts", lambda c: str(osa.points), query=True)
@@ -390,13 +397,15 @@ class OsaInstrument(SimInstrument):
         osa.center_nm, osa.span_nm, osa.rbw_nm, osa.points = 1550.0, 10.0, 0.05, 1025
         osa.real32, osa.little_endian = False, False
 
-    def _setter(self, name: str, lo: float, hi: float):
+    def _setter(self, name: str, operation: str):
+        lo, hi = self.limits(operation)
+
         def handler(call: Call) -> None:
             setattr(self.lab.osa, name, number(call, lo, hi, getattr(self.lab.osa, name)))
         return handler
 
     def _set_points(self, call: Call) -> None:
-        self.lab.osa.points = int(round(number(call, *self.POINTS, 1025)))
+        self.lab.osa.points = int(round(number(call, *self.limits("set_points"), 1025)))
 
     def _set_format(self, call: Call) -> None:
         kind = call.args[0].upper()
@@ -476,7 +485,8 @@ class PowerMeterInstrument(SimInstrument):
         self.lab.power_meter.wavelength_nm = 1550.0
 
     def _set_wavelength(self, call: Call) -> None:
-        self.lab.power_meter.wavelength_nm = number(call, 800.0, 1700.0, 1550.0)
+        self.lab.power_meter.wavelength_nm = number(call, *self.limits("set_wavelength_nm"),
+                                                    1550.0)
 
 
 class SwitchInstrument(SimInstrument):
@@ -493,7 +503,7 @@ class SwitchInstrument(SimInstrument):
         self.lab.switch.path = 1
 
     def _set_path(self, call: Call) -> None:
-        value = number(call, 1, 2, 1)
+        value = number(call, *self.limits("set_path"), 1)
         if value != int(value):
             raise ScpiFault(-224, f"{call.header} {call.args[0]}")
         self.lab.switch.path = int(value)
