@@ -901,7 +901,7 @@ def run_virtual(plan: Plan, bench: Any, store: Store, *, replay_of: int, mode: s
                           + "; ".join(str(v) for v in violations))
     specs = list(plan.points())
     run_id = store.create_run(**_run_fields(plan, bench, operator=None, unattended=True,
-                                            total=len(specs)))
+                                            total=len(specs)), replay_of=replay_of)
     store.add_event(run_id, "replay", f"replay of run {replay_of} ({mode}): virtual, no light "
                     "emitted", data={"replay_of": replay_of, "mode": mode})
     if created is not None:

@@ -24,7 +24,7 @@ from __future__ import annotations
 import math
 import re
 from collections.abc import Mapping
-from dataclasses import asdict, dataclass, field, replace
+from dataclasses import asdict, dataclass, field
 
 import numpy as np
 from scipy import stats
@@ -32,10 +32,9 @@ from scipy.optimize import least_squares
 from scipy.special import j0, j1
 
 from labrun.physics.fibre import Fibre
-from labrun.physics.fwm import inoue_efficiency, inoue_efficiency_nl, sideband_mismatch_per_km
+from labrun.physics.fwm import inoue_efficiency, sideband_mismatch_per_km
 from labrun.physics.polarisation import copolar_fraction, paddles_to_stokes
 from labrun.physics.units import alpha_per_km, dbm_to_w, effective_length_km
-from labrun.uncertainty import COMPONENTS, Component, Uncertainties, combine, spacing_shift_ghz
 
 DISPERSION_CONVENTION = (
     "|D| at the reference wavelength, ps/(nm km): four-wave mixing measures dbeta^2, so D and "
@@ -43,11 +42,6 @@ DISPERSION_CONVENTION = (
 SLOPE_CONVENTION = (
     "d|D|/d(lambda) at the reference wavelength, ps/(nm^2 km): the data determine how |D| "
     "changes with wavelength; this is the slope S when D > 0 and -S when D < 0")
-SIGNED_D_CONVENTION = (
-    "D at the reference wavelength, ps/(nm km), signed: D > 0 is anomalous dispersion "
-    "(beta2 < 0); the sign is measured through the SPM/XPM phase mismatch")
-SIGNED_S_CONVENTION = "dD/d(lambda) at the reference wavelength, ps/(nm^2 km), signed"
-SIGN_DCHI2 = 25.0  # the sign of D is reported when the other sign fits worse by this much
 LINE_KEY = re.compile(r"^(tone|sideband)_(low|high)_(\d+)$")
 DB = 10.0 / math.log(10.0)  # dB per neper of power ratio (10 log10 e)
 
@@ -65,19 +59,14 @@ class FitResult:
     extra: dict = field(default_factory=dict)
     warnings: list[str] = field(default_factory=list)  # what the fit lacked or assumed
     conventions: str = ""  # sign and frame conventions of the value, in words
-    u_combined: float = float("nan")  # combined standard uncertainty (GUM), NaN without budget
-    u95: float = float("nan")  # expanded uncertainty, k = 2 (about 95 %)
-    budget: list = field(default_factory=list)  # uncertainty.Component rows as dicts
 
     def to_dict(self) -> dict:
         """JSON-ready dict (NaN becomes None)."""
         d = asdict(self)
-        for k in ("value", "stderr", "residual_rms", "u_combined", "u95"):
+        for k in ("value", "stderr", "residual_rms"):
             d[k] = _finite_or_none(d[k])
         d["extra"] = {k: _finite_or_none(v) if isinstance(v, float) else v
                       for k, v in self.extra.items()}
-        d["budget"] = [{k: _finite_or_none(v) if isinstance(v, float) else v
-                        for k, v in row.items()} for row in self.budget]
         return d
 
 
@@ -384,25 +373,15 @@ def fit_gamma_bessel(p_a_w, p_b_w, low1_w, tone_a_w, tone_b_w, high1_w, l_eff_km
 def _first_sideband_efficiency(spacing_ghz: np.ndarray, wavelength_a_nm: np.ndarray,
                                side: np.ndarray, length_km: float, loss_db_per_km: float,
                                dispersion: float, slope: float,
-                               reference_wavelength_nm: float,
-                               nl_per_km: np.ndarray | float = 0.0) -> np.ndarray:
+                               reference_wavelength_nm: float) -> np.ndarray:
     """Inoue efficiency of each point's first sideband for a fibre with D and S at the reference.
 
-    The phase mismatch is the physics module's (beta2, beta3 at tone a from D(lambda), S), plus
-    the nonlinear mismatch nl_per_km = gamma (P_probe - 2 P_pump) when given
-    (physics.fwm.inoue_efficiency_nl).
+    The phase mismatch is the physics module's (beta2, beta3 at tone a from D(lambda), S).
     """
     u, v = _mismatch_basis(spacing_ghz, wavelength_a_nm, side, length_km, loss_db_per_km,
                            reference_wavelength_nm)
     alpha = float(alpha_per_km(loss_db_per_km))
-    return np.asarray(inoue_efficiency_nl(alpha, dispersion * u + slope * v, length_km,
-                                          nl_per_km), dtype=float)
-
-
-def nl_power_w(p_a_w, p_b_w, side) -> np.ndarray:
-    """P_probe - 2 P_pump (W) of a first sideband: high 2f_b - f_a (pump b), low 2f_a - f_b."""
-    p_a, p_b = np.asarray(p_a_w, float), np.asarray(p_b_w, float)
-    return np.where(np.asarray(side) == "high", p_a - 2.0 * p_b, p_b - 2.0 * p_a)
+    return np.asarray(inoue_efficiency(alpha, dispersion * u + slope * v, length_km), dtype=float)
 
 
 def fit_gamma_small_signal(p_a_w, p_b_w, ratio, l_eff_km: float, *, eta=None, copolar=None,
@@ -415,19 +394,6 @@ def fit_gamma_small_signal(p_a_w, p_b_w, ratio, l_eff_km: float, *, eta=None, co
     left out. eta defaults to 1 (no mismatch: spacing well inside the efficiency bandwidth).
     """
     p_a, p_b, r = (np.asarray(v, float) for v in (p_a_w, p_b_w, ratio))
-    if callable(eta):
-        # eta(gamma): the nonlinear mismatch depends on gamma itself; a few fixed-point passes
-        # (the dependence is weak: gamma P L_eff << 1 inside the small-signal cut).
-        g = None
-        for _ in range(4):
-            res = fit_gamma_small_signal(p_a, p_b, r, l_eff_km,
-                                         eta=eta(1.0 if g is None else g), copolar=copolar,
-                                         max_ratio_db=max_ratio_db)
-            if res is None:
-                return None
-            g = res.value
-        res.extra["nonlinear_mismatch"] = True
-        return res
     eta = np.ones_like(r) if eta is None else np.asarray(eta, float)
     cop = np.ones_like(r) if copolar is None else np.asarray(copolar, float)
     ok = np.isfinite(r) & (r > 0) & (p_a > 0) & (p_b > 0) & (eta > 0) & (cop > 0)
@@ -446,8 +412,7 @@ def fit_gamma_small_signal(p_a_w, p_b_w, ratio, l_eff_km: float, *, eta=None, co
     return FitResult(
         g, g * sd / math.sqrt(n), n, float(np.sqrt(np.mean(resid_db**2))),
         "small-signal FWM: P_F = eta gamma^2 L_eff^2 P_b^2 P_a exp(-alpha L) (Inoue 1992), "
-        "referenced to the output pump tone; eta with the SPM/XPM phase mismatch when D is "
-        "known", "1/(W km)",
+        "referenced to the output pump tone", "1/(W km)",
         {"n_large_signal": int((ok & ~small).sum()), "max_ratio_db": max_ratio_db,
          "loglog_slope_vs_pa_pb2": slope, "efficiency_corrected": bool(np.any(eta != 1.0))},
     )
@@ -525,64 +490,42 @@ def fit_dispersion(p_a_w, p_b_w, spacing_ghz, wavelength_a_nm, side, ratio, *, l
     l_eff = effective_length_km(length_km, loss_db_per_km)
     y = DB * np.log(r / (cop * l_eff**2 * p_a * p_b))  # = 10 log10(eta gamma^2)
     u, v = _mismatch_basis(sp, lam, side, length_km, loss_db_per_km, reference_wavelength_nm)
-    w_nl = nl_power_w(p_a, p_b, side)  # nonlinear mismatch gamma * w_nl (SPM/XPM)
 
     def resid(theta: np.ndarray) -> np.ndarray:
         s = theta[2] if with_slope else 0.0
-        eta = np.asarray(inoue_efficiency_nl(alpha, theta[1] * u + s * v, length_km,
-                                             np.exp(theta[0]) * w_nl))
+        eta = np.asarray(inoue_efficiency(alpha, theta[1] * u + s * v, length_km))
         return 2.0 * DB * theta[0] + DB * np.log(np.maximum(eta, 1e-300)) - y
 
     starts = _dispersion_starts(y, u, lam, lams, alpha, length_km, d_max, with_slope,
                                 reference_wavelength_nm, s_max)
-    lo = [-np.inf, -d_max] + ([-s_max] if with_slope else [])
+    lo = [-np.inf, 0.0] + ([-s_max] if with_slope else [])
     hi = [np.inf, d_max] + ([s_max] if with_slope else [])
-    # The linear mismatch fixes dbeta^2 only; the small nonlinear term breaks the tie between
-    # D and -D (with the slope's sign), so both branches are fitted and the better one kept.
-    best: dict[bool, object] = {}
+    sol = None
     for d0, s0 in starts:
-        for sign in (1.0, -1.0):
-            eta0 = np.asarray(inoue_efficiency(alpha, d0 * u + s0 * v, length_km))
-            g0 = float(np.mean(y - DB * np.log(np.maximum(eta0, 1e-300)))) / (2.0 * DB)
-            theta0 = [g0, sign * d0] + ([sign * s0] if with_slope else [])
-            try_sol = least_squares(resid, theta0, bounds=(lo, hi), x_scale="jac")
-            neg = bool(try_sol.x[1] < 0)
-            if neg not in best or try_sol.cost < best[neg].cost:
-                best[neg] = try_sol
-    sol = min(best.values(), key=lambda x: x.cost)
-    other = [b.cost for k, b in best.items() if k != bool(sol.x[1] < 0)]
+        eta0 = np.asarray(inoue_efficiency(alpha, d0 * u + s0 * v, length_km))
+        g0 = float(np.mean(y - DB * np.log(np.maximum(eta0, 1e-300)))) / (2.0 * DB)
+        theta0 = [g0, d0] + ([s0] if with_slope else [])
+        try_sol = least_squares(resid, theta0, bounds=(lo, hi), x_scale="jac")
+        if sol is None or try_sol.cost < sol.cost:
+            sol = try_sol
     n, p = r.size, len(sol.x)
-    s2 = max(float(np.sum(sol.fun**2)) / max(n - p, 1), 1e-300)
-    dchi2 = 2.0 * (other[0] - sol.cost) / s2 if other else 0.0
-    signed = dchi2 >= SIGN_DCHI2
-    flip = -1.0 if (sol.x[1] < 0 and not signed) else 1.0
     cov = _covariance(sol.jac, sol.fun, n, p)
     rms = float(np.sqrt(np.mean(sol.fun**2)))
     gamma = float(np.exp(sol.x[0]))
     model = ("Inoue efficiency vs spacing: R = eta(dbeta) gamma^2 L_eff^2 P_a P_b, dbeta from "
-             "beta2, beta3 at tone a with D(lambda) = D + S (lambda - lambda_ref), plus the "
-             "SPM/XPM mismatch gamma (P_probe - 2 P_pump)")
+             "beta2, beta3 at tone a with D(lambda) = D + S (lambda - lambda_ref)")
     extra = {"gamma_per_w_per_km": gamma, "gamma_stderr": gamma * math.sqrt(cov[0, 0]),
              "reference_wavelength_nm": reference_wavelength_nm, "n_wavelengths": int(lams.size),
-             "sign_determined": bool(signed),
-             "sign_preferred": "negative" if sol.x[1] < 0 else "positive",
-             "delta_chi2_other_sign": float(dchi2),
+             "sign": "not determined: the efficiency depends on dbeta^2 only",
              "at_bound": bool(np.any(sol.active_mask != 0))}
-    if signed:
-        warn = [f"sign of D set by the SPM/XPM mismatch (the other sign fits worse by "
-                f"delta chi^2 = {dchi2:.0f})"]
-        conv_d, conv_s = SIGNED_D_CONVENTION, SIGNED_S_CONVENTION
-    else:
-        warn = [f"the sign of D is not measured (the other sign fits worse by only delta "
-                f"chi^2 = {dchi2:.1f} < {SIGN_DCHI2:.0f}): |D| is reported"]
-        conv_d, conv_s = DISPERSION_CONVENTION, SLOPE_CONVENTION
-    warn += ["at a bound of the search range"] if extra["at_bound"] else []
-    out = {"dispersion": FitResult(flip * float(sol.x[1]), math.sqrt(cov[1, 1]), n, rms, model,
-                                   "ps/(nm km)", extra, list(warn), conv_d)}
+    warn = ["the efficiency depends on dbeta^2 only: the sign of D is not measured, |D| is "
+            "reported"] + (["at a bound of the search range"] if extra["at_bound"] else [])
+    out = {"dispersion": FitResult(float(sol.x[1]), math.sqrt(cov[1, 1]), n, rms, model,
+                                   "ps/(nm km)", extra, list(warn), DISPERSION_CONVENTION)}
     if with_slope:
-        out["dispersion_slope"] = FitResult(flip * float(sol.x[2]), math.sqrt(cov[2, 2]), n, rms,
-                                            model, "ps/(nm^2 km)", dict(extra), list(warn),
-                                            conv_s)
+        out["dispersion_slope"] = FitResult(float(sol.x[2]), math.sqrt(cov[2, 2]), n, rms, model,
+                                            "ps/(nm^2 km)", dict(extra), list(warn),
+                                            SLOPE_CONVENTION)
     return out
 
 
@@ -741,8 +684,7 @@ def fit_run(points, spool_length_km: float, loss_db_per_km: float, *,
             copolar_min: float = 0.5,
             small_signal_max_ratio_db: float = -20.0,
             bessel_max_mismatch_rad: float = 0.3,
-            polarisation: PolFrame | None = None,
-            uncertainties: Uncertainties | None = None) -> dict[str, FitResult]:
+            polarisation: PolFrame | None = None) -> dict[str, FitResult]:
     """Every fit the points support, keyed by name (gamma_bessel, gamma_small_signal,
     dispersion, dispersion_slope, slope_<side>_<n>, pol_extinction_db, pol_visibility).
 
@@ -765,86 +707,9 @@ def fit_run(points, spool_length_km: float, loss_db_per_km: float, *,
     fit drops points whose phase mismatch |dbeta| L exceeds ``bessel_max_mismatch_rad`` when
     D is known (given, or fitted here from the spacing dependence). What a fit lacked or assumed
     is in its ``warnings``; a fit that could not be made is returned with a NaN value and the
-    reason (``refused``). With ``uncertainties`` every result carries its GUM budget
-    (``budget``, ``u_combined``, ``u95``; labrun.uncertainty), at the cost of two refits per
-    input quantity.
+    reason (``refused``).
     """
     t = points_table(points)
-    kw = {"dispersion_ps_per_nm_km": dispersion_ps_per_nm_km,
-          "slope_ps_per_nm2_km": slope_ps_per_nm2_km,
-          "reference_wavelength_nm": reference_wavelength_nm, "max_order": max_order,
-          "copolar_min": copolar_min, "small_signal_max_ratio_db": small_signal_max_ratio_db,
-          "bessel_max_mismatch_rad": bessel_max_mismatch_rad, "polarisation": polarisation}
-    results = _fit_table(t, spool_length_km, loss_db_per_km, **kw)
-    if uncertainties is None:
-        return results
-    return with_budget(results, t, spool_length_km, loss_db_per_km, kw, uncertainties)
-
-
-def _perturbed(t: dict[str, np.ndarray], length_km: float, loss: float, name: str,
-               u: float, lam_ref: float) -> tuple[dict[str, np.ndarray], float, float]:
-    """The point table and spool with one input quantity moved by u (its unit in COMPONENTS)."""
-    t2 = dict(t)
-    if name == "power_a_db":
-        t2["power_a_dbm"] = t["power_a_dbm"] + u
-    elif name == "power_b_db":
-        t2["power_b_dbm"] = t["power_b_dbm"] + u
-    elif name == "osa_amplitude_db":
-        for k in t:
-            if k.startswith("sideband_"):
-                t2[k] = t[k] + u
-    elif name == "wavelength_pm":
-        lam = t.get("wavelength_a_nm", np.full(t["power_a_dbm"].size, lam_ref))
-        lam = np.where(np.isnan(lam), lam_ref, lam)
-        if "spacing_ghz" in t:
-            t2["spacing_ghz"] = t["spacing_ghz"] + np.sign(u) * spacing_shift_ghz(abs(u), lam)
-        if "wavelength_a_nm" in t:
-            t2["wavelength_a_nm"] = t["wavelength_a_nm"] + u * 1e-3
-    elif name == "length_rel":
-        length_km *= 1.0 + u
-    elif name == "loss_db_per_km":
-        loss = max(loss + u, 0.0)
-    return t2, length_km, loss
-
-
-def with_budget(results: dict[str, FitResult], t: dict[str, np.ndarray], length_km: float,
-                loss: float, kw: dict, unc: Uncertainties) -> dict[str, FitResult]:
-    """Results with their GUM budgets: each input moved by -u and +u, the fit repeated, half
-    the change taken as the contribution (labrun.uncertainty); plus the statistical term."""
-    rows: dict[str, list[Component]] = {k: [] for k, r in results.items()
-                                        if math.isfinite(r.value)}
-    for source, name, unit in COMPONENTS:
-        u = float(getattr(unc, name))
-        moved = []
-        for sign in (1.0, -1.0):
-            t2, l2, a2 = _perturbed(t, length_km, loss, name, sign * u,
-                                    kw["reference_wavelength_nm"])
-            moved.append(_fit_table(t2, l2, a2, **kw) if u > 0 else results)
-        for key in rows:
-            up, down = moved[0].get(key), moved[1].get(key)
-            half = (abs(up.value - down.value) / 2.0 if up is not None and down is not None
-                    else float("nan"))
-            rows[key].append(Component(source, u, unit, half))
-    out = dict(results)
-    for key, comps in rows.items():
-        r = results[key]
-        comps = [Component("statistical (fit)", float("nan"), "", r.stderr), *comps]
-        u_c, u95 = combine(comps)
-        warn = list(r.warnings)
-        if any(not math.isfinite(c.contribution) for c in comps):
-            warn.append("a budget component could not be evaluated (the fit failed with that "
-                        "input moved): the combined uncertainty leaves it out")
-        out[key] = replace(r, u_combined=u_c, u95=u95, budget=[c.to_dict() for c in comps],
-                           warnings=warn)
-    return out
-
-
-def _fit_table(t: dict[str, np.ndarray], spool_length_km: float, loss_db_per_km: float, *,
-               dispersion_ps_per_nm_km: float | None, slope_ps_per_nm2_km: float,
-               reference_wavelength_nm: float, max_order: int, copolar_min: float,
-               small_signal_max_ratio_db: float, bessel_max_mismatch_rad: float,
-               polarisation: PolFrame | None) -> dict[str, FitResult]:
-    """fit_run on a points_table (see there)."""
     if "power_a_dbm" not in t or "power_b_dbm" not in t:
         raise ValueError("points need power_a_dbm and power_b_dbm columns")
     n = t["power_a_dbm"].size
@@ -898,16 +763,13 @@ def _fit_table(t: dict[str, np.ndarray], spool_length_km: float, loss_db_per_km:
         d_known, d_source = results["dispersion"].value, "fitted"
         if "dispersion_slope" in results:
             s_known = results["dispersion_slope"].value
-    eta_hi = None
+    eta_hi = np.ones(n)
     bessel_ok = co.copy()
     gamma_notes = list(notes)
     if d_known is not None and np.isfinite(spacing).all():
-        w_hi = nl_power_w(p_a, p_b, "high")
-
-        def eta_hi(g: float, d=d_known, s=s_known, w=w_hi) -> np.ndarray:
-            return _first_sideband_efficiency(spacing, lam, np.full(n, "high"), spool_length_km,
-                                              loss_db_per_km, d, s, reference_wavelength_nm,
-                                              g * w)
+        eta_hi = _first_sideband_efficiency(spacing, lam, np.full(n, "high"), spool_length_km,
+                                            loss_db_per_km, d_known, s_known,
+                                            reference_wavelength_nm)
         u, v = _mismatch_basis(spacing, lam, np.full(n, "high"), spool_length_km,
                                loss_db_per_km, reference_wavelength_nm)
         mism = np.abs(d_known * u + s_known * v)
@@ -937,8 +799,7 @@ def _fit_table(t: dict[str, np.ndarray], spool_length_km: float, loss_db_per_km:
     fb.extra["n_dispersion_excluded"] = int((co & ~bessel_ok).sum())
     fb.warnings.extend(gamma_notes)
     results["gamma_bessel"] = fb
-    eta_co = (lambda g: eta_hi(g)[co]) if eta_hi is not None else None
-    fs = fit_gamma_small_signal(p_a[co], p_b[co], (hi1 / tb)[co], l_eff, eta=eta_co,
+    fs = fit_gamma_small_signal(p_a[co], p_b[co], (hi1 / tb)[co], l_eff, eta=eta_hi[co],
                                 copolar=c_eff[co], max_ratio_db=small_signal_max_ratio_db)
     if fs is None:
         fs = refused("small-signal FWM", "1/(W km)",

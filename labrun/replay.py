@@ -10,10 +10,12 @@ measures the plan on a virtual lab and compares.
 from __future__ import annotations
 
 import dataclasses
+import json
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
+import pandas as pd
 from sqlalchemy import or_, select
 
 from labrun.errors import InputError
@@ -190,3 +192,197 @@ def _current_point(store: Store, replay_id: int, plan: Any) -> str:
         if spec.key not in done:
             return f"{spec.key} (#{spec.index})"
     return "after the last point"
+
+
+# ------------------------------------------------------------------------------------------------
+# replay against a model
+# ------------------------------------------------------------------------------------------------
+TWIN_GAMMA_FITS = ("gamma_bessel", "gamma_small_signal")  # preferred first
+
+
+@dataclass
+class ModelSpool:
+    """The spool a model replay simulates, and where its numbers came from."""
+
+    spec: Any  # labrun.vlab.scenario.SpoolSpec
+    source: str
+    rel_u_gamma: float = 0.0  # relative standard uncertainty of gamma (a fit's), for u_c
+
+
+@dataclass
+class ModelReplay:
+    """Outcome of a replay against a model; ``to_dict`` is the ``--json`` output."""
+
+    run_id: int
+    replay_of: int
+    status: str
+    model: str
+    spool: dict[str, Any]
+    points_compared: int
+    residual_db: dict[str, dict[str, Any]]
+    verdict: str
+    patterns: list[str]
+    reason: str
+    per_point: list[dict[str, Any]] = field(default_factory=list)
+    virtual: bool = True
+
+    def to_dict(self) -> dict[str, Any]:
+        """JSON-ready: run_id, replay_of, residual_db (per line: rms, max, ...), verdict, ..."""
+        return dataclasses.asdict(self)
+
+
+def twin_spool(store: Store, run: Any) -> ModelSpool:
+    """The spool's latest stored fit as a model spool (the run's own one-spool fit when no fit
+    is stored yet): gamma, dispersion and slope from the fit, length and loss from the record."""
+    from labrun.spoolfits import fit_history, fit_runs
+    from labrun.store.models import Spool
+    from labrun.vlab.scenario import SpoolSpec
+
+    with store.session() as s:
+        spool = s.get(Spool, run.spool_id) if run.spool_id is not None else None
+        label = spool.label if spool is not None else None
+    if label is None:
+        raise InputError(f"run {run.id} is not linked to a spool: use --scenario FILE --spool "
+                         "NAME", field="--twin")
+    history = fit_history(store, label)
+    record = history[-1] if history else fit_runs(store, [run.id], save=False)
+    where = (f"fit {record.fit_id} of {label}" if record.fit_id is not None
+             else f"one-spool fit of run {run.id} (no stored fit of {label})")
+    params = record.parameters
+    gamma = next((params[n] for n in TWIN_GAMMA_FITS if n in params
+                  and params[n].value is not None), None)
+    if gamma is None:
+        raise InputError(f"the {where} has no gamma: run 'labrun fit' on a power sweep of "
+                         f"{label} first", field="--twin")
+    snap = record.spool_snapshot or {}
+    length, loss = snap.get("length_km"), snap.get("loss_db_per_km")
+    if length is None or loss is None:
+        raise InputError(f"spool {label} has no length or loss on record", field="--twin")
+
+    def value(name: str) -> float:
+        p = params.get(name)
+        return float(p.value) if p is not None and p.value is not None else 0.0
+
+    spec = SpoolSpec(name=label, length_km=length, loss_db_per_km=loss,
+                     gamma_per_w_per_km=gamma.value,
+                     dispersion_ps_per_nm_km=value("dispersion"),
+                     dispersion_slope_ps_per_nm2_km=value("dispersion_slope"))
+    rel = (gamma.stderr / gamma.value) if gamma.stderr and gamma.value else 0.0
+    missing = "" if "dispersion" in params and params["dispersion"].value is not None \
+        else "; dispersion not fitted, 0 assumed"
+    return ModelSpool(spec, f"twin: {where}, {gamma.model.split(':')[0]}{missing}", rel)
+
+
+def scenario_spool(path: str, name: str) -> tuple[ModelSpool, Any]:
+    """A spool of a scenario file (InputError naming --spool when it has none of that name)."""
+    from labrun.vlab.scenario import load_scenario
+
+    scenario = load_scenario(path)
+    try:
+        spec = scenario.spool(name)
+    except KeyError:
+        names = ", ".join(s.name for s in scenario.spools)
+        raise InputError(f"no spool {name!r} in the scenario (it has {names})",
+                         file=str(scenario.source), field="--spool") from None
+    return ModelSpool(spec, f"scenario {scenario.source}, spool {name}"), scenario
+
+
+def lab_scenario(bench: Any, spool: ModelSpool, base: Any = None) -> dict[str, Any]:
+    """A virtual-lab scenario of the run's bench (roles, calibration, caps) around one spool;
+    OSA, realism of ``base`` (a scenario) when given, else realism off; never faults."""
+    cal = bench.calibration
+    caps = {r: s.max_power_dbm for r, s in bench.instruments.items()
+            if s.max_power_dbm is not None}
+    instruments: dict[str, Any] = {}
+    for role in ("laser_a", "laser_b", "attenuator_a", "attenuator_b", "pol_controller", "osa",
+                 "amplifier", "power_meter", "switch"):
+        spec = {"present": role in bench.instruments}
+        if base is not None:
+            spec = {**getattr(base.instruments, role).model_dump(exclude_none=True), **spec}
+            spec.pop("idn", None)
+            spec["port"] = 0
+        instruments[role] = spec
+    return {
+        "name": f"replay of a stored run on {spool.spec.name}",
+        "connected": spool.spec.name,
+        "spools": [spool.spec.model_dump()],
+        "bench": {"name": f"virtual replay of {bench.name}",
+                  "max_total_launched_dbm": bench.max_total_launched_dbm,
+                  "path_loss_a_db": cal.path_loss_a_db, "path_loss_b_db": cal.path_loss_b_db,
+                  "amplifier_loss_db": cal.amplifier_loss_db,
+                  "output_to_osa_db": cal.output_to_osa_db, "input_tap_db": cal.input_tap_db,
+                  "caps": caps},
+        "instruments": instruments,
+        "realism": base.realism.model_dump() if base is not None else {"enabled": False},
+        "faults": {"enabled": False},
+    }
+
+
+def lab_bench(bench: Any, lab: Any) -> Any:
+    """The run's bench pointed at the virtual lab: same roles, profiles, caps and calibration,
+    each resource the lab's, backend pyvisa-py, settle times scaled like the lab's time."""
+    from labrun.bench import parse_bench
+
+    q = json.dumps
+    lines = ["# The bench of a replayed run, pointed at a virtual lab (no light is emitted).",
+             "[bench]", f"name = {q(bench.name)}",
+             f"max_total_launched_dbm = {bench.max_total_launched_dbm!r}",
+             f"settle_scale = {lab.time_scale!r}", "", "[calibration]"]
+    lines += [f"{k} = {v!r}" for k, v in bench.calibration.model_dump().items()]
+    for role, spec in bench.instruments.items():
+        lines += ["", f"[instruments.{role}]", f"resource = {q(lab.resources[role])}",
+                  'backend = "@py"', f"profile = {q(str(spec.profile.path or spec.profile.name))}"]
+        if spec.max_power_dbm is not None:
+            lines.append(f"max_power_dbm = {spec.max_power_dbm!r}")
+    return parse_bench("\n".join(lines) + "\n", Path("<virtual lab replay bench>"))
+
+
+def point_times(store: Store, run_id: int) -> pd.DataFrame:
+    """key and finished_at of every stored point of a run."""
+    with store.session() as s:
+        rows = s.execute(select(Point.key, Point.finished_at)
+                         .where(Point.run_id == run_id)).all()
+    return pd.DataFrame(rows, columns=["key", "finished_at"])
+
+
+def replay_model(store: Store, run_id: int, *, spool: ModelSpool, base_scenario: Any = None,
+                 time_scale: float = 0.0, seed: int = 0, progress: bool = False,
+                 traffic_log: Any = None) -> ModelReplay:
+    """Measure the run's stored plan again on a virtual lab of its bench and ``spool``, store it
+    as a new run linked to the original, and compare the lines (measured minus replayed)."""
+    from labrun import residuals as rs
+    from labrun.engine import run_virtual
+    from labrun.queries import run_points
+    from labrun.vlab.lab import VirtualLab
+
+    run = original_run(store, run_id)
+    plan = stored_plan(run)
+    bench = stored_bench(run)
+    scenario = lab_scenario(bench, spool, base_scenario)
+    with VirtualLab(scenario, time_scale=time_scale, seed=seed) as lab:
+        outcome = run_virtual(plan, lab_bench(bench, lab), store, replay_of=run_id,
+                              mode=spool.source, progress=progress, traffic_log=traffic_log)
+    measured = run_points(store, run_id)
+    reference = measured[measured["is_reference"]] if not measured.empty else measured
+    measured = measured.merge(point_times(store, run_id), on="key")
+    replayed = run_points(store, outcome.run_id)
+    res = rs.residuals(measured, replayed) if not replayed.empty else pd.DataFrame()
+    lines = rs.summarise(res, reference, rel_u_gamma=spool.rel_u_gamma) if not res.empty else {}
+    judged = rs.verdict(lines) if lines else rs.Verdict("inconsistent", ["no points"],
+                                                       "no point of the replay to compare")
+    keys = rs.line_keys(res) if not res.empty else []
+    per_point = [{"key": row["key"], **{k: _num(row[k]) for k in keys}}
+                 for _, row in res.iterrows()] if keys else []
+    return ModelReplay(
+        run_id=outcome.run_id, replay_of=run_id, status=outcome.status, model=spool.source,
+        spool=spool.spec.model_dump(), points_compared=len(res),
+        residual_db={k: ln.to_dict() for k, ln in lines.items()},
+        verdict=judged.verdict, patterns=judged.patterns, reason=judged.reason,
+        per_point=per_point)
+
+
+def _num(v: Any) -> float | None:
+    """A finite float rounded to 1e-4 dB, else None."""
+    import math
+
+    return round(float(v), 4) if v is not None and math.isfinite(float(v)) else None

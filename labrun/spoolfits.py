@@ -39,15 +39,10 @@ class ParameterRecord:
     extra: dict[str, Any] = field(default_factory=dict)
 
     def to_dict(self) -> dict[str, Any]:
-        """JSON-ready: value, stderr, u95, unit, model, n_points, residual_rms (and the fit's
-        warnings and sign conventions when it has them)."""
-        out = {"value": self.value, "stderr": self.stderr, "u95": self.u95, "unit": self.unit,
-               "model": self.model, "n_points": self.n_points,
-               "residual_rms": self.residual_rms}
-        for key in ("warnings", "conventions"):
-            if self.extra.get(key):
-                out[key] = self.extra[key]
-        return out
+        """JSON-ready: value, stderr, u95, unit, model, n_points, residual_rms."""
+        return {"value": self.value, "stderr": self.stderr, "u95": self.u95, "unit": self.unit,
+                "model": self.model, "n_points": self.n_points,
+                "residual_rms": self.residual_rms}
 
 
 @dataclass
@@ -103,13 +98,8 @@ def from_fit(result: Any) -> ParameterRecord:
         dof = (result.extra or {}).get("dof")
         u95 = (coverage_factor(dof) * stderr if dof and stderr is not None
                else expanded(stderr, int(result.n_points)))
-    extra = {k: _finite(v) if isinstance(v, float) else v
-             for k, v in (result.extra or {}).items()
+    extra = {k: v for k, v in (result.extra or {}).items()
              if isinstance(v, str | int | float | bool) or v is None}
-    if getattr(result, "warnings", None):
-        extra["warnings"] = [str(w) for w in result.warnings]
-    if getattr(result, "conventions", ""):
-        extra["conventions"] = str(result.conventions)
     return ParameterRecord(value=_finite(result.value), stderr=stderr, u95=_finite(u95),
                            unit=result.unit, model=result.model,
                            n_points=int(result.n_points),
@@ -219,14 +209,3 @@ def latest_fits(store: Store) -> dict[str, FitRecord]:
         rows = s.execute(select(Fit, Spool.label).join(Spool, Spool.id == Fit.spool_id)
                          .where(Fit.id.in_(newest)).options(selectinload(Fit.parameters))).all()
         return {label: _record(fit, label) for fit, label in rows}
-
-
-def fits_using_run(store: Store, run_id: int) -> list[FitRecord]:
-    """Stored fits whose runs include ``run_id``, oldest first (run lists are short JSON)."""
-    from sqlalchemy.orm import selectinload
-
-    with store.session() as s:
-        rows = s.execute(select(Fit, Spool.label).join(Spool, Spool.id == Fit.spool_id)
-                         .join(Run, Run.spool_id == Spool.id).where(Run.id == run_id)
-                         .options(selectinload(Fit.parameters)).order_by(Fit.id)).all()
-        return [_record(fit, label) for fit, label in rows if run_id in (fit.run_ids or [])]

@@ -56,6 +56,7 @@ def test_a_replayed_log_gives_the_same_lines_bit_for_bit(recorded, capsys):
     assert a.equals(b)  # every line power, every setpoint column, NaN where undetected
     for ya, yb in zip(_traces(db, 1), _traces(db, out["run_id"]), strict=True):
         assert np.array_equal(ya, yb)  # the stored traces too
+    assert store.get_run(out["run_id"]).replay_of == 1
     replay_events = store.events(out["run_id"], ["replay"])
     assert replay_events[0].data == {"replay_of": 1, "mode": "traffic log"}
 

@@ -31,7 +31,8 @@ def _rows(path: Path) -> dict[str, list[tuple]]:
         out = {}
         for table in TABLES:
             cols = [r[1] for r in con.execute(f"PRAGMA table_info({table})")]
-            keep = [c for c in cols if c not in ("encoding", "fibre_type", "updated_at")]
+            keep = [c for c in cols if c not in ("encoding", "fibre_type", "updated_at",
+                                                 "replay_of")]  # added by later revisions
             quoted = ", ".join(f'"{c}"' for c in keep)
             out[table] = con.execute(f"SELECT {quoted} FROM {table} ORDER BY id").fetchall()
         return out
@@ -81,6 +82,8 @@ def test_upgrade_keeps_every_row(old_db):
         assert store.upgraded_from is None  # open_store upgrades silently; db upgrade reports
         assert _revision(str(old_db)) == schema.HEAD
         assert _rows(old_db) == before
+        assert sqlite3.connect(old_db).execute(  # revision 0003: no stored run is a replay
+            "SELECT count(*) FROM runs WHERE replay_of IS NULL").fetchone()[0] == 1
         with store.session() as s:
             traces = s.scalars(select(Trace).order_by(Trace.id)).all()
             assert {t.encoding for t in traces} == {"f32"}

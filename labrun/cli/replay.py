@@ -1,4 +1,5 @@
-"""``labrun replay``: a stored run played again with no lab, from its recorded traffic."""
+"""``labrun replay``: a stored run played again with no lab: from its recorded traffic, or on a
+virtual lab of its bench around a model of the spool (its fitted twin, or a scenario's spool)."""
 
 from __future__ import annotations
 
@@ -14,14 +15,27 @@ def register(subparsers: argparse._SubParsersAction) -> None:
     """Add ``labrun replay``."""
     p = subparsers.add_parser(
         "replay", help="replay a stored run without instruments (virtual: no light is emitted)",
-        description="Replay a stored run as a new run linked to it. With --traffic-log FILE the "
-                    "run's recorded instrument traffic is played back through a simulated VISA "
-                    "backend: reduction, checks and storage happen again, the lines must equal "
-                    "the original's bit for bit, and any command that differs from the "
+        description="Replay a stored run as a new run linked to it; everything is virtual, no "
+                    "light is emitted. --twin or --scenario FILE --spool NAME: the stored plan is "
+                    "measured point by point on a virtual lab of the run's bench around that "
+                    "spool, and the residuals (measured minus replayed) are judged against the "
+                    "combined uncertainty. --traffic-log FILE: the run's recorded instrument "
+                    "traffic is played back through a simulated VISA backend; the lines must "
+                    "equal the original's bit for bit, and a command that differs from the "
                     "recording stops the replay.")
     p.add_argument("run_id", metavar="RUN_ID", type=int, help="run id (see 'labrun status')")
-    p.add_argument("--traffic-log", required=True, metavar="FILE",
-                   help="the run's traffic log (written by 'labrun run --traffic-log FILE')")
+    how = p.add_mutually_exclusive_group(required=True)
+    how.add_argument("--twin", action="store_true",
+                     help="model the spool by its latest stored fit (the run's own fit if none)")
+    how.add_argument("--scenario", metavar="FILE",
+                     help="model the spool by one of a virtual-lab scenario's (with --spool)")
+    how.add_argument("--traffic-log", metavar="FILE",
+                     help="play back the run's traffic log (from 'labrun run --traffic-log')")
+    p.add_argument("--spool", metavar="NAME", help="the scenario's spool to replay against")
+    p.add_argument("--time-scale", type=float, default=0.0, metavar="X",
+                   help="virtual lab time scale (0: as fast as possible, 1: real time)")
+    p.add_argument("--seed", type=int, default=0, metavar="N",
+                   help="seed of the virtual lab's imperfections (with --scenario)")
     p.add_argument("--db", default=DEFAULT_DB, metavar="URL_OR_PATH",
                    help=f"SQLAlchemy URL or SQLite file path (default: {DEFAULT_DB} here)")
     p.add_argument("--json", action="store_true", help="print the outcome as JSON on stdout")
@@ -30,16 +44,31 @@ def register(subparsers: argparse._SubParsersAction) -> None:
 
 
 def cmd_replay(args: argparse.Namespace) -> int:
-    """Replay, print the outcome; exit 0 when the replay reproduced the run, 1 otherwise."""
+    """Replay, print the outcome. Exit 0: the log reproduced the run, or the run is consistent
+    with the model; 1 otherwise."""
     from pathlib import Path
 
     from labrun.errors import InputError
+
+    if args.traffic_log is not None and not Path(args.traffic_log).is_file():
+        raise InputError("no such traffic log", file=args.traffic_log, field="--traffic-log")
+    if args.scenario is not None and not args.spool:
+        raise InputError("--scenario needs --spool NAME", field="--spool")
+    if args.spool and args.scenario is None:
+        raise InputError("--spool goes with --scenario FILE", field="--spool")
+    if args.time_scale < 0:
+        raise InputError("must be >= 0", field="--time-scale")
+    if args.traffic_log is not None:
+        return _traffic(args)
+    return _model(args)
+
+
+def _traffic(args: argparse.Namespace) -> int:
+    """--traffic-log: play the recording back."""
     from labrun.replay import replay_traffic
     from labrun.store import open_existing_store
 
-    if not Path(args.traffic_log).is_file():
-        raise InputError("no such traffic log", file=args.traffic_log, field="--traffic-log")
-    store = open_existing_store(args.db)
+    store = open_existing_store(args.db, upgrade=True)
     try:
         result = replay_traffic(store, args.run_id, args.traffic_log,
                                 progress=not (args.no_progress or args.json))
@@ -47,6 +76,50 @@ def cmd_replay(args: argparse.Namespace) -> int:
         store.close()
     _show(result.to_dict(), args.json)
     return 0 if result.identical else 1
+
+
+def _model(args: argparse.Namespace) -> int:
+    """--twin / --scenario: measure the plan again on a model and judge the residuals."""
+    from labrun.replay import original_run, replay_model, scenario_spool, twin_spool
+    from labrun.store import open_existing_store
+
+    base = None
+    if args.scenario is not None:
+        spool, base = scenario_spool(args.scenario, args.spool)
+    store = open_existing_store(args.db, upgrade=True)
+    try:
+        if args.twin:
+            spool = twin_spool(store, original_run(store, args.run_id))
+        print("labrun replay: virtual lab only -- no instrument is touched and no light is "
+              "emitted.", file=sys.stderr)
+        result = replay_model(store, args.run_id, spool=spool, base_scenario=base,
+                              time_scale=args.time_scale, seed=args.seed,
+                              progress=not (args.no_progress or args.json))
+    finally:
+        store.close()
+    out = result.to_dict()
+    if args.json:
+        print(json.dumps(out, indent=2))
+    else:
+        print(model_text(out))
+    return 0 if result.verdict == "consistent" else 1
+
+
+def model_text(out: dict[str, Any]) -> str:
+    """The residual summary and verdict for people."""
+    text = [f"run {out['run_id']}: VIRTUAL replay of run {out['replay_of']} ({out['status']}, "
+            f"{out['points_compared']} points compared)", f"  model: {out['model']}",
+            "  residual = measured - replayed, dB (u_c: combined standard uncertainty)",
+            f"  {'line':<16} {'n':>4} {'mean':>8} {'rms':>7} {'max':>7} {'u_c':>6} "
+            f"{'dB/h':>8} {'dB/dB':>7}  ok"]
+    for key, ln in out["residual_db"].items():
+        def f(v: Any, w: int, d: int) -> str:
+            return f"{v:>{w}.{d}f}" if v is not None else f"{'-':>{w}}"
+        text.append(f"  {key:<16} {ln['n']:>4} {f(ln['mean'], 8, 3)} {f(ln['rms'], 7, 3)} "
+                    f"{f(ln['max'], 7, 3)} {f(ln['u_c'], 6, 3)} {f(ln['per_hour'], 8, 3)} "
+                    f"{f(ln['per_db'], 7, 3)}  {'yes' if ln['consistent'] else 'NO'}")
+    text.append(f"verdict: {out['verdict']} ({out['reason']})")
+    return "\n".join(text)
 
 
 def _show(out: dict[str, Any], as_json: bool) -> None:

@@ -115,6 +115,9 @@ class Run(Base):
     finished_at: Mapped[datetime | None] = mapped_column(UtcDateTime)
     heartbeat_at: Mapped[datetime | None] = mapped_column(UtcDateTime)
     spool_id: Mapped[int | None] = mapped_column(ForeignKey("spools.id"))
+    # the run this one replays (labrun replay: virtual, no light), None for a measured run
+    replay_of: Mapped[int | None] = mapped_column(
+        ForeignKey("runs.id", name="fk_runs_replay_of_runs"), index=True)
 
     spool: Mapped[Spool | None] = relationship(back_populates="runs")
     points: Mapped[list[Point]] = relationship(

@@ -15,7 +15,7 @@ from pathlib import Path
 from sqlalchemy import Column, Connection, Engine, MetaData, String, Table, inspect, select, text
 
 BASELINE = "0001"  # labrun 0.1.0's schema (no alembic_version table)
-HEAD = "0002"  # the newest revision in migrations/versions (test_schema checks it)
+HEAD = "0003"  # the newest revision in migrations/versions (test_schema checks it)
 MIGRATIONS = Path(__file__).resolve().parent / "migrations"
 PG_LOCK_KEY = 0x6C616272756E  # advisory lock id used while creating or upgrading ("labrun")
 
