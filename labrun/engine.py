@@ -675,8 +675,12 @@ class Runner:
 
         tones = expected_thz(spec.setpoint)
         for tr in traces:
-            tr.reduction = reduce_trace(tr.x, tr.y, self.rbw_nm, x_unit="nm",
-                                        orders=self.orders, expected_thz=tones)
+            try:
+                tr.reduction = reduce_trace(tr.x, tr.y, self.rbw_nm, x_unit="nm",
+                                            orders=self.orders, expected_thz=tones)
+            except ValueError as exc:  # an unusable trace (NaN, 1e5 dBm samples): retried
+                raise InstrumentError(f"{tr.kind} trace cannot be reduced: {exc}",
+                                      role="osa") from None
             check_tones(tr)
         return traces
 

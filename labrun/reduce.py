@@ -284,6 +284,11 @@ def _gap_floors(y: np.ndarray, centres: np.ndarray, half: int) -> np.ndarray:
     return np.where(count > 0, _db(mean), np.nan)
 
 
+# Power samples a trace may hold (dBm per RBW): from far below any OSA's floor to 1 kW; beyond,
+# the linear sums overflow (a 1e5 dBm sample gave a "detected" tone with no power).
+SAMPLE_RANGE_DBM = (-300.0, 60.0)
+
+
 def _validate(x, y, rbw: float, x_unit: str, orders: int, threshold_db: float, power_method: str):
     """Arrays as float, x ascending; ValueError with a plain sentence for anything unusable."""
     x = np.asarray(x, dtype=float)
@@ -298,8 +303,8 @@ def _validate(x, y, rbw: float, x_unit: str, orders: int, threshold_db: float, p
         raise ValueError("rbw must be a positive number in the unit of x")
     if orders < 0:
         raise ValueError("orders must be >= 0")
-    if threshold_db < 0:
-        raise ValueError("threshold_db must be >= 0")
+    if not 0 <= threshold_db <= 100:  # NaN fails too
+        raise ValueError("threshold_db must be within 0-100 dB")
     if power_method not in ("peak", "integrate"):
         raise ValueError("power_method must be 'peak' or 'integrate'")
     if x[0] > x[-1]:
@@ -308,6 +313,9 @@ def _validate(x, y, rbw: float, x_unit: str, orders: int, threshold_db: float, p
         raise ValueError("x and y must be finite (no NaN or inf)")
     if x[0] <= 0 or x[-1] <= x[0]:
         raise ValueError("x must be positive and increasing or decreasing")
+    if y.min() < SAMPLE_RANGE_DBM[0] or y.max() > SAMPLE_RANGE_DBM[1]:
+        raise ValueError(f"power samples must lie within {SAMPLE_RANGE_DBM[0]:g} to "
+                         f"{SAMPLE_RANGE_DBM[1]:g} dBm (1 kW); got {y.min():g} to {y.max():g}")
     return x, y
 
 

@@ -15,9 +15,16 @@ from pathlib import Path
 import numpy as np
 
 from labrun.errors import InputError
+from labrun.inputfile import MAX_TRACE_BYTES, decode, read_bytes
 
 X_COLUMNS = {"wavelength_nm": "nm", "frequency_thz": "thz"}
 Y_COLUMN = "power_dbm"
+# Physical ranges of trace samples: optical wavelengths (200 nm - 5 um, i.e. 60-1500 THz) and
+# powers per RBW from far below any OSA's floor up to 1 kW (as labrun.reduce.SAMPLE_RANGE_DBM,
+# named here with the line it is on).
+X_RANGES = {"nm": (200.0, 5000.0), "thz": (60.0, 1500.0)}
+POWER_RANGE_DBM = (-300.0, 60.0)
+MAX_SAMPLES = 1_000_001
 _META = re.compile(r"^\s*[#;%]*\s*([A-Za-z_][\w .\-]*?)\s*[:=,]\s*(.*?)\s*$")
 
 
@@ -67,12 +74,9 @@ def _header_columns(line: str) -> tuple[int, int, str] | None:
 def read_trace_csv(path: str | Path) -> TraceFile:
     """Read a CSV trace; InputError naming the file and line for anything malformed."""
     name = str(path)
-    try:
-        text = Path(path).read_text(encoding="utf-8-sig", errors="strict")
-    except FileNotFoundError:
-        raise InputError("no such file", file=name) from None
-    except (OSError, UnicodeDecodeError) as exc:
-        raise InputError(f"cannot read: {exc.__class__.__name__}", file=name) from None
+    if not Path(path).exists():
+        raise InputError("no such file", file=name)
+    text = decode(read_bytes(path, limit=MAX_TRACE_BYTES, name=name), name)
     lines = text.splitlines()
     meta: dict[str, str] = {}
     header = None
@@ -116,7 +120,13 @@ def _parse_rows(lines: list[str], hline: int, xi: int, yi: int, name: str, unit:
                                  file=name, field=fname) from None
             if not np.isfinite(v):
                 raise InputError(f"line {lineno}: value is not finite", file=name, field=fname)
+            lo, hi = X_RANGES[unit] if col == xi else POWER_RANGE_DBM
+            if not lo <= v <= hi:
+                raise InputError(f"line {lineno}: {v:g} is outside [{lo:g}, {hi:g}]", file=name,
+                                 field=fname)
             out.append(v)
+        if len(xs) > MAX_SAMPLES:
+            raise InputError(f"more than {MAX_SAMPLES:,} data rows", file=name)
     if len(xs) < 8:
         raise InputError(f"only {len(xs)} data rows; a trace needs at least 8", file=name)
     x = np.asarray(xs)
@@ -126,8 +136,6 @@ def _parse_rows(lines: list[str], hline: int, xi: int, yi: int, name: str, unit:
         bad = int(np.argmax(d <= 0) if d[0] > 0 else np.argmax(d >= 0))
         raise InputError(f"x values must be strictly increasing or decreasing (data row {bad + 2})",
                          file=name, field=xname)
-    if x.min() <= 0:
-        raise InputError("x values must be positive", file=name, field=xname)
     return x, y
 
 

@@ -143,3 +143,49 @@ def test_analyze_options_must_be_finite_and_in_range(tmp_path, capsys, option, v
     assert code == 2 and out == ""
     assert len(err.strip().splitlines()) == 1 and option.lstrip("-").replace("-", "_") in \
         err.replace("-", "_")
+
+
+@pytest.mark.parametrize("sample, field", [
+    ("1e5", "power_dbm"), ("61", "power_dbm"), ("-1e308", "power_dbm"), ("inf", "power_dbm"),
+])
+def test_analyze_refuses_unphysical_power_samples(tmp_path, capsys, sample, field):
+    """issue 13: a 1e5 dBm sample gave a TypeError (and with --json a detected tone with a null
+    power). Samples above 60 dBm (1 kW) or below -300 dBm are refused, naming file and line."""
+    path = _handmade(tmp_path / "export.csv")
+    lines = path.read_text().splitlines()
+    row = next(i for i, ln in enumerate(lines) if ln.startswith("wavelength_nm")) + 20
+    wl = lines[row].split(",")[0]
+    lines[row] = f"{wl},{sample}"
+    path.write_text("\n".join(lines) + "\n")
+    for extra in ([], ["--json"]):
+        code, out, err = _run(capsys, "analyze", str(path), *extra)
+        assert code == 2 and out == ""
+        assert len(err.strip().splitlines()) == 1
+        assert str(path) in err and field in err and f"line {row + 1}" in err, err
+
+
+def test_analyze_refuses_unphysical_wavelengths_and_non_utf8(tmp_path, capsys):
+    path = _handmade(tmp_path / "export.csv")
+    text = path.read_text()
+    lines = text.splitlines()
+    row = next(i for i, ln in enumerate(lines) if ln.startswith("wavelength_nm")) + 1
+    lines[row] = "1e-300," + lines[row].split(",")[1]
+    path.write_text("\n".join(lines) + "\n")
+    code, out, err = _run(capsys, "analyze", str(path))
+    assert code == 2 and "wavelength_nm" in err and f"line {row + 1}" in err
+    path.write_bytes(text.replace("J. Okafor", "J. M\u00fcller").encode("latin-1"))
+    code, out, err = _run(capsys, "analyze", str(path))
+    assert code == 2 and out == "" and "not UTF-8" in err and len(err.strip().splitlines()) == 1
+
+
+def test_reduction_refuses_unphysical_samples_itself():
+    """The reduction checks its own input (the engine passes instrument traces straight in)."""
+    from labrun.reduce import reduce_trace
+
+    x = np.linspace(1549.0, 1551.0, 201)
+    y = np.full_like(x, -60.0)
+    y[100] = 1e5
+    with pytest.raises(ValueError, match="power samples"):
+        reduce_trace(x, y, 0.02)
+    with pytest.raises(ValueError, match="threshold_db"):
+        reduce_trace(x, np.full_like(x, -60.0), 0.02, threshold_db=float("nan"))
