@@ -433,13 +433,12 @@ class ScpiSession:
             return None
         return base64.b64encode(self._last_block).decode("ascii")
 
-    def write(self, cmd: str, *, check_errors: bool = True, alone: bool = False) -> None:
+    def write(self, cmd: str, *, check_errors: bool = True) -> None:
         """Send one command; then drain the error queue and raise ScpiError if it held errors.
 
-        With compound messages the first error-queue read travels with the command, unless
-        ``alone`` (a command that switches light is always a message of its own).
+        With compound messages the first error-queue read travels with the command.
         """
-        if check_errors and self.error_query and self.compound and not alone:
+        if check_errors and self.error_query and self.compound:
             self.setting(cmd)
             return
         with self._lock:

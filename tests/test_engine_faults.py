@@ -51,8 +51,11 @@ def _run(tmp_path, lab, n_points, policy):
 
 def test_a_run_rides_through_transient_faults(tmp_path):
     with VirtualLab(scenario(faults=FAULTS), seed=3) as lab:
+        # 8 attempts: with about 3 % of messages faulted, a point whose attempt reopens and
+        # relights the bench (output_on/off each a message of its own, issue 13) needs a few
+        # more tries than one that only sets values (seeds 1-8 all complete with 8, 3 with 6)
         plan, bench, store, out = _run(tmp_path, lab, 80,
-                                       RetryPolicy(attempts=6, backoff_s=0.0))
+                                       RetryPolicy(attempts=8, backoff_s=0.0))
         injected = {role: dict(inst.faults.counts) for role, inst in lab.instruments.items()}
         assert out.status == "completed", out.reason
         assert dark(lab)  # sources off, attenuators at maximum

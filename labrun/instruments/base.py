@@ -18,7 +18,7 @@ import numpy as np
 from labrun.bench import InstrumentSpec
 from labrun.errors import InputError, InstrumentError, SafetyError
 from labrun.profiles import SOURCE_SWITCHES, Operation, Profile
-from labrun.scpi import Idn, ScpiError, ScpiSession, parse_idn
+from labrun.scpi import Idn, ScpiError, ScpiSession, compound, parse_idn
 
 log = logging.getLogger("labrun.instruments")
 
@@ -276,17 +276,35 @@ class Adapter:
         p = self.prepare(name, value, index=index, values=values, cap=cap, expect=expect)
         op = p.op
         settle_s = op.settle_s * self.settle_scale if settle else 0.0
-        if self._compound_ok() and settle_s <= 0 \
-                and name not in SOURCE_SWITCHES:  # switching light travels alone
+        if name in SOURCE_SWITCHES and self._compound_ok() and not op.wait:
+            self._switch_alone(p, settle)
+            return
+        if self._compound_ok() and settle_s <= 0:
             self._apply_compound(op, p.text, p.back, p.index, p.target, cap)
             return
-        self.session.write(p.text, alone=name in SOURCE_SWITCHES)
+        self.session.write(p.text)
         if settle:
             self.settle(op.settle_s)
         if op.wait:
             self.session.opc_wait()
         if p.back is not None:
             self.verify(op, self.read(p.back.name, index=p.index), p.target, cap=cap)
+
+    def _switch_alone(self, p: PlannedSetting, settle: bool) -> None:
+        """Switch light with the command as a message of its own (never compound), then its
+        error query and read-back together in one query message."""
+        session = self.session
+        with session._lock:
+            session.write(p.text, check_errors=False)
+            if settle:
+                self.settle(p.op.settle_s)
+            queries = [p.back_text] if p.back_text is not None else []
+            message = compound(queries[0], [str(session.error_query)]) if queries else \
+                str(session.error_query)
+            reply = session.query(message)
+            units = session.check_reply(p.text, message, reply, len(queries))
+        if p.back is not None:
+            self.verify(p.op, self.parse(p.back, units[0]), p.target, cap=p.cap)
 
     def _compound_ok(self) -> bool:
         """True when settings may travel as one compound message with their follow-up queries."""

@@ -67,8 +67,14 @@ def write_all(planned: Sequence[PlannedSetting], *, read_back: bool = False) -> 
     also verify each one in the same exchange (for settings that need no settle time)."""
     compound_msgs: list[tuple[Adapter, str, str, list[tuple[str, PlannedSetting]]]] = []
     for adapter, group in _by_adapter(planned):
-        if not adapter._compound_ok() or any(p.op.name in SOURCE_SWITCHES for p in group):
-            _write_one_by_one(adapter, group, read_back)  # switching light travels alone
+        if not adapter._compound_ok():
+            _write_one_by_one(adapter, group, read_back)
+            continue
+        switches = [p for p in group if p.op.name in SOURCE_SWITCHES]
+        if switches:  # switching light travels alone, after the instrument's other settings
+            write_all([p for p in group if p not in switches], read_back=read_back)
+            for p in switches:
+                adapter._switch_alone(p, settle=False)
             continue
         units, expects = _units(adapter, group, read_back)
         message = compound(units[0], [*units[1:], str(adapter.session.error_query)])
@@ -110,7 +116,7 @@ def _write_one_by_one(adapter: Adapter, group: Sequence[PlannedSetting], read_ba
     """Settings of an instrument without compound messages: each written, its error queue
     drained, ``*OPC?`` where it waits; then the read-backs when asked for."""
     for p in group:
-        adapter.session.write(p.text, alone=p.op.name in SOURCE_SWITCHES)
+        adapter.session.write(p.text)
         if p.op.wait:
             adapter.session.opc_wait()
     if read_back:
