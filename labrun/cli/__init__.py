@@ -16,8 +16,8 @@ import os
 import signal
 import sys
 from collections.abc import Sequence
+from typing import Any
 
-from labrun import __version__
 from labrun.errors import LabrunError
 
 # Command groups, each in its own module (labrun/cli/<name>.py). A module that does not exist yet
@@ -34,6 +34,17 @@ class _Parser(argparse.ArgumentParser):
         self.exit(2, f"{self.prog}: error: {message}\n")
 
 
+class _Version(argparse.Action):
+    """``--version``: the installed version, looked up only when asked for."""
+
+    def __call__(self, parser: argparse.ArgumentParser, *args: Any, **kwargs: Any) -> None:
+        from labrun import __version__
+
+        # as argparse's own "version" action: stdout, a closed pipe ignored
+        parser._print_message(f"labrun {__version__}\n", sys.stdout)
+        parser.exit()
+
+
 def add_traffic_log_option(parser: argparse.ArgumentParser, help_text: str) -> None:
     """``--traffic-log FILE``, and its name before 0.2 (``--transcript``) as a hidden alias so
     scripts written against it keep working."""
@@ -45,7 +56,8 @@ def add_traffic_log_option(parser: argparse.ArgumentParser, help_text: str) -> N
 def build_parser() -> argparse.ArgumentParser:
     """The full ``labrun`` parser with every available command group registered."""
     parser = _Parser(prog="labrun", description="Four-wave-mixing sweeps on optical fibre.")
-    parser.add_argument("--version", action="version", version=f"labrun {__version__}")
+    parser.add_argument("--version", action=_Version, nargs=0,
+                        help="show the program's version number and exit")
     parser.add_argument("-v", "--verbose", action="store_true", help="log instrument traffic")
     sub = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
     for name in COMMAND_MODULES:

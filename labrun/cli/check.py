@@ -12,16 +12,14 @@ import argparse
 import json
 from collections.abc import Mapping
 from dataclasses import dataclass
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
-from labrun import safety
-from labrun.bench import load_bench
 from labrun.errors import SafetyError
-from labrun.plan import POWER_SETPOINTS, OsaSettings, Plan, load_plan, op_settle
-from labrun.profiles import VALUE_PLACEHOLDERS
+
+if TYPE_CHECKING:  # imported where used: `labrun --help` loads no numpy or pydantic
+    from labrun.plan import OsaSettings, Plan
 
 FIRST_POINTS = 3
-POWER_AXES = POWER_SETPOINTS
 
 
 @dataclass(frozen=True)
@@ -52,6 +50,9 @@ def register(subparsers: Any) -> None:
 
 def cmd_check(args: argparse.Namespace) -> int:
     """Run the check; exit 1 when the plan breaks a cap or range on this bench."""
+    from labrun.bench import load_bench
+    from labrun.plan import load_plan
+
     plan = load_plan(args.plan)
     bench = load_bench(args.bench)
     report = dry_run(plan, bench, first=max(0, args.first))
@@ -67,6 +68,9 @@ def cmd_check(args: argparse.Namespace) -> int:
 
 def point_steps(setpoint: Mapping[str, Any], bench: Any) -> list[Step]:
     """Settings of one point, in the engine's terms (roles, profile operations, values)."""
+    from labrun import safety
+    from labrun.plan import POWER_SETPOINTS as POWER_AXES
+
     inst = safety.instrument_settings(setpoint, bench)
     wl = ("wavelength_a_nm",)
     steps = [
@@ -92,6 +96,8 @@ def point_steps(setpoint: Mapping[str, Any], bench: Any) -> list[Step]:
 
 def _settle(bench: Any, plan: Plan, step: Step) -> float:
     """Settle time of a step: the larger of its profile operation's and its plan axes'."""
+    from labrun.plan import op_settle
+
     axis_s = max([plan.settle_s.get(d, 0.0) for d in step.drives] + [0.0])
     return max(op_settle(bench, step.role, step.op), axis_s)
 
@@ -99,6 +105,8 @@ def _settle(bench: Any, plan: Plan, step: Step) -> float:
 def _render(bench: Any, role: str, op_name: str, value: Any = None,
             index: int | None = None) -> str | None:
     """SCPI text of one operation from the role's profile (None when the profile lacks it)."""
+    from labrun.profiles import VALUE_PLACEHOLDERS
+
     spec = bench.instruments.get(role)
     op = spec.profile.operations.get(op_name) if spec else None
     if op is None:
@@ -124,6 +132,9 @@ def _osa_steps(osa: OsaSettings) -> list[tuple[str, Any]]:
 
 def dry_run(plan: Plan, bench: Any, *, first: int = FIRST_POINTS) -> dict[str, Any]:
     """Everything ``labrun check`` reports, as a JSON-friendly dict; touches no instrument."""
+    from labrun import safety
+    from labrun.plan import op_settle
+
     violations = safety.check_caps(plan, bench)
     osa = plan.osa_settings(bench)
     pts = plan.points()

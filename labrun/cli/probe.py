@@ -13,17 +13,16 @@ import json
 import sys
 from dataclasses import asdict, dataclass, field
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
-import numpy as np
-
-from labrun.bench import Bench, load_bench
 from labrun.cli import add_traffic_log_option
 from labrun.errors import InputError, LabrunError
-from labrun.instruments import Adapter, open_instrument
-from labrun.profiles import Operation
-from labrun.scpi import Idn, NoAnswerError
-from labrun.trafficlog import TrafficLog
+
+if TYPE_CHECKING:  # imported where used: `labrun --help` loads no numpy or pyvisa
+    from labrun.bench import Bench
+    from labrun.instruments import Adapter
+    from labrun.profiles import Operation
+    from labrun.trafficlog import TrafficLog
 
 
 @dataclass
@@ -63,6 +62,10 @@ def register(subparsers: argparse._SubParsersAction) -> None:
 
 def describe(op: Operation, value: Any) -> str:
     """A short human reading of a value returned by a read operation."""
+    import numpy as np
+
+    from labrun.scpi import Idn
+
     if isinstance(value, Idn):
         return str(value)
     if isinstance(value, np.ndarray):
@@ -83,6 +86,8 @@ def describe(op: Operation, value: Any) -> str:
 
 def _check_operation(adapter: Adapter, op: Operation) -> Check:
     """Run one read operation (every index of an indexed one); NoAnswerError propagates."""
+    from labrun.scpi import NoAnswerError
+
     try:
         if op.index_range is None:
             detail = describe(op, adapter.read(op.name))
@@ -99,6 +104,9 @@ def _check_operation(adapter: Adapter, op: Operation) -> Check:
 
 def probe_instrument(bench: Bench, role: str, traffic_log: TrafficLog | None = None) -> ProbeResult:
     """Probe one role; an instrument that does not answer yields one failed check, no more."""
+    from labrun.instruments import open_instrument
+    from labrun.scpi import NoAnswerError
+
     spec = bench.instruments[role]
     result = ProbeResult(role=role, resource=spec.resource)
     try:
@@ -130,6 +138,8 @@ def probe_instrument(bench: Bench, role: str, traffic_log: TrafficLog | None = N
 
 def _check_error_queue(adapter: Adapter) -> Check:
     """Read the error queue: empty means every probe query was understood."""
+    from labrun.scpi import NoAnswerError
+
     try:
         adapter.session.drain_errors("the probe's queries")
     except NoAnswerError:
@@ -164,6 +174,9 @@ def format_table(results: list[ProbeResult]) -> str:
 
 def run_probe(args: argparse.Namespace) -> int:
     """Entry point of ``labrun probe``."""
+    from labrun.bench import load_bench
+    from labrun.trafficlog import TrafficLog
+
     bench = load_bench(args.bench)
     if args.traffic_log and not Path(args.traffic_log).resolve().parent.is_dir():
         raise InputError("no such folder for the traffic log", file=args.traffic_log,

@@ -16,8 +16,6 @@ import threading
 from pathlib import Path
 from typing import TYPE_CHECKING
 
-import numpy as np
-
 from labrun.errors import InputError
 
 if TYPE_CHECKING:
@@ -145,6 +143,8 @@ def _check_spectrum_args(args: argparse.Namespace) -> None:
 
 def _copolar(pol_angle_deg: float) -> float:
     """Copolar fraction of two linear polarisations at a physical angle (docs/design.md §5.5)."""
+    import numpy as np
+
     from labrun.physics.polarisation import copolar_fraction
 
     two = math.radians(2.0 * pol_angle_deg)  # linear states sit at 2*angle on the Poincare sphere
@@ -216,6 +216,8 @@ def _sample_count(need: int) -> int:
 def _write_trace(args: argparse.Namespace, scenario: Scenario, spool_name: str,
                  lines: list[ModelLine]) -> Path:
     """Synthesise the OSA trace (through output_to_osa_db, the scenario's OSA floor) as CSV."""
+    import numpy as np
+
     from labrun.physics.osa import synthesize_trace
     from labrun.tracefile import write_trace_csv
     from labrun.vlab.realism import role_rng

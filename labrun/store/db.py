@@ -7,15 +7,16 @@ while a run writes. Each point, with its traces and lines, is written in one tra
 
 from __future__ import annotations
 
+import math
 import os
+import statistics
 from collections.abc import Iterator, Sequence
 from contextlib import contextmanager
 from dataclasses import dataclass, field
 from datetime import datetime
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
-import numpy as np
 from sqlalchemy import (
     Engine,
     bindparam,
@@ -36,6 +37,9 @@ from labrun.errors import InputError
 from labrun.store import DEFAULT_DB, schema
 from labrun.store.models import Base, Event, Line, Point, Run, Spool, Trace, utcnow
 from labrun.store.tracecodec import encode_y
+
+if TYPE_CHECKING:  # numpy is imported where traces are encoded: `labrun status` needs none
+    import numpy as np
 
 BUSY_TIMEOUT_MS = 15_000  # a reader or writer waits this long for a lock before failing
 
@@ -86,6 +90,8 @@ def encode_x(x: np.ndarray) -> tuple[float, float, int, bytes | None]:
     (also when already widened to float64), its values sit within float32 rounding of that grid,
     which counts as linear too.
     """
+    import numpy as np
+
     raw = np.asarray(x)
     xs = raw.astype(np.float64)
     n = int(xs.size)
@@ -225,7 +231,7 @@ class Store:
             gaps = [(a - b).total_seconds() for a, b in zip(times, times[1:], strict=False)]
             return {
                 "run": run, "points_done": done,
-                "seconds_per_point": float(np.median(gaps)) if gaps else None,
+                "seconds_per_point": float(statistics.median(gaps)) if gaps else None,
                 "last_point": last, "last_lines": last_lines, "faults": faults,
                 "last_fault": last_fault,
             }
@@ -295,9 +301,9 @@ _LINE_FIELDS = ("kind", "side", "order", "freq_thz", "wavelength_nm", "power_dbm
 
 def _finite_or_none(value: Any) -> Any:
     """NaN and infinities become NULL (JSON and SQL have no portable NaN)."""
-    if isinstance(value, float | np.floating):
-        v = float(value)
-        return v if np.isfinite(v) else None
+    if isinstance(value, float) or getattr(getattr(value, "dtype", None), "kind", "") == "f":
+        v = float(value)  # also a numpy floating scalar (numpy itself need not be imported)
+        return v if math.isfinite(v) else None
     return value
 
 

@@ -11,9 +11,8 @@ an Alembic revision in ``labrun/store/migrations/versions`` (see ``labrun.store.
 from __future__ import annotations
 
 from datetime import UTC, datetime
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
-import numpy as np
 from sqlalchemy import (
     JSON,
     Boolean,
@@ -29,6 +28,9 @@ from sqlalchemy import (
     UniqueConstraint,
 )
 from sqlalchemy.orm import DeclarativeBase, Mapped, mapped_column, relationship
+
+if TYPE_CHECKING:  # numpy is imported where a trace is decoded: `labrun status` needs none
+    import numpy as np
 
 # Run statuses. "created": recorded, nothing emitted yet; "running": in the loop (or the process
 # died: see the heartbeat); "completed": every point done; "stopped": a plan stop condition ended
@@ -181,6 +183,8 @@ class Trace(Base):
 
     def x(self) -> np.ndarray:
         """The x axis (float64), rebuilt from the linear grid when no array was stored."""
+        import numpy as np
+
         if self.x_data is not None:
             return np.frombuffer(self.x_data, dtype="<f8").copy()
         return np.linspace(self.x_start, self.x_stop, self.n)

@@ -12,8 +12,10 @@ A trace with a value that is not finite or beyond +/-1e5 dB is stored as ``f32``
 from __future__ import annotations
 
 import zlib
+from typing import TYPE_CHECKING
 
-import numpy as np
+if TYPE_CHECKING:  # imported where a trace is coded: opening a store (`labrun status`) needs none
+    import numpy as np
 
 F32 = "f32"
 MDB_DZ1 = "mdb-dz1"
@@ -25,6 +27,8 @@ ZLIB_LEVEL = 6
 
 def encode_y(y: np.ndarray, encoding: str = DEFAULT_ENCODING) -> tuple[bytes, str]:
     """(blob, encoding actually used) for a trace's y values in dBm."""
+    import numpy as np
+
     values = np.asarray(y, dtype=np.float64).ravel()
     if encoding == MDB_DZ1 and np.all(np.isfinite(values)) and (
             values.size == 0 or float(np.max(np.abs(values))) <= LIMIT_DB):
@@ -40,6 +44,8 @@ def encode_y(y: np.ndarray, encoding: str = DEFAULT_ENCODING) -> tuple[bytes, st
 
 def decode_y(blob: bytes, encoding: str | None, n: int) -> np.ndarray:
     """A stored trace's y values (dBm) as float64; ``None`` encoding means ``f32`` (old rows)."""
+    import numpy as np
+
     if encoding in (None, F32):
         return np.frombuffer(blob, dtype="<f4").astype(np.float64)
     if encoding == MDB_DZ1:
