@@ -220,6 +220,7 @@ class ModelReplay:
     spool: dict[str, Any]
     points_compared: int
     residual_db: dict[str, dict[str, Any]]
+    residual_by_order: dict[str, dict[str, Any]]
     verdict: str
     patterns: list[str]
     reason: str
@@ -377,6 +378,7 @@ def replay_model(store: Store, run_id: int, *, spool: ModelSpool, base_scenario:
         run_id=outcome.run_id, replay_of=run_id, status=outcome.status, model=spool.source,
         spool=spool.spec.model_dump(), points_compared=len(res),
         residual_db={k: ln.to_dict() for k, ln in lines.items()},
+        residual_by_order=rs.by_order(res) if not res.empty else {},
         verdict=judged.verdict, patterns=judged.patterns, reason=judged.reason,
         per_point=per_point)
 

@@ -188,6 +188,20 @@ def summarise(res: pd.DataFrame, reference: pd.DataFrame, *, rel_u_gamma: float 
     return out
 
 
+def by_order(res: pd.DataFrame) -> dict[str, dict[str, Any]]:
+    """Residuals pooled per order, both sides ("tones", "order 1", ...): n, rms, max (dB)."""
+    out: dict[str, dict[str, Any]] = {}
+    for n in sorted({order_of(k) for k in line_keys(res)}):
+        values = np.concatenate([res[k].to_numpy(dtype=float) for k in line_keys(res)
+                                 if order_of(k) == n])
+        values = values[np.isfinite(values)]
+        if values.size:
+            out["tones" if n == 0 else f"order {n}"] = {
+                "n": int(values.size), "rms": round(float(np.sqrt(np.mean(values ** 2))), 4),
+                "max": round(float(np.max(np.abs(values))), 4)}
+    return out
+
+
 def _strong(corr: float | None) -> bool:
     return corr is not None and abs(corr) >= SIGNIFICANT_CORR
 

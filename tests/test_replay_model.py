@@ -77,8 +77,15 @@ def test_power_sweep_fit_and_twin_replay_are_consistent(night, capsys):
     for key in FIRST:
         assert out["residual_db"][key]["rms"] <= 0.1, (key, out["residual_db"][key])
         assert out["residual_db"][key]["n"] == 25
+    assert out["residual_by_order"]["order 1"]["n"] == 50  # both first sidebands pooled
+    assert out["residual_by_order"]["order 1"]["rms"] == pytest.approx(float(np.sqrt(
+        (out["residual_db"]["sideband_low_1"]["rms"] ** 2
+         + out["residual_db"]["sideband_high_1"]["rms"] ** 2) / 2)), abs=2e-4)
     store = open_store(db)
     assert store.get_run(out["run_id"]).replay_of == 1
+    capsys.readouterr()
+    assert main(["status", str(out["run_id"]), "--db", str(db), "--json"]) == 0
+    assert json.loads(capsys.readouterr().out)["replay_of"] == 1
     # measured minus replayed, recomputed here from the two stored runs with pandas
     a, b = run_points(store, 1), run_points(store, out["run_id"])
     diff = a.set_index("key")["sideband_low_1"] - b.set_index("key")["sideband_low_1"]

@@ -118,6 +118,15 @@ def model_text(out: dict[str, Any]) -> str:
         text.append(f"  {key:<16} {ln['n']:>4} {f(ln['mean'], 8, 3)} {f(ln['rms'], 7, 3)} "
                     f"{f(ln['max'], 7, 3)} {f(ln['u_c'], 6, 3)} {f(ln['per_hour'], 8, 3)} "
                     f"{f(ln['per_db'], 7, 3)}  {'yes' if ln['consistent'] else 'NO'}")
+    for name, agg in out["residual_by_order"].items():
+        text.append(f"  {name:<16} {agg['n']:>4} {'':>8} {agg['rms']:>7.3f} {agg['max']:>7.3f}")
+    keys = list(out["residual_db"])
+    if out["per_point"]:
+        text.append("  per point (measured - replayed, dB):")
+        text.append("  " + " ".join(f"{k:>16}" for k in keys) + "  point")
+        for row in out["per_point"]:
+            text.append("  " + " ".join(f"{row[k]:>16.3f}" if row.get(k) is not None
+                                        else f"{'-':>16}" for k in keys) + f"  {row['key']}")
     text.append(f"verdict: {out['verdict']} ({out['reason']})")
     return "\n".join(text)
 

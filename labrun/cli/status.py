@@ -59,6 +59,7 @@ def status_report(summary: dict[str, Any], *, now: Any = None) -> dict[str, Any]
         "percent": round(100.0 * done / total, 1) if total else None,
         "seconds_per_point": pace, "eta_s": eta,
         "plan": run.plan_name, "operator": run.operator, "bench": run.bench_name,
+        "replay_of": run.replay_of,
         "started_at": run.started_at.isoformat() if run.started_at else None,
         "finished_at": run.finished_at.isoformat() if run.finished_at else None,
         "heartbeat_age_s": age, "stale": stale,
@@ -109,6 +110,8 @@ def _text(rep: dict[str, Any]) -> str:
     """Human-readable status."""
     out = [f"run {rep['run_id']} ({rep['plan']}, operator {rep['operator'] or '-'}): "
            f"{rep['status']}" + (f" ({rep['reason']})" if rep["reason"] else "")]
+    if rep.get("replay_of") is not None:
+        out.append(f"  VIRTUAL replay of run {rep['replay_of']} (no light was emitted)")
     out.append(f"  points   {rep['points_done']}/{rep['points_total']}"
                + (f" ({rep['percent']}%)" if rep["percent"] is not None else ""))
     if rep["status"] == "running":
