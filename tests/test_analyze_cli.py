@@ -4,6 +4,8 @@ from __future__ import annotations
 
 import json
 
+import matplotlib.colors
+import matplotlib.image
 import numpy as np
 import pytest
 
@@ -69,6 +71,12 @@ def _handmade(path, *, freq_axis=False):
     return path
 
 
+def _pixels(img: np.ndarray, colour: str) -> int:
+    """Pixels of a decoded PNG within 2/255 of a matplotlib colour (anti-aliased edges aside)."""
+    rgb = np.array(matplotlib.colors.to_rgb(colour))
+    return int(np.sum(np.all(np.abs(img[..., :3] - rgb) <= 2 / 255, axis=-1)))
+
+
 @pytest.mark.parametrize("freq_axis", [False, True])
 def test_analyze_handmade_csv_with_metadata(tmp_path, capsys, freq_axis):
     path = _handmade(tmp_path / "export.csv", freq_axis=freq_axis)
@@ -82,6 +90,12 @@ def test_analyze_handmade_csv_with_metadata(tmp_path, capsys, freq_axis):
     got = [ln["power_dbm"] for ln in red["lines"]]
     assert np.allclose(got, [-38.0, 0.0, -1.0, -39.0], atol=0.1)
     assert plot.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"  # PNG signature (PNG specification)
+    # Decoded by matplotlib's PNG reader: 10 x 5 in at 110 dpi, with the tones' markers in
+    # tab:blue and the sidebands' in tab:orange (matplotlib's named colours), which only the
+    # line markers use.
+    img = matplotlib.image.imread(plot)
+    assert img.shape[:2] == (550, 1100)
+    assert _pixels(img, "tab:blue") > 10 and _pixels(img, "tab:orange") > 10
 
 
 def test_analyze_table_output(tmp_path, capsys):

@@ -64,7 +64,6 @@ def test_power_above_the_cap_aborts_at_once(tmp_path):
 
 def test_power_changed_behind_our_back_aborts_when_confirmed(tmp_path):
     with VirtualLab(scenario()) as lab:
-        planned = long_powers(N_POINTS)[AT_SWEEP - 1]
         _change_power_during_sweep(lab, "laser_b", -9.0, AT_SWEEP)  # far below what was set
         out, store = _run(tmp_path, lab)
         assert out.status == "aborted", out.reason
@@ -73,7 +72,6 @@ def test_power_changed_behind_our_back_aborts_when_confirmed(tmp_path):
         faults = [e.message for e in store.events(out.run_id, ["fault"])]
         assert any("re-read says -9 dBm" in m for m in faults), faults
         assert dark(lab)
-    assert planned != -9.0
 
 
 def test_one_corrupted_power_reply_does_not_end_the_run(tmp_path):

@@ -285,3 +285,13 @@ def test_slope_plot_is_written(tmp_path):
     pts = _bessel_points(fib, 2, ratio_db=0.0, p_dbm=np.linspace(-2, 8, 6))
     out = plot_power_slopes(tmp_path / "slopes.png", pts, fit_run(pts, 1.0, 0.5))
     assert out.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"  # PNG signature (PNG specification)
+    # Decoded by matplotlib's PNG reader: 7 x 4.5 in at 110 dpi, and one series per sideband
+    # (low and high, orders 1 and 2) in the first four colours of matplotlib's default cycle.
+    import matplotlib.colors
+    import matplotlib.image
+
+    img = matplotlib.image.imread(out)
+    assert img.shape[:2] == (495, 770)
+    for colour in ("C0", "C1", "C2", "C3"):
+        rgb = np.array(matplotlib.colors.to_rgb(colour))
+        assert np.sum(np.all(np.abs(img[..., :3] - rgb) <= 2 / 255, axis=-1)) > 10, colour

@@ -8,6 +8,7 @@ import time
 
 import numpy as np
 import pytest
+from _engine_support import scenario
 from pyvisa.util import from_ieee_block, to_ieee_block
 
 from labrun.errors import InputError, InstrumentError
@@ -21,6 +22,8 @@ from labrun.scpi import (
     visa_library_spec,
 )
 from labrun.trafficlog import TrafficLog
+from labrun.vlab import VirtualLab
+from labrun.vlab.state import sweep_time_s
 
 
 def _session(peer, traffic_log=None, **kw) -> ScpiSession:
@@ -180,9 +183,33 @@ def test_refused_connection_is_one_line_instrument_error(inst_free_port):
     assert "\n" not in str(info.value) and str(info.value).startswith("laser_a: no answer")
 
 
-def test_opc_wait(inst_scpi_peer):
-    with _session(inst_scpi_peer) as s:
+def test_opc_wait_blocks_until_the_sweep_is_done():
+    """IEEE 488.2 12.5.3: *OPC? answers 1 only once every pending operation is complete. On the
+    virtual lab at time scale 1 an OSA sweep takes its simulated duration in real time, so
+    opc_wait after INIT:IMM must take at least that long (the lab's own sweep-time model)."""
+    sweep_s = sweep_time_s(10.0, 0.05, 1025)  # 0.05 + 1025 * 20e-6 + 10 / (0.05 * 2000)
+    log = TrafficLog()
+    with VirtualLab(scenario(), time_scale=1.0) as lab, ScpiSession(
+            lab.resources["osa"], "@py", timeout_ms=2000, traffic_log=log, role="osa") as s:
+        s.open()
+        for cmd in ("SENS:WAV:SPAN 10", "SENS:BAND:RES 0.05", "SENS:SWE:POIN 1025"):
+            s.write(cmd)
+        assert s.query("SYST:ERR?") == '0,"No error"'
+        s.write("INIT:IMM")
+        t0 = time.monotonic()
+        s.opc_wait(timeout_ms=10_000)
+        waited = time.monotonic() - t0
+    assert waited >= 0.9 * sweep_s, (waited, sweep_s)
+    last = log.entries[-1]
+    assert (last.text, last.reply) == ("*OPC?", "1")
+
+
+def test_opc_wait_without_an_opc_query_sends_nothing(inst_scpi_peer):
+    with _session(inst_scpi_peer, opc_query=None) as s:
         s.opc_wait(timeout_ms=1000)
+        s.query("*IDN?")
+    assert "*OPC?" not in inst_scpi_peer.state.received
+    assert inst_scpi_peer.state.received[-1] == "*IDN?"
 
 
 # -- identity and backends -------------------------------------------------------------------
