@@ -32,7 +32,7 @@ from scipy.optimize import least_squares
 from scipy.special import j0, j1
 
 from labrun.physics.fibre import Fibre
-from labrun.physics.fwm import inoue_efficiency, sideband_mismatch_per_km
+from labrun.physics.fwm import inoue_efficiency, inoue_efficiency_nl, sideband_mismatch_per_km
 from labrun.physics.polarisation import copolar_fraction, paddles_to_stokes
 from labrun.physics.units import alpha_per_km, dbm_to_w, effective_length_km
 
@@ -42,6 +42,11 @@ DISPERSION_CONVENTION = (
 SLOPE_CONVENTION = (
     "d|D|/d(lambda) at the reference wavelength, ps/(nm^2 km): the data determine how |D| "
     "changes with wavelength; this is the slope S when D > 0 and -S when D < 0")
+SIGNED_D_CONVENTION = (
+    "D at the reference wavelength, ps/(nm km), signed: D > 0 is anomalous dispersion "
+    "(beta2 < 0); the sign is measured through the SPM/XPM phase mismatch")
+SIGNED_S_CONVENTION = "dD/d(lambda) at the reference wavelength, ps/(nm^2 km), signed"
+SIGN_DCHI2 = 25.0  # the sign of D is reported when the other sign fits worse by this much
 LINE_KEY = re.compile(r"^(tone|sideband)_(low|high)_(\d+)$")
 DB = 10.0 / math.log(10.0)  # dB per neper of power ratio (10 log10 e)
 
@@ -373,15 +378,25 @@ def fit_gamma_bessel(p_a_w, p_b_w, low1_w, tone_a_w, tone_b_w, high1_w, l_eff_km
 def _first_sideband_efficiency(spacing_ghz: np.ndarray, wavelength_a_nm: np.ndarray,
                                side: np.ndarray, length_km: float, loss_db_per_km: float,
                                dispersion: float, slope: float,
-                               reference_wavelength_nm: float) -> np.ndarray:
+                               reference_wavelength_nm: float,
+                               nl_per_km: np.ndarray | float = 0.0) -> np.ndarray:
     """Inoue efficiency of each point's first sideband for a fibre with D and S at the reference.
 
-    The phase mismatch is the physics module's (beta2, beta3 at tone a from D(lambda), S).
+    The phase mismatch is the physics module's (beta2, beta3 at tone a from D(lambda), S), plus
+    the nonlinear mismatch nl_per_km = gamma (P_probe - 2 P_pump) when given
+    (physics.fwm.inoue_efficiency_nl).
     """
     u, v = _mismatch_basis(spacing_ghz, wavelength_a_nm, side, length_km, loss_db_per_km,
                            reference_wavelength_nm)
     alpha = float(alpha_per_km(loss_db_per_km))
-    return np.asarray(inoue_efficiency(alpha, dispersion * u + slope * v, length_km), dtype=float)
+    return np.asarray(inoue_efficiency_nl(alpha, dispersion * u + slope * v, length_km,
+                                          nl_per_km), dtype=float)
+
+
+def nl_power_w(p_a_w, p_b_w, side) -> np.ndarray:
+    """P_probe - 2 P_pump (W) of a first sideband: high 2f_b - f_a (pump b), low 2f_a - f_b."""
+    p_a, p_b = np.asarray(p_a_w, float), np.asarray(p_b_w, float)
+    return np.where(np.asarray(side) == "high", p_a - 2.0 * p_b, p_b - 2.0 * p_a)
 
 
 def fit_gamma_small_signal(p_a_w, p_b_w, ratio, l_eff_km: float, *, eta=None, copolar=None,
@@ -394,6 +409,19 @@ def fit_gamma_small_signal(p_a_w, p_b_w, ratio, l_eff_km: float, *, eta=None, co
     left out. eta defaults to 1 (no mismatch: spacing well inside the efficiency bandwidth).
     """
     p_a, p_b, r = (np.asarray(v, float) for v in (p_a_w, p_b_w, ratio))
+    if callable(eta):
+        # eta(gamma): the nonlinear mismatch depends on gamma itself; a few fixed-point passes
+        # (the dependence is weak: gamma P L_eff << 1 inside the small-signal cut).
+        g = None
+        for _ in range(4):
+            res = fit_gamma_small_signal(p_a, p_b, r, l_eff_km,
+                                         eta=eta(1.0 if g is None else g), copolar=copolar,
+                                         max_ratio_db=max_ratio_db)
+            if res is None:
+                return None
+            g = res.value
+        res.extra["nonlinear_mismatch"] = True
+        return res
     eta = np.ones_like(r) if eta is None else np.asarray(eta, float)
     cop = np.ones_like(r) if copolar is None else np.asarray(copolar, float)
     ok = np.isfinite(r) & (r > 0) & (p_a > 0) & (p_b > 0) & (eta > 0) & (cop > 0)
@@ -412,7 +440,8 @@ def fit_gamma_small_signal(p_a_w, p_b_w, ratio, l_eff_km: float, *, eta=None, co
     return FitResult(
         g, g * sd / math.sqrt(n), n, float(np.sqrt(np.mean(resid_db**2))),
         "small-signal FWM: P_F = eta gamma^2 L_eff^2 P_b^2 P_a exp(-alpha L) (Inoue 1992), "
-        "referenced to the output pump tone", "1/(W km)",
+        "referenced to the output pump tone; eta with the SPM/XPM phase mismatch when D is "
+        "known", "1/(W km)",
         {"n_large_signal": int((ok & ~small).sum()), "max_ratio_db": max_ratio_db,
          "loglog_slope_vs_pa_pb2": slope, "efficiency_corrected": bool(np.any(eta != 1.0))},
     )
@@ -490,42 +519,64 @@ def fit_dispersion(p_a_w, p_b_w, spacing_ghz, wavelength_a_nm, side, ratio, *, l
     l_eff = effective_length_km(length_km, loss_db_per_km)
     y = DB * np.log(r / (cop * l_eff**2 * p_a * p_b))  # = 10 log10(eta gamma^2)
     u, v = _mismatch_basis(sp, lam, side, length_km, loss_db_per_km, reference_wavelength_nm)
+    w_nl = nl_power_w(p_a, p_b, side)  # nonlinear mismatch gamma * w_nl (SPM/XPM)
 
     def resid(theta: np.ndarray) -> np.ndarray:
         s = theta[2] if with_slope else 0.0
-        eta = np.asarray(inoue_efficiency(alpha, theta[1] * u + s * v, length_km))
+        eta = np.asarray(inoue_efficiency_nl(alpha, theta[1] * u + s * v, length_km,
+                                             np.exp(theta[0]) * w_nl))
         return 2.0 * DB * theta[0] + DB * np.log(np.maximum(eta, 1e-300)) - y
 
     starts = _dispersion_starts(y, u, lam, lams, alpha, length_km, d_max, with_slope,
                                 reference_wavelength_nm, s_max)
-    lo = [-np.inf, 0.0] + ([-s_max] if with_slope else [])
+    lo = [-np.inf, -d_max] + ([-s_max] if with_slope else [])
     hi = [np.inf, d_max] + ([s_max] if with_slope else [])
-    sol = None
+    # The linear mismatch fixes dbeta^2 only; the small nonlinear term breaks the tie between
+    # D and -D (with the slope's sign), so both branches are fitted and the better one kept.
+    best: dict[bool, object] = {}
     for d0, s0 in starts:
-        eta0 = np.asarray(inoue_efficiency(alpha, d0 * u + s0 * v, length_km))
-        g0 = float(np.mean(y - DB * np.log(np.maximum(eta0, 1e-300)))) / (2.0 * DB)
-        theta0 = [g0, d0] + ([s0] if with_slope else [])
-        try_sol = least_squares(resid, theta0, bounds=(lo, hi), x_scale="jac")
-        if sol is None or try_sol.cost < sol.cost:
-            sol = try_sol
+        for sign in (1.0, -1.0):
+            eta0 = np.asarray(inoue_efficiency(alpha, d0 * u + s0 * v, length_km))
+            g0 = float(np.mean(y - DB * np.log(np.maximum(eta0, 1e-300)))) / (2.0 * DB)
+            theta0 = [g0, sign * d0] + ([sign * s0] if with_slope else [])
+            try_sol = least_squares(resid, theta0, bounds=(lo, hi), x_scale="jac")
+            neg = bool(try_sol.x[1] < 0)
+            if neg not in best or try_sol.cost < best[neg].cost:
+                best[neg] = try_sol
+    sol = min(best.values(), key=lambda x: x.cost)
+    other = [b.cost for k, b in best.items() if k != bool(sol.x[1] < 0)]
     n, p = r.size, len(sol.x)
+    s2 = max(float(np.sum(sol.fun**2)) / max(n - p, 1), 1e-300)
+    dchi2 = 2.0 * (other[0] - sol.cost) / s2 if other else 0.0
+    signed = dchi2 >= SIGN_DCHI2
+    flip = -1.0 if (sol.x[1] < 0 and not signed) else 1.0
     cov = _covariance(sol.jac, sol.fun, n, p)
     rms = float(np.sqrt(np.mean(sol.fun**2)))
     gamma = float(np.exp(sol.x[0]))
     model = ("Inoue efficiency vs spacing: R = eta(dbeta) gamma^2 L_eff^2 P_a P_b, dbeta from "
-             "beta2, beta3 at tone a with D(lambda) = D + S (lambda - lambda_ref)")
+             "beta2, beta3 at tone a with D(lambda) = D + S (lambda - lambda_ref), plus the "
+             "SPM/XPM mismatch gamma (P_probe - 2 P_pump)")
     extra = {"gamma_per_w_per_km": gamma, "gamma_stderr": gamma * math.sqrt(cov[0, 0]),
              "reference_wavelength_nm": reference_wavelength_nm, "n_wavelengths": int(lams.size),
-             "sign": "not determined: the efficiency depends on dbeta^2 only",
+             "sign_determined": bool(signed),
+             "sign_preferred": "negative" if sol.x[1] < 0 else "positive",
+             "delta_chi2_other_sign": float(dchi2),
              "at_bound": bool(np.any(sol.active_mask != 0))}
-    warn = ["the efficiency depends on dbeta^2 only: the sign of D is not measured, |D| is "
-            "reported"] + (["at a bound of the search range"] if extra["at_bound"] else [])
-    out = {"dispersion": FitResult(float(sol.x[1]), math.sqrt(cov[1, 1]), n, rms, model,
-                                   "ps/(nm km)", extra, list(warn), DISPERSION_CONVENTION)}
+    if signed:
+        warn = [f"sign of D set by the SPM/XPM mismatch (the other sign fits worse by "
+                f"delta chi^2 = {dchi2:.0f})"]
+        conv_d, conv_s = SIGNED_D_CONVENTION, SIGNED_S_CONVENTION
+    else:
+        warn = [f"the sign of D is not measured (the other sign fits worse by only delta "
+                f"chi^2 = {dchi2:.1f} < {SIGN_DCHI2:.0f}): |D| is reported"]
+        conv_d, conv_s = DISPERSION_CONVENTION, SLOPE_CONVENTION
+    warn += ["at a bound of the search range"] if extra["at_bound"] else []
+    out = {"dispersion": FitResult(flip * float(sol.x[1]), math.sqrt(cov[1, 1]), n, rms, model,
+                                   "ps/(nm km)", extra, list(warn), conv_d)}
     if with_slope:
-        out["dispersion_slope"] = FitResult(float(sol.x[2]), math.sqrt(cov[2, 2]), n, rms, model,
-                                            "ps/(nm^2 km)", dict(extra), list(warn),
-                                            SLOPE_CONVENTION)
+        out["dispersion_slope"] = FitResult(flip * float(sol.x[2]), math.sqrt(cov[2, 2]), n, rms,
+                                            model, "ps/(nm^2 km)", dict(extra), list(warn),
+                                            conv_s)
     return out
 
 
@@ -763,13 +814,16 @@ def fit_run(points, spool_length_km: float, loss_db_per_km: float, *,
         d_known, d_source = results["dispersion"].value, "fitted"
         if "dispersion_slope" in results:
             s_known = results["dispersion_slope"].value
-    eta_hi = np.ones(n)
+    eta_hi = None
     bessel_ok = co.copy()
     gamma_notes = list(notes)
     if d_known is not None and np.isfinite(spacing).all():
-        eta_hi = _first_sideband_efficiency(spacing, lam, np.full(n, "high"), spool_length_km,
-                                            loss_db_per_km, d_known, s_known,
-                                            reference_wavelength_nm)
+        w_hi = nl_power_w(p_a, p_b, "high")
+
+        def eta_hi(g: float, d=d_known, s=s_known, w=w_hi) -> np.ndarray:
+            return _first_sideband_efficiency(spacing, lam, np.full(n, "high"), spool_length_km,
+                                              loss_db_per_km, d, s, reference_wavelength_nm,
+                                              g * w)
         u, v = _mismatch_basis(spacing, lam, np.full(n, "high"), spool_length_km,
                                loss_db_per_km, reference_wavelength_nm)
         mism = np.abs(d_known * u + s_known * v)
@@ -799,7 +853,8 @@ def fit_run(points, spool_length_km: float, loss_db_per_km: float, *,
     fb.extra["n_dispersion_excluded"] = int((co & ~bessel_ok).sum())
     fb.warnings.extend(gamma_notes)
     results["gamma_bessel"] = fb
-    fs = fit_gamma_small_signal(p_a[co], p_b[co], (hi1 / tb)[co], l_eff, eta=eta_hi[co],
+    eta_co = (lambda g: eta_hi(g)[co]) if eta_hi is not None else None
+    fs = fit_gamma_small_signal(p_a[co], p_b[co], (hi1 / tb)[co], l_eff, eta=eta_co,
                                 copolar=c_eff[co], max_ratio_db=small_signal_max_ratio_db)
     if fs is None:
         fs = refused("small-signal FWM", "1/(W km)",

@@ -140,3 +140,28 @@ def test_phase_matched_sideband_equals_bessel_small_signal() -> None:
     low = small_signal_sideband_w(fibre, p_a, p_b, 1550.0, 50.0, "low")
     assert high == pytest.approx(t * p_b * jv(1, m) ** 2, rel=1e-6)
     assert low == pytest.approx(t * p_a * jv(1, m) ** 2, rel=1e-6)
+
+
+@pytest.mark.parametrize(("alpha", "length", "dbeta", "nl"), [
+    (0.207, 1.0, -0.157, -0.044), (0.046, 10.0, 0.5, 0.01), (0.207, 1.0, 3.0, 0.3),
+    (0.046, 10.0, -20.0, -0.02), (0.0, 2.0, 1.0, 0.1), (0.2, 1.0, 0.0, 0.5)])
+def test_efficiency_with_nonlinear_mismatch_against_quadrature(alpha, length, dbeta, nl):
+    # The defining integral |int_0^L exp(-alpha z + i(dbeta z + nl z_eff(z))) dz|^2 / L_eff^2
+    # evaluated by scipy.integrate.quad (adaptive Gauss-Kronrod), independent of the code's
+    # piecewise sum; and nl = 0 gives Inoue's closed form.
+    from scipy.integrate import quad
+
+    from labrun.physics.fwm import inoue_efficiency_nl
+
+    def z_eff(z):
+        return (1 - np.exp(-alpha * z)) / alpha if alpha > 0 else z
+
+    def f(z):
+        return np.exp(-alpha * z) * np.exp(1j * (dbeta * z + nl * z_eff(z)))
+
+    re = quad(lambda z: f(z).real, 0, length, limit=500)[0]
+    im = quad(lambda z: f(z).imag, 0, length, limit=500)[0]
+    ref = (re * re + im * im) / z_eff(length) ** 2
+    assert inoue_efficiency_nl(alpha, dbeta, length, nl) == pytest.approx(ref, rel=1e-5)
+    assert inoue_efficiency_nl(alpha, dbeta, length, 0.0) == pytest.approx(
+        inoue_efficiency(alpha, dbeta, length), rel=1e-12)
