@@ -97,3 +97,54 @@ def plot_power_slopes(path: str | Path, points, results: dict, *, max_order: int
     ax.legend(fontsize=7)
     fig.tight_layout()
     return _save(fig, path)
+
+
+_COMPARED = (("gamma_per_w_per_km", "gamma (1/(W km))"),
+             ("abs_dispersion_ps_per_nm_km", "|D| (ps/(nm km))"),
+             ("first_sideband_efficiency_db", "1st sideband / pump (dB)"))
+
+
+def plot_comparison(path: str | Path, comparison: dict) -> Path:
+    """Spools side by side: one panel per compared quantity, value with its U95 as error bar."""
+    spools = comparison["spools"]
+    fig, axes = plt.subplots(1, len(_COMPARED), figsize=(4 * len(_COMPARED), 4), dpi=110)
+    for ax, (key, title) in zip(axes, _COMPARED, strict=True):
+        labels, values, errors = [], [], []
+        for sp in spools:
+            entry = sp.get(key)
+            if entry and entry.get("value") is not None:
+                labels.append(sp["spool"])
+                values.append(entry["value"])
+                errors.append(entry.get("u95") or 0.0)
+        ax.bar(range(len(values)), values, yerr=errors, capsize=6, color="tab:blue", alpha=0.7)
+        ax.set_xticks(range(len(values)), labels)
+        ax.set_title(title)
+        ax.grid(axis="y", alpha=0.3)
+    fig.suptitle("spools compared (latest stored fits; error bars: U95)")
+    fig.tight_layout()
+    return _save(fig, path)
+
+
+def plot_history(path: str | Path, history: dict) -> Path:
+    """One spool over time: each headline value per fit with U95, changed fits marked red."""
+    keys = (("gamma_per_w_per_km", "gamma (1/(W km))"),
+            ("abs_dispersion_ps_per_nm_km", "|D| (ps/(nm km))"))
+    fig, axes = plt.subplots(len(keys), 1, figsize=(8, 6), dpi=110, sharex=True)
+    fits = history["history"]
+    for ax, (key, title) in zip(axes, keys, strict=True):
+        xs = [i for i, h in enumerate(fits) if key in h]
+        ys = [fits[i][key]["value"] for i in xs]
+        es = [fits[i][key].get("u95") or 0.0 for i in xs]
+        ax.errorbar(xs, ys, yerr=es, fmt="o-", capsize=5, color="tab:blue")
+        bad = [i for i in xs if key in fits[i]["changed"]]
+        ax.plot(bad, [fits[i][key]["value"] for i in bad], "o", ms=12, mfc="none", color="red",
+                label="changed beyond combined U95")
+        ax.set_ylabel(title)
+        ax.grid(alpha=0.3)
+        if bad:
+            ax.legend(loc="best")
+    axes[-1].set_xticks(range(len(fits)),
+                        [f"fit {h['fit_id']}\n{h['fitted_at'][:10]}" for h in fits])
+    fig.suptitle(f"spool {history['spool']}: stored fits over time")
+    fig.tight_layout()
+    return _save(fig, path)

@@ -1,17 +1,84 @@
-"""Read-side questions asked of the run store: a run's points as a table, a stored trace.
+"""Read-side questions asked of the run store: a run's points as a table, a stored trace, runs.
 
 Sits above the store and below the CLI; returns plain pandas/numpy objects usable in a notebook.
+Tables are built by SQL and pandas (one query per table, a pivot for the line columns), never a
+Python loop over rows.
 """
 
 from __future__ import annotations
 
+import json
+from typing import Any
+
 import numpy as np
 import pandas as pd
-from sqlalchemy import or_, select
+from sqlalchemy import Text, and_, case, func, or_, select, type_coerce
 
 from labrun.errors import InputError
 from labrun.lines import LineId
 from labrun.store import Line, Point, Store, Trace
+from labrun.store.models import Event, Run, Spool
+
+POINT_COLUMNS = ("point_id", "index", "key", "is_reference", "repeat", "floor_dbm")
+
+
+def _frame(store: Store, query: Any) -> pd.DataFrame:
+    """A query's rows as a DataFrame (values as SQLAlchemy's result processing gives them)."""
+    with store.engine.connect() as conn:
+        result = conn.execute(query)
+        columns = list(result.keys())
+        return pd.DataFrame(list(map(tuple, result.fetchall())), columns=columns)
+
+
+def _require_run(store: Store, run_id: int) -> None:
+    """InputError naming RUN_ID when the run does not exist."""
+    with store.engine.connect() as conn:
+        if conn.execute(select(Run.id).where(Run.id == run_id)).first() is None:
+            raise InputError(f"no run {run_id} in this database", field="RUN_ID")
+
+
+_OUTPUT = or_(Trace.kind.is_(None), Trace.kind == "output")  # spool output (not the input tap)
+
+
+def output_lines(store: Store, run_id: int) -> pd.DataFrame:
+    """Every line of a run's spool-output traces: point_id, kind, side, order, powers, flags.
+
+    Input-tap traces (switch path 2, kind "input") have lines of their own and are left out.
+    """
+    return _frame(store, select(
+        Line.point_id, Line.kind, Line.side, Line.order, Line.freq_thz, Line.wavelength_nm,
+        Line.power_dbm, Line.floor_dbm, Line.snr_db, Line.detected, Line.upper_limit_dbm)
+        .join(Point, Point.id == Line.point_id)
+        .outerjoin(Trace, Trace.id == Line.trace_id)
+        .where(Point.run_id == run_id, _OUTPUT)
+        .order_by(Line.id))
+
+
+def line_keys(lines: pd.DataFrame) -> pd.Series:
+    """The flat column name of each line row (LineId.key, computed once per distinct line)."""
+    if lines.empty:
+        return pd.Series([], dtype=object, index=lines.index)
+    triples = list(zip(lines["kind"], lines["side"], lines["order"], strict=True))
+    names = {t: LineId(t[0], t[1], int(t[2])).key for t in set(triples)}
+    return pd.Series([names[t] for t in triples], index=lines.index, dtype=object)
+
+
+def _line_ids(store: Store, run_id: int) -> list[LineId]:
+    """The distinct output lines a run has (a handful: tones and sidebands per order)."""
+    q = (select(Line.kind, Line.side, Line.order).distinct()
+         .join(Point, Point.id == Line.point_id)
+         .outerjoin(Trace, Trace.id == Line.trace_id)
+         .where(Point.run_id == run_id, _OUTPUT))
+    with store.engine.connect() as conn:
+        found = [LineId(k, s, int(o)) for k, s, o in conn.execute(q)]
+    return sorted(found, key=lambda ln: (ln.kind != "tone", ln.side, ln.order))
+
+
+def _json_column(values: pd.Series) -> list[dict]:
+    """Decode a JSON column fetched as text in one parse (PostgreSQL drivers give dicts)."""
+    if values.empty or not isinstance(values.iloc[0], str):
+        return [v or {} for v in values]
+    return [d or {} for d in json.loads("[" + ",".join(values.fillna("null")) + "]")]
 
 
 def run_points(store: Store, run_id: int, *, include_reference: bool = True) -> pd.DataFrame:
@@ -19,33 +86,33 @@ def run_points(store: Store, run_id: int, *, include_reference: bool = True) -> 
 
     Undetected lines are NaN (their upper limits stay in the lines table). Reference points are
     flagged in ``is_reference`` so callers can keep them out of fits. Lines of input-tap traces
-    (switch path 2) are left out: the columns are the spool output.
+    (switch path 2) are left out: the columns are the spool output. One SQL query pivots the
+    lines into columns (conditional aggregation per distinct line).
     """
-    if store.get_run(run_id) is None:
-        raise InputError(f"no run {run_id} in this database", field="RUN_ID")
-    with store.session() as s:
-        points = s.execute(
-            select(Point.id, Point.index, Point.key, Point.is_reference, Point.repeat,
-                   Point.setpoint, Point.floor_dbm).where(Point.run_id == run_id)
-            .order_by(Point.index)).all()
-        # lines of the spool output only: input-tap traces (kind "input") have lines of their own
-        lines = s.execute(
-            select(Line.point_id, Line.kind, Line.side, Line.order, Line.power_dbm, Line.detected)
-            .join(Point, Point.id == Line.point_id)
-            .outerjoin(Trace, Trace.id == Line.trace_id)
-            .where(Point.run_id == run_id, or_(Trace.kind.is_(None), Trace.kind == "output"))
-        ).all()
-    rows: dict[int, dict] = {}
-    for p in points:
-        row = {"point_id": p.id, "index": p.index, "key": p.key, "is_reference": p.is_reference,
-               "repeat": p.repeat, "floor_dbm": p.floor_dbm}
-        row.update(p.setpoint or {})
-        rows[p.id] = row
-    for ln in lines:
-        value = ln.power_dbm if ln.detected and ln.power_dbm is not None else np.nan
-        rows[ln.point_id][LineId(ln.kind, ln.side, ln.order).key] = value
-    table = pd.DataFrame(list(rows.values()))
-    if not include_reference and not table.empty:
+    _require_run(store, run_id)
+    wanted = [func.max(case((and_(Line.kind == ln.kind, Line.side == ln.side,
+                                  Line.order == ln.order, Line.detected.is_(True), _OUTPUT),
+                                 Line.power_dbm))).label(ln.key)
+              for ln in _line_ids(store, run_id)]
+    q = (select(Point.id.label("point_id"), Point.index, Point.key, Point.is_reference,
+                Point.repeat, Point.floor_dbm, type_coerce(Point.setpoint, Text).label("sp"),
+                *wanted)
+         .select_from(Point)
+         .outerjoin(Line, Line.point_id == Point.id)
+         .outerjoin(Trace, Trace.id == Line.trace_id)
+         .where(Point.run_id == run_id)
+         .group_by(Point.id).order_by(Point.index))
+    table = _frame(store, q)
+    if table.empty:
+        return pd.DataFrame(columns=list(POINT_COLUMNS))
+    setpoints = pd.DataFrame(_json_column(table.pop("sp")), index=table.index)
+    setpoints = setpoints.drop(columns=[c for c in setpoints.columns if c in table.columns])
+    lines = table.columns[len(POINT_COLUMNS):]
+    table = pd.concat([table[list(POINT_COLUMNS)], setpoints,
+                       table[lines].astype(float)], axis=1)
+    table["is_reference"] = table["is_reference"].astype(bool)
+    table["floor_dbm"] = table["floor_dbm"].astype(float)
+    if not include_reference:
         table = table[~table["is_reference"]].reset_index(drop=True)
     return table
 
@@ -60,3 +127,29 @@ def point_trace(store: Store, point_id: int, kind: str = "output") -> tuple[np.n
             raise InputError(f"point {point_id} has no {kind} trace", field="point")
         return tr.x(), tr.y(), tr.rbw_nm
 
+
+def list_runs(store: Store, *, spool: str | None = None, since: Any = None,
+              status: str | None = None) -> pd.DataFrame:
+    """Runs (newest first) with spool, plan, status, times and stored point counts."""
+    counts = (select(Point.run_id, func.count(Point.id).label("points_done"))
+              .group_by(Point.run_id).subquery())
+    q = (select(Run.id.label("run_id"), Spool.label.label("spool"), Run.plan_name, Run.status,
+                Run.operator, Run.created_at, Run.started_at, Run.finished_at,
+                Run.points_total, func.coalesce(counts.c.points_done, 0).label("points_done"),
+                Run.reason)
+         .outerjoin(Spool, Spool.id == Run.spool_id)
+         .outerjoin(counts, counts.c.run_id == Run.id)
+         .order_by(Run.id.desc()))
+    if spool is not None:
+        q = q.where(Spool.label == spool)
+    if since is not None:
+        q = q.where(Run.created_at >= since)
+    if status is not None:
+        q = q.where(Run.status == status)
+    return _frame(store, q)
+
+
+def run_events(store: Store, run_id: int) -> pd.DataFrame:
+    """A run's events in time order: at, kind, role, point key, message."""
+    return _frame(store, select(Event.at, Event.kind, Event.role, Event.point_key, Event.message)
+                  .where(Event.run_id == run_id).order_by(Event.id))

@@ -209,3 +209,14 @@ def latest_fits(store: Store) -> dict[str, FitRecord]:
         rows = s.execute(select(Fit, Spool.label).join(Spool, Spool.id == Fit.spool_id)
                          .where(Fit.id.in_(newest)).options(selectinload(Fit.parameters))).all()
         return {label: _record(fit, label) for fit, label in rows}
+
+
+def fits_using_run(store: Store, run_id: int) -> list[FitRecord]:
+    """Stored fits whose runs include ``run_id``, oldest first (run lists are short JSON)."""
+    from sqlalchemy.orm import selectinload
+
+    with store.session() as s:
+        rows = s.execute(select(Fit, Spool.label).join(Spool, Spool.id == Fit.spool_id)
+                         .join(Run, Run.spool_id == Spool.id).where(Run.id == run_id)
+                         .options(selectinload(Fit.parameters)).order_by(Fit.id)).all()
+        return [_record(fit, label) for fit, label in rows if run_id in (fit.run_ids or [])]

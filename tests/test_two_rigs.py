@@ -15,11 +15,14 @@ from labrun.store import Point, Run, open_existing_store
 from labrun.vlab.lab import VirtualLab
 
 N_POINTS = 30
+SPOOLS = {"HNLF-A17": (1.0, 0.9), "SMF-B02": (10.0, 0.2)}  # default-scenario.toml (invented)
 
 
 def _plan(folder, spool: str, name: str):
     text = plan_text(long_powers(N_POINTS)).replace('spool = "HNLF-A17"', f'spool = "{spool}"')
     text = text.replace('name = "engine test sweep"', f'name = "{name}"')
+    length, loss = SPOOLS[spool]
+    text += f"\n[spool]\nlength_km = {length}\nloss_db_per_km = {loss}\n"
     path = folder / f"{name}.toml"
     path.write_text(text, encoding="utf-8")
     return path
@@ -64,3 +67,10 @@ def test_two_rigs_write_one_postgresql_database(tmp_path, pg_url, capsys):
     assert main(["spools", "--db", pg_url, "--json"]) == 0
     seen = {r["spool"]: r["runs"] for r in json.loads(capsys.readouterr().out)["spools"]}
     assert seen == {"HNLF-A17": 1, "SMF-B02": 1}
+    for outcome in outcomes:
+        assert main(["fit", str(outcome["run_id"]), "--db", pg_url]) == 0
+    capsys.readouterr()
+    assert main(["compare", "HNLF-A17", "SMF-B02", "--db", pg_url, "--json"]) == 0
+    compared = json.loads(capsys.readouterr().out)["spools"]
+    runs = {o["run_id"] for o in outcomes}
+    assert {tuple(c["gamma_per_w_per_km"]["runs"])[0] for c in compared} == runs

@@ -23,7 +23,7 @@ from labrun.errors import LabrunError
 # Command groups, each in its own module (labrun/cli/<name>.py). A module that does not exist yet
 # is skipped so the tree can grow one group at a time.
 COMMAND_MODULES = ("demo", "probe", "sim", "analyze", "check", "run", "status", "off", "db",
-                   "fit", "spools", "replay")
+                   "fit", "spools", "replay", "runs", "compare", "export", "report")
 EXIT_BROKEN_PIPE = 128 + int(signal.SIGPIPE)  # 141
 
 

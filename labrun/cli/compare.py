@@ -1,0 +1,98 @@
+"""``labrun compare LABEL [LABEL ...]``: spools side by side, or one spool's history."""
+
+from __future__ import annotations
+
+import argparse
+import json
+from typing import Any
+
+from labrun.store import DEFAULT_DB
+
+ROWS = (("gamma_per_w_per_km", "gamma"), ("abs_dispersion_ps_per_nm_km", "|D|"),
+        ("dispersion_slope_ps_per_nm2_km", "dispersion slope"), ("loss_db_per_km", "loss"),
+        ("effective_length_km", "effective length"),
+        ("first_sideband_efficiency_db", "1st sideband/pump"))
+
+
+def register(subparsers: Any) -> None:
+    """Add the compare command."""
+    p = subparsers.add_parser(
+        "compare", help="spools side by side (or one spool's history) from stored fits",
+        description="Compare spools by their latest stored fits: gamma, |D|, dispersion slope, "
+                    "loss, effective length and the first-sideband efficiency at common "
+                    "conditions, each with its uncertainty and runs. With one label: that "
+                    "spool's fits over time, flagging any change larger than the combined "
+                    "expanded uncertainty.")
+    p.add_argument("labels", metavar="LABEL", nargs="+", help="spool labels")
+    p.add_argument("--db", default=DEFAULT_DB, metavar="URL_OR_PATH",
+                   help=f"SQLAlchemy URL or SQLite file path (default: {DEFAULT_DB} here)")
+    p.add_argument("--json", action="store_true", help="print JSON on stdout")
+    p.add_argument("--plot", metavar="FILE.png", help="also draw the comparison (or history)")
+    p.set_defaults(func=cmd_compare)
+
+
+def _value(entry: dict[str, Any] | None) -> str:
+    if not entry or entry.get("value") is None:
+        return "-"
+    text = f"{entry['value']:.4g}"
+    if entry.get("u95") is not None:
+        text += f" +/- {entry['u95']:.2g}"
+    return f"{text} {entry['unit']}"
+
+
+def _source(sp: dict[str, Any]) -> str:
+    """'12 (3, 4)': the fit a spool's values come from and its runs, or why there is none."""
+    gamma = sp.get("gamma_per_w_per_km")
+    if sp.get("fit_id") is None or gamma is None:
+        return sp.get("note") or "-"
+    return f"{sp['fit_id']} ({', '.join(map(str, gamma['runs']))})"
+
+
+def _side_by_side(rep: dict[str, Any]) -> str:
+    spools = rep["spools"]
+    width = 30
+    out = [f"{'':<18}" + "".join(f"{sp['spool']:<{width}}" for sp in spools)]
+    for key, name in ROWS:
+        out.append(f"{name:<18}" + "".join(f"{_value(sp.get(key)):<{width}}" for sp in spools))
+    out.append(f"{'fit (runs)':<18}" + "".join(f"{_source(sp):<{width}}" for sp in spools))
+    c = rep["common_conditions"]
+    out.append(f"(+/- U95, expanded uncertainty, 95 %; efficiency at {c['spacing_ghz']:g} GHz, "
+               f"{c['power_dbm']:g} dBm per tone, {c['wavelength_nm']:g} nm)")
+    return "\n".join(out)
+
+
+def _history(rep: dict[str, Any]) -> str:
+    out = [f"spool {rep['spool']}: {len(rep['history'])} stored fits"]
+    for h in rep["history"]:
+        flag = ("  CHANGED: " + ", ".join(h["changed"])) if h["changed"] else ""
+        runs = ",".join(map(str, h["runs"]))
+        out.append(f"  fit {h['fit_id']:>4}  {h['fitted_at'][:19]}  runs {runs:<10} "
+                   f"gamma {_value(h.get('gamma_per_w_per_km'))}"
+                   f"  |D| {_value(h.get('abs_dispersion_ps_per_nm_km'))}{flag}")
+    out.append("(+/- U95; CHANGED: differs from the previous fit by more than the combined U95)")
+    return "\n".join(out)
+
+
+def cmd_compare(args: argparse.Namespace) -> int:
+    """labrun compare: side by side for several labels, history for one."""
+    from labrun.compare import compare_spools, spool_history
+    from labrun.store import open_existing_store
+
+    store = open_existing_store(args.db)
+    try:
+        labels = list(dict.fromkeys(args.labels))
+        rep = spool_history(store, labels[0]) if len(labels) == 1 else \
+            compare_spools(store, labels)
+    finally:
+        store.close()
+    if args.plot:
+        from labrun.plots import plot_comparison, plot_history
+
+        (plot_history if len(labels) == 1 else plot_comparison)(args.plot, rep)
+    if args.json:
+        print(json.dumps(rep, indent=2))
+    else:
+        print(_history(rep) if len(labels) == 1 else _side_by_side(rep))
+        if args.plot:
+            print(f"wrote {args.plot}")
+    return 0

@@ -1,0 +1,157 @@
+"""Spools side by side, and one spool's history: values from stored fits, with uncertainties.
+
+``compare_spools`` gives each spool's headline parameters (gamma, |D|, dispersion slope, loss,
+effective length, first-sideband efficiency at common conditions), each as {value, stderr, u95,
+unit, model, runs}. ``spool_history`` lists every stored fit of one spool in time order and flags
+a change between consecutive fits larger than their combined expanded uncertainty
+(sqrt(U1^2 + U2^2), GUM-style comparison of two results). Reads stored fits only: the time does
+not grow with the number of stored lines.
+"""
+
+from __future__ import annotations
+
+import math
+from typing import Any
+
+from labrun.errors import InputError
+from labrun.store import Store
+
+# Common conditions of the first-sideband efficiency (invented, typical of the shipped sweeps).
+COMMON = {"spacing_ghz": 50.0, "power_dbm": 0.0, "wavelength_nm": 1550.0}
+GAMMA = ("gamma_bessel", "gamma_small_signal")  # preferred order
+HISTORY_PARAMS = ("gamma_per_w_per_km", "abs_dispersion_ps_per_nm_km",
+                  "dispersion_slope_ps_per_nm2_km")
+
+
+def _param(record: Any, names: tuple[str, ...]) -> tuple[str, Any] | None:
+    """(name, ParameterRecord) of the first of ``names`` the fit has a value for."""
+    for name in names:
+        p = record.parameters.get(name)
+        if p is not None and p.value is not None:
+            return name, p
+    return None
+
+
+def _entry(value: float | None, unit: str, model: str, runs: list[int], *,
+           stderr: float | None = None, u95: float | None = None) -> dict[str, Any]:
+    """One compared quantity as JSON."""
+    return {"value": value, "stderr": stderr, "u95": u95, "unit": unit, "model": model,
+            "runs": runs}
+
+
+def headline_values(record: Any, spool: Any) -> dict[str, Any]:
+    """Headline quantities of one fit of one spool (spool: its stored row or snapshot dict)."""
+    get = spool.get if isinstance(spool, dict) else lambda k: getattr(spool, k, None)
+    length, loss = get("length_km"), get("loss_db_per_km")
+    runs = list(record.run_ids)
+    out: dict[str, Any] = {}
+    gamma = _param(record, GAMMA)
+    if gamma:
+        name, p = gamma
+        out["gamma_per_w_per_km"] = _entry(p.value, p.unit, p.model, runs, stderr=p.stderr,
+                                           u95=p.u95) | {"parameter": name}
+    disp = _param(record, ("dispersion",))
+    if disp:
+        p = disp[1]
+        out["abs_dispersion_ps_per_nm_km"] = _entry(abs(p.value), p.unit, p.model, runs,
+                                                    stderr=p.stderr, u95=p.u95)
+    slope = _param(record, ("dispersion_slope",))
+    if slope:
+        p = slope[1]
+        out["dispersion_slope_ps_per_nm2_km"] = _entry(p.value, p.unit, p.model, runs,
+                                                       stderr=p.stderr, u95=p.u95)
+    if loss is not None:
+        out["loss_db_per_km"] = _entry(loss, "dB/km", "nominal, from the spool record", [])
+    if length is not None and loss is not None:
+        from labrun.physics.units import effective_length_km
+
+        out["effective_length_km"] = _entry(
+            effective_length_km(length, loss), "km",
+            "L_eff = (1 - exp(-alpha L)) / alpha from the recorded length and loss", [])
+        if gamma:
+            out["first_sideband_efficiency_db"] = _efficiency(gamma[1], disp, slope, length,
+                                                              loss, runs)
+    return out
+
+
+def _efficiency(gamma: Any, disp: Any, slope: Any, length: float, loss: float,
+                runs: list[int]) -> dict[str, Any]:
+    """First upper sideband over the output pump tone at COMMON conditions (Inoue small signal).
+
+    10 log10(eta gamma^2 L_eff^2 P_a P_b); its standard uncertainty from gamma's alone
+    (20 log10(e) u(gamma)/gamma, the power of 2 on gamma); D taken as 0 when not fitted.
+    """
+    from labrun.physics.fibre import Fibre
+    from labrun.physics.fwm import small_signal_sideband_w
+    from labrun.physics.units import dbm_to_w
+
+    fibre = Fibre(length_km=length, loss_db_per_km=loss, gamma_per_w_per_km=gamma.value,
+                  dispersion_ps_per_nm_km=disp[1].value if disp else 0.0,
+                  dispersion_slope_ps_per_nm2_km=slope[1].value if slope else 0.0)
+    p = float(dbm_to_w(COMMON["power_dbm"]))
+    sideband = float(small_signal_sideband_w(fibre, p, p, COMMON["wavelength_nm"],
+                                             COMMON["spacing_ghz"], "high"))
+    pump_out = p * math.exp(-fibre.alpha_per_km * length)
+    rel = 20.0 / math.log(10.0) / gamma.value
+    return _entry(10.0 * math.log10(sideband / pump_out), "dB",
+                  f"Inoue small-signal, {COMMON['spacing_ghz']:g} GHz, "
+                  f"{COMMON['power_dbm']:g} dBm per tone, {COMMON['wavelength_nm']:g} nm, "
+                  f"D = {'fitted' if disp else '0 (not fitted)'}", runs,
+                  stderr=None if gamma.stderr is None else rel * gamma.stderr,
+                  u95=None if gamma.u95 is None else rel * gamma.u95)
+
+
+def compare_spools(store: Store, labels: list[str]) -> dict[str, Any]:
+    """The spools side by side from their latest stored fits (InputError for unknown labels)."""
+    from sqlalchemy import select
+
+    from labrun.spoolfits import latest_fits
+    from labrun.store.models import Spool
+
+    with store.session() as s:
+        rows = {sp.label: sp for sp in s.scalars(select(Spool).where(Spool.label.in_(labels)))}
+    unknown = [lb for lb in labels if lb not in rows]
+    if unknown:
+        raise InputError(f"no spool {unknown[0]!r} in this database", field="LABEL")
+    fits = latest_fits(store)
+    out = []
+    for label in labels:
+        fit = fits.get(label)
+        entry: dict[str, Any] = {"spool": label, "fit_id": fit.fit_id if fit else None,
+                                 "fitted_at": fit.created_at.isoformat() if fit else None}
+        if fit is None:
+            entry["note"] = f"no stored fit: labrun fit RUN_ID ... (runs of {label})"
+        else:
+            entry.update(headline_values(fit, fit.spool_snapshot or rows[label]))
+        out.append(entry)
+    return {"spools": out, "common_conditions": COMMON}
+
+
+def spool_history(store: Store, label: str) -> dict[str, Any]:
+    """Every stored fit of one spool, oldest first, with changes beyond combined U95 flagged."""
+    from labrun.spoolfits import fit_history
+
+    fits = fit_history(store, label)
+    history, previous = [], None
+    for fit in fits:
+        values = headline_values(fit, fit.spool_snapshot or {})
+        entry = {"fit_id": fit.fit_id, "fitted_at": fit.created_at.isoformat(),
+                 "runs": fit.run_ids, **{k: values[k] for k in HISTORY_PARAMS if k in values}}
+        entry["changed"] = _changes(previous, values) if previous is not None else []
+        history.append(entry)
+        previous = values
+    return {"spool": label, "history": history,
+            "changed": any(h["changed"] for h in history)}
+
+
+def changed(a: dict[str, Any], b: dict[str, Any]) -> bool:
+    """True when |b - a| exceeds the combined expanded uncertainty sqrt(Ua^2 + Ub^2)."""
+    if a.get("u95") is None or b.get("u95") is None:
+        return False
+    return abs(b["value"] - a["value"]) > math.hypot(a["u95"], b["u95"])
+
+
+def _changes(before: dict[str, Any], after: dict[str, Any]) -> list[str]:
+    """Names of the history parameters that changed beyond their combined U95."""
+    return [k for k in HISTORY_PARAMS if k in before and k in after
+            and changed(before[k], after[k])]
