@@ -39,10 +39,15 @@ class ParameterRecord:
     extra: dict[str, Any] = field(default_factory=dict)
 
     def to_dict(self) -> dict[str, Any]:
-        """JSON-ready: value, stderr, u95, unit, model, n_points, residual_rms."""
-        return {"value": self.value, "stderr": self.stderr, "u95": self.u95, "unit": self.unit,
-                "model": self.model, "n_points": self.n_points,
-                "residual_rms": self.residual_rms}
+        """JSON-ready: value, stderr, u95, unit, model, n_points, residual_rms (and the fit's
+        warnings and sign conventions when it has them)."""
+        out = {"value": self.value, "stderr": self.stderr, "u95": self.u95, "unit": self.unit,
+               "model": self.model, "n_points": self.n_points,
+               "residual_rms": self.residual_rms}
+        for key in ("warnings", "conventions"):
+            if self.extra.get(key):
+                out[key] = self.extra[key]
+        return out
 
 
 @dataclass
@@ -98,8 +103,13 @@ def from_fit(result: Any) -> ParameterRecord:
         dof = (result.extra or {}).get("dof")
         u95 = (coverage_factor(dof) * stderr if dof and stderr is not None
                else expanded(stderr, int(result.n_points)))
-    extra = {k: v for k, v in (result.extra or {}).items()
+    extra = {k: _finite(v) if isinstance(v, float) else v
+             for k, v in (result.extra or {}).items()
              if isinstance(v, str | int | float | bool) or v is None}
+    if getattr(result, "warnings", None):
+        extra["warnings"] = [str(w) for w in result.warnings]
+    if getattr(result, "conventions", ""):
+        extra["conventions"] = str(result.conventions)
     return ParameterRecord(value=_finite(result.value), stderr=stderr, u95=_finite(u95),
                            unit=result.unit, model=result.model,
                            n_points=int(result.n_points),

@@ -47,6 +47,9 @@ def fit_text(record: Any) -> str:
     out = [f"{where}: spool {record.spool}, runs {runs}"]
     for name, p in record.parameters.items():
         if p.value is None:
+            why = next((w for w in p.extra.get("warnings", []) if w.startswith("refused")), None)
+            if why:
+                out.append(f"  {name:<20} {why}")
             continue
         out.append(f"  {name:<20} {format_value(p.value, p.stderr, p.u95, p.unit):<48} "
                    f"{p.n_points:>4} points  {p.model.split(':')[0]}")
