@@ -51,6 +51,12 @@ class Calibration(_Strict):
     amplifier_loss_db: float = Field(0.0, **LOSS_DB)
     output_to_osa_db: float = Field(0.0, **LOSS_DB)
     input_tap_db: float = Field(0.0, **LOSS_DB)
+    # Standard uncertainties for the fits' budgets (labrun.uncertainty; defaults: common
+    # practice for a power-meter and wavelength-reference calibration, set your own).
+    power_a_u_db: float = Field(0.1, ge=0.0, le=10.0)
+    power_b_u_db: float = Field(0.1, ge=0.0, le=10.0)
+    osa_amplitude_u_db: float = Field(0.05, ge=0.0, le=10.0)
+    wavelength_u_pm: float = Field(5.0, ge=0.0, le=1000.0)
 
 
 class Polarisation(_Strict):

@@ -24,7 +24,7 @@ from __future__ import annotations
 import math
 import re
 from collections.abc import Mapping
-from dataclasses import asdict, dataclass, field
+from dataclasses import asdict, dataclass, field, replace
 
 import numpy as np
 from scipy import stats
@@ -35,6 +35,7 @@ from labrun.physics.fibre import Fibre
 from labrun.physics.fwm import inoue_efficiency, inoue_efficiency_nl, sideband_mismatch_per_km
 from labrun.physics.polarisation import copolar_fraction, paddles_to_stokes
 from labrun.physics.units import alpha_per_km, dbm_to_w, effective_length_km
+from labrun.uncertainty import COMPONENTS, Component, Uncertainties, combine, spacing_shift_ghz
 
 DISPERSION_CONVENTION = (
     "|D| at the reference wavelength, ps/(nm km): four-wave mixing measures dbeta^2, so D and "
@@ -64,14 +65,19 @@ class FitResult:
     extra: dict = field(default_factory=dict)
     warnings: list[str] = field(default_factory=list)  # what the fit lacked or assumed
     conventions: str = ""  # sign and frame conventions of the value, in words
+    u_combined: float = float("nan")  # combined standard uncertainty (GUM), NaN without budget
+    u95: float = float("nan")  # expanded uncertainty, k = 2 (about 95 %)
+    budget: list = field(default_factory=list)  # uncertainty.Component rows as dicts
 
     def to_dict(self) -> dict:
         """JSON-ready dict (NaN becomes None)."""
         d = asdict(self)
-        for k in ("value", "stderr", "residual_rms"):
+        for k in ("value", "stderr", "residual_rms", "u_combined", "u95"):
             d[k] = _finite_or_none(d[k])
         d["extra"] = {k: _finite_or_none(v) if isinstance(v, float) else v
                       for k, v in self.extra.items()}
+        d["budget"] = [{k: _finite_or_none(v) if isinstance(v, float) else v
+                        for k, v in row.items()} for row in self.budget]
         return d
 
 
@@ -735,7 +741,8 @@ def fit_run(points, spool_length_km: float, loss_db_per_km: float, *,
             copolar_min: float = 0.5,
             small_signal_max_ratio_db: float = -20.0,
             bessel_max_mismatch_rad: float = 0.3,
-            polarisation: PolFrame | None = None) -> dict[str, FitResult]:
+            polarisation: PolFrame | None = None,
+            uncertainties: Uncertainties | None = None) -> dict[str, FitResult]:
     """Every fit the points support, keyed by name (gamma_bessel, gamma_small_signal,
     dispersion, dispersion_slope, slope_<side>_<n>, pol_extinction_db, pol_visibility).
 
@@ -758,9 +765,86 @@ def fit_run(points, spool_length_km: float, loss_db_per_km: float, *,
     fit drops points whose phase mismatch |dbeta| L exceeds ``bessel_max_mismatch_rad`` when
     D is known (given, or fitted here from the spacing dependence). What a fit lacked or assumed
     is in its ``warnings``; a fit that could not be made is returned with a NaN value and the
-    reason (``refused``).
+    reason (``refused``). With ``uncertainties`` every result carries its GUM budget
+    (``budget``, ``u_combined``, ``u95``; labrun.uncertainty), at the cost of two refits per
+    input quantity.
     """
     t = points_table(points)
+    kw = {"dispersion_ps_per_nm_km": dispersion_ps_per_nm_km,
+          "slope_ps_per_nm2_km": slope_ps_per_nm2_km,
+          "reference_wavelength_nm": reference_wavelength_nm, "max_order": max_order,
+          "copolar_min": copolar_min, "small_signal_max_ratio_db": small_signal_max_ratio_db,
+          "bessel_max_mismatch_rad": bessel_max_mismatch_rad, "polarisation": polarisation}
+    results = _fit_table(t, spool_length_km, loss_db_per_km, **kw)
+    if uncertainties is None:
+        return results
+    return with_budget(results, t, spool_length_km, loss_db_per_km, kw, uncertainties)
+
+
+def _perturbed(t: dict[str, np.ndarray], length_km: float, loss: float, name: str,
+               u: float, lam_ref: float) -> tuple[dict[str, np.ndarray], float, float]:
+    """The point table and spool with one input quantity moved by u (its unit in COMPONENTS)."""
+    t2 = dict(t)
+    if name == "power_a_db":
+        t2["power_a_dbm"] = t["power_a_dbm"] + u
+    elif name == "power_b_db":
+        t2["power_b_dbm"] = t["power_b_dbm"] + u
+    elif name == "osa_amplitude_db":
+        for k in t:
+            if k.startswith("sideband_"):
+                t2[k] = t[k] + u
+    elif name == "wavelength_pm":
+        lam = t.get("wavelength_a_nm", np.full(t["power_a_dbm"].size, lam_ref))
+        lam = np.where(np.isnan(lam), lam_ref, lam)
+        if "spacing_ghz" in t:
+            t2["spacing_ghz"] = t["spacing_ghz"] + np.sign(u) * spacing_shift_ghz(abs(u), lam)
+        if "wavelength_a_nm" in t:
+            t2["wavelength_a_nm"] = t["wavelength_a_nm"] + u * 1e-3
+    elif name == "length_rel":
+        length_km *= 1.0 + u
+    elif name == "loss_db_per_km":
+        loss = max(loss + u, 0.0)
+    return t2, length_km, loss
+
+
+def with_budget(results: dict[str, FitResult], t: dict[str, np.ndarray], length_km: float,
+                loss: float, kw: dict, unc: Uncertainties) -> dict[str, FitResult]:
+    """Results with their GUM budgets: each input moved by -u and +u, the fit repeated, half
+    the change taken as the contribution (labrun.uncertainty); plus the statistical term."""
+    rows: dict[str, list[Component]] = {k: [] for k, r in results.items()
+                                        if math.isfinite(r.value)}
+    for source, name, unit in COMPONENTS:
+        u = float(getattr(unc, name))
+        moved = []
+        for sign in (1.0, -1.0):
+            t2, l2, a2 = _perturbed(t, length_km, loss, name, sign * u,
+                                    kw["reference_wavelength_nm"])
+            moved.append(_fit_table(t2, l2, a2, **kw) if u > 0 else results)
+        for key in rows:
+            up, down = moved[0].get(key), moved[1].get(key)
+            half = (abs(up.value - down.value) / 2.0 if up is not None and down is not None
+                    else float("nan"))
+            rows[key].append(Component(source, u, unit, half))
+    out = dict(results)
+    for key, comps in rows.items():
+        r = results[key]
+        comps = [Component("statistical (fit)", float("nan"), "", r.stderr), *comps]
+        u_c, u95 = combine(comps)
+        warn = list(r.warnings)
+        if any(not math.isfinite(c.contribution) for c in comps):
+            warn.append("a budget component could not be evaluated (the fit failed with that "
+                        "input moved): the combined uncertainty leaves it out")
+        out[key] = replace(r, u_combined=u_c, u95=u95, budget=[c.to_dict() for c in comps],
+                           warnings=warn)
+    return out
+
+
+def _fit_table(t: dict[str, np.ndarray], spool_length_km: float, loss_db_per_km: float, *,
+               dispersion_ps_per_nm_km: float | None, slope_ps_per_nm2_km: float,
+               reference_wavelength_nm: float, max_order: int, copolar_min: float,
+               small_signal_max_ratio_db: float, bessel_max_mismatch_rad: float,
+               polarisation: PolFrame | None) -> dict[str, FitResult]:
+    """fit_run on a points_table (see there)."""
     if "power_a_dbm" not in t or "power_b_dbm" not in t:
         raise ValueError("points need power_a_dbm and power_b_dbm columns")
     n = t["power_a_dbm"].size

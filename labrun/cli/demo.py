@@ -102,6 +102,7 @@ def _fit_and_plot(store: Any, run_id: int, scenario: Any, bench: Any,
     from labrun.plots import plot_power_slopes, plot_trace
     from labrun.queries import point_trace, run_points
     from labrun.reduce import reduce_trace
+    from labrun.uncertainty import Uncertainties
 
     spool = scenario.spool()
     table = run_points(store, run_id, include_reference=False)
@@ -111,7 +112,8 @@ def _fit_and_plot(store: Any, run_id: int, scenario: Any, bench: Any,
         return report
     fits = fit_run(table, spool.length_km, spool.loss_db_per_km,
                    dispersion_ps_per_nm_km=spool.dispersion_ps_per_nm_km,
-                   polarisation=PolFrame.from_bench(bench.polarisation))
+                   polarisation=PolFrame.from_bench(bench.polarisation),
+                   uncertainties=Uncertainties.from_calibration(bench.calibration))
     report["fits"] = {name: fit.to_dict() for name, fit in fits.items()}
     (out / "fits.json").write_text(json.dumps(report["fits"], indent=2))
     report["files"].append(str(out / "fits.json"))
@@ -138,11 +140,25 @@ def _print_report(outcome: Any, report: dict[str, Any], db: str) -> None:
             print(f"  {name:<22} not fitted")
         else:
             err = f" +/- {fit['stderr']:.3g}" if fit["stderr"] is not None else ""
-            print(f"  {name:<22} {fit['value']:.4g}{err} {fit['unit']}  "
+            u95 = f", U(k=2) {fit['u95']:.3g}" if fit.get("u95") is not None else ""
+            print(f"  {name:<22} {fit['value']:.4g}{err} {fit['unit']}{u95}  "
                   f"({fit['n_points']} points, {fit['model'].split(':')[0]})")
+            if name.startswith(("gamma", "dispersion")) and fit.get("budget"):
+                print(_budget_text(name, fit))
         for note in fit.get("warnings", []):
             print(f"    ! {note}")
-    print("  (+/- is the statistical standard error of the fit; a launched-power calibration error "
-          "of 0.1 dB moves gamma by about 2 %, and the virtual lab adds such offsets on purpose)")
+    print("  (+/- is the statistical standard error of the fit; U is the expanded uncertainty of "
+          "the GUM budget above, k = 2, from the bench's calibration uncertainties)")
     for path in report["files"]:
         print(f"  wrote {path}")
+
+
+def _budget_text(name: str, fit: dict[str, Any]) -> str:
+    """The GUM budget table of one stored fit dict, indented under its line."""
+    from labrun.uncertainty import Component, budget_table
+
+    comps = [Component(c["source"], c["u_input"] if c["u_input"] is not None else float("nan"),
+                       c["unit"], c["contribution"] if c["contribution"] is not None
+                       else float("nan")) for c in fit["budget"]]
+    text = budget_table(name, fit["value"], fit["unit"], comps, fit["u_combined"], fit["u95"])
+    return "\n".join("    " + line for line in text.splitlines()[1:])

@@ -223,6 +223,20 @@ class VirtualLab:
         """role -> VISA resource string (after start)."""
         return {role: server.resource for role, server in self.servers.items()}
 
+    def _u_power_db(self) -> float:
+        """Launched-power standard uncertainty the virtual lab really has (its fixed offset)."""
+        real = self.scenario.realism
+        return float(real.laser_power_offset_db) if real.enabled else 0.0
+
+    def _u_osa_db(self) -> float:
+        """OSA relative amplitude: the virtual OSA has no flatness error."""
+        return 0.0
+
+    def _u_wavelength_pm(self) -> float:
+        """Laser wavelength standard uncertainty the virtual lab really has."""
+        real = self.scenario.realism
+        return float(real.laser_wavelength_offset_pm) if real.enabled else 0.0
+
     def bench_text(self) -> str:
         """Bench TOML for this lab (format: DEVELOPERS.md "Bench files")."""
         if not self.servers:
@@ -245,6 +259,11 @@ class VirtualLab:
             f"amplifier_loss_db = {layout.amplifier_loss_db!r}",
             f"output_to_osa_db = {layout.output_to_osa_db!r}",
             f"input_tap_db = {layout.input_tap_db!r}",
+            "# calibration uncertainties: the scenario's own realism (fixed per-laser offsets)",
+            f"power_a_u_db = {self._u_power_db()!r}",
+            f"power_b_u_db = {self._u_power_db()!r}",
+            f"osa_amplitude_u_db = {self._u_osa_db()!r}",
+            f"wavelength_u_pm = {self._u_wavelength_pm()!r}",
             "",
             "[polarisation]  # the virtual controller: tone a along +s1, paddles fed with +s1",
             'controller = "quarter-half-quarter"',
