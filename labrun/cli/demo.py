@@ -86,13 +86,23 @@ def cmd_demo(args: argparse.Namespace) -> int:
                                unattended=True, ack_safety=True,
                                progress=not (args.no_progress or args.json))
         report = _fit_and_plot(store, outcome.run_id, scenario, bench, out)
+        page = _write_report(store, outcome.run_id, out)
+        report["report"] = str(page)
     finally:
         store.close()
     if args.json:
         print(json.dumps({"run": outcome.to_dict(), **report}, indent=2))
     else:
         _print_report(outcome, report, args.db)
+        print(f"report: {page}")
     return outcome.exit_code
+
+
+def _write_report(store: Any, run_id: int, out: Path) -> Path:
+    """The run's HTML page (``labrun report``) in the output folder."""
+    from labrun.report import write_report
+
+    return write_report(store, out / "report.html", run_id=run_id).resolve()
 
 
 def _fit_and_plot(store: Any, run_id: int, scenario: Any, bench: Any,
