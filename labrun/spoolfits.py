@@ -98,7 +98,7 @@ def _finite(v: Any) -> float | None:
 def from_fit(result: Any) -> ParameterRecord:
     """A ParameterRecord from a ``labrun.fits.FitResult`` (u95 from the fit when it has one)."""
     stderr = _finite(result.stderr)
-    u95 = getattr(result, "u95", None)
+    u95 = _finite(getattr(result, "u95", None))  # a GUM budget's U (k = 2) when it has one
     if u95 is None:
         dof = (result.extra or {}).get("dof")
         u95 = (coverage_factor(dof) * stderr if dof and stderr is not None
@@ -110,6 +110,10 @@ def from_fit(result: Any) -> ParameterRecord:
         extra["warnings"] = [str(w) for w in result.warnings]
     if getattr(result, "conventions", ""):
         extra["conventions"] = str(result.conventions)
+    if _finite(getattr(result, "u_combined", None)) is not None:
+        extra["u_combined"] = _finite(result.u_combined)
+        extra["budget"] = [{k: _finite(v) if isinstance(v, float) else v for k, v in row.items()}
+                           for row in getattr(result, "budget", [])]
     return ParameterRecord(value=_finite(result.value), stderr=stderr, u95=_finite(u95),
                            unit=result.unit, model=result.model,
                            n_points=int(result.n_points),
