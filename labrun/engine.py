@@ -37,6 +37,14 @@ from labrun.physics.units import nm_to_thz
 from labrun.plan import Plan, PointSpec, StopWatch
 from labrun.preload import preload
 from labrun.roles import SOURCE_ROLES
+from labrun.runstore import (
+    RunStore,
+    StoreFault,
+    apply_fallback,
+    as_run_store,
+    describe,
+    write_fallback,
+)
 from labrun.safe_off import darken
 from labrun.scpi import NoAnswerError
 from labrun.settle import group_settles, setting_s, wait_s
@@ -236,6 +244,8 @@ class Runner:
         # watchdog of the current attempt, and what every point's settling may take.
         self.dark_since: float | None = None
         self.may_emit = True  # something may have been switched on since the last go_dark
+        self.committed = 0  # points this process stored
+        self.unrecorded: list[tuple[str, str]] = []  # events the database refused meanwhile
         self.watchdog: PointWatchdog | None = None
         self.profile_settle_s = sum(op.settle_s for spec in bench.instruments.values()
                                     for op in spec.profile.operations.values())
@@ -511,6 +521,10 @@ class Runner:
         case and the settings of other plans assume no gain after the combiner.
         """
         self.guard.check()  # the acknowledgement holds only while nobody asked the run to stop
+        while self.unrecorded:  # the database works again: what it refused goes in first
+            kind, message = self.unrecorded[0]
+            self.store.add_event(self.run_id, kind, message, point_key=self.current_key)
+            self.unrecorded.pop(0)
         self.may_emit = True
         if self.dark_since is not None:
             self.store.add_event(self.run_id, "relight", "switching on again after a fault "
@@ -633,6 +647,18 @@ class Runner:
         where the run loop holds a session (it is told by ``check_progress``)."""
         darken(self.bench, self.instruments)
 
+    def store_dark(self, exc: BaseException) -> None:
+        """RunStore hook, at a database fault: darken before the brief retries (the event is
+        written once the database takes it again, or goes to the fallback record)."""
+        problems = darken(self.bench, self.instruments)
+        self.may_emit = self.emitting = False
+        self.applied.clear()
+        self.trace_x = None
+        if self.dark_since is None:
+            self.dark_since = time.monotonic()
+        note = "" if not problems else "; NOT CONFIRMED OFF: " + "; ".join(problems)
+        self.unrecorded.append(("dark", f"sources off after a {describe(exc)}{note}"))
+
     def check_progress(self) -> None:
         """In the run loop: PointOverrun once the current attempt's watchdog fired."""
         dog = self.watchdog
@@ -723,18 +749,26 @@ class Runner:
         """Point, traces and lines in one transaction (input-trace lines link to that trace)."""
         lines = [_line_dict(ml, trace=i) for i, tr in enumerate(traces)
                  for ml in tr.reduction.lines]
+        from sqlalchemy.exc import IntegrityError
+
         applied = {f"{r}.{m}": v for (r, m), v in self.applied.items()}
-        self.store.add_point(
-            self.run_id, key=spec.key, index=spec.index, setpoint=_jsonable(spec.setpoint),
-            repeat=spec.repeat, is_reference=spec.is_reference,
-            traces=[TraceData(tr.x, tr.y, kind=tr.kind, rbw_nm=self.rbw_nm,
-                              settings=self.trace_meta if tr.kind == "output"
-                              else self.input_meta)
-                    for tr in traces],
-            lines=lines, applied=_jsonable(applied),
-            spacing_ghz=red.spacing_ghz, floor_dbm=red.floor_dbm, flags=list(red.flags),
-            attempts=attempts, started_at=started,
-        )
+        try:
+            self.store.add_point(
+                self.run_id, key=spec.key, index=spec.index, setpoint=_jsonable(spec.setpoint),
+                repeat=spec.repeat, is_reference=spec.is_reference,
+                traces=[TraceData(tr.x, tr.y, kind=tr.kind, rbw_nm=self.rbw_nm,
+                                  settings=self.trace_meta if tr.kind == "output"
+                                  else self.input_meta)
+                        for tr in traces],
+                lines=lines, applied=_jsonable(applied),
+                spacing_ghz=red.spacing_ghz, floor_dbm=red.floor_dbm, flags=list(red.flags),
+                attempts=attempts, started_at=started,
+            )
+        except IntegrityError:
+            # a retry after a connection lost just after the commit: stored once, keep going
+            if spec.key not in self.store.completed_keys(self.run_id):
+                raise
+        self.committed += 1
         self.last_beat = time.monotonic()
 
     def flush_traffic_log(self) -> None:
@@ -879,6 +913,7 @@ def run_plan(plan: Plan, bench: Any, store: Store, *, operator: str | None = Non
                      ack_safety=ack_safety, confirm=confirm)
     if echo is not None and unattended:
         print(text, file=echo)
+    store = as_run_store(store)  # a database fault from here on is one line, not a traceback
     specs = list(plan.points())
     run_id = store.create_run(**_run_fields(plan, bench, operator=operator,
                                             unattended=unattended, total=len(specs)),
@@ -949,8 +984,11 @@ def _execute(plan: Plan, bench: Any, store: Store, run_id: int, specs: Sequence[
     preload("labrun.reduce")  # scipy: imported while the bench opens and the first point settles
     total = int(store.get_run(run_id).points_total)
     guard = SafeOffGuard(bench)
+    store = as_run_store(store)  # a database fault: darken, retry briefly, then StoreFault
     runner = Runner(plan, bench, store, run_id, guard, policy=policy or RetryPolicy(),
                     progress=progress, traffic_log=traffic_log)
+    store.on_fault = runner.store_dark
+    start_done = done
     guard.install()
     caught: BaseException | None = None
     finished = False
@@ -983,23 +1021,40 @@ def _execute(plan: Plan, bench: Any, store: Store, run_id: int, specs: Sequence[
         problems = guard.shutdown()
         runner.close()
         runner.flush_traffic_log()
-        done = store.count_points(run_id)
-        store.add_event(run_id, "safe_off", "all sources off, attenuators at maximum"
-                        if not problems else "NOT CONFIRMED OFF: " + "; ".join(problems),
-                        data={"problems": problems})
+        done = start_done + runner.committed
+        events = runner.unrecorded + [("safe_off", "all sources off, attenuators at maximum"
+                                       if not problems else
+                                       "NOT CONFIRMED OFF: " + "; ".join(problems))]
         if status == "completed" and done < total:
             status, reason = "failed", f"only {done} of {total} points stored"
         if signum is None and guard.signum is not None:
-            store.add_event(run_id, "signal", f"{_signal.Signals(guard.signum).name} received "
-                            f"while the run was finishing ({status}); recorded, not acted on")
-        store.add_event(run_id, status, reason or status)
-        store.set_status(run_id, status, reason, finished=True)
+            events.append(("signal", f"{_signal.Signals(guard.signum).name} received while the "
+                           f"run was finishing ({status}); recorded, not acted on"))
+        events.append((status, reason or status))
+        reason = _record_end(store, run_id, status, reason, events, problems)
     finally:
         guard.uninstall()
     if error is not None and not isinstance(error, InstrumentError | SafetyError):
         raise error
     return RunOutcome(run_id=run_id, status=status, points_done=done, points_total=total,
                       reason=reason, db=store.url, safe_off_problems=problems, signal=signum)
+
+
+def _record_end(store: RunStore, run_id: int, status: str, reason: str | None,
+                events: list[tuple[str, str]], problems: list[str]) -> str | None:
+    """The run's last events and final status; when the database refuses them, a fallback
+    record beside it (labrun/runstore.py) and the reason says where. The reason kept."""
+    try:
+        for kind, message in events:
+            store.add_event(run_id, kind, message,
+                            data={"problems": problems} if kind == "safe_off" else None)
+        store.set_status(run_id, status, reason, finished=True)
+        return reason
+    except StoreFault as exc:
+        path = write_fallback(store.url, {"run_id": run_id, "status": status, "reason": reason,
+                                          "events": events, "store_faults": store.faults})
+        where = f"kept in {path}" if path else "NOT KEPT anywhere (see the log)"
+        return f"{reason or status}; the database refused the final status ({exc}), {where}"
 
 
 def _classify(exc: BaseException | None) -> tuple[str, str | None, BaseException | None,
@@ -1014,7 +1069,7 @@ def _classify(exc: BaseException | None) -> tuple[str, str | None, BaseException
         return "interrupted", str(exc), None, exc.signum
     if isinstance(exc, KeyboardInterrupt):
         return "interrupted", "interrupted (KeyboardInterrupt)", None, SIGINT
-    if isinstance(exc, RunAborted):
+    if isinstance(exc, RunAborted | StoreFault):
         return "aborted", str(exc), None, None
     if isinstance(exc, InstrumentError | SafetyError):
         return "aborted", str(exc), exc, None
@@ -1076,6 +1131,8 @@ def resume_run(run_id: int, store: Store, *, bench: Any = None, force: bool = Fa
     """
     from labrun.bench import load_bench
 
+    store = as_run_store(store)
+    apply_fallback(store)  # a final status the database refused last time goes in first
     run = store.get_run(run_id)
     if run is None:
         raise InputError(f"no run {run_id} in {store.url}", field="RUN_ID")

@@ -38,12 +38,61 @@ class FaultRow:
     what: str
     inject: Callable[[VirtualLab, Any], None]
     lost_role: str | None = None  # unreachable after the fault: its own state is not expected
+    undo: Callable[[Any], None] | None = None  # after the run: give the store back
 
 
 def _recentre_osa(lab: VirtualLab, _store: Any) -> None:
     """Someone re-centres the OSA from its front panel, 20 nm away from the tones."""
     with lab.state.lock:
         lab.state.osa.center_nm += 20.0
+
+
+_HELD: dict[int, Any] = {}  # id(store) -> what holds the fault (a lock, a listener)
+
+
+def _db_path(store: Any) -> str:
+    """The SQLite file of a store."""
+    from sqlalchemy.engine import make_url
+
+    return str(make_url(store.url).database)
+
+
+def _lock_db(_lab: VirtualLab, store: Any) -> None:
+    """Another process's writer takes the database and keeps it (an exclusive transaction)."""
+    import sqlite3
+
+    con = sqlite3.connect(_db_path(store), isolation_level=None, check_same_thread=False)
+    con.execute("BEGIN EXCLUSIVE")
+    _HELD[id(store)] = con
+
+
+def _unlock_db(store: Any) -> None:
+    con = _HELD.pop(id(store), None)
+    if con is not None:
+        con.execute("ROLLBACK")
+        con.close()
+
+
+def _fill_disk(_lab: VirtualLab, store: Any) -> None:
+    """The disk fills up: every write fails as SQLite reports it (SQLITE_FULL's message)."""
+    import sqlite3
+
+    from sqlalchemy import event
+
+    def full(_conn: Any, _cursor: Any, statement: str, *_args: Any) -> None:
+        if statement.lstrip().upper().startswith(("INSERT", "UPDATE", "DELETE")):
+            raise sqlite3.OperationalError("database or disk is full")
+
+    event.listen(store.engine, "before_cursor_execute", full)
+    _HELD[id(store)] = full
+
+
+def _free_disk(store: Any) -> None:
+    from sqlalchemy import event
+
+    full = _HELD.pop(id(store), None)
+    if full is not None:
+        event.remove(store.engine, "before_cursor_execute", full)
 
 
 ROWS: dict[str, FaultRow] = {row.name: row for row in (
@@ -56,6 +105,8 @@ ROWS: dict[str, FaultRow] = {row.name: row for row in (
              lambda lab, _s: lab.hang("laser_b"), "laser_b"),
     FaultRow("laser_b-gone", "laser_b refuses connections",
              lambda lab, _s: lab.refuse("laser_b"), "laser_b"),
+    FaultRow("db-locked", "database locked by another writer", _lock_db, undo=_unlock_db),
+    FaultRow("db-full", "database disk full", _fill_disk, undo=_free_disk),
 )}
 
 
@@ -70,6 +121,7 @@ class Measured:
     status: str
     reason: str | None
     stored_status: str | None
+    fallback_status: str | None  # the final status waiting in the fallback record, if any
     timeout_s: float          # the faulted instrument's exchange timeout
     give_up_s: float          # the retry policy's stated total time
     points_done: int
@@ -131,13 +183,30 @@ def _last(watch: StateWatch, roles: list[str]) -> float | None:
 
 def measure(row: FaultRow, folder: Path, *, timeouts_ms: dict[str, int] | None = None,
             policy: Any = None, n_points: int = 400, after_points: int = 3,
-            store_url: str | None = None) -> Measured:
+            busy_timeout_ms: int | None = None) -> Measured:
     """Run ``n_points`` on a fresh virtual lab, force ``row`` once ``after_points`` are stored,
-    and time the way out from the fault against the lab's own state."""
+    and time the way out from the fault against the lab's own state. ``busy_timeout_ms``:
+    how long SQLite waits for a lock (default: the store's own)."""
+    import labrun.store.db as store_db
+
+    saved = store_db.BUSY_TIMEOUT_MS
+    if busy_timeout_ms is not None:
+        store_db.BUSY_TIMEOUT_MS = busy_timeout_ms
+    try:
+        return _measure(row, folder, timeouts_ms=timeouts_ms, policy=policy,
+                        n_points=n_points, after_points=after_points)
+    finally:
+        store_db.BUSY_TIMEOUT_MS = saved
+
+
+def _measure(row: FaultRow, folder: Path, *, timeouts_ms: dict[str, int] | None,
+             policy: Any, n_points: int, after_points: int) -> Measured:
+    """``measure`` with the store's busy timeout already set."""
     from labrun.bench import load_bench
     from labrun.engine import run_plan
     from labrun.faults import RetryPolicy, attempt_bound_s, point_bound_s
     from labrun.plan import load_plan
+    from labrun.runstore import read_fallback
     from labrun.store import open_store
 
     folder.mkdir(parents=True, exist_ok=True)
@@ -147,7 +216,7 @@ def measure(row: FaultRow, folder: Path, *, timeouts_ms: dict[str, int] | None =
         plan_path = folder / "plan.toml"
         plan_path.write_text(plan_text(n_points), encoding="utf-8")
         plan = load_plan(plan_path)
-        store = open_store(store_url or folder / "runs.db")
+        store = open_store(folder / "runs.db")
         sources = [r for r in SOURCES if r in lab.servers and r != row.lost_role]
         shutters = [r for r in ATTENUATORS if r in lab.servers and r != row.lost_role]
         watch = StateWatch({r: (lambda r=r: lab.role_dark(r)) for r in sources + shutters},
@@ -174,9 +243,15 @@ def measure(row: FaultRow, folder: Path, *, timeouts_ms: dict[str, int] | None =
             thread.join()
             time.sleep(0.02)  # one more poll of the lab's state
             watch.stop()
+            if row.undo is not None:
+                row.undo(store)
         t0 = fault_at.get("t", fault_at["end"])
-        lost = row.lost_role or "osa"
-        timeout_s = bench.instruments[lost].profile.timeout_ms / 1000.0
+        if row.name.startswith("db-"):
+            import labrun.store.db as store_db
+
+            timeout_s = store_db.BUSY_TIMEOUT_MS / 1000.0
+        else:
+            timeout_s = bench.instruments[row.lost_role or "osa"].profile.timeout_ms / 1000.0
         point_s = point_bound_s(sum(op.settle_s for spec in bench.instruments.values()
                                     for op in spec.profile.operations.values())
                                 * bench.settle_scale, 1, bench)
@@ -185,7 +260,10 @@ def measure(row: FaultRow, folder: Path, *, timeouts_ms: dict[str, int] | None =
             fault=row.name, sources_off_s=_last(watch, sources),
             shutters_closed_s=_last(watch, shutters), run_end_s=fault_at["end"] - t0,
             status=out.status, reason=out.reason,
-            stored_status=None if run is None else run.status, timeout_s=timeout_s,
+            stored_status=None if run is None else run.status,
+            fallback_status=read_fallback(store.url).get(out.run_id, {}).get("status"),
+            timeout_s=timeout_s,
             give_up_s=policy.give_up_s(attempt_bound_s(point_s, bench), bench.settle_scale),
             points_done=out.points_done,
-            extra={kind: len(store.events(out.run_id, [kind])) for kind in ("dark", "relight")})
+            extra={kind: len(store.events(out.run_id, [kind])) for kind in ("dark", "relight")}
+            | {"reason_stored": None if run is None else run.reason})

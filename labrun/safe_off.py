@@ -19,6 +19,7 @@ from collections.abc import Callable, Mapping
 from typing import Any, TypeVar
 
 log = logging.getLogger(__name__)
+log.addHandler(logging.NullHandler())  # library: shown only when the application configures logging
 
 # Roles that carry light to the spool, switched off (or closed) on every exit; strongest first.
 OFF_ROLES = ("amplifier", "laser_a", "laser_b", "attenuator_a", "attenuator_b")

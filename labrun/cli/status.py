@@ -78,6 +78,22 @@ def status_report(summary: dict[str, Any], *, now: Any = None) -> dict[str, Any]
     }
 
 
+def with_fallback(rep: dict[str, Any], url: str) -> dict[str, Any]:
+    """The report with the final status the database refused (labrun/runstore.py: the record
+    kept beside it) in place of a ``running`` that no process is behind any more."""
+    from labrun.runstore import fallback_path, read_fallback
+    from labrun.store import FINISHED_STATUSES
+
+    record = read_fallback(url).get(int(rep["run_id"]))
+    if record is None or rep["status"] in FINISHED_STATUSES:
+        return rep
+    where = fallback_path(url)
+    return {**rep, "status": record["status"], "stale": False, "eta_s": None,
+            "reason": f"{record.get('reason') or record['status']} (kept in {where}: the "
+                      "database refused it; 'labrun resume' writes it in)",
+            "fallback": str(where)}
+
+
 def _fmt_s(seconds: float | None) -> str:
     """'1 h 02 min', '3 min 05 s', '12 s'."""
     if seconds is None:
@@ -147,7 +163,7 @@ def cmd_status(args: argparse.Namespace) -> int:
         summary = store.summary(run_id)
         if summary is None:
             raise InputError(f"no run {run_id}", file=str(args.db), field="RUN_ID")
-        rep = status_report(summary)
+        rep = with_fallback(status_report(summary), store.url)
     finally:
         store.close()
     if args.json:

@@ -1,0 +1,163 @@
+"""Owns the run's writes when the database fails: brief retries, the bench darkened at the first
+failure, and a fallback record next to the database for what could not be written.
+
+``RunStore`` wraps a ``Store`` for the engine. A database error that may pass (SQLAlchemy's
+``OperationalError`` or ``InterfaceError``: disk full, locked by another writer, a lost server
+connection; any backend) calls ``on_fault`` once (the engine darkens every source), is retried
+``tries`` times in all ``pause_s`` apart, and then becomes ``StoreFault``: the run stops, one
+line, no traceback. When even the final status cannot be written, ``write_fallback`` appends it
+to ``<database file>.unwritten.jsonl`` (for a server database: ``labrun-unwritten.jsonl`` in
+the current folder); ``labrun status`` shows it and ``labrun resume`` writes it into the
+database before anything else, so no run is left ``running`` without a reason.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import json
+import logging
+import os
+import time
+from collections.abc import Callable
+from datetime import UTC, datetime
+from pathlib import Path
+from typing import Any
+
+from labrun.errors import LabrunError
+
+log = logging.getLogger(__name__)
+log.addHandler(logging.NullHandler())  # library: shown only when the application configures logging
+
+TRIES = 2       # one retry: a locked database already waited its busy timeout once
+PAUSE_S = 0.5   # before the retry
+FALLBACK_SUFFIX = ".unwritten.jsonl"
+SERVER_FALLBACK = "labrun-unwritten.jsonl"
+
+
+class StoreFault(LabrunError):
+    """The run store failed beyond its brief retries (exit 1, one line)."""
+
+
+def is_store_fault(exc: BaseException) -> bool:
+    """True for a database error that says nothing about the data (a full disk, a lock, a lost
+    connection) rather than a bug or a constraint: those are retried briefly, then end the run."""
+    from sqlalchemy.exc import DBAPIError, InterfaceError, OperationalError
+
+    if isinstance(exc, OperationalError | InterfaceError):
+        return True
+    return isinstance(exc, DBAPIError) and bool(exc.connection_invalidated)
+
+
+def describe(exc: BaseException) -> str:
+    """'database error: <the driver's first line>' for a store fault."""
+    orig = getattr(exc, "orig", None) or exc
+    first = (str(orig).strip().splitlines() or [type(orig).__name__])[0]
+    return f"database error ({type(orig).__name__}: {first[:160]})"
+
+
+class RunStore:
+    """A Store whose calls retry store faults briefly, then raise StoreFault."""
+
+    def __init__(self, store: Any, *, on_fault: Callable[[BaseException], None] | None = None,
+                 tries: int = TRIES, pause_s: float = PAUSE_S):
+        self.store = store
+        self.on_fault = on_fault
+        self.tries = max(1, tries)
+        self.pause_s = pause_s
+        self.faults: list[str] = []  # one line per failed call, for the fallback record
+
+    def __getattr__(self, name: str) -> Any:
+        attr = getattr(self.store, name)
+        if not callable(attr):
+            return attr
+
+        def call(*args: Any, **kwargs: Any) -> Any:
+            return self.call(name, attr, args, kwargs)
+
+        return call
+
+    def call(self, name: str, fn: Callable[..., Any], args: tuple[Any, ...],
+             kwargs: dict[str, Any]) -> Any:
+        """``fn(*args, **kwargs)`` with brief retries of store faults."""
+        for attempt in range(1, self.tries + 1):
+            try:
+                return fn(*args, **kwargs)
+            except Exception as exc:
+                if not is_store_fault(exc):
+                    raise
+                line = describe(exc)
+                self.faults.append(f"{name}: {line}")
+                log.warning("store %s failed (try %d of %d): %s", name, attempt, self.tries, line)
+                if attempt == 1 and self.on_fault is not None:
+                    try:
+                        self.on_fault(exc)  # the engine darkens the bench before retrying
+                    except Exception as hook_error:  # noqa: BLE001 - the fault still counts
+                        log.error("store fault hook failed: %s", hook_error)
+                if attempt == self.tries:
+                    raise StoreFault(line) from None
+                time.sleep(self.pause_s)
+        raise AssertionError("unreachable")
+
+
+def as_run_store(store: Any) -> RunStore:
+    """``store`` wrapped once in a RunStore."""
+    return store if isinstance(store, RunStore) else RunStore(store)
+
+
+def fallback_path(url: str) -> Path:
+    """Where the record of what could not be written goes: beside a SQLite file, else here."""
+    from sqlalchemy.engine import make_url
+
+    with contextlib.suppress(Exception):
+        parsed = make_url(url)
+        if parsed.get_backend_name() == "sqlite" and parsed.database \
+                and parsed.database != ":memory:":
+            db = Path(parsed.database)
+            return db.with_name(db.name + FALLBACK_SUFFIX)
+    return Path.cwd() / SERVER_FALLBACK
+
+
+def write_fallback(url: str, record: dict[str, Any]) -> Path | None:
+    """Append one run's final record (status, reason, events) as a JSON line; its path, or None
+    when even that failed (the message then goes to the log)."""
+    path = fallback_path(url)
+    line = json.dumps({**record, "store": url,
+                       "written_at": datetime.now(UTC).isoformat()}, default=str)
+    try:
+        with open(path, "a", encoding="utf-8") as fh:
+            fh.write(line + "\n")
+            fh.flush()
+            os.fsync(fh.fileno())
+    except OSError as exc:
+        log.error("cannot write the fallback record %s (%s): %s", path, exc, line)
+        return None
+    return path
+
+
+def read_fallback(url: str) -> dict[int, dict[str, Any]]:
+    """The records waiting in the fallback file, the latest per run id."""
+    path = fallback_path(url)
+    out: dict[int, dict[str, Any]] = {}
+    with contextlib.suppress(OSError):
+        for text in path.read_text(encoding="utf-8").splitlines():
+            with contextlib.suppress(ValueError, TypeError, KeyError):
+                record = json.loads(text)
+                out[int(record["run_id"])] = record
+    return out
+
+
+def apply_fallback(store: Any) -> list[int]:
+    """Write the waiting records into the database (events, then status and reason) and drop
+    the file once all are in; the run ids written. A store fault leaves the file as it is."""
+    records = read_fallback(store.url)
+    if not records:
+        return []
+    for run_id, record in records.items():
+        if store.get_run(run_id) is None:
+            continue
+        for kind, message in record.get("events", []):
+            store.add_event(run_id, kind, message, data={"from_fallback": True})
+        store.set_status(run_id, record["status"], record.get("reason"), finished=True)
+    with contextlib.suppress(OSError):
+        fallback_path(store.url).unlink()
+    return sorted(records)
