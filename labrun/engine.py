@@ -1027,11 +1027,15 @@ def _execute(plan: Plan, bench: Any, store: Store, run_id: int, specs: Sequence[
                                        "NOT CONFIRMED OFF: " + "; ".join(problems))]
         if status == "completed" and done < total:
             status, reason = "failed", f"only {done} of {total} points stored"
-        if signum is None and guard.signum is not None:
-            events.append(("signal", f"{_signal.Signals(guard.signum).name} received while the "
-                           f"run was finishing ({status}); recorded, not acted on"))
-        events.append((status, reason or status))
-        reason = _record_end(store, run_id, status, reason, events, problems)
+
+        def late_signal() -> list[tuple[str, str]]:
+            """A signal that came while the run was finishing (also while writing its end)."""
+            if signum is not None or guard.signum is None:
+                return []
+            return [("signal", f"{_signal.Signals(guard.signum).name} received while the run "
+                               f"was finishing ({status}); recorded, not acted on")]
+
+        reason = _record_end(store, run_id, status, reason, events, problems, late_signal)
     finally:
         guard.uninstall()
     if error is not None and not isinstance(error, InstrumentError | SafetyError):
@@ -1041,18 +1045,27 @@ def _execute(plan: Plan, bench: Any, store: Store, run_id: int, specs: Sequence[
 
 
 def _record_end(store: RunStore, run_id: int, status: str, reason: str | None,
-                events: list[tuple[str, str]], problems: list[str]) -> str | None:
-    """The run's last events and final status; when the database refuses them, a fallback
-    record beside it (labrun/runstore.py) and the reason says where. The reason kept."""
+                events: list[tuple[str, str]], problems: list[str],
+                late: Callable[[], list[tuple[str, str]]]) -> str | None:
+    """The run's last events (``late()`` is asked once the others are written), its final
+    status event and status; what the database refuses goes to a fallback record beside it
+    (labrun/runstore.py) and the reason says where. The reason kept."""
+    todo = list(events)
     try:
-        for kind, message in events:
+        while todo:
+            kind, message = todo[0]
             store.add_event(run_id, kind, message,
                             data={"problems": problems} if kind == "safe_off" else None)
+            todo.pop(0)
+            if not todo and kind != status:  # the others are in: a late signal, then the end
+                todo = [*late(), (status, reason or status)]
         store.set_status(run_id, status, reason, finished=True)
         return reason
     except StoreFault as exc:
+        if not todo or todo[-1] != (status, reason or status):
+            todo += [*late(), (status, reason or status)]
         path = write_fallback(store.url, {"run_id": run_id, "status": status, "reason": reason,
-                                          "events": events, "store_faults": store.faults})
+                                          "events": todo, "store_faults": store.faults})
         where = f"kept in {path}" if path else "NOT KEPT anywhere (see the log)"
         return f"{reason or status}; the database refused the final status ({exc}), {where}"
 
