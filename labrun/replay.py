@@ -140,9 +140,10 @@ def replay_traffic(store: Store, run_id: int, log_path: str | Path, *,
     run = original_run(store, run_id)
     log = _load_log(log_path)
     plan = stored_plan(run)
-    # No waits: the answers are recorded. The retry policy is the original's, so a recorded
-    # fault is retried as it was.
-    bench = stored_bench(run, settle_scale=0.0)
+    # The bench's own settle scale: it decides how settings and their checks are grouped into
+    # messages, so a replay waits the settle times the original waited (not the instruments'
+    # own times). The retry policy is the original's, so a recorded fault is retried as it was.
+    bench = stored_bench(run)
     policy = RetryPolicy(**{**(run.settings or {}).get("retry", {}), "backoff_s": 0.0})
     created: list[int] = []
     with replaying(log.entries) as lib:

@@ -8,8 +8,9 @@ the next reads return. A recorded failure is played back as a timeout. Any other
 the replay (``TrafficMismatch``: instrument, expected and actual message).
 
 Polls whose number depends on wall-clock time (the emission watch while a setting settles) can
-be fewer in a replay that does not wait: a recorded query (every unit ends with ``?``) that the
-replay skips is passed over; a setting never is.
+differ in a replay, which has no instrument latency: a recorded query (every unit ends with
+``?``) that the replay skips is passed over, and an extra one gets the reply last served to the
+same query; a setting is never skipped or invented.
 """
 
 from __future__ import annotations
@@ -118,6 +119,7 @@ class TrafficReplayLibrary(highlevel.VisaLibraryBase):
         self.scripts = {}
         self.stopped: TrafficMismatch | None = None
         self.last_replies: dict[tuple[str, str], TrafficLogEntry] = {}
+        self.answered: dict[tuple[str, str], TrafficLogEntry] = {}  # last served per message
         self.used = 0
 
     @classmethod
@@ -237,6 +239,9 @@ class TrafficReplayLibrary(highlevel.VisaLibraryBase):
             self._answer_after_stop(sess, text, term)
             return len(data), constants.StatusCode.success
         entry = self._next(sess.script, text)
+        if entry is None:  # a poll the recording holds elsewhere: its last recorded reply
+            self._answer_after_stop(sess, text, term)
+            return len(data), constants.StatusCode.success
         self.used += 1
         if entry.error is not None:
             sess.fail_next_read = True
@@ -248,17 +253,22 @@ class TrafficReplayLibrary(highlevel.VisaLibraryBase):
             sess.pending += response
         return len(data), constants.StatusCode.success
 
-    def _next(self, script: _Script, text: str) -> TrafficLogEntry:
+    def _next(self, script: _Script, text: str) -> TrafficLogEntry | None:
         """The recorded exchange this message must match (skipping polls the replay left out);
-        TrafficMismatch when there is none."""
+        None for an extra poll answered before (the replay polled more often while waiting);
+        TrafficMismatch otherwise."""
         todo = script.todo
         for skip, (_number, entry) in enumerate(todo):
             if entry.text == text:
                 for _ in range(skip + 1):
-                    todo.popleft()
+                    _n, done = todo.popleft()
+                    if done.reply is not None and done.error is None:
+                        self.answered[(script.resource, done.text)] = done
                 return entry
             if not is_poll(entry.text):
                 break
+        if is_poll(text) and (script.resource, text) in self.answered:
+            return None
         expected = todo[0] if todo else (None, None)
         self.stopped = TrafficMismatch(
             resource=script.resource, role=script.role,
@@ -268,8 +278,10 @@ class TrafficReplayLibrary(highlevel.VisaLibraryBase):
 
     def _answer_after_stop(self, sess: _Session, text: str, term: bytes) -> None:
         """After a mismatch only the safe-off runs: queries get the last recorded reply to the
-        same message (the original's own safe-off checks), settings are taken silently."""
-        entry = self.last_replies.get((sess.script.resource, text))
+        same message (the original's own safe-off checks), settings are taken silently. Before
+        one, an extra poll gets the reply last served to it."""
+        key = (sess.script.resource, text)
+        entry = self.last_replies.get(key) if self.stopped else self.answered.get(key)
         if entry is not None:
             sess.pending += response_bytes(entry, term) or b""
         elif not is_poll(text):

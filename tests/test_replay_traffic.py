@@ -142,3 +142,65 @@ def test_a_recorded_fault_is_played_back_and_retried_as_it_was(tmp_path, capsys)
     out = json.loads(capsys.readouterr().out)
     assert out["identical"] is True
     assert [e.message for e in store.events(out["run_id"], ["fault"])] == faults
+
+
+def test_a_night_that_waited_replays_with_its_polls(tmp_path, capsys):
+    """A run that waited settle times (virtual lab in real time, settle_s 0.6 s on a power axis)
+    polled the sources while waiting, as often as time allowed; the replay waits the same settle
+    times and is judged on the settings and sweeps: identical lines."""
+    from labrun.vlab.lab import VirtualLab
+
+    with VirtualLab(scenario(), time_scale=1.0) as lab:
+        plan = write_plan(tmp_path, [0.0, 3.0])
+        plan.write_text(plan.read_text(encoding="utf-8").replace(
+            "[axes.power_a_dbm]\n", "[axes.power_a_dbm]\nsettle_s = 0.6\n"), encoding="utf-8")
+        bench = write_bench(lab, tmp_path)
+        db, log = tmp_path / "runs.db", tmp_path / "traffic.jsonl"
+        assert main(["run", str(plan), "--bench", str(bench), "--db", str(db),
+                     "--traffic-log", str(log), *ACK]) == 0
+    polls = [e for e in TrafficLog.load(log).entries if e.text.startswith("OUTP:STAT?")]
+    assert len(polls) > 8  # more than the per-sweep checks: the waits polled too
+    capsys.readouterr()
+    assert main(["replay", "1", "--db", str(db), "--traffic-log", str(log), "--json",
+                 "--no-progress"]) == 0
+    assert json.loads(capsys.readouterr().out)["identical"] is True
+
+
+def _entry(text, reply=None, *, error=None, direction="write"):
+    from labrun.trafficlog import TrafficLogEntry
+    return TrafficLogEntry(timestamp=0.0, duration_s=0.0, resource="TCPIP0::10.0.0.9::5025::SOCKET",
+                           role="laser_a", direction=direction, text=text, reply=reply,
+                           error=error)
+
+
+def test_the_backend_passes_over_fewer_polls_answers_extra_ones_and_never_a_setting():
+    """Through pyvisa's own ResourceManager and message-based resource (no labrun session):
+    a recorded poll the replay leaves out is passed over, an extra poll gets the reply last
+    served to it, a recorded failure is a VISA timeout, and a different setting stops."""
+    import pyvisa
+    from pyvisa.errors import VisaIOError
+
+    from labrun.visareplay import TrafficMismatch, TrafficReplayLibrary
+
+    entries = [_entry("OUTP:STAT?", "1", direction="query"),
+               _entry("SOUR:POW 3.000;:SYST:ERR?", '0,"No error"'),
+               _entry("OUTP:STAT?", "1", direction="query"),  # left out by the replay
+               _entry("SOUR:POW 4.000"),
+               _entry("OUTP:STAT?", None, error="timeout", direction="query"),
+               _entry("SOUR:POW 5.000")]
+    lib = TrafficReplayLibrary.from_entries(entries)
+    try:
+        res = pyvisa.ResourceManager(lib).open_resource(
+            entries[0].resource, read_termination="\n", write_termination="\n", timeout=100)
+        assert res.query("OUTP:STAT?") == "1"
+        assert res.query("OUTP:STAT?") == "1"  # an extra poll: the last reply again
+        assert res.query("SOUR:POW 3.000;:SYST:ERR?") == '0,"No error"'
+        res.write("SOUR:POW 4.000")  # the recorded poll before it is passed over
+        with pytest.raises(VisaIOError):  # the recorded failure
+            res.query("OUTP:STAT?")
+        with pytest.raises(TrafficMismatch, match=r"expected 'SOUR:POW 5.000'.*got 'SOUR:POW "
+                                                  r"5.500'"):
+            res.write("SOUR:POW 5.500")
+        assert not lib.remaining()[1:]  # only the differing setting is left
+    finally:
+        lib.forget()
