@@ -2,8 +2,11 @@
 
 from __future__ import annotations
 
+import math
+
 import numpy as np
 import pytest
+from scipy.integrate import quad
 from scipy.special import jv
 
 from labrun.lines import grid_ks
@@ -39,12 +42,22 @@ def test_single_tone_lines_are_bessel_squares_as_table_9_1(n: int, x: float) -> 
     assert AS_TABLE_9_1[(n, x)] == pytest.approx(float(jv(n, x)), abs=1e-10)
 
 
-def test_model_against_scipy_jv_any_powers_and_orders() -> None:
-    # P_k = T [P_a J_k(m)^2 + P_b J_(k-1)(m)^2], evaluated term by term with scipy.special.jv.
+def _bessel_integral(n: int, x: float) -> float:
+    """J_n(x) = (1/pi) integral_0^pi cos(n tau - x sin tau) d tau (Abramowitz and Stegun 9.1.21),
+    by scipy.integrate.quad: independent of scipy.special.jv, which the model uses."""
+    value, _ = quad(lambda tau: np.cos(n * tau - x * np.sin(tau)), 0.0, np.pi,
+                    epsabs=1e-13, epsrel=1e-13, limit=200)
+    return value / np.pi
+
+
+def test_model_against_the_bessel_integral_any_powers_and_orders() -> None:
+    # P_k = T [P_a J_k(m)^2 + P_b J_(k-1)(m)^2] (Thompson and Roy 1991), with J_n from its
+    # integral representation; negative orders included (J_-n = (-1)^n J_n follows from it).
     p_a, p_b, m, t = 0.031, 0.012, 2.7, 0.63
     powers = two_tone_powers(p_a, p_b, m, orders=6, transmission=t)
     for k, p in zip(grid_ks(6), powers, strict=True):
-        assert p == pytest.approx(t * (p_a * jv(k, m) ** 2 + p_b * jv(k - 1, m) ** 2), rel=1e-12)
+        expected = t * (p_a * _bessel_integral(k, m) ** 2 + p_b * _bessel_integral(k - 1, m) ** 2)
+        assert p == pytest.approx(expected, rel=1e-9, abs=1e-16)
 
 
 def test_power_is_conserved_over_all_orders() -> None:
@@ -78,9 +91,13 @@ def test_modulation_index_formula() -> None:
     # 2 * 10 * 0.5 * 0.02 = 0.2.
     assert modulation_index(10.0, 0.5, 0.01, 0.04) == pytest.approx(0.2, rel=1e-12)
     powers = two_tone_powers_dispersionless(10.0, 0.5, 0.01, 0.04, orders=2)
-    assert powers[grid_ks(2).index(0)] == pytest.approx(
-        0.01 * jv(0, 0.2) ** 2 + 0.04 * jv(-1, 0.2) ** 2
-    )
+    # J0(0.2) and J1(0.2) from the power series (Abramowitz and Stegun 9.1.10), summed here:
+    # J_n(x) = sum_j (-1)^j (x/2)^(2j+n) / (j! (j+n)!); J_-1 = -J_1.
+    j0 = sum((-1) ** j * 0.1 ** (2 * j) / math.factorial(j) ** 2 for j in range(8))
+    j1 = sum((-1) ** j * 0.1 ** (2 * j + 1) / (math.factorial(j) * math.factorial(j + 1))
+             for j in range(8))
+    assert (j0, j1) == pytest.approx((0.9900249722, 0.0995008326), abs=1e-10)
+    assert powers[grid_ks(2).index(0)] == pytest.approx(0.01 * j0**2 + 0.04 * j1**2, rel=1e-12)
 
 
 def test_equal_power_first_sideband_ratio_boskovic() -> None:
