@@ -198,7 +198,8 @@ def _current_point(store: Store, replay_id: int, plan: Any) -> str:
 # ------------------------------------------------------------------------------------------------
 # replay against a model
 # ------------------------------------------------------------------------------------------------
-TWIN_GAMMA_FITS = ("gamma_bessel", "gamma_small_signal")  # preferred first
+# Gamma fits a twin takes, preferred first (then any other fit whose name starts with gamma).
+TWIN_GAMMA_FITS = ("gamma_bessel", "gamma_small_signal")
 
 
 @dataclass
@@ -251,8 +252,9 @@ def twin_spool(store: Store, run: Any) -> ModelSpool:
     where = (f"fit {record.fit_id} of {label}" if record.fit_id is not None
              else f"one-spool fit of run {run.id} (no stored fit of {label})")
     params = record.parameters
-    gamma = next((params[n] for n in TWIN_GAMMA_FITS if n in params
-                  and params[n].value is not None), None)
+    named = [n for n in TWIN_GAMMA_FITS if n in params] + sorted(
+        n for n in params if n.startswith("gamma") and n not in TWIN_GAMMA_FITS)
+    gamma = next((params[n] for n in named if params[n].value is not None), None)
     if gamma is None:
         raise InputError(f"the {where} has no gamma: run 'labrun fit' on a power sweep of "
                          f"{label} first", field="--twin")

@@ -95,6 +95,16 @@ def test_power_sweep_fit_and_twin_replay_are_consistent(night, capsys):
                       float(np.max(np.abs(diff.to_numpy()))), atol=1e-4)
 
 
+def test_the_text_output_is_labelled_virtual_and_gives_the_verdict(night, capsys):
+    _, db, _, _ = night
+    capsys.readouterr()
+    assert main(["replay", "1", "--db", str(db), "--twin", "--no-progress"]) == 0
+    captured = capsys.readouterr()
+    assert "no light is emitted" in captured.err
+    assert "VIRTUAL replay of run 1" in captured.out and "verdict: consistent" in captured.out
+    assert "per point (measured - replayed, dB)" in captured.out
+
+
 def test_replay_against_a_spool_with_another_gamma_is_inconsistent_naming_gamma(night, capsys):
     _, db, scenario, _ = night
     code, out = _replay(capsys, db, "--scenario", str(scenario), "--spool", "HNLF-C09")
