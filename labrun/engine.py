@@ -112,7 +112,7 @@ class Captured:
 @dataclass(frozen=True)
 class Pending:
     """Settings written and not yet verified: the engine settings, the profile settings they
-    stand for, the one wait they need (s, scaled) and when it ends (time.monotonic()), and
+    stand for, the one wait they need (s, scaled) and when it ends (the runner's clock), and
     whether the read-backs already came with the writes."""
 
     settings: Sequence[Setting]
@@ -213,11 +213,12 @@ class Runner:
 
     def __init__(self, plan: Plan, bench: Any, store: Store, run_id: int, guard: SafeOffGuard, *,
                  policy: RetryPolicy, progress: bool = True, traffic_log: Any = None,
-                 sleep: Callable[[float], None] = time.sleep):
+                 sleep: Callable[[float], None] = time.sleep,
+                 clock: Callable[[], float] = time.monotonic):
         self.plan, self.bench, self.store, self.run_id = plan, bench, store, run_id
         self.guard, self.policy, self.traffic_log = guard, policy, traffic_log
         self.scale = float(getattr(bench, "settle_scale", 1.0))
-        self.sleep = sleep
+        self.sleep, self.clock = sleep, clock  # simulated in `labrun check` (labrun.rehearse)
         self.instruments: Any = None
         self.applied: dict[tuple[str, str], Any] = {}
         self.emitting = False
@@ -311,7 +312,7 @@ class Runner:
                                      ) from exc
                 self.store.add_event(self.run_id, "retry", f"opening the bench, attempt "
                                      f"{attempt + 1}", data={"attempt": attempt + 1})
-                self.wait_until(time.monotonic() + self.policy.delay_s(attempt) * self.scale)
+                self.wait_until(self.clock() + self.policy.delay_s(attempt) * self.scale)
 
     def close(self) -> None:
         """Close the connections (after the safe-off)."""
@@ -386,7 +387,7 @@ class Runner:
             # behind labrun's back to the emission watch (check_power).
             self.applied.pop((s.role, s.method), None)
         write_all(planned, read_back=wait <= 0)
-        return Pending(todo, planned, wait, time.monotonic() + wait, confirmed=wait <= 0)
+        return Pending(todo, planned, wait, self.clock() + wait, confirmed=wait <= 0)
 
     def confirm(self, pending: Pending) -> None:
         """Read back and verify every setting written (all instruments at once), then mark them
@@ -408,17 +409,17 @@ class Runner:
     def wait_until(self, deadline: float) -> None:
         """Sleep until ``deadline``, watching emission and beating the heartbeat meanwhile."""
         while True:
-            left = deadline - time.monotonic()
+            left = deadline - self.clock()
             if left <= 0:
                 return
             self.sleep(min(left, 0.25))
-            if self.emitting and deadline - time.monotonic() > 0:
+            if self.emitting and deadline - self.clock() > 0:
                 self.check_emission()
             self.beat()
 
     def beat(self, force: bool = False) -> None:
         """Heartbeat in the store, at most once a second."""
-        now = time.monotonic()
+        now = self.clock()
         if force or now - self.last_beat >= 1.0:
             self.store.heartbeat(self.run_id)
             self.last_beat = now
@@ -548,7 +549,7 @@ class Runner:
             adapter = self.role(role)
             adapter.output_on(settle=False)  # its settle time overlaps the settings' wait
             op_s = adapter.profile.op("output_on").settle_s
-            deadline = max(deadline, time.monotonic() + wait_s([op_s], self.scale))
+            deadline = max(deadline, self.clock() + wait_s([op_s], self.scale))
         self.emitting = self.lit = True
         self.wait_until(deadline)
         self.confirm(pending)
@@ -655,7 +656,7 @@ class Runner:
         self.applied.clear()
         self.trace_x = None
         if self.dark_since is None:
-            self.dark_since = time.monotonic()
+            self.dark_since = self.clock()
         note = "" if not problems else "; NOT CONFIRMED OFF: " + "; ".join(problems)
         self.unrecorded.append(("dark", f"sources off after a {describe(exc)}{note}"))
 
@@ -678,7 +679,7 @@ class Runner:
         self.applied.clear()
         self.trace_x = None
         if self.dark_since is None:
-            self.dark_since = time.monotonic()
+            self.dark_since = self.clock()
         note = "" if not problems else "; NOT CONFIRMED OFF: " + "; ".join(problems)
         self.store.add_event(self.run_id, "dark", f"sources off after a fault: {reason}{note}",
                              point_key=self.current_key,
@@ -697,6 +698,11 @@ class Runner:
         traces = [self.capture(kind) for kind in kinds]
         self.check_emission()
         traces.sort(key=lambda t: t.kind != "output")
+        self.reduce(spec, traces)
+        return traces
+
+    def reduce(self, spec: PointSpec, traces: Sequence[Captured]) -> None:
+        """Reduce each trace and check both tones were found (InstrumentError: retried)."""
         from labrun.reduce import reduce_trace  # here: preloaded while the first point settled
 
         tones = expected_thz(spec.setpoint)
@@ -708,7 +714,6 @@ class Runner:
                 raise InstrumentError(f"{tr.kind} trace cannot be reduced: {exc}",
                                       role="osa") from None
             check_tones(tr)
-        return traces
 
     def fault(self, spec: PointSpec, attempt: int, exc: InstrumentError) -> None:
         """Darken first when the policy says so (``faults.darkens``: no answer, an overrun, or
@@ -728,12 +733,12 @@ class Runner:
             self.record_fault(exc, attempt=attempt, level="point")
         if attempt >= self.policy.attempts:
             raise RunAborted(f"point {spec.key}: {exc} (after {attempt} attempts)") from exc
-        dark_s = 0.0 if self.dark_since is None else time.monotonic() - self.dark_since
+        dark_s = 0.0 if self.dark_since is None else self.clock() - self.dark_since
         if dark_s >= self.policy.dark_limit_s:
             raise RunAborted(f"point {spec.key}: {exc} (dark for {dark_s:.0f} s after "
                              f"{attempt} attempts, limit {self.policy.dark_limit_s:g} s)"
                              ) from exc
-        self.wait_until(time.monotonic() + self.policy.delay_s(attempt) * self.scale)
+        self.wait_until(self.clock() + self.policy.delay_s(attempt) * self.scale)
         self.trace_x = None  # read x again with the next sweep
         if self.policy.reconnect and (isinstance(exc, NoAnswerError) or self.instruments is None):
             try:
@@ -769,7 +774,7 @@ class Runner:
             if spec.key not in self.store.completed_keys(self.run_id):
                 raise
         self.committed += 1
-        self.last_beat = time.monotonic()
+        self.last_beat = self.clock()
 
     def flush_traffic_log(self) -> None:
         """Flush a streamed traffic log once per point, before its commit: a crash keeps every

@@ -371,6 +371,21 @@ def estimate_sweep_s(span_nm: float, rbw_nm: float, points: int) -> float:
     return round(0.2 + 1e-4 * points, 3)
 
 
+def osa_sweep_model(bench: Any) -> Any:
+    """The bench OSA profile's ``[trace.sweep_time]`` model, or None."""
+    spec = getattr(bench, "instruments", {}).get("osa") if bench is not None else None
+    trace = getattr(getattr(spec, "profile", None), "trace", None)
+    return getattr(trace, "sweep_time", None)
+
+
+def sweep_model_s(bench: Any, span_nm: float, rbw_nm: float, points: int) -> float:
+    """Seconds per sweep: the bench OSA profile's model when it has one, else the rough guess."""
+    model = osa_sweep_model(bench)
+    if model is not None:
+        return round(float(model.seconds(span_nm, rbw_nm, points)), 4)
+    return estimate_sweep_s(span_nm, rbw_nm, points)
+
+
 # ----------------------------------------------------------------------------- loading
 
 
@@ -1018,7 +1033,7 @@ def choose_osa_settings(plan: Plan, bench: Any = None) -> OsaSettings:
     reasons.append(f"{per_rbw:.1f} samples per RBW")
     if per_rbw < 5 - 1e-9:
         warnings.append(f"only {per_rbw:.1f} samples per RBW (< 5): peak powers will be low")
-    sweep = spec.sweep_s if spec.sweep_s is not None else estimate_sweep_s(span, rbw, n)
+    sweep = spec.sweep_s if spec.sweep_s is not None else sweep_model_s(bench, span, rbw, n)
     sweep += op_settle(bench, "osa", "sweep")
     return OsaSettings(center_nm=round(center, 4), span_nm=round(span, 4), rbw_nm=rbw, points=n,
                        reason="; ".join(reasons), per_point_center=per_point,

@@ -98,14 +98,29 @@ class Capabilities(_Strict):
     compound_messages: bool = False  # takes IEEE 488.2 compound program messages ("A;:B?;:C?")
 
 
+class SweepTime(_Strict):
+    """How long one OSA sweep takes: a fixed part, a part per sample and a part per span/RBW
+    (a grating OSA slows down at a narrow resolution); ``labrun check`` estimates with it."""
+
+    fixed_s: float = Field(0.0, ge=0, le=600)
+    per_sample_s: float = Field(0.0, ge=0, le=1)
+    per_span_rbw_s: float = Field(0.0, ge=0, le=10)
+
+    def seconds(self, span_nm: float, rbw_nm: float, points: int) -> float:
+        """Seconds for one sweep of ``points`` samples over ``span_nm`` at ``rbw_nm``."""
+        return self.fixed_s + points * self.per_sample_s + span_nm / rbw_nm * self.per_span_rbw_s
+
+
 class TraceSpec(_Strict):
-    """How an OSA transfers traces: REAL,32 definite-length block or ASCII."""
+    """How an OSA transfers traces (REAL,32 definite-length block or ASCII), and how long a
+    sweep takes (optional)."""
 
     format: Literal["real32", "ascii"]
     byte_order: Literal["little", "big"] = "little"
     format_command: str | None = None
     ascii_command: str | None = None
     byte_order_command: str | None = None
+    sweep_time: SweepTime | None = None
 
 
 class Operation(_Strict):

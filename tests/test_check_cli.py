@@ -22,13 +22,19 @@ SWEEPS = Path(__file__).resolve().parents[1] / "sweeps"
 
 @pytest.fixture
 def no_visa(monkeypatch):
-    """Make any attempt to open a VISA resource manager fail loudly."""
+    """Make any attempt to open a VISA resource manager fail loudly, except on the rehearsal's
+    own simulated backend (labrun.rehearse: instruments that record instead of sending)."""
+    from labrun.rehearse import DryRunLibrary
 
-    def refuse(*args, **kwargs):
+    manager = pyvisa.highlevel.ResourceManager
+    real_new = manager.__new__
+
+    def refuse(cls, visa_library=""):
+        if isinstance(visa_library, DryRunLibrary):
+            return real_new(cls, visa_library)
         raise AssertionError("labrun check must not open an instrument")
 
-    monkeypatch.setattr(pyvisa, "ResourceManager", refuse)
-    monkeypatch.setattr(pyvisa.highlevel, "ResourceManager", refuse)
+    monkeypatch.setattr(manager, "__new__", staticmethod(refuse))
 
 
 def _files(tmp_path, plan_body=POWERS, **bench_kw):
@@ -59,8 +65,10 @@ def test_check_json_keys_and_values(tmp_path, capsys, no_visa):
         est["settle_s"] + est["osa_sweeps_s"], abs=0.11)
     first = report["first_points"][0]["commands"]
     texts = [c["text"] for c in first]
-    assert "SOUR:POW 10.000" in texts and "INP:ATT 7.000" in texts and texts[-1] == "INIT:IMM"
-    assert "OUTP:STAT ON" in texts
+    assert "SOUR:POW 10.000" in texts and "INP:ATT 7.000" in texts and "INIT:IMM" in texts
+    # the sources go on after their settings, the sweep after them
+    on = texts.index("OUTP:STAT ON")
+    assert texts.index("SOUR:POW 10.000") < on < texts.index("INIT:IMM")
     # the second point only changes the attenuators
     second = [c["text"] for c in report["first_points"][1]["commands"]]
     assert second == ["INP:ATT 5.000", "INP:ATT 4.400", "INIT:IMM"]

@@ -1,8 +1,9 @@
 """``labrun check PLAN --bench BENCH``: validate a plan and dry-run it; no instrument is opened.
 
 Reports the number of points, an estimated duration, the worst-case launched power per path, an
-advisory hazard class, cap violations, the OSA settings chosen and why, and the SCPI commands the
-first points would send (rendered from the profiles, not sent). Exit 1 on a violation, 2 on bad
+advisory hazard class, cap violations, the OSA settings chosen and why, and the SCPI settings the
+first points send: the engine's own point loop rehearsed on simulated instruments
+(``labrun.rehearse``), so they are the run's, by construction. Exit 1 on a violation, 2 on bad
 input, 0 otherwise.
 """
 
@@ -11,26 +12,14 @@ from __future__ import annotations
 import argparse
 import json
 from collections.abc import Mapping
-from dataclasses import dataclass
 from typing import TYPE_CHECKING, Any
 
 from labrun.errors import SafetyError
 
 if TYPE_CHECKING:  # imported where used: `labrun --help` loads no numpy or pydantic
-    from labrun.plan import OsaSettings, Plan
+    from labrun.plan import Plan
 
 FIRST_POINTS = 3
-
-
-@dataclass(frozen=True)
-class Step:
-    """One setting a point needs: role, profile operation, value, and which setpoint drives it."""
-
-    role: str
-    op: str
-    value: Any
-    drives: tuple[str, ...]
-    index: int | None = None
 
 
 def register(subparsers: Any) -> None:
@@ -66,152 +55,58 @@ def cmd_check(args: argparse.Namespace) -> int:
 # ----------------------------------------------------------------------------- dry run
 
 
-def point_steps(setpoint: Mapping[str, Any], bench: Any) -> list[Step]:
-    """Settings of one point, in the engine's terms (roles, profile operations, values)."""
-    from labrun import safety
-    from labrun.plan import POWER_SETPOINTS as POWER_AXES
-
-    inst = safety.instrument_settings(setpoint, bench)
-    wl = ("wavelength_a_nm",)
-    steps = [
-        Step("laser_a", "set_wavelength_nm", inst.wavelength_a_nm, wl),
-        Step("laser_b", "set_wavelength_nm", inst.wavelength_b_nm, (*wl, "spacing_ghz")),
-        Step("attenuator_a", "set_wavelength_nm", inst.wavelength_a_nm, wl),
-        Step("attenuator_b", "set_wavelength_nm", inst.wavelength_b_nm, (*wl, "spacing_ghz")),
-        Step("laser_a", "set_power_dbm", inst.laser_a_dbm, POWER_AXES),
-        Step("laser_b", "set_power_dbm", inst.laser_b_dbm, POWER_AXES),
-        Step("attenuator_a", "set_attenuation_db", inst.attenuation_a_db, POWER_AXES),
-        Step("attenuator_b", "set_attenuation_db", inst.attenuation_b_db, POWER_AXES),
-    ]
-    if inst.amplifier_dbm is not None:
-        steps.append(Step("amplifier", "set_power_dbm", inst.amplifier_dbm, POWER_AXES))
-    if setpoint.get("pol_angles_deg") is not None:
-        for i, ang in enumerate(setpoint["pol_angles_deg"], start=1):
-            steps.append(Step("pol_controller", "set_angle_deg", ang, ("pol_angles_deg",), i))
-    if setpoint.get("pol_stokes") is not None:
-        steps.append(Step("pol_controller", "set_stokes", tuple(setpoint["pol_stokes"]),
-                          ("pol_stokes",)))
-    return [s for s in steps if s.role in bench.instruments]
-
-
-def _settle(bench: Any, plan: Plan, step: Step) -> float:
-    """Settle time of a step: the larger of its profile operation's and its plan axes'."""
-    from labrun.plan import op_settle
-
-    axis_s = max([plan.settle_s.get(d, 0.0) for d in step.drives] + [0.0])
-    return max(op_settle(bench, step.role, step.op), axis_s)
-
-
-def _render(bench: Any, role: str, op_name: str, value: Any = None,
-            index: int | None = None) -> str | None:
-    """SCPI text of one operation from the role's profile (None when the profile lacks it)."""
-    from labrun.profiles import VALUE_PLACEHOLDERS
-
-    spec = bench.instruments.get(role)
-    op = spec.profile.operations.get(op_name) if spec else None
-    if op is None:
-        return None
-    kwargs: dict[str, Any] = {}
-    if op_name in VALUE_PLACEHOLDERS:
-        kwargs = dict(zip(VALUE_PLACEHOLDERS[op_name], (float(v) for v in value), strict=True))
-    elif value is not None:
-        kwargs["value"] = int(value) if op.integer else float(value)
-    if index is not None:
-        kwargs["index"] = index
-    try:
-        return op.render(**kwargs)
-    except (KeyError, ValueError, IndexError):
-        return f"{op.template} <{value}>"
-
-
-def _osa_steps(osa: OsaSettings) -> list[tuple[str, Any]]:
-    """OSA operations and values for one configuration."""
-    return [("set_center_nm", osa.center_nm), ("set_span_nm", osa.span_nm),
-            ("set_rbw_nm", osa.rbw_nm), ("set_points", osa.points)]
-
-
 def dry_run(plan: Plan, bench: Any, *, first: int = FIRST_POINTS) -> dict[str, Any]:
-    """Everything ``labrun check`` reports, as a JSON-friendly dict; touches no instrument."""
+    """Everything ``labrun check`` reports, as a JSON-friendly dict; touches no instrument.
+
+    Unless a cap refuses the plan, the run is rehearsed by the engine itself on simulated
+    instruments and a simulated clock (``labrun.rehearse``): the commands shown are the ones the
+    run sends, the duration is the engine's waits plus the OSA sweeps.
+    """
     from labrun import safety
-    from labrun.plan import op_settle
+    from labrun.rehearse import rehearse, settings_sent
 
     violations = safety.check_caps(plan, bench)
     osa = plan.osa_settings(bench)
     pts = plan.points()
     scale = float(getattr(bench, "settle_scale", 1.0))
-    applied: dict[tuple[str, str, int | None], Any] = {}
-    osa_applied: tuple[Any, ...] | None = None
-    settle_total = sweep_total = 0.0
+    estimated: float | None = None
+    estimate: dict[str, Any] = {"settle_scale": scale}
     first_points: list[dict[str, Any]] = []
-    refused = bool(violations)
-    for n, p in enumerate(pts):
-        cmds: list[dict[str, Any]] = []
-        try:
-            steps = point_steps({**p.setpoint, "amplifier": plan.amplifier}, bench)
-        except SafetyError as exc:
-            refused = True
-            if n < first:
-                first_points.append({"index": p.index, "key": p.key, "setpoint": p.setpoint,
-                                     "refused": str(exc), "commands": []})
-            continue
-        wait = 0.0
-        this_osa = osa.for_point(p.setpoint)
-        osa_now = tuple(v for _, v in _osa_steps(this_osa))
-        if osa_now != osa_applied:
-            for op_name, value in _osa_steps(this_osa):
-                cmds.append({"role": "osa", "text": _render(bench, "osa", op_name, value)})
-            osa_applied = osa_now
-        for s in steps:
-            tag = (s.role, s.op, s.index)
-            if applied.get(tag) == s.value:
-                continue
-            applied[tag] = s.value
-            wait = max(wait, _settle(bench, plan, s))
-            cmds.append({"role": s.role, "text": _render(bench, s.role, s.op, s.value, s.index)})
-        if n == 0:
-            for role in ("attenuator_a", "attenuator_b", "laser_a", "laser_b", "amplifier"):
-                if role == "amplifier" and not plan.amplifier:
-                    continue
-                text = _render(bench, role, "output_on")
-                if text:
-                    cmds.append({"role": role, "text": text})
-                    wait = max(wait, op_settle(bench, role, "output_on"))
-        sweeps = 1
-        if plan.capture_input and n % plan.osa.input_every == 0:
-            sweeps = 2
-            wait += 2 * op_settle(bench, "switch", "set_path")
-            cmds.append({"role": "switch", "text": _render(bench, "switch", "set_path", 2)})
-            cmds.append({"role": "osa", "text": _render(bench, "osa", "sweep")})
-            cmds.append({"role": "switch", "text": _render(bench, "switch", "set_path", 1)})
-        elif n == 0 and "switch" in bench.instruments:
-            # the engine routes the OSA to the spool output once before the first sweep
-            wait += op_settle(bench, "switch", "set_path")
-            cmds.append({"role": "switch", "text": _render(bench, "switch", "set_path", 1)})
-        cmds.append({"role": "osa", "text": _render(bench, "osa", "sweep")})
-        settle_total += wait * scale
-        sweep_total += sweeps * osa.sweep_estimate_s
-        if n < first:
-            first_points.append({"index": p.index, "key": p.key, "setpoint": _jsonable(p.setpoint),
-                                 "is_reference": p.is_reference, "repeat": p.repeat,
-                                 "wait_s": round(wait * scale, 3),
-                                 "commands": [c for c in cmds if c["text"]]})
+    refusal = None
+    try:
+        r = None if violations else rehearse(plan, bench)
+    except SafetyError as exc:  # a point the engine refuses (the run would stop there too)
+        r, refusal = None, str(exc)
+    if r is not None:
+        estimated = r.total_s
+        estimate.update(settle_s=round(r.total_s - r.sweeps_s, 1),
+                        osa_sweeps_s=round(r.sweeps_s, 1), sweep_s=round(r.sweep_s, 4),
+                        sweep_source=r.sweep_source,
+                        basis="the engine's own point loop rehearsed on simulated instruments: "
+                              "its settle waits (x settle_scale) plus the OSA sweep time per "
+                              "sweep")
+        for p in r.points[:first]:
+            first_points.append({
+                "index": p.spec.index, "key": p.spec.key, "setpoint": _jsonable(p.spec.setpoint),
+                "is_reference": p.spec.is_reference, "repeat": p.spec.repeat,
+                "wait_s": round(p.seconds - p.sweeps * r.sweep_s, 3),
+                "commands": [{"role": role, "text": text}
+                             for role, text in settings_sent(p.entries)]})
     wc = safety.worst_case(plan, bench)
     return {
         "plan": plan.file, "name": plan.name, "spool": plan.spool, "sha256": plan.sha256,
         "bench": bench.name, "bench_file": str(bench.path),
         "points": len(pts),
         "reference_points": sum(1 for p in pts if p.is_reference),
-        "estimated_s": round(settle_total + sweep_total, 1),
-        "estimate": {"settle_s": round(settle_total, 1), "osa_sweeps_s": round(sweep_total, 1),
-                     "settle_scale": scale,
-                     "basis": "profile and per-axis settle times (overlapping within a point, "
-                              "x settle_scale) plus the OSA sweep estimate per sweep"},
+        "estimated_s": None if estimated is None else round(estimated, 1),
+        "estimate": estimate,
         "max_launched_dbm": wc.max_launched_dbm,
         "worst_case": wc.to_dict(),
         "hazard_class": wc.hazard_class,
         "hazard_note": safety.HAZARD_NOTE,
         "violations": [v.to_dict() for v in violations],
-        "refused": refused,
+        "refused": bool(violations) or refusal is not None,
+        "refusal": refusal,
         "osa": osa.to_dict(),
         "stop_conditions": [c.describe() for c in plan.stop_conditions],
         "summary": _jsonable(plan.summary()),
@@ -245,13 +140,18 @@ def render_text(r: Mapping[str, Any]) -> str:
     """The check report for a person."""
     wc = r["worst_case"]
     ml = r["max_launched_dbm"]
+    est = r["estimate"]
+    if r["estimated_s"] is None:
+        when = "time   not estimated: the plan is refused"
+    else:
+        when = (f"time   about {_duration(r['estimated_s'])} (settling {est['settle_s']} s, OSA "
+                f"sweeps {est['osa_sweeps_s']} s at {est['sweep_s']:g} s each from the "
+                f"{est['sweep_source']}, settle_scale {est['settle_scale']:g})")
     out = [
         f"plan   {r['plan']}: {r['name']} (spool {r['spool']})",
         f"bench  {r['bench_file']}: {r['bench']}",
         f"points {r['points']} ({r['reference_points']} reference)",
-        f"time   about {_duration(r['estimated_s'])} (settling {r['estimate']['settle_s']} s, "
-        f"OSA sweeps {r['estimate']['osa_sweeps_s']} s, settle_scale "
-        f"{r['estimate']['settle_scale']:g})",
+        when,
         "worst-case launched power into the spool (after calibration):",
     ]
     out += [f"  path {k}: {v:.2f} dBm" for k, v in ml.items() if k != "total"]

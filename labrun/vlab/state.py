@@ -103,8 +103,13 @@ class Launch:
 
 
 def sweep_time_s(span_nm: float, rbw_nm: float, points: int) -> float:
-    """Simulated duration of one OSA sweep (invented grating-OSA model: slower at narrow RBW)."""
-    return 0.05 + points * 20e-6 + span_nm / (rbw_nm * 2000.0)
+    """Simulated duration of one OSA sweep: the generic OSA profile's ``[trace.sweep_time]``
+    (an invented grating-OSA model, slower at narrow RBW)."""
+    from labrun.profiles import generic_profile
+
+    trace = generic_profile("osa").trace
+    assert trace is not None and trace.sweep_time is not None  # the shipped profile has both
+    return trace.sweep_time.seconds(span_nm, rbw_nm, points)
 
 
 @lru_cache(maxsize=256)

@@ -1,0 +1,273 @@
+"""A run rehearsed without instruments: the engine's own point loop on a simulated clock.
+
+``labrun check`` does not re-implement the run: ``rehearse`` drives the engine's ``Runner`` (the
+same settings, the same set-wait-read order, the same switch-on and emission watch) against a
+pyvisa backend that records instead of sending (``DryRunLibrary``). Its instruments take every
+message and answer from what was set on them (a query ``X?`` answers the value last written with
+``X``), report no error, a closed interlock and outputs off until switched on, and show the OSA
+trace as an empty floor. Its clock only moves when the engine waits or an OSA sweeps (the sweep
+time comes from the OSA profile's ``sweep_time`` or from the plan's rough model), so the time it
+reaches is the run's duration as the instruments impose it, and the traffic log it fills holds
+the messages the run sends. Nothing is reduced and nothing is stored.
+"""
+
+from __future__ import annotations
+
+import contextlib
+from collections.abc import Sequence
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+from pyvisa import constants
+
+from labrun.engine import Captured, RetryPolicy, Runner
+from labrun.plan import Plan, PointSpec
+from labrun.trafficlog import TrafficLog, TrafficLogEntry, split_units
+from labrun.visareplay import TrafficReplayLibrary, _Script, _Session
+
+FLOOR_DBM = -90.0  # what the simulated OSA shows: no light reaches it (invented, below any floor)
+
+
+class SimClock:
+    """A clock that moves only when told to: the engine's waits and the OSA's sweeps."""
+
+    def __init__(self) -> None:
+        self.now = 0.0
+
+    def __call__(self) -> float:
+        return self.now
+
+    def sleep(self, seconds: float) -> None:
+        """The engine waits: the simulated time passes at once."""
+        self.now += max(0.0, float(seconds))
+
+
+def _header(template: str | None) -> str:
+    """The program header of a command template or query (``SOUR:POW {value}`` -> SOUR:POW)."""
+    return (template or "").strip().lstrip(":").split(" ", 1)[0].upper()
+
+
+@dataclass
+class _Instrument:
+    """What one simulated instrument knows: its profile, role and the values set on it."""
+
+    role: str
+    profile: Any
+    values: dict[str, str] = field(default_factory=dict)
+
+
+class DryRunLibrary(TrafficReplayLibrary):
+    """pyvisa backend of a rehearsal: takes every message, answers from what was set."""
+
+    instruments: dict[str, _Instrument]
+
+    @classmethod
+    def for_bench(cls, bench: Any, clock: SimClock, sweep_s: float) -> DryRunLibrary:
+        """A fresh library simulating every instrument of ``bench``."""
+        lib = cls.from_entries([])
+        lib.instruments = {spec.resource: _Instrument(role, spec.profile)
+                           for role, spec in bench.instruments.items()}
+        lib.clock, lib.sweep_s = clock, float(sweep_s)
+        return lib
+
+    @staticmethod
+    def get_debug_info() -> dict[str, str]:
+        """What pyvisa-info shows for this backend."""
+        return {"backend": "labrun check rehearsal"}
+
+    def open(self, session: int, resource_name: str,
+             access_mode: constants.AccessModes = constants.AccessModes.no_lock,
+             open_timeout: int = constants.VI_TMO_IMMEDIATE) -> tuple[int, constants.StatusCode]:
+        """Open one of the bench's resources (anything else is not found)."""
+        inst = self.instruments.get(resource_name)
+        if inst is None:
+            return 0, constants.StatusCode.error_resource_not_found
+        attrs = {constants.ResourceAttribute.termchar: ord("\n"),
+                 constants.ResourceAttribute.termchar_enabled: constants.VI_FALSE,
+                 constants.ResourceAttribute.timeout_value: 2000}
+        return (self._register(_Session(_Script(resource_name, inst.role), attrs=attrs)),
+                constants.StatusCode.success)
+
+    def write(self, session: int, data: bytes) -> tuple[int, constants.StatusCode]:
+        """Take a message: settings are remembered, queries answered in one response."""
+        sess = self.sessions.get(session)
+        if not isinstance(sess, _Session):
+            return 0, constants.StatusCode.error_invalid_object
+        inst = self.instruments[sess.script.resource]
+        text = data.decode("ascii", "replace").rstrip("\r\n")
+        term = bytes([int(sess.attrs.get(constants.ResourceAttribute.termchar, 10))])
+        sess.pending.clear()
+        replies = [self._unit(inst, unit) for unit in split_units(text) if unit]
+        answers = [r for r in replies if r is not None]
+        if answers:
+            sess.pending += b";".join(answers) + term
+        return len(data), constants.StatusCode.success
+
+    def _unit(self, inst: _Instrument, unit: str) -> bytes | None:
+        """Carry out one program message unit; its response unit (None for a setting)."""
+        header, _, arg = unit.strip().lstrip(":").partition(" ")
+        header = header.upper()
+        if not header.endswith("?"):
+            inst.values[header] = arg.strip()
+            if inst.profile.has("sweep") and header == _header(inst.profile.op("sweep").template):
+                self.clock.sleep(self.sweep_s)
+            return None
+        return self._query(inst, header, arg.strip())
+
+    def _query(self, inst: _Instrument, header: str, arg: str) -> bytes:
+        """The answer to one query (a trace as a block or values, the rest as text)."""
+        prof = inst.profile
+        full = f"{header} {arg.upper()}".strip()
+        for name in ("read_trace_x", "read_trace_y"):
+            if prof.has(name) and full == prof.op(name).render().strip().lstrip(":").upper():
+                return self._trace(inst, x_axis=name == "read_trace_x")
+        if header == "*IDN?":
+            return f"LABRUN-CHECK,REHEARSAL,{inst.role},0".encode()
+        if header == "*OPC?":
+            return b"1"
+        if prof.error_query and header == _header(prof.error_query):
+            return b'0,"No error"'
+        if prof.has("read_interlock") and header == _header(prof.op("read_interlock").template):
+            return b"1"  # closed: emission allowed
+        return inst.values.get(header[:-1], "0").encode()
+
+    def _trace(self, inst: _Instrument, *, x_axis: bool) -> bytes:
+        """The configured grid (x) or an empty floor (y), as the transfer format asks."""
+        prof = inst.profile
+
+        def value(name: str) -> float:
+            return float(inst.values.get(_header(prof.op(name).template), "0") or 0)
+
+        points = max(int(value("set_points")), 2)
+        centre, span = value("set_center_nm"), value("set_span_nm")
+        data = (np.linspace(centre - span / 2, centre + span / 2, points) if x_axis
+                else np.full(points, FLOOR_DBM))
+        trace = prof.trace
+        ascii_set = trace.ascii_command and inst.values.get(_header(trace.ascii_command)) == \
+            trace.ascii_command.split(" ", 1)[-1].strip()
+        if trace.format != "real32" or ascii_set:
+            return ",".join(f"{v:.6f}" for v in data).encode()
+        body = data.astype("<f4" if trace.byte_order == "little" else ">f4").tobytes()
+        size = str(len(body)).encode()
+        return b"#" + str(len(size)).encode() + size + body
+
+
+class _NullStore:
+    """A rehearsal stores nothing: events and heartbeats go nowhere."""
+
+    def add_event(self, *args: Any, **kwargs: Any) -> None:
+        """Nothing is recorded."""
+
+    def heartbeat(self, *args: Any, **kwargs: Any) -> None:
+        """Nothing is recorded."""
+
+
+class _NullGuard:
+    """A rehearsal emits nothing: there is nothing to switch off."""
+
+    def set_instruments(self, instruments: Any) -> None:
+        """Nothing to guard."""
+
+    def check(self) -> None:
+        """No signal handling in a rehearsal."""
+
+
+class DryRunner(Runner):
+    """The engine's Runner on simulated instruments: no reduction (the OSA sees no light)."""
+
+    def __init__(self, plan: Plan, bench: Any, clock: SimClock, traffic_log: TrafficLog):
+        super().__init__(plan, bench, _NullStore(), 0, _NullGuard(),  # type: ignore[arg-type]
+                         policy=RetryPolicy(attempts=1), progress=False,
+                         traffic_log=traffic_log, sleep=clock.sleep, clock=clock)
+
+    def reduce(self, spec: PointSpec, traces: Sequence[Captured]) -> None:
+        """Nothing to reduce: the rehearsal's traces are an empty floor."""
+
+    def beat(self, force: bool = False) -> None:
+        """No heartbeat: nothing is stored."""
+
+
+@dataclass
+class PointRehearsal:
+    """One rehearsed point: its spec, the traffic entries it sent and its simulated seconds."""
+
+    spec: PointSpec
+    entries: list[TrafficLogEntry]
+    seconds: float
+    sweeps: int
+
+
+@dataclass
+class Rehearsal:
+    """A rehearsed run: every point, the opening traffic, the total simulated time."""
+
+    points: list[PointRehearsal]
+    opening: list[TrafficLogEntry]
+    total_s: float
+    sweep_s: float
+    sweep_source: str
+    traffic_log: TrafficLog
+
+    @property
+    def sweeps_s(self) -> float:
+        """Simulated seconds spent sweeping."""
+        return self.sweep_s * sum(p.sweeps for p in self.points)
+
+
+def sweep_time(plan: Plan, bench: Any) -> tuple[float, str]:
+    """Seconds per OSA sweep at the plan's OSA settings and where the figure comes from: the
+    plan's own ``osa.sweep_s``, the OSA profile's ``[trace.sweep_time]``, or a rough guess."""
+    from labrun.plan import osa_sweep_model
+
+    seconds = float(plan.osa_settings(bench).sweep_estimate_s)
+    if plan.osa.sweep_s is not None:
+        return seconds, "plan (osa.sweep_s)"
+    if osa_sweep_model(bench) is not None:
+        return seconds, "osa profile"
+    return seconds, "rough estimate (no sweep_time in the osa profile)"
+
+
+def rehearse(plan: Plan, bench: Any, *, limit: int | None = None) -> Rehearsal:
+    """Run ``plan`` on simulated instruments (the first ``limit`` points, or all)."""
+    from labrun import scpi
+
+    clock = SimClock()
+    log = TrafficLog()
+    sweep_s, source = sweep_time(plan, bench)
+    lib = DryRunLibrary.for_bench(bench, clock, sweep_s)
+    specs = plan.points()
+    if limit is not None:
+        specs = specs[:limit]
+    points: list[PointRehearsal] = []
+    try:
+        with scpi.visa_library_override(lib):
+            runner = DryRunner(plan, bench, clock, log)
+            runner.osa_settings = plan.osa_settings(bench)
+            try:
+                runner.open()
+                opening = list(log.entries)
+                for spec in specs:
+                    start, mark = clock(), len(log.entries)
+                    traces, _, _ = runner.measure(spec)
+                    points.append(PointRehearsal(spec, log.entries[mark:], clock() - start,
+                                                 len(traces)))
+            finally:
+                with contextlib.suppress(Exception):
+                    runner.close()
+    finally:
+        lib.forget()
+    return Rehearsal(points, opening, clock(), sweep_s, source, log)
+
+
+def settings_sent(entries: Sequence[TrafficLogEntry]) -> list[tuple[str, str]]:
+    """(role, setting) of every setting unit the entries carried, in order (queries left out)."""
+    out = []
+    for e in entries:
+        if e.direction != "write":
+            continue
+        for unit in split_units(e.text):
+            text = unit.strip().lstrip(":")
+            if text and not text.split(" ", 1)[0].endswith("?"):
+                out.append((e.role or e.resource, text))
+    return out
