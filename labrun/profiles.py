@@ -298,11 +298,15 @@ def _check_operation(path: Path, kind: str, name: str, op: Operation,
         raise _fail(path, where, f"template {op.template!r} cannot be filled: {exc}") from None
 
 
-def _check_one_command(path: Path, where: str, text: str | None) -> None:
-    """A template or command holds one program message unit: no ';' and no line end."""
+def _check_one_command(path: Path, where: str, text: str | None, *,
+                       template: bool = True) -> None:
+    """A template or command holds one program message unit: no ';' and no line end; a
+    command sent as is (not a template) holds no placeholder either."""
     if text is not None and _NOT_ONE_COMMAND.search(text):
         raise _fail(path, where, f"{text!r} holds a message separator or line end (';', CR, LF "
                                  "or another control character); one command per template")
+    if text is not None and not template and ("{" in text or "}" in text):
+        raise _fail(path, where, f"{text!r} holds a placeholder; this command is sent as is")
 
 
 def _check_specs(path: Path, where: str, template: str) -> None:
@@ -333,16 +337,16 @@ def _check_messages(path: Path, head: _ProfileHead, trace: TraceSpec | None,
         if getattr(head, key) not in TERMINATIONS:
             raise _fail(path, f"profile.{key}", "must be a line end: \\n, \\r\\n or \\r")
     for key in ("error_query", "opc_query"):
-        _check_one_command(path, f"profile.{key}", getattr(head, key))
+        _check_one_command(path, f"profile.{key}", getattr(head, key), template=False)
     on = ops.get("output_on")
     for i, command in enumerate(head.init):
-        _check_one_command(path, f"profile.init[{i}]", command)
+        _check_one_command(path, f"profile.init[{i}]", command, template=False)
         if switches_source_on(command) or (on is not None and on.command is not None and
                                            command.strip().upper() == on.command.strip().upper()):
             raise _fail(path, f"profile.init[{i}]", f"{command!r} would switch a source on; "
                                                     "init may not (output_on does, after checks)")
     for key in ("format_command", "ascii_command", "byte_order_command"):
-        _check_one_command(path, f"trace.{key}", getattr(trace, key, None))
+        _check_one_command(path, f"trace.{key}", getattr(trace, key, None), template=False)
     for name, op in ops.items():
         _check_one_command(path, f"operations.{name}", op.template)
 

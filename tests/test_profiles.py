@@ -151,6 +151,11 @@ ONE_COMMAND_CASES = [
     ("timeout a boolean", _sub("timeout_ms = 3000", "timeout_ms = true"), "profile.timeout_ms"),
     ("timeout of years", _sub("timeout_ms = 3000", "timeout_ms = 100000000000"),
      "profile.timeout_ms"),
+    ("placeholder in the error query", _sub('error_query = "SYST:ERR?"',
+                                            'error_query = "SYST:ERR? {value:020.3f}"'),
+     "profile.error_query"),
+    ("placeholder in init", _sub('init = ["*CLS"]', 'init = ["*CLS {value}"]'),
+     "profile.init[0]"),
     ("capability a number", _sub("output_state = true", "output_state = 1"),
      "capabilities.output_state"),
 ]
