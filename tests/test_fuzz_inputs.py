@@ -5,7 +5,7 @@ shipped files with values replaced by NaN, infinity, booleans, huge numbers, non
 deep nesting, extra commands in profile templates, unphysical trace samples) and runs each with
 ``labrun.cli.main`` in-process, instrument sessions forbidden. Every input must end with exit 0
 and a finite JSON result, or exit 2 and one line: never a traceback, a hang, an instrument
-opened, or a known-bad input accepted. This is the CI sample (about 100 inputs, a few seconds);
+opened, or a known-bad input accepted. This is the CI sample (200 inputs, about 10 s);
 benchmarks/fuzz_inputs.py runs thousands.
 """
 
@@ -19,7 +19,7 @@ from _fuzz_support import KINDS, Case, make_case, run_case
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-FUZZ = settings(max_examples=20, deadline=None, derandomize=True, database=None,
+FUZZ = settings(max_examples=40, deadline=None, derandomize=True, database=None,
                 suppress_health_check=[HealthCheck.function_scoped_fixture,
                                        HealthCheck.too_slow])
 
