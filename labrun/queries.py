@@ -8,10 +8,8 @@ Python loop over rows.
 from __future__ import annotations
 
 import json
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
-import numpy as np
-import pandas as pd
 from sqlalchemy import Text, and_, case, func, or_, select, type_coerce
 
 from labrun.errors import InputError
@@ -19,11 +17,17 @@ from labrun.lines import LineId
 from labrun.store import Line, Point, Store, Trace
 from labrun.store.models import Event, Run, Spool
 
+if TYPE_CHECKING:  # numpy and pandas are imported where used: `labrun runs` starts without them
+    import numpy as np
+    import pandas as pd
+
 POINT_COLUMNS = ("point_id", "index", "key", "is_reference", "repeat", "floor_dbm")
 
 
 def _frame(store: Store, query: Any) -> pd.DataFrame:
     """A query's rows as a DataFrame (values as SQLAlchemy's result processing gives them)."""
+    import pandas as pd
+
     with store.engine.connect() as conn:
         result = conn.execute(query)
         columns = list(result.keys())
@@ -56,6 +60,8 @@ def output_lines(store: Store, run_id: int) -> pd.DataFrame:
 
 def line_keys(lines: pd.DataFrame) -> pd.Series:
     """The flat column name of each line row (LineId.key, computed once per distinct line)."""
+    import pandas as pd
+
     if lines.empty:
         return pd.Series([], dtype=object, index=lines.index)
     triples = list(zip(lines["kind"], lines["side"], lines["order"], strict=True))
@@ -89,6 +95,8 @@ def run_points(store: Store, run_id: int, *, include_reference: bool = True) -> 
     (switch path 2) are left out: the columns are the spool output. One SQL query pivots the
     lines into columns (conditional aggregation per distinct line).
     """
+    import pandas as pd
+
     _require_run(store, run_id)
     wanted = [func.max(case((and_(Line.kind == ln.kind, Line.side == ln.side,
                                   Line.order == ln.order, Line.detected.is_(True), _OUTPUT),
@@ -128,9 +136,10 @@ def point_trace(store: Store, point_id: int, kind: str = "output") -> tuple[np.n
         return tr.x(), tr.y(), tr.rbw_nm
 
 
-def list_runs(store: Store, *, spool: str | None = None, since: Any = None,
-              status: str | None = None) -> pd.DataFrame:
-    """Runs (newest first) with spool, plan, status, times and stored point counts."""
+def runs_table(store: Store, *, spool: str | None = None, since: Any = None,
+               status: str | None = None) -> list[dict[str, Any]]:
+    """Runs (newest first) with spool, plan, status, times and stored point counts, as dicts
+    (no pandas: ``labrun runs`` starts fast)."""
     counts = (select(Point.run_id, func.count(Point.id).label("points_done"))
               .group_by(Point.run_id).subquery())
     q = (select(Run.id.label("run_id"), Spool.label.label("spool"), Run.plan_name, Run.status,
@@ -146,7 +155,19 @@ def list_runs(store: Store, *, spool: str | None = None, since: Any = None,
         q = q.where(Run.created_at >= since)
     if status is not None:
         q = q.where(Run.status == status)
-    return _frame(store, q)
+    with store.engine.connect() as conn:
+        return [dict(row._mapping) for row in conn.execute(q)]
+
+
+def list_runs(store: Store, *, spool: str | None = None, since: Any = None,
+              status: str | None = None) -> pd.DataFrame:
+    """``runs_table`` as a DataFrame (for notebooks and reports)."""
+    import pandas as pd
+
+    rows = runs_table(store, spool=spool, since=since, status=status)
+    return pd.DataFrame(rows, columns=["run_id", "spool", "plan_name", "status", "operator",
+                                       "created_at", "started_at", "finished_at",
+                                       "points_total", "points_done", "reason"])
 
 
 def run_events(store: Store, run_id: int) -> pd.DataFrame:

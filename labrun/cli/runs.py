@@ -49,16 +49,15 @@ def parse_since(text: str) -> datetime:
 
 
 def _iso(v: Any) -> str | None:
-    return None if v is None or v != v else v.isoformat()  # NaT/None -> None
+    return None if v is None else v.isoformat()
 
 
 def runs_rows(store: Any, *, spool: str | None, since: datetime | None,
               status: str | None) -> list[dict[str, Any]]:
     """The runs table as JSON-ready dicts."""
-    from labrun.queries import list_runs
+    from labrun.queries import runs_table
 
-    frame = list_runs(store, spool=spool, since=since, status=status)
-    rows = frame.astype(object).where(frame.notna(), None).to_dict("records")
+    rows = runs_table(store, spool=spool, since=since, status=status)
     for r in rows:
         for k in ("created_at", "started_at", "finished_at"):
             r[k] = _iso(r[k])

@@ -4,8 +4,9 @@
 - ``mdb-dz1`` (default): each value rounded to whole thousandths of a dB (error <= 0.0005 dB),
   first differences (the first value against 0), zigzag-mapped to unsigned 32-bit integers, the
   four little-endian byte planes stored one after another (all low bytes, then the next...), and
-  deflate (zlib, level 6). OSA traces are smooth next to their noise, so the differences are
-  small and the high byte planes nearly constant: about 1.3 bytes a sample on the shipped sweeps.
+  deflate (zlib, level 1: level 6 saves 3 % more for 4x the time). OSA traces are smooth next
+  to their noise, so the differences are small and the high byte planes nearly constant: about
+  1.1 bytes a sample on the shipped sweeps (benchmarks/bench_store.py).
 A trace with a value that is not finite or beyond +/-1e5 dB is stored as ``f32`` instead.
 """
 
@@ -22,7 +23,7 @@ MDB_DZ1 = "mdb-dz1"
 DEFAULT_ENCODING = MDB_DZ1
 STEP_DB = 1e-3  # one milli-dB: the quantum of mdb-dz1
 LIMIT_DB = 1e5  # beyond this, values go to f32 (keeps every difference inside 32 bits)
-ZLIB_LEVEL = 6
+ZLIB_LEVEL = 1
 
 
 def encode_y(y: np.ndarray, encoding: str = DEFAULT_ENCODING) -> tuple[bytes, str]:
