@@ -147,3 +147,36 @@ def test_bad_input_is_a_value_error():
         reduce_trace(x, np.full(100, np.nan), 0.02)
     with pytest.raises(ValueError):
         reduce_trace(x, np.zeros(100), -1.0)
+
+
+def _weak_low2(snr_db: float) -> np.ndarray:
+    """Line powers with low sideband 2 reading ``snr_db`` above a -70 dBm floor at its peak: the
+    peak reads line + floor in mW (common practice), so line = floor + 10 log10(10^(snr/10) - 1)."""
+    powers = np.array([-80.0, -70.0, -30.0, 0.0, 0.0, -30.0, -40.0, -80.0])
+    powers[1] = -70.0 + 10 * np.log10(10 ** (snr_db / 10) - 1)
+    return powers
+
+
+@pytest.mark.parametrize("snr_db", [3.5, 4.0, 5.0, 6.0, 8.0, 10.0])
+def test_weak_line_3_to_10_db_above_the_floor_is_recovered(snr_db):
+    # The floor is subtracted in linear units, so a line a few dB above the floor comes back at
+    # its own power, not at its peak reading (which is up to 3 dB high at 3 dB above the floor).
+    powers = _weak_low2(snr_db)
+    x, y, _, _, _ = _scene(powers=powers)
+    red = reduce_trace(x, y, 0.02, orders=3, threshold_db=3.0)
+    low2 = red.line("sideband", "low", 2)
+    assert low2.detected and low2.upper_limit_dbm is None
+    assert low2.snr_db == pytest.approx(snr_db, abs=0.1)
+    assert low2.power_dbm == pytest.approx(powers[1], abs=0.15), low2.power_dbm - powers[1]
+    peak_reading = -70.0 + snr_db
+    assert abs(low2.power_dbm - peak_reading) > 0.4  # floor taken off: 0.41 dB even at 10 dB
+
+
+@pytest.mark.parametrize(("offset", "detected"), [(+0.1, True), (-0.1, False)])
+def test_detection_threshold_0p1_db_either_side(offset, detected):
+    snr = 3.0 + offset  # threshold_db = 3.0
+    x, y, _, _, _ = _scene(powers=_weak_low2(snr))
+    low2 = reduce_trace(x, y, 0.02, orders=3, threshold_db=3.0).line("sideband", "low", 2)
+    assert low2.detected is detected
+    assert (low2.power_dbm is not None) is detected
+    assert (low2.upper_limit_dbm is None) is detected
