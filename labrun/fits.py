@@ -97,6 +97,8 @@ def points_table(points) -> dict[str, np.ndarray]:
     power_dbm, detected) is
     flattened into ``<kind>_<side>_<order>`` columns; undetected or missing powers become NaN.
     """
+    if isinstance(points, Mapping) and all(isinstance(v, np.ndarray) for v in points.values()):
+        return dict(points)  # already a table (columns as arrays)
     # A pandas DataFrame is read through its own API, so this module needs no pandas import.
     records = points.to_dict("records") if hasattr(points, "columns") else list(points)
     flat: list[dict] = []
@@ -527,28 +529,42 @@ def fit_dispersion(p_a_w, p_b_w, spacing_ghz, wavelength_a_nm, side, ratio, *, l
     u, v = _mismatch_basis(sp, lam, side, length_km, loss_db_per_km, reference_wavelength_nm)
     w_nl = nl_power_w(p_a, p_b, side)  # nonlinear mismatch gamma * w_nl (SPM/XPM)
 
-    def resid(theta: np.ndarray) -> np.ndarray:
+    def resid(theta: np.ndarray, nl: bool = True) -> np.ndarray:
         s = theta[2] if with_slope else 0.0
-        eta = np.asarray(inoue_efficiency_nl(alpha, theta[1] * u + s * v, length_km,
-                                             np.exp(theta[0]) * w_nl))
+        if nl:
+            eta = np.asarray(inoue_efficiency_nl(alpha, theta[1] * u + s * v, length_km,
+                                                 np.exp(theta[0]) * w_nl))
+        else:
+            eta = np.asarray(inoue_efficiency(alpha, theta[1] * u + s * v, length_km))
         return 2.0 * DB * theta[0] + DB * np.log(np.maximum(eta, 1e-300)) - y
 
     starts = _dispersion_starts(y, u, lam, lams, alpha, length_km, d_max, with_slope,
                                 reference_wavelength_nm, s_max)
+    # Stage 1, Inoue's linear mismatch (closed form, fast) from every start, D >= 0.
+    lin = None
+    for d0, s0 in starts:
+        eta0 = np.asarray(inoue_efficiency(alpha, d0 * u + s0 * v, length_km))
+        g0 = float(np.mean(y - DB * np.log(np.maximum(eta0, 1e-300)))) / (2.0 * DB)
+        theta0 = [g0, d0] + ([s0] if with_slope else [])
+        try_sol = least_squares(resid, theta0, kwargs={"nl": False}, x_scale="jac",
+                                bounds=([-np.inf, 0.0] + ([-s_max] if with_slope else []),
+                                        [np.inf, d_max] + ([s_max] if with_slope else [])))
+        if lin is None or try_sol.cost < lin.cost:
+            lin = try_sol
+    # Stage 2, with the SPM/XPM mismatch: the linear mismatch fixes dbeta^2 only, the small
+    # nonlinear term breaks the tie between D and -D (with the slope's sign), so both branches
+    # are refined from the linear solution and the better one kept.
     lo = [-np.inf, -d_max] + ([-s_max] if with_slope else [])
     hi = [np.inf, d_max] + ([s_max] if with_slope else [])
-    # The linear mismatch fixes dbeta^2 only; the small nonlinear term breaks the tie between
-    # D and -D (with the slope's sign), so both branches are fitted and the better one kept.
     best: dict[bool, object] = {}
-    for d0, s0 in starts:
-        for sign in (1.0, -1.0):
-            eta0 = np.asarray(inoue_efficiency(alpha, d0 * u + s0 * v, length_km))
-            g0 = float(np.mean(y - DB * np.log(np.maximum(eta0, 1e-300)))) / (2.0 * DB)
-            theta0 = [g0, sign * d0] + ([sign * s0] if with_slope else [])
-            try_sol = least_squares(resid, theta0, bounds=(lo, hi), x_scale="jac")
-            neg = bool(try_sol.x[1] < 0)
-            if neg not in best or try_sol.cost < best[neg].cost:
-                best[neg] = try_sol
+    for sign in (1.0, -1.0):
+        theta0 = np.array(lin.x, dtype=float)
+        theta0[1:] *= sign
+        theta0[1] = float(np.clip(theta0[1], -d_max, d_max))
+        try_sol = least_squares(resid, theta0, bounds=(lo, hi), x_scale="jac")
+        neg = bool(try_sol.x[1] < 0)
+        if neg not in best or try_sol.cost < best[neg].cost:
+            best[neg] = try_sol
     sol = min(best.values(), key=lambda x: x.cost)
     other = [b.cost for k, b in best.items() if k != bool(sol.x[1] < 0)]
     n, p = r.size, len(sol.x)
@@ -1005,3 +1021,11 @@ def _pol_keys(t, n: int, cop: np.ndarray) -> np.ndarray:
         if name in t:
             return np.array(["|".join(f"{v:.4f}" for v in row) for row in t[name]])
     return np.round(cop, 4).astype(str)
+
+
+def fit_spool(runs_points, spool_length_km: float, loss_db_per_km: float,
+              **kwargs) -> dict[str, FitResult]:
+    """Exact-model (split-step) joint fit of all runs of one spool: labrun.exactfit.fit_spool."""
+    from labrun.exactfit import fit_spool as exact
+
+    return exact(runs_points, spool_length_km, loss_db_per_km, **kwargs)
