@@ -162,6 +162,23 @@ def replay_traffic(store: Store, run_id: int, log_path: str | Path, *,
                          unused_exchanges=len(lib.remaining()), reason=outcome.reason)
 
 
+def stored_traffic_log(store: Store, run_id: int) -> str:
+    """The traffic log file a run recorded it streamed to (its last ``traffic_log`` event, or
+    ``transcript`` for runs stored before 0.2); InputError naming --traffic-log when none."""
+    from labrun.trafficlog import EVENT_KINDS
+
+    original_run(store, run_id)
+    events = [e for e in store.events(run_id, list(EVENT_KINDS)) if (e.data or {}).get("path")]
+    if not events:
+        raise InputError(f"run {run_id} recorded no traffic log: give --traffic-log FILE",
+                         field="--traffic-log")
+    path = str(events[-1].data["path"])
+    if not Path(path).is_file():
+        raise InputError(f"run {run_id}'s traffic log is gone", file=path,
+                         field="--traffic-log")
+    return path
+
+
 def _load_log(path: str | Path) -> Any:
     """A traffic log file (InputError naming --traffic-log when unreadable or not one)."""
     import json

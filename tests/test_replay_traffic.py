@@ -204,3 +204,27 @@ def test_the_backend_passes_over_fewer_polls_answers_extra_ones_and_never_a_sett
         assert not lib.remaining()[1:]  # only the differing setting is left
     finally:
         lib.forget()
+
+
+def test_without_a_file_the_runs_own_log_is_replayed_also_under_the_old_event_name(
+        recorded, tmp_path, capsys):
+    """``--traffic-log`` alone takes the file the run's ``traffic_log`` event names; a run
+    stored before 0.2 names it in a ``transcript`` event, which is read the same way."""
+    folder, db, log = recorded
+    capsys.readouterr()
+    assert main(["replay", "1", "--db", str(db), "--traffic-log", "--json"]) == 0
+    assert json.loads(capsys.readouterr().out)["identical"] is True
+    import sqlite3
+    con = sqlite3.connect(db)
+    with con:
+        con.execute("UPDATE events SET kind = 'transcript' WHERE run_id = 1 AND kind = "
+                    "'traffic_log'")
+    con.close()
+    assert main(["replay", "1", "--db", str(db), "--traffic-log", "--json"]) == 0
+    assert json.loads(capsys.readouterr().out)["identical"] is True
+    con = sqlite3.connect(db)
+    with con:
+        con.execute("DELETE FROM events WHERE run_id = 1 AND kind = 'transcript'")
+    con.close()
+    assert main(["replay", "1", "--db", str(db), "--traffic-log"]) == 2
+    assert "recorded no traffic log" in capsys.readouterr().err

@@ -29,8 +29,9 @@ def register(subparsers: argparse._SubParsersAction) -> None:
                      help="model the spool by its latest stored fit (the run's own fit if none)")
     how.add_argument("--scenario", metavar="FILE",
                      help="model the spool by one of a virtual-lab scenario's (with --spool)")
-    how.add_argument("--traffic-log", metavar="FILE",
-                     help="play back the run's traffic log (from 'labrun run --traffic-log')")
+    how.add_argument("--traffic-log", metavar="FILE", nargs="?", const="",
+                     help="play back the run's traffic log (from 'labrun run --traffic-log'; "
+                          "without FILE, the file the run recorded it streamed to)")
     p.add_argument("--spool", metavar="NAME", help="the scenario's spool to replay against")
     p.add_argument("--time-scale", type=float, default=0.0, metavar="X",
                    help="virtual lab time scale (0: as fast as possible, 1: real time)")
@@ -50,7 +51,7 @@ def cmd_replay(args: argparse.Namespace) -> int:
 
     from labrun.errors import InputError
 
-    if args.traffic_log is not None and not Path(args.traffic_log).is_file():
+    if args.traffic_log and not Path(args.traffic_log).is_file():
         raise InputError("no such traffic log", file=args.traffic_log, field="--traffic-log")
     if args.scenario is not None and not args.spool:
         raise InputError("--scenario needs --spool NAME", field="--spool")
@@ -65,12 +66,13 @@ def cmd_replay(args: argparse.Namespace) -> int:
 
 def _traffic(args: argparse.Namespace) -> int:
     """--traffic-log: play the recording back."""
-    from labrun.replay import replay_traffic
+    from labrun.replay import replay_traffic, stored_traffic_log
     from labrun.store import open_existing_store
 
     store = open_existing_store(args.db, upgrade=True)
     try:
-        result = replay_traffic(store, args.run_id, args.traffic_log,
+        log = args.traffic_log or stored_traffic_log(store, args.run_id)
+        result = replay_traffic(store, args.run_id, log,
                                 progress=not (args.no_progress or args.json))
     finally:
         store.close()
