@@ -39,6 +39,7 @@ from labrun import safety
 from labrun.bench import load_bench
 from labrun.engine import Runner, run_plan
 from labrun.plan import load_plan
+from labrun.rehearse import rehearse
 from labrun.store import Store, open_store
 from labrun.vlab.state import sweep_time_s
 
@@ -260,19 +261,22 @@ class LoopClock:
 
 
 def labrun_run(folder: Path, time_scale: float, n: int, samples: int, settle: float
-               ) -> tuple[float, float, list[float]]:
+               ) -> tuple[float, float, list[float], float]:
     """labrun on a fresh served lab: (start-to-exit seconds of run_plan, point-loop seconds,
-    seconds per point)."""
+    seconds per point, `labrun check`'s estimate of the run)."""
     proc, bench_path = _serve(folder, time_scale)
     clock = LoopClock()
     try:
+        plan = load_plan(_write_plan(folder, n, samples, settle))
+        estimate = rehearse(plan, load_bench(bench_path)).total_s
         wall, _ = _run_bench(folder, bench_path, n, samples, settle)
     finally:
         clock.restore()
         proc.terminate()
         proc.wait(timeout=30)
     marks = [clock.loop_start, *clock.stored]
-    return wall, clock.loop_s, [b - a for a, b in zip(marks, marks[1:], strict=False)]
+    return (wall, clock.loop_s, [b - a for a, b in zip(marks, marks[1:], strict=False)],
+            estimate)
 
 
 def cli_run(folder: Path, time_scale: float, n: int, samples: int, settle: float
@@ -303,7 +307,7 @@ def cli_run(folder: Path, time_scale: float, n: int, samples: int, settle: float
 def realistic(folder: Path, n: int, time_scale: float, settle: float) -> None:
     """Figure 1: plain script and labrun against the imposed time, at a realistic time scale."""
     p_total, p_points, imposed = plain(folder, time_scale, n, 20001, settle)
-    wall, loop, l_points = labrun_run(folder, time_scale, n, 20001, settle)
+    wall, loop, l_points, estimate = labrun_run(folder, time_scale, n, 20001, settle)
     total = sum(imposed)
     print(f"[1] time scale {time_scale:g}, {n} points, 20,001 samples, {settle:g} s plan settle "
           "per power step; imposed = longest settle of what moved + the lab's OSA sweep time")
@@ -315,6 +319,8 @@ def realistic(folder: Path, n: int, time_scale: float, settle: float) -> None:
           f"{l_points[0]:.3f} s)   target <= 1.03x")
     print(f"    labrun run_plan {wall:8.3f} s  ratio {wall / total:6.3f}x  (in-process call: "
           f"{wall - loop:.3f} s outside the point loop)")
+    print(f"    check estimate  {estimate:8.3f} s  {100 * (estimate / wall - 1):+6.1f} % of "
+          f"run_plan, {100 * (estimate / loop - 1):+.1f} % of the loop   target within 5 %")
     cli, first, last = cli_run(folder, time_scale, n, 20001, settle)
     print(f"    labrun run CLI  {cli:8.3f} s  ratio {cli / total:6.3f}x  (own process: start to "
           f"first exchange {first:.3f} s, last exchange to exit {last:.3f} s)")
@@ -325,7 +331,7 @@ def overhead(folder: Path, n: int, repeats: int = 5) -> None:
     rows: list[tuple[float, float]] = []
     for _ in range(max(1, repeats)):
         _, p_points, _ = plain(folder, 0.0, n, 20001, 0.0)
-        _, loop, _ = labrun_run(folder, 0.0, n, 20001, 0.0)
+        _, loop, _, _ = labrun_run(folder, 0.0, n, 20001, 0.0)
         rows.append((statistics.mean(p_points[1:]), loop / n))
     print(f"[2] time scale 0, 20,001-sample traces, {n} points x {len(rows)} repeats "
           "(best repeat | median repeat)")
