@@ -752,26 +752,36 @@ class Runner:
     def commit(self, spec: PointSpec, traces: Sequence[Captured], red: Reduction, attempts: int,
                started: Any) -> None:
         """Point, traces and lines in one transaction (input-trace lines link to that trace)."""
+        self.store_point(self.point_row(spec, traces, red, attempts, started))
+
+    def point_row(self, spec: PointSpec, traces: Sequence[Captured], red: Reduction,
+                  attempts: int, started: Any) -> dict[str, Any]:
+        """Everything the store keeps of a point, taken now (the settings applied change with
+        the next point while the writer thread stores this one)."""
         lines = [_line_dict(ml, trace=i) for i, tr in enumerate(traces)
                  for ml in tr.reduction.lines]
+        applied = {f"{r}.{m}": v for (r, m), v in self.applied.items()}
+        return dict(
+            key=spec.key, index=spec.index, setpoint=_jsonable(spec.setpoint),
+            repeat=spec.repeat, is_reference=spec.is_reference,
+            traces=[TraceData(tr.x, tr.y, kind=tr.kind, rbw_nm=self.rbw_nm,
+                              settings=self.trace_meta if tr.kind == "output"
+                              else self.input_meta)
+                    for tr in traces],
+            lines=lines, applied=_jsonable(applied),
+            spacing_ghz=red.spacing_ghz, floor_dbm=red.floor_dbm, flags=list(red.flags),
+            attempts=attempts, started_at=started,
+        )
+
+    def store_point(self, row: dict[str, Any]) -> None:
+        """One transaction for a point row (on the writer thread during a run)."""
         from sqlalchemy.exc import IntegrityError
 
-        applied = {f"{r}.{m}": v for (r, m), v in self.applied.items()}
         try:
-            self.store.add_point(
-                self.run_id, key=spec.key, index=spec.index, setpoint=_jsonable(spec.setpoint),
-                repeat=spec.repeat, is_reference=spec.is_reference,
-                traces=[TraceData(tr.x, tr.y, kind=tr.kind, rbw_nm=self.rbw_nm,
-                                  settings=self.trace_meta if tr.kind == "output"
-                                  else self.input_meta)
-                        for tr in traces],
-                lines=lines, applied=_jsonable(applied),
-                spacing_ghz=red.spacing_ghz, floor_dbm=red.floor_dbm, flags=list(red.flags),
-                attempts=attempts, started_at=started,
-            )
+            self.store.add_point(self.run_id, **row)
         except IntegrityError:
             # a retry after a connection lost just after the commit: stored once, keep going
-            if spec.key not in self.store.completed_keys(self.run_id):
+            if row["key"] not in self.store.completed_keys(self.run_id):
                 raise
         self.committed += 1
         self.last_beat = self.clock()
@@ -784,17 +794,24 @@ class Runner:
             flush()
 
     def run_points(self, specs: Sequence[PointSpec], *, done: int, total: int) -> int:
-        """Measure and store every spec in order; returns the number of points stored in all."""
+        """Measure and store every spec in order; returns the number of points stored in all.
+
+        Point N is committed on a writer thread (``labrun.writer``) while point N+1 is measured;
+        every way out of the loop first lets the point in flight finish storing.
+        """
         from labrun.store.models import utcnow
+        from labrun.writer import PointWriter
 
         bar = _progress(total, done, self.show_progress)
+        writer = PointWriter()
         try:
             for spec in specs:
                 self.guard.check()
                 started = utcnow()
                 traces, red, attempts = self.measure(spec)
                 self.flush_traffic_log()  # before the commit: a stored point's traffic is on disk
-                self.commit(spec, traces, red, attempts, started)
+                row = self.point_row(spec, traces, red, attempts, started)
+                writer.submit(lambda row=row: self.store_point(row))
                 done += 1
                 if bar is not None:
                     bar.set_postfix_str(_postfix(red), refresh=False)
@@ -802,6 +819,11 @@ class Runner:
                 reason = self.stops.update(red.lines)
                 if reason:
                     raise StopRequested(reason)
+        except BaseException:
+            writer.close(raise_errors=False)  # the point in flight is stored all the same
+            raise
+        else:
+            writer.close()
         finally:
             if bar is not None:
                 bar.close()
