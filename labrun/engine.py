@@ -36,7 +36,7 @@ from labrun.instruments.base import FLOAT_SLACK
 from labrun.physics.units import nm_to_thz
 from labrun.plan import Plan, PointSpec, StopWatch
 from labrun.preload import preload
-from labrun.roles import SOURCE_ROLES
+from labrun.roles import ATTENUATOR_ROLES, LASER_ROLES, SOURCE_ROLES, SWEEP_ROLES
 from labrun.runstore import (
     RunStore,
     StoreFault,
@@ -169,8 +169,7 @@ def preflight(plan: Plan, bench: Any, *, operator: str | None, unattended: bool,
 
 def require_roles(plan: Plan, bench: Any) -> None:
     """Refuse (InputError, exit 2) a bench that lacks a role the sweep or the plan needs."""
-    missing = [r for r in ("laser_a", "laser_b", "attenuator_a", "attenuator_b",
-                           "pol_controller", "osa") if r not in bench.instruments]
+    missing = [r for r in SWEEP_ROLES if r not in bench.instruments]
     if missing:
         raise InputError(f"a sweep needs roles {', '.join(missing)}", file=str(bench.path),
                          field="instruments")
@@ -544,7 +543,7 @@ class Runner:
 
             read_back_all([p for p in pending.planned if p.op.name == "set_power_dbm"])
         deadline = pending.deadline
-        on = ["attenuator_a", "attenuator_b", "laser_a", "laser_b"]
+        on = [*ATTENUATOR_ROLES, *LASER_ROLES]
         for role in on + (["amplifier"] if self.use_amplifier else []):
             adapter = self.role(role)
             adapter.output_on(settle=False)  # its settle time overlaps the settings' wait

@@ -22,12 +22,13 @@ from pathlib import Path
 from typing import Any
 
 from labrun.resources import find_file
+from labrun.roles import ATTENUATOR_ROLES, SOURCE_ROLES
 from labrun.vlab.lab import VirtualLab
 from labrun.vlab.watch import StateWatch
 
 OPERATOR = "T. Varga"  # invented
-SOURCES = ("laser_a", "laser_b", "amplifier")
-ATTENUATORS = ("attenuator_a", "attenuator_b")
+SOURCES = SOURCE_ROLES
+ATTENUATORS = ATTENUATOR_ROLES
 
 
 @dataclass(frozen=True)

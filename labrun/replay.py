@@ -19,6 +19,7 @@ import pandas as pd
 from sqlalchemy import or_, select
 
 from labrun.errors import InputError
+from labrun.roles import ROLE_KINDS
 from labrun.store import Line, Point, Store, Trace
 
 # Line columns compared bit for bit between a run and its replay.
@@ -315,8 +316,7 @@ def lab_scenario(bench: Any, spool: ModelSpool, base: Any = None) -> dict[str, A
     caps = {r: s.max_power_dbm for r, s in bench.instruments.items()
             if s.max_power_dbm is not None}
     instruments: dict[str, Any] = {}
-    for role in ("laser_a", "laser_b", "attenuator_a", "attenuator_b", "pol_controller", "osa",
-                 "amplifier", "power_meter", "switch"):
+    for role in ROLE_KINDS:
         spec = {"present": role in bench.instruments}
         if base is not None:
             spec = {**getattr(base.instruments, role).model_dump(exclude_none=True), **spec}

@@ -14,6 +14,10 @@ ROLE_KINDS: dict[str, str] = {
 SWEEP_ROLES = ("laser_a", "laser_b", "attenuator_a", "attenuator_b", "pol_controller", "osa")
 # Roles that emit light and carry a bench power cap.
 SOURCE_ROLES = ("laser_a", "laser_b", "amplifier")
+LASER_ROLES = ("laser_a", "laser_b")
 ATTENUATOR_ROLES = ("attenuator_a", "attenuator_b")
+# Roles that carry light to the spool, darkened on every way out: strongest source first.
+OFF_ROLES = ("amplifier", *LASER_ROLES, *ATTENUATOR_ROLES)
 
-__all__ = ["ATTENUATOR_ROLES", "ROLE_KINDS", "SOURCE_ROLES", "SWEEP_ROLES"]
+__all__ = ["ATTENUATOR_ROLES", "LASER_ROLES", "OFF_ROLES", "ROLE_KINDS", "SOURCE_ROLES",
+           "SWEEP_ROLES"]

@@ -18,11 +18,11 @@ import time
 from collections.abc import Callable, Mapping
 from typing import Any, TypeVar
 
+from labrun.roles import OFF_ROLES
+
 log = logging.getLogger(__name__)
 log.addHandler(logging.NullHandler())  # library: shown only when the application configures logging
 
-# Roles that carry light to the spool, switched off (or closed) on every exit; strongest first.
-OFF_ROLES = ("amplifier", "laser_a", "laser_b", "attenuator_a", "attenuator_b")
 TIMEOUT_MS = 1000  # per exchange while darkening: a reachable instrument answers in far less
 BUDGET_S = 4.0     # a role not confirmed dark by then is reported (the others are long done)
 PAUSE_S = 0.2      # between fresh tries of a role that could not be reached

@@ -17,7 +17,8 @@ import threading
 from types import FrameType
 from typing import Any
 
-from labrun.safe_off import BUDGET_S, OFF_ROLES, PAUSE_S, darken
+from labrun.roles import OFF_ROLES
+from labrun.safe_off import BUDGET_S, PAUSE_S, darken
 
 __all__ = ["OFF_ROLES", "RunInterrupted", "SafeOffGuard", "safe_off", "safe_off_fresh"]
 

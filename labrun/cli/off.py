@@ -15,7 +15,8 @@ import sys
 import time
 from typing import Any
 
-from labrun.safe_off import BUDGET_S, OFF_ROLES, PAUSE_S, in_parallel, quick_adapter
+from labrun.roles import OFF_ROLES
+from labrun.safe_off import BUDGET_S, PAUSE_S, in_parallel, quick_adapter
 
 
 def register(subparsers: Any) -> None:

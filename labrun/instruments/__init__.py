@@ -20,6 +20,7 @@ from labrun.instruments.osa import OsaAdapter
 from labrun.instruments.pol_controller import PolControllerAdapter
 from labrun.instruments.power_meter import PowerMeterAdapter
 from labrun.instruments.switch import SwitchAdapter
+from labrun.roles import OFF_ROLES
 from labrun.scpi import FaultHook, Idn, ScpiSession, compound, query_each
 from labrun.trafficlog import TrafficLog, split_units
 
@@ -37,7 +38,7 @@ ADAPTERS: dict[str, type[Adapter]] = {
                               PowerMeterAdapter, AmplifierAdapter, SwitchAdapter)
 }
 # Order in which safe_off_all darkens the bench: the strongest source first, attenuators last.
-SAFE_OFF_ORDER = ("amplifier", "laser_a", "laser_b", "attenuator_a", "attenuator_b")
+SAFE_OFF_ORDER = OFF_ROLES
 SAFE_OFF_TRIES = 3  # a garbled reply or a stray error-queue entry must not leave a source on
 
 

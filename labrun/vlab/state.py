@@ -17,6 +17,7 @@ import numpy as np
 
 from labrun.physics.fibre import Fibre
 from labrun.physics.units import dbm_to_mw, mw_to_dbm, nm_to_thz
+from labrun.roles import ATTENUATOR_ROLES, LASER_ROLES
 from labrun.vlab.realism import PolarisationWalk, RandomWalk, role_rng
 from labrun.vlab.scenario import Realism, Scenario
 
@@ -154,8 +155,8 @@ class LabState:
         self._t0 = time.monotonic()
         self._op_clock = 0.0
         real = scenario.realism if scenario.realism.enabled else None
-        self.lasers = {r: self._make_laser(r, real) for r in ("laser_a", "laser_b")}
-        self.attenuators = {r: Attenuator() for r in ("attenuator_a", "attenuator_b")}
+        self.lasers = {r: self._make_laser(r, real) for r in LASER_ROLES}
+        self.attenuators = {r: Attenuator() for r in ATTENUATOR_ROLES}
         self.pol = PolController()
         present = scenario.instruments
         self.amplifier = Amplifier() if present.amplifier.present else None
