@@ -245,6 +245,7 @@ class Runner:
         self.dark_since: float | None = None
         self.may_emit = True  # something may have been switched on since the last go_dark
         self.committed = 0  # points this process stored
+        self.early: list[tuple[str, str, dict[str, Any]]] = []  # events before the run row
         self.unrecorded: list[tuple[str, str]] = []  # events the database refused meanwhile
         self.watchdog: PointWatchdog | None = None
         self.profile_settle_s = sum(op.settle_s for spec in bench.instruments.values()
@@ -265,8 +266,24 @@ class Runner:
             message += f" ({command[:80]!r}, attempt {attempt})"
         if level == "reconnect":
             message = f"reconnect failed: {message}"
-        self.store.add_event(self.run_id, "fault", message, role=role,
+        self.event("fault", message, role=role,
                              point_key=self.current_key, data=data)
+
+    def event(self, kind: str, message: str, **fields: Any) -> None:
+        """An event of this run; kept until the run row exists (``attach``) when opening the
+        bench comes first (its identities go into the transaction that creates the run)."""
+        if self.run_id is None:
+            self.early.append((kind, message, fields))
+        else:
+            self.store.add_event(self.run_id, kind, message, **fields)
+
+    def attach(self, run_id: int) -> int:
+        """The run row now exists: write the events kept meanwhile; the run id."""
+        self.run_id = run_id
+        while self.early:
+            kind, message, fields = self.early.pop(0)
+            self.store.add_event(run_id, kind, message, **fields)
+        return run_id
 
     def command_fault(self, session: Any, text: str, exc: BaseException, attempt: int) -> None:
         """Session hook: a failed exchange (the session reconnects and retries it itself)."""
@@ -309,7 +326,7 @@ class Runner:
                 if attempt >= self.policy.attempts:
                     raise RunAborted(f"cannot open the bench: {exc} (after {attempt} attempts)"
                                      ) from exc
-                self.store.add_event(self.run_id, "retry", f"opening the bench, attempt "
+                self.event("retry", f"opening the bench, attempt "
                                      f"{attempt + 1}", data={"attempt": attempt + 1})
                 self.wait_until(self.clock() + self.policy.delay_s(attempt) * self.scale)
 
@@ -419,7 +436,7 @@ class Runner:
     def beat(self, force: bool = False) -> None:
         """Heartbeat in the store, at most once a second."""
         now = self.clock()
-        if force or now - self.last_beat >= 1.0:
+        if (force or now - self.last_beat >= 1.0) and self.run_id is not None:
             self.store.heartbeat(self.run_id)
             self.last_beat = now
 
@@ -941,13 +958,25 @@ def run_plan(plan: Plan, bench: Any, store: Store, *, operator: str | None = Non
         print(text, file=echo)
     store = as_run_store(store)  # a database fault from here on is one line, not a traceback
     specs = list(plan.points())
-    run_id = store.create_run(**_run_fields(plan, bench, operator=operator,
-                                            unattended=unattended, total=len(specs)),
-                              spool_id=store.spool_id(plan.spool, **plan.spool_info))
-    record_ack(store, run_id, plan, bench, operator=operator, unattended=unattended, text=text)
-    record_traffic_log(store, run_id, traffic_log)
-    return _execute(plan, bench, store, run_id, specs, done=0, policy=policy,
-                    progress=progress, traffic_log=traffic_log, first=True)
+    fields = _run_fields(plan, bench, operator=operator, unattended=unattended,
+                         total=len(specs))
+    spool_id = store.spool_id(plan.spool, **plan.spool_info)
+
+    made: list[int] = []
+
+    def create(identities: dict[str, str] | None) -> int:
+        """The run row with the identities just read (None: the bench never opened), in one
+        transaction: a run killed right after it can be resumed without --force. Once."""
+        if made:
+            return made[0]
+        made.append(store.create_run(**fields, spool_id=spool_id, identities=identities))
+        record_ack(store, made[0], plan, bench, operator=operator, unattended=unattended,
+                   text=text)
+        record_traffic_log(store, made[0], traffic_log)
+        return made[0]
+
+    return _execute(plan, bench, store, None, specs, done=0, policy=policy,
+                    progress=progress, traffic_log=traffic_log, first=True, create=create)
 
 
 def run_virtual(plan: Plan, bench: Any, store: Store, *, replay_of: int, mode: str,
@@ -1000,15 +1029,17 @@ def record_traffic_log(store: Store, run_id: int, traffic_log: Any) -> None:
                         data={"path": str(path)})
 
 
-def _execute(plan: Plan, bench: Any, store: Store, run_id: int, specs: Sequence[PointSpec], *,
-             done: int, policy: RetryPolicy | None, progress: bool, traffic_log: Any,
-             first: bool, expect_identities: dict[str, str] | None = None,
-             force: bool = False) -> RunOutcome:
-    """Open, run ``specs``, and close run ``run_id`` under the safe-off guard."""
+def _execute(plan: Plan, bench: Any, store: Store, run_id: int | None,
+             specs: Sequence[PointSpec], *, done: int, policy: RetryPolicy | None,
+             progress: bool, traffic_log: Any, first: bool,
+             expect_identities: dict[str, str] | None = None, force: bool = False,
+             create: Callable[[dict[str, str] | None], int] | None = None) -> RunOutcome:
+    """Open, run ``specs``, and close run ``run_id`` under the safe-off guard. Without a
+    ``run_id``, ``create(identities)`` makes the run row once the bench is open."""
     from labrun.store.models import utcnow
 
     preload("labrun.reduce")  # scipy: imported while the bench opens and the first point settles
-    total = int(store.get_run(run_id).points_total)
+    total = len(specs) + done if run_id is None else int(store.get_run(run_id).points_total)
     guard = SafeOffGuard(bench)
     store = as_run_store(store)  # a database fault: darken, retry briefly, then StoreFault
     runner = Runner(plan, bench, store, run_id, guard, policy=policy or RetryPolicy(),
@@ -1022,6 +1053,8 @@ def _execute(plan: Plan, bench: Any, store: Store, run_id: int, specs: Sequence[
         try:
             runner.osa_settings = plan.osa_settings(bench)
             identities = runner.open_retrying()
+            if run_id is None and create is not None:
+                run_id = runner.attach(create(identities))
             if expect_identities is not None:
                 check_identities(expect_identities, identities, force=force, run_id=run_id,
                                  store=store)
@@ -1061,6 +1094,9 @@ def _execute(plan: Plan, bench: Any, store: Store, run_id: int, specs: Sequence[
             return [("signal", f"{_signal.Signals(guard.signum).name} received while the run "
                                f"was finishing ({status}); recorded, not acted on")]
 
+        if runner.run_id is None and create is not None:  # the bench never opened
+            runner.attach(create(None))
+        run_id = runner.run_id
         reason = _record_end(store, run_id, status, reason, events, problems, late_signal)
     finally:
         guard.uninstall()

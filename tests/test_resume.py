@@ -14,6 +14,7 @@ from _engine_support import (
     OPERATOR,
     count_points,
     dark,
+    long_powers,
     run_in_process,
     scenario,
     wait_for,
@@ -204,3 +205,36 @@ def test_resume_on_a_bench_with_a_lower_cap_is_refused(tmp_path, capsys):
         assert not store.events(1, ["resume"]) and len(store.events(1, ["safety_ack"])) == 1
         assert store.count_points(1) == 2 and dark(lab)
         store.close()
+
+
+def test_a_run_that_dies_right_after_its_row_is_created_resumes_without_force(tmp_path,
+                                                                             monkeypatch):
+    """The identities go into the transaction that creates the run: a process that dies just
+    after (here: in the next write) leaves a run that resumes on the same instruments without
+    --force (the row used to get them later, and a run killed before that needed --force)."""
+    import labrun.engine
+    from labrun.bench import load_bench
+    from labrun.engine import resume_run, run_plan
+    from labrun.vlab.lab import VirtualLab
+
+    real = labrun.engine.record_traffic_log
+
+    def dies(*_a, **_k):
+        raise RuntimeError("process killed (simulated)")
+
+    monkeypatch.setattr(labrun.engine, "record_traffic_log", dies)
+    with VirtualLab(scenario()) as lab:
+        plan = load_plan(write_plan(tmp_path, long_powers(4)))
+        bench = load_bench(write_bench(lab, tmp_path))
+        store = open_store(tmp_path / "runs.db")
+        with pytest.raises(RuntimeError, match="killed"):
+            run_plan(plan, bench, store, operator=RESUMER, unattended=True, ack_safety=True,
+                     progress=False)
+        run = store.get_run(store.latest_run_id())
+        assert set(run.identities) == set(bench.instruments) and lab.sources_off()
+        assert store.count_points(run.id) == 0
+        monkeypatch.setattr(labrun.engine, "record_traffic_log", real)
+        out = resume_run(run.id, store, operator=RESUMER, unattended=True, ack_safety=True,
+                         progress=False)
+        assert out.status == "completed" and out.points_done == 4
+        assert not store.events(run.id, ["forced"])
