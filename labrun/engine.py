@@ -662,12 +662,12 @@ class Runner:
     def overrun(self) -> None:
         """Watchdog thread: the attempt outlived its bound; darken now, over fresh connections
         where the run loop holds a session (it is told by ``check_progress``)."""
-        darken(self.bench, self.instruments)
+        self.darken_bench()
 
     def store_dark(self, exc: BaseException) -> None:
         """RunStore hook, at a database fault: darken before the brief retries (the event is
         written once the database takes it again, or goes to the fallback record)."""
-        problems = darken(self.bench, self.instruments)
+        problems = self.darken_bench()
         self.may_emit = self.emitting = False
         self.applied.clear()
         self.trace_x = None
@@ -675,6 +675,10 @@ class Runner:
             self.dark_since = self.clock()
         note = "" if not problems else "; NOT CONFIRMED OFF: " + "; ".join(problems)
         self.unrecorded.append(("dark", f"sources off after a {describe(exc)}{note}"))
+
+    def darken_bench(self) -> list[str]:
+        """Every source off at once (labrun/safe_off.py); the problems left."""
+        return darken(self.bench, self.instruments)
 
     def check_progress(self) -> None:
         """In the run loop: PointOverrun once the current attempt's watchdog fired."""
@@ -689,7 +693,7 @@ class Runner:
         ``done``: the watchdog already darkened the bench."""
         if not self.may_emit and not done:
             return  # still dark from the last fault: nothing was switched on since
-        problems = [] if done else darken(self.bench, self.instruments)
+        problems = [] if done else self.darken_bench()
         self.may_emit = False
         self.emitting = False
         self.applied.clear()

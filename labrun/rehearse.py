@@ -187,6 +187,10 @@ class DryRunner(Runner):
     def beat(self, force: bool = False) -> None:
         """No heartbeat: nothing is stored."""
 
+    def darken_bench(self) -> list[str]:
+        """Nothing emits in a rehearsal: a fault's safe-off opens no real connection."""
+        return []
+
 
 @dataclass
 class PointRehearsal:
