@@ -107,3 +107,24 @@ def test_an_interlock_is_not_retried(tmp_path):
 def test_backoff_grows_per_attempt_up_to_its_limit():
     policy = RetryPolicy(backoff_s=1.0, backoff_factor=2.0, max_backoff_s=5.0)
     assert [policy.delay_s(n) for n in (1, 2, 3, 4)] == [1.0, 2.0, 4.0, 5.0]
+
+
+def test_an_unreducible_trace_is_a_retried_fault_not_a_traceback(tmp_path, monkeypatch):
+    """issue 13: an OSA trace holding a 1e5 dBm sample (beyond what any OSA reads) cannot be
+    reduced; the run records it as an instrument fault, retries, and ends aborted and dark."""
+    import labrun.reduce as reduce
+
+    original = reduce.reduce_trace
+
+    def spiked(x, y, *args, **kwargs):
+        y = np.array(y, dtype=float)
+        y[len(y) // 3] = 1e5
+        return original(x, y, *args, **kwargs)
+
+    monkeypatch.setattr(reduce, "reduce_trace", spiked)
+    with VirtualLab(scenario()) as lab:
+        _plan, _bench, store, out = _run(tmp_path, lab, 3,
+                                         RetryPolicy(attempts=2, backoff_s=0.0))
+        assert out.status == "aborted" and "cannot be reduced" in out.reason, out.reason
+        assert "power samples" in out.reason and out.points_done == 0 and dark(lab)
+    assert len(store.events(out.run_id, ["fault"])) == 2
