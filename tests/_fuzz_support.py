@@ -363,19 +363,24 @@ def _no_constants(name: str) -> float:
 
 
 def run_case(case: Case, *, time_limit_s: float = TIME_LIMIT_S) -> Outcome:
-    """Run ``labrun <argv>`` in-process (instrument sessions forbidden) and classify it."""
+    """Run ``labrun <argv>`` in-process (real VISA backends forbidden) and classify it."""
+    from labrun import scpi
     from labrun.cli import main
-    from labrun.scpi import ScpiSession
 
-    def forbid(self: Any, *a: Any, **k: Any) -> Any:
-        raise _Opened(f"instrument session opened: {getattr(self, 'resource', '?')}")
+    original_rm = scpi.resource_manager
+
+    def forbid(backend: str, sim_file: Any = None) -> Any:
+        """A real VISA backend is off limits; a rehearsal's recording library (``labrun check``
+        rehearses the run through scpi.visa_library_override) is not an instrument."""
+        if scpi._OVERRIDE is None:
+            raise _Opened(f"instrument session opened via {backend}")
+        return original_rm(backend, sim_file)
 
     def alarm(*_: Any) -> None:
         raise _TimeLimit()
 
     out, err = io.StringIO(), io.StringIO()
-    original_open = ScpiSession.open
-    ScpiSession.open = forbid  # type: ignore[method-assign]
+    scpi.resource_manager = forbid
     previous = signal.signal(signal.SIGALRM, alarm)
     signal.setitimer(signal.ITIMER_REAL, time_limit_s)
     start = time.perf_counter()
@@ -396,7 +401,7 @@ def run_case(case: Case, *, time_limit_s: float = TIME_LIMIT_S) -> Outcome:
     finally:
         signal.setitimer(signal.ITIMER_REAL, 0)
         signal.signal(signal.SIGALRM, previous)
-        ScpiSession.open = original_open  # type: ignore[method-assign]
+        scpi.resource_manager = original_rm
     seconds = time.perf_counter() - start
     stderr = err.getvalue()
     if code == 2:

@@ -61,8 +61,8 @@ def cmd_demo(args: argparse.Namespace) -> int:
     from labrun.vlab import VirtualLab
     from labrun.vlab.scenario import load_scenario
 
-    if args.time_scale < 0:
-        raise InputError("must be >= 0", field="--time-scale")
+    if not 0 <= args.time_scale <= 1e6:  # NaN and infinity fail too
+        raise InputError(f"{args.time_scale:g} is outside [0, 1e6]", field="--time-scale")
     plan = load_plan(_resolve(args.plan, "sweeps", "--plan"))
     scenario = load_scenario(_resolve(args.scenario, "sim_instruments", "--scenario"))
     if plan.spool in {sp.name for sp in scenario.spools}:  # splice in the spool the plan names

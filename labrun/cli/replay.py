@@ -57,8 +57,8 @@ def cmd_replay(args: argparse.Namespace) -> int:
         raise InputError("--scenario needs --spool NAME", field="--spool")
     if args.spool and args.scenario is None:
         raise InputError("--spool goes with --scenario FILE", field="--spool")
-    if args.time_scale < 0:
-        raise InputError("must be >= 0", field="--time-scale")
+    if not 0 <= args.time_scale <= 1e6:  # NaN and infinity fail too
+        raise InputError(f"{args.time_scale:g} is outside [0, 1e6]", field="--time-scale")
     if args.traffic_log is not None:
         return _traffic(args)
     return _model(args)

@@ -80,7 +80,7 @@ class InstrumentSpec(_Strict):
     """One simulated instrument: presence, identity, port (0 = ephemeral) and kind extras."""
 
     present: bool = True
-    idn: str | None = None
+    idn: str | None = Field(default=None, pattern=r"^[ -~]{1,200}$")  # printable, one reply
     port: int = Field(default=0, ge=0, le=65535)
     # osa only
     floor_dbm: float | None = Field(default=None, ge=-120, le=0)
