@@ -18,7 +18,7 @@ from labrun.store import Store
 
 # Common conditions of the first-sideband efficiency (invented, typical of the shipped sweeps).
 COMMON = {"spacing_ghz": 50.0, "power_dbm": 0.0, "wavelength_nm": 1550.0}
-GAMMA = ("gamma_bessel", "gamma_small_signal")  # preferred order
+GAMMA = ("gamma", "gamma_bessel", "gamma_small_signal")  # preferred order (exact model first)
 HISTORY_PARAMS = ("gamma_per_w_per_km", "abs_dispersion_ps_per_nm_km",
                   "dispersion_slope_ps_per_nm2_km")
 

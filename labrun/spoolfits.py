@@ -1,7 +1,7 @@
 """Fits of a spool's stored runs: gather the runs' points, fit them together, store the result.
 
 ``fit_runs`` reads the points of one or more runs of ONE spool (a spacing run supplies the
-dispersion a power run lacks), fits them with ``_fit_table`` (the one place that names the fit
+dispersion a power run lacks), fits them with ``_fit_tables`` (the one place that names the fit
 model of ``labrun.fits``), adds the 95 % expanded uncertainty of each parameter and, unless told
 not to, stores the fit (tables ``fits`` and ``fit_parameters``). ``latest_fits`` and
 ``fit_history`` read stored fits back for ``labrun spools`` and ``labrun compare``.
@@ -120,11 +120,14 @@ def from_fit(result: Any) -> ParameterRecord:
                            residual_rms=_finite(result.residual_rms), extra=extra)
 
 
-def _fit_table(table: Any, spool: Spool) -> dict[str, Any]:
-    """Fit the points of one spool's runs (the one call to switch to another fit model)."""
+def _fit_tables(tables: list[Any], spool: Spool) -> dict[str, Any]:
+    """Fit one spool's runs, one point table per run: the one call to switch fit model (the
+    exact-model joint fit is ``labrun.fits.fit_spool(tables, length, loss)``, same arguments)."""
+    import pandas as pd
+
     from labrun.fits import fit_run
 
-    return fit_run(table, spool.length_km, spool.loss_db_per_km)
+    return fit_run(pd.concat(tables, ignore_index=True), spool.length_km, spool.loss_db_per_km)
 
 
 def _spool_of(store: Store, run_ids: list[int]) -> Spool:
@@ -149,7 +152,6 @@ def _spool_of(store: Store, run_ids: list[int]) -> Spool:
 
 def fit_runs(store: Store, run_ids: list[int], *, save: bool = True) -> FitRecord:
     """Fit the runs of one spool together; stores the fit unless ``save`` is False."""
-    import pandas as pd
 
     from labrun.queries import run_points
 
@@ -160,11 +162,10 @@ def fit_runs(store: Store, run_ids: list[int], *, save: bool = True) -> FitRecor
                          f"labrun spool set {spool.label} --length-km KM --loss-db-per-km DB",
                          field="spool")
     tables = [run_points(store, r, include_reference=False).assign(run_id=r) for r in run_ids]
-    table = pd.concat([t for t in tables if not t.empty], ignore_index=True) \
-        if any(not t.empty for t in tables) else pd.DataFrame()
-    if table.empty:
+    tables = [t for t in tables if not t.empty]
+    if not tables:
         raise InputError("the runs have no stored points to fit", field="RUN_ID")
-    results = _fit_table(table, spool)
+    results = _fit_tables(tables, spool)
     params = {name: from_fit(r) for name, r in results.items()}
     record = FitRecord(spool=spool.label, run_ids=run_ids, parameters=params,
                        spool_snapshot={"length_km": spool.length_km,

@@ -50,7 +50,7 @@ def _source(sp: dict[str, Any]) -> str:
 
 def _side_by_side(rep: dict[str, Any]) -> str:
     spools = rep["spools"]
-    width = 30
+    width = 36
     out = [f"{'':<18}" + "".join(f"{sp['spool']:<{width}}" for sp in spools)]
     for key, name in ROWS:
         out.append(f"{name:<18}" + "".join(f"{_value(sp.get(key)):<{width}}" for sp in spools))

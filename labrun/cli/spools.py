@@ -10,7 +10,7 @@ from labrun.store import DEFAULT_DB
 
 # What ``spools`` and ``compare`` show of a fit, in order: (column, fit parameter names in order
 # of preference). Gamma from the dual-frequency Bessel fit when there is one.
-HEADLINE = (("gamma_per_w_per_km", ("gamma_bessel", "gamma_small_signal")),
+HEADLINE = (("gamma_per_w_per_km", ("gamma", "gamma_bessel", "gamma_small_signal")),
             ("dispersion_ps_per_nm_km", ("dispersion",)),
             ("dispersion_slope_ps_per_nm2_km", ("dispersion_slope",)))
 
