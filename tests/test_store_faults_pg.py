@@ -9,7 +9,7 @@ from __future__ import annotations
 import json
 import uuid
 
-from _engine_support import count_points, dark, run_in_process, scenario
+from _engine_support import count_points, dark, run_in_process, scenario, wait_for
 from sqlalchemy import create_engine, text
 from sqlalchemy.engine import make_url
 
@@ -64,8 +64,9 @@ def test_a_dropped_connection_is_retried_and_the_run_completes(tmp_path, pg_url)
         with VirtualLab(scenario()) as lab:
             with run_in_process(lab, tmp_path, N_POINTS, "--json", min_points=5,
                                 db=role.url) as (proc, plan, _bench, _db):
-                assert role.cut(for_good=False) >= 1
-                out, err = proc.communicate(timeout=120)
+                # the run's connections: one cut that hit at least one of them
+                assert wait_for(lambda: role.cut(for_good=False) >= 1, 10) is not None
+                out, err = proc.communicate(timeout=300)
             assert proc.returncode == 0, err
             assert dark(lab)
         rep = json.loads(out)
@@ -93,8 +94,8 @@ def test_a_lost_server_stops_the_run_dark_with_a_clear_status(tmp_path, pg_url, 
         with VirtualLab(scenario()) as lab:
             with run_in_process(lab, tmp_path, N_POINTS, min_points=5,
                                 db=role.url) as (proc, _plan, _bench, _db):
-                assert role.cut(for_good=True) >= 1
-                _, err = proc.communicate(timeout=120)
+                assert wait_for(lambda: role.cut(for_good=True) >= 1, 10) is not None
+                _, err = proc.communicate(timeout=300)
             assert proc.returncode == 1, err
             assert "Traceback" not in err
             assert dark(lab)
