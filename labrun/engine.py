@@ -951,7 +951,8 @@ def run_plan(plan: Plan, bench: Any, store: Store, *, operator: str | None = Non
              unattended: bool = False, ack_safety: bool = False,
              confirm: Callable[[str], bool] | None = None, policy: RetryPolicy | None = None,
              progress: bool = True, traffic_log: Any = None,
-             echo: TextIO | None = None) -> RunOutcome:
+             echo: TextIO | None = None,
+             estimate_s_per_point: float | None = None) -> RunOutcome:
     """Run a plan on a bench into the store; returns how it ended (never leaves a source on).
 
     Raises InputError/SafetyError before touching anything when the run may not start.
@@ -980,7 +981,8 @@ def run_plan(plan: Plan, bench: Any, store: Store, *, operator: str | None = Non
         return made[0]
 
     return _execute(plan, bench, store, None, specs, done=0, policy=policy,
-                    progress=progress, traffic_log=traffic_log, first=True, create=create)
+                    progress=progress, traffic_log=traffic_log, first=True, create=create,
+                    estimate=estimate_s_per_point)
 
 
 def run_virtual(plan: Plan, bench: Any, store: Store, *, replay_of: int, mode: str,
@@ -1037,7 +1039,8 @@ def _execute(plan: Plan, bench: Any, store: Store, run_id: int | None,
              specs: Sequence[PointSpec], *, done: int, policy: RetryPolicy | None,
              progress: bool, traffic_log: Any, first: bool,
              expect_identities: dict[str, str] | None = None, force: bool = False,
-             create: Callable[[dict[str, str] | None], int] | None = None) -> RunOutcome:
+             create: Callable[[dict[str, str] | None], int] | None = None,
+             estimate: float | None = None) -> RunOutcome:
     """Open, run ``specs``, and close run ``run_id`` under the safe-off guard. Without a
     ``run_id``, ``create(identities)`` makes the run row once the bench is open."""
     from labrun.store.models import utcnow
@@ -1068,7 +1071,8 @@ def _execute(plan: Plan, bench: Any, store: Store, run_id: int | None,
                 fields.update(identities=identities, started_at=utcnow(),
                               settings={"osa": _jsonable(runner.osa_settings.to_dict()),
                                         "settle_scale": runner.scale,
-                                        "retry": asdict(runner.policy)})
+                                        "retry": asdict(runner.policy),
+                                        "estimate_s_per_point": estimate})
             store.update_run(run_id, **fields)
             runner.run_points(specs, done=done, total=total)
             finished = True
@@ -1134,6 +1138,20 @@ def _record_end(store: RunStore, run_id: int, status: str, reason: str | None,
                                           "events": todo, "store_faults": store.faults})
         where = f"kept in {path}" if path else "NOT KEPT anywhere (see the log)"
         return f"{reason or status}; the database refused the final status ({exc}), {where}"
+
+
+def estimate_per_point(plan: Plan, bench: Any, points: int = 4) -> float | None:
+    """Seconds per point as ``labrun check`` rehearses the first points (after the first, which
+    also switches on): the ETA ``labrun status`` shows until points are measured (``labrun run``
+    passes it to ``run_plan``). None when the rehearsal fails; an estimate never stops a run."""
+    from labrun.rehearse import rehearse
+
+    try:
+        done = rehearse(plan, bench, limit=points).points
+    except Exception:  # noqa: BLE001 - the run itself reports any real problem
+        return None
+    later = [p.seconds for p in done[1:]] or [p.seconds for p in done]
+    return round(sum(later) / len(later), 4) if later else None
 
 
 def _classify(exc: BaseException | None) -> tuple[str, str | None, BaseException | None,

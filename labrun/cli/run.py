@@ -103,7 +103,7 @@ def check_unattended(args: argparse.Namespace) -> None:
 def cmd_run(args: argparse.Namespace) -> int:
     """labrun run PLAN --bench BENCH ...: validate everything, then run."""
     from labrun.bench import load_bench
-    from labrun.engine import require_roles, run_plan
+    from labrun.engine import estimate_per_point, require_roles, run_plan
     from labrun.plan import load_plan
     from labrun.store import open_store
 
@@ -119,7 +119,8 @@ def cmd_run(args: argparse.Namespace) -> int:
             outcome = run_plan(plan, bench, store, operator=args.operator,
                                unattended=args.unattended, ack_safety=args.ack_safety,
                                confirm=ask_operator, progress=not args.no_progress,
-                               traffic_log=traffic_log, echo=sys.stderr)
+                               traffic_log=traffic_log, echo=sys.stderr,
+                               estimate_s_per_point=estimate_per_point(plan, bench))
         finally:
             store.close()
     finally:

@@ -45,7 +45,11 @@ def status_report(summary: dict[str, Any], *, now: Any = None) -> dict[str, Any]
     now = now or utcnow()
     run = summary["run"]
     done, total = summary["points_done"], int(run.points_total or 0)
-    pace = summary["seconds_per_point"]
+    pace = summary["seconds_per_point"]  # measured, once two points are stored
+    pace_source = "measured" if pace is not None else None
+    if pace is None and isinstance(run.settings, dict) and run.settings.get(
+            "estimate_s_per_point") is not None:  # until then: the rehearsal's (labrun check)
+        pace, pace_source = float(run.settings["estimate_s_per_point"]), "estimate"
     running = run.status == "running"
     age = (now - run.heartbeat_at).total_seconds() if run.heartbeat_at else None
     stale_limit = max(STALE_AFTER_S, STALE_POINTS * (pace or 0.0))
@@ -57,7 +61,7 @@ def status_report(summary: dict[str, Any], *, now: Any = None) -> dict[str, Any]
         "run_id": run.id, "status": run.status, "reason": run.reason,
         "points_done": done, "points_total": total,
         "percent": round(100.0 * done / total, 1) if total else None,
-        "seconds_per_point": pace, "eta_s": eta,
+        "seconds_per_point": pace, "pace_source": pace_source, "eta_s": eta,
         "plan": run.plan_name, "operator": run.operator, "bench": run.bench_name,
         "replay_of": run.replay_of,
         "started_at": run.started_at.isoformat() if run.started_at else None,
@@ -133,6 +137,7 @@ def _text(rep: dict[str, Any]) -> str:
     if rep["status"] == "running":
         out.append(f"  ETA      {_fmt_s(rep['eta_s'])}"
                    + (f" at {rep['seconds_per_point']:.2f} s/point"
+                      + (" (estimated)" if rep.get("pace_source") == "estimate" else "")
                       if rep["seconds_per_point"] else ""))
     out.append(f"  heartbeat {_fmt_s(rep['heartbeat_age_s'])} ago")
     if rep["stale"]:
