@@ -6,14 +6,16 @@ Targets (issue 13): sources and shutters off within (the faulted instrument's ti
 printed as a ratio against that bound (<= 1 meets it); the run ends aborted with a reason within
 the retry policy's stated total time (``RetryPolicy.give_up_s``), printed as a ratio too.
 Default: the shipped profiles' own timeouts (OSA 20 s, others 3 s) and the default retry policy,
-several minutes. ``--quick``: every timeout 1 s, a 2 s dark limit (what CI checks in
-tests/test_fault_paths.py). Not a test. Run: python benchmarks/bench_faults.py [--quick] [ROW...]
+several minutes. ``--quick``: every timeout 1 s (SQLite's lock wait too), a 2 s dark limit
+(what CI checks in tests/test_fault_paths.py and tests/test_store_faults.py). Not a test.
+Run: python benchmarks/bench_faults.py [--quick] [ROW...]
 """
 
 from __future__ import annotations
 
 import argparse
 import logging
+import re
 import tempfile
 from pathlib import Path
 
@@ -34,11 +36,21 @@ def _ratio(value: float | None, bound: float) -> str:
     return "-" if value is None else f"{value / bound:.2f}"
 
 
+def short_reason(reason: str) -> str:
+    """The run's reason without the point key and the instrument address."""
+    text = reason.split("|r0: ", 1)[-1]
+    text = re.sub(r" at TCPIP\S+ via @\w+ \((\w+)[^;]*; check power, cable and address",
+                  r" (\1)", text)
+    return re.sub(r"; the database refused the final status .*, kept in \S+",
+                  "; final status kept in the fallback record", text)[:140]
+
+
 def row_text(m: Measured) -> str:
     """One markdown table row."""
     bound = m.timeout_s + 1.0
-    reason = (m.reason or "").split(": ", 1)[-1][:90]
-    outcome = f"{m.status} (stored {m.stored_status}); {reason}" if m.reason else m.status
+    kept = f"stored {m.stored_status}" + (f", fallback record {m.fallback_status}"
+                                          if m.fallback_status else "")
+    outcome = f"{m.status} ({kept}): {short_reason(m.reason)}" if m.reason else m.status
     return (f"| {m.fault} | {_s(m.sources_off_s)} ({_ratio(m.sources_off_s, bound)}) "
             f"| {_s(m.shutters_closed_s)} ({_ratio(m.shutters_closed_s, bound)}) "
             f"| {bound:.1f} s | {m.run_end_s:.2f} s ({_ratio(m.run_end_s, m.give_up_s)}) "
@@ -60,7 +72,8 @@ def main() -> None:
     print("|---|---|---|---|---|---|---|")
     for name in args.rows or list(ROWS):
         with tempfile.TemporaryDirectory() as folder:
-            m = measure(ROWS[name], Path(folder), timeouts_ms=timeouts, policy=policy)
+            m = measure(ROWS[name], Path(folder), timeouts_ms=timeouts, policy=policy,
+                        busy_timeout_ms=1000 if args.quick else None)
         print(row_text(m), flush=True)
 
 

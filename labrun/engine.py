@@ -246,7 +246,7 @@ class Runner:
         self.may_emit = True  # something may have been switched on since the last go_dark
         self.committed = 0  # points this process stored
         self.early: list[tuple[str, str, dict[str, Any]]] = []  # events before the run row
-        self.unrecorded: list[tuple[str, str]] = []  # events the database refused meanwhile
+        self.darkened: str | None = None  # why a database fault darkened the bench meanwhile
         self.watchdog: PointWatchdog | None = None
         self.profile_settle_s = sum(op.settle_s for spec in bench.instruments.values()
                                     for op in spec.profile.operations.values())
@@ -538,10 +538,6 @@ class Runner:
         case and the settings of other plans assume no gain after the combiner.
         """
         self.guard.check()  # the acknowledgement holds only while nobody asked the run to stop
-        while self.unrecorded:  # the database works again: what it refused goes in first
-            kind, message = self.unrecorded[0]
-            self.store.add_event(self.run_id, kind, message, point_key=self.current_key)
-            self.unrecorded.pop(0)
         self.may_emit = True
         if self.dark_since is not None:
             self.store.add_event(self.run_id, "relight", "switching on again after a fault "
@@ -648,6 +644,8 @@ class Runner:
         attempt = 0
         while True:
             attempt += 1
+            if self.darkened is not None:  # a database fault darkened the bench meanwhile
+                self.go_dark(self.darkened, done=True)
             try:
                 with PointWatchdog(bound, self.overrun) as self.watchdog:
                     traces = self.attempt_point(spec, settings, kinds)
@@ -665,27 +663,26 @@ class Runner:
         self.darken_bench()
 
     def store_dark(self, exc: BaseException) -> None:
-        """RunStore hook, at a database fault: darken before the brief retries (the event is
-        written once the database takes it again, or goes to the fallback record)."""
+        """RunStore hook (maybe from its slow-write timer), at a database fault: darken before
+        the brief retries; the run loop does the bookkeeping (``darkened``, ``check_progress``)
+        and writes the ``dark`` event once the database takes it."""
         problems = self.darken_bench()
-        self.may_emit = self.emitting = False
-        self.applied.clear()
-        self.trace_x = None
-        if self.dark_since is None:
-            self.dark_since = self.clock()
         note = "" if not problems else "; NOT CONFIRMED OFF: " + "; ".join(problems)
-        self.unrecorded.append(("dark", f"sources off after a {describe(exc)}{note}"))
+        self.darkened = f"sources switched off after a {describe(exc)}{note}"
 
     def darken_bench(self) -> list[str]:
         """Every source off at once (labrun/safe_off.py); the problems left."""
         return darken(self.bench, self.instruments)
 
     def check_progress(self) -> None:
-        """In the run loop: PointOverrun once the current attempt's watchdog fired."""
+        """In the run loop: PointOverrun once the current attempt's watchdog fired, or once a
+        database fault darkened the bench (the attempt is not finished in the dark)."""
         dog = self.watchdog
         if dog is not None and dog.fired.is_set():
             raise PointOverrun(f"point took longer than its bound of {dog.bound_s:.1f} s; "
                                "sources switched off")
+        if self.darkened is not None:
+            raise PointOverrun(self.darkened)
 
     def go_dark(self, reason: str, *, done: bool = False) -> None:
         """Every source off at once (attenuators to maximum), recorded as a ``dark`` event;
@@ -694,6 +691,7 @@ class Runner:
         if not self.may_emit and not done:
             return  # still dark from the last fault: nothing was switched on since
         problems = [] if done else self.darken_bench()
+        self.darkened = None
         self.may_emit = False
         self.emitting = False
         self.applied.clear()
@@ -1089,7 +1087,7 @@ def _execute(plan: Plan, bench: Any, store: Store, run_id: int | None,
         runner.close()
         runner.flush_traffic_log()
         done = start_done + runner.committed
-        events = runner.unrecorded + [("safe_off", "all sources off, attenuators at maximum"
+        events = [("safe_off", "all sources off, attenuators at maximum"
                                        if not problems else
                                        "NOT CONFIRMED OFF: " + "; ".join(problems))]
         if status == "completed" and done < total:

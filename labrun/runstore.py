@@ -3,7 +3,8 @@ failure, and a fallback record next to the database for what could not be writte
 
 ``RunStore`` wraps a ``Store`` for the engine. A database error that may pass (SQLAlchemy's
 ``OperationalError`` or ``InterfaceError``: disk full, locked by another writer, a lost server
-connection; any backend) calls ``on_fault`` once (the engine darkens every source), is retried
+connection; any backend), or a write still waiting after ``SLOW_S`` (a lock, a stalled server),
+calls ``on_fault`` once (the engine darkens every source); a failed call is retried
 ``tries`` times in all ``pause_s`` apart, and then becomes ``StoreFault``: the run stops, one
 line, no traceback. When even the final status cannot be written, ``write_fallback`` appends it
 to ``<database file>.unwritten.jsonl`` (for a server database: ``labrun-unwritten.jsonl`` in
@@ -17,6 +18,7 @@ import contextlib
 import json
 import logging
 import os
+import threading
 import time
 from collections.abc import Callable
 from datetime import UTC, datetime
@@ -30,6 +32,7 @@ log.addHandler(logging.NullHandler())  # library: shown only when the applicatio
 
 TRIES = 2       # one retry: a locked database already waited its busy timeout once
 PAUSE_S = 0.5   # before the retry
+SLOW_S = 2.0    # a write still waiting after this (a lock, a stalled server) darkens the bench
 FALLBACK_SUFFIX = ".unwritten.jsonl"
 SERVER_FALLBACK = "labrun-unwritten.jsonl"
 
@@ -59,11 +62,13 @@ class RunStore:
     """A Store whose calls retry store faults briefly, then raise StoreFault."""
 
     def __init__(self, store: Any, *, on_fault: Callable[[BaseException], None] | None = None,
-                 tries: int = TRIES, pause_s: float = PAUSE_S):
+                 tries: int = TRIES, pause_s: float = PAUSE_S, slow_s: float = SLOW_S):
         self.store = store
         self.on_fault = on_fault
         self.tries = max(1, tries)
         self.pause_s = pause_s
+        self.slow_s = slow_s
+        self._told = threading.Event()  # on_fault already called for the current call
         self.faults: list[str] = []  # one line per failed call, for the fallback record
 
     def __getattr__(self, name: str) -> Any:
@@ -76,9 +81,36 @@ class RunStore:
 
         return call
 
+    def tell(self, exc: BaseException) -> None:
+        """Call ``on_fault`` once per call (from the slow-write timer or the failure)."""
+        if self.on_fault is None or self._told.is_set():
+            return
+        self._told.set()
+        try:
+            self.on_fault(exc)  # the engine darkens the bench
+        except Exception as hook_error:  # noqa: BLE001 - the fault still counts
+            log.error("store fault hook failed: %s", hook_error)
+
     def call(self, name: str, fn: Callable[..., Any], args: tuple[Any, ...],
              kwargs: dict[str, Any]) -> Any:
-        """``fn(*args, **kwargs)`` with brief retries of store faults."""
+        """``fn(*args, **kwargs)`` with brief retries of store faults; a call still waiting
+        after ``slow_s`` (a lock, a stalled server) calls ``on_fault`` from a timer meanwhile."""
+        self._told.clear()
+        timer = None
+        if self.on_fault is not None and self.slow_s > 0:
+            timer = threading.Timer(self.slow_s, self.tell, args=(TimeoutError(
+                f"{name} still waiting after {self.slow_s:g} s"),))
+            timer.daemon = True
+            timer.start()
+        try:
+            return self._call(name, fn, args, kwargs)
+        finally:
+            if timer is not None:
+                timer.cancel()
+
+    def _call(self, name: str, fn: Callable[..., Any], args: tuple[Any, ...],
+              kwargs: dict[str, Any]) -> Any:
+        """The tries of ``call``."""
         for attempt in range(1, self.tries + 1):
             try:
                 return fn(*args, **kwargs)
@@ -88,11 +120,7 @@ class RunStore:
                 line = describe(exc)
                 self.faults.append(f"{name}: {line}")
                 log.warning("store %s failed (try %d of %d): %s", name, attempt, self.tries, line)
-                if attempt == 1 and self.on_fault is not None:
-                    try:
-                        self.on_fault(exc)  # the engine darkens the bench before retrying
-                    except Exception as hook_error:  # noqa: BLE001 - the fault still counts
-                        log.error("store fault hook failed: %s", hook_error)
+                self.tell(exc)  # darken before retrying (unless the slow-write timer did)
                 if attempt == self.tries:
                     raise StoreFault(line) from None
                 time.sleep(self.pause_s)

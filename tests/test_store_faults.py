@@ -93,3 +93,26 @@ def test_a_database_fault_before_anything_opens_is_one_line(tmp_path, monkeypatc
     err = capsys.readouterr().err
     assert code == 1 and "database is locked" in err and "Traceback" not in err
     assert len([ln for ln in err.splitlines() if ln.startswith("labrun: error")]) == 1
+
+
+def test_a_write_still_waiting_darkens_before_it_fails():
+    """A write held up longer than ``slow_s`` (a lock, a stalled server) calls the darkening
+    hook while it still waits, once; a quick write never does."""
+    import time
+
+    from labrun.runstore import RunStore
+
+    told: list[tuple[float, BaseException]] = []
+
+    class Slow:
+        def write(self, seconds):
+            time.sleep(seconds)
+            return seconds
+
+    rs = RunStore(Slow(), on_fault=lambda exc: told.append((time.monotonic(), exc)),
+                  slow_s=0.2)
+    t0 = time.monotonic()
+    assert rs.write(0.6) == 0.6  # the write itself succeeds in the end
+    assert len(told) == 1 and isinstance(told[0][1], TimeoutError)
+    assert 0.2 <= told[0][0] - t0 < 0.5  # told while it was still waiting
+    assert rs.write(0.05) == 0.05 and len(told) == 1  # quick: nothing more
