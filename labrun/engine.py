@@ -467,6 +467,7 @@ class Runner:
             if state is not None and bool(state) != self.expected_on(role):
                 if self._confirm_state(role, adapter) == self.expected_on(role):
                     continue
+                self.check_progress()  # labrun itself switched it off meanwhile: a retry
                 found = "on" if state else "off"
                 raise RunAborted(f"{role} output found {found} unexpectedly"
                                  + self._interlock_note())
@@ -666,9 +667,10 @@ class Runner:
         """RunStore hook (maybe from its slow-write timer), at a database fault: darken before
         the brief retries; the run loop does the bookkeeping (``darkened``, ``check_progress``)
         and writes the ``dark`` event once the database takes it."""
-        problems = self.darken_bench()
-        note = "" if not problems else "; NOT CONFIRMED OFF: " + "; ".join(problems)
-        self.darkened = f"sources switched off after a {describe(exc)}{note}"
+        self.darkened = f"sources switched off after a {describe(exc)}"  # before: the loop
+        problems = self.darken_bench()  # may see the outputs go off (the writer is a thread)
+        if problems:
+            self.darkened += "; NOT CONFIRMED OFF: " + "; ".join(problems)
 
     def darken_bench(self) -> list[str]:
         """Every source off at once (labrun/safe_off.py); the problems left."""
