@@ -56,11 +56,23 @@ def _render(page: Path, tmp: Path) -> tuple[str, Path, str]:
     return dom.stdout, shot, dom.stderr
 
 
-def test_demo_report_renders_in_chromium(tmp_path: Path, capsys) -> None:
-    out = tmp_path / "out"
-    assert main(["demo", "--out", str(out), "--db", str(tmp_path / "demo.db"), "--json",
-                 "--no-progress"]) == 0
-    rep = json.loads(capsys.readouterr().out)
+@pytest.fixture(scope="module")
+def demo(tmp_path_factory) -> tuple[Path, dict]:
+    """One ``labrun demo`` run for the module: (its folder, its --json report)."""
+    import contextlib
+    import io
+
+    folder = tmp_path_factory.mktemp("demo")
+    buf = io.StringIO()
+    with contextlib.redirect_stdout(buf):
+        assert main(["demo", "--out", str(folder / "out"), "--db", str(folder / "demo.db"),
+                     "--json", "--no-progress"]) == 0
+    return folder, json.loads(buf.getvalue())
+
+
+def test_demo_report_renders_in_chromium(demo, tmp_path: Path) -> None:
+    folder, rep = demo
+    out = folder / "out"
     page = Path(rep["report"])
     assert page == (out / "report.html").resolve() and page.is_file()
     text = page.read_text(encoding="utf-8")
@@ -92,11 +104,8 @@ def test_demo_report_renders_in_chromium(tmp_path: Path, capsys) -> None:
     assert float(pixels.std()) > 0.05
 
 
-def test_report_commands(tmp_path: Path, capsys) -> None:
-    db = str(tmp_path / "demo.db")
-    assert main(["demo", "--out", str(tmp_path / "o"), "--db", db, "--json",
-                 "--no-progress"]) == 0
-    capsys.readouterr()
+def test_report_commands(demo, tmp_path: Path, capsys) -> None:
+    db = str(demo[0] / "demo.db")
     page = tmp_path / "run.html"
     assert main(["report", "1", "--db", db, "--out", str(page)]) == 0
     assert f"wrote {page}" in capsys.readouterr().out
