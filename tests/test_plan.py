@@ -476,6 +476,20 @@ def test_channel_beyond_zero_frequency_is_refused(tmp_path):
                   "[axes.power_a_dbm]\nvalues = [0.0]\n", head=head)
 
 
+def test_axis_count_is_bounded_before_anything_is_computed(tmp_path):
+    """num = 1e9 once allocated 7.45 GiB before the 10,000-value check: now the file model
+    refuses it (pydantic's bound) before any array exists."""
+    import tracemalloc
+
+    tracemalloc.start()
+    with pytest.raises(InputError, match="less than or equal to 10000") as err:
+        make_plan(tmp_path, "power_b_dbm = 0.0\n[axes.power_a_dbm]\nstart = 0.0\nstop = 5.0\n"
+                  "num = 1000000000\n")
+    peak = tracemalloc.get_traced_memory()[1]
+    tracemalloc.stop()
+    assert err.value.field == "axes.power_a_dbm.num" and peak < 50e6
+
+
 def test_non_utf8_plan_is_one_line(tmp_path):
     path = tmp_path / "latin1.toml"
     path.write_bytes((BASE_PLAN + "power_b_dbm = 0.0\n[axes.power_a_dbm]\nvalues = [0.0]\n")
