@@ -9,9 +9,9 @@ CLI entry point in-process with instrument access forbidden and classifies the o
 ok        exit 0 (or exit 1 from ``check`` with a report) with a valid, finite JSON result,
 refused   exit 2 with exactly one line on stderr,
 and the failures: traceback (an exception escaped ``labrun.cli.main``), hang (over the time
-limit), accepted (a known-bad input ended in a result), bad_result (a result holding NaN,
-infinity or a detected line without a power), bad_message (exit 2 without exactly one line),
-opened (an instrument session was opened).
+limit, CPU or wall), accepted (a known-bad input ended in a result), bad_result (a result
+holding NaN, infinity or a detected line without a power), bad_message (exit 2 without exactly
+one line), opened (a real VISA backend was asked for a resource manager).
 """
 
 from __future__ import annotations
@@ -363,7 +363,11 @@ def _no_constants(name: str) -> float:
 
 
 def run_case(case: Case, *, time_limit_s: float = TIME_LIMIT_S) -> Outcome:
-    """Run ``labrun <argv>`` in-process (real VISA backends forbidden) and classify it."""
+    """Run ``labrun <argv>`` in-process (real VISA backends forbidden) and classify it.
+
+    A hang is more than ``time_limit_s`` of CPU (the process's, so a loaded shared machine does
+    not turn slow into hung), or three times that in wall time (a wait that uses no CPU).
+    """
     from labrun import scpi
     from labrun.cli import main
 
@@ -381,8 +385,9 @@ def run_case(case: Case, *, time_limit_s: float = TIME_LIMIT_S) -> Outcome:
 
     out, err = io.StringIO(), io.StringIO()
     scpi.resource_manager = forbid
-    previous = signal.signal(signal.SIGALRM, alarm)
-    signal.setitimer(signal.ITIMER_REAL, time_limit_s)
+    previous = {sig: signal.signal(sig, alarm) for sig in (signal.SIGALRM, signal.SIGPROF)}
+    signal.setitimer(signal.ITIMER_PROF, time_limit_s)
+    signal.setitimer(signal.ITIMER_REAL, 3.0 * time_limit_s)
     start = time.perf_counter()
     code: int | None = None
     try:
@@ -400,7 +405,9 @@ def run_case(case: Case, *, time_limit_s: float = TIME_LIMIT_S) -> Outcome:
                        f"{type(exc).__name__}: {exc}"[:300])
     finally:
         signal.setitimer(signal.ITIMER_REAL, 0)
-        signal.signal(signal.SIGALRM, previous)
+        signal.setitimer(signal.ITIMER_PROF, 0)
+        for sig, handler in previous.items():
+            signal.signal(sig, handler)
         scpi.resource_manager = original_rm
     seconds = time.perf_counter() - start
     stderr = err.getvalue()

@@ -79,8 +79,16 @@ def test_the_oracle_catches_what_it_must(tmp_path):
     assert probe.verdict == "opened", probe
 
 
-def test_a_hang_is_reported_not_waited_for(tmp_path, monkeypatch):
-    """The time limit interrupts a command that does not end (here an analyze that sleeps)."""
+def _spin(args) -> None:
+    while True:
+        pass
+
+
+@pytest.mark.parametrize("body", [lambda args: __import__("time").sleep(60), _spin],
+                         ids=["waiting", "computing"])
+def test_a_hang_is_reported_not_waited_for(tmp_path, monkeypatch, body):
+    """The time limit interrupts a command that does not end, asleep (wall time) or busy (CPU
+    time): here an analyze replaced by a sleep or an endless loop."""
     import time
 
     import labrun.cli as cli
@@ -90,7 +98,7 @@ def test_a_hang_is_reported_not_waited_for(tmp_path, monkeypatch):
     def parser():
         p = original()
         sub = next(a for a in p._actions if a.dest == "command")
-        sub.choices["analyze"].set_defaults(func=lambda args: time.sleep(60))
+        sub.choices["analyze"].set_defaults(func=body)
         return p
 
     monkeypatch.setattr(cli, "build_parser", parser)
