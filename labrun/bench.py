@@ -11,7 +11,7 @@ from __future__ import annotations
 import math
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any, Literal
+from typing import Any, Literal, TypedDict
 
 from pydantic import BaseModel, Field, ValidationError
 from pyvisa import rname
@@ -23,10 +23,18 @@ from labrun.resources import find_file
 from labrun.roles import ROLE_KINDS, SOURCE_ROLES, SWEEP_ROLES
 from labrun.scpi import BACKENDS
 
+
+class _Bounds(TypedDict):
+    """Inclusive bounds passed to pydantic's ``Field`` (typed so mypy checks the keywords)."""
+
+    ge: float
+    le: float
+
+
 # Physical ranges of bench values (refused outside them, before anything is opened): powers
 # within what fibre benches carry (-60 dBm to 10 W), losses 0-60 dB, settle times scaled 0-100x.
-POWER_DBM = {"ge": -60.0, "le": 40.0}
-LOSS_DB = {"ge": 0.0, "le": 60.0}
+POWER_DBM: _Bounds = {"ge": -60.0, "le": 40.0}
+LOSS_DB: _Bounds = {"ge": 0.0, "le": 60.0}
 
 
 class _Strict(BaseModel):

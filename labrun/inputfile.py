@@ -10,6 +10,7 @@ for numbers (``port = true``) in every file model; ``Number`` does the same insi
 from __future__ import annotations
 
 import tomllib
+from collections.abc import Iterable
 from pathlib import Path
 from typing import Annotated, Any
 
@@ -55,6 +56,7 @@ def decode(raw: bytes, file: str) -> str:
 
 def depth(data: Any) -> int:
     """Nesting depth of tables and arrays (a scalar is 0), without recursion."""
+    children: Iterable[Any]
     deepest, stack = 0, [(data, 0)]
     while stack:
         obj, level = stack.pop()

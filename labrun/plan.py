@@ -14,7 +14,7 @@ import random
 from collections.abc import Iterable, Iterator, Mapping, Sequence
 from dataclasses import dataclass, replace
 from pathlib import Path
-from typing import Annotated, Any, Literal
+from typing import Annotated, Any, Literal, cast
 
 import numpy as np
 from pydantic import BaseModel, ConfigDict, Field, ValidationError
@@ -742,8 +742,8 @@ class Plan:
             items = [(c, r) for c in combos for r in range(order.repeats)]
         else:
             for r in range(order.repeats):
-                seq = combos[::-1] if order.snake and r % 2 else combos
-                items.extend((c, r) for c in seq)
+                in_order = combos[::-1] if order.snake and r % 2 else combos
+                items.extend((c, r) for c in in_order)
         if order.shuffle_seed is not None:
             random.Random(order.shuffle_seed).shuffle(items)
         regular = [(self._setpoint(self._assignment(c), "axes"), r, False) for c, r in items]
@@ -778,7 +778,7 @@ class Plan:
 
     def _setpoint(self, v: Mapping[str, Any], where: str) -> dict[str, Any]:
         """Canonical setpoint from plan variables (launched powers, spacing in GHz, ...)."""
-        grid = v.get("grid_ghz")
+        grid = cast(float, v.get("grid_ghz"))  # set whenever channel_a or spacing_steps is
         wl = v["wavelength_a_nm"] if "wavelength_a_nm" in v else float(thz_to_nm(
             itu_grid_thz(v["channel_a"], grid)))
         if "spacing_ghz" in v:

@@ -20,6 +20,7 @@ from typing import Any
 
 import numpy as np
 from pyvisa import constants
+from pyvisa.typing import VISASession
 
 from labrun.engine import Captured, RetryPolicy, Runner
 from labrun.plan import Plan, PointSpec
@@ -61,6 +62,8 @@ class DryRunLibrary(TrafficReplayLibrary):
     """pyvisa backend of a rehearsal: takes every message, answers from what was set."""
 
     instruments: dict[str, _Instrument]
+    clock: SimClock
+    sweep_s: float
 
     @classmethod
     def for_bench(cls, bench: Any, clock: SimClock, sweep_s: float) -> DryRunLibrary:
@@ -78,12 +81,13 @@ class DryRunLibrary(TrafficReplayLibrary):
 
     def open(self, session: int, resource_name: str,
              access_mode: constants.AccessModes = constants.AccessModes.no_lock,
-             open_timeout: int = constants.VI_TMO_IMMEDIATE) -> tuple[int, constants.StatusCode]:
+             open_timeout: int = constants.VI_TMO_IMMEDIATE
+             ) -> tuple[VISASession, constants.StatusCode]:
         """Open one of the bench's resources (anything else is not found)."""
         inst = self.instruments.get(resource_name)
         if inst is None:
-            return 0, constants.StatusCode.error_resource_not_found
-        attrs = {constants.ResourceAttribute.termchar: ord("\n"),
+            return VISASession(0), constants.StatusCode.error_resource_not_found
+        attrs: dict[int, Any] = {constants.ResourceAttribute.termchar: ord("\n"),
                  constants.ResourceAttribute.termchar_enabled: constants.VI_FALSE,
                  constants.ResourceAttribute.timeout_value: 2000}
         return (self._register(_Session(_Script(resource_name, inst.role), attrs=attrs)),

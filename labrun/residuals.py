@@ -116,6 +116,11 @@ def total_power_dbm(table: pd.DataFrame) -> np.ndarray | None:
     return 10.0 * np.log10(10.0 ** (pa / 10.0) + 10.0 ** (pb / 10.0))
 
 
+def _product(a: float | None, b: float | None) -> float | None:
+    """a * b, or None when either is missing (a slope times the span it acts over)."""
+    return a * b if a is not None and b is not None else None
+
+
 def _trend(x: np.ndarray | None, r: np.ndarray) -> tuple[float | None, float | None]:
     """(least-squares slope, correlation) of r against x; None when x does not vary."""
     if x is None or r.size < 3:
@@ -168,8 +173,7 @@ def summarise(res: pd.DataFrame, reference: pd.DataFrame, *, rel_u_gamma: float 
         trends = {name: _trend(None if x is None else x[ok], rr) for name, x in cols.items()}
         spans = {name: float(np.ptp(x[ok][np.isfinite(x[ok])])) if x is not None
                  and np.isfinite(x[ok]).any() else None for name, x in cols.items()}
-        effects = {name: (trends[name][0] * spans[name]
-                          if trends[name][0] is not None and spans[name] is not None else None)
+        effects = {name: _product(trends[name][0], spans[name])
                    for name in ("power_dbm", "spacing_ghz")}
         ref_span = ref_corr = None
         if "is_reference" in res and cols["hours"] is not None:

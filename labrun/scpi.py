@@ -24,12 +24,13 @@ import time
 from collections.abc import Callable, Iterator
 from dataclasses import dataclass
 from pathlib import Path
-from typing import TypeVar
+from typing import Any, TypeVar
 
 import numpy as np
 import pyvisa
 from pyvisa import constants, highlevel, rname
 from pyvisa.errors import VisaIOError
+from pyvisa.resources import MessageBasedResource
 from pyvisa.util import from_ascii_block, from_ieee_block
 
 from labrun.errors import InputError, InstrumentError
@@ -42,6 +43,8 @@ BACKENDS = ("@py", "@sim", "@ivi")
 MAX_ERROR_QUEUE = 32  # SCPI-1999 queues hold a few dozen entries; more means the reply is bogus
 BLOCK_CHUNK = 1 << 20  # bytes per socket read of a block (20,001 REAL,32 samples: 80 kB)
 T = TypeVar("T")
+# pyvisa's block parsers take np.array as container (their fast path); their hints say Sequence.
+_NDARRAY: Any = np.array
 
 _RM_LOCK = threading.Lock()
 _RESOURCE_MANAGERS: dict[str, pyvisa.ResourceManager] = {}
@@ -222,11 +225,17 @@ class ScpiSession:
         self.sim_file = sim_file
         self.compound = bool(compound)  # the instrument takes IEEE 488.2 compound messages
         self.on_fault = on_fault
-        self._res = None
+        self._res: MessageBasedResource | None = None
         self._last_block: bytes | None = None  # the last block read, for the traffic log
         self._lock = threading.RLock()
 
     # -- connection -------------------------------------------------------------------------
+
+    def _live(self) -> MessageBasedResource:
+        """The open resource (callers hold the lock and opened it; typed for mypy)."""
+        if self._res is None:
+            raise AttributeError("'NoneType' object has no attribute: session not open")
+        return self._res
 
     @property
     def who(self) -> str:
@@ -249,7 +258,7 @@ class ScpiSession:
                                  field="resource") from None
             rm = resource_manager(self.backend, self.sim_file)
             try:
-                self._res = rm.open_resource(self.resource,
+                self._res = rm.open_resource(self.resource,  # type: ignore[assignment]
                                              write_termination=self.write_termination,
                                              read_termination=self.read_termination,
                                              timeout=self.timeout_ms)
@@ -330,7 +339,7 @@ class ScpiSession:
     # -- traffic ----------------------------------------------------------------------------
 
     def _attempts(self, direction: Direction, text: str, action: Callable[[], T],
-                  describe: Callable[[T], str | None]) -> T:
+                  describe: Callable[[T], str | None | tuple[str, str | None]]) -> T:
         """Run ``action`` with bounded reconnect-and-retry; record and log every attempt.
 
         A silent instrument (the exchange ran out its timeout on a connection still open: it
@@ -442,7 +451,7 @@ class ScpiSession:
             self.setting(cmd)
             return
         with self._lock:
-            self._attempts("write", cmd, lambda: self._res.write(cmd), lambda _r: None)
+            self._attempts("write", cmd, lambda: self._live().write(cmd), lambda _r: None)
             if check_errors and self.error_query:
                 self.drain_errors(cmd)
 
@@ -498,7 +507,7 @@ class ScpiSession:
         """Send a query and return its reply without the read termination (``direction``
         "write": a message that carries settings, recorded as such in the traffic log)."""
         with self._lock:
-            return self._attempts(direction, cmd, lambda: self._res.query(cmd).strip(),
+            return self._attempts(direction, cmd, lambda: self._live().query(cmd).strip(),
                                   lambda r: r)
 
     def query_block_real32(self, cmd: str, byte_order: str = "little") -> np.ndarray:
@@ -507,7 +516,7 @@ class ScpiSession:
             raise ValueError(f"byte order must be 'little' or 'big', not {byte_order!r}")
 
         def action() -> np.ndarray:
-            self._res.write(cmd)
+            self._live().write(cmd)
             return np.asarray(self._read_block(byte_order == "big"), dtype=float)
 
         with self._lock:
@@ -524,7 +533,7 @@ class ScpiSession:
         end a low-level read (hundreds per trace). ``last``: the block ends the response message
         (the termination follows); otherwise more response units follow it.
         """
-        res = self._res
+        res = self._live()
         head = head + res.read_bytes(2 - len(head))
         if head[:1] != b"#" or not head[1:2].isdigit() or head[1:2] == b"0":
             raise InstrumentError(f"expected a definite-length block, got {head!r}",
@@ -547,8 +556,8 @@ class ScpiSession:
                                   role=self.role, resource=self.resource)
         block = head + digits + body[:len(body) - len(term)]
         self._last_block = block
-        return from_ieee_block(block, datatype="f", is_big_endian=big_endian,
-                               container=np.array)
+        return np.asarray(from_ieee_block(block, datatype="f", is_big_endian=big_endian,
+                                          container=_NDARRAY))
 
     def setting_then_block(self, cmd: str, queries: list[str] | tuple[str, ...], block_query: str,
                            byte_order: str = "little") -> tuple[list[str], np.ndarray]:
@@ -562,7 +571,7 @@ class ScpiSession:
         message = compound(cmd, [*queries, block_query, self.error_query])
 
         def action() -> tuple[list[str], np.ndarray | None, str]:
-            self._res.write(message)
+            self._live().write(message)
             return self._read_mixed(len(queries), byte_order == "big")
 
         def describe(r: tuple[list[str], np.ndarray | None, str]) -> tuple[str, str | None]:
@@ -593,7 +602,7 @@ class ScpiSession:
         """Read a response of ``n_text`` text units, a block, and a last text unit (the error
         query's reply); (text units, block values or None, last unit). A response that ends
         early (a query failed, so its unit is missing) comes back without the block."""
-        res = self._res
+        res = self._live()
         units: list[str] = []
         text = bytearray()
         quoted = False
@@ -611,8 +620,8 @@ class ScpiSession:
                 text += ch
         first = res.read_bytes(1)
         if first != b"#":  # no block: what is left is text up to the termination
-            rest = split_units((first + res.read_raw()).decode("ascii", "replace").strip())
-            return units + rest[:-1], None, rest[-1]
+            tail = split_units((first + res.read_raw()).decode("ascii", "replace").strip())
+            return units + tail[:-1], None, tail[-1]
         values = self._read_block(big_endian, head=first, last=False)
         rest = res.read().strip()
         if not rest.startswith(";"):
@@ -623,8 +632,8 @@ class ScpiSession:
     def query_ascii_floats(self, cmd: str) -> np.ndarray:
         """Query a comma-separated list of numbers (the SCPI ASCii data format)."""
         def action() -> tuple[np.ndarray, str]:
-            text = self._res.query(cmd)  # parsed as pyvisa's query_ascii_values parses it
-            values = from_ascii_block(text, converter="f", separator=",", container=np.array)
+            text = self._live().query(cmd)  # parsed as pyvisa's query_ascii_values parses it
+            values = from_ascii_block(text, converter="f", separator=",", container=_NDARRAY)
             return np.asarray(values, dtype=float), text
 
         def describe(r: tuple[np.ndarray, str]) -> tuple[str, str | None]:
@@ -705,11 +714,11 @@ def query_each(requests: list[tuple[ScpiSession, str]], *,
                 current = s
                 if s._res is None:
                     s.open()
-                s._res.write(cmd)
+                s._live().write(cmd)
             replies = []
             for s in sessions:
                 current = s
-                replies.append(s._res.read().strip())
+                replies.append(s._live().read().strip())
         except Exception as exc:
             if not _is_transport_error(exc) and not isinstance(exc, InstrumentError):
                 raise

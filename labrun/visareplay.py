@@ -22,10 +22,11 @@ import re
 from collections import deque
 from collections.abc import Iterable, Iterator
 from dataclasses import dataclass, field
-from typing import Any
+from typing import Any, Self
 
 from pyvisa import constants, highlevel, rname
 from pyvisa.errors import VisaIOError
+from pyvisa.typing import VISARMSession, VISASession
 from pyvisa.util import LibraryPath
 
 from labrun.errors import LabrunError
@@ -123,7 +124,7 @@ class TrafficReplayLibrary(highlevel.VisaLibraryBase):
         self.used = 0
 
     @classmethod
-    def from_entries(cls, entries: Iterable[TrafficLogEntry]) -> TrafficReplayLibrary:
+    def from_entries(cls, entries: Iterable[TrafficLogEntry]) -> Self:
         """A fresh library (pyvisa caches libraries by path, so each gets its own) for a log."""
         lib = cls(f"labrun-replay-{next(_SERIAL)}")
         for number, entry in enumerate(entries, start=1):
@@ -143,16 +144,16 @@ class TrafficReplayLibrary(highlevel.VisaLibraryBase):
                       key=lambda item: item[0])
 
     # ---- sessions ----------------------------------------------------------------------------
-    def _register(self, obj: Any) -> int:
+    def _register(self, obj: Any) -> VISASession:
         session = len(self.sessions) + 1
         while session in self.sessions:
             session += 1
         self.sessions[session] = obj
-        return session
+        return VISASession(session)
 
-    def open_default_resource_manager(self) -> tuple[int, constants.StatusCode]:
+    def open_default_resource_manager(self) -> tuple[VISARMSession, constants.StatusCode]:
         """The resource manager session."""
-        return self._register(self), constants.StatusCode.success
+        return VISARMSession(self._register(self)), constants.StatusCode.success
 
     def list_resources(self, session: int, query: str = "?*::INSTR") -> tuple[str, ...]:
         """Every resource the log talks to."""
@@ -166,18 +167,21 @@ class TrafficReplayLibrary(highlevel.VisaLibraryBase):
         except rname.InvalidResourceName:
             return (highlevel.ResourceInfo(constants.InterfaceType.unknown, 0, None, None, None),
                     constants.StatusCode.error_invalid_resource_name)
-        return (highlevel.ResourceInfo(parsed.interface_type_const, parsed.board,
+        # the concrete resource name classes (TCPIP, GPIB, ...) carry the board; the base does not
+        board = parsed.board  # type: ignore[attr-defined]
+        return (highlevel.ResourceInfo(parsed.interface_type_const, board,
                                        parsed.resource_class, str(parsed), None),
                 constants.StatusCode.success)
 
     def open(self, session: int, resource_name: str,
              access_mode: constants.AccessModes = constants.AccessModes.no_lock,
-             open_timeout: int = constants.VI_TMO_IMMEDIATE) -> tuple[int, constants.StatusCode]:
+             open_timeout: int = constants.VI_TMO_IMMEDIATE
+             ) -> tuple[VISASession, constants.StatusCode]:
         """Open a resource the log holds (anything else is not found)."""
         script = self.scripts.get(resource_name)
         if script is None:
             script = self.scripts.setdefault(resource_name, _Script(resource_name, None))
-        attrs = {constants.ResourceAttribute.termchar: ord("\n"),
+        attrs: dict[int, Any] = {constants.ResourceAttribute.termchar: ord("\n"),
                  constants.ResourceAttribute.termchar_enabled: constants.VI_FALSE,
                  constants.ResourceAttribute.timeout_value: 2000}
         return self._register(_Session(script, attrs=attrs)), constants.StatusCode.success

@@ -16,7 +16,7 @@ import os
 import signal
 import sys
 from collections.abc import Sequence
-from typing import Any
+from typing import Any, NoReturn
 
 from labrun.errors import LabrunError
 
@@ -30,7 +30,7 @@ EXIT_BROKEN_PIPE = 128 + int(signal.SIGPIPE)  # 141
 class _Parser(argparse.ArgumentParser):
     """argparse with usage errors as exit code 2 and one line (argparse's own convention)."""
 
-    def error(self, message: str) -> None:  # noqa: D401 - argparse API
+    def error(self, message: str) -> NoReturn:  # noqa: D401 - argparse API
         self.exit(2, f"{self.prog}: error: {message}\n")
 
 

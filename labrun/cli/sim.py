@@ -87,9 +87,9 @@ def run_serve(args: argparse.Namespace) -> int:
         lab.start()
     except BindError as exc:
         if exc.port:  # pinned by the scenario
-            raise InputError(exc.strerror, file=scenario.source,
+            raise InputError(str(exc.strerror), file=scenario.source,
                              field=f"instruments.{exc.role}.port") from None
-        raise InputError(exc.strerror, field="--host") from None
+        raise InputError(str(exc.strerror), field="--host") from None
     stop = threading.Event()
     previous = {sig: signal.signal(sig, lambda *_: stop.set())
                 for sig in (signal.SIGINT, signal.SIGTERM)}

@@ -110,9 +110,9 @@ def propagate_spectrum(
     h = initial_step_km or min(length_km, 0.05 / phi_rate if phi_rate > 0 else length_km)
     h_min = length_km * 1e-9
     h = max(h, h_min)
-    cache: dict[float, tuple[np.ndarray, np.ndarray, complex, complex, float, float]] = {}
+    cache: dict[float, tuple[np.ndarray, np.ndarray, float, float, complex, complex]] = {}
 
-    def factors(h: float) -> tuple[np.ndarray, np.ndarray, complex, complex, float, float]:
+    def factors(h: float) -> tuple[np.ndarray, np.ndarray, float, float, complex, complex]:
         """Linear propagators over h/4 and h/2, loss and Kerr-phase factors for h and h/2."""
         if h not in cache:
             if len(cache) > 64:

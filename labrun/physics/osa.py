@@ -98,8 +98,9 @@ def synthesize_trace(
     # Contributions below 1e-9 of the lowest possible reading change it by < 5e-9 dB.
     lowest = max(float(dbm_to_mw(sensitivity_dbm)), background * 10.0 ** (-6.0 * noise_db / 10))
     signal = _lines_through_rbw(x, lw, lp, rbw_nm, negligible_mw=1e-9 * lowest)
+    noisy: float | np.ndarray = background
     if noise_db > 0 and background > 0:
         rng = rng if rng is not None else np.random.default_rng(0)
-        background = background * np.power(10.0, noise_db * rng.standard_normal(x.shape) / 10.0)
-    y = mw_to_dbm(signal + background)
+        noisy = background * np.power(10.0, noise_db * rng.standard_normal(x.shape) / 10.0)
+    y = mw_to_dbm(signal + noisy)
     return np.maximum(y, sensitivity_dbm)

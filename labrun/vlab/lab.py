@@ -15,8 +15,9 @@ import json
 import logging
 import threading
 import time
+from collections.abc import Mapping
 from pathlib import Path
-from typing import Any
+from typing import Any, cast
 
 from labrun.profiles import generic_profile_name
 from labrun.roles import ROLE_KINDS, SOURCE_ROLES
@@ -32,7 +33,7 @@ from labrun.vlab.state import LabState
 
 log = logging.getLogger(__name__)
 # Caps written into the bench when [bench.caps] names none for a source (invented, safe side).
-DEFAULT_CAPS_DBM = {"laser_a": 10.0, "laser_b": 10.0, "amplifier": 20.0}
+DEFAULT_CAPS_DBM: dict[str, float] = {"laser_a": 10.0, "laser_b": 10.0, "amplifier": 20.0}
 # The simulated attenuator's darkest setting: the top of the generic attenuator profile's range.
 MAX_ATTENUATION_DB = AttenuatorInstrument.limits("set_attenuation_db")[1]
 
@@ -275,7 +276,8 @@ class VirtualLab:
                       'backend = "@py"',
                       f"profile = {q(generic_profile_name(ROLE_KINDS[role]))}"]
             if role in SOURCE_ROLES:
-                cap = layout.caps.get(role, DEFAULT_CAPS_DBM[role])
+                caps = cast(Mapping[str, float], layout.caps)  # keyed by source role
+                cap = caps.get(role, DEFAULT_CAPS_DBM[role])
                 lines.append(f"max_power_dbm = {cap!r}")
         return "\n".join(lines) + "\n"
 

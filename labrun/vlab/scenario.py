@@ -10,6 +10,7 @@ from pathlib import Path
 from typing import Annotated, Any, Literal
 
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, model_validator
+from pydantic_core import ErrorDetails
 
 from labrun.errors import InputError
 from labrun.inputfile import FILE_MODEL_CONFIG, load_toml
@@ -191,7 +192,7 @@ class Scenario(_Strict):
         return getattr(self.instruments, role).idn or DEFAULT_IDN[role]
 
 
-def _field_of(err: dict[str, Any]) -> str:
+def _field_of(err: ErrorDetails) -> str:
     """Dotted field path of one pydantic error ('spools[1].length_km')."""
     out = ""
     for part in err.get("loc", ()):
