@@ -11,6 +11,7 @@ not grow with the number of stored lines.
 from __future__ import annotations
 
 import math
+from datetime import datetime
 from typing import Any
 
 from labrun.errors import InputError
@@ -21,6 +22,11 @@ COMMON = {"spacing_ghz": 50.0, "power_dbm": 0.0, "wavelength_nm": 1550.0}
 GAMMA = ("gamma", "gamma_bessel", "gamma_small_signal")  # preferred order (exact model first)
 HISTORY_PARAMS = ("gamma_per_w_per_km", "abs_dispersion_ps_per_nm_km",
                   "dispersion_slope_ps_per_nm2_km")
+
+
+def _iso(when: datetime | None) -> str | None:
+    """ISO 8601 text of a stored time (None for a record not stored yet)."""
+    return when.isoformat() if when is not None else None
 
 
 def _param(record: Any, names: tuple[str, ...]) -> tuple[str, Any] | None:
@@ -118,7 +124,7 @@ def compare_spools(store: Store, labels: list[str]) -> dict[str, Any]:
     for label in labels:
         fit = fits.get(label)
         entry: dict[str, Any] = {"spool": label, "fit_id": fit.fit_id if fit else None,
-                                 "fitted_at": fit.created_at.isoformat() if fit else None}
+                                 "fitted_at": _iso(fit.created_at) if fit else None}
         if fit is None:
             entry["note"] = f"no stored fit: labrun fit RUN_ID ... (runs of {label})"
         else:
@@ -135,7 +141,7 @@ def spool_history(store: Store, label: str) -> dict[str, Any]:
     history, previous = [], None
     for fit in fits:
         values = headline_values(fit, fit.spool_snapshot or {})
-        entry = {"fit_id": fit.fit_id, "fitted_at": fit.created_at.isoformat(),
+        entry = {"fit_id": fit.fit_id, "fitted_at": _iso(fit.created_at),
                  "runs": fit.run_ids, **{k: values[k] for k in HISTORY_PARAMS if k in values}}
         entry["changed"] = _changes(previous, values) if previous is not None else []
         history.append(entry)

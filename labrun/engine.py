@@ -12,6 +12,7 @@ maximum. ``resume_run`` continues a run by point key.
 from __future__ import annotations
 
 import contextlib
+import functools
 import math
 import os
 import signal as _signal
@@ -21,7 +22,7 @@ import time
 from collections.abc import Callable, Sequence
 from dataclasses import asdict, dataclass, field, is_dataclass
 from pathlib import Path
-from typing import TYPE_CHECKING, Any, TextIO
+from typing import TYPE_CHECKING, Any, TextIO, cast
 
 from labrun import __version__
 from labrun.errors import InputError, InstrumentError, SafetyError
@@ -198,7 +199,7 @@ def _describe(obj: Any) -> str:
     """A one-line rendering of a dataclass-like result."""
     if hasattr(obj, "describe"):
         return str(obj.describe())
-    if is_dataclass(obj):
+    if is_dataclass(obj) and not isinstance(obj, type):
         return ", ".join(f"{k} {v:.2f}" if isinstance(v, float) else f"{k} {v}"
                          for k, v in asdict(obj).items())
     return str(obj)
@@ -728,7 +729,8 @@ class Runner:
         tones = expected_thz(spec.setpoint)
         for tr in traces:
             try:
-                tr.reduction = reduce_trace(tr.x, tr.y, self.rbw_nm, x_unit="nm",
+                # rbw_nm is set when the OSA is configured, before any capture
+                tr.reduction = reduce_trace(tr.x, tr.y, cast(float, self.rbw_nm), x_unit="nm",
                                             orders=self.orders, expected_thz=tones)
             except ValueError as exc:  # an unusable trace (NaN, 1e5 dBm samples): retried
                 raise InstrumentError(f"{tr.kind} trace cannot be reduced: {exc}",
@@ -831,7 +833,7 @@ class Runner:
                 traces, red, attempts = self.measure(spec)
                 self.flush_traffic_log()  # before the commit: a stored point's traffic is on disk
                 row = self.point_row(spec, traces, red, attempts, started)
-                writer.submit(lambda row=row: self.store_point(row))
+                writer.submit(functools.partial(self.store_point, row))
                 done += 1
                 if bar is not None:
                     bar.set_postfix_str(_postfix(red), refresh=False)

@@ -12,6 +12,7 @@ tests/test_fault_paths.py (short timeouts) and benchmarks/bench_faults.py (the f
 from __future__ import annotations
 
 import copy
+import functools
 import re
 import threading
 import time
@@ -129,10 +130,18 @@ class Measured:
     extra: dict[str, Any] = field(default_factory=dict)
 
 
+def _shipped(name: str, kind: str) -> Path:
+    """A file shipped with labrun (FileNotFoundError if the installation lacks it)."""
+    path = find_file(name, kind)
+    if path is None:
+        raise FileNotFoundError(f"{kind}/{name} is not shipped with this labrun")
+    return path
+
+
 def scenario() -> dict[str, Any]:
     """The shipped default scenario, realism off (deterministic)."""
-    path = find_file("default-scenario.toml", "sim_instruments")
-    data = copy.deepcopy(tomllib.loads(Path(path).read_text(encoding="utf-8")))
+    path = _shipped("default-scenario.toml", "sim_instruments")
+    data = copy.deepcopy(tomllib.loads(path.read_text(encoding="utf-8")))
     data["realism"]["enabled"] = False
     return data
 
@@ -166,7 +175,7 @@ def write_bench(lab: VirtualLab, folder: Path, timeouts_ms: dict[str, int]) -> P
     bench = lab.write_bench(folder / "bench.toml")
     text = bench.read_text(encoding="utf-8")
     for name, ms in timeouts_ms.items():
-        src = Path(find_file(f"{name}.toml", "drivers")).read_text(encoding="utf-8")
+        src = _shipped(f"{name}.toml", "drivers").read_text(encoding="utf-8")
         copy_path = folder / f"timed-{name}.toml"
         copy_path.write_text(re.sub(r"timeout_ms = \d+", f"timeout_ms = {int(ms)}",
                                     src.replace(f'name = "{name}"', f'name = "timed-{name}"')),
@@ -179,7 +188,8 @@ def write_bench(lab: VirtualLab, folder: Path, timeouts_ms: dict[str, int]) -> P
 def _last(watch: StateWatch, roles: list[str]) -> float | None:
     """When the last of ``roles`` first went dark after the fault (None: one never did)."""
     times = [watch.after(r) for r in roles]
-    return None if any(t is None for t in times) else max(times, default=0.0)
+    found = [t for t in times if t is not None]
+    return None if len(found) < len(times) else max(found, default=0.0)
 
 
 def measure(row: FaultRow, folder: Path, *, timeouts_ms: dict[str, int] | None = None,
@@ -220,7 +230,7 @@ def _measure(row: FaultRow, folder: Path, *, timeouts_ms: dict[str, int] | None,
         store = open_store(folder / "runs.db")
         sources = [r for r in SOURCES if r in lab.servers and r != row.lost_role]
         shutters = [r for r in ATTENUATORS if r in lab.servers and r != row.lost_role]
-        watch = StateWatch({r: (lambda r=r: lab.role_dark(r)) for r in sources + shutters},
+        watch = StateWatch({r: functools.partial(lab.role_dark, r) for r in sources + shutters},
                            step_s=0.001)
         fault_at: dict[str, float] = {}
 

@@ -317,7 +317,7 @@ def lab_scenario(bench: Any, spool: ModelSpool, base: Any = None) -> dict[str, A
             if s.max_power_dbm is not None}
     instruments: dict[str, Any] = {}
     for role in ROLE_KINDS:
-        spec = {"present": role in bench.instruments}
+        spec: dict[str, Any] = {"present": role in bench.instruments}
         if base is not None:
             spec = {**getattr(base.instruments, role).model_dump(exclude_none=True), **spec}
             spec.pop("idn", None)

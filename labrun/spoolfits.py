@@ -103,7 +103,7 @@ def from_fit(result: Any) -> ParameterRecord:
         dof = (result.extra or {}).get("dof")
         u95 = (coverage_factor(dof) * stderr if dof and stderr is not None
                else expanded(stderr, int(result.n_points)))
-    extra = {k: _finite(v) if isinstance(v, float) else v
+    extra: dict[str, Any] = {k: _finite(v) if isinstance(v, float) else v
              for k, v in (result.extra or {}).items()
              if isinstance(v, str | int | float | bool) or v is None}
     if getattr(result, "warnings", None):
@@ -127,7 +127,10 @@ def _fit_tables(tables: list[Any], spool: Spool) -> dict[str, Any]:
 
     from labrun.fits import fit_run
 
-    return fit_run(pd.concat(tables, ignore_index=True), spool.length_km, spool.loss_db_per_km)
+    length_km, loss_db_per_km = spool.length_km, spool.loss_db_per_km
+    if length_km is None or loss_db_per_km is None:  # refused by the caller before this
+        raise ValueError(f"spool {spool.label} has no length or loss")
+    return fit_run(pd.concat(tables, ignore_index=True), length_km, loss_db_per_km)
 
 
 def _spool_of(store: Store, run_ids: list[int]) -> Spool:

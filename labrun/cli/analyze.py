@@ -8,7 +8,7 @@ from __future__ import annotations
 
 import argparse
 import json
-from typing import TYPE_CHECKING
+from typing import TYPE_CHECKING, Literal
 
 from labrun.errors import InputError
 
@@ -64,9 +64,13 @@ def run_analyze(args: argparse.Namespace) -> int:
         rbw = rbw_nm
     else:
         rbw = float(nm_to_ghz_at(rbw_nm, float(thz_to_nm(centre)))) * 1e-3
-    expected = None if args.tones_nm is None else tuple(float(v) for v in nm_to_thz(args.tones_nm))
+    expected: tuple[float, float] | None = None
+    if args.tones_nm is not None:  # argparse took exactly two (nargs=2)
+        tone_a, tone_b = (float(v) for v in nm_to_thz(args.tones_nm))
+        expected = (tone_a, tone_b)
     try:
-        red = reduce_trace(trace.x, trace.y_dbm, rbw, x_unit=trace.x_unit, orders=args.orders,
+        x_unit: Literal["nm", "thz"] = "nm" if trace.x_unit == "nm" else "thz"  # one of these
+        red = reduce_trace(trace.x, trace.y_dbm, rbw, x_unit=x_unit, orders=args.orders,
                            expected_thz=expected, threshold_db=args.threshold_db,
                            power_method="integrate" if args.integrate else "peak")
     except ValueError as exc:

@@ -80,7 +80,7 @@ def spool_rows(store: Any) -> list[dict[str, Any]]:
                      "loss_db_per_km": sp.loss_db_per_km, "fibre_type": sp.fibre_type,
                      "note": sp.note, "runs": int(counts.get(sp.id, 0)),
                      "latest_fit": fit.fit_id if fit else None,
-                     "fitted_at": fit.created_at.isoformat() if fit else None,
+                     "fitted_at": fit.created_at.isoformat() if fit and fit.created_at else None,
                      **headline(fit)})
     return rows
 

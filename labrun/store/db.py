@@ -15,10 +15,11 @@ from contextlib import contextmanager
 from dataclasses import dataclass, field
 from datetime import datetime
 from pathlib import Path
-from typing import TYPE_CHECKING, Any
+from typing import TYPE_CHECKING, Any, cast
 
 from sqlalchemy import (
     Engine,
+    Table,
     bindparam,
     create_engine,
     event,
@@ -29,7 +30,7 @@ from sqlalchemy import (
     select,
     update,
 )
-from sqlalchemy.engine import make_url
+from sqlalchemy.engine import CursorResult, make_url
 from sqlalchemy.exc import ArgumentError, IntegrityError, SQLAlchemyError
 from sqlalchemy.orm import Session, sessionmaker
 
@@ -260,23 +261,23 @@ class Store:
         """
         now = utcnow()
         with self.engine.begin() as conn:
-            point_id = conn.execute(_INSERT_POINT, {
+            point_id = _new_id(conn.execute(_INSERT_POINT, {
                 "run_id": run_id, "key": key, "index": index, "repeat": repeat,
                 "is_reference": is_reference, "setpoint": setpoint, "applied": applied or {},
                 "spacing_ghz": _finite_or_none(spacing_ghz),
                 "floor_dbm": _finite_or_none(floor_dbm), "flags": list(flags),
                 "attempts": attempts, "started_at": started_at, "finished_at": now,
-            }).inserted_primary_key[0]
+            }))
             trace_ids = []
             for tr in traces:
                 x_start, x_stop, n, x_blob = encode_x(tr.x)
                 y_blob, encoding = encode_y(tr.y)
-                trace_ids.append(conn.execute(_INSERT_TRACE, {
+                trace_ids.append(_new_id(conn.execute(_INSERT_TRACE, {
                     "point_id": point_id, "kind": tr.kind, "x_unit": tr.x_unit, "n": n,
                     "x_start": x_start, "x_stop": x_stop, "x_data": x_blob,
                     "y_data": y_blob, "encoding": encoding, "rbw_nm": tr.rbw_nm,
                     "settings": tr.settings,
-                }).inserted_primary_key[0])
+                })))
             rows = [_line_row(point_id, trace_ids, ln) for ln in lines]
             if rows:
                 conn.execute(_INSERT_LINE, rows)
@@ -284,13 +285,21 @@ class Store:
         return int(point_id)
 
 
+def _new_id(result: CursorResult[Any]) -> Any:
+    """The primary key an INSERT of one row gave it."""
+    key = result.inserted_primary_key
+    if key is None:
+        raise RuntimeError("the database returned no primary key for the new row")
+    return key[0]
+
+
 # Statements built once: executing them with parameters reuses SQLAlchemy's compiled cache,
 # which keeps the per-point commit well under a millisecond of Python work.
-_INSERT_POINT = Point.__table__.insert()
-_INSERT_TRACE = Trace.__table__.insert()
-_INSERT_LINE = Line.__table__.insert()
+_INSERT_POINT = cast(Table, Point.__table__).insert()
+_INSERT_TRACE = cast(Table, Trace.__table__).insert()
+_INSERT_LINE = cast(Table, Line.__table__).insert()
 _BEAT = (
-    Run.__table__.update()
+    cast(Table, Run.__table__).update()
     .where(Run.__table__.c.id == bindparam("b_run_id"))
     .values(heartbeat_at=bindparam("b_now"))
 )

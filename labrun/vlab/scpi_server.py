@@ -35,7 +35,7 @@ from labrun.vlab.scpi import (
     parse_command,
     split_message,
 )
-from labrun.vlab.state import LabState
+from labrun.vlab.state import Amplifier, LabState, PowerMeter, Switch
 
 log = logging.getLogger(__name__)
 MAX_INPUT_BYTES = 1 << 20  # a message longer than this without a newline overruns the buffer
@@ -263,9 +263,17 @@ class AmplifierInstrument(SimInstrument):
 
     kind = "amplifier"
 
+    @property
+    def _amp(self) -> Amplifier:
+        """The lab's amplifier (served only when the scenario has one)."""
+        part = self.lab.amplifier
+        if part is None:
+            raise RuntimeError("the scenario has no amplifier")
+        return part
+
     def register(self) -> None:
         t = self.table
-        amp = self.lab.amplifier
+        amp = self._amp
         t.add("[SOURce#]:POWer[:LEVel][:IMMediate][:AMPLitude]", self._set_power)
         t.add("[SOURce#]:POWer[:LEVel][:IMMediate][:AMPLitude]",
               lambda c: fmt(amp.power_dbm), query=True)
@@ -274,14 +282,14 @@ class AmplifierInstrument(SimInstrument):
         t.add("OUTPut#:INTLock", lambda c: _onoff(self.lab.interlock_closed), query=True)
 
     def reset(self) -> None:
-        self.lab.amplifier.output = False
-        self.lab.amplifier.power_dbm = 10.0
+        self._amp.output = False
+        self._amp.power_dbm = 10.0
 
     def _set_power(self, call: Call) -> None:
-        self.lab.amplifier.power_dbm = number(call, *self.limits("set_power_dbm"), 10.0)
+        self._amp.power_dbm = number(call, *self.limits("set_power_dbm"), 10.0)
 
     def _set_output(self, call: Call) -> None:
-        self.lab.amplifier.output = _source_switch(call, self.lab)
+        self._amp.output = _source_switch(call, self.lab)
 
 
 class AttenuatorInstrument(SimInstrument):
@@ -355,15 +363,15 @@ class PolControllerInstrument(SimInstrument):
         norm = float(np.linalg.norm(s))
         if norm < 0.5:
             raise ScpiFault(-222, f"{call.header} not a polarised state")
-        self.lab.pol.stokes_target = tuple(float(v) for v in s / norm)
+        x, y, z = (float(v) for v in s / norm)
+        self.lab.pol.stokes_target = (x, y, z)
 
     def _stokes(self, call: Call) -> str:
         from labrun.physics.polarisation import paddles_to_stokes
 
         pol = self.lab.pol
-        s = pol.stokes_target
-        if s is None:
-            s = paddles_to_stokes(tuple(pol.angles_deg))
+        s = pol.stokes_target if pol.stokes_target is not None else paddles_to_stokes(
+            tuple(pol.angles_deg))
         return ",".join(f"{float(v):.6f}" for v in s)
 
 
@@ -472,9 +480,17 @@ class PowerMeterInstrument(SimInstrument):
 
     kind = "power_meter"
 
+    @property
+    def _pm(self) -> PowerMeter:
+        """The lab's power meter (served only when the scenario has one)."""
+        part = self.lab.power_meter
+        if part is None:
+            raise RuntimeError("the scenario has no power meter")
+        return part
+
     def register(self) -> None:
         t = self.table
-        pm = self.lab.power_meter
+        pm = self._pm
         t.add(WAVELENGTH_CAL, self._set_wavelength)
         t.add(WAVELENGTH_CAL, lambda c: fmt(pm.wavelength_nm), query=True)
         for pattern in ("READ#[:SCALar]:POWer[:DC]", "FETCh#[:SCALar]:POWer[:DC]",
@@ -482,10 +498,10 @@ class PowerMeterInstrument(SimInstrument):
             t.add(pattern, lambda c: f"{self.lab.tap_power_dbm():.4f}", query=True)
 
     def reset(self) -> None:
-        self.lab.power_meter.wavelength_nm = 1550.0
+        self._pm.wavelength_nm = 1550.0
 
     def _set_wavelength(self, call: Call) -> None:
-        self.lab.power_meter.wavelength_nm = number(call, *self.limits("set_wavelength_nm"),
+        self._pm.wavelength_nm = number(call, *self.limits("set_wavelength_nm"),
                                                     1550.0)
 
 
@@ -494,19 +510,27 @@ class SwitchInstrument(SimInstrument):
 
     kind = "switch"
 
+    @property
+    def _switch(self) -> Switch:
+        """The lab's switch (served only when the scenario has one)."""
+        part = self.lab.switch
+        if part is None:
+            raise RuntimeError("the scenario has no switch")
+        return part
+
     def register(self) -> None:
         t = self.table
         t.add("ROUTe#:PATH", self._set_path)
-        t.add("ROUTe#:PATH", lambda c: str(self.lab.switch.path), query=True)
+        t.add("ROUTe#:PATH", lambda c: str(self._switch.path), query=True)
 
     def reset(self) -> None:
-        self.lab.switch.path = 1
+        self._switch.path = 1
 
     def _set_path(self, call: Call) -> None:
         value = number(call, *self.limits("set_path"), 1)
         if value != int(value):
             raise ScpiFault(-224, f"{call.header} {call.args[0]}")
-        self.lab.switch.path = int(value)
+        self._switch.path = int(value)
 
 
 INSTRUMENT_CLASSES: dict[str, type[SimInstrument]] = {
@@ -623,7 +647,9 @@ class InstrumentServer:
     def __init__(self, instrument: SimInstrument, host: str, port: int):
         self.instrument = instrument
         self._tcp = _TcpServer((host, port), instrument, instrument.stopping)
-        self.host, self.port = self._tcp.server_address[:2]
+        address = self._tcp.server_address  # (host, port[, flow, scope]) of an AF_INET(6) socket
+        self.host: str = str(address[0])
+        self.port: int = int(address[1])
         self._thread = threading.Thread(target=self._tcp.serve_forever, kwargs={
             "poll_interval": 0.05}, name=f"vlab-{instrument.role}", daemon=True)
 
