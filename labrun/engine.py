@@ -211,7 +211,7 @@ def _describe(obj: Any) -> str:
 class Runner:
     """Runs points of one run: owns the connections, the applied-state cache and the guard."""
 
-    def __init__(self, plan: Plan, bench: Any, store: Store, run_id: int, guard: SafeOffGuard, *,
+    def __init__(self, plan: Plan, bench: Any, store: Store, run_id: int | None, guard: SafeOffGuard, *,
                  policy: RetryPolicy, progress: bool = True, traffic_log: Any = None,
                  sleep: Callable[[float], None] = time.sleep,
                  clock: Callable[[], float] = time.monotonic):
@@ -1106,7 +1106,7 @@ def _execute(plan: Plan, bench: Any, store: Store, run_id: int | None,
 
         if runner.run_id is None and create is not None:  # the bench never opened
             runner.attach(create(None))
-        run_id = runner.run_id
+        run_id = cast(int, runner.run_id)  # given, or created just above
         reason = _record_end(store, run_id, status, reason, events, problems, late_signal)
     finally:
         guard.uninstall()
@@ -1176,7 +1176,7 @@ def _classify(exc: BaseException | None) -> tuple[str, str | None, BaseException
 
 
 def check_identities(expected: dict[str, str], found: dict[str, str], *, force: bool,
-                     run_id: int, store: Store) -> None:
+                     run_id: int | None, store: Store) -> None:
     """Refuse to resume on different instruments (unless forced, then record it)."""
     diffs = [f"{role}: was {expected.get(role)!r}, now {found.get(role)!r}"
              for role in sorted(set(expected) | set(found))
