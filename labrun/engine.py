@@ -211,8 +211,9 @@ def _describe(obj: Any) -> str:
 class Runner:
     """Runs points of one run: owns the connections, the applied-state cache and the guard."""
 
-    def __init__(self, plan: Plan, bench: Any, store: Store, run_id: int | None, guard: SafeOffGuard, *,
-                 policy: RetryPolicy, progress: bool = True, traffic_log: Any = None,
+    def __init__(self, plan: Plan, bench: Any, store: Store, run_id: int | None,
+                 guard: SafeOffGuard, *, policy: RetryPolicy, progress: bool = True,
+                 traffic_log: Any = None,
                  sleep: Callable[[float], None] = time.sleep,
                  clock: Callable[[], float] = time.monotonic):
         self.plan, self.bench, self.store, self.run_id = plan, bench, store, run_id
