@@ -141,9 +141,10 @@ def fit_spool(runs_points: Sequence[Any], spool_length_km: float, loss_db_per_km
         raise ValueError("fit_spool needs the points of at least one run")
     t = _concat(tables)
     n = t["power_a_dbm"].size
-    kw = {"dispersion_ps_per_nm_km": dispersion_ps_per_nm_km,
-          "slope_ps_per_nm2_km": slope_ps_per_nm2_km,
-          "reference_wavelength_nm": reference_wavelength_nm, "polarisation": polarisation}
+    kw: dict[str, Any] = {
+        "dispersion_ps_per_nm_km": dispersion_ps_per_nm_km,
+        "slope_ps_per_nm2_km": slope_ps_per_nm2_km,
+        "reference_wavelength_nm": reference_wavelength_nm, "polarisation": polarisation}
     closed = fit_run(t, spool_length_km, loss_db_per_km, **kw, uncertainties=uncertainties)
     theta = _params(closed, dispersion_ps_per_nm_km, slope_ps_per_nm2_km)
     if theta is None or "spacing_ghz" not in t:

@@ -25,6 +25,7 @@ import math
 import re
 from collections.abc import Mapping
 from dataclasses import asdict, dataclass, field, replace
+from typing import Any
 
 import numpy as np
 from scipy import stats
@@ -174,6 +175,7 @@ def _copolar(t: Mapping[str, np.ndarray], n: int,
     """
     frame = frame or PolFrame()
     sa_frame = np.asarray(frame.tone_a_stokes, dtype=float)
+    notes: list[str]
     if "copolar" in t:
         c, notes = t["copolar"].copy(), []
     elif "pol_stokes_a" in t:
@@ -421,6 +423,7 @@ def fit_gamma_small_signal(p_a_w, p_b_w, ratio, l_eff_km: float, *, eta=None, co
         # eta(gamma): the nonlinear mismatch depends on gamma itself; a few fixed-point passes
         # (the dependence is weak: gamma P L_eff << 1 inside the small-signal cut).
         g = None
+        res: FitResult | None = None
         for _ in range(4):
             res = fit_gamma_small_signal(p_a, p_b, r, l_eff_km,
                                          eta=eta(1.0 if g is None else g), copolar=copolar,
@@ -428,7 +431,8 @@ def fit_gamma_small_signal(p_a_w, p_b_w, ratio, l_eff_km: float, *, eta=None, co
             if res is None:
                 return None
             g = res.value
-        res.extra["nonlinear_mismatch"] = True
+        if res is not None:
+            res.extra["nonlinear_mismatch"] = True
         return res
     eta = np.ones_like(r) if eta is None else np.asarray(eta, float)
     cop = np.ones_like(r) if copolar is None else np.asarray(copolar, float)
@@ -541,7 +545,7 @@ def fit_dispersion(p_a_w, p_b_w, spacing_ghz, wavelength_a_nm, side, ratio, *, l
     starts = _dispersion_starts(y, u, lam, lams, alpha, length_km, d_max, with_slope,
                                 reference_wavelength_nm, s_max)
     # Stage 1, Inoue's linear mismatch (closed form, fast) from every start, D >= 0.
-    lin = None
+    lin: Any = None  # scipy's OptimizeResult of the best start
     for d0, s0 in starts:
         eta0 = np.asarray(inoue_efficiency(alpha, d0 * u + s0 * v, length_km))
         g0 = float(np.mean(y - DB * np.log(np.maximum(eta0, 1e-300)))) / (2.0 * DB)
@@ -556,12 +560,12 @@ def fit_dispersion(p_a_w, p_b_w, spacing_ghz, wavelength_a_nm, side, ratio, *, l
     # are refined from the linear solution and the better one kept.
     lo = [-np.inf, -d_max] + ([-s_max] if with_slope else [])
     hi = [np.inf, d_max] + ([s_max] if with_slope else [])
-    best: dict[bool, object] = {}
+    best: dict[bool, Any] = {}
     for sign in (1.0, -1.0):
-        theta0 = np.array(lin.x, dtype=float)
-        theta0[1:] *= sign
-        theta0[1] = float(np.clip(theta0[1], -d_max, d_max))
-        try_sol = least_squares(resid, theta0, bounds=(lo, hi), x_scale="jac")
+        theta1 = np.array(lin.x, dtype=float)
+        theta1[1:] *= sign
+        theta1[1] = float(np.clip(theta1[1], -d_max, d_max))
+        try_sol = least_squares(resid, theta1, bounds=(lo, hi), x_scale="jac")
         neg = bool(try_sol.x[1] < 0)
         if neg not in best or try_sol.cost < best[neg].cost:
             best[neg] = try_sol
@@ -610,13 +614,12 @@ def _dispersion_starts(y, u, lam, lams, alpha, length_km, d_max, with_slope, lam
         return [(d, 0.0) for d in _grid_dispersion(y, u, alpha, length_km, d_max)]
     d_each = np.array([_grid_dispersion(y[lam == lv], u[lam == lv], alpha, length_km, d_max,
                                         n_best=1)[0] for lv in lams])
-    best = None
+    fits = []
     for k in range(lams.size + 1):  # negative below the k-th wavelength: one zero crossing
         signed = np.where(np.arange(lams.size) < k, -d_each, d_each)
         coef = np.polyfit(lams - lam_ref, signed, 1)
-        ss = float(np.sum((np.polyval(coef, lams - lam_ref) - signed) ** 2))
-        if best is None or ss < best[0]:
-            best = (ss, coef)
+        fits.append((float(np.sum((np.polyval(coef, lams - lam_ref) - signed) ** 2)), coef))
+    best = min(fits, key=lambda f: f[0])  # the first of equals, as a strict < scan keeps
     s0, d0 = float(best[1][0]), float(best[1][1])
     if d0 < 0:
         d0, s0 = -d0, -s0
@@ -786,11 +789,12 @@ def fit_run(points, spool_length_km: float, loss_db_per_km: float, *,
     input quantity.
     """
     t = points_table(points)
-    kw = {"dispersion_ps_per_nm_km": dispersion_ps_per_nm_km,
-          "slope_ps_per_nm2_km": slope_ps_per_nm2_km,
-          "reference_wavelength_nm": reference_wavelength_nm, "max_order": max_order,
-          "copolar_min": copolar_min, "small_signal_max_ratio_db": small_signal_max_ratio_db,
-          "bessel_max_mismatch_rad": bessel_max_mismatch_rad, "polarisation": polarisation}
+    kw: dict[str, Any] = {
+        "dispersion_ps_per_nm_km": dispersion_ps_per_nm_km,
+        "slope_ps_per_nm2_km": slope_ps_per_nm2_km,
+        "reference_wavelength_nm": reference_wavelength_nm, "max_order": max_order,
+        "copolar_min": copolar_min, "small_signal_max_ratio_db": small_signal_max_ratio_db,
+        "bessel_max_mismatch_rad": bessel_max_mismatch_rad, "polarisation": polarisation}
     results = _fit_table(t, spool_length_km, loss_db_per_km, **kw)
     if uncertainties is None:
         return results

@@ -16,8 +16,14 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass
+from typing import TYPE_CHECKING, TypeAlias
+
+if TYPE_CHECKING:
+    import numpy as np
 
 from labrun.physics.units import C_M_PER_S
+
+FloatOrArray: TypeAlias = "float | np.ndarray"  # a value, or one per point (element-wise)
 
 K_COVERAGE = 2.0
 
@@ -57,7 +63,8 @@ COMPONENTS = (
 )
 
 
-def spacing_shift_ghz(wavelength_pm: float, wavelength_nm: float = 1550.0) -> float:
+def spacing_shift_ghz(wavelength_pm: float, wavelength_nm: FloatOrArray = 1550.0
+                      ) -> FloatOrArray:
     """Spacing error (GHz) from two independent laser wavelength errors of wavelength_pm:
     sqrt(2) u_lambda c / lambda^2 (d f = c d lambda / lambda^2)."""
     return math.sqrt(2.0) * wavelength_pm * 1e-12 * C_M_PER_S / (wavelength_nm * 1e-9) ** 2 * 1e-9
