@@ -171,6 +171,8 @@ def fit_spool(runs_points: Sequence[Any], spool_length_km: float, loss_db_per_km
         current = fit_run(t2, spool_length_km, loss_db_per_km, **kw,
                           uncertainties=uncertainties)
     step = [abs(a - b) for a, b in zip(history[-1], history[-2], strict=True)]
+    no_d = dispersion_ps_per_nm_km is None and not math.isfinite(
+        closed.get("dispersion", FitResult(float("nan"), 0, 0, 0, "", "")).value)
     out = dict(closed)
     exact_names = {"gamma": "gamma_small_signal", "dispersion": "dispersion",
                    "dispersion_slope": "dispersion_slope"}
@@ -181,7 +183,11 @@ def fit_spool(runs_points: Sequence[Any], spool_length_km: float, loss_db_per_km
         extra = dict(r.extra)
         extra.update(iterations=len(history) - 1, last_step=step[list(exact_names).index(name)],
                      closed_form_value=closed[src].value if src in closed else float("nan"))
-        out[name] = replace(r, model=EXACT_MODEL, extra=extra)
+        warn = list(r.warnings)
+        if no_d:
+            warn.append("exact model run with D = 0 and no slope: no dispersion given and "
+                        "none fitted (add a spacing run of this spool, or give D)")
+        out[name] = replace(r, model=EXACT_MODEL, extra=extra, warnings=warn)
     # Model error of each closed-form result: its distance from the exact one.
     for cf, ex in (("gamma_small_signal", "gamma"), ("gamma_bessel", "gamma"),
                    ("dispersion", "dispersion"), ("dispersion_slope", "dispersion_slope")):

@@ -186,6 +186,13 @@ def _copolar(t: Mapping[str, np.ndarray], n: int,
         c = _copolar_rows(np.tile(sa_frame, (n, 1)), t["pol_stokes"])
         notes = [f"copolar fraction from pol_stokes (tone b) against tone a at "
                  f"{tuple(float(v) for v in sa_frame)} (bench [polarisation].tone_a_stokes)"]
+        gap = np.isnan(c)
+        if gap.any() and "pol_angles_deg" in t:  # runs pooled: some recorded paddle angles
+            c_ang, ang_notes = _copolar_from_angles(t["pol_angles_deg"][gap], frame)
+            c[gap] = c_ang
+            notes += ang_notes
+            if np.isnan(c).any():
+                return c, notes
     elif "pol_angles_deg" in t:
         return _copolar_from_angles(t["pol_angles_deg"], frame)
     else:

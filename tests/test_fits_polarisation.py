@@ -165,3 +165,16 @@ def test_bench_polarisation_table_is_checked(tmp_path: Path, line: str, field: s
     with pytest.raises(InputError) as err:
         load_bench(path)
     assert field in str(err.value)
+
+
+def test_pooled_runs_read_stokes_and_paddle_angles_each_where_recorded() -> None:
+    # Runs pooled for one spool: one recorded pol_stokes, the other paddle angles; each point's
+    # copolar fraction must come from what it recorded (angles through the declared model).
+    thetas = np.arange(0.0, 180.0, 15.0)
+    stokes_run = _points(thetas)
+    angle_run = _points(thetas, angles=[(0.0, th / 4.0, 0.0) for th in thetas])
+    frame = PolFrame(controller="quarter-half-quarter")
+    res = fit_run(stokes_run + angle_run, LENGTH, LOSS, dispersion_ps_per_nm_km=0.0,
+                  polarisation=frame)
+    assert res["gamma_bessel"].n_points >= 14
+    assert res["gamma_bessel"].value == pytest.approx(GAMMA, rel=1e-4)
