@@ -211,7 +211,7 @@ class ScpiSession:
                  error_query: str | None = "SYST:ERR?", opc_query: str | None = "*OPC?",
                  traffic_log: TrafficLog | None = None, role: str | None = None,
                  retries: int = 2, sim_file: str | Path | None = None, compound: bool = False,
-                 on_fault: FaultHook | None = None):
+                 on_fault: FaultHook | None = None, init: tuple[str, ...] = ()):
         self.resource = resource
         self.backend = backend
         self.write_termination = write_termination
@@ -225,6 +225,8 @@ class ScpiSession:
         self.sim_file = sim_file
         self.compound = bool(compound)  # the instrument takes IEEE 488.2 compound messages
         self.on_fault = on_fault
+        self.init = tuple(init)  # the profile's init commands, sent again on every reopen
+        self._opened = False  # opened once already: a later open is a reconnect
         self._res: MessageBasedResource | None = None
         self._last_block: bytes | None = None  # the last block read, for the traffic log
         self._lock = threading.RLock()
@@ -271,7 +273,20 @@ class ScpiSession:
                 raise self._no_answer(exc) from exc
             _no_delay(self._res)
             log.debug("%s: opened %s via %s", self.who, self.resource, self.backend)
+            if self._opened:
+                self._send_init()
+            self._opened = True
             return self
+
+    def _send_init(self) -> None:
+        """After a reconnect, send the profile's init commands again (a remote enable, ``*CLS``):
+        the instrument may have started a new session in its power-on state. Profile loading
+        refuses init commands that switch a source on."""
+        for cmd in self.init:
+            started = time.time()
+            self._live().write(cmd)
+            self._record("write", cmd, started, None, None, 1)
+            log.info("%s: sent init %r again after reconnecting", self.who, cmd)
 
     def close(self) -> None:
         """Close the VISA resource; safe to call twice and after a lost connection."""

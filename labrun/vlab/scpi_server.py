@@ -69,6 +69,9 @@ class SimInstrument:
         self.esr = 0
         self.ese = 0
         self._opc_armed = False
+        # A header that must open every connection before it may change a setting (None: any
+        # connection may): an instrument that starts each session in local mode.
+        self.remote_enable: str | None = None
         self.table = CommandTable()
         self._register_common()
         self.register()
@@ -91,6 +94,7 @@ class SimInstrument:
         t.add("SYSTem:ERRor[:NEXT]", self._next_error, query=True)
         t.add("SYSTem:ERRor:COUNt", lambda c: str(len(self.errors)), query=True)
         t.add("SYSTem:VERSion", lambda c: "1999.0", query=True)
+        t.add("SYSTem:REMote", lambda c: None, nargs=(0, 0))
 
     def register(self) -> None:
         """Kind-specific commands (overridden)."""
@@ -155,8 +159,10 @@ class SimInstrument:
         """Block until pending operations finish (interruptible by stop)."""
 
     # ---- execution ---------------------------------------------------------------------------
-    def execute(self, message: str) -> bytes | None:
-        """Run one program message; returns the response message (with newline) or None."""
+    def execute(self, message: str, *, local: bool = False) -> bytes | None:
+        """Run one program message; returns the response message (with newline) or None.
+        ``local``: the connection has not sent ``remote_enable`` yet, so every setting but
+        that one and the IEEE 488.2 common commands is refused (error -221)."""
         replies: list[bytes] = []
         prefix: list[tuple[str, int | None]] = []
         for text in split_message(message):
@@ -166,6 +172,11 @@ class SimInstrument:
                 with self.lab.lock:
                     self.push_error(fault.code, fault.detail)
                 prefix = []
+                continue
+            if local and not (cmd.query or cmd.common) and \
+                    cmd.text.split()[0].upper() != self.remote_enable:
+                with self.lab.lock:
+                    self.push_error(-221, "remote not enabled")
                 continue
             found = None
             if cmd.common:
@@ -598,6 +609,7 @@ class _TcpServer(socketserver.ThreadingTCPServer):
         self.instrument = instrument
         self.stopping = stopping
         self._clients: set[socket.socket] = set()
+        self._remote: set[socket.socket] = set()  # clients that sent the remote-enable command
         self._clients_lock = threading.Lock()
         super().__init__(address, _Handler)
 
@@ -605,6 +617,7 @@ class _TcpServer(socketserver.ThreadingTCPServer):
         """Remember or forget a client socket."""
         with self._clients_lock:
             (self._clients.add if add else self._clients.discard)(sock)
+            self._remote.discard(sock)
 
     def drop_clients(self) -> int:
         """Close every client connection (as a power cycle or a cable pull would)."""
@@ -629,7 +642,12 @@ class _TcpServer(socketserver.ThreadingTCPServer):
         if decision.timeout:
             log.debug("%s: fault: swallowing %r", inst.role, line[:60])
             return True
-        reply = inst.execute(line.decode("latin-1"))
+        text = line.decode("latin-1")
+        local = inst.remote_enable is not None and sock not in self._remote
+        if local and text.split(";")[0].strip().upper() == inst.remote_enable:
+            with self._clients_lock:
+                self._remote.add(sock)
+        reply = inst.execute(text, local=local)
         if decision.spurious:
             with inst.lab.lock:
                 inst.push_error(decision.spurious)
