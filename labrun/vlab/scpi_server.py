@@ -647,7 +647,7 @@ class _TcpServer(socketserver.ThreadingTCPServer):
         if local and text.split(";")[0].strip().upper() == inst.remote_enable:
             with self._clients_lock:
                 self._remote.add(sock)
-        reply = inst.execute(text, local=local)
+        reply = inst.execute(text, local=True) if local else inst.execute(text)
         if decision.spurious:
             with inst.lab.lock:
                 inst.push_error(decision.spurious)
