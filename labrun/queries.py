@@ -34,6 +34,24 @@ def _frame(store: Store, query: Any) -> pd.DataFrame:
         return pd.DataFrame(list(map(tuple, result.fetchall())), columns=columns)
 
 
+def _raw_frame(store: Store, query: Any) -> pd.DataFrame:
+    """A big query's rows as a DataFrame straight from the driver's cursor (plain tuples, no
+    SQLAlchemy row objects): values as the driver gives them. Literal values only (ids, line
+    names), so the statement is compiled with them inline."""
+    import pandas as pd
+
+    sql = str(query.compile(store.engine, compile_kwargs={"literal_binds": True}))
+    columns = [c.name for c in query.selected_columns]
+    with store.engine.connect() as conn:
+        cursor = conn.connection.dbapi_connection.cursor()
+        try:
+            cursor.execute(sql)
+            rows = cursor.fetchall()
+        finally:
+            cursor.close()
+    return pd.DataFrame(rows, columns=columns)
+
+
 def _require_run(store: Store, run_id: int) -> None:
     """InputError naming RUN_ID when the run does not exist."""
     with store.engine.connect() as conn:
@@ -69,12 +87,21 @@ def line_keys(lines: pd.DataFrame) -> pd.Series:
     return pd.Series([names[t] for t in triples], index=lines.index, dtype=object)
 
 
-def _line_ids(store: Store, run_id: int) -> list[LineId]:
-    """The distinct output lines a run has (a handful: tones and sidebands per order)."""
+def _has_input_traces(store: Store, run_id: int) -> bool:
+    """True when some point of the run captured the spool input (switch path 2) as well."""
+    q = (select(Trace.id).join(Point, Point.id == Trace.point_id)
+         .where(Point.run_id == run_id, Trace.kind != "output").limit(1))
+    with store.engine.connect() as conn:
+        return conn.execute(q).first() is not None
+
+
+def _line_ids(store: Store, run_id: int, inputs: bool) -> list[LineId]:
+    """The distinct output lines a run has (a handful: tones and sidebands per order);
+    ``inputs``: the run has input-tap traces, whose lines are left out."""
     q = (select(Line.kind, Line.side, Line.order).distinct()
-         .join(Point, Point.id == Line.point_id)
-         .outerjoin(Trace, Trace.id == Line.trace_id)
-         .where(Point.run_id == run_id, _OUTPUT))
+         .where(Line.point_id.in_(select(Point.id).where(Point.run_id == run_id))))
+    if inputs:
+        q = q.outerjoin(Trace, Trace.id == Line.trace_id).where(_OUTPUT)
     with store.engine.connect() as conn:
         found = [LineId(k, s, int(o)) for k, s, o in conn.execute(q)]
     return sorted(found, key=lambda ln: (ln.kind != "tone", ln.side, ln.order))
@@ -98,19 +125,20 @@ def run_points(store: Store, run_id: int, *, include_reference: bool = True) -> 
     import pandas as pd
 
     _require_run(store, run_id)
+    inputs = _has_input_traces(store, run_id)  # most runs have none: no join with traces then
+    keep = (Line.detected.is_(True), _OUTPUT) if inputs else (Line.detected.is_(True),)
     wanted = [func.max(case((and_(Line.kind == ln.kind, Line.side == ln.side,
-                                  Line.order == ln.order, Line.detected.is_(True), _OUTPUT),
-                                 Line.power_dbm))).label(ln.key)
-              for ln in _line_ids(store, run_id)]
+                                  Line.order == ln.order, *keep), Line.power_dbm))).label(ln.key)
+              for ln in _line_ids(store, run_id, inputs)]
     q = (select(Point.id.label("point_id"), Point.index, Point.key, Point.is_reference,
                 Point.repeat, Point.floor_dbm, type_coerce(Point.setpoint, Text).label("sp"),
                 *wanted)
          .select_from(Point)
-         .outerjoin(Line, Line.point_id == Point.id)
-         .outerjoin(Trace, Trace.id == Line.trace_id)
-         .where(Point.run_id == run_id)
-         .group_by(Point.id).order_by(Point.index))
-    table = _frame(store, q)
+         .outerjoin(Line, Line.point_id == Point.id))
+    if inputs:
+        q = q.outerjoin(Trace, Trace.id == Line.trace_id)
+    q = q.where(Point.run_id == run_id).group_by(Point.id).order_by(Point.index)
+    table = _raw_frame(store, q)
     if table.empty:
         return pd.DataFrame(columns=list(POINT_COLUMNS))
     setpoints = pd.DataFrame(_json_column(table.pop("sp")), index=table.index)
