@@ -50,7 +50,8 @@ from labrun.safe_off import darken
 from labrun.scpi import NoAnswerError
 from labrun.settle import group_settles, setting_s, wait_s
 from labrun.shutdown import RunInterrupted, SafeOffGuard
-from labrun.store import FINISHED_STATUSES, Store, TraceData
+from labrun.store import Store, TraceData
+from labrun.store.models import FINISHED_STATUSES, RunStatus
 from labrun.trafficlog import EVENT_KIND
 
 if TYPE_CHECKING:
@@ -76,7 +77,7 @@ class RunOutcome:
     """How a run ended; ``to_dict`` is the ``--json`` output."""
 
     run_id: int
-    status: str
+    status: RunStatus
     points_done: int
     points_total: int
     reason: str | None = None
@@ -95,7 +96,7 @@ class RunOutcome:
             return 1
         if self.status in FINISHED_STATUSES:
             return 0
-        if self.status == "interrupted":
+        if self.status == RunStatus.INTERRUPTED:
             return 128 + (self.signal or SIGINT)
         return 1
 
@@ -940,7 +941,7 @@ def _run_fields(plan: Plan, bench: Any, *, operator: str | None, unattended: boo
                 total: int) -> dict[str, Any]:
     """Columns of a new Run row."""
     return dict(
-        status="created", plan_name=plan.name,
+        status=RunStatus.CREATED, plan_name=plan.name,
         plan_path=_abspath(plan.file), plan_text=plan.text,
         plan_sha256=plan.sha256, bench_name=bench.name,
         bench_path=_abspath(bench.path), bench_text=bench.text, operator=operator,
@@ -1068,7 +1069,7 @@ def _execute(plan: Plan, bench: Any, store: Store, run_id: int | None,
             if expect_identities is not None:
                 check_identities(expect_identities, identities, force=force, run_id=run_id,
                                  store=store)
-            fields: dict[str, Any] = {"status": "running", "heartbeat_at": utcnow(),
+            fields: dict[str, Any] = {"status": RunStatus.RUNNING, "heartbeat_at": utcnow(),
                                       "pid": os.getpid(), "host": socket.gethostname()}
             if first:
                 fields.update(identities=identities, started_at=utcnow(),
@@ -1095,8 +1096,8 @@ def _execute(plan: Plan, bench: Any, store: Store, run_id: int | None,
         events = [("safe_off", "all sources off, attenuators at maximum"
                                        if not problems else
                                        "NOT CONFIRMED OFF: " + "; ".join(problems))]
-        if status == "completed" and done < total:
-            status, reason = "failed", f"only {done} of {total} points stored"
+        if status == RunStatus.COMPLETED and done < total:
+            status, reason = RunStatus.FAILED, f"only {done} of {total} points stored"
 
         def late_signal() -> list[tuple[str, str]]:
             """A signal that came while the run was finishing (also while writing its end)."""
@@ -1117,7 +1118,7 @@ def _execute(plan: Plan, bench: Any, store: Store, run_id: int | None,
                       reason=reason, db=store.url, safe_off_problems=problems, signal=signum)
 
 
-def _record_end(store: RunStore, run_id: int, status: str, reason: str | None,
+def _record_end(store: RunStore, run_id: int, status: RunStatus, reason: str | None,
                 events: list[tuple[str, str]], problems: list[str],
                 late: Callable[[], list[tuple[str, str]]]) -> str | None:
     """The run's last events (``late()`` is asked once the others are written), its final
@@ -1157,23 +1158,23 @@ def estimate_per_point(plan: Plan, bench: Any, points: int = 4) -> float | None:
     return round(sum(later) / len(later), 4) if later else None
 
 
-def _classify(exc: BaseException | None) -> tuple[str, str | None, BaseException | None,
+def _classify(exc: BaseException | None) -> tuple[RunStatus, str | None, BaseException | None,
                                                   int | None]:
     """How a run ended, from what left its loop: (status, reason, error to re-raise or report,
     signal number). None: every point was measured."""
     if exc is None:
-        return "completed", None, None, None
+        return RunStatus.COMPLETED, None, None, None
     if isinstance(exc, StopRequested):
-        return "stopped", str(exc), None, None
+        return RunStatus.STOPPED, str(exc), None, None
     if isinstance(exc, RunInterrupted):
-        return "interrupted", str(exc), None, exc.signum
+        return RunStatus.INTERRUPTED, str(exc), None, exc.signum
     if isinstance(exc, KeyboardInterrupt):
-        return "interrupted", "interrupted (KeyboardInterrupt)", None, SIGINT
+        return RunStatus.INTERRUPTED, "interrupted (KeyboardInterrupt)", None, SIGINT
     if isinstance(exc, RunAborted | StoreFault):
-        return "aborted", str(exc), None, None
+        return RunStatus.ABORTED, str(exc), None, None
     if isinstance(exc, InstrumentError | SafetyError):
-        return "aborted", str(exc), exc, None
-    return "failed", f"{type(exc).__name__}: {exc}", exc, None
+        return RunStatus.ABORTED, str(exc), exc, None
+    return RunStatus.FAILED, f"{type(exc).__name__}: {exc}", exc, None
 
 
 def check_identities(expected: dict[str, str], found: dict[str, str], *, force: bool,
@@ -1240,7 +1241,7 @@ def resume_run(run_id: int, store: Store, *, bench: Any = None, force: bool = Fa
         raise InputError(f"run {run_id} is already {run.status}", field="RUN_ID")
     # Never overridden, not even by --force (which only covers a changed plan or different
     # instruments): two processes must not drive the same lasers.
-    if run.status == "running" and process_alive(run):
+    if run.status == RunStatus.RUNNING and process_alive(run):
         raise SafetyError(f"run {run_id} is still running (pid {run.pid} on {run.host}); "
                           "--force does not override this")
     if bench is None:

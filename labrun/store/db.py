@@ -36,7 +36,18 @@ from sqlalchemy.orm import Session, sessionmaker
 
 from labrun.errors import InputError
 from labrun.store import DEFAULT_DB, schema
-from labrun.store.models import Base, Event, Line, Point, Run, Spool, Trace, utcnow
+from labrun.store.models import (
+    Base,
+    Event,
+    EventKind,
+    Line,
+    Point,
+    Run,
+    RunStatus,
+    Spool,
+    Trace,
+    utcnow,
+)
 from labrun.store.tracecodec import encode_y
 
 if TYPE_CHECKING:  # numpy is imported where traces are encoded: `labrun status` needs none
@@ -154,7 +165,7 @@ class Store:
         with self.session() as s:
             s.execute(update(Run).where(Run.id == run_id).values(**fields))
 
-    def set_status(self, run_id: int, status: str, reason: str | None = None, *,
+    def set_status(self, run_id: int, status: RunStatus, reason: str | None = None, *,
                    finished: bool = False) -> None:
         """Change a run's status (and reason); ``finished`` also stamps finished_at."""
         values: dict[str, Any] = {"status": status, "reason": reason, "heartbeat_at": utcnow()}
@@ -191,7 +202,7 @@ class Store:
                          field="spool")
 
     # ----- events -----------------------------------------------------------------------------
-    def add_event(self, run_id: int, kind: str, message: str = "", *, role: str | None = None,
+    def add_event(self, run_id: int, kind: EventKind, message: str = "", *, role: str | None = None,
                   point_key: str | None = None, data: dict[str, Any] | None = None) -> None:
         """Log one event against a run, in its own transaction."""
         with self.engine.begin() as conn:

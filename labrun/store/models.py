@@ -10,6 +10,7 @@ an Alembic revision in ``labrun/store/migrations/versions`` (see ``labrun.store.
 
 from __future__ import annotations
 
+import enum
 from datetime import UTC, datetime
 from typing import TYPE_CHECKING, Any
 
@@ -32,12 +33,46 @@ from sqlalchemy.orm import DeclarativeBase, Mapped, mapped_column, relationship
 if TYPE_CHECKING:  # numpy is imported where a trace is decoded: `labrun status` needs none
     import numpy as np
 
-# Run statuses. "created": recorded, nothing emitted yet; "running": in the loop (or the process
-# died: see the heartbeat); "completed": every point done; "stopped": a plan stop condition ended
-# it; "interrupted": Ctrl-C or SIGTERM; "aborted": a safety condition or faults beyond retries;
-# "failed": an unexpected error.
-RUN_STATUSES = ("created", "running", "completed", "stopped", "interrupted", "aborted", "failed")
-FINISHED_STATUSES = ("completed", "stopped")
+
+class RunStatus(enum.StrEnum):
+    """A run's status, stored as its value (the strings labrun 0.1.0 wrote: old stores read the
+    same). A member equals its string, so ``status == "completed"`` keeps working."""
+
+    CREATED = "created"  # recorded, nothing emitted yet
+    RUNNING = "running"  # in the loop (or the process died: see the heartbeat)
+    COMPLETED = "completed"  # every point done
+    STOPPED = "stopped"  # a plan stop condition ended it
+    INTERRUPTED = "interrupted"  # Ctrl-C or SIGTERM
+    ABORTED = "aborted"  # a safety condition or faults beyond retries
+    FAILED = "failed"  # an unexpected error
+
+
+class EventKind(enum.StrEnum):
+    """What a run event records, stored as its value. The event that ends a run has the run's
+    final status as its kind (the last five members)."""
+
+    SAFETY_ACK = "safety_ack"  # the operator's laser-safety acknowledgement
+    FAULT = "fault"  # an instrument fault (or a surprise found in an instrument's state)
+    RETRY = "retry"  # a point, or the opening of the bench, tried again
+    DARK = "dark"  # sources switched off after a fault
+    RELIGHT = "relight"  # switching on again after a fault
+    FOUND_ON = "found_on"  # a source output was on before labrun switched it on
+    SAFE_OFF = "safe_off"  # the end-of-run safe-off and whether it was confirmed
+    SIGNAL = "signal"  # a signal that came while the run was finishing
+    REPLAY = "replay"  # this run replays a stored one (virtual, no light)
+    RESUME = "resume"  # the run was resumed
+    FORCED = "forced"  # resumed on different instruments with --force
+    TRAFFIC_LOG = "traffic_log"  # the file the instrument traffic streamed to
+    TRANSCRIPT = "transcript"  # the same, under its earlier name (runs stored before the rename)
+    COMPLETED = "completed"
+    STOPPED = "stopped"
+    INTERRUPTED = "interrupted"
+    ABORTED = "aborted"
+    FAILED = "failed"
+
+
+RUN_STATUSES = tuple(RunStatus)
+FINISHED_STATUSES = (RunStatus.COMPLETED, RunStatus.STOPPED)
 
 
 def utcnow() -> datetime:
@@ -64,6 +99,31 @@ class UtcDateTime(TypeDecorator):
         if value is None:
             return None
         return value.replace(tzinfo=UTC) if value.tzinfo is None else value.astimezone(UTC)
+
+
+class StrEnumText(TypeDecorator):
+    """A VARCHAR holding a StrEnum's value; read back as the member. A value this labrun does not
+    know (written by a newer one) comes back as the plain string rather than failing the read."""
+
+    impl = String
+    cache_ok = True
+
+    def __init__(self, enum_type: type[enum.StrEnum], length: int):
+        super().__init__(length)
+        self.enum_type = enum_type
+
+    def process_bind_param(self, value: str | None, dialect: Any) -> str | None:
+        """Store the value itself (a member's string), never the member's name."""
+        return None if value is None else str(value)
+
+    def process_result_value(self, value: str | None, dialect: Any) -> str | None:
+        """The member for a known value, else the string as stored."""
+        if value is None:
+            return None
+        try:
+            return self.enum_type(value)
+        except ValueError:
+            return value
 
 
 class Base(DeclarativeBase):
@@ -95,7 +155,8 @@ class Run(Base):
     __tablename__ = "runs"
 
     id: Mapped[int] = mapped_column(Integer, primary_key=True)
-    status: Mapped[str] = mapped_column(String(20), default="created", index=True)
+    status: Mapped[RunStatus] = mapped_column(StrEnumText(RunStatus, 20),
+                                              default=RunStatus.CREATED, index=True)
     reason: Mapped[str | None] = mapped_column(Text)
     plan_name: Mapped[str | None] = mapped_column(String(200))
     plan_path: Mapped[str | None] = mapped_column(Text)
@@ -227,7 +288,7 @@ class Event(Base):
     id: Mapped[int] = mapped_column(Integer, primary_key=True)
     run_id: Mapped[int] = mapped_column(ForeignKey("runs.id", ondelete="CASCADE"), index=True)
     at: Mapped[datetime] = mapped_column(UtcDateTime, default=utcnow)
-    kind: Mapped[str] = mapped_column(String(40), index=True)
+    kind: Mapped[EventKind] = mapped_column(StrEnumText(EventKind, 40), index=True)
     role: Mapped[str | None] = mapped_column(String(40))
     point_key: Mapped[str | None] = mapped_column(String(400))
     message: Mapped[str] = mapped_column(Text, default="")
