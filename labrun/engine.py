@@ -61,6 +61,8 @@ if TYPE_CHECKING:
 # corrupted transfer, not light (common practice).
 TRACE_DBM_BOUNDS = (-300.0, 100.0)
 STALE_HEARTBEAT_S = 60.0  # a running run with an older heartbeat is probably dead
+# The OSA's settings of a point, in the order of OsaSettings (centre, span, RBW, samples).
+OSA_SETTINGS = ("set_center_nm", "set_span_nm", "set_rbw_nm", "set_points")
 SIGINT = int(_signal.SIGINT)  # Ctrl-C; KeyboardInterrupt counts as this signal
 
 
@@ -572,12 +574,15 @@ class Runner:
         self.check_emission()
 
     def configure_osa(self, setpoint: dict[str, Any]) -> None:
-        """Apply the plan's OSA settings for this point (re-centred if the pump moves)."""
+        """Apply the plan's OSA settings for this point (re-centred if the pump moves): set,
+        wait once and read back like every other setting, only what changed."""
         s = self.osa_settings.for_point(setpoint)
         wanted = (s.center_nm, s.span_nm, s.rbw_nm, int(s.points))
         if self.applied.get(("osa", "configure")) != wanted:
             self.trace_x = None
-            self.role("osa").configure(*wanted)
+            self.applied.pop(("osa", "configure"), None)
+            self.apply([Setting("osa", name, value) for name, value in zip(OSA_SETTINGS, wanted,
+                                                                           strict=True)])
             self.applied[("osa", "configure")] = wanted
             # Stored with each trace; built once per OSA configuration, not per point.
             self.trace_meta = {"center_nm": s.center_nm, "span_nm": s.span_nm,
