@@ -86,6 +86,7 @@ class _ProfileHead(_Strict):
     read_termination: str = "\n"
     timeout_ms: int = Field(3000, gt=0, le=600_000)
     error_query: str | None = "SYST:ERR?"
+    error_queue: bool = True  # false: the instrument has none (declared, so probe can say so)
     opc_query: str | None = "*OPC?"
     init: list[str] = []
 
@@ -121,6 +122,37 @@ class TraceSpec(_Strict):
     ascii_command: str | None = None
     byte_order_command: str | None = None
     sweep_time: SweepTime | None = None
+
+
+# The named groups each reply form must have (labrun reads only those groups).
+REPLY_GROUPS: dict[str, tuple[str, ...]] = {"error": ("code",), "number": ("value",),
+                                            "state": ("state",)}
+
+
+class ReplyForms(_Strict):
+    """How to read replies that do not follow the generic forms: one regular expression per
+    kind of reply, whose named groups hold the parts (see REPLY_GROUPS). None: the generic form
+    (SCPI-1999 ``code,"message"``; a bare number; 1/0/ON/OFF)."""
+
+    model_config = ConfigDict(**FILE_MODEL_CONFIG, frozen=True)
+
+    error: str | None = None   # groups: code, and optionally message
+    number: str | None = None  # group: value (read-backs parsed as float or int)
+    state: str | None = None   # group: state (1/0/ON/OFF/TRUE/FALSE inside it)
+
+    def pattern(self, kind: str) -> re.Pattern[str] | None:
+        """The compiled form of one kind of reply (None: the generic form)."""
+        text = getattr(self, kind)
+        return None if text is None else _compiled(text)
+
+    def declared(self) -> dict[str, str]:
+        """The forms the profile declares, by kind (for labrun probe)."""
+        return {k: v for k in REPLY_GROUPS if (v := getattr(self, k)) is not None}
+
+
+@functools.lru_cache(maxsize=256)
+def _compiled(text: str) -> re.Pattern[str]:
+    return re.compile(text)
 
 
 class Operation(_Strict):
@@ -188,6 +220,7 @@ class Operation(_Strict):
 class _ProfileFile(_Strict):
     profile: _ProfileHead
     capabilities: Capabilities = Capabilities()
+    replies: ReplyForms = ReplyForms()
     trace: TraceSpec | None = None
     operations: dict[str, Operation]
 
@@ -209,6 +242,7 @@ class Profile:
     capabilities: Capabilities
     trace: TraceSpec | None
     operations: dict[str, Operation] = field(default_factory=dict)
+    replies: ReplyForms = ReplyForms()
 
     def op(self, name: str) -> Operation:
         """The operation ``name``, or an InputError naming the profile when it is not mapped."""
@@ -351,6 +385,27 @@ def _check_messages(path: Path, head: _ProfileHead, trace: TraceSpec | None,
         _check_one_command(path, f"operations.{name}", op.template)
 
 
+def _check_replies(path: Path, head: _ProfileHead, replies: ReplyForms) -> None:
+    """Reply forms compile and have their groups; error checking is off only when declared."""
+    for kind, groups in REPLY_GROUPS.items():
+        text = getattr(replies, kind)
+        if text is None:
+            continue
+        try:
+            pattern = re.compile(text)
+        except re.error as exc:
+            raise _fail(path, f"replies.{kind}", f"not a regular expression: {exc}") from None
+        for group in groups:
+            if group not in pattern.groupindex:
+                raise _fail(path, f"replies.{kind}", f"needs a named group (?P<{group}>...)")
+    if head.error_queue and not head.error_query:
+        raise _fail(path, "profile.error_query", "empty: that would turn error checking off; "
+                                                 "declare error_queue = false if the "
+                                                 "instrument has no error queue")
+    if not head.error_queue and head.error_query:
+        raise _fail(path, "profile.error_queue", "false, yet error_query is given; remove one")
+
+
 def parse_profile(data: dict[str, Any], path: Path) -> Profile:
     """Validate a profile already read from TOML; raise a one-line InputError on the first flaw."""
     try:
@@ -363,6 +418,7 @@ def parse_profile(data: dict[str, Any], path: Path) -> Profile:
         raise _fail(path, "profile.name", f"{head.name!r} must equal the file name {path.stem!r}")
     ops = {name: op.model_copy(update={"name": name}) for name, op in model.operations.items()}
     _check_messages(path, head, model.trace, ops)
+    _check_replies(path, head, model.replies)
     for name, op in ops.items():
         _check_operation(path, head.kind, name, op, ops)
     for name in REQUIRED_OPERATIONS[head.kind]:
@@ -375,9 +431,9 @@ def parse_profile(data: dict[str, Any], path: Path) -> Profile:
     return Profile(name=head.name, kind=head.kind, path=path, description=head.description,
                    write_termination=head.write_termination,
                    read_termination=head.read_termination, timeout_ms=head.timeout_ms,
-                   error_query=head.error_query, opc_query=head.opc_query,
+                   error_query=head.error_query or None, opc_query=head.opc_query,
                    init=tuple(head.init), capabilities=model.capabilities, trace=model.trace,
-                   operations=ops)
+                   operations=ops, replies=model.replies)
 
 
 def resolve_profile_path(name_or_path: str | Path, *, base: Path | None = None) -> Path | None:

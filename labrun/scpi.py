@@ -17,6 +17,7 @@ from __future__ import annotations
 import base64
 import contextlib
 import logging
+import re
 import select
 import socket
 import threading
@@ -122,8 +123,17 @@ def parse_idn(reply: str) -> Idn:
     return Idn(*parts)
 
 
-def parse_error_reply(reply: str) -> tuple[int, str]:
-    """Split a ``SYST:ERR?`` reply such as ``-222,"Data out of range"`` into (code, message)."""
+def parse_error_reply(reply: str, form: re.Pattern[str] | None = None) -> tuple[int, str]:
+    """Split a ``SYST:ERR?`` reply such as ``-222,"Data out of range"`` into (code, message);
+    ``form``: the profile's declared error-reply form (named groups ``code``, ``message``)."""
+    if form is not None:
+        found = form.fullmatch(reply.strip())
+        if found is None:
+            raise ValueError(f"not an error-queue reply of the declared form: {reply!r}")
+        try:
+            return int(found["code"]), (found.groupdict().get("message") or "").strip()
+        except ValueError:
+            raise ValueError(f"error code not a whole number: {reply!r}") from None
     code_text, _, message = reply.strip().partition(",")
     try:
         code = int(code_text.strip())
@@ -211,7 +221,8 @@ class ScpiSession:
                  error_query: str | None = "SYST:ERR?", opc_query: str | None = "*OPC?",
                  traffic_log: TrafficLog | None = None, role: str | None = None,
                  retries: int = 2, sim_file: str | Path | None = None, compound: bool = False,
-                 on_fault: FaultHook | None = None, init: tuple[str, ...] = ()):
+                 on_fault: FaultHook | None = None, init: tuple[str, ...] = (),
+                 error_form: re.Pattern[str] | None = None):
         self.resource = resource
         self.backend = backend
         self.write_termination = write_termination
@@ -225,6 +236,7 @@ class ScpiSession:
         self.sim_file = sim_file
         self.compound = bool(compound)  # the instrument takes IEEE 488.2 compound messages
         self.on_fault = on_fault
+        self.error_form = error_form  # the profile's error-reply form (None: SCPI-1999's)
         self.init = tuple(init)  # the profile's init commands, sent again on every reopen
         self._opened = False  # opened once already: a later open is a reconnect
         self._res: MessageBasedResource | None = None
@@ -436,7 +448,7 @@ class ScpiSession:
             reply = self._res.query(self.error_query)
             self._record("query", self.error_query, started, reply.strip(), None, 1)
             try:
-                code, message = parse_error_reply(reply)
+                code, message = parse_error_reply(reply, self.error_form)
             except ValueError:
                 return
             if code == 0:
@@ -492,7 +504,7 @@ class ScpiSession:
         when the reply does not have one unit per query."""
         units = split_units(reply)
         try:
-            code, text = parse_error_reply(units[-1])
+            code, text = parse_error_reply(units[-1], self.error_form)
         except ValueError as exc:
             raise InstrumentError(f"{exc} (after {message!r})", role=self.role,
                                   resource=self.resource) from None
@@ -510,7 +522,7 @@ class ScpiSession:
         assert self.error_query
         for n in range(MAX_ERROR_QUEUE):
             try:
-                code, _ = parse_error_reply(self.query(self.error_query))
+                code, _ = parse_error_reply(self.query(self.error_query), self.error_form)
             except ValueError:
                 return n
             if code == 0:
@@ -596,7 +608,7 @@ class ScpiSession:
         with self._lock:
             units, values, err = self._attempts("write", message, action, describe)
             try:
-                code, text = parse_error_reply(err)
+                code, text = parse_error_reply(err, self.error_form)
             except ValueError as exc:
                 self.close()  # a garbled response may have left part of itself on the wire
                 raise InstrumentError(f"{exc} (after {message!r})", role=self.role,
@@ -686,7 +698,7 @@ class ScpiSession:
         for _ in range(MAX_ERROR_QUEUE):
             reply = self.query(self.error_query)
             try:
-                code, message = parse_error_reply(reply)
+                code, message = parse_error_reply(reply, self.error_form)
             except ValueError as exc:
                 raise InstrumentError(f"{exc} (after {after_cmd!r})", role=self.role,
                                       resource=self.resource) from None

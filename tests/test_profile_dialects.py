@@ -75,3 +75,97 @@ def test_local_mode_instrument_refuses_settings_without_remote_enable(lab, tmp_p
         assert info.value.code == -221
     finally:
         att.close()
+
+
+# -- replies -------------------------------------------------------------------------------
+
+SPACE_ERRORS = "replies]\nerror = '(?P<code>[-+]?\\d+) (?P<message>.*)'\n"
+
+
+def _with_replies(text: str, table: str) -> str:
+    """A profile text with a [replies] table added before its operations."""
+    return text.replace("[operations.identify]", f"[{table}\n[operations.identify]", 1)
+
+
+def test_declared_error_form_reads_a_space_separated_queue(lab, tmp_path, capsys):
+    """An error queue answering '<code> <message>' (not SCPI-1999's code,"message"): with the
+    declared form an out-of-range setting is still reported with its code (-222, SCPI-1999
+    "Data out of range"), and a clean setting passes; probe shows the form."""
+    from labrun.cli import main
+
+    inst = lab.servers["attenuator_a"].instrument
+    inst.error_reply = "{code} {short}"
+    prof = _profile_copy(tmp_path, "attenuator", "space-error-attenuator",
+                         lambda t: _with_replies(t, SPACE_ERRORS).replace(
+                             "range = [0.0, 60.0]", "range = [0.0, 100.0]"))
+    bench_path = _bench_with(lab, tmp_path, "attenuator_a", "attenuator", prof)
+    att = open_instrument(load_bench(bench_path), "attenuator_a")
+    try:
+        att.set_attenuation_db(5.0)
+        assert att.read("read_attenuation_db") == pytest.approx(5.0)
+        with pytest.raises(ScpiError) as info:
+            att.set_attenuation_db(90.0)  # beyond the instrument's own range
+        assert info.value.code == -222
+    finally:
+        att.close()
+    assert main(["probe", "--bench", str(bench_path)]) == 0
+    assert "reply_forms" in capsys.readouterr().out
+
+
+def test_generic_form_refuses_a_space_separated_queue(lab, tmp_path):
+    """The check above can fail: the shipped profile reads '0 No error' as no error-queue
+    reply at all (an InstrumentError, not a pass)."""
+    from labrun.errors import InstrumentError
+
+    lab.servers["attenuator_a"].instrument.error_reply = "{code} {short}"
+    bench = load_bench(lab.write_bench(tmp_path / "b.toml"))
+    with pytest.raises(InstrumentError, match="not an error-queue reply"):
+        open_instrument(bench, "attenuator_a").close()  # its init *CLS drains the queue
+
+
+def test_declared_number_and_state_forms():
+    """Number and state forms pick the named group out of a reply with a header and a unit."""
+    from labrun.instruments.base import parse_reply
+    from labrun.profiles import Operation, ReplyForms
+
+    forms = ReplyForms(number=r"ATT (?P<value>\S+) ?dB", state=r"STATE=(?P<state>\w+)")
+    value = Operation(query="ATT?", parse="float")
+    state = Operation(query="STATE?", parse="bool")
+    assert parse_reply(value, "ATT 5.250dB", forms) == 5.25
+    assert parse_reply(state, "STATE=OFF", forms) is False
+    assert parse_reply(state, "STATE=1", forms) is True
+    with pytest.raises(ValueError, match="declared form"):
+        parse_reply(value, "5.250", forms)
+    assert parse_reply(value, "5.250") == 5.25  # without forms: the generic bare number
+
+
+@pytest.mark.parametrize(("table", "field", "message"), [
+    ('replies]\nerror = "(?P<code>\\\\d+"\n', "replies.error", "not a regular expression"),
+    ('replies]\nerror = "(?P<number>\\\\d+)"\n', "replies.error", "(?P<code>"),
+    ('replies]\nnumber = "(\\\\S+)"\n', "replies.number", "(?P<value>"),
+    ('replies]\nstate = "(?P<value>\\\\w+)"\n', "replies.state", "(?P<state>"),
+])
+def test_reply_forms_are_checked_when_the_profile_loads(tmp_path, table, field, message):
+    from labrun.errors import InputError
+    from labrun.profiles import load_profile
+
+    prof = _profile_copy(tmp_path, "attenuator", "bad-forms", lambda t: _with_replies(t, table))
+    with pytest.raises(InputError) as info:
+        load_profile(prof)
+    assert info.value.field == field and message in str(info.value)
+
+
+def test_empty_error_query_needs_a_declared_choice(tmp_path):
+    """An empty error_query no longer turns error checking off silently: refused unless the
+    profile declares error_queue = false (which probe prints)."""
+    from labrun.errors import InputError
+    from labrun.profiles import load_profile
+
+    silent = _profile_copy(tmp_path, "attenuator", "silent-att",
+                           lambda t: t.replace('error_query = "SYST:ERR?"', 'error_query = ""'))
+    with pytest.raises(InputError) as info:
+        load_profile(silent)
+    assert info.value.field == "profile.error_query" and "error_queue = false" in str(info.value)
+    declared = _profile_copy(tmp_path, "attenuator", "declared-att", lambda t: t.replace(
+        'error_query = "SYST:ERR?"', 'error_query = ""\nerror_queue = false'))
+    assert load_profile(declared).error_query is None

@@ -124,11 +124,18 @@ def probe_instrument(bench: Bench, role: str, traffic_log: TrafficLog | None = N
             raise
         except LabrunError as exc:
             result.checks.append(Check("identify", False, str(exc)))
+        forms = spec.profile.replies.declared()
+        if forms:
+            result.checks.append(Check("reply_forms", True, "; ".join(
+                f"{kind}: {text}" for kind, text in forms.items())))
         for op in spec.profile.read_operations():
             if op.name != "identify":
                 result.checks.append(_check_operation(adapter, op))
         if spec.profile.error_query:
             result.checks.append(_check_error_queue(adapter))
+        else:
+            result.checks.append(Check("error_queue", True, "not checked: the profile declares "
+                                                            "error_queue = false"))
     except NoAnswerError as exc:
         result.checks.append(Check("answer", False, str(exc)))
     finally:

@@ -56,7 +56,7 @@ def make_session(bench: Bench, role: str, traffic_log: TrafficLog | None = None,
                        read_termination=p.read_termination, timeout_ms=p.timeout_ms,
                        error_query=p.error_query, opc_query=p.opc_query, traffic_log=traffic_log,
                        role=role, sim_file=bench.sim_file, compound=compound,
-                       on_fault=on_fault, init=p.init)
+                       on_fault=on_fault, init=p.init, error_form=p.replies.pattern("error"))
 
 
 def open_instrument(bench: Bench, role: str, *, traffic_log: TrafficLog | None = None,

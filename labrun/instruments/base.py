@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import logging
 import math
+import re
 import time
 from dataclasses import dataclass
 from typing import Any
@@ -17,7 +18,7 @@ import numpy as np
 
 from labrun.bench import InstrumentSpec
 from labrun.errors import InputError, InstrumentError, SafetyError
-from labrun.profiles import SOURCE_SWITCHES, Operation, Profile
+from labrun.profiles import SOURCE_SWITCHES, Operation, Profile, ReplyForms
 from labrun.scpi import Idn, ScpiError, ScpiSession, compound, parse_idn
 
 log = logging.getLogger("labrun.instruments")
@@ -27,9 +28,26 @@ TRUE_WORDS = {"1", "+1", "ON", "TRUE"}
 FALSE_WORDS = {"0", "+0", "-0", "OFF", "FALSE"}
 
 
-def parse_reply(op: Operation, reply: str) -> Any:
-    """Convert a query reply according to the operation's ``parse`` (not for traces)."""
+def _declared_part(form: re.Pattern[str] | None, group: str, text: str, op: Operation) -> str:
+    """The part of a reply the profile's declared form names (the whole reply without one)."""
+    if form is None:
+        return text
+    found = form.fullmatch(text)
+    if found is None or found[group] is None:
+        raise ValueError(f"reply {text!r} to {op.query!r} does not match the declared form "
+                         f"{form.pattern!r}")
+    return str(found[group]).strip()
+
+
+def parse_reply(op: Operation, reply: str, forms: ReplyForms | None = None) -> Any:
+    """Convert a query reply according to the operation's ``parse`` (not for traces), through
+    the profile's declared reply forms (``forms``) where it has them."""
     text = reply.strip()
+    forms = forms or ReplyForms()
+    if op.parse in ("float", "int"):
+        text = _declared_part(forms.pattern("number"), "value", text, op)
+    elif op.parse == "bool":
+        text = _declared_part(forms.pattern("state"), "state", text, op)
     try:
         if op.parse == "float":
             return float(text)
@@ -177,7 +195,7 @@ class Adapter:
             return self._read_trace_values(text)
         reply = self.session.query(text)
         try:
-            return parse_reply(op, reply)
+            return parse_reply(op, reply, self.profile.replies)
         except ValueError as exc:
             raise self._instrument_error(str(exc)) from None
 
@@ -192,7 +210,7 @@ class Adapter:
     def parse(self, op: Operation, reply: str) -> Any:
         """Parse a reply to ``op`` (an InstrumentError naming this role when it does not fit)."""
         try:
-            return parse_reply(op, reply)
+            return parse_reply(op, reply, self.profile.replies)
         except ValueError as exc:
             raise self._instrument_error(str(exc)) from None
 
@@ -327,7 +345,7 @@ class Adapter:
                                              "expected 1")
         if back is not None:
             try:
-                got = parse_reply(back, replies[0])
+                got = parse_reply(back, replies[0], self.profile.replies)
             except ValueError as exc:
                 raise self._instrument_error(str(exc)) from None
             self.verify(op, got, target, cap=cap)

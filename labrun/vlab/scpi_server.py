@@ -72,6 +72,9 @@ class SimInstrument:
         # A header that must open every connection before it may change a setting (None: any
         # connection may): an instrument that starts each session in local mode.
         self.remote_enable: str | None = None
+        # How the error queue answers (SCPI-1999's code,"message" unless a test changes it;
+        # {short}: the message without its ";detail").
+        self.error_reply = '{code},"{message}"'
         self.table = CommandTable()
         self._register_common()
         self.register()
@@ -138,7 +141,7 @@ class SimInstrument:
 
     def _next_error(self, call: Call) -> str:
         code, msg = self.errors.pop()
-        return f'{code},"{msg}"'
+        return self.error_reply.format(code=code, message=msg, short=msg.split(";")[0])
 
     def _update_opc(self) -> None:
         if self._opc_armed and not self.busy():
