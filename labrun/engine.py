@@ -211,6 +211,32 @@ def _describe(obj: Any) -> str:
 # ------------------------------------------------------------------------------------------------
 # the per-point engine
 # ------------------------------------------------------------------------------------------------
+def _open_bench(bench: Any, **kwargs: Any) -> Any:
+    """labrun.instruments.open_bench, imported when a run opens its bench."""
+    from labrun.instruments import open_bench
+
+    return open_bench(bench, **kwargs)
+
+
+def _reduce_trace(*args: Any, **kwargs: Any) -> Any:
+    """labrun.reduce.reduce_trace, imported on first use (preloaded while the first point
+    settles: scipy takes a while)."""
+    from labrun.reduce import reduce_trace
+
+    return reduce_trace(*args, **kwargs)
+
+
+@dataclass(frozen=True)
+class Seams:
+    """What a run calls outside the engine: how the bench opens, how a trace is reduced, the
+    clock and the sleep. The defaults are the real ones; tests pass their own."""
+
+    open_bench: Callable[..., Any] = _open_bench
+    reduce_trace: Callable[..., Any] = _reduce_trace
+    clock: Callable[[], float] = time.monotonic
+    sleep: Callable[[float], None] = time.sleep
+
+
 class Runner:
     """Runs points of one run: owns the connections, the applied-state cache and the guard."""
 
@@ -218,8 +244,11 @@ class Runner:
                  guard: SafeOffGuard, *, policy: RetryPolicy, progress: bool = True,
                  traffic_log: Any = None,
                  sleep: Callable[[float], None] = time.sleep,
-                 clock: Callable[[], float] = time.monotonic):
+                 clock: Callable[[], float] = time.monotonic,
+                 open_bench: Callable[..., Any] = _open_bench,
+                 reduce_trace: Callable[..., Any] = _reduce_trace):
         self.plan, self.bench, self.store, self.run_id = plan, bench, store, run_id
+        self.open_bench, self.reduce_trace = open_bench, reduce_trace
         self.guard, self.policy, self.traffic_log = guard, policy, traffic_log
         self.scale = float(getattr(bench, "settle_scale", 1.0))
         self.sleep, self.clock = sleep, clock  # simulated in `labrun check` (labrun.rehearse)
@@ -299,9 +328,7 @@ class Runner:
     def open(self) -> dict[str, str]:
         """Open every bench instrument; the identities as strings (each read until two replies
         agree, so a garbled reply is neither recorded nor mistaken for another instrument)."""
-        from labrun.instruments import open_bench
-
-        instruments = open_bench(self.bench, traffic_log=self.traffic_log,
+        instruments = self.open_bench(self.bench, traffic_log=self.traffic_log,
                                  on_fault=self.command_fault)
         self.guard.set_instruments(instruments)
         try:
@@ -731,13 +758,11 @@ class Runner:
 
     def reduce(self, spec: PointSpec, traces: Sequence[Captured]) -> None:
         """Reduce each trace and check both tones were found (InstrumentError: retried)."""
-        from labrun.reduce import reduce_trace  # here: preloaded while the first point settled
-
         tones = expected_thz(spec.setpoint)
         for tr in traces:
             try:
                 # rbw_nm is set when the OSA is configured, before any capture
-                tr.reduction = reduce_trace(tr.x, tr.y, cast(float, self.rbw_nm), x_unit="nm",
+                tr.reduction = self.reduce_trace(tr.x, tr.y, cast(float, self.rbw_nm), x_unit="nm",
                                             orders=self.orders, expected_thz=tones)
             except ValueError as exc:  # an unusable trace (NaN, 1e5 dBm samples): retried
                 raise InstrumentError(f"{tr.kind} trace cannot be reduced: {exc}",
@@ -961,10 +986,13 @@ def run_plan(plan: Plan, bench: Any, store: Store, *, operator: str | None = Non
              confirm: Callable[[str], bool] | None = None, policy: RetryPolicy | None = None,
              progress: bool = True, traffic_log: Any = None,
              echo: TextIO | None = None,
-             estimate_s_per_point: float | None = None) -> RunOutcome:
+             estimate_s_per_point: float | None = None,
+             seams: Seams | None = None) -> RunOutcome:
     """Run a plan on a bench into the store; returns how it ended (never leaves a source on).
 
     Raises InputError/SafetyError before touching anything when the run may not start.
+    ``seams``: what the run calls outside the engine (default: the real instruments and
+    reduction, the monotonic clock and time.sleep).
     """
     text = preflight(plan, bench, operator=operator, unattended=unattended,
                      ack_safety=ack_safety, confirm=confirm)
@@ -991,7 +1019,7 @@ def run_plan(plan: Plan, bench: Any, store: Store, *, operator: str | None = Non
 
     return _execute(plan, bench, store, None, specs, done=0, policy=policy,
                     progress=progress, traffic_log=traffic_log, first=True, create=create,
-                    estimate=estimate_s_per_point)
+                    estimate=estimate_s_per_point, seams=seams)
 
 
 def run_virtual(plan: Plan, bench: Any, store: Store, *, replay_of: int, mode: str,
@@ -1049,7 +1077,7 @@ def _execute(plan: Plan, bench: Any, store: Store, run_id: int | None,
              progress: bool, traffic_log: Any, first: bool,
              expect_identities: dict[str, str] | None = None, force: bool = False,
              create: Callable[[dict[str, str] | None], int] | None = None,
-             estimate: float | None = None) -> RunOutcome:
+             estimate: float | None = None, seams: Seams | None = None) -> RunOutcome:
     """Open, run ``specs``, and close run ``run_id`` under the safe-off guard. Without a
     ``run_id``, ``create(identities)`` makes the run row once the bench is open."""
     from labrun.store.models import utcnow
@@ -1058,8 +1086,11 @@ def _execute(plan: Plan, bench: Any, store: Store, run_id: int | None,
     total = len(specs) + done if run_id is None else int(store.get_run(run_id).points_total)
     guard = SafeOffGuard(bench)
     store = as_run_store(store)  # a database fault: darken, retry briefly, then StoreFault
+    seams = seams or Seams()
     runner = Runner(plan, bench, store, run_id, guard, policy=policy or RetryPolicy(),
-                    progress=progress, traffic_log=traffic_log)
+                    progress=progress, traffic_log=traffic_log, sleep=seams.sleep,
+                    clock=seams.clock, open_bench=seams.open_bench,
+                    reduce_trace=seams.reduce_trace)
     store.on_fault = runner.store_dark
     start_done = done
     guard.install()
@@ -1229,7 +1260,7 @@ def resume_run(run_id: int, store: Store, *, bench: Any = None, force: bool = Fa
                operator: str | None = None, unattended: bool = False, ack_safety: bool = False,
                confirm: Callable[[str], bool] | None = None, policy: RetryPolicy | None = None,
                progress: bool = True, traffic_log: Any = None,
-               echo: TextIO | None = None) -> RunOutcome:
+               echo: TextIO | None = None, seams: Seams | None = None) -> RunOutcome:
     """Continue a stored run: same plan (hash checked), same instruments, skip stored points.
 
     Resuming emits light again, perhaps hours later with people in the room, so it asks for the
@@ -1268,7 +1299,7 @@ def resume_run(run_id: int, store: Store, *, bench: Any = None, force: bool = Fa
                     f"{len(specs)} to go", data={"force": force, "bench": str(bench.path)})
     return _execute(plan, bench, store, run_id, specs, done=len(done_keys), policy=policy,
                     progress=progress, traffic_log=traffic_log, first=False,
-                    expect_identities=dict(run.identities or {}), force=force)
+                    expect_identities=dict(run.identities or {}), force=force, seams=seams)
 
 
 def process_alive(run: Any) -> bool:

@@ -11,7 +11,7 @@ from _engine_support import OPERATOR, dark, scenario, write_bench, write_plan
 import labrun.instruments
 import labrun.reduce
 from labrun.bench import load_bench
-from labrun.engine import RetryPolicy, run_plan
+from labrun.engine import RetryPolicy, Seams, run_plan
 from labrun.errors import InstrumentError
 from labrun.instruments import open_bench
 from labrun.plan import load_plan
@@ -82,13 +82,12 @@ def test_the_run_switches_on_again_only_with_the_power_set_again(tmp_path, monke
                 seen.append(lab.state.lasers["laser_a"].power_dbm)
             return real_reduce(*args, **kwargs)
 
-        monkeypatch.setattr(labrun.instruments, "open_bench", open_and_arm)
-        monkeypatch.setattr(labrun.reduce, "reduce_trace", reduce_watching)
         store = open_store(tmp_path / "runs.db")
         out = run_plan(load_plan(write_plan(tmp_path, [0.0, 1.0, 2.0])),
                        load_bench(write_bench(lab, tmp_path)), store, operator=OPERATOR,
                        unattended=True, ack_safety=True, progress=False,
-                       policy=RetryPolicy(attempts=3, backoff_s=0.0))
+                       policy=RetryPolicy(attempts=3, backoff_s=0.0),
+                       seams=Seams(open_bench=open_and_arm, reduce_trace=reduce_watching))
         assert calls["done"]
         assert out.status == "completed" and out.points_done == 3 and dark(lab)
     assert seen and max(seen) <= DEFAULT_CAPS_DBM["laser_a"], seen

@@ -22,7 +22,7 @@ from sqlalchemy import select
 
 from labrun.bench import load_bench
 from labrun.cli import main
-from labrun.engine import RetryPolicy, run_plan
+from labrun.engine import RetryPolicy, Seams, run_plan
 from labrun.errors import InputError, SafetyError
 from labrun.plan import load_plan
 from labrun.store import Event, Line, Point, Trace, open_store
@@ -187,13 +187,13 @@ def test_transient_connection_drop_is_survived(tmp_path, monkeypatch):
                 dropped.append(vl.drop_connections(("osa", "laser_b")[len(dropped)]))
             return real(*args, **kwargs)
 
-        monkeypatch.setattr(labrun.reduce, "reduce_trace", dropping)
         # a dropped link shows as a read timeout: the OSA's is cut from 20 s to keep this quick
         store = open_store(tmp_path / "runs.db")
         out = run_plan(load_plan(write_plan(tmp_path, POWERS)),
                        load_bench(write_bench(vl, tmp_path, osa_timeout_ms=300)), store,
                        operator=OPERATOR, unattended=True, ack_safety=True, progress=False,
-                       policy=RetryPolicy(attempts=2, backoff_s=0.0))
+                       policy=RetryPolicy(attempts=2, backoff_s=0.0),
+                       seams=Seams(reduce_trace=dropping))
         assert out.status == "completed" and out.points_done == 3 and dark(vl)
     assert dropped == [1, 1]  # one live connection each was cut
     roles = {e.role for e in store.events(out.run_id, ["fault"])}

@@ -13,7 +13,7 @@ from _engine_support import OPERATOR, dark, long_powers, scenario, write_plan
 from sqlalchemy import select
 
 from labrun.bench import load_bench
-from labrun.engine import RetryPolicy, run_plan
+from labrun.engine import RetryPolicy, Seams, run_plan
 from labrun.plan import load_plan
 from labrun.resources import find_file
 from labrun.store import Point, open_store
@@ -40,12 +40,12 @@ def quick_bench(lab: VirtualLab, folder: Path) -> Path:
     return bench
 
 
-def _run(tmp_path, lab, n_points, policy):
+def _run(tmp_path, lab, n_points, policy, seams=None):
     plan = load_plan(write_plan(tmp_path, long_powers(n_points)))
     bench = load_bench(quick_bench(lab, tmp_path))
     store = open_store(tmp_path / "runs.db")
     out = run_plan(plan, bench, store, operator=OPERATOR, unattended=True, ack_safety=True,
-                   progress=False, policy=policy)
+                   progress=False, policy=policy, seams=seams)
     return plan, bench, store, out
 
 
@@ -121,10 +121,10 @@ def test_an_unreducible_trace_is_a_retried_fault_not_a_traceback(tmp_path, monke
         y[len(y) // 3] = 1e5
         return original(x, y, *args, **kwargs)
 
-    monkeypatch.setattr(reduce, "reduce_trace", spiked)
     with VirtualLab(scenario()) as lab:
         _plan, _bench, store, out = _run(tmp_path, lab, 3,
-                                         RetryPolicy(attempts=2, backoff_s=0.0))
+                                         RetryPolicy(attempts=2, backoff_s=0.0),
+                                         Seams(reduce_trace=spiked))
         assert out.status == "aborted" and "cannot be reduced" in out.reason, out.reason
         assert "power samples" in out.reason and out.points_done == 0 and dark(lab)
     assert len(store.events(out.run_id, ["fault"])) == 2

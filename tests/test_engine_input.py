@@ -13,7 +13,7 @@ from sqlalchemy import select
 
 from labrun.bench import load_bench
 from labrun.cli import main
-from labrun.engine import RetryPolicy, run_plan
+from labrun.engine import RetryPolicy, Seams, run_plan
 from labrun.errors import InputError
 from labrun.plan import load_plan
 from labrun.queries import run_points
@@ -214,14 +214,14 @@ def test_a_failed_reconnect_is_retried_not_fatal(tmp_path, monkeypatch):
             raise NoAnswerError("sweep timed out (injected by the test)", role="osa")
         return real_sweep(self, **kw)
 
-    monkeypatch.setattr(labrun.instruments, "open_bench", flaky_open)
     monkeypatch.setattr(OsaAdapter, "sweep_and_read", flaky_sweep)
     with VirtualLab(scenario()) as lab:
         store = open_store(tmp_path / "runs.db")
         out = run_plan(load_plan(_plan(tmp_path, capture="false")),
                        load_bench(write_bench(lab, tmp_path)), store, operator=OPERATOR,
                        unattended=True, ack_safety=True, progress=False,
-                       policy=RetryPolicy(attempts=3, backoff_s=0.0))
+                       policy=RetryPolicy(attempts=3, backoff_s=0.0),
+                       seams=Seams(open_bench=flaky_open))
         assert out.status == "completed" and out.points_done == 3 and dark(lab)
     faults = [e.message for e in store.events(out.run_id, ["fault"])]
     assert any("sweep timed out" in m for m in faults)

@@ -17,7 +17,7 @@ import labrun.instruments
 import labrun.reduce
 from labrun.bench import load_bench
 from labrun.cli import main
-from labrun.engine import run_plan
+from labrun.engine import Seams, run_plan
 from labrun.plan import load_plan
 from labrun.resources import find_file
 from labrun.scpi import NoAnswerError, ScpiSession
@@ -78,15 +78,14 @@ def test_a_broken_run_connection_still_ends_dark(tmp_path, monkeypatch, inst_fre
             raise RuntimeError("reduction blew up")
         return real_reduce(*args, **kwargs)
 
-    monkeypatch.setattr(labrun.instruments, "open_bench", open_and_keep)
-    monkeypatch.setattr(labrun.reduce, "reduce_trace", break_link_then_fail)
     with VirtualLab(scenario()) as lab:
         plan = load_plan(write_plan(tmp_path, long_powers(20)))
         bench = load_bench(write_bench(lab, tmp_path))
         store = open_store(tmp_path / "runs.db")
         with pytest.raises(RuntimeError, match="blew up"):
             run_plan(plan, bench, store, operator=OPERATOR, unattended=True, ack_safety=True,
-                     progress=False)
+                     progress=False, seams=Seams(open_bench=open_and_keep,
+                                                 reduce_trace=break_link_then_fail))
         assert dark(lab)
         (event,) = store.events(store.latest_run_id(), ["safe_off"])
         assert event.data == {"problems": []}

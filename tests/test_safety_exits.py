@@ -28,7 +28,7 @@ from sqlalchemy import select
 
 import labrun.reduce
 from labrun.bench import load_bench
-from labrun.engine import RetryPolicy, run_plan
+from labrun.engine import RetryPolicy, Seams, run_plan
 from labrun.plan import load_plan
 from labrun.store import Point, open_store
 from labrun.store.models import utcnow
@@ -70,11 +70,10 @@ def test_exception_in_reduction(tmp_path, monkeypatch):
             raise RuntimeError("reduction blew up")
         return real(*args, **kwargs)
 
-    monkeypatch.setattr(labrun.reduce, "reduce_trace", failing)
     with VirtualLab(scenario()) as lab:
         plan, bench, store = _setup(tmp_path, lab)
         with pytest.raises(RuntimeError, match="blew up"):
-            _run(plan, bench, store)
+            _run(plan, bench, store, seams=Seams(reduce_trace=failing))
         assert _dark_within(lab, state["t"]) <= OFF_WITHIN_S
         run = store.get_run(store.latest_run_id())
         assert run.status == "failed" and "blew up" in run.reason
@@ -96,8 +95,8 @@ def test_timeout_beyond_retries(tmp_path, monkeypatch):
                 injector.active = True
             return real(*args, **kwargs)
 
-        monkeypatch.setattr(labrun.reduce, "reduce_trace", then_osa_goes_silent)
-        out = _run(plan, bench, store, policy=RetryPolicy(attempts=2, backoff_s=0.0))
+        out = _run(plan, bench, store, policy=RetryPolicy(attempts=2, backoff_s=0.0),
+                   seams=Seams(reduce_trace=then_osa_goes_silent))
         t_end = time.monotonic()
         assert out.status == "aborted" and "osa" in out.reason
         assert _dark_within(lab, t_end) <= OFF_WITHIN_S

@@ -16,7 +16,7 @@ from _engine_support import OPERATOR, dark, long_powers, scenario, write_bench, 
 
 import labrun.reduce
 from labrun.bench import load_bench
-from labrun.engine import run_plan
+from labrun.engine import Seams, run_plan
 from labrun.plan import load_plan
 from labrun.shutdown import SafeOffGuard
 from labrun.store import Store, open_store
@@ -41,7 +41,8 @@ def outer_handlers():
         signal.signal(s, handler)
 
 
-def _failing_reduction(monkeypatch, at_call: int) -> None:
+def _failing_reduction(at_call: int) -> Seams:
+    """The run's seams with a reduction that raises at call ``at_call``."""
     real = labrun.reduce.reduce_trace
     calls = {"n": 0}
 
@@ -51,21 +52,21 @@ def _failing_reduction(monkeypatch, at_call: int) -> None:
             raise RuntimeError("reduction blew up")
         return real(*args, **kwargs)
 
-    monkeypatch.setattr(labrun.reduce, "reduce_trace", failing)
+    return Seams(reduce_trace=failing)
 
 
-def _run(tmp_path, lab):
+def _run(tmp_path, lab, seams=None):
     plan = load_plan(write_plan(tmp_path, long_powers(N_POINTS)))
     bench = load_bench(write_bench(lab, tmp_path))
     store = open_store(tmp_path / "runs.db")
     return store, lambda: run_plan(plan, bench, store, operator=OPERATOR, unattended=True,
-                                   ack_safety=True, progress=False)
+                                   ack_safety=True, progress=False, seams=seams)
 
 
 @pytest.mark.parametrize("sig", [signal.SIGINT, signal.SIGTERM])
 def test_signal_during_the_bookkeeping(tmp_path, monkeypatch, outer_handlers, sig):
     """The reduction fails; while the run's end is being written to the store a signal comes."""
-    _failing_reduction(monkeypatch, at_call=3)
+    seams = _failing_reduction(at_call=3)
     real_add = Store.add_event
 
     def add_event(self, run_id, kind, *args, **kwargs):
@@ -75,7 +76,7 @@ def test_signal_during_the_bookkeeping(tmp_path, monkeypatch, outer_handlers, si
 
     monkeypatch.setattr(Store, "add_event", add_event)
     with VirtualLab(scenario()) as lab:
-        store, run = _run(tmp_path, lab)
+        store, run = _run(tmp_path, lab, seams)
         with pytest.raises(RuntimeError, match="blew up"):  # the run's own error, not Escaped
             run()
         run_row = store.get_run(store.latest_run_id())
@@ -91,8 +92,7 @@ def test_signal_between_the_end_of_the_run_and_the_deferral(tmp_path, monkeypatc
                                                             outer_handlers, fail):
     """The narrowest window: the run loop has ended (by an error, or by measuring every point)
     and the signal lands just before signals are deferred. The run keeps its real outcome."""
-    if fail:
-        _failing_reduction(monkeypatch, at_call=3)
+    seams = _failing_reduction(at_call=3) if fail else None
     real_defer = SafeOffGuard.defer
 
     def defer_late(self):
@@ -101,7 +101,7 @@ def test_signal_between_the_end_of_the_run_and_the_deferral(tmp_path, monkeypatc
 
     monkeypatch.setattr(SafeOffGuard, "defer", defer_late)
     with VirtualLab(scenario()) as lab:
-        store, run = _run(tmp_path, lab)
+        store, run = _run(tmp_path, lab, seams)
         if fail:
             with pytest.raises(RuntimeError, match="blew up"):
                 run()
@@ -120,7 +120,7 @@ def test_signal_during_the_safe_off(tmp_path, monkeypatch, outer_handlers):
     finishes, the run is recorded as it ended."""
     import os
 
-    _failing_reduction(monkeypatch, at_call=3)
+    seams = _failing_reduction(at_call=3)
     with VirtualLab(scenario()) as lab:
         laser = lab.instruments["laser_a"]
         real_execute = laser.execute
@@ -133,7 +133,7 @@ def test_signal_during_the_safe_off(tmp_path, monkeypatch, outer_handlers):
             return real_execute(message)
 
         laser.execute = execute
-        store, run = _run(tmp_path, lab)
+        store, run = _run(tmp_path, lab, seams)
         with pytest.raises(RuntimeError, match="blew up"):
             run()
         assert sent["n"] == 1
