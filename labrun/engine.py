@@ -33,6 +33,7 @@ from labrun.faults import (
     darkens,
     point_bound_s,
 )
+from labrun.instruments import open_bench, source_readings
 from labrun.instruments.base import FLOAT_SLACK
 from labrun.physics.units import nm_to_thz
 from labrun.plan import Plan, PointSpec, StopWatch
@@ -211,13 +212,6 @@ def _describe(obj: Any) -> str:
 # ------------------------------------------------------------------------------------------------
 # the per-point engine
 # ------------------------------------------------------------------------------------------------
-def _open_bench(bench: Any, **kwargs: Any) -> Any:
-    """labrun.instruments.open_bench, imported when a run opens its bench."""
-    from labrun.instruments import open_bench
-
-    return open_bench(bench, **kwargs)
-
-
 def _reduce_trace(*args: Any, **kwargs: Any) -> Any:
     """labrun.reduce.reduce_trace, imported on first use (preloaded while the first point
     settles: scipy takes a while)."""
@@ -228,10 +222,12 @@ def _reduce_trace(*args: Any, **kwargs: Any) -> Any:
 
 @dataclass(frozen=True)
 class Seams:
-    """What a run calls outside the engine: how the bench opens, how a trace is reduced, the
-    clock and the sleep. The defaults are the real ones; tests pass their own."""
+    """What a run calls outside the engine: how the bench opens, how the sources' states are
+    read, how a trace is reduced, the clock and the sleep. The defaults are the real ones;
+    tests pass their own."""
 
-    open_bench: Callable[..., Any] = _open_bench
+    open_bench: Callable[..., Any] = open_bench
+    source_readings: Callable[..., Any] = source_readings
     reduce_trace: Callable[..., Any] = _reduce_trace
     clock: Callable[[], float] = time.monotonic
     sleep: Callable[[float], None] = time.sleep
@@ -245,10 +241,12 @@ class Runner:
                  traffic_log: Any = None,
                  sleep: Callable[[float], None] = time.sleep,
                  clock: Callable[[], float] = time.monotonic,
-                 open_bench: Callable[..., Any] = _open_bench,
+                 open_bench: Callable[..., Any] = open_bench,
+                 source_readings: Callable[..., Any] = source_readings,
                  reduce_trace: Callable[..., Any] = _reduce_trace):
         self.plan, self.bench, self.store, self.run_id = plan, bench, store, run_id
         self.open_bench, self.reduce_trace = open_bench, reduce_trace
+        self.source_readings = source_readings
         self.guard, self.policy, self.traffic_log = guard, policy, traffic_log
         self.scale = float(getattr(bench, "settle_scale", 1.0))
         self.sleep, self.clock = sleep, clock  # simulated in `labrun check` (labrun.rehearse)
@@ -486,12 +484,10 @@ class Runner:
         read on its own only for sources that do not report their output. The power travels in
         the same message as the state where the profile takes compound messages.
         """
-        from labrun.instruments import source_readings
-
         self.check_progress()
         roles = self.sources()
         adapters = [self.role(r) for r in roles]
-        for role, adapter, reading in zip(roles, adapters, source_readings(adapters),
+        for role, adapter, reading in zip(roles, adapters, self.source_readings(adapters),
                                           strict=True):
             state, power = reading
             if state is None and adapter.interlock_closed() is False:
@@ -1090,7 +1086,7 @@ def _execute(plan: Plan, bench: Any, store: Store, run_id: int | None,
     runner = Runner(plan, bench, store, run_id, guard, policy=policy or RetryPolicy(),
                     progress=progress, traffic_log=traffic_log, sleep=seams.sleep,
                     clock=seams.clock, open_bench=seams.open_bench,
-                    reduce_trace=seams.reduce_trace)
+                    source_readings=seams.source_readings, reduce_trace=seams.reduce_trace)
     store.on_fault = runner.store_dark
     start_done = done
     guard.install()

@@ -11,18 +11,18 @@ from _engine_support import OPERATOR, dark, long_powers, scenario, write_bench, 
 
 import labrun.instruments
 from labrun.bench import load_bench
-from labrun.engine import run_plan
+from labrun.engine import Seams, run_plan
 from labrun.plan import load_plan
 from labrun.store import open_store
 from labrun.vlab.lab import VirtualLab
 
 
-def _run(tmp_path, lab):
+def _run(tmp_path, lab, seams):
     plan = load_plan(write_plan(tmp_path, long_powers(8)))
     bench = load_bench(write_bench(lab, tmp_path))
     store = open_store(tmp_path / "runs.db")
     outcome = run_plan(plan, bench, store, operator=OPERATOR, unattended=True, ack_safety=True,
-                       progress=False)
+                       progress=False, seams=seams)
     return outcome, store
 
 
@@ -37,9 +37,8 @@ def test_one_corrupted_state_reply_is_a_fault_not_an_abort(tmp_path, monkeypatch
             flipped["done"] = True
         return readings
 
-    monkeypatch.setattr(labrun.instruments, "source_readings", one_bad_reply)
     with VirtualLab(scenario()) as lab:
-        outcome, store = _run(tmp_path, lab)
+        outcome, store = _run(tmp_path, lab, Seams(source_readings=one_bad_reply))
         assert flipped["done"]
         assert outcome.status == "completed" and outcome.points_done == 8
         faults = [e.message for e in store.events(outcome.run_id, ["fault"])]
@@ -59,11 +58,10 @@ def test_a_confirmed_surprise_aborts_with_sources_off(tmp_path, monkeypatch):
         lab_ref["n"] += 1
         return readings
 
-    monkeypatch.setattr(labrun.instruments, "source_readings",
-                        laser_switched_off_behind_our_back)
     with VirtualLab(scenario()) as lab:
         lab_ref.update(lab=lab, n=0)
-        outcome, store = _run(tmp_path, lab)
+        seams = Seams(source_readings=laser_switched_off_behind_our_back)
+        outcome, store = _run(tmp_path, lab, seams)
         assert outcome.status == "aborted"
         assert "found off unexpectedly" in (outcome.reason or "")
         assert dark(lab)
