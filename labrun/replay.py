@@ -217,7 +217,7 @@ def _current_point(store: Store, replay_id: int, plan: Any) -> str:
 # replay against a model
 # ------------------------------------------------------------------------------------------------
 # Gamma fits a twin takes, preferred first (then any other fit whose name starts with gamma).
-TWIN_GAMMA_FITS = ("gamma_bessel", "gamma_small_signal")
+TWIN_GAMMA_FITS = ("gamma", "gamma_bessel", "gamma_small_signal")  # exact model first
 
 
 @dataclass

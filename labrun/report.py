@@ -117,7 +117,7 @@ def _efficiency_plot(table: Any, fit: Any, spool: Any, out: Path) -> str | None:
     ratio = table["sideband_high_1"] - table["tone_high_0"]
     fig, ax = plt.subplots(figsize=(7, 4.5), dpi=110)
     ax.semilogx(table["spacing_ghz"], ratio, "o", ms=3.5, label="measured")
-    gamma = next((fit.parameters[k] for k in ("gamma_bessel", "gamma_small_signal")
+    gamma = next((fit.parameters[k] for k in ("gamma", "gamma_bessel", "gamma_small_signal")
                   if fit and k in fit.parameters and fit.parameters[k].value is not None), None)
     disp = fit.parameters.get("dispersion") if fit else None
     if gamma is not None and disp is not None and disp.value is not None and \

@@ -22,7 +22,8 @@ from labrun.store import Store
 from labrun.store.models import Fit, FitParameter, Run, Spool
 
 COVERAGE_P = 0.95  # expanded uncertainty coverage probability (GUM 6.2, 6.3)
-METHOD = "labrun.fits.fit_run on the runs' points together"
+METHOD = ("labrun.fits.fit_spool on the runs' points together (closed forms, then the "
+          "split-step forward model), GUM budget from the bench calibration")
 
 
 @dataclass
@@ -39,12 +40,12 @@ class ParameterRecord:
     extra: dict[str, Any] = field(default_factory=dict)
 
     def to_dict(self) -> dict[str, Any]:
-        """JSON-ready: value, stderr, u95, unit, model, n_points, residual_rms (and the fit's
-        warnings and sign conventions when it has them)."""
+        """JSON-ready: value, stderr, u95, unit, model, n_points, residual_rms (and the GUM
+        budget with u_combined, the fit's warnings and sign conventions when it has them)."""
         out = {"value": self.value, "stderr": self.stderr, "u95": self.u95, "unit": self.unit,
                "model": self.model, "n_points": self.n_points,
                "residual_rms": self.residual_rms}
-        for key in ("warnings", "conventions"):
+        for key in ("u_combined", "budget", "warnings", "conventions"):
             if self.extra.get(key):
                 out[key] = self.extra[key]
         return out
@@ -120,17 +121,37 @@ def from_fit(result: Any) -> ParameterRecord:
                            residual_rms=_finite(result.residual_rms), extra=extra)
 
 
-def _fit_tables(tables: list[Any], spool: Spool) -> dict[str, Any]:
-    """Fit one spool's runs, one point table per run: the one call to switch fit model (the
-    exact-model joint fit is ``labrun.fits.fit_spool(tables, length, loss)``, same arguments)."""
-    import pandas as pd
-
-    from labrun.fits import fit_run
+def _fit_tables(tables: list[Any], spool: Spool, bench_text: str | None) -> dict[str, Any]:
+    """Fit one spool's runs, one point table per run, with the exact-model joint fit
+    (``labrun.fits.fit_spool``: closed forms first, then the split-step forward model) and the
+    GUM budget of every parameter from the runs' bench calibration and polarisation frame."""
+    from labrun.fits import PolFrame, fit_spool
+    from labrun.uncertainty import Uncertainties
 
     length_km, loss_db_per_km = spool.length_km, spool.loss_db_per_km
     if length_km is None or loss_db_per_km is None:  # refused by the caller before this
         raise ValueError(f"spool {spool.label} has no length or loss")
-    return fit_run(pd.concat(tables, ignore_index=True), length_km, loss_db_per_km)
+    cal, pol = _bench_terms(bench_text)
+    return fit_spool(tables, length_km, loss_db_per_km,
+                     polarisation=PolFrame.from_bench(pol),
+                     uncertainties=Uncertainties.from_calibration(cal))
+
+
+def _bench_terms(bench_text: str | None) -> tuple[Any, Any]:
+    """The [calibration] and [polarisation] tables of a run's stored bench text (their
+    documented defaults when the text has none: a run stored before they existed)."""
+    import tomllib
+
+    from labrun.bench import Calibration, Polarisation
+
+    data: dict[str, Any] = {}
+    if bench_text:
+        try:
+            data = tomllib.loads(bench_text)
+        except tomllib.TOMLDecodeError:
+            data = {}
+    return (Calibration.model_validate(data.get("calibration", {})),
+            Polarisation.model_validate(data.get("polarisation", {})))
 
 
 def _spool_of(store: Store, run_ids: list[int]) -> Spool:
@@ -168,7 +189,10 @@ def fit_runs(store: Store, run_ids: list[int], *, save: bool = True) -> FitRecor
     tables = [t for t in tables if not t.empty]
     if not tables:
         raise InputError("the runs have no stored points to fit", field="RUN_ID")
-    results = _fit_tables(tables, spool)
+    with store.session() as s:
+        first = s.get(Run, run_ids[0])
+        bench_text = first.bench_text if first is not None else None
+    results = _fit_tables(tables, spool, bench_text)
     params = {name: from_fit(r) for name, r in results.items()}
     record = FitRecord(spool=spool.label, run_ids=run_ids, parameters=params,
                        spool_snapshot={"length_km": spool.length_km,

@@ -103,3 +103,14 @@ def budget_table(name: str, value: float, unit: str, components: list[Component]
     rows.append(f"  {'combined standard u_c':<28} {'':>14} {u_c:>14.3g}")
     rows.append(f"  {'expanded U (k = 2)':<28} {'':>14} {u95:>14.3g}")
     return "\n".join(rows)
+
+
+def budget_text(name: str, fit: dict) -> str:
+    """The budget table of one fitted parameter given as a dict (value, unit, budget rows,
+    u_combined, u95: as stored and as printed by ``--json``), indented for a listing."""
+    nan = float("nan")
+    comps = [Component(c["source"], c["u_input"] if c["u_input"] is not None else nan,
+                       c["unit"], c["contribution"] if c["contribution"] is not None else nan)
+             for c in fit["budget"]]
+    text = budget_table(name, fit["value"], fit["unit"], comps, fit["u_combined"], fit["u95"])
+    return "\n".join("    " + line for line in text.splitlines()[1:])

@@ -55,10 +55,19 @@ def test_fit_recovers_gamma_and_stores_it(power_db, capsys):
     assert g["unit"] == "1/(W km)"
     # the virtual lab's spool (realism off): gamma = 11.0 /(W km) in default-scenario.toml
     assert g["value"] == pytest.approx(HNLF_GAMMA, rel=0.01)
-    # expanded uncertainty U = t_95(nu) u with nu = n - 1: GUM (JCGM 100:2008) Table G.2 gives
-    # t_95(20) = 2.09 for the 21 power points (fails with k = 2 or k = 1.96)
+    # the GUM budget (JCGM 100:2008): u_c is the root sum of squares of the contributions
+    # (eq. 10 with uncorrelated inputs), one of which is the fit's statistical error, and the
+    # expanded uncertainty is U = k u_c with k = 2 (6.2.1, 6.3.3; fails with k = 1.96 or t_95)
     assert g["n_points"] == 21
-    assert g["u95"] / g["stderr"] == pytest.approx(2.09, abs=0.005)
+    rows = {r["source"]: r["contribution"] for r in g["budget"]}
+    assert rows["statistical (fit)"] == pytest.approx(g["stderr"], rel=1e-9)
+    assert g["u_combined"] == pytest.approx(
+        sum(c * c for c in rows.values() if c is not None) ** 0.5, rel=1e-6)
+    assert g["u95"] == pytest.approx(2.0 * g["u_combined"], rel=1e-9)
+    # the exact-model (split-step) gamma is fitted and reported beside the closed forms
+    exact = rep["parameters"]["gamma"]
+    assert exact["model"].startswith("split-step") and exact["budget"]
+    assert exact["value"] == pytest.approx(HNLF_GAMMA, rel=0.01)
     assert _count(power_db, Fit) == before + 1
     store = open_store(power_db)
     try:
@@ -88,7 +97,7 @@ def test_spools_lists_latest_fit(power_db, capsys):
     assert row["latest_fit"] == rep["fit_id"] and row["runs"] >= 1
     assert row["length_km"] == 1.0 and row["fibre_type"] == "highly nonlinear fibre"
     gamma = row["gamma_per_w_per_km"]
-    assert gamma["value"] == rep["parameters"]["gamma_bessel"]["value"]
+    assert gamma["value"] == rep["parameters"]["gamma"]["value"]  # the exact model first
     assert gamma["runs"] == [1] and gamma["u95"] is not None
     assert main(["spools", "--db", power_db]) == 0
     assert "HNLF-A17" in capsys.readouterr().out

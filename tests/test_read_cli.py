@@ -98,7 +98,7 @@ def _synthetic_fit(db, label, gamma, u95, runs):
 
 def test_compare_side_by_side(db, capsys, tmp_path):
     _synthetic_fit(db, "HNLF-B05", 9.0, 0.2, [])
-    fit1 = _json(capsys, "fit", "1", "--db", db, "--no-store")["parameters"]["gamma_bessel"]
+    fit1 = _json(capsys, "fit", "1", "--db", db, "--no-store")["parameters"]["gamma"]
     plot = tmp_path / "cmp.png"
     rep = _json(capsys, "compare", "HNLF-A17", "HNLF-B05", "--db", db, "--plot", str(plot))
     a, b = rep["spools"]

@@ -141,6 +141,8 @@ def _fit_and_plot(store: Any, run_id: int, scenario: Any, bench: Any,
 
 def _print_report(outcome: Any, report: dict[str, Any], db: str) -> None:
     """Human summary on stdout: how the run ended, the fits, where the files are."""
+    from labrun.uncertainty import budget_text
+
     print(f"run {outcome.run_id}: {outcome.status}, {outcome.points_done}/{outcome.points_total} "
           f"points stored in {db}")
     print(f"spool {report['spool']} (virtual lab model gamma = "
@@ -154,21 +156,10 @@ def _print_report(outcome: Any, report: dict[str, Any], db: str) -> None:
             print(f"  {name:<22} {fit['value']:.4g}{err} {fit['unit']}{u95}  "
                   f"({fit['n_points']} points, {fit['model'].split(':')[0]})")
             if name.startswith(("gamma", "dispersion")) and fit.get("budget"):
-                print(_budget_text(name, fit))
+                print(budget_text(name, fit))
         for note in fit.get("warnings", []):
             print(f"    ! {note}")
     print("  (+/- is the statistical standard error of the fit; U is the expanded uncertainty of "
           "the GUM budget above, k = 2, from the bench's calibration uncertainties)")
     for path in report["files"]:
         print(f"  wrote {path}")
-
-
-def _budget_text(name: str, fit: dict[str, Any]) -> str:
-    """The GUM budget table of one stored fit dict, indented under its line."""
-    from labrun.uncertainty import Component, budget_table
-
-    comps = [Component(c["source"], c["u_input"] if c["u_input"] is not None else float("nan"),
-                       c["unit"], c["contribution"] if c["contribution"] is not None
-                       else float("nan")) for c in fit["budget"]]
-    text = budget_table(name, fit["value"], fit["unit"], comps, fit["u_combined"], fit["u95"])
-    return "\n".join("    " + line for line in text.splitlines()[1:])

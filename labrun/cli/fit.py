@@ -40,8 +40,13 @@ def format_value(value: float | None, stderr: float | None, u95: float | None,
     return f"{text} {unit}"
 
 
+BUDGET_SHOWN = ("gamma", "dispersion", "dispersion_slope")  # the exact model's parameters
+
+
 def fit_text(record: Any) -> str:
-    """The fit as a table for people."""
+    """The fit as a table for people, with the GUM budget of the exact model's parameters."""
+    from labrun.uncertainty import budget_text
+
     where = f"fit {record.fit_id}" if record.fit_id is not None else "fit (not stored)"
     runs = ", ".join(str(r) for r in record.run_ids)
     out = [f"{where}: spool {record.spool}, runs {runs}"]
@@ -53,7 +58,11 @@ def fit_text(record: Any) -> str:
             continue
         out.append(f"  {name:<20} {format_value(p.value, p.stderr, p.u95, p.unit):<48} "
                    f"{p.n_points:>4} points  {p.model.split(':')[0]}")
-    out.append("  (+/- standard uncertainty of the fit; U95 expanded, 95 % coverage, Student t)")
+        if p.extra.get("budget") and name in BUDGET_SHOWN:
+            out.append(budget_text(name, p.to_dict()))
+        out.extend(f"    ! {w}" for w in p.extra.get("warnings", []) if not w.startswith("refused"))
+    out.append("  (+/- statistical standard uncertainty of the fit; U95 expanded uncertainty: "
+               "the GUM budget, k = 2, where a budget is shown, else Student t on the fit)")
     return "\n".join(out)
 
 
