@@ -63,7 +63,7 @@ def test_a_lost_output_on_is_not_resent_by_the_session(tmp_path):
                     "emission switched on above the cap by a resend"
 
 
-def test_the_run_switches_on_again_only_with_the_power_set_again(tmp_path, monkeypatch):
+def test_the_run_switches_on_again_only_with_the_power_set_again(tmp_path):
     """The point retry reconnects, sets the planned power again and checks the cap before the
     light comes back: at every reduced trace the laser is at or under its cap."""
     calls = {"done": False}

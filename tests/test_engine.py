@@ -172,7 +172,7 @@ def test_stop_condition_ends_the_run_early_and_dark(tmp_path, lab):
     assert 1 <= out.points_done < 4 and dark(lab)
 
 
-def test_transient_connection_drop_is_survived(tmp_path, monkeypatch):
+def test_transient_connection_drop_is_survived(tmp_path):
     """Connections to the OSA and to laser_b dropped mid-run (after the first and second
     reductions): each loss is a fault event, the exchange is retried on a fresh connection, and
     the run completes with every point, dark at the end."""

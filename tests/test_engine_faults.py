@@ -109,7 +109,7 @@ def test_backoff_grows_per_attempt_up_to_its_limit():
     assert [policy.delay_s(n) for n in (1, 2, 3, 4)] == [1.0, 2.0, 4.0, 5.0]
 
 
-def test_an_unreducible_trace_is_a_retried_fault_not_a_traceback(tmp_path, monkeypatch):
+def test_an_unreducible_trace_is_a_retried_fault_not_a_traceback(tmp_path):
     """issue 13: an OSA trace holding a 1e5 dBm sample (beyond what any OSA reads) cannot be
     reduced; the run records it as an instrument fault, retries, and ends aborted and dark."""
     import labrun.reduce as reduce

@@ -26,7 +26,7 @@ def _run(tmp_path, lab, seams):
     return outcome, store
 
 
-def test_one_corrupted_state_reply_is_a_fault_not_an_abort(tmp_path, monkeypatch):
+def test_one_corrupted_state_reply_is_a_fault_not_an_abort(tmp_path):
     real = labrun.instruments.source_readings
     flipped = {"done": False}
 
@@ -46,7 +46,7 @@ def test_one_corrupted_state_reply_is_a_fault_not_an_abort(tmp_path, monkeypatch
         assert dark(lab)
 
 
-def test_a_confirmed_surprise_aborts_with_sources_off(tmp_path, monkeypatch):
+def test_a_confirmed_surprise_aborts_with_sources_off(tmp_path):
     real = labrun.instruments.source_readings
     lab_ref = {}
 

@@ -55,7 +55,7 @@ def _bench_with_laser_a(lab: VirtualLab, folder: Path, *, init: list[str] | None
     return bench
 
 
-def test_a_broken_run_connection_still_ends_dark(tmp_path, monkeypatch, inst_free_port):
+def test_a_broken_run_connection_still_ends_dark(tmp_path, inst_free_port):
     """The run's own link to laser_a goes dead (every reconnect lands on a port that refuses)
     and the reduction fails: the first safe-off pass cannot reach laser_a, the fallback's fresh
     connection switches it off."""

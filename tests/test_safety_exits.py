@@ -57,7 +57,7 @@ def _dark_within(lab, since: float) -> float:
     return time.monotonic() - since
 
 
-def test_exception_in_reduction(tmp_path, monkeypatch):
+def test_exception_in_reduction(tmp_path):
     real = labrun.reduce.reduce_trace
     calls = {"n": 0}
     state: dict[str, float] = {}
@@ -80,7 +80,7 @@ def test_exception_in_reduction(tmp_path, monkeypatch):
         assert store.count_points(run.id) == 2  # the failed point was not stored
 
 
-def test_timeout_beyond_retries(tmp_path, monkeypatch):
+def test_timeout_beyond_retries(tmp_path):
     real = labrun.reduce.reduce_trace
     calls = {"n": 0}
 

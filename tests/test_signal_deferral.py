@@ -115,7 +115,7 @@ def test_signal_between_the_end_of_the_run_and_the_deferral(tmp_path, monkeypatc
         assert dark(lab)
 
 
-def test_signal_during_the_safe_off(tmp_path, monkeypatch, outer_handlers):
+def test_signal_during_the_safe_off(tmp_path, outer_handlers):
     """SIGTERM sent by another thread while the safe-off switches laser_a off: the safe-off
     finishes, the run is recorded as it ended."""
     import os
