@@ -112,6 +112,19 @@ class SweepTime(_Strict):
         return self.fixed_s + points * self.per_sample_s + span_nm / rbw_nm * self.per_span_rbw_s
 
 
+class CompletionSpec(_Strict):
+    """How to wait for an operation (``wait = true``, an OSA sweep): see labrun.completion."""
+
+    model_config = ConfigDict(**FILE_MODEL_CONFIG, frozen=True)
+
+    method: Literal["opc", "poll", "wai", "fixed"] = "opc"
+    query: str | None = None      # poll: the status query; wai: the confirming query
+    done: str | None = None       # poll: regular expression a finished reply fullmatches
+    interval_s: float = Field(0.05, gt=0, le=60)
+    timeout_s: float = Field(60.0, gt=0, le=3600)
+    fixed_s: float = Field(0.0, ge=0, le=3600)
+
+
 class TraceSpec(_Strict):
     """How an OSA transfers traces (REAL,32 definite-length block or ASCII), and how long a
     sweep takes (optional)."""
@@ -221,6 +234,7 @@ class _ProfileFile(_Strict):
     profile: _ProfileHead
     capabilities: Capabilities = Capabilities()
     replies: ReplyForms = ReplyForms()
+    completion: CompletionSpec = CompletionSpec()
     trace: TraceSpec | None = None
     operations: dict[str, Operation]
 
@@ -243,6 +257,7 @@ class Profile:
     trace: TraceSpec | None
     operations: dict[str, Operation] = field(default_factory=dict)
     replies: ReplyForms = ReplyForms()
+    completion: CompletionSpec = CompletionSpec()
 
     def op(self, name: str) -> Operation:
         """The operation ``name``, or an InputError naming the profile when it is not mapped."""
@@ -406,6 +421,26 @@ def _check_replies(path: Path, head: _ProfileHead, replies: ReplyForms) -> None:
         raise _fail(path, "profile.error_queue", "false, yet error_query is given; remove one")
 
 
+def _check_completion(path: Path, head: _ProfileHead, spec: CompletionSpec,
+                      ops: dict[str, Operation]) -> None:
+    """Every profile with an operation to wait for says how; the method has what it needs."""
+    where = "completion"
+    _check_one_command(path, f"{where}.query", spec.query, template=False)
+    if spec.method == "opc" and not head.opc_query and \
+            (head.kind == "osa" or any(op.wait for op in ops.values())):
+        raise _fail(path, "profile.opc_query", "empty, and [completion] names no other method: "
+                                               "labrun could read a trace before the sweep ends")
+    if spec.method == "poll":
+        if not spec.query or spec.done is None:
+            raise _fail(path, where, "method poll needs 'query' and 'done'")
+        try:
+            re.compile(spec.done)
+        except re.error as exc:
+            raise _fail(path, f"{where}.done", f"not a regular expression: {exc}") from None
+    if spec.method == "fixed" and spec.fixed_s <= 0:
+        raise _fail(path, f"{where}.fixed_s", "method fixed needs fixed_s > 0")
+
+
 def parse_profile(data: dict[str, Any], path: Path) -> Profile:
     """Validate a profile already read from TOML; raise a one-line InputError on the first flaw."""
     try:
@@ -419,6 +454,7 @@ def parse_profile(data: dict[str, Any], path: Path) -> Profile:
     ops = {name: op.model_copy(update={"name": name}) for name, op in model.operations.items()}
     _check_messages(path, head, model.trace, ops)
     _check_replies(path, head, model.replies)
+    _check_completion(path, head, model.completion, ops)
     for name, op in ops.items():
         _check_operation(path, head.kind, name, op, ops)
     for name in REQUIRED_OPERATIONS[head.kind]:
@@ -433,7 +469,7 @@ def parse_profile(data: dict[str, Any], path: Path) -> Profile:
                    read_termination=head.read_termination, timeout_ms=head.timeout_ms,
                    error_query=head.error_query or None, opc_query=head.opc_query,
                    init=tuple(head.init), capabilities=model.capabilities, trace=model.trace,
-                   operations=ops, replies=model.replies)
+                   operations=ops, replies=model.replies, completion=model.completion)
 
 
 def resolve_profile_path(name_or_path: str | Path, *, base: Path | None = None) -> Path | None:

@@ -222,7 +222,8 @@ class ScpiSession:
                  traffic_log: TrafficLog | None = None, role: str | None = None,
                  retries: int = 2, sim_file: str | Path | None = None, compound: bool = False,
                  on_fault: FaultHook | None = None, init: tuple[str, ...] = (),
-                 error_form: re.Pattern[str] | None = None):
+                 error_form: re.Pattern[str] | None = None,
+                 completion: Callable[[ScpiSession], None] | None = None):
         self.resource = resource
         self.backend = backend
         self.write_termination = write_termination
@@ -236,6 +237,7 @@ class ScpiSession:
         self.sim_file = sim_file
         self.compound = bool(compound)  # the instrument takes IEEE 488.2 compound messages
         self.on_fault = on_fault
+        self.completion = completion  # the profile's wait other than *OPC? (labrun.completion)
         self.error_form = error_form  # the profile's error-reply form (None: SCPI-1999's)
         self.init = tuple(init)  # the profile's init commands, sent again on every reopen
         self._opened = False  # opened once already: a later open is a reconnect
@@ -670,7 +672,12 @@ class ScpiSession:
             return self._attempts("query", cmd, action, describe)[0]
 
     def opc_wait(self, timeout_ms: int | None = None) -> None:
-        """Block until pending operations finish (IEEE 488.2 ``*OPC?`` answers 1)."""
+        """Block until pending operations finish (IEEE 488.2 ``*OPC?`` answers 1, or the
+        profile's other completion method)."""
+        if self.completion is not None:
+            with self._lock:
+                self.completion(self)
+            return
         if not self.opc_query:
             return
         with self._lock:

@@ -169,3 +169,59 @@ def test_empty_error_query_needs_a_declared_choice(tmp_path):
     declared = _profile_copy(tmp_path, "attenuator", "declared-att", lambda t: t.replace(
         'error_query = "SYST:ERR?"', 'error_query = ""\nerror_queue = false'))
     assert load_profile(declared).error_query is None
+
+
+# -- completion ----------------------------------------------------------------------------
+
+def _no_opc(table: str):
+    """Edit: no *OPC?, and a [completion] table instead."""
+    return lambda t: _with_replies(t.replace('opc_query = "*OPC?"', 'opc_query = ""'), table)
+
+
+@pytest.mark.parametrize("table", [
+    "completion]\nmethod = \"poll\"\nquery = \"STAT:BUSY?\"\ndone = '0'\ninterval_s = 0.01\n",
+    "completion]\nmethod = \"wai\"\nquery = \"*STB?\"\n",
+])
+def test_sweep_waits_by_the_declared_completion(tmp_path, table):
+    """An OSA without *OPC? whose queries answer from memory during a sweep (so a trace read
+    too early is the previous sweep): after sweep() returns, the sweep is over (checked on the
+    virtual lab's own state), by polling a busy query or by *WAI (IEEE 488.2 10.39)."""
+    with VirtualLab(scenario(), time_scale=1.0) as lab:
+        sim = lab.instruments["osa"]
+        sim.queries_wait = False
+        prof = _profile_copy(tmp_path, "osa", "busy-osa", _no_opc(table))
+        osa = open_instrument(load_bench(_bench_with(lab, tmp_path, "osa", "osa", prof)), "osa")
+        try:
+            for _ in range(2):
+                osa.sweep()
+                assert not sim.busy()
+                assert lab.state.osa.sweeps >= 1
+        finally:
+            osa.close()
+
+
+def test_without_completion_the_sweep_is_still_running(tmp_path):
+    """The check above can fail: with a completion that does not wait for the sweep (a fixed
+    1 us), the same OSA is still busy when sweep() returns."""
+    with VirtualLab(scenario(), time_scale=1.0) as lab:
+        sim = lab.instruments["osa"]
+        sim.queries_wait = False
+        prof = _profile_copy(tmp_path, "osa", "nowait-osa", lambda t: _with_replies(
+            t, 'completion]\nmethod = "fixed"\nfixed_s = 1e-6\n'))
+        osa = open_instrument(load_bench(_bench_with(lab, tmp_path, "osa", "osa", prof)), "osa")
+        try:
+            osa.sweep()
+            assert sim.busy()
+        finally:
+            osa.close()
+
+
+def test_osa_without_a_way_to_wait_is_refused(tmp_path):
+    from labrun.errors import InputError
+    from labrun.profiles import load_profile
+
+    prof = _profile_copy(tmp_path, "osa", "blind-osa",
+                         lambda t: t.replace('opc_query = "*OPC?"', 'opc_query = ""'))
+    with pytest.raises(InputError) as info:
+        load_profile(prof)
+    assert info.value.field == "profile.opc_query" and "before the sweep ends" in str(info.value)

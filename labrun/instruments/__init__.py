@@ -11,6 +11,7 @@ from collections.abc import Iterable, Iterator, Mapping, Sequence
 from typing import Any, NamedTuple
 
 from labrun.bench import Bench
+from labrun.completion import waiter
 from labrun.errors import InputError
 from labrun.instruments.amplifier import AmplifierAdapter
 from labrun.instruments.attenuator import AttenuatorAdapter
@@ -52,9 +53,11 @@ def make_session(bench: Bench, role: str, traffic_log: TrafficLog | None = None,
     spec = bench.instruments[role]
     p = spec.profile
     compound = p.capabilities.compound_messages and spec.backend != "@sim"
+    wait = waiter(p.completion, bench.settle_scale)  # None: *OPC?
     return ScpiSession(spec.resource, spec.backend, write_termination=p.write_termination,
                        read_termination=p.read_termination, timeout_ms=p.timeout_ms,
-                       error_query=p.error_query, opc_query=p.opc_query, traffic_log=traffic_log,
+                       error_query=p.error_query, opc_query=p.opc_query if wait is None else None,
+                       traffic_log=traffic_log, completion=wait,
                        role=role, sim_file=bench.sim_file, compound=compound,
                        on_fault=on_fault, init=p.init, error_form=p.replies.pattern("error"))
 

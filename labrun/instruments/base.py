@@ -297,7 +297,7 @@ class Adapter:
         if name in SOURCE_SWITCHES and self._compound_ok() and not op.wait:
             self._switch_alone(p, settle)
             return
-        if self._compound_ok() and settle_s <= 0:
+        if self._compound_ok() and settle_s <= 0 and not (op.wait and self.session.completion):
             self._apply_compound(op, p.text, p.back, p.index, p.target, cap)
             return
         self.session.write(p.text)

@@ -67,8 +67,9 @@ def write_all(planned: Sequence[PlannedSetting], *, read_back: bool = False) -> 
     also verify each one in the same exchange (for settings that need no settle time)."""
     compound_msgs: list[tuple[Adapter, str, str, list[tuple[str, PlannedSetting]]]] = []
     for adapter, group in _by_adapter(planned):
-        if not adapter._compound_ok():
-            _write_one_by_one(adapter, group, read_back)
+        if not adapter._compound_ok() or (adapter.session.completion is not None
+                                          and any(p.op.wait for p in group)):
+            _write_one_by_one(adapter, group, read_back)  # a wait other than *OPC? in between
             continue
         switches = [p for p in group if p.op.name in SOURCE_SWITCHES]
         if switches:  # switching light travels alone, after the instrument's other settings

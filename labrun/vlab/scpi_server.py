@@ -75,6 +75,9 @@ class SimInstrument:
         # How the error queue answers (SCPI-1999's code,"message" unless a test changes it;
         # {short}: the message without its ";detail").
         self.error_reply = '{code},"{message}"'
+        # False: queries answer at once from memory, even during a sweep (an instrument that
+        # does not hold its replies until pending operations finish).
+        self.queries_wait = True
         self.table = CommandTable()
         self._register_common()
         self.register()
@@ -98,6 +101,7 @@ class SimInstrument:
         t.add("SYSTem:ERRor:COUNt", lambda c: str(len(self.errors)), query=True)
         t.add("SYSTem:VERSion", lambda c: "1999.0", query=True)
         t.add("SYSTem:REMote", lambda c: None, nargs=(0, 0))
+        t.add("STATus:BUSY", lambda c: "1" if self.busy() else "0", query=True)
 
     def register(self) -> None:
         """Kind-specific commands (overridden)."""
@@ -218,7 +222,7 @@ class SimInstrument:
                 raise ScpiFault(-109, header)
             if len(cmd.args) > hi:
                 raise ScpiFault(-108, header)
-            if entry.waits:
+            if entry.waits and (self.queries_wait or not cmd.query):
                 self.wait_idle()
             with self.lab.lock:
                 return entry.handler(Call(header, cmd.args, suffixes))

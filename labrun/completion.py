@@ -1,0 +1,52 @@
+"""How a session waits for an operation to finish, as the profile's ``[completion]`` says.
+
+``opc``: ``*OPC?`` answers 1 (IEEE 488.2 12.5.3, the session's own ``opc_wait``); ``poll``: a
+status query asked every ``interval_s`` until its reply matches ``done``, InstrumentError after
+``timeout_s``; ``wai``: ``*WAI`` (IEEE 488.2 10.39: nothing after it runs before pending
+operations finish) followed by a query whose reply confirms it; ``fixed``: a fixed time (the
+bench's settle scale applies). A trace is read only after one of them returned.
+"""
+
+from __future__ import annotations
+
+import re
+import time
+from collections.abc import Callable
+
+from labrun.errors import InstrumentError
+from labrun.profiles import CompletionSpec
+from labrun.scpi import ScpiSession
+
+
+def waiter(spec: CompletionSpec, settle_scale: float = 1.0
+           ) -> Callable[[ScpiSession], None] | None:
+    """The wait a session runs instead of ``*OPC?`` (None for method ``opc``)."""
+    if spec.method == "opc":
+        return None
+    if spec.method == "poll":
+        return lambda session: _poll(session, spec)
+    if spec.method == "wai":
+        return lambda session: _wai(session, spec)
+    return lambda _session: time.sleep(spec.fixed_s * max(0.0, settle_scale))
+
+
+def _poll(session: ScpiSession, spec: CompletionSpec) -> None:
+    """Ask the status query until its reply fullmatches ``done``; InstrumentError on timeout."""
+    assert spec.query is not None and spec.done is not None
+    done = re.compile(spec.done)
+    deadline = time.monotonic() + spec.timeout_s
+    while True:
+        reply = session.query(spec.query)
+        if done.fullmatch(reply.strip()):
+            return
+        if time.monotonic() >= deadline:
+            raise InstrumentError(f"operation not complete after {spec.timeout_s:g} s: "
+                                  f"{spec.query} still answers {reply!r}", role=session.role,
+                                  resource=session.resource)
+        time.sleep(spec.interval_s)
+
+
+def _wai(session: ScpiSession, spec: CompletionSpec) -> None:
+    """``*WAI``, then the confirming query: its reply comes only once the operation is done."""
+    session.write("*WAI")
+    session.query(spec.query or "*STB?")
