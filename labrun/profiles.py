@@ -331,6 +331,10 @@ def _check_operation(path: Path, kind: str, name: str, op: Operation,
             not op.tolerance < (op.range[1] - op.range[0]) / 10.0:
         raise _fail(path, f"{where}.tolerance", f"{op.tolerance:g} is not below a tenth of the "
                                                 "range (a read-back check that cannot fail)")
+    step = _printed_step(op.template)
+    if op.readback is not None and op.tolerance is not None and step and op.tolerance < step / 2:
+        raise _fail(path, f"{where}.tolerance", f"{op.tolerance:g} is below half the template's "
+                    f"printed step {step:g}: the read-back of a rounded value could never pass")
     if wanted and "value" in wanted and op.range is None:
         raise _fail(path, f"{where}.range", "a setting with {value} needs a range")
     if op.readback is not None:
@@ -370,6 +374,15 @@ def _check_specs(path: Path, where: str, template: str) -> None:
         if conversion is not None or not _PLAIN_SPEC.fullmatch(spec or ""):
             raise _fail(path, where, f"placeholder {{{name}}} in {template!r} needs a plain "
                                      "format spec (.3f, .6e, g or d; no width, fill or '!')")
+
+
+def _printed_step(template: str) -> float | None:
+    """The step of ``{value:.Nf}`` as printed (10^-N), None for other specs."""
+    for _, name, spec, _ in string.Formatter().parse(template):
+        m = re.fullmatch(r"\.(\d+)f", spec or "")
+        if name == "value" and m:
+            return 10.0 ** -int(m.group(1))
+    return None
 
 
 def switches_source_on(command: str) -> bool:

@@ -134,3 +134,22 @@ def test_shipped_sweeps_check_on_the_virtual_lab(tmp_path, capsys):
             assert report["points"] == len(load_plan(SWEEPS / name).points())
     power = load_plan(SWEEPS / "power-sweep.toml")
     assert len(power.points()) <= 50
+
+
+def test_check_reports_a_rehearsal_that_gives_up_instead_of_a_traceback(tmp_path, capsys,
+                                                                        no_visa):
+    """Found by benchmarks/fuzz_inputs.py: a laser profile whose wavelength read-back can never
+    pass (printed as 1.544801e+03, tolerance 0) made the rehearsal abort and 'check' end in a
+    RunAborted traceback; now the report says why (exit 1)."""
+    plan, bench = _files(tmp_path)
+    laser = (find_file("generic-laser.toml", "drivers")).read_text(encoding="utf-8")
+    laser = (laser.replace('name = "generic-laser"', 'name = "strict-laser"')
+             .replace('command = "SOUR:WAV {value:.4f}"', 'command = "SOUR:WAV {value:.6e}"')
+             .replace("tolerance = 0.002", "tolerance = 0"))
+    (tmp_path / "strict-laser.toml").write_text(laser, encoding="utf-8")
+    text = bench.read_text(encoding="utf-8")
+    bench.write_text(text.replace('profile = "generic-laser"',
+                                  f'profile = "{tmp_path / "strict-laser.toml"}"'))
+    assert main(["check", str(plan), "--bench", str(bench), "--json"]) == 1
+    report = json.loads(capsys.readouterr().out)
+    assert report["refused"] and "read-back of set_wavelength_nm" in report["refusal"]

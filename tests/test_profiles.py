@@ -139,6 +139,8 @@ ONE_COMMAND_CASES = [
      "operations.set_power_dbm.tolerance"),
     ("tolerance wider than a tenth of the range", _sub("tolerance = 0.05", "tolerance = 2.5"),
      "operations.set_power_dbm.tolerance"),
+    ("tolerance below the printed step", _sub("tolerance = 0.05", "tolerance = 0.0004"),
+     "operations.set_power_dbm.tolerance"),
     ("tolerance a boolean", _sub("tolerance = 0.05", "tolerance = true"),
      "operations.set_power_dbm.tolerance"),
     ("range with infinity", _sub("range = [-10.0, 13.0]", "range = [-10.0, inf]"),

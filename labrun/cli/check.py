@@ -3,8 +3,9 @@
 Reports the number of points, an estimated duration, the worst-case launched power per path, an
 advisory hazard class, cap violations, the OSA settings chosen and why, and the SCPI settings the
 first points send: the engine's own point loop rehearsed on simulated instruments
-(``labrun.rehearse``), so they are the run's, by construction. Exit 1 on a violation, 2 on bad
-input, 0 otherwise.
+(``labrun.rehearse``), so they are the run's, by construction. Exit 1 on a violation or when
+the rehearsed run stops at a point (a refusal or a read-back that cannot pass), 2 on bad input,
+0 otherwise.
 """
 
 from __future__ import annotations
@@ -38,7 +39,8 @@ def register(subparsers: Any) -> None:
 
 
 def cmd_check(args: argparse.Namespace) -> int:
-    """Run the check; exit 1 when the plan breaks a cap or range on this bench."""
+    """Run the check; exit 1 when the plan breaks a cap or range on this bench, or the
+    rehearsed run would stop at a point."""
     from labrun.bench import load_bench
     from labrun.plan import load_plan
 
@@ -49,7 +51,7 @@ def cmd_check(args: argparse.Namespace) -> int:
         print(json.dumps(report, indent=2))
     else:
         print(render_text(report))
-    return 1 if report["violations"] else 0
+    return 1 if report["refused"] else 0  # a cap broken, or a point the run would stop at
 
 
 # ----------------------------------------------------------------------------- dry run
@@ -63,6 +65,7 @@ def dry_run(plan: Plan, bench: Any, *, first: int = FIRST_POINTS) -> dict[str, A
     run sends, the duration is the engine's waits plus the OSA sweeps.
     """
     from labrun import safety
+    from labrun.engine import RunAborted
     from labrun.rehearse import rehearse, settings_sent
 
     violations = safety.check_caps(plan, bench)
@@ -75,7 +78,7 @@ def dry_run(plan: Plan, bench: Any, *, first: int = FIRST_POINTS) -> dict[str, A
     refusal = None
     try:
         r = None if violations else rehearse(plan, bench)
-    except SafetyError as exc:  # a point the engine refuses (the run would stop there too)
+    except (SafetyError, RunAborted) as exc:  # a point the engine refuses or gives up on
         r, refusal = None, str(exc)
     if r is not None:
         estimated = r.total_s
