@@ -177,6 +177,9 @@ class Operation(_Strict):
     query: str | None = None
     parse: Parse | None = None
     unit: str | None = None
+    wire_unit: str | None = None  # the unit the instrument speaks, when not labrun's ``unit``
+    scale: float = 1.0            # instrument value = labrun value (in wire_unit) x scale
+    offset: float = 0.0           #   + offset
     range: Annotated[tuple[Number, Number] | None, Field(strict=False)] = None
     index_range: Annotated[tuple[Annotated[int, Field(strict=True)], Annotated[int, Field(
         strict=True)]] | None, Field(strict=False)] = None
@@ -224,6 +227,32 @@ class Operation(_Strict):
             if name == "value" and spec and spec.endswith("d"):
                 return True
         return False
+
+    @property
+    def converts(self) -> bool:
+        """True when the instrument speaks another unit or scale than labrun."""
+        return (self.wire_unit not in (None, self.unit)) or self.scale != 1.0 or \
+            self.offset != 0.0
+
+    def to_wire(self, value: Any) -> Any:
+        """A value (or array) in labrun's unit as the instrument takes it."""
+        from labrun.wireunits import to_wire
+
+        if not self.converts:
+            return value
+        wire = to_wire(value, str(self.unit), self.wire_unit or str(self.unit))
+        out = wire * self.scale + self.offset
+        return float(out) if out.ndim == 0 else out
+
+    def from_wire(self, value: Any) -> Any:
+        """A value (or array) the instrument gave, in labrun's unit."""
+        from labrun.wireunits import from_wire
+
+        if not self.converts:
+            return value
+        plain = (value - self.offset) / self.scale
+        out = from_wire(plain, str(self.unit), self.wire_unit or str(self.unit))
+        return float(out) if out.ndim == 0 else out
 
     def render(self, **values: Any) -> str:
         """The SCPI text with placeholders filled (values already checked by the caller)."""
@@ -337,6 +366,7 @@ def _check_operation(path: Path, kind: str, name: str, op: Operation,
                     f"printed step {step:g}: the read-back of a rounded value could never pass")
     if wanted and "value" in wanted and op.range is None:
         raise _fail(path, f"{where}.range", "a setting with {value} needs a range")
+    _check_units(path, where, op)
     if op.readback is not None:
         target = ops.get(op.readback)
         if target is None or not target.is_query:
@@ -349,6 +379,22 @@ def _check_operation(path: Path, kind: str, name: str, op: Operation,
         op.render(**sample)
     except (ValueError, KeyError, IndexError) as exc:
         raise _fail(path, where, f"template {op.template!r} cannot be filled: {exc}") from None
+
+
+def _check_units(path: Path, where: str, op: Operation) -> None:
+    """A wire unit converts from the operation's unit; scale and offset are finite, scale not 0."""
+    from labrun.wireunits import WIRE_UNITS
+
+    if op.wire_unit is not None and op.wire_unit != op.unit:
+        allowed = WIRE_UNITS.get(op.unit or "", ())
+        if op.wire_unit not in allowed:
+            raise _fail(path, f"{where}.wire_unit", f"{op.wire_unit!r} does not convert from "
+                                                    f"{op.unit!r}; for {op.unit!r}: "
+                                                    f"{', '.join(allowed) or 'none'}")
+    if op.scale == 0 or not abs(op.scale) < 1e30 or not abs(op.offset) < 1e30:
+        raise _fail(path, f"{where}.scale", "scale must be non-zero and finite, offset finite")
+    if op.converts and (op.integer or op.parse in ("int", "bool", "idn", "str")):
+        raise _fail(path, f"{where}.wire_unit", "only real values and traces convert units")
 
 
 def _check_one_command(path: Path, where: str, text: str | None, *,

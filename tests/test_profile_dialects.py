@@ -225,3 +225,89 @@ def test_osa_without_a_way_to_wait_is_refused(tmp_path):
     with pytest.raises(InputError) as info:
         load_profile(prof)
     assert info.value.field == "profile.opc_query" and "before the sweep ends" in str(info.value)
+
+
+# -- units ---------------------------------------------------------------------------------
+
+SI_LASER = [
+    ('command = "SOUR:WAV {value:.4f}"\nunit = "nm"',
+     'command = "SOUR:WAV {value:.10e}"\nunit = "nm"\nwire_unit = "m"'),
+    ('query = "SOUR:WAV?"\nparse = "float"\nunit = "nm"',
+     'query = "SOUR:WAV?"\nparse = "float"\nunit = "nm"\nwire_unit = "m"'),
+    ('command = "SOUR:POW {value:.3f}"\nunit = "dBm"',
+     'command = "SOUR:POW {value:.6e}"\nunit = "dBm"\nwire_unit = "W"'),
+    ('query = "SOUR:POW?"\nparse = "float"\nunit = "dBm"',
+     'query = "SOUR:POW?"\nparse = "float"\nunit = "dBm"\nwire_unit = "W"'),
+]
+
+
+def _si_laser(text: str) -> str:
+    for old, new in SI_LASER:
+        assert old in text, old
+        text = text.replace(old, new, 1)
+    return text
+
+
+def test_laser_in_si_units_sets_and_reads_back_in_nm_and_dbm(lab, tmp_path):
+    """A laser that speaks metres and watts: labrun's 1550.1234 nm and 5 dBm reach the virtual
+    lab's state as such (P[mW] = 10^(P[dBm]/10), common practice), and the read-backs in m and
+    W verify against the profile's tolerances; the cap is still checked in dBm."""
+    from labrun.errors import SafetyError
+
+    lab.instruments["laser_a"].si_units = True
+    prof = _profile_copy(tmp_path, "laser", "si-laser", _si_laser)
+    laser = open_instrument(load_bench(_bench_with(lab, tmp_path, "laser_a", "laser", prof)),
+                            "laser_a")
+    try:
+        laser.apply("set_wavelength_nm", 1550.1234)
+        laser.apply("set_power_dbm", 5.0, cap=10.0)
+        state = lab.state.lasers["laser_a"]
+        assert state.wavelength_nm == pytest.approx(1550.1234, abs=1e-6)
+        assert state.power_dbm == pytest.approx(5.0, abs=1e-4)
+        assert laser.read("read_power_dbm") == pytest.approx(5.0, abs=1e-4)
+        with pytest.raises(SafetyError):
+            laser.apply("set_power_dbm", 11.0, cap=10.0)  # 12.6 mW: over the cap in dBm
+    finally:
+        laser.close()
+
+
+def test_si_laser_with_the_generic_profile_is_refused(lab, tmp_path):
+    """The check above can fail: the generic profile sends 1550.1234 (nm) to a laser that
+    takes metres; the instrument refuses it out of range (-222)."""
+    lab.instruments["laser_a"].si_units = True
+    laser = open_instrument(load_bench(lab.write_bench(tmp_path / "b.toml")), "laser_a")
+    try:
+        with pytest.raises(ScpiError) as info:
+            laser.apply("set_wavelength_nm", 1550.1234)
+        assert info.value.code == -222
+    finally:
+        laser.close()
+
+
+@pytest.mark.parametrize(("value", "unit", "wire", "expected"), [
+    (0.0, "dBm", "mW", 1.0),        # 0 dBm = 1 mW (definition of dBm, common practice)
+    (30.0, "dBm", "W", 1.0),        # 30 dBm = 1 W
+    (30.0, "dBm", "dBW", 0.0),      # 1 W = 0 dBW
+    (1550.0, "nm", "m", 1.55e-6),
+    (1550.0, "nm", "THz", 193.41448903225806),  # c / lambda, c = 299 792 458 m/s exact (SI)
+    (1550.0, "nm", "Hz", 1.9341448903225806e14),
+])
+def test_wire_units_both_ways(value, unit, wire, expected):
+    from labrun.wireunits import from_wire, to_wire
+
+    assert float(to_wire(value, unit, wire)) == pytest.approx(expected, rel=1e-12)
+    assert float(from_wire(expected, unit, wire)) == pytest.approx(value, rel=1e-12, abs=1e-12)
+
+
+def test_scale_and_offset_and_bad_units_are_checked(tmp_path):
+    from labrun.errors import InputError
+    from labrun.profiles import Operation, load_profile
+
+    op = Operation(query="X?", parse="float", unit="dB", scale=100.0, offset=1.0)
+    assert op.from_wire(501.0) == pytest.approx(5.0) and op.to_wire(5.0) == pytest.approx(501.0)
+    prof = _profile_copy(tmp_path, "laser", "bad-unit-laser", lambda t: t.replace(
+        'query = "SOUR:WAV?"\nparse = "float"\nunit = "nm"',
+        'query = "SOUR:WAV?"\nparse = "float"\nunit = "nm"\nwire_unit = "W"', 1))
+    with pytest.raises(InputError) as info:
+        load_profile(prof)
+    assert info.value.field == "operations.read_wavelength_nm.wire_unit"

@@ -50,7 +50,7 @@ def parse_reply(op: Operation, reply: str, forms: ReplyForms | None = None) -> A
         text = _declared_part(forms.pattern("state"), "state", text, op)
     try:
         if op.parse == "float":
-            return float(text)
+            return op.from_wire(float(text))
         if op.parse == "int":
             number = float(text)
             if not number.is_integer():
@@ -192,7 +192,7 @@ class Adapter:
             fields["index"] = checked
         text = op.render(**fields)
         if op.parse == "trace":
-            return self._read_trace_values(text)
+            return op.from_wire(self._read_trace_values(text))
         reply = self.session.query(text)
         try:
             return parse_reply(op, reply, self.profile.replies)
@@ -274,6 +274,8 @@ class Adapter:
             target = fields["value"]
         elif values:
             target = tuple(fields[k] for k in op.placeholders if k != "index")
+        if "value" in fields and op.converts:
+            fields["value"] = op.to_wire(fields["value"])  # checked in labrun's unit
         back = self.profile.op(op.readback) if op.readback and target is not None else None
         back_text = None
         if back is not None:

@@ -52,7 +52,7 @@ class OsaAdapter(Adapter):
                 self.session.close()  # a garbled response: do not trust what follows it
                 raise self._instrument_error(f"{self.session.opc_query} answered {opc!r}, "
                                              "expected 1")
-            return None, y
+            return None, y_op.from_wire(y)
         self.sweep()
         if with_x:
             return self.read_trace()

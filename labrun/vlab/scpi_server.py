@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import contextlib
 import logging
+import math
 import socket
 import socketserver
 import threading
@@ -246,16 +247,19 @@ class LaserInstrument(SimInstrument):
 
     kind = "laser"
 
+    si_units = False  # True: wavelengths in m and powers in W on the wire (SI units)
+
     def _state(self):
         return self.lab.lasers[self.role]
 
     def register(self) -> None:
         t = self.table
         t.add("[SOURce#]:WAVelength", self._set_wavelength)
-        t.add("[SOURce#]:WAVelength", lambda c: fmt(self._state().wavelength_nm), query=True)
+        t.add("[SOURce#]:WAVelength", lambda c: fmt(self._wire_nm(self._state().wavelength_nm)),
+              query=True)
         t.add("[SOURce#]:POWer[:LEVel][:IMMediate][:AMPLitude]", self._set_power)
         t.add("[SOURce#]:POWer[:LEVel][:IMMediate][:AMPLitude]",
-              lambda c: fmt(self._state().power_dbm), query=True)
+              lambda c: fmt(self._wire_dbm(self._state().power_dbm)), query=True)
         t.add("OUTPut#[:STATe]", self._set_output)
         t.add("OUTPut#[:STATe]", lambda c: _onoff(self._state().output), query=True)
         t.add("OUTPut#:INTLock", lambda c: _onoff(self.lab.interlock_closed), query=True)
@@ -266,11 +270,21 @@ class LaserInstrument(SimInstrument):
         laser.wavelength_nm = 1550.0
         laser.power_dbm = 0.0
 
+    def _wire_nm(self, nm: float) -> float:
+        return nm * 1e-9 if self.si_units else nm
+
+    def _wire_dbm(self, dbm: float) -> float:
+        return 1e-3 * 10.0 ** (dbm / 10.0) if self.si_units else dbm
+
     def _set_wavelength(self, call: Call) -> None:
-        self._state().wavelength_nm = number(call, *self.limits("set_wavelength_nm"), 1550.0)
+        lo, hi = self.limits("set_wavelength_nm")
+        wire = number(call, self._wire_nm(lo), self._wire_nm(hi), self._wire_nm(1550.0))
+        self._state().wavelength_nm = wire * 1e9 if self.si_units else wire
 
     def _set_power(self, call: Call) -> None:
-        self._state().power_dbm = number(call, *self.limits("set_power_dbm"), 0.0)
+        lo, hi = self.limits("set_power_dbm")
+        wire = number(call, self._wire_dbm(lo), self._wire_dbm(hi), self._wire_dbm(0.0))
+        self._state().power_dbm = 10.0 * math.log10(wire * 1e3) if self.si_units else wire
 
     def _set_output(self, call: Call) -> None:
         self._state().output = _source_switch(call, self.lab)
