@@ -223,12 +223,13 @@ def _reduce_trace(*args: Any, **kwargs: Any) -> Any:
 @dataclass(frozen=True)
 class Seams:
     """What a run calls outside the engine: how the bench opens, how the sources' states are
-    read, how a trace is reduced, the clock and the sleep. The defaults are the real ones;
-    tests pass their own."""
+    read, how a trace is reduced, how long an attempt at a point may take (the watchdog's
+    bound), the clock and the sleep. The defaults are the real ones; tests pass their own."""
 
     open_bench: Callable[..., Any] = open_bench
     source_readings: Callable[..., Any] = source_readings
     reduce_trace: Callable[..., Any] = _reduce_trace
+    point_bound_s: Callable[[float, int, Any], float] = point_bound_s
     clock: Callable[[], float] = time.monotonic
     sleep: Callable[[float], None] = time.sleep
 
@@ -243,10 +244,11 @@ class Runner:
                  clock: Callable[[], float] = time.monotonic,
                  open_bench: Callable[..., Any] = open_bench,
                  source_readings: Callable[..., Any] = source_readings,
-                 reduce_trace: Callable[..., Any] = _reduce_trace):
+                 reduce_trace: Callable[..., Any] = _reduce_trace,
+                 point_bound_s: Callable[[float, int, Any], float] = point_bound_s):
         self.plan, self.bench, self.store, self.run_id = plan, bench, store, run_id
         self.open_bench, self.reduce_trace = open_bench, reduce_trace
-        self.source_readings = source_readings
+        self.source_readings, self.point_bound_s = source_readings, point_bound_s
         self.guard, self.policy, self.traffic_log = guard, policy, traffic_log
         self.scale = float(getattr(bench, "settle_scale", 1.0))
         self.sleep, self.clock = sleep, clock  # simulated in `labrun check` (labrun.rehearse)
@@ -672,7 +674,7 @@ class Runner:
         settings = self.settings_for(spec.setpoint) + self.path_settings(kinds[0])
         self.current_key = spec.key
         settle = max([s.settle_s for s in settings] + [0.0]) + self.profile_settle_s
-        bound = point_bound_s(settle * self.scale, len(kinds), self.bench)
+        bound = self.point_bound_s(settle * self.scale, len(kinds), self.bench)
         attempt = 0
         while True:
             attempt += 1
@@ -1086,7 +1088,8 @@ def _execute(plan: Plan, bench: Any, store: Store, run_id: int | None,
     runner = Runner(plan, bench, store, run_id, guard, policy=policy or RetryPolicy(),
                     progress=progress, traffic_log=traffic_log, sleep=seams.sleep,
                     clock=seams.clock, open_bench=seams.open_bench,
-                    source_readings=seams.source_readings, reduce_trace=seams.reduce_trace)
+                    source_readings=seams.source_readings, reduce_trace=seams.reduce_trace,
+                    point_bound_s=seams.point_bound_s)
     store.on_fault = runner.store_dark
     start_done = done
     guard.install()

@@ -47,8 +47,8 @@ def test_a_trace_that_cannot_be_reduced_goes_dark_then_recovers(tmp_path):
     assert (m.extra["dark"], m.extra["relight"]) == (1, 1), m
 
 
-def test_an_attempt_that_outlives_its_bound_goes_dark(tmp_path, monkeypatch):
-    """The watchdog: every attempt is given 1 ms (the bound monkeypatched down from seconds), so
+def test_an_attempt_that_outlives_its_bound_goes_dark(tmp_path):
+    """The watchdog: every attempt is given 1 ms (the bound cut down from seconds), so
     each overruns; the watchdog darkens the bench from its own thread, the loop treats it as a
     fault, and the run aborts dark with the reason."""
     import labrun.engine
@@ -58,14 +58,14 @@ def test_an_attempt_that_outlives_its_bound_goes_dark(tmp_path, monkeypatch):
     from labrun.store import open_store
     from labrun.vlab.lab import VirtualLab
 
-    monkeypatch.setattr(labrun.engine, "point_bound_s", lambda *a, **k: 0.001)
     with VirtualLab(scenario()) as lab:
         bench = load_bench(write_bench(lab, tmp_path, {}))
         (tmp_path / "plan.toml").write_text(plan_text(5), encoding="utf-8")
         store = open_store(tmp_path / "runs.db")
         out = labrun.engine.run_plan(load_plan(tmp_path / "plan.toml"), bench, store,
                                      operator="T. Varga", unattended=True, ack_safety=True,
-                                     progress=False, policy=RetryPolicy(attempts=3, backoff_s=0))
+                                     progress=False, policy=RetryPolicy(attempts=3, backoff_s=0),
+                                     seams=labrun.engine.Seams(point_bound_s=lambda *a: 0.001))
         assert lab.sources_off() and all(lab.role_dark(r) for r in ("attenuator_a",
                                                                     "attenuator_b"))
     assert out.status == "aborted" and "longer than its bound" in out.reason
