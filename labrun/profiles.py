@@ -87,6 +87,7 @@ class _ProfileHead(_Strict):
     timeout_ms: int = Field(3000, gt=0, le=600_000)
     error_query: str | None = "SYST:ERR?"
     error_queue: bool = True  # false: the instrument has none (declared, so probe can say so)
+    band_nm: Annotated[tuple[Number, Number] | None, Field(strict=False)] = None  # optical band
     opc_query: str | None = "*OPC?"
     init: list[str] = []
 
@@ -287,6 +288,18 @@ class Profile:
     operations: dict[str, Operation] = field(default_factory=dict)
     replies: ReplyForms = ReplyForms()
     completion: CompletionSpec = CompletionSpec()
+    band_nm: tuple[float, float] | None = None  # declared optical band (probe checks in it)
+
+    def band(self) -> tuple[float, float] | None:
+        """The optical band wavelengths must lie in: declared, else the wavelength setting's
+        range (laser, attenuator, power meter) or the OSA centre's."""
+        if self.band_nm is not None:
+            return self.band_nm
+        for name in ("set_wavelength_nm", "set_center_nm"):
+            rng = self.operations[name].range if name in self.operations else None
+            if rng is not None:
+                return (float(rng[0]), float(rng[1]))
+        return None
 
     def op(self, name: str) -> Operation:
         """The operation ``name``, or an InputError naming the profile when it is not mapped."""
@@ -472,6 +485,9 @@ def _check_replies(path: Path, head: _ProfileHead, replies: ReplyForms) -> None:
         for group in groups:
             if group not in pattern.groupindex:
                 raise _fail(path, f"replies.{kind}", f"needs a named group (?P<{group}>...)")
+    if head.band_nm is not None and not 100.0 <= head.band_nm[0] < head.band_nm[1] <= 20000.0:
+        raise _fail(path, "profile.band_nm", "must be [low, high] nm with 100 <= low < high "
+                                             "<= 20000")
     if head.error_queue and not head.error_query:
         raise _fail(path, "profile.error_query", "empty: that would turn error checking off; "
                                                  "declare error_queue = false if the "
@@ -528,7 +544,9 @@ def parse_profile(data: dict[str, Any], path: Path) -> Profile:
                    read_termination=head.read_termination, timeout_ms=head.timeout_ms,
                    error_query=head.error_query or None, opc_query=head.opc_query,
                    init=tuple(head.init), capabilities=model.capabilities, trace=model.trace,
-                   operations=ops, replies=model.replies, completion=model.completion)
+                   operations=ops, replies=model.replies, completion=model.completion,
+                   band_nm=None if head.band_nm is None else (float(head.band_nm[0]),
+                                                               float(head.band_nm[1])))
 
 
 def resolve_profile_path(name_or_path: str | Path, *, base: Path | None = None) -> Path | None:

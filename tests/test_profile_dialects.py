@@ -311,3 +311,65 @@ def test_scale_and_offset_and_bad_units_are_checked(tmp_path):
     with pytest.raises(InputError) as info:
         load_profile(prof)
     assert info.value.field == "operations.read_wavelength_nm.wire_unit"
+
+
+# -- a probe that can tell -----------------------------------------------------------------
+
+def _probe(bench: Path, capsys) -> tuple[int, dict]:
+    import json
+
+    from labrun.cli import main
+
+    code = main(["probe", "--bench", str(bench), "--json"])
+    return code, json.loads(capsys.readouterr().out)
+
+
+def _failed(report: dict, role: str) -> list[dict]:
+    inst = next(i for i in report["instruments"] if i["role"] == role)
+    return [c for c in inst["checks"] if not c["ok"]]
+
+
+def test_probe_passes_the_virtual_lab_with_the_generic_profiles(lab, tmp_path, capsys):
+    code, report = _probe(lab.write_bench(tmp_path / "b.toml"), capsys)
+    assert code == 0 and report["ok"], [_failed(report, i["role"]) for i in report["instruments"]]
+
+
+def test_probe_fails_a_profile_whose_units_are_wrong(lab, tmp_path, capsys):
+    """A laser that speaks metres and watts, probed with the generic profile (nm, dBm): the
+    replies parse as numbers, but 1.55e-06 nm is outside the band the profile declares (its
+    wavelength range), and probe says so; exit 1. (The power, 0.001 W read as 0.001 dBm, is
+    in range: no value check can see that one; the read-back of a setting would.)"""
+    lab.instruments["laser_a"].si_units = True
+    code, report = _probe(lab.write_bench(tmp_path / "b.toml"), capsys)
+    assert code == 1
+    failed = _failed(report, "laser_a")
+    assert [c["operation"] for c in failed] == ["read_wavelength_nm"]
+    assert "outside the band 1500..1630 nm" in failed[0]["detail"]
+
+
+def test_probe_fails_a_wrong_power_unit(lab, tmp_path, capsys):
+    """The SI laser's profile saying mW where the instrument gives W: 0 dBm reads as -30 dBm,
+    outside set_power_dbm's range [-10, 13]; probe says so."""
+    lab.instruments["laser_a"].si_units = True
+    prof = _profile_copy(tmp_path, "laser", "mw-laser", lambda t: _si_laser(t).replace(
+        'parse = "float"\nunit = "dBm"\nwire_unit = "W"',
+        'parse = "float"\nunit = "dBm"\nwire_unit = "mW"', 1))
+    code, report = _probe(_bench_with(lab, tmp_path, "laser_a", "laser", prof), capsys)
+    assert code == 1
+    failed = _failed(report, "laser_a")
+    assert [c["operation"] for c in failed] == ["read_power_dbm"]
+    assert "outside set_power_dbm's range [-10, 13]" in failed[0]["detail"]
+
+
+def test_probe_fails_a_trace_in_the_wrong_unit(lab, tmp_path, capsys):
+    """An OSA profile that says its trace axis is in m when the instrument gives nm: the axis
+    reads as 1.5e12 nm, far outside the band; the level trace is still judged (its peak)."""
+    prof = _profile_copy(tmp_path, "osa", "m-axis-osa", lambda t: t.replace(
+        'query = "TRAC:DATA? WLEN"     # SCPI-1999 TRACe[:DATA]? <trace_name>: wavelength axis\n'
+        'parse = "trace"\nunit = "nm"',
+        'query = "TRAC:DATA? WLEN"\nparse = "trace"\nunit = "nm"\nwire_unit = "m"', 1))
+    code, report = _probe(_bench_with(lab, tmp_path, "osa", "osa", prof), capsys)
+    assert code == 1
+    failed = _failed(report, "osa")
+    assert [c["operation"] for c in failed] == ["read_trace_x"]
+    assert "outside the band" in failed[0]["detail"]

@@ -84,21 +84,80 @@ def describe(op: Operation, value: Any) -> str:
     return str(value)
 
 
-def _check_operation(adapter: Adapter, op: Operation) -> Check:
-    """Run one read operation (every index of an indexed one); NoAnswerError propagates."""
+# Plausible optical power levels, dBm (common practice: below -120 dBm lies under any power
+# meter's or OSA's noise floor, above +40 dBm (10 W) no bench of this kind delivers light).
+PLAUSIBLE_DBM = (-120.0, 40.0)
+# A trace's peak must lie in this range (a trace floor may read lower, its peak not).
+PLAUSIBLE_PEAK_DBM = (-150.0, 40.0)
+
+
+def implausible(profile: Any, op: Operation, value: Any, seen: dict[str, Any]) -> str | None:
+    """Why a value read by ``op`` cannot be right (wrong unit or form), or None when it can."""
+    import numpy as np
+
+    band = profile.band()
+    if op.name == "read_trace_x":
+        x = np.asarray(value, dtype=float)
+        if x.size < 2 or not np.all(np.isfinite(x)) or not np.all(np.diff(x) > 0):
+            return "the wavelength axis is not strictly increasing finite numbers"
+        points = seen.get("read_points")
+        if isinstance(points, int) and x.size != points:
+            return f"the axis has {x.size} samples, read_points says {points}"
+        if band is not None and (x[0] < band[0] - 100 or x[-1] > band[1] + 100):
+            return (f"the axis {x[0]:.6g}..{x[-1]:.6g} nm lies outside the band "
+                    f"{band[0]:g}..{band[1]:g} nm (wrong unit?)")
+        return None
+    if op.name == "read_trace_y":
+        y = np.asarray(value, dtype=float)
+        axis = seen.get("read_trace_x")
+        if axis is not None and np.asarray(axis).size != y.size:
+            return f"the level trace has {y.size} samples, the axis {np.asarray(axis).size}"
+        if y.size == 0 or not np.all(np.isfinite(y)):
+            return "the level trace holds non-finite values"
+        lo, hi = PLAUSIBLE_PEAK_DBM
+        if not lo <= float(y.max()) <= hi:
+            return f"the trace peak {float(y.max()):.6g} dBm is outside {lo:g}..{hi:g} dBm " \
+                   "(wrong unit?)"
+        return None
+    if not isinstance(value, float):
+        return None
+    if op.unit == "nm" and "wavelength" in op.name and band is not None and \
+            not band[0] <= value <= band[1]:
+        return f"{value:.6g} nm lies outside the band {band[0]:g}..{band[1]:g} nm (wrong unit?)"
+    if op.unit == "dBm" and not PLAUSIBLE_DBM[0] <= value <= PLAUSIBLE_DBM[1]:
+        return f"{value:.6g} dBm is not a plausible level ({PLAUSIBLE_DBM[0]:g}.." \
+               f"{PLAUSIBLE_DBM[1]:g} dBm; wrong unit?)"
+    for setting in profile.operations.values():
+        if setting.readback == op.name and setting.range is not None and \
+                op.index_range is None and not setting.range[0] <= value <= setting.range[1]:
+            return (f"{value:.6g} lies outside {setting.name}'s range "
+                    f"[{setting.range[0]:g}, {setting.range[1]:g}] (wrong unit?)")
+    return None
+
+
+def _check_operation(adapter: Adapter, op: Operation, seen: dict[str, Any]) -> Check:
+    """Run one read operation (every index of an indexed one) and judge the values read;
+    NoAnswerError propagates."""
     from labrun.scpi import NoAnswerError
 
     try:
         if op.index_range is None:
-            detail = describe(op, adapter.read(op.name))
+            value = adapter.read(op.name)
+            seen[op.name] = value
+            detail = describe(op, value)
+            reason = implausible(adapter.profile, op, value, seen)
         else:
             lo, hi = op.index_range
-            detail = ", ".join(f"{i}: {describe(op, adapter.read(op.name, index=i))}"
-                               for i in range(lo, hi + 1))
+            values = {i: adapter.read(op.name, index=i) for i in range(lo, hi + 1)}
+            detail = ", ".join(f"{i}: {describe(op, v)}" for i, v in values.items())
+            reason = next((r for v in values.values()
+                           if (r := implausible(adapter.profile, op, v, seen))), None)
     except NoAnswerError:
         raise
     except LabrunError as exc:
         return Check(op.name, False, str(exc))
+    if reason is not None:
+        return Check(op.name, False, f"{detail}: {reason}")
     return Check(op.name, True, detail)
 
 
@@ -128,9 +187,10 @@ def probe_instrument(bench: Bench, role: str, traffic_log: TrafficLog | None = N
         if forms:
             result.checks.append(Check("reply_forms", True, "; ".join(
                 f"{kind}: {text}" for kind, text in forms.items())))
+        seen: dict[str, Any] = {}
         for op in spec.profile.read_operations():
             if op.name != "identify":
-                result.checks.append(_check_operation(adapter, op))
+                result.checks.append(_check_operation(adapter, op, seen))
         if spec.profile.error_query:
             result.checks.append(_check_error_queue(adapter))
         else:
