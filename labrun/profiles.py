@@ -135,7 +135,17 @@ class TraceSpec(_Strict):
     format_command: str | None = None
     ascii_command: str | None = None
     byte_order_command: str | None = None
+    ascii_separator: Literal[",", " ", "\t"] = ","  # between ASCII values
+    ascii_leading_count: bool = False  # the first ASCII value counts the values after it
+    axis_start_query: str | None = None  # the axis from start/stop queries (linear, as many
+    axis_stop_query: str | None = None   #   samples as the level trace) instead of read_trace_x
+    axis_wire_unit: str = "nm"           # the unit those queries answer in
     sweep_time: SweepTime | None = None
+
+    @property
+    def axis_from_start_stop(self) -> bool:
+        """True when the wavelength axis comes from start/stop queries."""
+        return self.axis_start_query is not None
 
 
 # The named groups each reply form must have (labrun reads only those groups).
@@ -496,6 +506,20 @@ def _check_replies(path: Path, head: _ProfileHead, replies: ReplyForms) -> None:
         raise _fail(path, "profile.error_queue", "false, yet error_query is given; remove one")
 
 
+def _check_axis(path: Path, trace: TraceSpec) -> None:
+    """Start and stop queries come together, hold one command each, speak a length unit."""
+    from labrun.wireunits import WIRE_UNITS
+
+    if (trace.axis_start_query is None) != (trace.axis_stop_query is None):
+        raise _fail(path, "trace.axis_stop_query", "give both axis_start_query and "
+                                                   "axis_stop_query, or neither")
+    for key in ("axis_start_query", "axis_stop_query"):
+        _check_one_command(path, f"trace.{key}", getattr(trace, key), template=False)
+    if trace.axis_wire_unit not in WIRE_UNITS["nm"]:
+        raise _fail(path, "trace.axis_wire_unit", f"{trace.axis_wire_unit!r} is not one of "
+                                                  f"{', '.join(WIRE_UNITS['nm'])}")
+
+
 def _check_completion(path: Path, head: _ProfileHead, spec: CompletionSpec,
                       ops: dict[str, Operation]) -> None:
     """Every profile with an operation to wait for says how; the method has what it needs."""
@@ -533,8 +557,13 @@ def parse_profile(data: dict[str, Any], path: Path) -> Profile:
     for name, op in ops.items():
         _check_operation(path, head.kind, name, op, ops)
     for name in REQUIRED_OPERATIONS[head.kind]:
+        if name == "read_trace_x" and model.trace is not None and \
+                model.trace.axis_from_start_stop:
+            continue
         if name not in ops:
             raise _fail(path, f"operations.{name}", f"a {head.kind} profile must map {name!r}")
+    if model.trace is not None:
+        _check_axis(path, model.trace)
     if head.kind == "osa" and model.trace is None:
         raise _fail(path, "trace", "an osa profile needs a [trace] table")
     if head.kind != "osa" and model.trace is not None:

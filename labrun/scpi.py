@@ -658,12 +658,22 @@ class ScpiSession:
                                   role=self.role, resource=self.resource)
         return units, values, rest[1:]
 
-    def query_ascii_floats(self, cmd: str) -> np.ndarray:
-        """Query a comma-separated list of numbers (the SCPI ASCii data format)."""
+    def query_ascii_floats(self, cmd: str, separator: str = ",", counted: bool = False
+                           ) -> np.ndarray:
+        """Query a list of numbers (the SCPI ASCii data format; ``counted``: the first value
+        says how many follow, and a reply whose count disagrees is garbled)."""
         def action() -> tuple[np.ndarray, str]:
             text = self._live().query(cmd)  # parsed as pyvisa's query_ascii_values parses it
-            values = from_ascii_block(text, converter="f", separator=",", container=_NDARRAY)
-            return np.asarray(values, dtype=float), text
+            split: str | Callable[[str], list[str]] = separator if separator.strip() \
+                else str.split  # spaces or tabs: any run of whitespace
+            values = np.asarray(from_ascii_block(text.strip(), converter="f", separator=split,
+                                                 container=_NDARRAY), dtype=float)
+            if counted:
+                if values.size == 0 or values[0] != values.size - 1:
+                    raise ValueError(f"ASCII trace count {values[:1]} does not match "
+                                     f"{max(values.size - 1, 0)} values")
+                values = values[1:]
+            return values, text
 
         def describe(r: tuple[np.ndarray, str]) -> tuple[str, str | None]:
             return f"<{r[0].size} ascii values>", r[1] if self.traffic_log is not None else None

@@ -6,6 +6,7 @@ from __future__ import annotations
 
 from pathlib import Path
 
+import numpy as np
 import pytest
 from _engine_support import scenario
 
@@ -373,3 +374,62 @@ def test_probe_fails_a_trace_in_the_wrong_unit(lab, tmp_path, capsys):
     failed = _failed(report, "osa")
     assert [c["operation"] for c in failed] == ["read_trace_x"]
     assert "outside the band" in failed[0]["detail"]
+
+
+# -- declarative trace reading -------------------------------------------------------------
+
+COUNTED_OSA = """trace]
+format = "ascii"
+ascii_command = "FORM:DATA ASC"
+ascii_separator = " "
+ascii_leading_count = true
+axis_start_query = "SENS:WAV:STAR?"
+axis_stop_query = "SENS:WAV:STOP?"
+"""
+
+
+def _counted_osa(text: str) -> str:
+    """The generic OSA with an ASCII trace (space-separated, leading count) and the axis from
+    start/stop queries instead of TRAC:DATA? WLEN."""
+    start = text.index("[trace]\n")
+    end = text.index("[trace.sweep_time]")
+    text = text[:start] + "[" + COUNTED_OSA + "\n" + text[end:]
+    x_op = text.index("[operations.read_trace_x]")
+    y_op = text.index("[operations.read_trace_y]")
+    return text[:x_op] + text[y_op:]
+
+
+def test_ascii_trace_with_count_and_start_stop_axis(lab, tmp_path):
+    """The trace arrives as '<n> v1 v2 ...' and the axis from SENS:WAV:STAR?/STOP?: read_trace
+    gives the lab's own sweep (axis and levels, to the ASCII digits sent)."""
+    sim = lab.instruments["osa"]
+    sim.ascii_separator, sim.ascii_count = " ", True
+    prof = _profile_copy(tmp_path, "osa", "counted-osa", _counted_osa)
+    osa = open_instrument(load_bench(_bench_with(lab, tmp_path, "osa", "osa", prof)), "osa")
+    try:
+        osa.apply("set_points", 257)
+        x, y = osa.sweep_and_read(with_x=True)
+    finally:
+        osa.close()
+    state = lab.state.osa
+    assert x.size == y.size == 257
+    np.testing.assert_allclose(x, state.x_nm, atol=1e-6)
+    np.testing.assert_allclose(y, state.y_dbm, atol=6e-4)  # 3 decimals sent
+
+
+def test_count_that_disagrees_is_a_garbled_trace(lab, tmp_path):
+    """The check above can fail: a count that does not match the values (the reply cut
+    short) is refused, not read as a shorter trace."""
+    from labrun.errors import InstrumentError
+
+    sim = lab.instruments["osa"]
+    sim.ascii_separator, sim.ascii_count = " ", True
+    real = sim._trace
+    sim._trace = lambda call, axis: real(call, axis).rsplit(" ", 5)[0]  # five values lost
+    prof = _profile_copy(tmp_path, "osa", "counted-osa", _counted_osa)
+    osa = open_instrument(load_bench(_bench_with(lab, tmp_path, "osa", "osa", prof)), "osa")
+    try:
+        with pytest.raises(InstrumentError, match="count"):
+            osa.sweep_and_read(with_x=True)
+    finally:
+        osa.close()

@@ -221,7 +221,11 @@ class Adapter:
         if self._trace_format == "real32":
             assert self.profile.trace is not None
             return self.session.query_block_real32(query, self.profile.trace.byte_order)
-        return self.session.query_ascii_floats(query)
+        trace = self.profile.trace
+        if trace is None:
+            return self.session.query_ascii_floats(query)
+        return self.session.query_ascii_floats(query, trace.ascii_separator,
+                                               trace.ascii_leading_count)
 
     def _select_trace_format(self) -> str:
         """Send the profile's transfer-format commands once; fall back to ASCII if REAL,32 is

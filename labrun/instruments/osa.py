@@ -60,8 +60,31 @@ class OsaAdapter(Adapter):
 
     def read_trace(self) -> tuple[np.ndarray, np.ndarray]:
         """The last trace: wavelengths (nm) and powers (dBm per RBW), same length."""
+        trace = self.profile.trace
+        if trace is not None and trace.axis_from_start_stop:
+            y = self.read("read_trace_y")
+            return self._axis_from_start_stop(y.size), y
         x = self.read("read_trace_x")
         y = self.read("read_trace_y")
         if x.size != y.size or x.size == 0:
             raise self._instrument_error(f"short trace: x has {x.size} points and y {y.size}")
         return x, y
+
+    def _axis_from_start_stop(self, n: int) -> np.ndarray:
+        """The wavelength axis (nm) from the profile's start and stop queries: n samples
+        evenly spaced, as a grating OSA samples its sweep."""
+        from labrun.wireunits import from_wire
+
+        trace = self.profile.trace
+        assert trace is not None and trace.axis_start_query and trace.axis_stop_query
+        ends = []
+        for query in (trace.axis_start_query, trace.axis_stop_query):
+            reply = self.session.query(query)
+            try:
+                ends.append(float(from_wire(float(reply), "nm", trace.axis_wire_unit)))
+            except ValueError:
+                raise self._instrument_error(f"reply {reply!r} to {query!r} is not a number"
+                                             ) from None
+        if trace.axis_wire_unit in ("Hz", "GHz", "THz"):
+            ends.sort()
+        return np.linspace(ends[0], ends[1], n)

@@ -412,6 +412,8 @@ class OsaInstrument(SimInstrument):
     TRAC:DATA? WLEN|LEVEL, FORM:DATA, FORM:BORD (generic-osa)."""
 
     kind = "osa"
+    ascii_separator = ","  # between ASCII trace values
+    ascii_count = False    # True: an ASCII trace starts with the number of values after it
 
     def register(self) -> None:
         t = self.table
@@ -427,6 +429,10 @@ class OsaInstrument(SimInstrument):
         t.add("INITiate[:IMMediate]", self._init, nargs=(0, 0), waits=True)
         # SCPI-1999 TRACe[:DATA]? <trace_name>, with trace names of labrun's own.
         t.add("TRACe[:DATA]", self._named_trace, query=True, waits=True, nargs=(1, 1))
+        t.add("[SENSe]:WAVelength:STARt", lambda c: fmt(osa.center_nm - osa.span_nm / 2),
+              query=True)
+        t.add("[SENSe]:WAVelength:STOP", lambda c: fmt(osa.center_nm + osa.span_nm / 2),
+              query=True)
         t.add("FORMat[:DATA]", self._set_format, nargs=(1, 2))
         t.add("FORMat[:DATA]", lambda c: "REAL,32" if osa.real32 else "ASC,8", query=True)
         t.add("FORMat:BORDer", self._set_border)
@@ -501,7 +507,9 @@ class OsaInstrument(SimInstrument):
                 data = data[:short]
         values = np.asarray(data, dtype=np.float32 if osa.real32 else float)
         if not osa.real32:
-            return ",".join(f"{v:.6f}" if axis == "x" else f"{v:.3f}" for v in values)
+            head = [str(values.size)] if self.ascii_count else []
+            return self.ascii_separator.join(head + [f"{v:.6f}" if axis == "x" else f"{v:.3f}"
+                                                     for v in values])
         body = values.astype("<f4" if osa.little_endian else ">f4").tobytes()
         length = str(len(body))
         return f"#{len(length)}{length}".encode("ascii") + body  # IEEE 488.2 definite length
