@@ -27,6 +27,7 @@ from labrun.fits import (
     PolFrame,
     _copolar,
     _first_sideband_efficiency,
+    dispersion_of,
     fit_run,
     nl_power_w,
     points_table,
@@ -161,7 +162,8 @@ def fit_spool(runs_points: Sequence[Any], spool_length_km: float, loss_db_per_km
             t2["sideband_high_1"] = t["sideband_high_1"] - c_hi
         if "sideband_low_1" in t:
             t2["sideband_low_1"] = t["sideband_low_1"] - c_lo
-        current = fit_run(t2, spool_length_km, loss_db_per_km, **kw)
+        current = fit_run(t2, spool_length_km, loss_db_per_km, **kw,
+                          dispersion_start=dispersion_of(current))
         new = _params(current, dispersion_ps_per_nm_km, slope_ps_per_nm2_km)
         if new is None:
             break
@@ -169,7 +171,7 @@ def fit_spool(runs_points: Sequence[Any], spool_length_km: float, loss_db_per_km
         history.append(theta)
     if uncertainties is not None:
         current = fit_run(t2, spool_length_km, loss_db_per_km, **kw,
-                          uncertainties=uncertainties)
+                          uncertainties=uncertainties, dispersion_start=dispersion_of(current))
     step = [abs(a - b) for a, b in zip(history[-1], history[-2], strict=True)]
     no_d = dispersion_ps_per_nm_km is None and not math.isfinite(
         closed.get("dispersion", FitResult(float("nan"), 0, 0, 0, "", "")).value)

@@ -48,6 +48,9 @@ SIGNED_D_CONVENTION = (
     "D at the reference wavelength, ps/(nm km), signed: D > 0 is anomalous dispersion "
     "(beta2 < 0); the sign is measured through the SPM/XPM phase mismatch")
 SIGNED_S_CONVENTION = "dD/d(lambda) at the reference wavelength, ps/(nm^2 km), signed"
+GRID_D_MAX = 30.0  # joint (D, S) grid: |D| of transmission fibres and HNLF (common practice)
+GRID_S_MAX = 0.3  # and |S| in ps/(nm^2 km) (common practice); refinement goes beyond
+GRID_N_BEST = 12  # candidates refined with the full model (aliases of the oscillation)
 SIGN_DCHI2 = 25.0  # the sign of D is reported when the other sign fits worse by this much
 LINE_KEY = re.compile(r"^(tone|sideband)_(low|high)_(\d+)$")
 DB = 10.0 / math.log(10.0)  # dB per neper of power ratio (10 log10 e)
@@ -514,15 +517,18 @@ def _grid_dispersion(y: np.ndarray, u: np.ndarray, alpha: float, length_km: floa
 def fit_dispersion(p_a_w, p_b_w, spacing_ghz, wavelength_a_nm, side, ratio, *, length_km: float,
                    loss_db_per_km: float, reference_wavelength_nm: float, copolar=None,
                    fit_slope: bool | None = None, d_max: float = 300.0,
-                   s_max: float = 5.0) -> dict[str, FitResult]:
+                   s_max: float = 5.0,
+                   start: tuple[float, float] | None = None) -> dict[str, FitResult]:
     """D (and slope S) from first-sideband efficiency against spacing: bounded least squares.
 
     Residuals in dB of R = eta(dbeta(D, S)) c gamma^2 L_eff^2 P_a P_b, free parameters ln gamma,
     D in [0, d_max] and, with two or more pump wavelengths (or fit_slope=True), S. eta depends
     on dbeta^2 only, so the sign of D is not measurable: D is reported >= 0 at the reference
     wavelength (flip the signs of D and S together for normal dispersion). Starts come from a
-    grid over D (per wavelength), the efficiency being oscillatory; standard errors from the
-    Jacobian at the solution (cov = s^2 (J^T J)^-1).
+    grid over D (per wavelength) and, with the slope, a joint grid over (D, S) with gamma
+    profiled out, the efficiency being oscillatory (``_joint_grid_starts``); ``start`` = (D, S)
+    of a nearby solution replaces the searches by a local refinement (refits of moved inputs).
+    Standard errors from the Jacobian at the solution (cov = s^2 (J^T J)^-1).
     """
     arrs = [np.asarray(v, float) for v in (p_a_w, p_b_w, spacing_ghz, wavelength_a_nm, ratio)]
     p_a, p_b, sp, lam, r = arrs
@@ -549,10 +555,20 @@ def fit_dispersion(p_a_w, p_b_w, spacing_ghz, wavelength_a_nm, side, ratio, *, l
             eta = np.asarray(inoue_efficiency(alpha, theta[1] * u + s * v, length_km))
         return 2.0 * DB * theta[0] + DB * np.log(np.maximum(eta, 1e-300)) - y
 
-    starts = _dispersion_starts(y, u, lam, lams, alpha, length_km, d_max, with_slope,
-                                reference_wavelength_nm, s_max)
-    # Stage 1, Inoue's linear mismatch (closed form, fast) from every start, D >= 0.
-    lin: Any = None  # scipy's OptimizeResult of the best start
+    if start is not None:  # a refit near a known solution: local refinement only
+        starts = [(abs(start[0]), float(np.sign(start[0]) or 1.0) * start[1] if with_slope
+                   else 0.0)]
+    else:
+        starts = _dispersion_starts(y, u, lam, lams, alpha, length_km, d_max, with_slope,
+                                    reference_wavelength_nm, s_max)
+        if with_slope:
+            starts += _joint_grid_starts(y, u, v, alpha, length_km, min(d_max, GRID_D_MAX),
+                                         min(s_max, GRID_S_MAX))
+    # Stage 1, Inoue's linear mismatch (closed form, fast) from every start, D >= 0; stage 2
+    # (below) from each stage-1 solution, the best by the full model's cost kept: aliases of
+    # the oscillating efficiency can fit the linear mismatch about as well as the truth, the
+    # SPM/XPM mismatch tells them apart.
+    lins: list[Any] = []  # scipy's OptimizeResults, one per start
     for d0, s0 in starts:
         eta0 = np.asarray(inoue_efficiency(alpha, d0 * u + s0 * v, length_km))
         g0 = float(np.mean(y - DB * np.log(np.maximum(eta0, 1e-300)))) / (2.0 * DB)
@@ -560,22 +576,22 @@ def fit_dispersion(p_a_w, p_b_w, spacing_ghz, wavelength_a_nm, side, ratio, *, l
         try_sol = least_squares(resid, theta0, kwargs={"nl": False}, x_scale="jac",
                                 bounds=([-np.inf, 0.0] + ([-s_max] if with_slope else []),
                                         [np.inf, d_max] + ([s_max] if with_slope else [])))
-        if lin is None or try_sol.cost < lin.cost:
-            lin = try_sol
+        lins.append(try_sol)
     # Stage 2, with the SPM/XPM mismatch: the linear mismatch fixes dbeta^2 only, the small
     # nonlinear term breaks the tie between D and -D (with the slope's sign), so both branches
     # are refined from the linear solution and the better one kept.
     lo = [-np.inf, -d_max] + ([-s_max] if with_slope else [])
     hi = [np.inf, d_max] + ([s_max] if with_slope else [])
     best: dict[bool, Any] = {}
-    for sign in (1.0, -1.0):
-        theta1 = np.array(lin.x, dtype=float)
-        theta1[1:] *= sign
-        theta1[1] = float(np.clip(theta1[1], -d_max, d_max))
-        try_sol = least_squares(resid, theta1, bounds=(lo, hi), x_scale="jac")
-        neg = bool(try_sol.x[1] < 0)
-        if neg not in best or try_sol.cost < best[neg].cost:
-            best[neg] = try_sol
+    for lin in _distinct(lins):
+        for sign in (1.0, -1.0):
+            theta1 = np.array(lin.x, dtype=float)
+            theta1[1:] *= sign
+            theta1[1] = float(np.clip(theta1[1], -d_max, d_max))
+            try_sol = least_squares(resid, theta1, bounds=(lo, hi), x_scale="jac")
+            neg = bool(try_sol.x[1] < 0)
+            if neg not in best or try_sol.cost < best[neg].cost:
+                best[neg] = try_sol
     sol = min(best.values(), key=lambda x: x.cost)
     other = [b.cost for k, b in best.items() if k != bool(sol.x[1] < 0)]
     n, p = r.size, len(sol.x)
@@ -632,6 +648,53 @@ def _dispersion_starts(y, u, lam, lams, alpha, length_km, d_max, with_slope, lam
         d0, s0 = -d0, -s0
     s0 = float(np.clip(s0, -s_max, s_max))
     return [(float(np.clip(d0, 0.0, d_max)), s0), (float(np.median(d_each)), 0.0)]
+
+
+def _distinct(sols: list[Any], n_best: int = GRID_N_BEST) -> list[Any]:
+    """The ``n_best`` lowest-cost least-squares solutions, one per distinct (D, S)."""
+    out: list[Any] = []
+    for sol in sorted(sols, key=lambda x: x.cost):
+        if all(np.max(np.abs(sol.x[1:] - o.x[1:])) > 1e-3 for o in out):
+            out.append(sol)
+    return out[:n_best]
+
+
+def _joint_grid_starts(y: np.ndarray, u: np.ndarray, v: np.ndarray, alpha: float,
+                       length_km: float, d_max: float, s_max: float,
+                       n_best: int = GRID_N_BEST, max_points: int = 60
+                       ) -> list[tuple[float, float]]:
+    """Starting (D, S) pairs: the best local minima of the linear-mismatch residual over a grid
+    of D in [0, d_max] and S in [-s_max, s_max], gamma profiled out (its dB offset is the
+    residual's mean). Steps of 0.6 rad in the largest phase dbeta L of each basis; on a long
+    spool of large D the efficiency oscillates many times over the spacings and the slope's
+    beta3 term shifts every phase, so a per-wavelength grid alone lands on an alias.
+    """
+    if y.size > max_points:
+        pick = np.linspace(0, y.size - 1, max_points).astype(int)
+        y, u, v = y[pick], u[pick], v[pick]
+    phi_u = float(np.max(np.abs(u))) * length_km
+    phi_v = float(np.max(np.abs(v))) * length_km
+    d_grid = np.linspace(0.0, d_max, max(int(d_max * phi_u / 0.6), 2) + 1)
+    s_grid = np.linspace(-s_max, s_max, max(int(2 * s_max * phi_v / 0.6), 2) + 1)
+    a_l = alpha * length_km
+    e1, e2 = math.exp(-a_l), math.exp(-2.0 * a_l)
+    l_eff2 = effective_length_km(length_km, 0.0 if alpha == 0 else alpha * DB) ** 2
+    ss = np.empty((d_grid.size, s_grid.size))
+    for j, s in enumerate(s_grid):
+        db = d_grid[:, None] * u[None, :] + s * v[None, :]
+        # Inoue's efficiency in real form (the expression of physics.fwm.inoue_efficiency):
+        # eta = (1 - 2 e^-aL cos(dbeta L) + e^-2aL) / ((a^2 + dbeta^2) L_eff^2)
+        num = 1.0 - 2.0 * e1 * np.cos(db * length_km) + e2
+        e = DB * (np.log(np.maximum(num, 1e-300)) - np.log((alpha**2 + db**2) * l_eff2))
+        r = y[None, :] - e
+        ss[:, j] = np.sum((r - r.mean(axis=1, keepdims=True)) ** 2, axis=1)
+    from scipy.ndimage import minimum_filter
+
+    local = (ss == minimum_filter(ss, size=3, mode="nearest"))
+    idx = np.flatnonzero(local.ravel())
+    idx = idx[np.argsort(ss.ravel()[idx])][:n_best]
+    di, sj = np.unravel_index(idx, ss.shape)
+    return [(float(d_grid[i]), float(s_grid[j])) for i, j in zip(di, sj, strict=True)]
 
 
 def _covariance(jac: np.ndarray, fun: np.ndarray, n: int, p: int) -> np.ndarray:
@@ -768,7 +831,8 @@ def fit_run(points, spool_length_km: float, loss_db_per_km: float, *,
             small_signal_max_ratio_db: float = -20.0,
             bessel_max_mismatch_rad: float = 0.3,
             polarisation: PolFrame | None = None,
-            uncertainties: Uncertainties | None = None) -> dict[str, FitResult]:
+            uncertainties: Uncertainties | None = None,
+            dispersion_start: tuple[float, float] | None = None) -> dict[str, FitResult]:
     """Every fit the points support, keyed by name (gamma_bessel, gamma_small_signal,
     dispersion, dispersion_slope, slope_<side>_<n>, pol_extinction_db, pol_visibility).
 
@@ -793,7 +857,9 @@ def fit_run(points, spool_length_km: float, loss_db_per_km: float, *,
     is in its ``warnings``; a fit that could not be made is returned with a NaN value and the
     reason (``refused``). With ``uncertainties`` every result carries its GUM budget
     (``budget``, ``u_combined``, ``u95``; labrun.uncertainty), at the cost of two refits per
-    input quantity.
+    input quantity (each refining the dispersion locally from the unmoved fit's).
+    ``dispersion_start`` = (D, S) of a nearby solution: the dispersion fit refines it locally
+    instead of searching (fits.fit_dispersion).
     """
     t = points_table(points)
     kw: dict[str, Any] = {
@@ -801,11 +867,22 @@ def fit_run(points, spool_length_km: float, loss_db_per_km: float, *,
         "slope_ps_per_nm2_km": slope_ps_per_nm2_km,
         "reference_wavelength_nm": reference_wavelength_nm, "max_order": max_order,
         "copolar_min": copolar_min, "small_signal_max_ratio_db": small_signal_max_ratio_db,
-        "bessel_max_mismatch_rad": bessel_max_mismatch_rad, "polarisation": polarisation}
+        "bessel_max_mismatch_rad": bessel_max_mismatch_rad, "polarisation": polarisation,
+        "dispersion_start": dispersion_start}
     results = _fit_table(t, spool_length_km, loss_db_per_km, **kw)
     if uncertainties is None:
         return results
+    kw["dispersion_start"] = dispersion_start or dispersion_of(results)
     return with_budget(results, t, spool_length_km, loss_db_per_km, kw, uncertainties)
+
+
+def dispersion_of(results: dict[str, FitResult]) -> tuple[float, float] | None:
+    """(D, S) of a fit's dispersion result as reported (a start for refits), None without."""
+    d = results.get("dispersion")
+    if d is None or not math.isfinite(d.value):
+        return None
+    s = results.get("dispersion_slope")
+    return float(d.value), (float(s.value) if s is not None and math.isfinite(s.value) else 0.0)
 
 
 def _perturbed(t: dict[str, np.ndarray], length_km: float, loss: float, name: str,
@@ -870,7 +947,8 @@ def _fit_table(t: dict[str, np.ndarray], spool_length_km: float, loss_db_per_km:
                dispersion_ps_per_nm_km: float | None, slope_ps_per_nm2_km: float,
                reference_wavelength_nm: float, max_order: int, copolar_min: float,
                small_signal_max_ratio_db: float, bessel_max_mismatch_rad: float,
-               polarisation: PolFrame | None) -> dict[str, FitResult]:
+               polarisation: PolFrame | None,
+               dispersion_start: tuple[float, float] | None = None) -> dict[str, FitResult]:
     """fit_run on a points_table (see there)."""
     if "power_a_dbm" not in t or "power_b_dbm" not in t:
         raise ValueError("points need power_a_dbm and power_b_dbm columns")
@@ -913,7 +991,7 @@ def _fit_table(t: dict[str, np.ndarray], spool_length_km: float, loss_db_per_km:
             np.tile(p_a, 2)[sel], np.tile(p_b, 2)[sel], np.tile(spacing, 2)[sel],
             np.tile(lam, 2)[sel], side[sel], ratio[sel], length_km=spool_length_km,
             loss_db_per_km=loss_db_per_km, reference_wavelength_nm=reference_wavelength_nm,
-            copolar=np.tile(c_eff, 2)[sel]))
+            copolar=np.tile(c_eff, 2)[sel], start=dispersion_start))
         if "dispersion" not in results:
             results["dispersion"] = refused(
                 "Inoue efficiency vs spacing", "ps/(nm km)",

@@ -19,6 +19,7 @@ from labrun.vlab.lab import VirtualLab
 HNLF_GAMMA = 11.0  # 1/(W km)
 HNLF_D = -0.3  # ps/(nm km)
 SMF_GAMMA = 1.3
+SMF_D = 17.0  # ps/(nm km)
 
 
 def run_plan_file(db: str, plan: str | Path, folder: Path, *, connected: str | None = None,
