@@ -433,3 +433,49 @@ def test_count_that_disagrees_is_a_garbled_trace(lab, tmp_path):
             osa.sweep_and_read(with_x=True)
     finally:
         osa.close()
+
+
+# -- a second dialect in the virtual lab ---------------------------------------------------
+
+def _sweep_lines(tmp_path: Path, dialect: str) -> list[tuple[int, str, str, int, float]]:
+    """Run a 3-point sweep on a lab whose lasers speak ``dialect``; the stored lines."""
+    from _engine_support import OPERATOR, long_powers, write_plan
+    from sqlalchemy import select
+
+    from labrun.engine import run_plan
+    from labrun.plan import load_plan
+    from labrun.store import open_store
+    from labrun.store.models import Line, Point
+
+    instruments = scenario()["instruments"]
+    for role in ("laser_a", "laser_b"):
+        instruments.setdefault(role, {})["dialect"] = dialect
+    folder = tmp_path / dialect
+    folder.mkdir()
+    with VirtualLab(scenario(instruments=instruments)) as lab:
+        bench = load_bench(lab.write_bench(folder / "bench.toml"))
+        assert bench.instruments["laser_a"].profile.name == \
+            ("si-laser" if dialect == "si" else "generic-laser")
+        store = open_store(folder / "runs.db")
+        out = run_plan(load_plan(write_plan(folder, long_powers(3))), bench, store,
+                       operator=OPERATOR, unattended=True, ack_safety=True, progress=False)
+        assert out.status == "completed", out.reason
+        assert lab.sources_off()
+    with store.session() as s:
+        rows = s.execute(select(Point.index, Line.kind, Line.side, Line.order, Line.power_dbm)
+                         .join(Line.point).order_by(Point.index, Line.kind, Line.side,
+                                                    Line.order)).all()
+    return [tuple(r) for r in rows]
+
+
+def test_sweep_in_the_si_dialect_stores_the_generic_lines(tmp_path):
+    """Done-when of issue 15 for the lasers: both lasers in the si dialect (metres, watts,
+    remote enable, space-separated errors, drivers/si-laser.toml) store the same lines as in
+    the generic dialect (realism off: the virtual lab is deterministic; the SI laser's power
+    goes through W and back, so within 1e-3 dB)."""
+    generic = _sweep_lines(tmp_path, "generic")
+    si = _sweep_lines(tmp_path, "si")
+    assert len(si) == len(generic) == 18
+    for a, b in zip(generic, si, strict=True):
+        assert a[:4] == b[:4]
+        assert b[4] == pytest.approx(a[4], abs=1e-3)

@@ -28,6 +28,7 @@ from labrun.vlab.scpi_server import (
     AttenuatorInstrument,
     InstrumentServer,
     SimInstrument,
+    speak_dialect,
 )
 from labrun.vlab.state import LabState
 
@@ -91,6 +92,8 @@ class VirtualLab:
                 cls = INSTRUMENT_CLASSES[ROLE_KINDS[role]]
                 inst = cls(role, self.state, self.scenario.idn(role),
                            FaultInjector(self.scenario.faults, role, self.seed), self._stopping)
+                if spec.dialect != "generic":
+                    speak_dialect(inst, spec.dialect)
                 self.instruments[role] = inst
                 try:
                     self.servers[role] = InstrumentServer(inst, self.host, spec.port)
@@ -274,12 +277,19 @@ class VirtualLab:
         for role, server in self.servers.items():
             lines += ["", f"[instruments.{role}]", f"resource = {q(server.resource)}",
                       'backend = "@py"',
-                      f"profile = {q(generic_profile_name(ROLE_KINDS[role]))}"]
+                      f"profile = {q(self.profile_name(role))}"]
             if role in SOURCE_ROLES:
                 caps = cast(Mapping[str, float], layout.caps)  # keyed by source role
                 cap = caps.get(role, DEFAULT_CAPS_DBM[role])
                 lines.append(f"max_power_dbm = {cap!r}")
         return "\n".join(lines) + "\n"
+
+    def profile_name(self, role: str) -> str:
+        """The shipped profile that speaks ``role``'s dialect."""
+        dialect = getattr(self.scenario.instruments, role).dialect
+        if dialect == "generic":
+            return generic_profile_name(ROLE_KINDS[role])
+        return f"{dialect}-{ROLE_KINDS[role].replace('_', '-')}"
 
     def write_bench(self, path: str | Path) -> Path:
         """Write the bench file for this running lab; returns its path."""

@@ -584,6 +584,15 @@ INSTRUMENT_CLASSES: dict[str, type[SimInstrument]] = {
 }
 
 
+def speak_dialect(inst: SimInstrument, dialect: str) -> None:
+    """Make ``inst`` speak a dialect other than the generic one (see scenario.InstrumentSpec)."""
+    if dialect != "si" or not isinstance(inst, LaserInstrument):
+        raise ValueError(f"the {dialect!r} dialect is not simulated for a {inst.kind}")
+    inst.si_units = True
+    inst.remote_enable = "SYST:REM"
+    inst.error_reply = "{code} {short}"
+
+
 def _quick_ack(sock: socket.socket) -> None:
     """Acknowledge at once (Linux TCP_QUICKACK): a client that writes a command and then a query
     as two small packets would otherwise wait ~40 ms for a delayed ACK (Nagle's algorithm)."""
