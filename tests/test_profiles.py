@@ -31,8 +31,10 @@ def test_shipped_profile_loads_and_renders(path):
             lo, hi = op.range
             sample = int(lo) if op.integer else lo
             extra = {"index": op.index_range[0]} if op.index_range else {}
-            text = op.render(value=sample, **extra)
-            assert "{" not in text and str(int(lo)) in text
+            wire = op.to_wire(sample)  # the instrument's unit (drivers/si-laser.toml: m, W)
+            text = op.render(value=wire, **extra)
+            assert "{" not in text
+            assert float(text.split()[-1]) == pytest.approx(float(wire), rel=1e-6)
 
 
 def test_load_by_name_and_fields():
