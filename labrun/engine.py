@@ -13,18 +13,21 @@ from __future__ import annotations
 
 import contextlib
 import functools
-import math
 import os
 import signal as _signal
 import socket
-import sys
 import time
 from collections.abc import Callable, Sequence
 from dataclasses import asdict, dataclass, field, is_dataclass
 from pathlib import Path
 from typing import TYPE_CHECKING, Any, TextIO, cast
 
-from labrun import __version__
+from labrun import __version__, emission
+from labrun.capture import OSA_SETTINGS as OSA_SETTINGS
+from labrun.capture import TRACE_DBM_BOUNDS as TRACE_DBM_BOUNDS
+from labrun.capture import Captured, check_tones, check_trace, expected_thz
+from labrun.commit import jsonable as _jsonable
+from labrun.commit import point_row, postfix, progress_bar
 from labrun.errors import InputError, InstrumentError, SafetyError
 from labrun.faults import (
     PointOverrun,
@@ -34,8 +37,7 @@ from labrun.faults import (
     point_bound_s,
 )
 from labrun.instruments import open_bench, source_readings
-from labrun.instruments.base import FLOAT_SLACK
-from labrun.physics.units import nm_to_thz
+from labrun.outcomes import RunAborted, StopRequested
 from labrun.plan import Plan, PointSpec, StopWatch
 from labrun.preload import preload
 from labrun.roles import ATTENUATOR_ROLES, LASER_ROLES, SOURCE_ROLES, SWEEP_ROLES
@@ -51,28 +53,15 @@ from labrun.safe_off import darken
 from labrun.scpi import NoAnswerError
 from labrun.settle import group_settles, setting_s, wait_s
 from labrun.shutdown import RunInterrupted, SafeOffGuard
-from labrun.store import Store, TraceData
+from labrun.store import Store
 from labrun.store.models import FINISHED_STATUSES, RunStatus
 from labrun.trafficlog import EVENT_KIND
 
 if TYPE_CHECKING:
     from labrun.reduce import Reduction
 
-# Sanity bounds of a trace sample in dBm: an OSA shows nothing outside them; a value outside is a
-# corrupted transfer, not light (common practice).
-TRACE_DBM_BOUNDS = (-300.0, 100.0)
 STALE_HEARTBEAT_S = 60.0  # a running run with an older heartbeat is probably dead
-# The OSA's settings of a point, in the order of OsaSettings (centre, span, RBW, samples).
-OSA_SETTINGS = ("set_center_nm", "set_span_nm", "set_rbw_nm", "set_points")
 SIGINT = int(_signal.SIGINT)  # Ctrl-C; KeyboardInterrupt counts as this signal
-
-
-class RunAborted(Exception):  # noqa: N818 - an outcome, raised to leave the loop
-    """A safety condition or faults beyond the retry policy ended the run."""
-
-
-class StopRequested(Exception):  # noqa: N818 - an outcome, raised to leave the loop
-    """A plan stop condition was met: the run ends normally, early."""
 
 
 @dataclass
@@ -102,16 +91,6 @@ class RunOutcome:
         if self.status == RunStatus.INTERRUPTED:
             return 128 + (self.signal or SIGINT)
         return 1
-
-
-@dataclass
-class Captured:
-    """One trace of a point: kind ("output" or "input"), x (nm), y (dBm per RBW), reduction."""
-
-    kind: str
-    x: Any
-    y: Any
-    reduction: Any = None
 
 
 @dataclass(frozen=True)
@@ -478,76 +457,22 @@ class Runner:
         return self.source_roles
 
     def check_emission(self) -> None:
-        """Abort if a source's output is not in the expected state, its interlock is open, or
-        its power setting changed behind labrun's back (front panel, reset).
-
-        An open interlock forces emission off, so where a source reports its output state that
-        one query covers both (the interlock is then read to name the reason); the interlock is
-        read on its own only for sources that do not report their output. The power travels in
-        the same message as the state where the profile takes compound messages.
-        """
-        self.check_progress()
-        roles = self.sources()
-        adapters = [self.role(r) for r in roles]
-        for role, adapter, reading in zip(roles, adapters, self.source_readings(adapters),
-                                          strict=True):
-            state, power = reading
-            if state is None and adapter.interlock_closed() is False:
-                raise RunAborted(f"interlock open on {role}")
-            if state is not None and bool(state) != self.expected_on(role):
-                if self._confirm_state(role, adapter) == self.expected_on(role):
-                    continue
-                self.check_progress()  # labrun itself switched it off meanwhile: a retry
-                found = "on" if state else "off"
-                raise RunAborted(f"{role} output found {found} unexpectedly"
-                                 + self._interlock_note())
-            if power is not None and self.expected_on(role):
-                self.check_power(role, adapter, float(power))
+        """The emission watch (labrun/emission.py): abort on a source in an unexpected state,
+        an open interlock, or a power changed behind labrun's back."""
+        emission.check_emission(self)
 
     def check_power(self, role: str, adapter: Any, power: float) -> None:
-        """Refuse a source whose power reads above its bench cap (SafetyError at once, never
-        re-read or retried) or, confirmed by a second read, away from the value labrun set by
-        more than the profile's tolerance (RunAborted): a corrupted reply must not end a night."""
-        _check_cap(role, power, adapter.cap_dbm)
-        want = self.applied.get((role, "set_power_dbm"))
-        if want is None:  # not set by this run yet (or its setting failed): only the cap applies
-            return
-        tol = float(adapter.profile.op("set_power_dbm").tolerance or 0.0) + FLOAT_SLACK
-        if abs(power - float(want)) <= tol:
-            return
-        again = self._reread(role, lambda: float(adapter.power_dbm()), lambda v: f"{v:g} dBm",
-                             f"power reply {power:g} dBm disagreed with the {float(want):g} "
-                             "dBm set")
-        if again is not None:
-            _check_cap(role, again, adapter.cap_dbm)
-            if abs(again - float(want)) <= tol:
-                return
-        shown = power if again is None else again
-        raise RunAborted(f"{role} power changed behind labrun's back: reads {shown:g} dBm, "
-                         f"set {float(want):g} dBm (tolerance {tol:.3g} dB)")
+        """A source's power against its cap and the value set (labrun/emission.py)."""
+        emission.check_power(self, role, adapter, power)
 
     def _confirm_state(self, role: str, adapter: Any) -> bool | None:
-        """Read a surprising output state once more: one corrupted reply must not end a night.
-
-        The run aborts (sources off) unless the second read shows the expected state; either
-        way the disagreement is recorded as a fault event.
-        """
-        again = self._reread(role, adapter.output_state, lambda v: "on" if v else "off",
-                             "output state reply disagreed with the expected state")
-        return None if again is None else bool(again)
+        """A surprising output state read once more (labrun/emission.py)."""
+        return emission.confirm_state(self, role, adapter)
 
     def _reread(self, role: str, read: Callable[[], Any], show: Callable[[Any], str],
                 surprise: str) -> Any:
-        """Read a surprising reply once more and record the disagreement as a fault event; the
-        second reading, or None when it failed."""
-        try:
-            again = read()
-        except Exception as exc:  # noqa: BLE001 - any failure leaves the surprise standing
-            again, detail = None, f"re-read failed: {exc}"
-        else:
-            detail = f"re-read says {show(again)}"
-        self.store.add_event(self.run_id, "fault", f"{role} {surprise}; {detail}", role=role)
-        return again
+        """A surprising reply read once more, the disagreement recorded (labrun/emission.py)."""
+        return emission.reread(self, role, read, show, surprise)
 
     def expected_on(self, role: str) -> bool:
         """Whether a source should emit now (an amplifier the plan does not use stays off)."""
@@ -555,12 +480,7 @@ class Runner:
 
     def _interlock_note(self) -> str:
         """' (interlock open on laser_a)' when an interlock explains a surprise, else ''."""
-        opened = []
-        for role in self.sources():
-            with contextlib.suppress(Exception):
-                if self.role(role).interlock_closed() is False:
-                    opened.append(role)
-        return f" (interlock open on {', '.join(opened)})" if opened else ""
+        return emission.interlock_note(self)
 
     def prepare(self, first: Sequence[Setting]) -> None:
         """Apply the first point with outputs off, then switch on: shutters, lasers, amplifier.
@@ -626,21 +546,9 @@ class Runner:
         return x, y
 
     def check_trace(self, x: Any, y: Any) -> None:
-        """Refuse (InstrumentError, retried) a trace that is short, ragged or corrupted: the
-        configured number of samples, x increasing, every y finite and inside TRACE_DBM_BOUNDS."""
-        import numpy as np
-
-        want = int(self.applied[("osa", "configure")][3])
-        problem = None
-        if y.size != want or x.size != want:
-            problem = f"short trace: {y.size} y and {x.size} x samples, configured {want}"
-        elif not (np.all(np.isfinite(x)) and np.all(np.diff(x) > 0)):
-            problem = "corrupted trace: x is not finite and increasing"
-        elif not (np.all(np.isfinite(y)) and TRACE_DBM_BOUNDS[0] <= float(y.min())
-                  and float(y.max()) <= TRACE_DBM_BOUNDS[1]):
-            problem = "corrupted trace: y has non-finite or impossible dBm values"
-        if problem:
-            raise InstrumentError(problem, role="osa")
+        """Refuse (InstrumentError, retried) a trace that is short, ragged or corrupted
+        (labrun/capture.py), against the configured number of samples."""
+        check_trace(x, y, int(self.applied[("osa", "configure")][3]))
 
     # ---- one point ---------------------------------------------------------------------------
     def wants_input(self, spec: PointSpec) -> bool:
@@ -808,22 +716,10 @@ class Runner:
 
     def point_row(self, spec: PointSpec, traces: Sequence[Captured], red: Reduction,
                   attempts: int, started: Any) -> dict[str, Any]:
-        """Everything the store keeps of a point, taken now (the settings applied change with
-        the next point while the writer thread stores this one)."""
-        lines = [_line_dict(ml, trace=i) for i, tr in enumerate(traces)
-                 for ml in tr.reduction.lines]
-        applied = {f"{r}.{m}": v for (r, m), v in self.applied.items()}
-        return dict(
-            key=spec.key, index=spec.index, setpoint=_jsonable(spec.setpoint),
-            repeat=spec.repeat, is_reference=spec.is_reference,
-            traces=[TraceData(tr.x, tr.y, kind=tr.kind, rbw_nm=self.rbw_nm,
-                              settings=self.trace_meta if tr.kind == "output"
-                              else self.input_meta)
-                    for tr in traces],
-            lines=lines, applied=_jsonable(applied),
-            spacing_ghz=red.spacing_ghz, floor_dbm=red.floor_dbm, flags=list(red.flags),
-            attempts=attempts, started_at=started,
-        )
+        """Everything the store keeps of a point, taken now (labrun/commit.py)."""
+        return point_row(spec, traces, red, attempts, started, applied=self.applied,
+                         rbw_nm=self.rbw_nm, trace_meta=self.trace_meta,
+                         input_meta=self.input_meta)
 
     def store_point(self, row: dict[str, Any]) -> None:
         """One transaction for a point row (on the writer thread during a run)."""
@@ -854,7 +750,7 @@ class Runner:
         from labrun.store.models import utcnow
         from labrun.writer import PointWriter
 
-        bar = _progress(total, done, self.show_progress)
+        bar = progress_bar(total, done, self.show_progress)
         writer = PointWriter()
         try:
             for spec in specs:
@@ -866,7 +762,7 @@ class Runner:
                 writer.submit(functools.partial(self.store_point, row))
                 done += 1
                 if bar is not None:
-                    bar.set_postfix_str(_postfix(red), refresh=False)
+                    bar.set_postfix_str(postfix(red), refresh=False)
                     bar.update(1)
                 reason = self.stops.update(red.lines)
                 if reason:
@@ -885,76 +781,6 @@ class Runner:
 # ------------------------------------------------------------------------------------------------
 # helpers
 # ------------------------------------------------------------------------------------------------
-def expected_thz(setpoint: dict[str, Any]) -> tuple[float, float] | None:
-    """Frequencies (THz) of tone a and tone b from the setpoint, to guide the reduction."""
-    wl_a, spacing = setpoint.get("wavelength_a_nm"), setpoint.get("spacing_ghz")
-    if wl_a is None or spacing is None:
-        return None
-    f_a = float(nm_to_thz(wl_a))
-    return f_a, f_a + float(spacing) / 1000.0
-
-
-def _check_cap(role: str, power: float, cap: float | None) -> None:
-    """Refuse (SafetyError, never retried) a source power reading above its bench cap."""
-    if cap is not None and power > cap + FLOAT_SLACK:
-        raise SafetyError(f"{role} power reads {power:g} dBm, above the bench cap {cap:g} dBm")
-
-
-def check_tones(trace: Captured) -> None:
-    """Refuse (InstrumentError, retried) a reduction that did not find both tones: a trace
-    without them is not a good point, whatever garbled or truncated it."""
-    red = trace.reduction
-    tones = [ml for ml in getattr(red, "lines", []) if ml.kind == "tone" and ml.detected]
-    if len(tones) < 2 or getattr(red, "spacing_ghz", None) is None:
-        raise InstrumentError(f"{trace.kind} trace: the reduction found {len(tones)} of the 2 "
-                              "tones", role="osa")
-
-
-def _line_dict(line: Any, trace: int = 0) -> dict[str, Any]:
-    """A MeasuredLine as a plain dict for the store, linked to trace number ``trace``."""
-    out = dict(line) if isinstance(line, dict) else dict(vars(line))
-    out["trace"] = trace
-    return out
-
-
-def _jsonable(obj: Any) -> Any:
-    """Tuples to lists, numpy scalars to floats, NaN to None: safe for a JSON column."""
-    if isinstance(obj, dict):
-        return {str(k): _jsonable(v) for k, v in obj.items()}
-    if isinstance(obj, list | tuple):
-        return [_jsonable(v) for v in obj]
-    if hasattr(obj, "item") and callable(obj.item):
-        obj = obj.item()
-    if isinstance(obj, float) and not math.isfinite(obj):
-        return None
-    if isinstance(obj, Path):
-        return str(obj)
-    return obj
-
-
-def _postfix(red: Reduction) -> str:
-    """'tone a -1.2 dBm, low 1 -31.0 dBm' from a reduction, for the progress bar."""
-    parts = []
-    for ml in red.lines:
-        if ml.side == "low" and ml.order <= 1:  # tone a and the first low sideband
-            label = ml.line_id.label()
-            if ml.detected and ml.power_dbm is not None and math.isfinite(ml.power_dbm):
-                parts.append(f"{label} {ml.power_dbm:.1f} dBm")
-            else:
-                parts.append(f"{label} <{ml.upper_limit_dbm:.1f} dBm")
-    return ", ".join(parts)
-
-
-def _progress(total: int, done: int, enabled: bool) -> Any:
-    """A tqdm bar on stderr with ETA, or None."""
-    if not enabled:
-        return None
-    from tqdm import tqdm
-
-    return tqdm(total=total, initial=done, unit="pt", file=sys.stderr, mininterval=0.5,
-                dynamic_ncols=True, leave=True)
-
-
 # ------------------------------------------------------------------------------------------------
 # entry points
 # ------------------------------------------------------------------------------------------------

@@ -1,5 +1,7 @@
-"""Owns the run's fault policy: how often a point is tried, when a fault darkens the bench, how
-long retries go on with the light off, and the watchdog bounding one attempt at a point.
+"""What happens when an instrument (the OSA, a laser) hangs or fails during a run: the fault policy.
+
+Owns how often a point is tried, when a fault darkens the bench, how long retries go on with the
+light off, and the watchdog bounding one attempt at a point.
 
 No light without progress. A fault darkens every source at once (labrun/safe_off.py) when
 ``darkens`` says so: an instrument that stopped answering (``NoAnswerError``: hung or gone, it
