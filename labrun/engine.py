@@ -234,6 +234,7 @@ class Runner:
         self.instruments: Any = None
         self.applied: dict[tuple[str, str], Any] = {}
         self.emitting = False
+        self.guardian: Any = None  # labrun/guardian.py: told before the first switch-on
         self.osa_settings: Any = None
         self.rbw_nm: float | None = None
         self.trace_meta: dict[str, Any] = {}  # the configured OSA settings of the output trace
@@ -507,6 +508,8 @@ class Runner:
 
             read_back_all([p for p in pending.planned if p.op.name == "set_power_dbm"])
         deadline = pending.deadline
+        if self.guardian is not None:  # armed before any output goes on
+            self.guardian.lit(self.run_id)
         on = [*ATTENUATOR_ROLES, *LASER_ROLES]
         for role in on + (["amplifier"] if self.use_amplifier else []):
             adapter = self.role(role)
@@ -811,12 +814,13 @@ def run_plan(plan: Plan, bench: Any, store: Store, *, operator: str | None = Non
              progress: bool = True, traffic_log: Any = None,
              echo: TextIO | None = None,
              estimate_s_per_point: float | None = None,
-             seams: Seams | None = None) -> RunOutcome:
+             seams: Seams | None = None, guardian: bool = False) -> RunOutcome:
     """Run a plan on a bench into the store; returns how it ended (never leaves a source on).
 
     Raises InputError/SafetyError before touching anything when the run may not start.
     ``seams``: what the run calls outside the engine (default: the real instruments and
-    reduction, the monotonic clock and time.sleep).
+    reduction, the monotonic clock and time.sleep). ``guardian``: a watcher process darkens
+    the bench should this process die lit (SIGKILL; labrun/guardian.py), as ``labrun run`` does.
     """
     text = preflight(plan, bench, operator=operator, unattended=unattended,
                      ack_safety=ack_safety, confirm=confirm)
@@ -843,7 +847,7 @@ def run_plan(plan: Plan, bench: Any, store: Store, *, operator: str | None = Non
 
     return _execute(plan, bench, store, None, specs, done=0, policy=policy,
                     progress=progress, traffic_log=traffic_log, first=True, create=create,
-                    estimate=estimate_s_per_point, seams=seams)
+                    estimate=estimate_s_per_point, seams=seams, guardian=guardian)
 
 
 def run_virtual(plan: Plan, bench: Any, store: Store, *, replay_of: int, mode: str,
@@ -901,9 +905,11 @@ def _execute(plan: Plan, bench: Any, store: Store, run_id: int | None,
              progress: bool, traffic_log: Any, first: bool,
              expect_identities: dict[str, str] | None = None, force: bool = False,
              create: Callable[[dict[str, str] | None], int] | None = None,
-             estimate: float | None = None, seams: Seams | None = None) -> RunOutcome:
+             estimate: float | None = None, seams: Seams | None = None,
+             guardian: bool = False) -> RunOutcome:
     """Open, run ``specs``, and close run ``run_id`` under the safe-off guard. Without a
-    ``run_id``, ``create(identities)`` makes the run row once the bench is open."""
+    ``run_id``, ``create(identities)`` makes the run row once the bench is open. ``guardian``:
+    a watcher process darkens the bench if this process dies lit (labrun/guardian.py)."""
     from labrun.store.models import utcnow
 
     preload("labrun.reduce")  # scipy: imported while the bench opens and the first point settles
@@ -917,6 +923,10 @@ def _execute(plan: Plan, bench: Any, store: Store, run_id: int | None,
                     source_readings=seams.source_readings, reduce_trace=seams.reduce_trace,
                     point_bound_s=seams.point_bound_s)
     store.on_fault = runner.store_dark
+    if guardian:  # started now, so it is ready (imports, bench) before the first switch-on
+        from labrun import guardian as watcher
+
+        runner.guardian = watcher.start(bench, store.url)
     start_done = done
     guard.install()
     caught: BaseException | None = None
@@ -951,6 +961,8 @@ def _execute(plan: Plan, bench: Any, store: Store, run_id: int | None,
     try:
         status, reason, error, signum = _classify(caught)
         problems = guard.shutdown()
+        if runner.guardian is not None:  # our own safe-off is over: the watcher leaves
+            runner.guardian.done()
         runner.close()
         runner.flush_traffic_log()
         done = start_done + runner.committed
@@ -1085,7 +1097,8 @@ def resume_run(run_id: int, store: Store, *, bench: Any = None, force: bool = Fa
                operator: str | None = None, unattended: bool = False, ack_safety: bool = False,
                confirm: Callable[[str], bool] | None = None, policy: RetryPolicy | None = None,
                progress: bool = True, traffic_log: Any = None,
-               echo: TextIO | None = None, seams: Seams | None = None) -> RunOutcome:
+               echo: TextIO | None = None, seams: Seams | None = None,
+               guardian: bool = False) -> RunOutcome:
     """Continue a stored run: same plan (hash checked), same instruments, skip stored points.
 
     Resuming emits light again, perhaps hours later with people in the room, so it asks for the
@@ -1124,7 +1137,8 @@ def resume_run(run_id: int, store: Store, *, bench: Any = None, force: bool = Fa
                     f"{len(specs)} to go", data={"force": force, "bench": str(bench.path)})
     return _execute(plan, bench, store, run_id, specs, done=len(done_keys), policy=policy,
                     progress=progress, traffic_log=traffic_log, first=False,
-                    expect_identities=dict(run.identities or {}), force=force, seams=seams)
+                    expect_identities=dict(run.identities or {}), force=force, seams=seams,
+                    guardian=guardian)
 
 
 def process_alive(run: Any) -> bool:

@@ -54,7 +54,7 @@ def test_sigkill_then_resume_gives_the_full_point_set(tmp_path, capsys, db_url):
 
     with VirtualLab(scenario()) as lab:
         plan, bench, db, run_id = _kill_mid_run(tmp_path, lab, db_url)
-        # A killed process cannot switch anything off: 'labrun off' is the remedy.
+        # The guardian watcher darkened the bench; `labrun off` is harmless on top of it.
         assert main(["off", "--bench", str(bench)]) == 0 and dark(lab)
         capsys.readouterr()
         assert main(["resume", str(run_id), "--db", str(db), "--json", "--no-progress",

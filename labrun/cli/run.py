@@ -120,7 +120,8 @@ def cmd_run(args: argparse.Namespace) -> int:
                                unattended=args.unattended, ack_safety=args.ack_safety,
                                confirm=ask_operator, progress=not args.no_progress,
                                traffic_log=traffic_log, echo=sys.stderr,
-                               estimate_s_per_point=estimate_per_point(plan, bench))
+                               estimate_s_per_point=estimate_per_point(plan, bench),
+                               guardian=True)
         finally:
             store.close()
     finally:
@@ -145,7 +146,7 @@ def cmd_resume(args: argparse.Namespace) -> int:
                                  operator=args.operator, unattended=args.unattended,
                                  ack_safety=args.ack_safety, confirm=ask_operator,
                                  progress=not args.no_progress, traffic_log=traffic_log,
-                                 echo=sys.stderr)
+                                 echo=sys.stderr, guardian=True)
         finally:
             if traffic_log is not None:
                 traffic_log.close()

@@ -64,6 +64,7 @@ class EventKind(enum.StrEnum):
     FORCED = "forced"  # resumed on different instruments with --force
     TRAFFIC_LOG = "traffic_log"  # the file the instrument traffic streamed to
     TRANSCRIPT = "transcript"  # the same, under its earlier name (runs stored before the rename)
+    GUARDIAN = "guardian"  # the watcher darkened the bench after the run process died (SIGKILL)
     COMPLETED = "completed"
     STOPPED = "stopped"
     INTERRUPTED = "interrupted"
