@@ -1,4 +1,9 @@
-"""Sweep plans: the TOML model, validation with field paths, and expansion into points.
+"""Sweep plans: ``Plan`` (a validated plan: cross-field validation with field paths, expansion into
+points), ``load_plan`` and ``parse_plan``.
+
+The file's pydantic model is ``labrun.plan_model``; point records, keys and grid arithmetic
+``labrun.plan_expand``; stop conditions ``labrun.stops``; OSA auto-settings ``labrun.osa_auto``.
+Their names stay importable from here.
 
 A plan names a spool, fixed settings and axes (launched power, spacing, pump wavelength,
 polarisation, attenuation), how the axes nest, repeat and interleave reference points, how the OSA
@@ -11,29 +16,55 @@ from __future__ import annotations
 import hashlib
 import math
 import random
-from collections.abc import Iterable, Iterator, Mapping, Sequence
-from dataclasses import dataclass, replace
+from collections.abc import Mapping, Sequence
 from pathlib import Path
-from typing import Annotated, Any, Literal, cast
+from typing import Any, cast
 
 import numpy as np
-from pydantic import BaseModel, ConfigDict, Field, ValidationError
+from pydantic import ValidationError
 
 from labrun.errors import InputError
-from labrun.inputfile import FILE_MODEL_CONFIG, Number, decode, parse_toml, read_bytes
+from labrun.inputfile import decode, parse_toml, read_bytes
+
+# Moved by concern (issue 14); the names stay importable from labrun.plan.
+from labrun.osa_auto import GAUSS_DB as GAUSS_DB
+from labrun.osa_auto import POINT_STEPS as POINT_STEPS
+from labrun.osa_auto import RBW_STEPS_NM as RBW_STEPS_NM
+from labrun.osa_auto import OsaSettings, choose_osa_settings, estimate_sweep_s
+from labrun.osa_auto import _osa_range as _osa_range
+from labrun.osa_auto import op_range as op_range
+from labrun.osa_auto import op_settle as op_settle
+from labrun.osa_auto import osa_sweep_model as osa_sweep_model
+from labrun.osa_auto import sweep_model_s as sweep_model_s
 from labrun.physics.units import nm_to_thz, thz_to_nm
-from labrun.profiles import generic_profile
+from labrun.plan_expand import (
+    ITU_ANCHOR_THZ,
+    ITU_GRIDS_GHZ,
+    Axis,
+    PointSpec,
+    _interleave,
+    _is_number,
+    _snake,
+    _tidy,
+    itu_grid_thz,
+    line_extent_nm,
+    point_key,
+    spacing_nm_to_ghz,
+    wavelength_b_nm,
+)
+from labrun.plan_expand import KEY_FIELDS as KEY_FIELDS
+from labrun.plan_expand import _fmt as _fmt
+from labrun.plan_model import LINE_RANGE_NM as LINE_RANGE_NM
+from labrun.plan_model import MAX_POINTS as MAX_POINTS
+from labrun.plan_model import MAX_VALUES_PER_AXIS as MAX_VALUES_PER_AXIS
+from labrun.plan_model import AxisSpec, PlanFile, StopSpec
+from labrun.plan_model import MetaSpec as MetaSpec
+from labrun.plan_model import OrderSpec as OrderSpec
+from labrun.plan_model import OsaSpec as OsaSpec
+from labrun.plan_model import SpoolSpec as SpoolSpec
+from labrun.plan_model import _Strict as _Strict
 from labrun.resources import find_file
-
-# ITU-T G.694.1 (DWDM frequency grid): anchor 193.1 THz, fixed grids of 12.5/25/50/100 GHz.
-ITU_ANCHOR_THZ = 193.1
-ITU_GRIDS_GHZ = (12.5, 25.0, 50.0, 100.0)
-
-MAX_VALUES_PER_AXIS = 10_000
-MAX_POINTS = 1_000_000
-# Where the lines of a plan (tones and every requested sideband) may lie: what silica fibre
-# carries and grating OSAs cover (common practice).
-LINE_RANGE_NM = (600.0, 2500.0)
+from labrun.stops import StopCondition, StopWatch
 
 # Plan variables: name -> (kind, low, high, unit). kind: "float", "int", "triple", "stokes".
 # Bounds are sanity limits against typos; the bench caps and profile ranges are checked later.
@@ -79,311 +110,7 @@ DRIVES: dict[str, tuple[str, ...]] = {
     "laser_b_dbm": ("laser_b_dbm",),
 }
 
-# Setpoint names that identify a point (the key); wavelength_b_nm is derived and left out.
-KEY_FIELDS = (
-    "wavelength_a_nm", "spacing_ghz", "power_a_dbm", "power_b_dbm", "laser_a_dbm",
-    "laser_b_dbm", "attenuation_a_db", "attenuation_b_db", "pol_angles_deg", "pol_stokes",
-)
-
-# RBW values a grating OSA offers, 1-2-5 sequence in nm (common practice).
-RBW_STEPS_NM = (0.002, 0.005, 0.01, 0.02, 0.05, 0.1, 0.2, 0.5, 1.0, 2.0)
-# dB per (d/FWHM)^2 of a Gaussian filter: 10 log10(e) * 4 ln 2 (mathematical fact).
-GAUSS_DB = 10.0 * math.log10(math.e) * 4.0 * math.log(2.0)
-# Sample counts labrun offers (its own choice): odd, so a sample lands on the centre, and 2^n + 1,
-# so each step halves the sample spacing of the one before and keeps every earlier sample.
-POINT_STEPS = tuple(2**n + 1 for n in range(5, 19))  # 33 ... 262145
-
-
-# ----------------------------------------------------------------------------- file structure
-
-
-class _Strict(BaseModel):
-    """Base for plan tables: unknown keys are errors (catches typos with their field path)."""
-
-    model_config = ConfigDict(**FILE_MODEL_CONFIG, frozen=True)
-
-
-class MetaSpec(_Strict):
-    """[plan]: what is measured and how many sideband orders matter."""
-
-    name: str = Field(min_length=1)
-    spool: str = Field(min_length=1)
-    note: str = ""
-    orders: int = Field(3, ge=1, le=10)
-    amplifier: bool = False
-
-
-class AxisSpec(_Strict):
-    """[axes.NAME]: one axis as values, linspace/logspace (num) or start/stop/step."""
-
-    values: list[Any] | None = None
-    start: float | None = None
-    stop: float | None = None
-    step: float | None = None
-    num: int | None = Field(None, ge=1, le=MAX_VALUES_PER_AXIS)  # bounded before allocation
-    scale: Literal["linear", "log"] = "linear"
-    settle_s: float = Field(0.0, ge=0.0, le=3600.0)
-    paddle: int | None = Field(None, ge=1, le=3)
-    base: Annotated[tuple[Number, Number, Number] | None, Field(strict=False)] = None
-    plane: Literal["s1s2", "s1s3", "s2s3"] = "s1s2"
-
-
-class OrderSpec(_Strict):
-    """[order]: nesting (outermost first), zipped groups, snake, repeats, shuffle, references."""
-
-    nesting: list[str] | None = None
-    zip: list[list[str]] = []
-    snake: bool = False
-    repeats: int = Field(1, ge=1, le=1000)
-    repeat_mode: Literal["sweep", "point"] = "sweep"
-    shuffle_seed: int | None = None
-    reference_every: int | None = Field(None, ge=1)
-    reference: dict[str, Any] = {}
-
-
-class OsaSpec(_Strict):
-    """[osa]: explicit values override the automatic choice field by field."""
-
-    center_nm: float | None = Field(None, ge=LINE_RANGE_NM[0], le=LINE_RANGE_NM[1])
-    span_nm: float | None = Field(None, gt=0, le=LINE_RANGE_NM[1] - LINE_RANGE_NM[0])
-    rbw_nm: float | None = Field(None, ge=0.001, le=10.0)  # finer than any grating OSA: refused
-    points: int | None = Field(None, ge=3, le=POINT_STEPS[-1])
-    margin: float = Field(0.25, ge=0.0, le=10.0)
-    min_margin_nm: float = Field(0.5, ge=0.0, le=50.0)
-    samples_per_rbw: float = Field(5.0, ge=5.0, le=1000.0)
-    skirt_db: float = Field(60.0, gt=0.0, le=200.0)
-    sweep_s: float | None = Field(None, ge=0.0, le=3600.0)
-    capture_input: bool = False
-    input_every: int = Field(1, ge=1, le=MAX_POINTS)
-
-
-class StopSpec(_Strict):
-    """[[stop]]: a condition on the reduced lines that ends the run early."""
-
-    when: Literal["sideband_above", "line_above", "tone_snr_below"]
-    dbm: float | None = Field(None, ge=-200.0, le=60.0)  # beyond any OSA's display range
-    db: float | None = Field(None, ge=0.0, le=200.0)  # an SNR threshold
-    order: int | None = Field(None, ge=1, le=10)
-    side: Literal["low", "high", "any"] = "any"
-    tone: Literal["a", "b", "any"] = "any"
-    consecutive: int = Field(1, ge=1, le=MAX_POINTS)
-
-
-class SpoolSpec(_Strict):
-    """[spool]: what is known of the spool named in [plan] (recorded on its spool row, optional)."""
-
-    length_km: float | None = Field(None, gt=0.0, le=1.0e5)
-    loss_db_per_km: float | None = Field(None, ge=0.0, le=100.0)
-    fibre_type: str | None = Field(None, min_length=1, max_length=100)
-    note: str | None = None
-
-    def known(self) -> dict[str, Any]:
-        """The fields given in the file (what a new or incomplete spool row takes)."""
-        return {k: v for k, v in self.model_dump().items() if v is not None}
-
-
-class PlanFile(_Strict):
-    """The whole plan file."""
-
-    plan: MetaSpec
-    spool: SpoolSpec = SpoolSpec()
-    fixed: dict[str, Any] = {}
-    axes: dict[str, AxisSpec] = {}
-    order: OrderSpec = OrderSpec()
-    osa: OsaSpec = OsaSpec()
-    stop: list[StopSpec] = []
-
-
 # ----------------------------------------------------------------------------- public records
-
-
-@dataclass(frozen=True)
-class PointSpec:
-    """One point of a plan: canonical setpoint, stable key (for resume), repeat and reference flag.
-
-    setpoint names: power_a_dbm, power_b_dbm (launched into the spool), spacing_ghz,
-    wavelength_a_nm, wavelength_b_nm (derived), pol_angles_deg or pol_stokes (tuples),
-    attenuation_a_db / attenuation_b_db and laser_a_dbm / laser_b_dbm when the plan sets them.
-    """
-
-    index: int
-    key: str
-    setpoint: dict[str, Any]
-    repeat: int = 0
-    is_reference: bool = False
-
-
-@dataclass(frozen=True)
-class Axis:
-    """One validated axis: plan name, values (floats or tuples), settle time, setpoint names."""
-
-    name: str
-    values: tuple[Any, ...]
-    settle_s: float
-    drives: tuple[str, ...]
-
-
-@dataclass(frozen=True)
-class StopCondition:
-    """A stop condition; ``reason(lines)`` says why it fires on one point's lines, else None."""
-
-    when: str
-    threshold: float
-    order: int | None = None
-    side: str = "any"
-    tone: str = "any"
-    consecutive: int = 1
-
-    def describe(self) -> str:
-        """Human text, e.g. 'a sideband (high 1) above 5 dBm'."""
-        if self.when == "tone_snr_below":
-            which = "either tone" if self.tone == "any" else f"tone {self.tone}"
-            text = f"SNR of {which} below {self.threshold:g} dB"
-        else:
-            what = "a sideband" if self.when == "sideband_above" else "any line"
-            sel = []
-            if self.side != "any":
-                sel.append(self.side)
-            if self.order is not None:
-                sel.append(f"order {self.order}")
-            text = f"{what}{' (' + ' '.join(sel) + ')' if sel else ''} above {self.threshold:g} dBm"
-        if self.consecutive > 1:
-            text += f" on {self.consecutive} consecutive points"
-        return text
-
-    def reason(self, lines: Iterable[Any]) -> str | None:
-        """Why this condition fires on one point's lines (dicts or objects), or None."""
-        for line in lines:
-            kind, side, order = _get(line, "kind"), _get(line, "side"), _get(line, "order")
-            power, detected = _get(line, "power_dbm"), _get(line, "detected", True)
-            if self.when == "tone_snr_below":
-                if kind != "tone" or (self.tone != "any" and side != _TONE_SIDE[self.tone]):
-                    continue
-                snr = _get(line, "snr_db")
-                if not detected or snr is None or snr < self.threshold:
-                    label = "tone a" if side == "low" else "tone b"
-                    shown = "undetected" if snr is None or not detected else f"{snr:.1f} dB"
-                    return f"{label} SNR {shown} < {self.threshold:g} dB"
-                continue
-            if self.when == "sideband_above" and kind != "sideband":
-                continue
-            if self.side != "any" and side != self.side:
-                continue
-            if self.order is not None and order != self.order:
-                continue
-            if detected and power is not None and power > self.threshold:
-                return f"{kind} {side} {order} at {power:.2f} dBm > {self.threshold:g} dBm"
-        return None
-
-
-_TONE_SIDE = {"a": "low", "b": "high"}
-
-
-def _get(obj: Any, name: str, default: Any = None) -> Any:
-    """Attribute or mapping item, so stop conditions accept dicts and dataclasses alike."""
-    if isinstance(obj, Mapping):
-        return obj.get(name, default)
-    return getattr(obj, name, default)
-
-
-class StopWatch:
-    """Tracks stop conditions over successive points (handles ``consecutive``)."""
-
-    def __init__(self, conditions: Sequence[StopCondition]):
-        self.conditions = list(conditions)
-        self._streak = [0] * len(self.conditions)
-
-    def update(self, lines: Iterable[Any]) -> str | None:
-        """Feed one point's lines; returns the reason to stop, or None to go on."""
-        lines = list(lines)
-        for i, cond in enumerate(self.conditions):
-            why = cond.reason(lines)
-            self._streak[i] = self._streak[i] + 1 if why else 0
-            if why and self._streak[i] >= cond.consecutive:
-                return f"stop condition {i + 1} ({cond.describe()}): {why}"
-        return None
-
-
-@dataclass(frozen=True)
-class OsaSettings:
-    """OSA settings for a plan, with the reason for each choice in plain text.
-
-    When the pump wavelength varies, ``per_point_center`` is true and ``for_point`` re-centres.
-    """
-
-    center_nm: float
-    span_nm: float
-    rbw_nm: float
-    points: int
-    reason: str
-    per_point_center: bool = False
-    warnings: tuple[str, ...] = ()
-    sweep_estimate_s: float = 0.0
-    orders: int = 3
-
-    def for_point(self, setpoint: Mapping[str, Any]) -> OsaSettings:
-        """Settings for one point: re-centred on its lines when the centre follows the pump."""
-        if not self.per_point_center:
-            return self
-        lo, hi = line_extent_nm(setpoint["wavelength_a_nm"], setpoint["spacing_ghz"], self.orders)
-        return replace(self, center_nm=round((lo + hi) / 2.0, 4))
-
-    def to_dict(self) -> dict[str, Any]:
-        """JSON-friendly form."""
-        return {
-            "center_nm": self.center_nm, "span_nm": self.span_nm, "rbw_nm": self.rbw_nm,
-            "points": self.points, "per_point_center": self.per_point_center,
-            "sweep_estimate_s": self.sweep_estimate_s, "reason": self.reason,
-            "warnings": list(self.warnings),
-        }
-
-
-# ----------------------------------------------------------------------------- grid and lines
-
-
-def itu_grid_thz(n: int, grid_ghz: float = 50.0) -> float:
-    """Frequency of channel n on the ITU-T G.694.1 grid: 193.1 THz + n * grid."""
-    if grid_ghz not in ITU_GRIDS_GHZ:
-        raise ValueError(f"grid_ghz must be one of {ITU_GRIDS_GHZ}")
-    return round(ITU_ANCHOR_THZ + n * grid_ghz / 1000.0, 9)
-
-
-def spacing_nm_to_ghz(spacing_nm: float, wavelength_a_nm: float) -> float:
-    """Tone spacing in GHz when tone b sits ``spacing_nm`` below tone a in wavelength (exact)."""
-    return float(nm_to_thz(wavelength_a_nm - spacing_nm) - nm_to_thz(wavelength_a_nm)) * 1000.0
-
-
-def wavelength_b_nm(wavelength_a_nm: float, spacing_ghz: float) -> float:
-    """Wavelength of tone b, which sits ``spacing_ghz`` above tone a in frequency."""
-    return float(thz_to_nm(nm_to_thz(wavelength_a_nm) + spacing_ghz / 1000.0))
-
-
-def line_extent_nm(wavelength_a_nm: float, spacing_ghz: float, orders: int) -> tuple[float, float]:
-    """Wavelengths (low, high) of the outermost lines: high sideband n and low sideband n."""
-    f_a = float(nm_to_thz(wavelength_a_nm))
-    d = spacing_ghz / 1000.0
-    return float(thz_to_nm(f_a + (orders + 1) * d)), float(thz_to_nm(f_a - orders * d))
-
-
-def estimate_sweep_s(span_nm: float, rbw_nm: float, points: int) -> float:
-    """Rough grating-OSA sweep time: 0.2 s overhead + 0.1 ms per sample (from memory, rough)."""
-    del span_nm, rbw_nm  # a finer RBW needs no more time per sample at normal sensitivity
-    return round(0.2 + 1e-4 * points, 3)
-
-
-def osa_sweep_model(bench: Any) -> Any:
-    """The bench OSA profile's ``[trace.sweep_time]`` model, or None."""
-    spec = getattr(bench, "instruments", {}).get("osa") if bench is not None else None
-    trace = getattr(getattr(spec, "profile", None), "trace", None)
-    return getattr(trace, "sweep_time", None)
-
-
-def sweep_model_s(bench: Any, span_nm: float, rbw_nm: float, points: int) -> float:
-    """Seconds per sweep: the bench OSA profile's model when it has one, else the rough guess."""
-    model = osa_sweep_model(bench)
-    if model is not None:
-        return round(float(model.seconds(span_nm, rbw_nm, points)), 4)
-    return estimate_sweep_s(span_nm, rbw_nm, points)
 
 
 # ----------------------------------------------------------------------------- loading
@@ -858,186 +585,6 @@ class Plan:
             "shuffle_seed": o.shuffle_seed, "reference_every": o.reference_every,
             "stop_conditions": [c.describe() for c in self.stop_conditions],
         }
-
-
-# ----------------------------------------------------------------------------- helpers
-
-
-def point_key(setpoint: Mapping[str, Any], repeat: int, is_reference: bool) -> str:
-    """Stable identity of a point: its setpoint values, repeat number and reference flag."""
-    parts = ["ref" if is_reference else "pt"]
-    for name in KEY_FIELDS:
-        if name in setpoint:
-            parts.append(f"{name}={_fmt(setpoint[name])}")
-    parts.append(f"r{repeat}")
-    return "|".join(parts)
-
-
-def _fmt(value: Any) -> str:
-    """Canonical text of a setpoint value (10 significant digits, no float noise)."""
-    if isinstance(value, (tuple, list)):
-        return ",".join(_fmt(v) for v in value)
-    if isinstance(value, float):
-        text = f"{value:.10g}"
-        return "0" if text == "-0" else text
-    return str(value)
-
-
-def _tidy(v: float) -> float:
-    """Round away float noise (12 significant digits) so keys and JSON stay clean."""
-    return float(f"{v:.12g}")
-
-
-def _is_number(v: Any) -> bool:
-    """True for int/float (not bool) and finite."""
-    return isinstance(v, (int, float)) and not isinstance(v, bool) and math.isfinite(v)
-
-
-def _snake(sizes: Sequence[int]) -> Iterator[tuple[int, ...]]:
-    """Reflected (boustrophedon) order: between neighbours only one level index moves by one."""
-    if not sizes:
-        yield ()
-        return
-    inner = list(_snake(sizes[1:]))
-    for i in range(sizes[0]):
-        for rest in (inner if i % 2 == 0 else reversed(inner)):
-            yield (i, *rest)
-
-
-def _interleave(regular: list[tuple[dict[str, Any], int, bool]], ref: dict[str, Any],
-                every: int) -> list[tuple[dict[str, Any], int, bool]]:
-    """Reference point first, after every ``every`` regular points, and last."""
-    out: list[tuple[dict[str, Any], int, bool]] = []
-    n_ref = 0
-    for i, item in enumerate(regular):
-        if i % every == 0:
-            out.append((dict(ref), n_ref, True))
-            n_ref += 1
-        out.append(item)
-    out.append((dict(ref), n_ref, True))
-    return out
-
-
-# ----------------------------------------------------------------------------- OSA choice
-
-
-def op_range(bench: Any, role: str, op: str) -> tuple[float, float] | None:
-    """Allowed value range of a profile operation on the bench, or None if unknown."""
-    if bench is None:
-        return None
-    spec = getattr(bench, "instruments", {}).get(role)
-    if spec is None:
-        return None
-    operation = getattr(spec.profile, "operations", {}).get(op)
-    rng = getattr(operation, "range", None)
-    return (float(rng[0]), float(rng[1])) if rng else None
-
-
-def _osa_range(bench: Any, op: str) -> tuple[float, float]:
-    """The bench OSA's range for ``op``; without one (no bench, or the profile maps no such
-    setting), the generic OSA profile's."""
-    rng = op_range(bench, "osa", op) or generic_profile("osa").op(op).range
-    assert rng is not None  # the generic profile ranges every setting (profiles refuse less)
-    return (float(rng[0]), float(rng[1]))
-
-
-def op_settle(bench: Any, role: str, op: str) -> float:
-    """Settle time of a profile operation (0 when unknown)."""
-    spec = getattr(bench, "instruments", {}).get(role) if bench is not None else None
-    if spec is None:
-        return 0.0
-    operation = getattr(spec.profile, "operations", {}).get(op)
-    return float(getattr(operation, "settle_s", 0.0) or 0.0)
-
-
-def choose_osa_settings(plan: Plan, bench: Any = None) -> OsaSettings:
-    """Span covering every requested order with margin, RBW <= spacing/4, >= 5 samples per RBW."""
-    spec, orders = plan.osa, plan.orders
-    pts = plan.points()
-    extents = [line_extent_nm(p.setpoint["wavelength_a_nm"], p.setpoint["spacing_ghz"], orders)
-               for p in pts]
-    per_point = len({p.setpoint["wavelength_a_nm"] for p in pts}) > 1 and spec.center_nm is None
-    if per_point:
-        width = max(hi - lo for lo, hi in extents)
-        first = extents[0]
-        center = (first[0] + first[1]) / 2.0
-        cover = f"the widest point's lines ({width:.3f} nm, low {orders} .. high {orders})"
-    else:
-        lo, hi = min(e[0] for e in extents), max(e[1] for e in extents)
-        width, center = hi - lo, (lo + hi) / 2.0
-        cover = f"low {orders} .. high {orders} of every point ({lo:.3f}-{hi:.3f} nm)"
-    warnings: list[str] = []
-    reasons: list[str] = []
-
-    if spec.center_nm is not None:
-        center = spec.center_nm
-        reasons.append(f"centre {center:g} nm as given")
-        lo, hi = min(e[0] for e in extents), max(e[1] for e in extents)
-        width = 2 * max(center - lo, hi - center)
-    else:
-        follow = " (follows the pump at each point)" if per_point else ""
-        reasons.append(f"centre {center:.4f} nm = middle of the lines{follow}")
-
-    margin = max(spec.margin * width, spec.min_margin_nm)
-    need_span = width + 2 * margin
-    if spec.span_nm is not None:
-        span = spec.span_nm
-        reasons.append(f"span {span:g} nm as given")
-        if span < width:
-            warnings.append(f"span {span:g} nm does not cover {cover}: needs >= {width:.3f} nm")
-    else:
-        span = math.ceil(need_span * 10 - 1e-9) / 10.0
-        reasons.append(f"span {span:g} nm covers {cover} plus {margin:.2f} nm margin each side")
-
-    # RBW must resolve the closest lines: <= spacing/4 at the closest spacing (in nm), and fine
-    # enough that a Gaussian RBW filter's skirt midway between lines is skirt_db down, so the floor
-    # read there is the OSA's and not the tones' (Gaussian: -10 log10(e) 4 ln2 (d/FWHM)^2 dB).
-    sp_nm = min(p.setpoint["wavelength_a_nm"] - p.setpoint["wavelength_b_nm"] for p in pts)
-    sp_ghz = min(p.setpoint["spacing_ghz"] for p in pts)
-    skirt_limit = sp_nm / (2.0 * math.sqrt(spec.skirt_db / GAUSS_DB))
-    limit = min(sp_nm / 4.0, skirt_limit)
-    why_limit = (f"spacing/4 = {sp_nm / 4:.4f} nm" if limit == sp_nm / 4.0 else
-                 f"{limit:.4f} nm (spacing/4 = {sp_nm / 4:.4f} nm, tightened so a Gaussian RBW "
-                 f"skirt is {spec.skirt_db:g} dB down midway between lines)")
-    rbw_rng = _osa_range(bench, "set_rbw_nm")
-    if spec.rbw_nm is not None:
-        rbw = spec.rbw_nm
-        reasons.append(f"RBW {rbw:g} nm as given")
-        if rbw > sp_nm / 4.0 * (1 + 1e-9):
-            warnings.append(f"RBW {rbw:g} nm exceeds spacing/4 = {sp_nm / 4:.4f} nm "
-                            f"({sp_ghz:g} GHz): neighbouring lines may merge")
-    else:
-        allowed = [r for r in RBW_STEPS_NM if r <= limit * (1 + 1e-9) and
-                   rbw_rng[0] - 1e-12 <= r <= rbw_rng[1] + 1e-12]
-        if allowed:
-            rbw = allowed[-1]
-            reasons.append(f"RBW {rbw:g} nm = largest 1-2-5 step <= {why_limit} "
-                           f"(closest spacing {sp_ghz:g} GHz = {sp_nm:.4f} nm)")
-        else:
-            rbw = rbw_rng[0]
-            reasons.append(f"RBW {rbw:g} nm = the OSA's finest")
-            warnings.append(f"the OSA's finest RBW {rbw:g} nm exceeds {why_limit} "
-                            f"({sp_ghz:g} GHz): neighbouring lines may merge")
-
-    pts_rng = _osa_range(bench, "set_points")
-    need_pts = math.ceil(spec.samples_per_rbw * span / rbw) + 1
-    if spec.points is not None:
-        n = spec.points
-        reasons.append(f"{n} samples as given")
-    else:
-        fits = [p for p in POINT_STEPS if p >= need_pts and pts_rng[0] <= p <= pts_rng[1]]
-        n = fits[0] if fits else int(pts_rng[1])
-        reasons.append(f"{n} samples = smallest usual count >= {need_pts} "
-                       f"({spec.samples_per_rbw:g} per RBW)")
-    per_rbw = (n - 1) * rbw / span
-    reasons.append(f"{per_rbw:.1f} samples per RBW")
-    if per_rbw < 5 - 1e-9:
-        warnings.append(f"only {per_rbw:.1f} samples per RBW (< 5): peak powers will be low")
-    sweep = spec.sweep_s if spec.sweep_s is not None else sweep_model_s(bench, span, rbw, n)
-    sweep += op_settle(bench, "osa", "sweep")
-    return OsaSettings(center_nm=round(center, 4), span_nm=round(span, 4), rbw_nm=rbw, points=n,
-                       reason="; ".join(reasons), per_point_center=per_point,
-                       warnings=tuple(warnings), sweep_estimate_s=round(sweep, 4), orders=orders)
 
 
 __all__ = [
