@@ -68,8 +68,8 @@ def test_gamma_and_visibility_from_pol_stokes() -> None:
     assert res["gamma_bessel"].value == pytest.approx(GAMMA, rel=1e-4)
     assert res["gamma_small_signal"].value == pytest.approx(GAMMA, rel=5e-3)  # small-signal cut
     assert res["pol_visibility"].value == pytest.approx(1.0, abs=1e-3)
-    # extinction of the first sideband between 0 and 165 degrees: 1/cos^2(82.5 deg)^... in the
-    # small-signal limit the sideband follows c, so about 10 log10(1/cos^2(82.5)) = 17.7 dB
+    # extinction of the first sideband between 0 and 165 degrees: in the small-signal limit the
+    # sideband follows c = cos^2(theta/2), so about 10 log10(1/cos^2(82.5 deg)) = 17.7 dB
     expected = 10 * math.log10(1 / math.cos(math.radians(82.5)) ** 2)
     assert res["pol_extinction_db"].value == pytest.approx(expected, abs=0.1)
     assert math.isfinite(res["pol_extinction_db"].stderr)
