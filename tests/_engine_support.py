@@ -105,11 +105,13 @@ def wait_for(pred: Callable[[], bool], timeout: float, step: float = 0.01) -> fl
     return None
 
 
-def labrun_process(*args: str, cwd: Path) -> subprocess.Popen:
-    """Start ``labrun ARGS`` as a separate Python process (own signal handling)."""
+def labrun_process(*args: str, cwd: Path, new_session: bool = False) -> subprocess.Popen:
+    """Start ``labrun ARGS`` as a separate Python process (own signal handling); with
+    ``new_session`` it leads its own process group (which a test may then kill whole)."""
     env = dict(os.environ, PYTHONUNBUFFERED="1")
     return subprocess.Popen([sys.executable, "-m", "labrun", *args], cwd=cwd, env=env,
-                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
+                            start_new_session=new_session)
 
 
 @contextlib.contextmanager

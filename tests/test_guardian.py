@@ -13,7 +13,18 @@ import os
 import signal
 import time
 
-from _engine_support import count_points, dark, run_in_process, scenario, wait_for
+from _engine_support import (
+    OPERATOR,
+    count_points,
+    dark,
+    labrun_process,
+    long_powers,
+    run_in_process,
+    scenario,
+    wait_for,
+    write_bench,
+    write_plan,
+)
 
 from labrun.guardian import DONE, LIT, wait_for_end
 from labrun.store import open_store
@@ -43,6 +54,56 @@ def test_sigkill_with_the_light_on_is_dark_within_1_s(tmp_path):
         stored = count_points(db)
         time.sleep(0.3)
         assert count_points(db) == stored and dark(lab)  # it switched nothing back on
+        store.close()
+
+
+def test_sigkill_of_the_whole_process_group_is_dark_within_1_s(tmp_path):
+    """The watcher leads its own session: a kill of the run's process group misses it."""
+    with VirtualLab(scenario()) as lab:
+        plan = write_plan(tmp_path, long_powers(3000))
+        bench = write_bench(lab, tmp_path)
+        db = tmp_path / "runs.db"
+        proc = labrun_process("run", str(plan), "--bench", str(bench), "--db", str(db),
+                              "--unattended", "--operator", OPERATOR, "--ack-safety",
+                              "--no-progress", cwd=tmp_path, new_session=True)
+        try:
+            assert wait_for(lambda: count_points(db) >= 3, 60) is not None
+            assert not lab.sources_off()
+            t_kill = time.monotonic()
+            os.killpg(proc.pid, signal.SIGKILL)
+            waited = wait_for(lambda: dark(lab), OFF_WITHIN_S, step=0.005)
+            elapsed = time.monotonic() - t_kill
+            assert waited is not None and elapsed <= OFF_WITHIN_S, elapsed
+        finally:
+            if proc.poll() is None:
+                proc.kill()
+            proc.communicate(timeout=30)
+        assert proc.returncode == -signal.SIGKILL
+
+
+def test_sigkill_of_a_resumed_run_is_dark_within_1_s(tmp_path):
+    with VirtualLab(scenario()) as lab:
+        with run_in_process(lab, tmp_path, 3000, min_points=3) as (_, _, _, db):
+            pass  # leaving kills it (the watcher darkens)
+        before = count_points(db)
+        run_id = open_store(db).latest_run_id()
+        proc = labrun_process("resume", str(run_id), "--db", str(db), "--unattended",
+                              "--operator", OPERATOR, "--ack-safety", "--no-progress",
+                              cwd=tmp_path)
+        try:
+            assert wait_for(lambda: count_points(db) >= before + 3, 60) is not None
+            assert not lab.sources_off()
+            t_kill = time.monotonic()
+            proc.send_signal(signal.SIGKILL)
+            waited = wait_for(lambda: dark(lab), OFF_WITHIN_S, step=0.005)
+            elapsed = time.monotonic() - t_kill
+            assert waited is not None and elapsed <= OFF_WITHIN_S, elapsed
+        finally:
+            if proc.poll() is None:
+                proc.kill()
+            proc.communicate(timeout=30)
+        store = open_store(db)
+        assert len(store.events(run_id, ["guardian"])) == 2  # the run's death, the resume's
         store.close()
 
 
