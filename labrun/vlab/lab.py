@@ -23,10 +23,10 @@ from labrun.profiles import generic_profile_name
 from labrun.roles import ROLE_KINDS, SOURCE_ROLES
 from labrun.vlab.faults import FaultInjector
 from labrun.vlab.scenario import Scenario, as_scenario
-from labrun.vlab.scpi_server import (
+from labrun.vlab.scpi_server import InstrumentServer
+from labrun.vlab.siminstruments import (
     INSTRUMENT_CLASSES,
     AttenuatorInstrument,
-    InstrumentServer,
     SimInstrument,
     speak_dialect,
 )

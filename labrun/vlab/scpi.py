@@ -2,7 +2,7 @@
 nodes and numeric suffixes, ``;``-separated commands, parameters, and the error queue.
 
 Follows SCPI-1999 vol. 1 (command syntax, error codes) and IEEE 488.2 (common commands, event
-status register). The command tables themselves live in labrun.vlab.scpi_server.
+status register). The command tables themselves live in labrun.vlab.siminstruments.
 """
 
 from __future__ import annotations
