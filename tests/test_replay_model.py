@@ -109,7 +109,11 @@ def test_replay_against_a_spool_with_another_gamma_is_inconsistent_naming_gamma(
     _, db, scenario, _ = night
     code, out = _replay(capsys, db, "--scenario", str(scenario), "--spool", "HNLF-C09")
     assert code == 1 and out["verdict"] == "inconsistent"
-    assert out["patterns"] == ["gamma"] and "gamma" in out["reason"]
+    # names gamma; the measured night has the virtual lab's laser drifts on, and how far they
+    # move between the reference repeats depends on how many commands the run sent (more under
+    # load, at time scale 0), so a "drift" may be named beside it
+    assert "gamma" in out["patterns"] and set(out["patterns"]) <= {"gamma", "drift"}
+    assert "gamma" in out["reason"]
     # gamma 11 against 7.5 /(W km): first sidebands ~ gamma^2, 20 log10(11/7.5) = 3.33 dB
     # (small-signal FWM, Inoue 1992), the tones unchanged
     for key in ("sideband_low_1", "sideband_high_1"):
