@@ -22,6 +22,7 @@ import numpy as np
 from pyvisa import constants
 from pyvisa.typing import VISASession
 
+from labrun.blockframe import build_block
 from labrun.engine import Captured, RetryPolicy, Runner
 from labrun.plan import Plan, PointSpec
 from labrun.trafficlog import TrafficLog, TrafficLogEntry, split_units
@@ -153,8 +154,7 @@ class DryRunLibrary(TrafficReplayLibrary):
         if trace.format != "real32" or ascii_set:
             return ",".join(f"{v:.6f}" for v in data).encode()
         body = data.astype("<f4" if trace.byte_order == "little" else ">f4").tobytes()
-        size = str(len(body)).encode()
-        return b"#" + str(len(size)).encode() + size + body
+        return build_block(body)  # IEEE 488.2 definite length
 
 
 class _NullStore:

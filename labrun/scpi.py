@@ -34,6 +34,7 @@ from pyvisa.errors import VisaIOError
 from pyvisa.resources import MessageBasedResource
 from pyvisa.util import from_ascii_block, from_ieee_block
 
+from labrun.blockframe import body_length, length_digits, strip_termination
 from labrun.errors import InputError, InstrumentError
 from labrun.trafficlog import Direction, TrafficLog, split_units
 
@@ -564,15 +565,9 @@ class ScpiSession:
         """
         res = self._live()
         head = head + res.read_bytes(2 - len(head))
-        if head[:1] != b"#" or not head[1:2].isdigit() or head[1:2] == b"0":
-            raise InstrumentError(f"expected a definite-length block, got {head!r}",
-                                  role=self.role, resource=self.resource)
-        digits = res.read_bytes(int(head[1:2]))
-        if not digits.isdigit():
-            raise InstrumentError(f"bad block length {digits!r}", role=self.role,
-                                  resource=self.resource)
+        digits = res.read_bytes(self._frame(length_digits, head))
         term = (self.read_termination or "").encode("ascii") if last else b""
-        size = int(digits) + len(term)
+        size = self._frame(body_length, digits) + len(term)
         res.set_visa_attribute(constants.ResourceAttribute.termchar_enabled, constants.VI_FALSE)
         try:
             body = res.read_bytes(size, chunk_size=max(size, 1))
@@ -580,13 +575,18 @@ class ScpiSession:
             if self.read_termination:
                 res.set_visa_attribute(constants.ResourceAttribute.termchar_enabled,
                                        constants.VI_TRUE)
-        if term and not body.endswith(term):
-            raise InstrumentError("block not followed by the read termination",
-                                  role=self.role, resource=self.resource)
-        block = head + digits + body[:len(body) - len(term)]
+        block = head + digits + self._frame(strip_termination, body, term)
         self._last_block = block
         return np.asarray(from_ieee_block(block, datatype="f", is_big_endian=big_endian,
                                           container=_NDARRAY))
+
+    def _frame(self, check: Callable[..., T], *args: Any) -> T:
+        """One block framing check (labrun/blockframe.py); its ValueError as this instrument's
+        InstrumentError."""
+        try:
+            return check(*args)
+        except ValueError as exc:
+            raise InstrumentError(str(exc), role=self.role, resource=self.resource) from None
 
     def setting_then_block(self, cmd: str, queries: list[str] | tuple[str, ...], block_query: str,
                            byte_order: str = "little") -> tuple[list[str], np.ndarray]:

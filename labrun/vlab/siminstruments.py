@@ -17,6 +17,7 @@ import time
 
 import numpy as np
 
+from labrun.blockframe import build_block
 from labrun.profiles import generic_profile
 from labrun.vlab.faults import FaultInjector
 from labrun.vlab.scpi import (
@@ -507,8 +508,7 @@ class OsaInstrument(SimInstrument):
             return self.ascii_separator.join(head + [f"{v:.6f}" if axis == "x" else f"{v:.3f}"
                                                      for v in values])
         body = values.astype("<f4" if osa.little_endian else ">f4").tobytes()
-        length = str(len(body))
-        return f"#{len(length)}{length}".encode("ascii") + body  # IEEE 488.2 definite length
+        return build_block(body)  # IEEE 488.2 definite length
 
 
 class PowerMeterInstrument(SimInstrument):
