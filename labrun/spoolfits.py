@@ -154,8 +154,9 @@ def _bench_terms(bench_text: str | None) -> tuple[Any, Any]:
             Polarisation.model_validate(data.get("polarisation", {})))
 
 
-def _spool_of(store: Store, run_ids: list[int]) -> Spool:
-    """The one spool the runs were measured on (InputError: unknown run, mixed or no spool)."""
+def _spool_of(store: Store, run_ids: list[int]) -> tuple[Spool, str | None]:
+    """The one spool the runs were measured on, and the first run's stored bench text
+    (InputError: unknown run, mixed or no spool)."""
     with store.session() as s:
         runs = {r.id: r for r in s.scalars(select(Run).where(Run.id.in_(run_ids)))}
         missing = [r for r in run_ids if r not in runs]
@@ -171,7 +172,8 @@ def _spool_of(store: Store, run_ids: list[int]) -> Spool:
             raise InputError(f"the runs are of different spools ({', '.join(labels)}): fit one "
                              "spool at a time", field="RUN_ID")
         spool = s.get(Spool, spool_ids.pop())
-    return spool
+        bench_text = runs[run_ids[0]].bench_text
+    return spool, bench_text
 
 
 def fit_runs(store: Store, run_ids: list[int], *, save: bool = True) -> FitRecord:
@@ -180,7 +182,7 @@ def fit_runs(store: Store, run_ids: list[int], *, save: bool = True) -> FitRecor
     from labrun.queries import run_points
 
     run_ids = list(dict.fromkeys(int(r) for r in run_ids))
-    spool = _spool_of(store, run_ids)
+    spool, bench_text = _spool_of(store, run_ids)
     if spool.length_km is None or spool.loss_db_per_km is None:
         raise InputError(f"spool {spool.label} has no length or loss on record: "
                          f"labrun spool set {spool.label} --length-km KM --loss-db-per-km DB",
@@ -189,9 +191,6 @@ def fit_runs(store: Store, run_ids: list[int], *, save: bool = True) -> FitRecor
     tables = [t for t in tables if not t.empty]
     if not tables:
         raise InputError("the runs have no stored points to fit", field="RUN_ID")
-    with store.session() as s:
-        first = s.get(Run, run_ids[0])
-        bench_text = first.bench_text if first is not None else None
     results = _fit_tables(tables, spool, bench_text)
     params = {name: from_fit(r) for name, r in results.items()}
     record = FitRecord(spool=spool.label, run_ids=run_ids, parameters=params,

@@ -5,7 +5,6 @@ clear end the run aborted with the reason, sources off."""
 
 from __future__ import annotations
 
-import re
 from pathlib import Path
 
 import numpy as np
@@ -14,30 +13,22 @@ from sqlalchemy import select
 
 from labrun.bench import load_bench
 from labrun.engine import RetryPolicy, Seams, run_plan
+from labrun.faultdrill import write_bench
 from labrun.plan import load_plan
-from labrun.resources import find_file
 from labrun.store import Point, open_store
 from labrun.vlab.lab import VirtualLab
 
 QUICK_TIMEOUT_MS = 200  # a swallowed command costs ~0.2 s instead of the profiles' seconds
+GENERIC_PROFILES = ("generic-osa", "generic-laser", "generic-attenuator", "generic-pol-controller",
+                    "generic-switch", "generic-power-meter", "generic-amplifier")
 FAULTS = dict(enabled=True, timeout_probability=0.01, garble_probability=0.005,
               drop_probability=0.003, spurious_error_probability=0.01,
               short_trace_probability=0.05, roles=[])
 
 
 def quick_bench(lab: VirtualLab, folder: Path) -> Path:
-    """The lab's bench file with every profile's timeout_ms cut to QUICK_TIMEOUT_MS."""
-    bench = lab.write_bench(folder / "bench.toml")
-    text = bench.read_text(encoding="utf-8")
-    for name in sorted(set(re.findall(r'profile = "([^"]+)"', text))):
-        src = Path(find_file(f"{name}.toml", "drivers")).read_text(encoding="utf-8")
-        quick = folder / f"quick-{name}.toml"
-        quick.write_text(re.sub(r"timeout_ms = \d+", f"timeout_ms = {QUICK_TIMEOUT_MS}",
-                                src.replace(f'name = "{name}"', f'name = "quick-{name}"')),
-                         encoding="utf-8")
-        text = text.replace(f'profile = "{name}"', f'profile = "{quick}"')
-    bench.write_text(text, encoding="utf-8")
-    return bench
+    """The lab's bench file with every generic profile's timeout_ms cut to QUICK_TIMEOUT_MS."""
+    return write_bench(lab, folder, {name: QUICK_TIMEOUT_MS for name in GENERIC_PROFILES})
 
 
 def _run(tmp_path, lab, n_points, policy, seams=None):
