@@ -134,13 +134,12 @@ def as_run_store(store: Any) -> RunStore:
 
 def fallback_path(url: str) -> Path:
     """Where the record of what could not be written goes: beside a SQLite file, else here."""
-    from sqlalchemy.engine import make_url
+    from labrun.store.statusview import is_sqlite, sqlite_database  # no SQLAlchemy needed
 
-    with contextlib.suppress(Exception):
-        parsed = make_url(url)
-        if parsed.get_backend_name() == "sqlite" and parsed.database \
-                and parsed.database != ":memory:":
-            db = Path(parsed.database)
+    if "://" in url and is_sqlite(url):
+        database = sqlite_database(url)
+        if database and database != ":memory:":
+            db = Path(database)
             return db.with_name(db.name + FALLBACK_SUFFIX)
     return Path.cwd() / SERVER_FALLBACK
 

@@ -1,7 +1,9 @@
 """``labrun status [RUN_ID]``: progress, ETA, last point, faults and heartbeat age of a run.
 
 Reads the store only (WAL lets it read while the run process writes), so it works from any
-terminal, also when the run process is stuck or dead: a stale heartbeat is called out.
+terminal, also when the run process is stuck or dead: a stale heartbeat is called out. A SQLite
+store is read with the standard library alone (``labrun.store.statusview``), so status starts
+without SQLAlchemy.
 """
 
 from __future__ import annotations
@@ -40,7 +42,7 @@ def _num(v: Any) -> float | None:
 
 def status_report(summary: dict[str, Any], *, now: Any = None) -> dict[str, Any]:
     """The JSON of ``labrun status`` from a Store.summary()."""
-    from labrun.store.models import utcnow
+    from labrun.store.kinds import utcnow
 
     now = now or utcnow()
     run = summary["run"]
@@ -86,7 +88,7 @@ def with_fallback(rep: dict[str, Any], url: str) -> dict[str, Any]:
     """The report with the final status the database refused (labrun/runstore.py: the record
     kept beside it) in place of a ``running`` that no process is behind any more."""
     from labrun.runstore import fallback_path, read_fallback
-    from labrun.store import FINISHED_STATUSES
+    from labrun.store.kinds import FINISHED_STATUSES
 
     record = read_fallback(url).get(int(rep["run_id"]))
     if record is None or rep["status"] in FINISHED_STATUSES:
@@ -158,19 +160,13 @@ def _text(rep: dict[str, Any]) -> str:
 
 def cmd_status(args: argparse.Namespace) -> int:
     """labrun status [RUN_ID]: print a run's progress."""
-    from labrun.store import open_existing_store
+    from labrun.store.statusview import read_status
 
-    store = open_existing_store(args.db)  # never creates a database just to find it empty
-    try:
-        run_id = args.run_id if args.run_id is not None else store.latest_run_id()
-        if run_id is None:
-            raise InputError("the store has no runs yet", file=str(args.db), field="--db")
-        summary = store.summary(run_id)
-        if summary is None:
-            raise InputError(f"no run {run_id}", file=str(args.db), field="RUN_ID")
-        rep = with_fallback(status_report(summary), store.url)
-    finally:
-        store.close()
+    # never creates a database just to find it empty; SQLite is read without SQLAlchemy
+    url, summary, run_id = read_status(args.db, args.run_id)
+    if summary is None:
+        raise InputError(f"no run {run_id}", file=str(args.db), field="RUN_ID")
+    rep = with_fallback(status_report(summary), url)
     if args.json:
         print(json.dumps(rep, indent=2))
     else:

@@ -14,8 +14,8 @@ DEFAULT_DB = "labrun.db"  # SQLite file in the current folder when --db is not g
 _LAZY = {
     "Store": "db", "TraceData": "db", "open_existing_store": "db", "open_store": "db",
     "store_url": "db",
-    "FINISHED_STATUSES": "models", "RUN_STATUSES": "models", "RunStatus": "models",
-    "EventKind": "models", "Base": "models", "Event": "models",
+    "FINISHED_STATUSES": "kinds", "RUN_STATUSES": "kinds", "RunStatus": "kinds",
+    "EventKind": "kinds", "Base": "models", "Event": "models",
     "Line": "models", "Point": "models", "Run": "models", "Spool": "models", "Trace": "models",
 }
 

@@ -48,6 +48,8 @@ from labrun.store.models import (
     Trace,
     utcnow,
 )
+from labrun.store.revisions import older_refusal
+from labrun.store.revisions import require_known as _require_known
 from labrun.store.tracecodec import encode_y
 
 if TYPE_CHECKING:  # numpy is imported where traces are encoded: `labrun status` needs none
@@ -383,21 +385,11 @@ def _check_revision(store: Store, where: str, *, upgrade: bool) -> None:
     try:
         _require_known(revision, where)
         if not upgrade:
-            raise InputError(f"the database schema is revision {revision}, older than this "
-                             f"labrun's {schema.HEAD}: run 'labrun db upgrade --db {where}' first",
-                             file=where, field="--db")
+            raise older_refusal(revision, where)
         store.upgraded_from = schema.upgrade(store.engine)[0]
     except BaseException:
         store.close()
         raise
-
-
-def _require_known(revision: str, where: str) -> None:
-    """A schema revision this labrun does not ship is from a newer labrun: refuse it (exit 2)."""
-    if revision not in schema.known_revisions():
-        raise InputError(f"the database schema is revision {revision}, newer than this labrun "
-                         f"knows (up to {schema.HEAD}): open it with a newer labrun",
-                         file=where, field="--db")
 
 
 def _prepare_schema(engine: Engine, where: str) -> None:

@@ -10,13 +10,13 @@ against one lab database do not both create or migrate it.
 
 from __future__ import annotations
 
-from pathlib import Path
-
 from sqlalchemy import Column, Connection, Engine, MetaData, String, Table, inspect, select, text
 
-BASELINE = "0001"  # labrun 0.1.0's schema (no alembic_version table)
-HEAD = "0003"  # the newest revision in migrations/versions (test_schema checks it)
-MIGRATIONS = Path(__file__).resolve().parent / "migrations"
+from labrun.store.revisions import BASELINE as BASELINE  # re-exported
+from labrun.store.revisions import HEAD as HEAD  # re-exported
+from labrun.store.revisions import MIGRATIONS as MIGRATIONS  # re-exported
+from labrun.store.revisions import known_revisions as known_revisions  # re-exported
+
 PG_LOCK_KEY = 0x6C616272756E  # advisory lock id used while creating or upgrading ("labrun")
 
 # The table Alembic keeps its revision in (Alembic's own name and layout).
@@ -40,11 +40,6 @@ def revision_of(conn: Connection) -> str:
     if insp.has_table("runs"):
         return BASELINE
     return SchemaState.EMPTY
-
-
-def known_revisions() -> list[str]:
-    """Revision ids shipped with this labrun, oldest first (from the file names, no Alembic)."""
-    return sorted(p.name.split("_", 1)[0] for p in (MIGRATIONS / "versions").glob("[0-9]*_*.py"))
 
 
 def lock(conn: Connection) -> None:
