@@ -11,7 +11,7 @@ refused   exit 2 with exactly one line on stderr,
 and the failures: traceback (an exception escaped ``labrun.cli.main``), hang (over the time
 limit, CPU or wall), accepted (a known-bad input ended in a result), bad_result (a result
 holding NaN, infinity or a detected line without a power), bad_message (exit 2 without exactly
-one line), opened (a real VISA backend was asked for a resource manager).
+one line), opened (an instrument session was opened outside a ``labrun check`` rehearsal).
 """
 
 from __future__ import annotations
@@ -29,6 +29,7 @@ from random import Random
 from typing import Any
 
 import numpy as np
+from _no_visa import visa_refused
 
 from labrun.resources import data_dir
 
@@ -362,38 +363,30 @@ def _no_constants(name: str) -> float:
     raise ValueError(f"JSON holds {name}")
 
 
-def run_case(case: Case, *, time_limit_s: float = TIME_LIMIT_S) -> Outcome:
-    """Run ``labrun <argv>`` in-process (real VISA backends forbidden) and classify it.
+def run_case(case: Case, *, time_limit_s: float = TIME_LIMIT_S,
+             overrides: dict[str, Any] | None = None) -> Outcome:
+    """Run ``labrun <argv>`` in-process (instrument sessions forbidden) and classify it.
 
     A hang is more than ``time_limit_s`` of CPU (the process's, so a loaded shared machine does
     not turn slow into hung), or three times that in wall time (a wait that uses no CPU).
+    ``overrides`` go to ``labrun.cli.main`` (a test's stand-in for a command's function).
     """
-    from labrun import scpi
     from labrun.cli import main
-
-    original_rm = scpi.resource_manager
-
-    def forbid(backend: str, sim_file: Any = None) -> Any:
-        """A real VISA backend is off limits; a rehearsal's recording library (``labrun check``
-        rehearses the run through scpi.visa_library_override) is not an instrument."""
-        if scpi._OVERRIDE is None:
-            raise _Opened(f"instrument session opened via {backend}")
-        return original_rm(backend, sim_file)
 
     def alarm(*_: Any) -> None:
         raise _TimeLimit()
 
     out, err = io.StringIO(), io.StringIO()
-    scpi.resource_manager = forbid
     previous = {sig: signal.signal(sig, alarm) for sig in (signal.SIGALRM, signal.SIGPROF)}
     signal.setitimer(signal.ITIMER_PROF, time_limit_s)
     signal.setitimer(signal.ITIMER_REAL, 3.0 * time_limit_s)
     start = time.perf_counter()
     code: int | None = None
     try:
-        with contextlib.redirect_stdout(out), contextlib.redirect_stderr(err):
+        with visa_refused(_Opened), contextlib.redirect_stdout(out), \
+                contextlib.redirect_stderr(err):
             try:
-                code = main(case.argv)
+                code = main(case.argv, overrides=overrides)
             except SystemExit as exc:  # argparse usage errors
                 code = exc.code if isinstance(exc.code, int) else 2
     except _TimeLimit:
@@ -408,7 +401,6 @@ def run_case(case: Case, *, time_limit_s: float = TIME_LIMIT_S) -> Outcome:
         signal.setitimer(signal.ITIMER_PROF, 0)
         for sig, handler in previous.items():
             signal.signal(sig, handler)
-        scpi.resource_manager = original_rm
     seconds = time.perf_counter() - start
     stderr = err.getvalue()
     if code == 2:

@@ -126,18 +126,17 @@ def test_missing_and_malformed_file(tmp_path):
         load_bench(bad)
 
 
-def test_unreadable_files_are_one_line(tmp_path, monkeypatch):
+def test_unreadable_files_are_one_line(tmp_path):
     """Non-UTF-8, deeply nested and oversized bench files: one line naming the file."""
-    import labrun.inputfile as inputfile
+    from labrun.inputfile import MAX_TOML_BYTES
 
     cases = {
         "latin1.toml": SIM_TEXT.replace('name = "pyvisa-sim bench"', 'name = "b\u00e9nch"')
                                .encode("latin-1"),
         "deep.toml": b"x = " + b"[" * 5000 + b"]" * 5000 + b"\n",
         "nested.toml": b"x = " + b"[" * 40 + b"]" * 40 + b"\n",
-        "big.toml": b"# " + b"x" * 20_000 + b"\n",
+        "big.toml": b"# " + b"x" * (MAX_TOML_BYTES - 2) + b"\n",  # one byte over the limit
     }
-    monkeypatch.setattr(inputfile, "MAX_TOML_BYTES", 12_000)
     expect = {"latin1.toml": "not UTF-8", "deep.toml": "nested deeper",
               "nested.toml": "nested deeper", "big.toml": "larger than"}
     for name, raw in cases.items():

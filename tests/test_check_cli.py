@@ -9,7 +9,7 @@ import sys
 from pathlib import Path
 
 import pytest
-import pyvisa
+from _no_visa import visa_refused
 from _plan_support import BASE_PLAN, POWERS, bench_text, write_plan
 
 from labrun.cli import main
@@ -21,20 +21,11 @@ SWEEPS = Path(__file__).resolve().parents[1] / "sweeps"
 
 
 @pytest.fixture
-def no_visa(monkeypatch):
-    """Make any attempt to open a VISA resource manager fail loudly, except on the rehearsal's
+def no_visa():
+    """Make any attempt to open an instrument session fail loudly, except on the rehearsal's
     own simulated backend (labrun.rehearse: instruments that record instead of sending)."""
-    from labrun.rehearse import DryRunLibrary
-
-    manager = pyvisa.highlevel.ResourceManager
-    real_new = manager.__new__
-
-    def refuse(cls, visa_library=""):
-        if isinstance(visa_library, DryRunLibrary):
-            return real_new(cls, visa_library)
-        raise AssertionError("labrun check must not open an instrument")
-
-    monkeypatch.setattr(manager, "__new__", staticmethod(refuse))
+    with visa_refused(AssertionError):
+        yield
 
 
 def _files(tmp_path, plan_body=POWERS, **bench_kw):

@@ -123,7 +123,7 @@ def test_resume_of_a_finished_run_is_an_input_error(tmp_path, capsys):
             main(["resume", "x", "--db", str(db)])
 
 
-def test_resume_asks_for_the_safety_acknowledgement_again(tmp_path, capsys, monkeypatch):
+def test_resume_asks_for_the_safety_acknowledgement_again(tmp_path, capsys):
     """Resuming switches the light on again: unattended without --ack-safety or --operator is
     refused (exit 2) and an unconfirmed interactive resume is refused (exit 1), both before any
     instrument is touched; a typed confirmation is recorded with the operator."""
@@ -138,8 +138,8 @@ def test_resume_asks_for_the_safety_acknowledgement_again(tmp_path, capsys, monk
             assert main(["resume", str(run_id), "--db", str(db), "--no-progress", *flags]) == 2
             err = capsys.readouterr().err
             assert "--ack-safety" in err or "--operator" in err
-        monkeypatch.setattr("labrun.cli.run.ask_operator", lambda text: False)
-        assert main(["resume", str(run_id), "--db", str(db), "--no-progress"]) == 1
+        assert main(["resume", str(run_id), "--db", str(db), "--no-progress"],
+                    overrides={"confirm": lambda text: False}) == 1
         assert "not confirmed" in capsys.readouterr().err
         store = open_store(db)
         assert count_points(db) == done and not store.events(run_id, ["resume"])
@@ -151,9 +151,8 @@ def test_resume_asks_for_the_safety_acknowledgement_again(tmp_path, capsys, monk
             shown["text"] = text
             return True
 
-        monkeypatch.setattr("labrun.cli.run.ask_operator", typed)
         assert main(["resume", str(run_id), "--db", str(db), "--no-progress", "--operator",
-                     RESUMER]) == 0
+                     RESUMER], overrides={"confirm": typed}) == 0
         assert "Worst case" in shown["text"] and "laser safety officer" in shown["text"]
         assert count_points(db) == N_POINTS and dark(lab)
     ack = store.events(run_id, ["safety_ack"])[-1]
@@ -207,33 +206,48 @@ def test_resume_on_a_bench_with_a_lower_cap_is_refused(tmp_path, capsys):
         store.close()
 
 
-def test_a_run_that_dies_right_after_its_row_is_created_resumes_without_force(tmp_path,
-                                                                             monkeypatch):
+class _DiesAfterCreate:
+    """A store whose process dies at the first write after the run row exists (the write raises
+    once); every other call goes to the real store."""
+
+    def __init__(self, store):
+        self.store, self.created, self.died = store, False, False
+
+    def __getattr__(self, name):
+        return getattr(self.store, name)
+
+    def create_run(self, **fields):
+        run_id = self.store.create_run(**fields)
+        self.created = True
+        return run_id
+
+    def add_event(self, *args, **kwargs):
+        if self.created and not self.died:
+            self.died = True
+            raise RuntimeError("process killed (simulated)")
+        return self.store.add_event(*args, **kwargs)
+
+
+def test_a_run_that_dies_right_after_its_row_is_created_resumes_without_force(tmp_path):
     """The identities go into the transaction that creates the run: a process that dies just
     after (here: in the next write) leaves a run that resumes on the same instruments without
     --force (the row used to get them later, and a run killed before that needed --force)."""
-    import labrun.engine
     from labrun.bench import load_bench
     from labrun.engine import resume_run, run_plan
     from labrun.vlab.lab import VirtualLab
 
-    real = labrun.engine.record_traffic_log
-
-    def dies(*_a, **_k):
-        raise RuntimeError("process killed (simulated)")
-
-    monkeypatch.setattr(labrun.engine, "record_traffic_log", dies)
     with VirtualLab(scenario()) as lab:
         plan = load_plan(write_plan(tmp_path, long_powers(4)))
         bench = load_bench(write_bench(lab, tmp_path))
         store = open_store(tmp_path / "runs.db")
+        dying = _DiesAfterCreate(store)
         with pytest.raises(RuntimeError, match="killed"):
-            run_plan(plan, bench, store, operator=RESUMER, unattended=True, ack_safety=True,
+            run_plan(plan, bench, dying, operator=RESUMER, unattended=True, ack_safety=True,
                      progress=False)
+        assert dying.died
         run = store.get_run(store.latest_run_id())
         assert set(run.identities) == set(bench.instruments) and lab.sources_off()
         assert store.count_points(run.id) == 0
-        monkeypatch.setattr(labrun.engine, "record_traffic_log", real)
         out = resume_run(run.id, store, operator=RESUMER, unattended=True, ack_safety=True,
                          progress=False)
         assert out.status == "completed" and out.points_done == 4

@@ -15,7 +15,7 @@ import importlib
 import os
 import signal
 import sys
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from typing import Any, NoReturn
 
 from labrun.errors import LabrunError
@@ -71,11 +71,16 @@ def build_parser() -> argparse.ArgumentParser:
     return parser
 
 
-def main(argv: Sequence[str] | None = None) -> int:
-    """Run one labrun command; returns the process exit code (141 when stdout's reader left)."""
+def main(argv: Sequence[str] | None = None, *,
+         overrides: Mapping[str, Any] | None = None) -> int:
+    """Run one labrun command; returns the process exit code (141 when stdout's reader left).
+
+    ``overrides``: values set on the parsed arguments that no command-line option sets (a
+    command's ``func``, ``run``/``resume``'s ``confirm`` prompt): the seam tests use instead of
+    replacing module attributes."""
     try:
         try:
-            return _main(argv)
+            return _main(argv, overrides or {})
         finally:  # also after --help or --version (SystemExit): output still in the buffer
             sys.stdout.flush()
     except BrokenPipeError:
@@ -95,10 +100,13 @@ def _silence_stdout() -> None:
         os.close(devnull)
 
 
-def _main(argv: Sequence[str] | None) -> int:
+def _main(argv: Sequence[str] | None, overrides: Mapping[str, Any]) -> int:
     """Parse the arguments and run the command's function; labrun's own errors become one line."""
     parser = build_parser()
     args = parser.parse_args(argv)
+    if getattr(args, "func", None):
+        for name, value in overrides.items():
+            setattr(args, name, value)
     if args.verbose:
         import logging
 

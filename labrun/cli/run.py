@@ -34,7 +34,7 @@ def register(subparsers: Any) -> None:
     p.add_argument("--no-progress", action="store_true", help="no progress bar on stderr")
     add_traffic_log_option(p, "stream every instrument exchange to FILE as JSON lines "
                               "(flushed after each point)")
-    p.set_defaults(func=cmd_run, command_name="run")
+    p.set_defaults(func=cmd_run, command_name="run", confirm=ask_operator)
 
     r = subparsers.add_parser(
         "resume", help="continue an interrupted run, skipping the points already stored",
@@ -56,7 +56,7 @@ def register(subparsers: Any) -> None:
     r.add_argument("--no-progress", action="store_true", help="no progress bar on stderr")
     add_traffic_log_option(r, "stream every instrument exchange to FILE as JSON lines, "
                               "appended to what it holds (flushed after each point)")
-    r.set_defaults(func=cmd_resume, command_name="resume")
+    r.set_defaults(func=cmd_resume, command_name="resume", confirm=ask_operator)
 
 
 def ask_operator(text: str) -> bool:
@@ -118,7 +118,7 @@ def cmd_run(args: argparse.Namespace) -> int:
         try:
             outcome = run_plan(plan, bench, store, operator=args.operator,
                                unattended=args.unattended, ack_safety=args.ack_safety,
-                               confirm=ask_operator, progress=not args.no_progress,
+                               confirm=args.confirm, progress=not args.no_progress,
                                traffic_log=traffic_log, echo=sys.stderr,
                                estimate_s_per_point=estimate_per_point(plan, bench),
                                guardian=True)
@@ -144,7 +144,7 @@ def cmd_resume(args: argparse.Namespace) -> int:
         try:
             outcome = resume_run(args.run_id, store, bench=bench, force=args.force,
                                  operator=args.operator, unattended=args.unattended,
-                                 ack_safety=args.ack_safety, confirm=ask_operator,
+                                 ack_safety=args.ack_safety, confirm=args.confirm,
                                  progress=not args.no_progress, traffic_log=traffic_log,
                                  echo=sys.stderr, guardian=True)
         finally:

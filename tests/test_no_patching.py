@@ -1,0 +1,163 @@
+"""No test replaces an attribute of a module (issue 14: explicit seams instead of monkeypatching).
+
+A test that swaps ``labrun.engine.something`` or ``labrun.cli.build_parser`` for the duration of a
+test couples to the module's private wiring and breaks silently when an import moves; labrun's
+collaborators are parameters instead (``engine.Seams``, ``cli.main(overrides=...)``, a store or
+bench passed in). This scan reads every Python file under tests/ (support modules and conftest
+too) and reports, with file and line:
+
+- ``monkeypatch.setattr``/``delattr`` (or builtin ``setattr``/``delattr``) whose target is a
+  dotted-path string or an expression rooted at an imported module;
+- an assignment or ``del`` of an attribute of an imported module (``scpi.resource_manager = f``);
+- any use of ``unittest.mock.patch`` (``patch``, ``patch.object``, ``mock.patch``).
+
+Environment variables (``monkeypatch.setenv``) and attributes of objects a test made itself are
+not module attributes and are not reported.
+"""
+
+from __future__ import annotations
+
+import ast
+import importlib.machinery
+import importlib.util
+import sys
+import textwrap
+import types
+from pathlib import Path
+
+TESTS = Path(__file__).resolve().parent
+
+
+def _is_submodule(package: str, name: str) -> bool:
+    """True when ``from package import name`` binds a module; read from what is loaded, else
+    from the package's folders (nothing imported)."""
+    loaded = sys.modules.get(package)
+    if loaded is not None and hasattr(loaded, name):
+        return isinstance(getattr(loaded, name), types.ModuleType)
+    top, *parts = package.split(".")
+    try:
+        spec = importlib.util.find_spec(top)  # a top-level name: finds, does not import
+    except (ImportError, ValueError):
+        return False
+    return any((f / f"{name}.py").exists() or (f / name / "__init__.py").exists()
+               for f in _folders(spec, parts))
+
+
+def _folders(spec: importlib.machinery.ModuleSpec | None, parts: list[str]) -> list[Path]:
+    """The folders of the package ``spec`` descended through ``parts``."""
+    folders = [Path(f) for f in (spec.submodule_search_locations or [])] if spec else []
+    for part in parts:
+        folders = [f / part for f in folders if (f / part).is_dir()]
+    return folders
+
+
+def _imported_modules(nodes: list[ast.AST]) -> set[str]:
+    """Local names that an import statement among ``nodes`` binds to a module."""
+    names: set[str] = set()
+    for node in nodes:
+        if isinstance(node, ast.Import):
+            for alias in node.names:
+                names.add(alias.asname or alias.name.split(".")[0])
+        elif isinstance(node, ast.ImportFrom) and node.module and node.level == 0:
+            names |= {alias.asname or alias.name for alias in node.names
+                      if _is_submodule(node.module, alias.name)}
+    return names
+
+
+def _root(node: ast.AST) -> str | None:
+    """The name an attribute chain starts from (``a`` of ``a.b.c``), if any."""
+    while isinstance(node, ast.Attribute):
+        node = node.value
+    return node.id if isinstance(node, ast.Name) else None
+
+
+def _mock_names(nodes: list[ast.AST]) -> set[str]:
+    """Local names bound to ``unittest.mock`` or to its ``patch``."""
+    names: set[str] = set()
+    for node in nodes:
+        if isinstance(node, ast.Import):
+            names |= {alias.asname or alias.name for alias in node.names
+                      if alias.name in ("unittest.mock", "mock")}
+        elif isinstance(node, ast.ImportFrom) and node.module in ("unittest.mock", "mock",
+                                                                   "unittest"):
+            names |= {alias.asname or alias.name for alias in node.names
+                      if alias.name in ("patch", "mock")}
+    return names
+
+
+def module_patches(source: str, filename: str = "<test>") -> list[str]:
+    """``filename:line: what`` for each module attribute the source replaces (see above)."""
+    nodes = list(ast.walk(ast.parse(source, filename)))
+    modules, mocks = _imported_modules(nodes), _mock_names(nodes)
+    found: list[str] = []
+
+    def report(node: ast.AST, what: str) -> None:
+        found.append(f"{filename}:{getattr(node, 'lineno', 0)}: {what}")
+
+    for node in nodes:
+        if isinstance(node, ast.Call):
+            func = node.func
+            name = func.attr if isinstance(func, ast.Attribute) else \
+                func.id if isinstance(func, ast.Name) else None
+            if name in ("setattr", "delattr") and node.args:
+                target = node.args[0]
+                if isinstance(target, ast.Constant) and isinstance(target.value, str):
+                    report(node, f"{name} of the dotted path {target.value!r}")
+                elif _root(target) in modules:
+                    report(node, f"{name} on the module {ast.unparse(target)}")
+        if mocks and isinstance(node, ast.Name | ast.Attribute) and _root(node) in mocks:
+            report(node, f"unittest.mock patching ({ast.unparse(node)})")
+        targets: list[ast.AST] = []
+        if isinstance(node, ast.Assign):
+            targets = list(node.targets)
+        elif isinstance(node, ast.AugAssign | ast.AnnAssign):
+            targets = [node.target]
+        elif isinstance(node, ast.Delete):
+            targets = list(node.targets)
+        while targets:
+            target = targets.pop()
+            if isinstance(target, ast.Tuple | ast.List):
+                targets += target.elts
+            elif isinstance(target, ast.Starred):
+                targets.append(target.value)
+            elif isinstance(target, ast.Attribute) and _root(target) in modules:
+                report(target, f"assignment to the module attribute {ast.unparse(target)}")
+    return sorted(set(found))
+
+
+def test_no_test_replaces_a_module_attribute():
+    found = []
+    for path in sorted(TESTS.rglob("*.py")):
+        found += module_patches(path.read_text(encoding="utf-8"), str(path.relative_to(TESTS)))
+    assert not found, "module attributes replaced in tests (use a seam):\n" + "\n".join(found)
+
+
+def test_the_scan_finds_each_form():
+    """Each way of replacing a module attribute is reported (the scan can fail); a test's own
+    objects, environment variables and local attributes are not."""
+    bad = {
+        "string": 'def t(monkeypatch):\n    monkeypatch.setattr("labrun.cli.run.ask_operator", f)',
+        "module": "import labrun.engine\ndef t(monkeypatch):\n"
+                  "    monkeypatch.setattr(labrun.engine, 'record_traffic_log', f)",
+        "from-module": "def t(monkeypatch):\n    import labrun.inputfile as inputfile\n"
+                       "    monkeypatch.setattr(inputfile, 'MAX_TOML_BYTES', 1)",
+        "from-package": "from labrun import scpi\nscpi.resource_manager = None",
+        "builtin": "import labrun.cli as cli\nsetattr(cli, 'build_parser', None)",
+        "del": "from labrun import scpi\ndel scpi.resource_manager",
+        "tuple": "import labrun.scpi\na, labrun.scpi.resource_manager = 1, 2",
+        "mock": "from unittest import mock\nwith mock.patch('labrun.engine.x'):\n    pass",
+        "patch": "from unittest.mock import patch\n@patch('labrun.engine.x')\ndef t(x): pass",
+    }
+    for form, source in bad.items():
+        assert module_patches(textwrap.dedent(source)), form
+    fine = textwrap.dedent("""
+        import os
+        from labrun.scpi import ScpiSession
+        def t(monkeypatch, tmp_path):
+            monkeypatch.setenv("CI", "true")
+            os.environ["X"] = "1"
+            session = ScpiSession("TCPIP0::127.0.0.1::1::SOCKET")
+            session.timeout_ms = 5
+            monkeypatch.setattr(session, "retries", 0)
+        """)
+    assert module_patches(fine) == []
