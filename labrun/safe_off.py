@@ -2,10 +2,11 @@
 
 ``darken`` gives each of the roles in ``OFF_ROLES`` (lasers and amplifier output off, attenuators
 to maximum with their shutters closed) its own thread: the run's own connection first (one short
-try, never waiting on a busy session), then fresh connections opened without init commands,
-retried until ``budget_s``. An unreachable laser therefore never delays closing its attenuator:
-every reachable role is dark within about one round trip of the decision, whatever the others
-do. Used by the engine's fault exits and ``SafeOffGuard`` (labrun/shutdown.py) and by
+try, never waiting on a busy session), then fresh connections whose init commands are sent
+unchecked (a remote enable is needed; a refused ``*CLS`` is not), retried until ``budget_s``.
+An unreachable laser therefore never delays closing its attenuator: every reachable role is
+dark within about one round trip of the decision, whatever the others do. Used by the engine's
+fault exits and ``SafeOffGuard`` (labrun/shutdown.py) and by
 ``labrun off`` (labrun/cli/off.py).
 """
 
@@ -32,15 +33,24 @@ T = TypeVar("T")
 
 
 def quick_adapter(bench: Any, role: str, timeout_ms: int = TIMEOUT_MS) -> Any:
-    """A fresh connection to one role, without init commands (a refused ``*CLS`` must not keep
-    a laser on), with exchanges bounded by ``timeout_ms`` and tried once."""
+    """A fresh connection to one role, with exchanges bounded by ``timeout_ms`` and tried once.
+    Its init commands are sent and what they left in the error queue is read out unjudged: an
+    instrument in local mode refuses the switch-off until its remote enable, while a refused
+    init command must not keep a laser on (profile loading refuses init commands that switch
+    light on)."""
     from labrun.instruments import ADAPTERS, make_session
+    from labrun.scpi import ScpiError
 
     spec = bench.instruments[role]
     session = make_session(bench, role)
     session.timeout_ms = max(1, min(session.timeout_ms, int(timeout_ms)))
     session.retries = 0
     session.open()
+    for cmd in spec.profile.init:
+        session.write(cmd, check_errors=False)
+    if spec.profile.init:
+        with contextlib.suppress(ScpiError):  # read out what init left; the switch-off decides
+            session.drain_errors("init")
     return ADAPTERS[spec.kind](spec, session, settle_scale=bench.settle_scale)
 
 

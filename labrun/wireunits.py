@@ -3,7 +3,8 @@ speaks (a profile operation's ``wire_unit``, or its ``scale`` and ``offset``). P
 
 Powers: labrun speaks dBm; an instrument W, mW, dBm or dBW (P[mW] = 10^(P[dBm]/10), common
 practice; dBW = dBm - 30). Wavelengths: labrun speaks nm; an instrument m, um, nm, pm, or a
-frequency in Hz, GHz or THz (f = c / lambda, c exact by the SI). Linear power at or below
+frequency in Hz, GHz or THz (f = c / lambda, c exact by the SI). Angles: labrun speaks
+degrees; an instrument deg or rad (pi rad = 180 deg). Linear power at or below
 zero (a linear trace's noise) reads as FLOOR_DBM, below any optical spectrum analyser's floor.
 """
 
@@ -20,10 +21,12 @@ POWER = {"W": 1e-3, "mW": 1.0}          # linear: factor from mW
 POWER_DB = {"dBm": 0.0, "dBW": -30.0}    # logarithmic: offset from dBm
 LENGTH = {"m": 1e-9, "um": 1e-3, "nm": 1.0, "pm": 1e3}  # factor from nm
 FREQUENCY = {"Hz": 1.0, "GHz": 1e-9, "THz": 1e-12}      # factor from Hz
+ANGLE = {"deg": 1.0, "rad": np.pi / 180.0}               # factor from degrees
 WIRE_UNITS: dict[str, tuple[str, ...]] = {
     "dBm": (*POWER, *POWER_DB),
     "nm": (*LENGTH, *FREQUENCY),
     "dB": ("dB",),
+    "deg": tuple(ANGLE),
 }
 
 
@@ -40,6 +43,8 @@ def to_wire(value: ArrayLike, unit: str, wire_unit: str) -> np.ndarray:
         return v * LENGTH[wire_unit]
     if unit == "nm" and wire_unit in FREQUENCY:
         return C_M_PER_S / (v * 1e-9) * FREQUENCY[wire_unit]
+    if unit == "deg" and wire_unit in ANGLE:
+        return v * ANGLE[wire_unit]
     raise ValueError(f"no conversion from {unit} to {wire_unit}")
 
 
@@ -58,4 +63,6 @@ def from_wire(value: ArrayLike, unit: str, wire_unit: str) -> np.ndarray:
         return v / LENGTH[wire_unit]
     if unit == "nm" and wire_unit in FREQUENCY:
         return C_M_PER_S / (v / FREQUENCY[wire_unit]) * 1e9
+    if unit == "deg" and wire_unit in ANGLE:
+        return v / ANGLE[wire_unit]
     raise ValueError(f"no conversion from {wire_unit} to {unit}")

@@ -19,16 +19,26 @@ from labrun.resources import find_file
 from labrun.vlab.lab import VirtualLab
 
 OPERATOR = "R. Okafor"  # invented
+# The virtual lab's command dialects (labrun/vlab/sidialect.py): the engine's core cases run
+# on both, every instrument speaking the same one.
+DIALECTS = ("generic", "si")
 
 
-def scenario(**changes: Any) -> dict[str, Any]:
-    """The shipped default scenario as a dict, realism off (deterministic), with changes."""
+def scenario(*, dialect: str = "generic", **changes: Any) -> dict[str, Any]:
+    """The shipped default scenario as a dict, realism off (deterministic), with changes; every
+    instrument speaking ``dialect``."""
+    from labrun.vlab.scenario import Instruments
+
     path = find_file("default-scenario.toml", "sim_instruments")
     data = tomllib.loads(Path(path).read_text(encoding="utf-8"))
     data = copy.deepcopy(data)
     data["realism"]["enabled"] = False
     for key, value in changes.items():
         data[key] = value
+    if dialect != "generic":
+        instruments = data.setdefault("instruments", {})
+        for role in Instruments.model_fields:
+            instruments.setdefault(role, {})["dialect"] = dialect
     return data
 
 
@@ -72,12 +82,13 @@ def write_bench(lab: VirtualLab, folder: Path, *, osa_timeout_ms: int | None = N
     """The lab's bench file; optionally with an OSA profile whose timeout is short."""
     bench = lab.write_bench(folder / "bench.toml")
     if osa_timeout_ms is not None:
-        src = Path(find_file("generic-osa.toml", "drivers")).read_text(encoding="utf-8")
+        name = lab.profile_name("osa")  # the profile of the OSA's dialect
+        src = Path(find_file(f"{name}.toml", "drivers")).read_text(encoding="utf-8")
         prof = folder / "quick-osa.toml"
-        prof.write_text(re.sub(r'name = "generic-osa"', 'name = "quick-osa"',
+        prof.write_text(re.sub(f'name = "{name}"', 'name = "quick-osa"',
                                re.sub(r"timeout_ms = \d+", f"timeout_ms = {osa_timeout_ms}", src)),
                         encoding="utf-8")
-        text = bench.read_text(encoding="utf-8").replace('profile = "generic-osa"',
+        text = bench.read_text(encoding="utf-8").replace(f'profile = "{name}"',
                                                          f'profile = "{prof}"')
         bench.write_text(text, encoding="utf-8")
     return bench

@@ -10,6 +10,7 @@ import math
 import numpy as np
 import pytest
 from _engine_support import (
+    DIALECTS,
     OPERATOR,
     attenuators_at_max,
     dark,
@@ -47,11 +48,13 @@ def _run(tmp_path, lab, powers=POWERS, **kw):
     return plan, store, out
 
 
-def test_run_stores_every_point_and_leaves_the_bench_dark(tmp_path, lab):
-    plan, store, out = _run(tmp_path, lab)
-    assert out.status == "completed" and out.exit_code == 0
-    assert out.points_done == out.points_total == len(plan.points()) == 3
-    assert dark(lab)
+@pytest.mark.parametrize("dialect", DIALECTS)
+def test_run_stores_every_point_and_leaves_the_bench_dark(tmp_path, dialect):
+    with VirtualLab(scenario(dialect=dialect)) as lab:
+        plan, store, out = _run(tmp_path, lab)
+        assert out.status == "completed" and out.exit_code == 0
+        assert out.points_done == out.points_total == len(plan.points()) == 3
+        assert dark(lab)
     with store.session() as s:
         points = s.scalars(select(Point).order_by(Point.index)).all()
         assert [p.key for p in points] == [p.key for p in plan.points()]
@@ -172,16 +175,18 @@ def test_stop_condition_ends_the_run_early_and_dark(tmp_path, lab):
     assert 1 <= out.points_done < 4 and dark(lab)
 
 
-def test_transient_connection_drop_is_survived(tmp_path):
+@pytest.mark.parametrize("dialect", DIALECTS)
+def test_transient_connection_drop_is_survived(tmp_path, dialect):
     """Connections to the OSA and to laser_b dropped mid-run (after the first and second
     reductions): each loss is a fault event, the exchange is retried on a fresh connection, and
-    the run completes with every point, dark at the end."""
+    the run completes with every point, dark at the end. In the si dialect the fresh
+    connection is refused everything until the profile's init enables remote again."""
     import labrun.reduce
 
     real = labrun.reduce.reduce_trace
     dropped: list[int] = []
 
-    with VirtualLab(scenario()) as vl:
+    with VirtualLab(scenario(dialect=dialect)) as vl:
         def dropping(*args, **kwargs):
             if len(dropped) < 2:
                 dropped.append(vl.drop_connections(("osa", "laser_b")[len(dropped)]))

@@ -437,9 +437,34 @@ def test_count_that_disagrees_is_a_garbled_trace(lab, tmp_path):
 
 # -- a second dialect in the virtual lab ---------------------------------------------------
 
-def _sweep_lines(tmp_path: Path, dialect: str) -> list[tuple[int, str, str, int, float]]:
-    """Run a 3-point sweep on a lab whose lasers speak ``dialect``; the stored lines."""
-    from _engine_support import OPERATOR, long_powers, write_plan
+# Three points with the amplifier on, the spool input captured through the switch at points 0
+# and 2, the paddles away from zero (invented lab values).
+ALL_ROLES_PLAN = """[plan]
+name = "dialect comparison"
+spool = "HNLF-A17"
+orders = 2
+amplifier = true
+
+[fixed]
+wavelength_a_nm = 1550.0
+spacing_ghz = 100.0
+ratio_db = 0.0
+pol_angles_deg = [10.0, 20.0, 30.0]
+
+[axes.total_power_dbm]
+values = [2.0, 4.0, 6.0]
+
+[osa]
+capture_input = true
+input_every = 2
+"""
+
+
+def _sweep_lines(tmp_path: Path, dialect: str, realism: bool
+                 ) -> list[tuple[int, str, str, int, float]]:
+    """Run ALL_ROLES_PLAN on a lab whose every instrument (all nine roles present) speaks
+    ``dialect``, through the profiles the lab's bench names; the stored lines."""
+    from _engine_support import OPERATOR
     from sqlalchemy import select
 
     from labrun.engine import run_plan
@@ -447,35 +472,57 @@ def _sweep_lines(tmp_path: Path, dialect: str) -> list[tuple[int, str, str, int,
     from labrun.store import open_store
     from labrun.store.models import Line, Point
 
-    instruments = scenario()["instruments"]
-    for role in ("laser_a", "laser_b"):
-        instruments.setdefault(role, {})["dialect"] = dialect
-    folder = tmp_path / dialect
+    sc = scenario(dialect=dialect)
+    sc["realism"]["enabled"] = realism
+    for role in ("amplifier", "power_meter", "switch"):
+        sc["instruments"][role]["present"] = True
+    folder = tmp_path / f"{dialect}-{realism}"
     folder.mkdir()
-    with VirtualLab(scenario(instruments=instruments)) as lab:
+    (folder / "plan.toml").write_text(ALL_ROLES_PLAN, encoding="utf-8")
+    with VirtualLab(sc, seed=5) as lab:
         bench = load_bench(lab.write_bench(folder / "bench.toml"))
-        assert bench.instruments["laser_a"].profile.name == \
-            ("si-laser" if dialect == "si" else "generic-laser")
+        assert {spec.profile.name.split("-")[0] for spec in bench.instruments.values()} == \
+            {dialect}
         store = open_store(folder / "runs.db")
-        out = run_plan(load_plan(write_plan(folder, long_powers(3))), bench, store,
-                       operator=OPERATOR, unattended=True, ack_safety=True, progress=False)
+        out = run_plan(load_plan(folder / "plan.toml"), bench, store, operator=OPERATOR,
+                       unattended=True, ack_safety=True, progress=False)
         assert out.status == "completed", out.reason
         assert lab.sources_off()
     with store.session() as s:
         rows = s.execute(select(Point.index, Line.kind, Line.side, Line.order, Line.power_dbm)
                          .join(Line.point).order_by(Point.index, Line.kind, Line.side,
-                                                    Line.order)).all()
+                                                    Line.order, Line.id)).all()
     return [tuple(r) for r in rows]
 
 
-def test_sweep_in_the_si_dialect_stores_the_generic_lines(tmp_path):
-    """Done-when of issue 15 for the lasers: both lasers in the si dialect (metres, watts,
-    remote enable, space-separated errors, drivers/si-laser.toml) store the same lines as in
-    the generic dialect (realism off: the virtual lab is deterministic; the SI laser's power
-    goes through W and back, so within 1e-3 dB)."""
-    generic = _sweep_lines(tmp_path, "generic")
-    si = _sweep_lines(tmp_path, "si")
-    assert len(si) == len(generic) == 18
+@pytest.mark.parametrize("realism", [False, True])
+def test_sweep_in_the_si_dialect_stores_the_generic_lines(tmp_path, realism):
+    """Done-when of issue 15: every instrument in the si dialect (m, W, rad; SYST:REM; '<code>
+    <message>' errors; no *OPC?, the OSA polled by SPEC:BUSY?; an ASCII trace in W with its
+    count and a start/stop axis; drivers/si-*.toml) stores the same lines as the generic
+    dialect, output and input traces alike. Realism off: deterministic, the levels pass
+    through W and 6-digit ASCII (measured within 3e-6 dB). Realism on (the same seed, so the
+    same noise draws): within 1e-3 dB, far below the virtual lab's 0.05 dB OSA noise."""
+    generic = _sweep_lines(tmp_path, "generic", realism)
+    si = _sweep_lines(tmp_path, "si", realism)
+    assert len(si) == len(generic) == 30  # 3 output traces x 6 lines + 2 input traces x 6
     for a, b in zip(generic, si, strict=True):
         assert a[:4] == b[:4]
-        assert b[4] == pytest.approx(a[4], abs=1e-3)
+        assert b[4] == pytest.approx(a[4], abs=1e-4 if not realism else 1e-3)
+
+
+def test_generic_profiles_cannot_drive_the_si_dialect(tmp_path, capsys):
+    """The check above can fail: the generic profiles on an si lab are refused at once (the
+    init's error query answers '0 No error', not SCPI-1999's code,"message"), every role."""
+    with VirtualLab(scenario(dialect="si")) as lab:
+        bench = lab.write_bench(tmp_path / "b.toml")
+        text = bench.read_text(encoding="utf-8")
+        for role in lab.servers:
+            text = text.replace(f'"{lab.profile_name(role)}"',
+                                f'"generic-{lab.profile_name(role)[3:]}"')
+        bench.write_text(text, encoding="utf-8")
+        code, report = _probe(bench, capsys)
+    assert code == 1
+    for inst in report["instruments"]:
+        assert [c["operation"] for c in _failed(report, inst["role"])] == ["connect"]
+        assert "not an error-queue reply" in _failed(report, inst["role"])[0]["detail"]

@@ -11,6 +11,7 @@ import signal
 
 import pytest
 from _engine_support import (
+    DIALECTS,
     OPERATOR,
     count_points,
     dark,
@@ -252,3 +253,41 @@ def test_a_run_that_dies_right_after_its_row_is_created_resumes_without_force(tm
                          progress=False)
         assert out.status == "completed" and out.points_done == 4
         assert not store.events(run.id, ["forced"])
+
+
+@pytest.mark.parametrize("dialect", DIALECTS)
+def test_a_run_that_failed_mid_sweep_resumes_to_the_full_point_set(tmp_path, dialect):
+    """In-process and on both command dialects of the virtual lab: a run whose reduction
+    failed at its third point (status failed, two points stored, bench dark) resumes on the
+    same bench to the plan's whole point set, each point once."""
+    import labrun.reduce
+    from labrun.bench import load_bench
+    from labrun.engine import Seams, resume_run, run_plan
+    from labrun.vlab.lab import VirtualLab
+
+    real = labrun.reduce.reduce_trace
+    calls = {"n": 0}
+
+    def fails_once(*args, **kwargs):
+        calls["n"] += 1
+        if calls["n"] == 3:
+            raise RuntimeError("reduction blew up")
+        return real(*args, **kwargs)
+
+    with VirtualLab(scenario(dialect=dialect)) as lab:
+        plan_path = write_plan(tmp_path, long_powers(5))
+        bench = load_bench(write_bench(lab, tmp_path))
+        store = open_store(tmp_path / "runs.db")
+        with pytest.raises(RuntimeError, match="blew up"):
+            run_plan(load_plan(plan_path), bench, store, operator=OPERATOR, unattended=True,
+                     ack_safety=True, progress=False, seams=Seams(reduce_trace=fails_once))
+        run_id = store.latest_run_id()
+        assert store.get_run(run_id).status == "failed"
+        assert store.count_points(run_id) == 2 and dark(lab)
+        out = resume_run(run_id, store, operator=RESUMER, unattended=True, ack_safety=True,
+                         progress=False)
+        assert out.status == "completed" and out.points_done == 5 and dark(lab)
+    with store.session() as s:
+        keys = s.scalars(select(Point.key).where(Point.run_id == run_id)).all()
+    expected = [p.key for p in load_plan(plan_path).points()]
+    assert len(keys) == len(set(keys)) == len(expected) and set(keys) == set(expected)

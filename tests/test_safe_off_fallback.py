@@ -1,5 +1,6 @@
 """The fresh-connection safe-off fallback: when the run's own connections cannot switch a source
-off, new ones do, opened without init commands, retried briefly, every role still tried.
+off, new ones do (their init commands sent unjudged: a remote enable is needed, a refused
+*CLS is not), retried briefly, every role still tried.
 
 Checked on the virtual lab's own state (``lab.sources_off()``), not on mocks.
 """
@@ -134,3 +135,21 @@ def test_fallback_darkens_the_others_when_one_role_never_answers(tmp_path, inst_
         assert time.monotonic() - t0 < 5.0  # bounded: refused connections fail fast
         assert len(problems) == 1 and problems[0].startswith("laser_a")
         assert lab.sources_off() and dark(lab)  # laser_b off, attenuators at maximum
+
+
+def test_fallback_enables_remote_on_an_instrument_in_local_mode(tmp_path):
+    """Every instrument in the virtual lab's si dialect, where a fresh connection is refused
+    every setting and query until SYST:REM (its profiles' init): the fallback's fresh
+    connections send the init first, so every light-carrying role ends dark (with the init
+    skipped, OUTP:STAT OFF would be refused with -221 and the lasers stay on)."""
+    sc = scenario(dialect="si")
+    sc["instruments"]["amplifier"]["present"] = True
+    with VirtualLab(sc) as lab:
+        bench = load_bench(write_bench(lab, tmp_path))
+        _light(lab, "laser_a", "laser_b")
+        with lab.state.lock:
+            lab.state.amplifier.output = True
+            for att in lab.state.attenuators.values():
+                att.output, att.attenuation_db = True, 3.0
+        assert safe_off_fresh(bench) == []
+        assert dark(lab) and not lab.state.amplifier.output

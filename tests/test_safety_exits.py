@@ -14,6 +14,7 @@ import time
 
 import pytest
 from _engine_support import (
+    DIALECTS,
     OPERATOR,
     count_points,
     dark,
@@ -57,7 +58,8 @@ def _dark_within(lab, since: float) -> float:
     return time.monotonic() - since
 
 
-def test_exception_in_reduction(tmp_path):
+@pytest.mark.parametrize("dialect", DIALECTS)
+def test_exception_in_reduction(tmp_path, dialect):
     real = labrun.reduce.reduce_trace
     calls = {"n": 0}
     state: dict[str, float] = {}
@@ -70,7 +72,7 @@ def test_exception_in_reduction(tmp_path):
             raise RuntimeError("reduction blew up")
         return real(*args, **kwargs)
 
-    with VirtualLab(scenario()) as lab:
+    with VirtualLab(scenario(dialect=dialect)) as lab:
         plan, bench, store = _setup(tmp_path, lab)
         with pytest.raises(RuntimeError, match="blew up"):
             _run(plan, bench, store, seams=Seams(reduce_trace=failing))
@@ -80,11 +82,12 @@ def test_exception_in_reduction(tmp_path):
         assert store.count_points(run.id) == 2  # the failed point was not stored
 
 
-def test_timeout_beyond_retries(tmp_path):
+@pytest.mark.parametrize("dialect", DIALECTS)
+def test_timeout_beyond_retries(tmp_path, dialect):
     real = labrun.reduce.reduce_trace
     calls = {"n": 0}
 
-    with VirtualLab(scenario()) as lab:
+    with VirtualLab(scenario(dialect=dialect)) as lab:
         plan, bench, store = _setup(tmp_path, lab, osa_timeout_ms=150)
 
         def then_osa_goes_silent(*args, **kwargs):

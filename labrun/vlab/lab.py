@@ -24,11 +24,11 @@ from labrun.roles import ROLE_KINDS, SOURCE_ROLES
 from labrun.vlab.faults import FaultInjector
 from labrun.vlab.scenario import Scenario, as_scenario
 from labrun.vlab.scpi_server import InstrumentServer
+from labrun.vlab.sidialect import speak_dialect
 from labrun.vlab.siminstruments import (
     INSTRUMENT_CLASSES,
     AttenuatorInstrument,
     SimInstrument,
-    speak_dialect,
 )
 from labrun.vlab.state import LabState
 

@@ -83,9 +83,9 @@ class InstrumentSpec(_Strict):
     present: bool = True
     idn: str | None = Field(default=None, pattern=r"^[ -~]{1,200}$")  # printable, one reply
     port: int = Field(default=0, ge=0, le=65535)
-    # the command dialect: labrun's generic one, or "si" (lasers only so far: SI units, a
-    # remote-enable command after each connect, space-separated error replies; the
-    # drivers/si-laser.toml profile)
+    # the command dialect: labrun's generic one, or "si" (labrun.vlab.sidialect: SI units,
+    # a remote-enable command after each connect, space-separated error replies, no *OPC?;
+    # the drivers/si-<kind>.toml profiles)
     dialect: Literal["generic", "si"] = "generic"
     # osa only
     floor_dbm: float | None = Field(default=None, ge=-120, le=0)
@@ -113,9 +113,6 @@ class Instruments(_Strict):
         for role in SWEEP_ROLES:  # a scenario simulates every role a sweep needs
             if not getattr(self, role).present:
                 raise ValueError(f"{role} is required for a sweep and cannot be absent")
-        for role in type(self).model_fields:
-            if getattr(self, role).dialect == "si" and not role.startswith("laser"):
-                raise ValueError(f"{role}: the si dialect is simulated for lasers only")
         return self
 
 

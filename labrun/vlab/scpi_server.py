@@ -13,6 +13,7 @@ import socket
 import socketserver
 import threading
 
+from labrun.vlab.sidialect import speak_dialect as speak_dialect
 from labrun.vlab.siminstruments import INSTRUMENT_CLASSES as INSTRUMENT_CLASSES
 from labrun.vlab.siminstruments import TRACE_NAMES as TRACE_NAMES
 from labrun.vlab.siminstruments import WAVELENGTH_CAL as WAVELENGTH_CAL
@@ -24,7 +25,6 @@ from labrun.vlab.siminstruments import PolControllerInstrument as PolControllerI
 from labrun.vlab.siminstruments import PowerMeterInstrument as PowerMeterInstrument
 from labrun.vlab.siminstruments import SimInstrument
 from labrun.vlab.siminstruments import SwitchInstrument as SwitchInstrument
-from labrun.vlab.siminstruments import speak_dialect as speak_dialect
 
 log = logging.getLogger(__name__)
 MAX_INPUT_BYTES = 1 << 20  # a message longer than this without a newline overruns the buffer

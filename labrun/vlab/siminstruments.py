@@ -43,7 +43,7 @@ WAVELENGTH_CAL = "CALibration#:WLENgth"
 TRACE_NAMES = {"WLEN": "x", "LEVEL": "y"}
 
 
-def _source_switch(call: Call, lab: LabState) -> bool:
+def source_switch(call: Call, lab: LabState) -> bool:
     """OUTP:STAT value for a light source; switching on with the interlock open is error -221."""
     on = boolean(call)
     if on and not lab.interlock_closed:
@@ -76,20 +76,31 @@ class SimInstrument:
         # False: queries answer at once from memory, even during a sweep (an instrument that
         # does not hold its replies until pending operations finish).
         self.queries_wait = True
+        # False: in local mode (before remote_enable) queries are refused too, all but the
+        # common ones and the error queue (the si dialect; labrun.vlab.sidialect).
+        self.local_queries = True
+        self.dialect = "generic"
         self.table = CommandTable()
-        self._register_common()
+        self.rebuild_table()
         self.register()
 
+    def rebuild_table(self, *, opc: bool = True) -> None:
+        """A fresh command table with the common commands only (``opc`` False: without
+        ``*OPC``, ``*OPC?``, ``*WAI`` and ``STAT:BUSY?``); a dialect then adds its own."""
+        self.table = CommandTable()
+        self._register_common(opc=opc)
+
     # ---- tables ------------------------------------------------------------------------------
-    def _register_common(self) -> None:
+    def _register_common(self, *, opc: bool = True) -> None:
         """IEEE 488.2 common commands and the SCPI SYSTem subsystem."""
         t = self.table
         t.add("*IDN", lambda c: self.idn, query=True)
         t.add("*RST", self._rst, nargs=(0, 0))
         t.add("*CLS", self._cls, nargs=(0, 0))
-        t.add("*OPC", self._opc_set, nargs=(0, 0))
-        t.add("*OPC", lambda c: "1", query=True, waits=True)
-        t.add("*WAI", lambda c: None, nargs=(0, 0), waits=True)
+        if opc:
+            t.add("*OPC", self._opc_set, nargs=(0, 0))
+            t.add("*OPC", lambda c: "1", query=True, waits=True)
+            t.add("*WAI", lambda c: None, nargs=(0, 0), waits=True)
         t.add("*ESR", self._esr_query, query=True)
         t.add("*ESE", lambda c: self._set_ese(c), nargs=(1, 1))
         t.add("*ESE", lambda c: str(self.ese), query=True)
@@ -99,7 +110,8 @@ class SimInstrument:
         t.add("SYSTem:ERRor:COUNt", lambda c: str(len(self.errors)), query=True)
         t.add("SYSTem:VERSion", lambda c: "1999.0", query=True)
         t.add("SYSTem:REMote", lambda c: None, nargs=(0, 0))
-        t.add("STATus:BUSY", lambda c: "1" if self.busy() else "0", query=True)
+        if opc:
+            t.add("STATus:BUSY", lambda c: "1" if self.busy() else "0", query=True)
 
     def register(self) -> None:
         """Kind-specific commands (overridden)."""
@@ -178,11 +190,6 @@ class SimInstrument:
                     self.push_error(fault.code, fault.detail)
                 prefix = []
                 continue
-            if local and not (cmd.query or cmd.common) and \
-                    cmd.text.split()[0].upper() != self.remote_enable:
-                with self.lab.lock:
-                    self.push_error(-221, "remote not enabled")
-                continue
             found = None
             if cmd.common:
                 found = self.table.find_common(cmd.common, cmd.query)
@@ -196,6 +203,10 @@ class SimInstrument:
                 if found is None:
                     found = self.table.find(cmd.nodes, cmd.query)
                 prefix = scope[:-1] if found is not None else []
+            if local and not self._allowed_in_local(cmd, found):
+                with self.lab.lock:
+                    self.push_error(-221, "remote not enabled")
+                continue
             reply = self._run(cmd, found)
             if reply is not None:
                 replies.append(reply if isinstance(reply, bytes) else reply.encode("latin-1"))
@@ -204,6 +215,16 @@ class SimInstrument:
         if not replies:
             return None
         return b";".join(replies) + b"\n"
+
+    def _allowed_in_local(self, cmd: ParsedCommand,
+                          found: tuple[Entry, list[int | None]] | None) -> bool:
+        """What a connection may send before ``remote_enable``: that command, the common
+        ones, the error queue, and (unless ``local_queries`` is False) any query."""
+        if cmd.common or cmd.text.split()[0].upper() == self.remote_enable:
+            return True
+        if cmd.query and self.local_queries:
+            return True
+        return found is not None and found[0].handler == self._next_error
 
     def _run(self, cmd: ParsedCommand, found: tuple[Entry, list[int | None]] | None
              ) -> str | bytes | None:
@@ -284,7 +305,7 @@ class LaserInstrument(SimInstrument):
         self._state().power_dbm = 10.0 * math.log10(wire * 1e3) if self.si_units else wire
 
     def _set_output(self, call: Call) -> None:
-        self._state().output = _source_switch(call, self.lab)
+        self._state().output = source_switch(call, self.lab)
 
 
 class AmplifierInstrument(SimInstrument):
@@ -318,7 +339,7 @@ class AmplifierInstrument(SimInstrument):
         self._amp.power_dbm = number(call, *self.limits("set_power_dbm"), 10.0)
 
     def _set_output(self, call: Call) -> None:
-        self._amp.output = _source_switch(call, self.lab)
+        self._amp.output = source_switch(call, self.lab)
 
 
 class AttenuatorInstrument(SimInstrument):
@@ -364,14 +385,14 @@ class PolControllerInstrument(SimInstrument):
         t = self.table
         t.add("POLarization:ANGLe#", self._set_angle)
         t.add("POLarization:ANGLe#", self._angle, query=True)
-        t.add("POLarization:STOKes", self._set_stokes, nargs=(3, 3))
-        t.add("POLarization:STOKes", self._stokes, query=True)
+        t.add("POLarization:STOKes", self.set_stokes, nargs=(3, 3))
+        t.add("POLarization:STOKes", self.stokes, query=True)
 
     def reset(self) -> None:
         self.lab.pol.angles_deg = [0.0, 0.0, 0.0]
         self.lab.pol.stokes_target = None
 
-    def _paddle(self, call: Call) -> int:
+    def paddle(self, call: Call) -> int:
         n = call.suffix(1)
         first, last = generic_profile(self.kind).op("set_angle_deg").index_range or (1, 3)
         if not first <= n <= last:
@@ -379,14 +400,14 @@ class PolControllerInstrument(SimInstrument):
         return n
 
     def _set_angle(self, call: Call) -> None:
-        n = self._paddle(call)
+        n = self.paddle(call)
         self.lab.pol.angles_deg[n - 1] = number(call, *self.limits("set_angle_deg"), 0.0)
         self.lab.pol.stokes_target = None
 
     def _angle(self, call: Call) -> str:
-        return fmt(self.lab.pol.angles_deg[self._paddle(call) - 1])
+        return fmt(self.lab.pol.angles_deg[self.paddle(call) - 1])
 
-    def _set_stokes(self, call: Call) -> None:
+    def set_stokes(self, call: Call) -> None:
         lo, hi = self.limits("set_stokes")
         s = np.array([number(call, lo, hi, 0.0, i) for i in range(3)])
         norm = float(np.linalg.norm(s))
@@ -395,7 +416,7 @@ class PolControllerInstrument(SimInstrument):
         x, y, z = (float(v) for v in s / norm)
         self.lab.pol.stokes_target = (x, y, z)
 
-    def _stokes(self, call: Call) -> str:
+    def stokes(self, call: Call) -> str:
         from labrun.physics.polarisation import paddles_to_stokes
 
         pol = self.lab.pol
@@ -421,9 +442,9 @@ class OsaInstrument(SimInstrument):
         t.add("[SENSe]:WAVelength:SPAN", lambda c: fmt(osa.span_nm), query=True)
         t.add("[SENSe]:BANDwidth[:RESolution]", self._setter("rbw_nm", "set_rbw_nm"))
         t.add("[SENSe]:BANDwidth[:RESolution]", lambda c: fmt(osa.rbw_nm), query=True)
-        t.add("[SENSe]:SWEep:POINts", self._set_points)
+        t.add("[SENSe]:SWEep:POINts", self.set_points)
         t.add("[SENSe]:SWEep:POINts", lambda c: str(osa.points), query=True)
-        t.add("INITiate[:IMMediate]", self._init, nargs=(0, 0), waits=True)
+        t.add("INITiate[:IMMediate]", self.start_sweep, nargs=(0, 0), waits=True)
         # SCPI-1999 TRACe[:DATA]? <trace_name>, with trace names of labrun's own.
         t.add("TRACe[:DATA]", self._named_trace, query=True, waits=True, nargs=(1, 1))
         t.add("[SENSe]:WAVelength:STARt", lambda c: fmt(osa.center_nm - osa.span_nm / 2),
@@ -447,7 +468,7 @@ class OsaInstrument(SimInstrument):
             setattr(self.lab.osa, name, number(call, lo, hi, getattr(self.lab.osa, name)))
         return handler
 
-    def _set_points(self, call: Call) -> None:
+    def set_points(self, call: Call) -> None:
         self.lab.osa.points = int(round(number(call, *self.limits("set_points"), 1025)))
 
     def _set_format(self, call: Call) -> None:
@@ -478,7 +499,7 @@ class OsaInstrument(SimInstrument):
                 return
             self.stopping.wait(min(left, 0.1))
 
-    def _init(self, call: Call) -> None:
+    def start_sweep(self, call: Call) -> None:
         self.lab.sweep()
 
     def _named_trace(self, call: Call) -> str | bytes:
@@ -489,7 +510,9 @@ class OsaInstrument(SimInstrument):
             raise ScpiFault(-141, f"{call.header} {call.args[0]}")
         return self._trace(call, axis)
 
-    def _trace(self, call: Call, axis: str) -> str | bytes:
+    def trace_values(self, axis: str) -> np.ndarray:
+        """The last sweep's axis ("x", nm) or levels ("y", dBm per RBW); a short-trace fault
+        cuts the levels."""
         osa = self.lab.osa
         if osa.sweeps == 0:  # trace memory at power-on: a dark trace at the floor, no error
             floor = self.lab.scenario.instruments.osa.floor_dbm
@@ -502,12 +525,16 @@ class OsaInstrument(SimInstrument):
             short = self.faults.short_trace_length(len(data))
             if short is not None:
                 data = data[:short]
-        values = np.asarray(data, dtype=np.float32 if osa.real32 else float)
+        return np.asarray(data, dtype=float)
+
+    def _trace(self, call: Call, axis: str) -> str | bytes:
+        osa = self.lab.osa
+        values = self.trace_values(axis)
         if not osa.real32:
             head = [str(values.size)] if self.ascii_count else []
             return self.ascii_separator.join(head + [f"{v:.6f}" if axis == "x" else f"{v:.3f}"
                                                      for v in values])
-        body = values.astype("<f4" if osa.little_endian else ">f4").tobytes()
+        body = values.astype(np.float32).astype("<f4" if osa.little_endian else ">f4").tobytes()
         return build_block(body)  # IEEE 488.2 definite length
 
 
@@ -556,13 +583,13 @@ class SwitchInstrument(SimInstrument):
 
     def register(self) -> None:
         t = self.table
-        t.add("ROUTe#:PATH", self._set_path)
+        t.add("ROUTe#:PATH", self.set_path)
         t.add("ROUTe#:PATH", lambda c: str(self._switch.path), query=True)
 
     def reset(self) -> None:
         self._switch.path = 1
 
-    def _set_path(self, call: Call) -> None:
+    def set_path(self, call: Call) -> None:
         value = number(call, *self.limits("set_path"), 1)
         if value != int(value):
             raise ScpiFault(-224, f"{call.header} {call.args[0]}")
@@ -579,11 +606,3 @@ INSTRUMENT_CLASSES: dict[str, type[SimInstrument]] = {
     "switch": SwitchInstrument,
 }
 
-
-def speak_dialect(inst: SimInstrument, dialect: str) -> None:
-    """Make ``inst`` speak a dialect other than the generic one (see scenario.InstrumentSpec)."""
-    if dialect != "si" or not isinstance(inst, LaserInstrument):
-        raise ValueError(f"the {dialect!r} dialect is not simulated for a {inst.kind}")
-    inst.si_units = True
-    inst.remote_enable = "SYST:REM"
-    inst.error_reply = "{code} {short}"
