@@ -526,3 +526,73 @@ def test_generic_profiles_cannot_drive_the_si_dialect(tmp_path, capsys):
     for inst in report["instruments"]:
         assert [c["operation"] for c in _failed(report, inst["role"])] == ["connect"]
         assert "not an error-queue reply" in _failed(report, inst["role"])[0]["detail"]
+
+
+# -- probe on the si dialect: wrong units fail, with the reason -----------------------------
+
+@pytest.fixture()
+def si_lab():
+    sc = scenario(dialect="si")
+    for role in ("amplifier", "power_meter", "switch"):
+        sc["instruments"][role]["present"] = True
+    with VirtualLab(sc) as vl:
+        yield vl
+
+
+def test_probe_passes_every_si_profile(si_lab, tmp_path, capsys):
+    """The shipped si profiles pass the probe on the si lab, the OSA's start/stop axis
+    included (checked as a trace axis: 1025 samples, increasing, within the band)."""
+    code, report = _probe(si_lab.write_bench(tmp_path / "b.toml"), capsys)
+    assert code == 0 and report["ok"], [_failed(report, i["role"])
+                                        for i in report["instruments"]]
+    osa = next(i for i in report["instruments"] if i["role"] == "osa")
+    axis = next(c for c in osa["checks"] if c["operation"] == "trace_axis")
+    assert axis["detail"].startswith("1025 points, 1545..1555 nm")
+
+
+@pytest.mark.parametrize(("role", "old", "new", "operation", "reason"), [
+    # the calibration wavelength read in m, the profile saying nm: 1.55e-06 nm
+    ("attenuator_a", 'query = "ATT:WAV?"\nparse = "float"\nunit = "nm"\nwire_unit = "m"',
+     'query = "ATT:WAV?"\nparse = "float"\nunit = "nm"', "read_wavelength_nm",
+     "outside the band 1250..1650 nm"),
+    # m read as um: 0.00155 nm
+    ("power_meter", 'query = "METR:WAV?"\nparse = "float"\nunit = "nm"\nwire_unit = "m"',
+     'query = "METR:WAV?"\nparse = "float"\nunit = "nm"\nwire_unit = "um"',
+     "read_wavelength_nm", "outside the band 800..1700 nm"),
+    # 10 dBm = 0.01 W read as 0.01 mW: -20 dBm, below the setting's range
+    ("amplifier", 'query = "AMPL:POW?"\nparse = "float"\nunit = "dBm"\nwire_unit = "W"',
+     'query = "AMPL:POW?"\nparse = "float"\nunit = "dBm"\nwire_unit = "mW"', "read_power_dbm",
+     "outside set_power_dbm's range [0, 27]"),
+    ("osa", 'query = "SPEC:CENT?"\nparse = "float"\nunit = "nm"\nwire_unit = "m"',
+     'query = "SPEC:CENT?"\nparse = "float"\nunit = "nm"', "read_center_nm",
+     "outside set_center_nm's range [1200, 1700]"),
+    # the start/stop axis taken as nm: 1.545e-06..1.555e-06 nm
+    ("osa", 'axis_wire_unit = "m"', 'axis_wire_unit = "nm"', "trace_axis",
+     "outside the band 1200..1700 nm"),
+], ids=["attenuator-m-as-nm", "meter-m-as-um", "amplifier-W-as-mW", "osa-centre-m-as-nm",
+        "osa-axis-m-as-nm"])
+def test_probe_fails_an_si_profile_whose_units_are_wrong(si_lab, tmp_path, capsys, role, old,
+                                                         new, operation, reason):
+    """Issue 15's done-when for the non-laser roles: a shipped si profile with one unit wrong
+    fails exactly that check, with the reason; exit 1. (Angles in rad read as degrees, and a
+    dark trace's levels in W read as dBm, stay plausible: no value check can see those; a
+    setting's read-back would.)"""
+    name = si_lab.profile_name(role)
+    text = Path(find_file(f"{name}.toml", "drivers")).read_text(encoding="utf-8")
+    assert old in text
+    prof = tmp_path / f"wrong-{name}.toml"
+    prof.write_text(text.replace(old, new, 1).replace(f'name = "{name}"',
+                                                      f'name = "wrong-{name}"', 1),
+                    encoding="utf-8")
+    bench = si_lab.write_bench(tmp_path / "b.toml")
+    head, _, tail = bench.read_text(encoding="utf-8").partition(f"[instruments.{role}]")
+    bench.write_text(head + f"[instruments.{role}]" +
+                     tail.replace(f'profile = "{name}"', f'profile = "{prof}"', 1),
+                     encoding="utf-8")
+    code, report = _probe(bench, capsys)
+    assert code == 1
+    failed = _failed(report, role)
+    assert [c["operation"] for c in failed] == [operation]
+    assert reason in failed[0]["detail"]
+    assert all(not _failed(report, i["role"]) for i in report["instruments"]
+               if i["role"] != role)

@@ -91,22 +91,31 @@ PLAUSIBLE_DBM = (-120.0, 40.0)
 PLAUSIBLE_PEAK_DBM = (-150.0, 40.0)
 
 
+def axis_doubt(band: tuple[float, float] | None, value: Any, seen: dict[str, Any]
+               ) -> str | None:
+    """Why a wavelength axis (nm) cannot be right, or None: strictly increasing and finite,
+    as many samples as ``read_points`` says, within the band (plus 100 nm)."""
+    import numpy as np
+
+    x = np.asarray(value, dtype=float)
+    if x.size < 2 or not np.all(np.isfinite(x)) or not np.all(np.diff(x) > 0):
+        return "the wavelength axis is not strictly increasing finite numbers"
+    points = seen.get("read_points")
+    if isinstance(points, int) and x.size != points:
+        return f"the axis has {x.size} samples, read_points says {points}"
+    if band is not None and (x[0] < band[0] - 100 or x[-1] > band[1] + 100):
+        return (f"the axis {x[0]:.6g}..{x[-1]:.6g} nm lies outside the band "
+                f"{band[0]:g}..{band[1]:g} nm (wrong unit?)")
+    return None
+
+
 def implausible(profile: Any, op: Operation, value: Any, seen: dict[str, Any]) -> str | None:
     """Why a value read by ``op`` cannot be right (wrong unit or form), or None when it can."""
     import numpy as np
 
     band = profile.band()
     if op.name == "read_trace_x":
-        x = np.asarray(value, dtype=float)
-        if x.size < 2 or not np.all(np.isfinite(x)) or not np.all(np.diff(x) > 0):
-            return "the wavelength axis is not strictly increasing finite numbers"
-        points = seen.get("read_points")
-        if isinstance(points, int) and x.size != points:
-            return f"the axis has {x.size} samples, read_points says {points}"
-        if band is not None and (x[0] < band[0] - 100 or x[-1] > band[1] + 100):
-            return (f"the axis {x[0]:.6g}..{x[-1]:.6g} nm lies outside the band "
-                    f"{band[0]:g}..{band[1]:g} nm (wrong unit?)")
-        return None
+        return axis_doubt(band, value, seen)
     if op.name == "read_trace_y":
         y = np.asarray(value, dtype=float)
         axis = seen.get("read_trace_x")
@@ -191,6 +200,9 @@ def probe_instrument(bench: Bench, role: str, traffic_log: TrafficLog | None = N
         for op in spec.profile.read_operations():
             if op.name != "identify":
                 result.checks.append(_check_operation(adapter, op, seen))
+        trace = spec.profile.trace
+        if trace is not None and trace.axis_from_start_stop:
+            result.checks.append(_check_start_stop_axis(adapter, seen))
         if spec.profile.error_query:
             result.checks.append(_check_error_queue(adapter))
         else:
@@ -201,6 +213,29 @@ def probe_instrument(bench: Bench, role: str, traffic_log: TrafficLog | None = N
     finally:
         adapter.close()
     return result
+
+
+def _check_start_stop_axis(adapter: Any, seen: dict[str, Any]) -> Check:
+    """The axis an OSA without an axis query gives by its start and stop queries, as many
+    samples as the level trace read, judged as ``read_trace_x`` would be."""
+    import numpy as np
+
+    from labrun.scpi import NoAnswerError
+
+    y = seen.get("read_trace_y")
+    n = int(np.asarray(y).size) if y is not None else seen.get("read_points")
+    if not isinstance(n, int) or n < 2:
+        return Check("trace_axis", False, "no level trace or point count to size the axis")
+    try:
+        x = adapter.axis_from_start_stop(n)
+    except NoAnswerError:
+        raise
+    except LabrunError as exc:
+        return Check("trace_axis", False, str(exc))
+    detail = f"{x.size} points, {x.min():.6g}..{x.max():.6g} nm (start/stop queries)"
+    reason = axis_doubt(adapter.profile.band(), x, seen)
+    return Check("trace_axis", reason is None, detail if reason is None else
+                 f"{detail}: {reason}")
 
 
 def _check_error_queue(adapter: Adapter) -> Check:

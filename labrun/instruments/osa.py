@@ -63,14 +63,14 @@ class OsaAdapter(Adapter):
         trace = self.profile.trace
         if trace is not None and trace.axis_from_start_stop:
             y = self.read("read_trace_y")
-            return self._axis_from_start_stop(y.size), y
+            return self.axis_from_start_stop(y.size), y
         x = self.read("read_trace_x")
         y = self.read("read_trace_y")
         if x.size != y.size or x.size == 0:
             raise self._instrument_error(f"short trace: x has {x.size} points and y {y.size}")
         return x, y
 
-    def _axis_from_start_stop(self, n: int) -> np.ndarray:
+    def axis_from_start_stop(self, n: int) -> np.ndarray:
         """The wavelength axis (nm) from the profile's start and stop queries: n samples
         evenly spaced, as a grating OSA samples its sweep."""
         from labrun.wireunits import from_wire
