@@ -17,7 +17,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Sequence
-from dataclasses import replace
+from dataclasses import dataclass, replace
 from typing import Any
 
 import numpy as np
@@ -36,10 +36,16 @@ from labrun.lines import grid_ks
 from labrun.physics.fibre import Fibre
 from labrun.physics.nlse import propagate_tones
 from labrun.physics.units import dbm_to_w, effective_length_km
-from labrun.uncertainty import Component, Uncertainties, combine
+from labrun.uncertainty import COMPONENTS, Component, Uncertainties, combine
 
 EXACT_MODEL = ("split-step NLSE (docs/design.md §5.4) as forward model: closed-form fit "
                "iterated on data corrected by split-step minus closed-form ratios")
+OFFSET_MODEL = ("launched-power offset of one arm (nuisance of the exact fit): output tone ratio "
+                "b/a against the launched one, and the bench's calibration uncertainty as prior")
+OFFSET_CONVENTION = "true launched power = recorded power_<arm>_dbm + offset, dB"
+OFFSET_SOURCE = "launched power a, b (fitted offsets)"
+POWER_FIELDS = ("power_a_db", "power_b_db")
+DIFF_U_FLOOR_DB = 1e-4  # keeps the offsets' normal matrix well conditioned on noiseless data
 FIT_RTOL = 1e-3  # split-step tolerance inside the fit: lines down to -90 dBc within 0.01 dB
 ITERATIONS = 3
 
@@ -84,18 +90,19 @@ def _params(res: dict[str, FitResult], d_given: float | None, s_given: float
 
 
 def _corrections(t: dict[str, np.ndarray], cop: np.ndarray, fibre: Fibre, lam_ref: float
-                 ) -> tuple[np.ndarray, np.ndarray]:
-    """Per point: 10 log10(exact / closed-form) of the high and low first-sideband ratios."""
+                 ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Per point: 10 log10(exact / closed-form) of the high and low first-sideband ratios, and
+    the split-step's output tone ratio b/a over the launched one (dB; depletion, near 0)."""
     n = t["power_a_dbm"].size
     p_a, p_b = dbm_to_w(t["power_a_dbm"]), dbm_to_w(t["power_b_dbm"])
     lam = t.get("wavelength_a_nm", np.full(n, lam_ref))
     lam = np.where(np.isnan(lam), lam_ref, lam)
     sp = t["spacing_ghz"]
     ks = grid_ks(2)
-    corr_hi, corr_lo = np.zeros(n), np.zeros(n)
+    corr_hi, corr_lo, corr_tone = np.zeros(n), np.zeros(n), np.zeros(n)
     l_eff = effective_length_km(fibre.length_km, fibre.loss_db_per_km)
     g = fibre.gamma_per_w_per_km
-    cache: dict[tuple, tuple[float, float]] = {}
+    cache: dict[tuple, tuple[float, float, float]] = {}
     for i in range(n):
         c = float(np.clip(cop[i], 0.0, 1.0)) if math.isfinite(cop[i]) else 1.0
         if not (math.isfinite(sp[i]) and sp[i] > 0 and c > 0):
@@ -117,16 +124,154 @@ def _corrections(t: dict[str, np.ndarray], cop: np.ndarray, fibre: Fibre, lam_re
                     g * nl_power_w(key[2], key[3], side))[0]
                 closed.append(eta * c * g**2 * l_eff**2 * key[2] * key[3])
             cache[key] = (10 * math.log10(exact_hi / closed[0]),
-                          10 * math.log10(exact_lo / closed[1]))
-        corr_hi[i], corr_lo[i] = cache[key]
-    return corr_hi, corr_lo
+                          10 * math.log10(exact_lo / closed[1]),
+                          10 * math.log10(w[ks.index(1)] / w[ks.index(0)] * key[2] / key[3]))
+        corr_hi[i], corr_lo[i], corr_tone[i] = cache[key]
+    return corr_hi, corr_lo, corr_tone
+
+
+@dataclass(frozen=True)
+class PowerOffsets:
+    """Fitted launched-power offsets of arms a and b (dB) with their covariance."""
+
+    value: np.ndarray  # (offset a, offset b), dB
+    cov: np.ndarray  # 2 x 2, dB^2
+    prior_u_db: tuple[float, float]
+    diff_db: float = float("nan")  # offset b - offset a measured by the output tone ratio
+    diff_u_db: float = float("nan")
+    n_tone: int = 0
+
+
+def fit_power_offsets(t: dict[str, np.ndarray], tone_corr_db: np.ndarray, u_a_db: float,
+                      u_b_db: float, u_osa_db: float, *, prior: bool = True) -> PowerOffsets:
+    """Launched-power offsets of the two arms by weighted linear least squares.
+
+    Rows: (1) the output tone ratio b/a in dB minus the recorded launched ratio and the
+    split-step's own change of that ratio (``tone_corr_db``, depletion) measures offset b -
+    offset a; its mean over the points, with a standard uncertainty from the scatter (Type A)
+    and the OSA relative amplitude (Type B, not averaged down). (2) The prior rows offset/u of
+    each arm, u the bench's stated launched-power calibration uncertainty. A common offset of
+    both arms changes no line ratio (the NLSE's spectrum depends on gamma |A|^2 only), so their
+    sum is held by the prior alone: without it (``prior=False``) the system is singular. An
+    arm with u = 0 is held at 0.
+    """
+    u = (float(u_a_db), float(u_b_db))
+    free = [i for i in range(2) if u[i] > 0]
+    rows: list[list[float]] = []
+    rhs: list[float] = []
+    diff, diff_u, n_tone = float("nan"), float("nan"), 0
+    if {"tone_low_0", "tone_high_0"} <= set(t):
+        d = (t["tone_high_0"] - t["tone_low_0"] - (t["power_b_dbm"] - t["power_a_dbm"])
+             - tone_corr_db)
+        d = d[np.isfinite(d)]
+        n_tone = int(d.size)
+        if n_tone >= 2:
+            diff = float(np.mean(d))
+            diff_u = max(math.sqrt(float(np.var(d, ddof=1)) / n_tone + u_osa_db ** 2),
+                         DIFF_U_FLOOR_DB)
+            rows.append([-1.0 / diff_u, 1.0 / diff_u])
+            rhs.append(diff / diff_u)
+    if prior:
+        for i in free:
+            rows.append([1.0 / u[i] if j == i else 0.0 for j in range(2)])
+            rhs.append(0.0)
+    value, cov = np.zeros(2), np.zeros((2, 2))
+    if free and rows:
+        a = np.asarray(rows)[:, free]
+        cov_free = np.linalg.inv(a.T @ a)
+        value[free] = cov_free @ a.T @ np.asarray(rhs)
+        cov[np.ix_(free, free)] = cov_free
+    return PowerOffsets(value, cov, u, diff, diff_u, n_tone)
+
+
+def _shifted(t: dict[str, np.ndarray], offsets: PowerOffsets) -> dict[str, np.ndarray]:
+    """The point table with each arm's recorded launched power moved by its fitted offset."""
+    t2 = dict(t)
+    t2["power_a_dbm"] = t["power_a_dbm"] + offsets.value[0]
+    t2["power_b_dbm"] = t["power_b_dbm"] + offsets.value[1]
+    return t2
+
+
+def _tone_residual_rms(t: dict[str, np.ndarray], offsets: PowerOffsets,
+                       tone_corr_db: np.ndarray) -> float:
+    """RMS (dB) of measured minus modelled output tone ratio b/a at the moved powers."""
+    if not {"tone_low_0", "tone_high_0"} <= set(t):
+        return float("nan")
+    moved = _shifted(t, offsets)
+    r = (t["tone_high_0"] - t["tone_low_0"] - (moved["power_b_dbm"] - moved["power_a_dbm"])
+         - tone_corr_db)
+    r = r[np.isfinite(r)]
+    return float(np.sqrt(np.mean(r * r))) if r.size else float("nan")
+
+
+def _offset_results(offsets: PowerOffsets, residual_rms: float) -> dict[str, FitResult]:
+    """power_offset_a and power_offset_b as results (u95 = 2 u: the offsets are near-normal);
+    ``residual_rms``: the output tone ratio's residual at the moved powers."""
+    out = {}
+    for i, arm in enumerate("ab"):
+        u = math.sqrt(max(float(offsets.cov[i, i]), 0.0))
+        stat = Component("statistical (fit, with the prior)", float("nan"), "", u)
+        u_c, u95 = combine([stat])
+        out[f"power_offset_{arm}"] = FitResult(
+            float(offsets.value[i]), u, offsets.n_tone, residual_rms, OFFSET_MODEL, "dB",
+            extra={"prior_u_db": offsets.prior_u_db[i], "tone_ratio_diff_db": offsets.diff_db,
+                   "tone_ratio_diff_u_db": offsets.diff_u_db,
+                   "correlation_ab": _correlation(offsets.cov)},
+            warnings=([] if offsets.n_tone >= 2 else
+                      ["no output tone ratio on >= 2 points: the offset is its prior"]),
+            conventions=OFFSET_CONVENTION, u_combined=u_c, u95=u95, budget=[stat.to_dict()])
+    return out
+
+
+def _correlation(cov: np.ndarray) -> float:
+    """Correlation coefficient of the two offsets (NaN when one is held at 0)."""
+    den = math.sqrt(max(float(cov[0, 0] * cov[1, 1]), 0.0))
+    return float(cov[0, 1] / den) if den > 0 else float("nan")
+
+
+def _offset_budget(results: dict[str, FitResult], t2: dict[str, np.ndarray],
+                   offsets: PowerOffsets, refit: Any) -> dict[str, FitResult]:
+    """Replace the per-arm launched-power rows by one row for the fitted offsets.
+
+    Sensitivities c_i of each parameter to offset i from refits at +-u_i (u_i the offset's
+    posterior standard uncertainty), contribution sqrt(c^T V c) with V the offsets' covariance
+    (JCGM 100:2008 5.2.2, correlated inputs); the prior's calibration uncertainty is inside V,
+    so the bench's per-arm rows would count it twice and are dropped.
+    """
+    sens: dict[str, np.ndarray] = {k: np.zeros(2) for k in results}
+    for i, col in enumerate(("power_a_dbm", "power_b_dbm")):
+        h = math.sqrt(max(float(offsets.cov[i, i]), 0.0))
+        if h == 0:
+            continue
+        moved = []
+        for sign in (1.0, -1.0):
+            t3 = dict(t2)
+            t3[col] = t2[col] + sign * h
+            moved.append(refit(t3))
+        for k in sens:
+            up, down = moved[0].get(k), moved[1].get(k)
+            sens[k][i] = ((up.value - down.value) / (2 * h) if up is not None and down is not
+                          None else float("nan"))
+    drop = {src for src, name, _ in COMPONENTS if name in POWER_FIELDS}
+    out = dict(results)
+    for k, r in results.items():
+        if not r.budget or not math.isfinite(r.value):
+            continue
+        c = sens[k]
+        contrib = math.sqrt(max(float(c @ offsets.cov @ c), 0.0)) if np.isfinite(c).all() \
+            else float("nan")
+        comps = [Component(**row) for row in r.budget if row["source"] not in drop]
+        comps.insert(1, Component(OFFSET_SOURCE, float("nan"), "", contrib))
+        u_c, u95 = combine(comps)
+        out[k] = replace(r, budget=[x.to_dict() for x in comps], u_combined=u_c, u95=u95)
+    return out
 
 
 def fit_spool(runs_points: Sequence[Any], spool_length_km: float, loss_db_per_km: float, *,
               dispersion_ps_per_nm_km: float | None = None, slope_ps_per_nm2_km: float = 0.0,
               reference_wavelength_nm: float = 1550.0, polarisation: PolFrame | None = None,
-              uncertainties: Uncertainties | None = None,
-              iterations: int = ITERATIONS) -> dict[str, FitResult]:
+              uncertainties: Uncertainties | None = None, iterations: int = ITERATIONS,
+              power_offsets: bool = True) -> dict[str, FitResult]:
     """Fit gamma, D and the slope of one spool from all its runs with the exact model.
 
     ``runs_points``: one point table per run (DataFrame or list of dicts, as for
@@ -136,6 +281,11 @@ def fit_spool(runs_points: Sequence[Any], spool_length_km: float, loss_db_per_km
     model as a "model (closed form vs exact)" component. With ``uncertainties`` every result
     carries its GUM budget (labrun.uncertainty; the exact results' model corrections are held
     fixed while the inputs are moved).
+    With ``power_offsets`` the launched power of each arm carries a fitted offset (nuisance
+    parameters ``power_offset_a``/``_b`` in the result, fit_power_offsets), its prior the
+    bench's calibration uncertainty (``uncertainties``, else the documented defaults); the
+    exact results then use the moved powers and their budget has one row for the offsets in
+    place of the per-arm calibration rows.
     """
     tables = [points_table(p) for p in runs_points]
     if not tables:
@@ -153,11 +303,16 @@ def fit_spool(runs_points: Sequence[Any], spool_length_km: float, loss_db_per_km
     cop, _ = _copolar(t, n, polarisation)
     current = closed
     history = [theta]
+    unc = uncertainties or Uncertainties()
+    u_arms = (unc.power_a_db, unc.power_b_db) if power_offsets else (0.0, 0.0)
+    offsets = fit_power_offsets(t, np.zeros(n), 0.0, 0.0, unc.osa_amplitude_db)
     for _ in range(iterations):
         fib = Fibre(spool_length_km, loss_db_per_km, theta[0], theta[1], theta[2],
                     reference_wavelength_nm)
-        c_hi, c_lo = _corrections(t, cop, fib, reference_wavelength_nm)
-        t2 = dict(t)
+        c_hi, c_lo, c_tone = _corrections(_shifted(t, offsets), cop, fib,
+                                          reference_wavelength_nm)
+        offsets = fit_power_offsets(t, c_tone, *u_arms, unc.osa_amplitude_db)
+        t2 = _shifted(t, offsets)
         if "sideband_high_1" in t:
             t2["sideband_high_1"] = t["sideband_high_1"] - c_hi
         if "sideband_low_1" in t:
@@ -170,8 +325,16 @@ def fit_spool(runs_points: Sequence[Any], spool_length_km: float, loss_db_per_km
         theta = new
         history.append(theta)
     if uncertainties is not None:
-        current = fit_run(t2, spool_length_km, loss_db_per_km, **kw,
-                          uncertainties=uncertainties, dispersion_start=dispersion_of(current))
+        start = dispersion_of(current)
+        if power_offsets:
+            unc_lines = replace(uncertainties, power_a_db=0.0, power_b_db=0.0)
+            current = fit_run(t2, spool_length_km, loss_db_per_km, **kw,
+                              uncertainties=unc_lines, dispersion_start=start)
+            current = _offset_budget(current, t2, offsets, lambda tt: fit_run(
+                tt, spool_length_km, loss_db_per_km, **kw, dispersion_start=start))
+        else:
+            current = fit_run(t2, spool_length_km, loss_db_per_km, **kw,
+                              uncertainties=uncertainties, dispersion_start=start)
     step = [abs(a - b) for a, b in zip(history[-1], history[-2], strict=True)]
     no_d = dispersion_ps_per_nm_km is None and not math.isfinite(
         closed.get("dispersion", FitResult(float("nan"), 0, 0, 0, "", "")).value)
@@ -190,6 +353,13 @@ def fit_spool(runs_points: Sequence[Any], spool_length_km: float, loss_db_per_km
             warn.append("exact model run with D = 0 and no slope: no dispersion given and "
                         "none fitted (add a spacing run of this spool, or give D)")
         out[name] = replace(r, model=EXACT_MODEL, extra=extra, warnings=warn)
+    if power_offsets:
+        out.update(_offset_results(offsets, _tone_residual_rms(t, offsets, c_tone)))
+        if uncertainties is None:
+            for arm in "ab":
+                out[f"power_offset_{arm}"].warnings.append(
+                    "prior: the documented default calibration uncertainty (no bench "
+                    "calibration given)")
     # Model error of each closed-form result: its distance from the exact one.
     for cf, ex in (("gamma_small_signal", "gamma"), ("gamma_bessel", "gamma"),
                    ("dispersion", "dispersion"), ("dispersion_slope", "dispersion_slope")):

@@ -23,7 +23,8 @@ from labrun.store.models import Fit, FitParameter, Run, Spool
 
 COVERAGE_P = 0.95  # expanded uncertainty coverage probability (GUM 6.2, 6.3)
 METHOD = ("labrun.fits.fit_spool on the runs' points together (closed forms, then the "
-          "split-step forward model), GUM budget from the bench calibration")
+          "split-step forward model with each arm's launched-power offset fitted), GUM budget "
+          "from the bench calibration")
 
 
 @dataclass

@@ -41,6 +41,9 @@ def format_value(value: float | None, stderr: float | None, u95: float | None,
 
 
 BUDGET_SHOWN = ("gamma", "dispersion", "dispersion_slope")  # the exact model's parameters
+OFFSETS_NOTE = ("  (launched power a, b: the arms' offsets are fitted with the exact model "
+                "(power_offset_a/_b, the bench's calibration uncertainty as their prior); that "
+                "budget row replaces the per-arm calibration rows, counted once)")
 
 
 def fit_text(record: Any) -> str:
@@ -63,6 +66,8 @@ def fit_text(record: Any) -> str:
         out.extend(f"    ! {w}" for w in p.extra.get("warnings", []) if not w.startswith("refused"))
     out.append("  (+/- statistical standard uncertainty of the fit; U95 expanded uncertainty: "
                "the GUM budget, k = 2, where a budget is shown, else Student t on the fit)")
+    if "power_offset_a" in record.parameters:
+        out.append(OFFSETS_NOTE)
     return "\n".join(out)
 
 
