@@ -4,8 +4,12 @@
    ``python -c`` script written here that opens the same SQLite file with sqlite3 and runs the
    same queries (run row, point count, recent point times, last point, its lines, faults) and
    prints them, and against the bare interpreter (``python -c pass``), all in the same run.
+2. ``labrun run`` start-up: from the process's start to its first exchange with an instrument
+   (the first line of its ``--traffic-log``), on the virtual lab served from its own process at
+   time scale 0, against the bare interpreter's start in the same run (target: half of labrun
+   0.2.0's, which was about 1.1 s, 90 % imports). Also shown: the whole run of 2 points.
 
-    python benchmarks/bench_startup.py [--repeats 7] [--points 200]
+    python benchmarks/bench_startup.py [--repeats 7] [--points 200] [--run-repeats 5]
 """
 
 from __future__ import annotations
@@ -95,13 +99,90 @@ def bench_status(folder: Path, repeats: int, points: int) -> None:
     print(f"   labrun status --json      {status_json:.3f} s ({status_json / plain:.2f}x)")
 
 
+RUN_PLAN = """[plan]
+name = "start-up benchmark"
+spool = "HNLF-A17"
+orders = 3
+
+[fixed]
+wavelength_a_nm = 1550.0
+spacing_ghz = 100.0
+pol_angles_deg = [0.0, 0.0, 0.0]
+
+[axes.power_a_dbm]
+values = [-6.0, -4.0]
+
+[axes.power_b_dbm]
+values = [-6.0, -4.0]
+
+[order]
+zip = [["power_a_dbm", "power_b_dbm"]]
+"""
+
+
+def _serve(folder: Path) -> tuple[subprocess.Popen, Path]:
+    """``labrun sim serve`` at time scale 0 in its own process; (process, bench file)."""
+    bench = folder / "served.toml"
+    proc = subprocess.Popen([sys.executable, "-m", "labrun", "sim", "serve", "--scenario",
+                             "default-scenario.toml", "--bench-out", str(bench),
+                             "--time-scale", "0"],
+                            stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+    t0 = time.monotonic()
+    while not bench.exists() or not bench.read_text().strip():
+        if proc.poll() is not None or time.monotonic() - t0 > 60:
+            raise SystemExit("labrun sim serve did not start")
+        time.sleep(0.05)
+    time.sleep(0.2)
+    return proc, bench
+
+
+def _one_run(folder: Path, bench: Path, plan: Path, k: int) -> tuple[float, float]:
+    """One cold ``labrun run``: (process start to its first instrument exchange, to exit)."""
+    import json
+
+    log = folder / f"traffic-{k}.jsonl"
+    t0 = time.time()
+    subprocess.run([sys.executable, "-m", "labrun", "run", str(plan), "--bench", str(bench),
+                    "--db", str(folder / f"run-{k}.db"), "--unattended", "--operator",
+                    "benchmark", "--ack-safety", "--no-progress", "--traffic-log", str(log)],
+                   check=True, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+    t1 = time.time()
+    first = min(json.loads(line)["timestamp"] for line in log.read_text().splitlines()
+                if line.strip())
+    return first - t0, t1 - t0
+
+
+def bench_run_startup(folder: Path, repeats: int) -> None:
+    """Item 2: labrun run's start-up against the bare interpreter."""
+    plan = folder / "startup-plan.toml"
+    plan.write_text(RUN_PLAN)
+    proc, bench = _serve(folder)
+    try:
+        _one_run(folder, bench, plan, -1)  # warm the file cache once
+        bare = _median([sys.executable, "-c", "pass"], repeats)
+        rows = [_one_run(folder, bench, plan, k) for k in range(repeats)]
+    finally:
+        proc.terminate()
+        proc.wait(timeout=30)
+    first = statistics.median(r[0] for r in rows)
+    whole = statistics.median(r[1] for r in rows)
+    print(f"2. labrun run start-up, cold process, median of {repeats} (virtual lab at time "
+          "scale 0, 2 points):")
+    print(f"   python -c pass                 {bare:.3f} s")
+    print(f"   start to first instrument exchange {first:.3f} s ({first / bare:.1f}x bare python; "
+          "labrun 0.2.0: about 1.1 s, target half of it)")
+    print(f"   start to exit                  {whole:.3f} s ({whole / bare:.1f}x bare python)")
+
+
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--repeats", type=int, default=7)
     ap.add_argument("--points", type=int, default=200)
+    ap.add_argument("--run-repeats", type=int, default=5)
     args = ap.parse_args()
     with tempfile.TemporaryDirectory() as tmp:
         bench_status(Path(tmp), args.repeats, args.points)
+        bench_run_startup(Path(tmp), args.run_repeats)
 
 
 if __name__ == "__main__":

@@ -10,7 +10,7 @@ from collections.abc import Sequence
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
-from labrun.store import TraceData
+from labrun.store.tracedata import TraceData
 
 if TYPE_CHECKING:
     from labrun.capture import Captured

@@ -53,12 +53,12 @@ from labrun.safe_off import darken
 from labrun.scpi import NoAnswerError
 from labrun.settle import group_settles, setting_s, wait_s
 from labrun.shutdown import RunInterrupted, SafeOffGuard
-from labrun.store import Store
-from labrun.store.models import FINISHED_STATUSES, RunStatus
+from labrun.store.kinds import FINISHED_STATUSES, RunStatus
 from labrun.trafficlog import EVENT_KIND
 
 if TYPE_CHECKING:
     from labrun.reduce import Reduction
+    from labrun.store import Store  # the engine needs SQLAlchemy only once the store opens
 
 STALE_HEARTBEAT_S = 60.0  # a running run with an older heartbeat is probably dead
 SIGINT = int(_signal.SIGINT)  # Ctrl-C; KeyboardInterrupt counts as this signal
@@ -750,7 +750,7 @@ class Runner:
         Point N is committed on a writer thread (``labrun.writer``) while point N+1 is measured;
         every way out of the loop first lets the point in flight finish storing.
         """
-        from labrun.store.models import utcnow
+        from labrun.store.kinds import utcnow
         from labrun.writer import PointWriter
 
         bar = progress_bar(total, done, self.show_progress)
@@ -830,15 +830,15 @@ def run_plan(plan: Plan, bench: Any, store: Store, *, operator: str | None = Non
     specs = list(plan.points())
     fields = _run_fields(plan, bench, operator=operator, unattended=unattended,
                          total=len(specs))
-    spool_id = store.spool_id(plan.spool, **plan.spool_info)
-
     made: list[int] = []
 
     def create(identities: dict[str, str] | None) -> int:
         """The run row with the identities just read (None: the bench never opened), in one
-        transaction: a run killed right after it can be resumed without --force. Once."""
+        transaction: a run killed right after it can be resumed without --force. Once. The
+        store's first use: ``labrun run`` opens it meanwhile (labrun/store/deferred.py)."""
         if made:
             return made[0]
+        spool_id = store.spool_id(plan.spool, **plan.spool_info)
         made.append(store.create_run(**fields, spool_id=spool_id, identities=identities))
         record_ack(store, made[0], plan, bench, operator=operator, unattended=unattended,
                    text=text)
@@ -910,7 +910,7 @@ def _execute(plan: Plan, bench: Any, store: Store, run_id: int | None,
     """Open, run ``specs``, and close run ``run_id`` under the safe-off guard. Without a
     ``run_id``, ``create(identities)`` makes the run row once the bench is open. ``guardian``:
     a watcher process darkens the bench if this process dies lit (labrun/guardian.py)."""
-    from labrun.store.models import utcnow
+    from labrun.store.kinds import utcnow
 
     preload("labrun.reduce")  # scipy: imported while the bench opens and the first point settles
     total = len(specs) + done if run_id is None else int(store.get_run(run_id).points_total)
@@ -1143,7 +1143,7 @@ def resume_run(run_id: int, store: Store, *, bench: Any = None, force: bool = Fa
 
 def process_alive(run: Any) -> bool:
     """True if the run's process still exists on this host (a fresh heartbeat elsewhere counts)."""
-    from labrun.store.models import utcnow
+    from labrun.store.kinds import utcnow
 
     if run.host and run.host != socket.gethostname():
         beat = run.heartbeat_at

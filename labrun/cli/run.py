@@ -105,7 +105,7 @@ def cmd_run(args: argparse.Namespace) -> int:
     from labrun.bench import load_bench
     from labrun.engine import estimate_per_point, require_roles, run_plan
     from labrun.plan import load_plan
-    from labrun.store import open_store
+    from labrun.store.deferred import open_deferred
 
     # a path, or the name of a shipped example ("power-sweep")
     plan = load_plan(args.plan)
@@ -114,7 +114,9 @@ def cmd_run(args: argparse.Namespace) -> int:
     require_roles(plan, bench)  # a bench that cannot run the plan: refused before any store
     traffic_log = open_traffic_log(args, append=False)
     try:
-        store = open_store(args.db)
+        # SQLite is checked now and opened on a thread while the bench opens (SQLAlchemy's
+        # import is not on the way to the first instrument exchange)
+        store = open_deferred(args.db)
         try:
             outcome = run_plan(plan, bench, store, operator=args.operator,
                                unattended=args.unattended, ack_safety=args.ack_safety,

@@ -12,7 +12,7 @@ from typing import Any
 DEFAULT_DB = "labrun.db"  # SQLite file in the current folder when --db is not given
 
 _LAZY = {
-    "Store": "db", "TraceData": "db", "open_existing_store": "db", "open_store": "db",
+    "Store": "db", "TraceData": "tracedata", "open_existing_store": "db", "open_store": "db",
     "store_url": "db",
     "FINISHED_STATUSES": "kinds", "RUN_STATUSES": "kinds", "RunStatus": "kinds",
     "EventKind": "kinds", "Base": "models", "Event": "models",

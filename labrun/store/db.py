@@ -12,7 +12,6 @@ import os
 import statistics
 from collections.abc import Iterator, Sequence
 from contextlib import contextmanager
-from dataclasses import dataclass, field
 from datetime import datetime
 from pathlib import Path
 from typing import TYPE_CHECKING, Any, cast
@@ -51,23 +50,12 @@ from labrun.store.models import (
 from labrun.store.revisions import older_refusal
 from labrun.store.revisions import require_known as _require_known
 from labrun.store.tracecodec import encode_y
+from labrun.store.tracedata import TraceData as TraceData  # re-exported: its home before
 
 if TYPE_CHECKING:  # numpy is imported where traces are encoded: `labrun status` needs none
     import numpy as np
 
 BUSY_TIMEOUT_MS = 15_000  # a reader or writer waits this long for a lock before failing
-
-
-@dataclass
-class TraceData:
-    """A trace to store: x (nm or THz), y (dBm per RBW) and how it was taken."""
-
-    x: np.ndarray
-    y: np.ndarray
-    kind: str = "output"
-    x_unit: str = "nm"
-    rbw_nm: float | None = None
-    settings: dict[str, Any] = field(default_factory=dict)
 
 
 def store_url(url_or_path: str | os.PathLike[str]) -> str:

@@ -1,0 +1,98 @@
+"""Open a SQLite run store on a thread while the run opens its bench, so SQLAlchemy's import
+(about a third of a run's start-up) is off the way to the first instrument exchange.
+
+``open_deferred`` first checks the store the way ``open_store`` would refuse it, with the
+standard library only (a missing folder, a file that is not SQLite, a schema from a newer
+labrun: one line, exit 2, before any instrument is touched), then starts the thread. The
+``DeferredStore`` it returns knows its URL at once (the guardian watcher needs it before the
+bench opens); any other use waits for the thread and goes to the real ``Store``, and an error
+the thread met is raised there. The engine's first store use is the run row, written once the
+bench is open and before any source is switched on. A server URL (PostgreSQL) is opened at once,
+as before: its checks need the server.
+"""
+
+from __future__ import annotations
+
+import os
+import sqlite3
+import threading
+from typing import Any
+
+from labrun.errors import InputError
+from labrun.store.revisions import require_known
+from labrun.store.statusview import BUSY_TIMEOUT_S, is_sqlite, sqlite_location
+
+
+class DeferredStore:
+    """A Store being opened on a thread: ``url`` at once, anything else once it is open."""
+
+    def __init__(self, url: str, where: str):
+        self.url = url
+        self._where = where
+        self._store: Any = None
+        self._error: BaseException | None = None
+        self._thread = threading.Thread(target=self._open, name="labrun-store-open",
+                                        daemon=True)
+        self._thread.start()
+
+    def _open(self) -> None:
+        """The thread: import SQLAlchemy and open (create or upgrade) the store."""
+        try:
+            from labrun.store.db import open_store
+
+            self._store = open_store(self._where)
+        except BaseException as exc:  # noqa: BLE001 - raised where the store is first used
+            self._error = exc
+
+    def result(self) -> Any:
+        """The open Store (waits for the thread; re-raises what it met)."""
+        self._thread.join()
+        if self._error is not None:
+            raise self._error
+        return self._store
+
+    def __getattr__(self, name: str) -> Any:
+        return getattr(self.result(), name)
+
+    def close(self) -> None:
+        """Close the store once it is open (an open that failed leaves nothing to close)."""
+        self._thread.join()
+        if self._store is not None:
+            self._store.close()
+
+
+def precheck_sqlite(url_or_path: str | os.PathLike[str]) -> str:
+    """The URL ``open_store`` would give a SQLite path or URL; InputError (exit 2) for what it
+    would refuse: a missing folder, a file that is not SQLite, a schema newer than this labrun's.
+    Read-only; a file that does not exist yet is fine (the run creates it)."""
+    where = os.fspath(url_or_path)
+    url, path = sqlite_location(url_or_path)
+    if path is None or not path.is_file() or path.stat().st_size == 0:
+        return url
+    try:
+        con = sqlite3.connect(f"{path.resolve().as_uri()}?mode=ro", uri=True,
+                              timeout=BUSY_TIMEOUT_S)
+        try:
+            tables = {n for (n,) in con.execute(
+                "SELECT name FROM sqlite_master WHERE type = 'table'")}
+            found = ([v for (v,) in con.execute("SELECT version_num FROM alembic_version")]
+                     if "alembic_version" in tables else [])
+        finally:
+            con.close()
+    except sqlite3.Error as exc:
+        raise InputError(f"cannot open the database ({type(exc).__name__}: "
+                         f"{str(exc).splitlines()[0] if str(exc) else exc})",
+                         file=where, field="--db") from None
+    if len(found) == 1:
+        require_known(str(found[0]), where)
+    return url
+
+
+def open_deferred(url_or_path: str | os.PathLike[str]) -> Any:
+    """A store for ``labrun run``: SQLite checked now and opened on a thread (DeferredStore),
+    anything else opened now (``open_store``)."""
+    if not is_sqlite(url_or_path):
+        from labrun.store.db import open_store
+
+        return open_store(url_or_path)
+    return DeferredStore(precheck_sqlite(url_or_path), os.fspath(url_or_path))
