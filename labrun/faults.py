@@ -22,6 +22,7 @@ from collections.abc import Callable
 from dataclasses import dataclass
 from typing import Any
 
+from labrun.deadlines import MONITOR
 from labrun.errors import InstrumentError
 from labrun.scpi import NoAnswerError
 
@@ -107,19 +108,12 @@ class PointWatchdog:
         self.bound_s = bound_s
         self.on_overrun = on_overrun
         self.fired = threading.Event()
-        self._done = threading.Event()
-        self._thread = threading.Thread(target=self._watch, name="point-watchdog", daemon=True)
         self.started = time.monotonic()
+        self.deadline = self.started + bound_s
 
     def __enter__(self) -> PointWatchdog:
-        self._thread.start()
+        MONITOR.arm(self)
         return self
 
     def __exit__(self, *exc_info: object) -> None:
-        self._done.set()
-
-    def _watch(self) -> None:
-        if self._done.wait(self.bound_s):
-            return
-        self.fired.set()
-        self.on_overrun()
+        MONITOR.disarm(self)

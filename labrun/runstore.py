@@ -96,17 +96,13 @@ class RunStore:
         """``fn(*args, **kwargs)`` with brief retries of store faults; a call still waiting
         after ``slow_s`` (a lock, a stalled server) calls ``on_fault`` from a timer meanwhile."""
         self._told.clear()
-        timer = None
-        if self.on_fault is not None and self.slow_s > 0:
-            timer = threading.Timer(self.slow_s, self.tell, args=(TimeoutError(
-                f"{name} still waiting after {self.slow_s:g} s"),))
-            timer.daemon = True
-            timer.start()
-        try:
+        if self.on_fault is None or self.slow_s <= 0:
             return self._call(name, fn, args, kwargs)
-        finally:
-            if timer is not None:
-                timer.cancel()
+        from labrun.deadlines import Alarm  # one watcher thread, not a Timer per write
+
+        slow = TimeoutError(f"{name} still waiting after {self.slow_s:g} s")
+        with Alarm(self.slow_s, lambda: self.tell(slow)):
+            return self._call(name, fn, args, kwargs)
 
     def _call(self, name: str, fn: Callable[..., Any], args: tuple[Any, ...],
               kwargs: dict[str, Any]) -> Any:
