@@ -283,9 +283,9 @@ class ScpiSession:
                 if exc.error_code == constants.StatusCode.error_invalid_resource_name:
                     raise InputError(f"invalid VISA resource string {self.resource!r}",
                                      field="resource") from exc
-                raise self._no_answer(exc) from exc
+                raise self.no_answer(exc) from exc
             except OSError as exc:
-                raise self._no_answer(exc) from exc
+                raise self.no_answer(exc) from exc
             _no_delay(self._res)
             log.debug("%s: opened %s via %s", self.who, self.resource, self.backend)
             if self._opened:
@@ -300,7 +300,7 @@ class ScpiSession:
         for cmd in self.init:
             started = time.time()
             self._live().write(cmd)
-            self._record("write", cmd, started, None, None, 1)
+            self.record("write", cmd, started, None, None, 1)
             log.info("%s: sent init %r again after reconnecting", self.who, cmd)
 
     def close(self) -> None:
@@ -319,7 +319,29 @@ class ScpiSession:
     def __exit__(self, *exc_info: object) -> None:
         self.close()
 
-    def _no_answer(self, exc: BaseException) -> NoAnswerError:
+    def held(self) -> contextlib.AbstractContextManager[Any]:
+        """The session's lock: held for an exchange that spans several calls (a message sent
+        now and its reply read later, as ``query_each`` does across sessions)."""
+        return self._lock
+
+    def send_unread(self, message: str) -> None:
+        """Send ``message`` (opening the session first when closed) and read nothing: the caller
+        holds the session (``held``) and reads the reply with ``read_reply``; tried once."""
+        with self._lock:
+            if self._res is None:
+                self.open()
+            self._live().write(message)
+
+    def read_reply(self) -> str:
+        """The reply (stripped) to a message sent with ``send_unread``."""
+        with self._lock:
+            return self._live().read().strip()
+
+    def peer_gone(self) -> bool:
+        """True when the instrument has closed the connection (``peer_closed``)."""
+        return peer_closed(self._res)
+
+    def no_answer(self, exc: BaseException) -> NoAnswerError:
         """The one-line error for an instrument that does not answer."""
         return NoAnswerError(
             f"no answer at {self.resource} via {self.backend} ({type(exc).__name__}: {exc}); "
@@ -354,6 +376,18 @@ class ScpiSession:
             self.timeout_ms, self.retries = saved
             self._set_timeout(self.timeout_ms)
             self._lock.release()
+
+    def set_timeout(self, timeout_ms: int) -> None:
+        """Use ``timeout_ms`` for every exchange from now on (also on the open connection)."""
+        with self._lock:
+            self.timeout_ms = int(timeout_ms)
+            self._set_timeout(self.timeout_ms)
+
+    @property
+    def visa_resource(self) -> MessageBasedResource | None:
+        """The open pyvisa resource (None when closed): what a test wraps to lose a message on
+        the wire at a chosen moment."""
+        return self._res
 
     def _set_timeout(self, timeout_ms: int) -> None:
         """Give an open resource a new timeout (a lost resource needs none)."""
@@ -393,30 +427,30 @@ class ScpiSession:
                 result = action()
             except InstrumentError as exc:  # reopen failed, or a reply that broke the framing
                 last = exc
-                self._record(direction, text, started, None, str(exc), attempt)
+                self.record(direction, text, started, None, str(exc), attempt)
                 self.close()  # what is left on the wire is unknown: never read it as a reply
                 self.report_fault(text, exc, attempt)
             except ValueError as exc:  # a reply that does not decode or parse: garbled
                 last = InstrumentError(f"garbled reply to {text!r} ({exc})", role=self.role,
                                        resource=self.resource)
-                self._record(direction, text, started, None, str(last), attempt)
+                self.record(direction, text, started, None, str(last), attempt)
                 self.close()
                 self.report_fault(text, last, attempt)
             except Exception as exc:
                 if not _is_transport_error(exc):
-                    self._record(direction, text, started, None, repr(exc), attempt)
+                    self.record(direction, text, started, None, repr(exc), attempt)
                     self.close()
                     raise
                 silent = is_timeout(exc) and not peer_closed(self._res)
                 last = exc
-                self._record(direction, text, started, None, f"{type(exc).__name__}: {exc}",
-                             attempt)
+                self.record(direction, text, started, None, f"{type(exc).__name__}: {exc}",
+                            attempt)
                 self.close()
                 self.report_fault(text, exc, attempt)
             else:
                 described = describe(result)
                 reply, data = described if isinstance(described, tuple) else (described, None)
-                self._record(direction, text, started, reply, None, attempt, data)
+                self.record(direction, text, started, reply, None, attempt, data)
                 log.debug("%s: %s %r -> %r", self.who, direction, text, reply)
                 return result
             if silent or time.monotonic() - first >= 2 * self.timeout_ms / 1000.0:
@@ -430,7 +464,7 @@ class ScpiSession:
             last.fault_reported = True  # type: ignore[attr-defined]
             raise last
         assert last is not None
-        final = self._no_answer(last)
+        final = self.no_answer(last)
         final.fault_reported = True  # type: ignore[attr-defined]
         raise final from last
 
@@ -449,7 +483,7 @@ class ScpiSession:
         for _ in range(MAX_ERROR_QUEUE):
             started = time.time()
             reply = self._res.query(self.error_query)
-            self._record("query", self.error_query, started, reply.strip(), None, 1)
+            self.record("query", self.error_query, started, reply.strip(), None, 1)
             try:
                 code, message = parse_error_reply(reply, self.error_form)
             except ValueError:
@@ -458,8 +492,9 @@ class ScpiSession:
                 return
             log.warning("%s: discarded stale error %d,%r after reconnect", self.who, code, message)
 
-    def _record(self, direction: Direction, text: str, started: float, reply: str | None,
-                error: str | None, attempt: int, data: str | None = None) -> None:
+    def record(self, direction: Direction, text: str, started: float, reply: str | None,
+               error: str | None, attempt: int, data: str | None = None) -> None:
+        """One exchange into the traffic log (when the session has one)."""
         if self.traffic_log is not None:
             self.traffic_log.record(resource=self.resource, role=self.role, direction=direction,
                                     text=text, started=started, reply=reply, error=error,
@@ -750,35 +785,33 @@ def query_each(requests: list[tuple[ScpiSession, str]], *,
         raise ValueError("query_each takes one query per session")
     with contextlib.ExitStack() as stack:
         for s in sessions:
-            stack.enter_context(s._lock)
+            stack.enter_context(s.held())
         started = time.time()
         current = sessions[0]  # the session whose exchange failed, for the fault event
         try:
             for s, cmd in requests:
                 current = s
-                if s._res is None:
-                    s.open()
-                s._live().write(cmd)
+                s.send_unread(cmd)
             replies = []
             for s in sessions:
                 current = s
-                replies.append(s._live().read().strip())
+                replies.append(s.read_reply())
         except Exception as exc:
             if not _is_transport_error(exc) and not isinstance(exc, InstrumentError):
                 raise
-            silent = is_timeout(exc) and not peer_closed(current._res)
+            silent = is_timeout(exc) and not current.peer_gone()
             log.warning("parallel queries failed (%s); asking one at a time", exc)
             for s, cmd in requests:
-                s._record(direction, cmd, started, None, f"{type(exc).__name__}: {exc}", 1)
+                s.record(direction, cmd, started, None, f"{type(exc).__name__}: {exc}", 1)
                 s.close()
             owner = next((s for s in sessions if s.role and s.role == getattr(exc, "role", None)),
                          current)
             owner.report_fault(" | ".join(cmd for _, cmd in requests), exc, 1)
             if silent:  # asking a silent instrument again would cost another timeout
-                final = owner._no_answer(exc)
+                final = owner.no_answer(exc)
                 final.fault_reported = True  # type: ignore[attr-defined]
                 raise final from exc
             return [s.query(cmd, direction=direction) for s, cmd in requests]
         for (s, cmd), reply in zip(requests, replies, strict=True):
-            s._record(direction, cmd, started, reply, None, 1)
+            s.record(direction, cmd, started, reply, None, 1)
         return replies

@@ -106,7 +106,7 @@ def test_parallel_queries_and_their_fallback(lab, tmp_path):
         lasers[1].output_on()
         assert output_states(lasers) == [False, True]
         # a dropped connection: the pair is asked again one at a time, after reconnecting
-        lasers[0].session.timeout_ms = lasers[0].session._res.timeout = 300
+        lasers[0].session.set_timeout(300)
         lab.drop_connections("laser_a")
         assert output_states(lasers) == [False, True]
         with pytest.raises(ValueError):

@@ -24,7 +24,7 @@ ABOVE_CAP_DBM = 12.0  # inside the generic laser's range [-10, 13] dBm, above it
 def _reboot_while_switching_on(lab: VirtualLab, session, calls: dict) -> None:
     """Make the first message carrying OUTP:STAT ON find the laser rebooted (power-on default
     above the cap, output off) and the connection gone, as after a mains glitch."""
-    res = session._res
+    res = session.visa_resource
     real_query, real_write = res.query, res.write
 
     def lost(message: str) -> None:

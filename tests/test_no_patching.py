@@ -1,4 +1,5 @@
-"""No test replaces an attribute of a module (issue 14: explicit seams instead of monkeypatching).
+"""No test replaces an attribute of a module or touches a private member of another object
+(issue 14: explicit seams instead of monkeypatching and reaching in).
 
 A test that swaps ``labrun.engine.something`` or ``labrun.cli.build_parser`` for the duration of a
 test couples to the module's private wiring and breaks silently when an import moves; labrun's
@@ -12,7 +13,10 @@ too) and reports, with file and line:
 - any use of ``unittest.mock.patch`` (``patch``, ``patch.object``, ``mock.patch``).
 
 Environment variables (``monkeypatch.setenv``) and attributes of objects a test made itself are
-not module attributes and are not reported.
+not module attributes and are not reported. A second scan reports ``x._name`` for any ``x`` but
+``self``/``cls`` (underscore names that a library documents as public aside): a test uses the
+public seam the object offers (``ScpiSession.set_timeout``, ``ScpiSession.visa_resource``, the
+virtual lab's ``ascii_cut``).
 """
 
 from __future__ import annotations
@@ -161,3 +165,34 @@ def test_the_scan_finds_each_form():
             monkeypatch.setattr(session, "retries", 0)
         """)
     assert module_patches(fine) == []
+
+
+# Underscore names that are public API by their library's convention: namedtuple's methods
+# (Python documentation, collections.namedtuple) and SQLAlchemy's Row._mapping.
+PUBLIC_UNDERSCORE = frozenset({"_replace", "_asdict", "_fields", "_make", "_mapping"})
+
+
+def private_members(source: str, filename: str = "<test>") -> list[str]:
+    """``filename:line: x._name`` for each private member of another object a source touches
+    (an object's own, through ``self``/``cls``, aside)."""
+    found = []
+    for node in ast.walk(ast.parse(source, filename)):
+        if isinstance(node, ast.Attribute) and node.attr.startswith("_") \
+                and not node.attr.startswith("__") and node.attr not in PUBLIC_UNDERSCORE \
+                and not (isinstance(node.value, ast.Name) and node.value.id in ("self", "cls")):
+            found.append(f"{filename}:{node.lineno}: {ast.unparse(node)}")
+    return sorted(set(found))
+
+
+def test_no_test_touches_a_private_member():
+    found = []
+    for path in sorted(TESTS.rglob("*.py")):
+        found += private_members(path.read_text(encoding="utf-8"), str(path.relative_to(TESTS)))
+    assert not found, "private members of other objects touched in tests:\n" + "\n".join(found)
+
+
+def test_the_private_scan_can_fail():
+    assert private_members("session._res.timeout = 5")
+    assert private_members("x = build_parser()._subparsers")
+    assert not private_members("class A:\n    def f(self):\n        return self._x\n"
+                               "row._mapping\npoint._replace(x=1)\n")

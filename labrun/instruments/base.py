@@ -318,7 +318,7 @@ class Adapter:
         """Switch light with the command as a message of its own (never compound), then its
         error query and read-back together in one query message."""
         session = self.session
-        with session._lock:
+        with session.held():
             session.write(p.text, check_errors=False)
             if settle:
                 self.settle(p.op.settle_s)

@@ -432,6 +432,7 @@ class OsaInstrument(SimInstrument):
     kind = "osa"
     ascii_separator = ","  # between ASCII trace values
     ascii_count = False    # True: an ASCII trace starts with the number of values after it
+    ascii_cut = 0          # values lost from the end of an ASCII trace (a reply cut short)
 
     def register(self) -> None:
         t = self.table
@@ -532,8 +533,9 @@ class OsaInstrument(SimInstrument):
         values = self.trace_values(axis)
         if not osa.real32:
             head = [str(values.size)] if self.ascii_count else []
+            sent = values[:values.size - self.ascii_cut] if self.ascii_cut > 0 else values
             return self.ascii_separator.join(head + [f"{v:.6f}" if axis == "x" else f"{v:.3f}"
-                                                     for v in values])
+                                                     for v in sent])
         body = values.astype(np.float32).astype("<f4" if osa.little_endian else ">f4").tobytes()
         return build_block(body)  # IEEE 488.2 definite length
 
