@@ -94,7 +94,7 @@ def reread(run: Runner, role: str, read: Callable[[], Any], show: Callable[[Any]
         again, detail = None, f"re-read failed: {exc}"
     else:
         detail = f"re-read says {show(again)}"
-    run.store.add_event(run.run_id, "fault", f"{role} {surprise}; {detail}", role=role)
+    run.event("fault", f"{role} {surprise}; {detail}", role=role)
     return again
 
 

@@ -60,6 +60,8 @@ if TYPE_CHECKING:
     from labrun.reduce import Reduction
     from labrun.store import Store  # the engine needs SQLAlchemy only once the store opens
 
+    AnyStore = Store | RunStore  # a store, or one in RunStore's wrapping (retries, darken)
+
 STALE_HEARTBEAT_S = 60.0  # a running run with an older heartbeat is probably dead
 SIGINT = int(_signal.SIGINT)  # Ctrl-C; KeyboardInterrupt counts as this signal
 
@@ -216,7 +218,7 @@ class Seams:
 class Runner:
     """Runs points of one run: owns the connections, the applied-state cache and the guard."""
 
-    def __init__(self, plan: Plan, bench: Any, store: Store, run_id: int | None,
+    def __init__(self, plan: Plan, bench: Any, store: AnyStore, run_id: int | None,
                  guard: SafeOffGuard, *, policy: RetryPolicy, progress: bool = True,
                  traffic_log: Any = None,
                  sleep: Callable[[float], None] = time.sleep,
@@ -290,6 +292,13 @@ class Runner:
             self.early.append((kind, message, fields))
         else:
             self.store.add_event(self.run_id, kind, message, **fields)
+
+    @property
+    def row_id(self) -> int:
+        """The run's id: its row exists before the first point (``attach``)."""
+        if self.run_id is None:
+            raise RuntimeError("the run row does not exist yet")
+        return self.run_id
 
     def attach(self, run_id: int) -> int:
         """The run row now exists: write the events kept meanwhile; the run id."""
@@ -492,15 +501,14 @@ class Runner:
         self.guard.check()  # the acknowledgement holds only while nobody asked the run to stop
         self.may_emit = True
         if self.dark_since is not None:
-            self.store.add_event(self.run_id, "relight", "switching on again after a fault "
-                                 "(power set and read back, caps and interlock checked)",
-                                 point_key=self.current_key)
+            self.event("relight", "switching on again after a fault "
+                       "(power set and read back, caps and interlock checked)",
+                       point_key=self.current_key)
         for role in self.sources():
             if self.role(role).output_state():
                 if not self.lit:  # after a reconnect it is on because the run switched it on
-                    self.store.add_event(self.run_id, "found_on", f"{role} output was on before "
-                                         "the run switched anything on; switching it off",
-                                         role=role)
+                    self.event("found_on", f"{role} output was on before the run switched "
+                               "anything on; switching it off", role=role)
                 self.role(role).output_off()
         pending = self.write(first)
         if not pending.confirmed:  # a source goes on only once its power is set and confirmed
@@ -645,10 +653,10 @@ class Runner:
         if self.dark_since is None:
             self.dark_since = self.clock()
         note = "" if not problems else "; NOT CONFIRMED OFF: " + "; ".join(problems)
-        self.store.add_event(self.run_id, "dark", f"sources off after a fault: {reason}{note}",
-                             point_key=self.current_key,
-                             data={"problems": problems, "reason": reason[:200],
-                                   "limit_s": self.policy.dark_limit_s})
+        self.event("dark", f"sources off after a fault: {reason}{note}",
+                   point_key=self.current_key,
+                   data={"problems": problems, "reason": reason[:200],
+                         "limit_s": self.policy.dark_limit_s})
 
     def attempt_point(self, spec: PointSpec, settings: Sequence[Setting],
                       kinds: Sequence[str]) -> list[Captured]:
@@ -709,8 +717,8 @@ class Runner:
             except InstrumentError as again:
                 if not getattr(again, "fault_reported", False):
                     self.record_fault(again, attempt=attempt, level="reconnect")
-        self.store.add_event(self.run_id, "retry", f"attempt {attempt + 1}", point_key=spec.key,
-                             data={"attempt": attempt + 1, "after": type(exc).__name__})
+        self.event("retry", f"attempt {attempt + 1}", point_key=spec.key,
+                   data={"attempt": attempt + 1, "after": type(exc).__name__})
 
     def commit(self, spec: PointSpec, traces: Sequence[Captured], red: Reduction, attempts: int,
                started: Any) -> None:
@@ -729,10 +737,10 @@ class Runner:
         from sqlalchemy.exc import IntegrityError
 
         try:
-            self.store.add_point(self.run_id, **row)
+            self.store.add_point(self.row_id, **row)
         except IntegrityError:
             # a retry after a connection lost just after the commit: stored once, keep going
-            if row["key"] not in self.store.completed_keys(self.run_id):
+            if row["key"] not in self.store.completed_keys(self.row_id):
                 raise
         self.committed += 1
         self.last_beat = self.clock()
@@ -808,7 +816,7 @@ def _run_fields(plan: Plan, bench: Any, *, operator: str | None, unattended: boo
     )
 
 
-def run_plan(plan: Plan, bench: Any, store: Store, *, operator: str | None = None,
+def run_plan(plan: Plan, bench: Any, store: AnyStore, *, operator: str | None = None,
              unattended: bool = False, ack_safety: bool = False,
              confirm: Callable[[str], bool] | None = None, policy: RetryPolicy | None = None,
              progress: bool = True, traffic_log: Any = None,
@@ -850,7 +858,7 @@ def run_plan(plan: Plan, bench: Any, store: Store, *, operator: str | None = Non
                     estimate=estimate_s_per_point, seams=seams, guardian=guardian)
 
 
-def run_virtual(plan: Plan, bench: Any, store: Store, *, replay_of: int, mode: str,
+def run_virtual(plan: Plan, bench: Any, store: AnyStore, *, replay_of: int, mode: str,
                 policy: RetryPolicy | None = None, progress: bool = False,
                 traffic_log: Any = None,
                 created: Callable[[int], None] | None = None) -> RunOutcome:
@@ -876,7 +884,7 @@ def run_virtual(plan: Plan, bench: Any, store: Store, *, replay_of: int, mode: s
                     progress=progress, traffic_log=traffic_log, first=True)
 
 
-def record_ack(store: Store, run_id: int, plan: Plan, bench: Any, *, operator: str | None,
+def record_ack(store: AnyStore, run_id: int, plan: Plan, bench: Any, *, operator: str | None,
                unattended: bool, text: str, resumed: bool = False) -> None:
     """The ``safety_ack`` event: who acknowledged emission, how, and the worst case shown (the
     event's own time is when). A resume records its own: it emits again, maybe hours later."""
@@ -892,7 +900,7 @@ def record_ack(store: Store, run_id: int, plan: Plan, bench: Any, *, operator: s
                           "max_launched_dbm": wc.max_launched_dbm})
 
 
-def record_traffic_log(store: Store, run_id: int, traffic_log: Any) -> None:
+def record_traffic_log(store: AnyStore, run_id: int, traffic_log: Any) -> None:
     """A ``traffic_log`` event naming the file the instrument traffic streams to (if any)."""
     path = getattr(traffic_log, "path", None)
     if path is not None:
@@ -900,7 +908,7 @@ def record_traffic_log(store: Store, run_id: int, traffic_log: Any) -> None:
                         data={"path": str(path)})
 
 
-def _execute(plan: Plan, bench: Any, store: Store, run_id: int | None,
+def _execute(plan: Plan, bench: Any, store: AnyStore, run_id: int | None,
              specs: Sequence[PointSpec], *, done: int, policy: RetryPolicy | None,
              progress: bool, traffic_log: Any, first: bool,
              expect_identities: dict[str, str] | None = None, force: bool = False,
@@ -913,7 +921,7 @@ def _execute(plan: Plan, bench: Any, store: Store, run_id: int | None,
     from labrun.store.kinds import utcnow
 
     preload("labrun.reduce")  # scipy: imported while the bench opens and the first point settles
-    total = len(specs) + done if run_id is None else int(store.get_run(run_id).points_total)
+    total = len(specs) + done if run_id is None else _points_total(store, run_id)
     guard = SafeOffGuard(bench)
     store = as_run_store(store)  # a database fault: darken, retry briefly, then StoreFault
     seams = seams or Seams()
@@ -938,8 +946,8 @@ def _execute(plan: Plan, bench: Any, store: Store, run_id: int | None,
             if run_id is None and create is not None:
                 run_id = runner.attach(create(identities))
             if expect_identities is not None:
-                check_identities(expect_identities, identities, force=force, run_id=run_id,
-                                 store=store)
+                check_identities(expect_identities, identities, force=force,
+                                 run_id=runner.row_id, store=store)
             fields: dict[str, Any] = {"status": RunStatus.RUNNING, "heartbeat_at": utcnow(),
                                       "pid": os.getpid(), "host": socket.gethostname()}
             if first:
@@ -948,7 +956,7 @@ def _execute(plan: Plan, bench: Any, store: Store, run_id: int | None,
                                         "settle_scale": runner.scale,
                                         "retry": asdict(runner.policy),
                                         "estimate_s_per_point": estimate})
-            store.update_run(run_id, **fields)
+            store.update_run(runner.row_id, **fields)
             runner.run_points(specs, done=done, total=total)
             finished = True
         except BaseException as exc:  # noqa: BLE001 - classified below, re-raised if unexpected
@@ -989,6 +997,14 @@ def _execute(plan: Plan, bench: Any, store: Store, run_id: int | None,
         raise error
     return RunOutcome(run_id=run_id, status=status, points_done=done, points_total=total,
                       reason=reason, db=store.url, safe_off_problems=problems, signal=signum)
+
+
+def _points_total(store: AnyStore, run_id: int) -> int:
+    """How many points run ``run_id`` has in all (stored with it)."""
+    run = store.get_run(run_id)
+    if run is None:
+        raise InputError(f"no run {run_id} in this database", field="RUN_ID")
+    return int(run.points_total)
 
 
 def _record_end(store: RunStore, run_id: int, status: RunStatus, reason: str | None,
@@ -1051,7 +1067,7 @@ def _classify(exc: BaseException | None) -> tuple[RunStatus, str | None, BaseExc
 
 
 def check_identities(expected: dict[str, str], found: dict[str, str], *, force: bool,
-                     run_id: int | None, store: Store) -> None:
+                     run_id: int, store: AnyStore) -> None:
     """Refuse to resume on different instruments (unless forced, then record it)."""
     diffs = [f"{role}: was {expected.get(role)!r}, now {found.get(role)!r}"
              for role in sorted(set(expected) | set(found))
@@ -1093,7 +1109,7 @@ def plan_from_run(run: Any, *, force: bool) -> Plan:
         os.unlink(fh.name)
 
 
-def resume_run(run_id: int, store: Store, *, bench: Any = None, force: bool = False,
+def resume_run(run_id: int, store: AnyStore, *, bench: Any = None, force: bool = False,
                operator: str | None = None, unattended: bool = False, ack_safety: bool = False,
                confirm: Callable[[str], bool] | None = None, policy: RetryPolicy | None = None,
                progress: bool = True, traffic_log: Any = None,

@@ -20,12 +20,15 @@ import tomllib
 from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 from labrun.resources import find_file
 from labrun.roles import ATTENUATOR_ROLES, SOURCE_ROLES
 from labrun.vlab.lab import VirtualLab
 from labrun.vlab.watch import StateWatch
+
+if TYPE_CHECKING:
+    from labrun.store import Store
 
 OPERATOR = "T. Varga"  # invented
 SOURCES = SOURCE_ROLES
@@ -185,6 +188,12 @@ def write_bench(lab: VirtualLab, folder: Path, timeouts_ms: dict[str, int]) -> P
     return bench
 
 
+def _points_stored(store: Store) -> int:
+    """Points stored in the latest run (-1 before any run row exists)."""
+    run_id = store.latest_run_id()
+    return -1 if run_id is None else store.count_points(run_id)
+
+
 def _last(watch: StateWatch, roles: list[str]) -> float | None:
     """When the last of ``roles`` first went dark after the fault (None: one never did)."""
     times = [watch.after(r) for r in roles]
@@ -235,8 +244,7 @@ def _measure(row: FaultRow, folder: Path, *, timeouts_ms: dict[str, int] | None,
         fault_at: dict[str, float] = {}
 
         def force_fault() -> None:
-            while store.latest_run_id() is None or store.count_points(store.latest_run_id()) \
-                    < after_points:
+            while _points_stored(store) < after_points:
                 if "end" in fault_at:
                     return
                 time.sleep(0.005)

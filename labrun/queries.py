@@ -8,12 +8,12 @@ Python loop over rows.
 from __future__ import annotations
 
 import json
-from typing import TYPE_CHECKING, Any
+from typing import TYPE_CHECKING, Any, cast
 
 from sqlalchemy import Text, and_, case, func, or_, select, type_coerce
 
 from labrun.errors import InputError
-from labrun.lines import LineId
+from labrun.lines import Kind, LineId, Side
 from labrun.store import Line, Point, Store, Trace
 from labrun.store.models import Event, Run, Spool
 
@@ -43,7 +43,10 @@ def _raw_frame(store: Store, query: Any) -> pd.DataFrame:
     sql = str(query.compile(store.engine, compile_kwargs={"literal_binds": True}))
     columns = [c.name for c in query.selected_columns]
     with store.engine.connect() as conn:
-        cursor = conn.connection.dbapi_connection.cursor()
+        dbapi = conn.connection.dbapi_connection
+        if dbapi is None:  # only after the connection was invalidated
+            raise RuntimeError("database connection lost before the query")
+        cursor = dbapi.cursor()
         try:
             cursor.execute(sql)
             rows = cursor.fetchall()
@@ -103,7 +106,8 @@ def _line_ids(store: Store, run_id: int, inputs: bool) -> list[LineId]:
     if inputs:
         q = q.outerjoin(Trace, Trace.id == Line.trace_id).where(_OUTPUT)
     with store.engine.connect() as conn:
-        found = [LineId(k, s, int(o)) for k, s, o in conn.execute(q)]
+        # the columns hold only what LineId wrote (labrun.store.models.Line)
+        found = [LineId(cast(Kind, k), cast(Side, s), int(o)) for k, s, o in conn.execute(q)]
     return sorted(found, key=lambda ln: (ln.kind != "tone", ln.side, ln.order))
 
 

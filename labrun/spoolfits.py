@@ -169,10 +169,13 @@ def _spool_of(store: Store, run_ids: list[int]) -> tuple[Spool, str | None]:
             raise InputError(f"run {bad} is not linked to a spool (stored by labrun 0.1.0?); "
                              "fit it with Python (labrun.fits) instead", field="RUN_ID")
         if len(spool_ids) > 1:
-            labels = sorted({runs[r].spool.label for r in run_ids})
+            labels = sorted({owner.label for r in run_ids if (owner := runs[r].spool)})
             raise InputError(f"the runs are of different spools ({', '.join(labels)}): fit one "
                              "spool at a time", field="RUN_ID")
-        spool = s.get(Spool, spool_ids.pop())
+        spool_id = spool_ids.pop()
+        spool = s.get(Spool, spool_id)
+        if spool is None:  # the foreign key makes this impossible
+            raise InputError(f"no spool {spool_id} in this database", field="RUN_ID")
         bench_text = runs[run_ids[0]].bench_text
     return spool, bench_text
 

@@ -145,6 +145,8 @@ def cmd_spool_set(args: argparse.Namespace) -> int:
         store.spool_id(args.label)
         with store.session() as s:
             spool = s.scalar(select(Spool).where(Spool.label == args.label))
+            if spool is None:  # spool_id above made it
+                raise InputError(f"no spool {args.label!r}", field="LABEL")
             for name, value in given.items():
                 setattr(spool, name, value)
             spool.updated_at = utcnow()

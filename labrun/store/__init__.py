@@ -7,7 +7,12 @@ The names below load SQLAlchemy on first use (PEP 562), so commands that only ne
 from __future__ import annotations
 
 import importlib
-from typing import Any
+from typing import TYPE_CHECKING, Any
+
+if TYPE_CHECKING:  # what the lazy names below are, for the type checker (nothing imported)
+    from labrun.store.db import Store, TraceData, open_existing_store, open_store, store_url
+    from labrun.store.kinds import FINISHED_STATUSES, RUN_STATUSES, EventKind, RunStatus
+    from labrun.store.models import Base, Event, Line, Point, Run, Spool, Trace
 
 DEFAULT_DB = "labrun.db"  # SQLite file in the current folder when --db is not given
 
@@ -19,7 +24,12 @@ _LAZY = {
     "Line": "models", "Point": "models", "Run": "models", "Spool": "models", "Trace": "models",
 }
 
-__all__ = ["DEFAULT_DB", *_LAZY]
+__all__ = [  # the names of _LAZY, written out so linters and type checkers see them
+    "DEFAULT_DB", "Store", "TraceData", "open_existing_store", "open_store", "store_url",
+    "FINISHED_STATUSES", "RUN_STATUSES", "RunStatus", "EventKind", "Base", "Event", "Line",
+    "Point", "Run", "Spool", "Trace",
+]
+assert set(__all__) == {"DEFAULT_DB", *_LAZY}
 
 
 def __getattr__(name: str) -> Any:

@@ -192,9 +192,11 @@ class Store:
                          field="spool")
 
     # ----- events -----------------------------------------------------------------------------
-    def add_event(self, run_id: int, kind: EventKind, message: str = "", *, role: str | None = None,
-                  point_key: str | None = None, data: dict[str, Any] | None = None) -> None:
-        """Log one event against a run, in its own transaction."""
+    def add_event(self, run_id: int, kind: EventKind | str, message: str = "", *,
+                  role: str | None = None, point_key: str | None = None,
+                  data: dict[str, Any] | None = None) -> None:
+        """Log one event against a run, in its own transaction (``kind``: an EventKind or its
+        string value, which is what the column stores)."""
         with self.engine.begin() as conn:
             conn.execute(insert(Event).values(
                 run_id=run_id, at=utcnow(), kind=kind, role=role, point_key=point_key,
