@@ -56,6 +56,11 @@ class Monitor:
                 self._thread.start()
             self._cond.notify()
 
+    def armed(self) -> int:
+        """How many deadlines are being watched now."""
+        with self._cond:
+            return len(self._armed)
+
     def disarm(self, dog: Deadline) -> None:
         """Stop watching ``dog`` (its attempt ended)."""
         with self._cond:

@@ -89,11 +89,12 @@ def test_deferred_store_raises_what_the_thread_met(tmp_path):
     class Boom(Exception):
         pass
 
+    def fails(_where):
+        raise Boom("thread failed")
+
     d = DeferredStore("sqlite:///x", str(tmp_path / "x.db"))
     d.result().close()  # opens
-    bad = DeferredStore("sqlite:///y", str(tmp_path / "y.db"))
-    bad._thread.join()
-    bad._store, bad._error = None, Boom("thread failed")
+    bad = DeferredStore("sqlite:///y", str(tmp_path / "y.db"), opener=fails)
     with pytest.raises(Boom):
         bad.latest_run_id()
     bad.close()  # nothing to close
@@ -117,13 +118,11 @@ def test_a_run_through_the_deferred_store_stores_every_point(tmp_path, lab, caps
         store.close()
 
 
-def test_deferred_store_is_not_used_for_a_server_url(monkeypatch):
+def test_deferred_store_is_not_used_for_a_server_url():
     """A server URL is opened at once (its checks need the server): open_store is called."""
     called = []
-    import labrun.store.db as db
-
-    monkeypatch.setattr(db, "open_store", lambda url: called.append(url) or "store")
-    assert open_deferred("postgresql+psycopg://u@127.0.0.1:1/x") == "store"
+    opener = lambda url: called.append(url) or "store"  # noqa: E731 - the test's open_store
+    assert open_deferred("postgresql+psycopg://u@127.0.0.1:1/x", opener=opener) == "store"
     assert called == ["postgresql+psycopg://u@127.0.0.1:1/x"]
     with pytest.raises(InputError):
         precheck_sqlite("/no/such/folder/r.db")

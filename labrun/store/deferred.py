@@ -16,6 +16,7 @@ from __future__ import annotations
 import os
 import sqlite3
 import threading
+from collections.abc import Callable
 from typing import Any
 
 from labrun.errors import InputError
@@ -26,9 +27,10 @@ from labrun.store.statusview import BUSY_TIMEOUT_S, is_sqlite, sqlite_location
 class DeferredStore:
     """A Store being opened on a thread: ``url`` at once, anything else once it is open."""
 
-    def __init__(self, url: str, where: str):
+    def __init__(self, url: str, where: str, *, opener: Callable[[str], Any] | None = None):
         self.url = url
         self._where = where
+        self._opener = opener or _open_store
         self._store: Any = None
         self._error: BaseException | None = None
         self._thread = threading.Thread(target=self._open, name="labrun-store-open",
@@ -38,9 +40,7 @@ class DeferredStore:
     def _open(self) -> None:
         """The thread: import SQLAlchemy and open (create or upgrade) the store."""
         try:
-            from labrun.store.db import open_store
-
-            self._store = open_store(self._where)
+            self._store = self._opener(self._where)
         except BaseException as exc:  # noqa: BLE001 - raised where the store is first used
             self._error = exc
 
@@ -59,6 +59,13 @@ class DeferredStore:
         self._thread.join()
         if self._store is not None:
             self._store.close()
+
+
+def _open_store(where: str) -> Any:
+    """``labrun.store.db.open_store`` (SQLAlchemy imported on first use)."""
+    from labrun.store.db import open_store
+
+    return open_store(where)
 
 
 def precheck_sqlite(url_or_path: str | os.PathLike[str]) -> str:
@@ -88,11 +95,10 @@ def precheck_sqlite(url_or_path: str | os.PathLike[str]) -> str:
     return url
 
 
-def open_deferred(url_or_path: str | os.PathLike[str]) -> Any:
+def open_deferred(url_or_path: str | os.PathLike[str], *,
+                  opener: Callable[[str], Any] | None = None) -> Any:
     """A store for ``labrun run``: SQLite checked now and opened on a thread (DeferredStore),
-    anything else opened now (``open_store``)."""
+    anything else opened now. ``opener``: what opens it (default ``open_store``)."""
     if not is_sqlite(url_or_path):
-        from labrun.store.db import open_store
-
-        return open_store(url_or_path)
-    return DeferredStore(precheck_sqlite(url_or_path), os.fspath(url_or_path))
+        return (opener or _open_store)(os.fspath(url_or_path))
+    return DeferredStore(precheck_sqlite(url_or_path), os.fspath(url_or_path), opener=opener)

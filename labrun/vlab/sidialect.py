@@ -183,12 +183,14 @@ def _osa(inst: SimInstrument) -> None:
             setattr(osa, name, si_value(c, lo, hi, m_to_nm))
         return handler
 
+    def getter(name: str) -> Callable[[Call], str]:
+        return lambda c: si_number(nm_to_m(getattr(osa, name)))
+
     for node, name, operation in (("CENTer", "center_nm", "set_center_nm"),
                                   ("SPAN", "span_nm", "set_span_nm"),
                                   ("RESolution", "rbw_nm", "set_rbw_nm")):
         t.add(f"SPECtrum:{node}", setter(name, operation))
-        t.add(f"SPECtrum:{node}", lambda c, n=name: si_number(nm_to_m(getattr(osa, n))),
-              query=True)
+        t.add(f"SPECtrum:{node}", getter(name), query=True)
     t.add("SPECtrum:NPTS", inst.set_points)
     t.add("SPECtrum:NPTS", lambda c: str(osa.points), query=True)
     t.add("SPECtrum:SWEep", inst.start_sweep, nargs=(0, 0), waits=True)
