@@ -46,7 +46,8 @@ def one_seed(seed: int, folder: Path) -> tuple[dict, float, float]:
             for name in PLANS:
                 out = run_plan(load_plan(name), bench, store, operator="coverage benchmark",
                                unattended=True, ack_safety=True, progress=False)
-                tables.append(run_points(store, out.run_id, include_reference=False))
+                tables.append(run_points(store, out.run_id, include_reference=False,
+                                         limits=True))
     finally:
         store.close()
     t_run = time.perf_counter() - t0

@@ -42,7 +42,8 @@ def main() -> None:
             for name in ("power-sweep.toml", "spacing-sweep.toml"):
                 out = run_plan(load_plan(name), bench, store, operator="benchmark",
                                unattended=True, ack_safety=True, progress=False)
-                tables.append(run_points(store, out.run_id, include_reference=False))
+                tables.append(run_points(store, out.run_id, include_reference=False,
+                                         limits=True))
         store.close()
     tables[1] = tables[1].iloc[:30]
     n = sum(len(t) for t in tables)

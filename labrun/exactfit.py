@@ -23,6 +23,7 @@ from typing import Any
 import numpy as np
 
 from labrun.fits import (
+    LIMIT_PREFIX,
     FitResult,
     PolFrame,
     _copolar,
@@ -313,10 +314,10 @@ def fit_spool(runs_points: Sequence[Any], spool_length_km: float, loss_db_per_km
                                           reference_wavelength_nm)
         offsets = fit_power_offsets(t, c_tone, *u_arms, unc.osa_amplitude_db)
         t2 = _shifted(t, offsets)
-        if "sideband_high_1" in t:
-            t2["sideband_high_1"] = t["sideband_high_1"] - c_hi
-        if "sideband_low_1" in t:
-            t2["sideband_low_1"] = t["sideband_low_1"] - c_lo
+        for key, corr in (("sideband_high_1", c_hi), ("sideband_low_1", c_lo)):
+            for col in (key, LIMIT_PREFIX + key):  # an upper limit moves with its line
+                if col in t:
+                    t2[col] = t[col] - corr
         current = fit_run(t2, spool_length_km, loss_db_per_km, **kw,
                           dispersion_start=dispersion_of(current))
         new = _params(current, dispersion_ps_per_nm_km, slope_ps_per_nm2_km)

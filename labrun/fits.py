@@ -54,6 +54,7 @@ GRID_N_BEST = 12  # candidates refined with the full model (aliases of the oscil
 SIGN_DCHI2 = 25.0  # the sign of D is reported when the other sign fits worse by this much
 LINE_KEY = re.compile(r"^(tone|sideband)_(low|high)_(\d+)$")
 DB = 10.0 / math.log(10.0)  # dB per neper of power ratio (10 log10 e)
+LIMIT_PREFIX = "limit_"  # column of an undetected line's upper limit (dBm): limit_sideband_high_1
 
 
 @dataclass(frozen=True)
@@ -99,7 +100,8 @@ def points_table(points) -> dict[str, np.ndarray]:
 
     A record's ``lines`` list (line schema of docs/design.md §2.1: kind, side, order,
     power_dbm, detected) is
-    flattened into ``<kind>_<side>_<order>`` columns; undetected or missing powers become NaN.
+    flattened into ``<kind>_<side>_<order>`` columns; undetected or missing powers become NaN,
+    and an undetected line's upper limit (``upper_limit_dbm``) becomes ``limit_<kind>_...``.
     """
     if isinstance(points, Mapping) and all(isinstance(v, np.ndarray) for v in points.values()):
         return dict(points)  # already a table (columns as arrays)
@@ -110,9 +112,10 @@ def points_table(points) -> dict[str, np.ndarray]:
         r = {k: v for k, v in dict(rec).items() if k != "lines"}
         for ln in (rec.get("lines") or []) if isinstance(rec, Mapping) else []:
             det = ln.get("detected", True)
-            r[f"{ln['kind']}_{ln['side']}_{int(ln['order'])}"] = (
-                ln.get("power_dbm") if det else None
-            )
+            key = f"{ln['kind']}_{ln['side']}_{int(ln['order'])}"
+            r[key] = ln.get("power_dbm") if det else None
+            if not det and ln.get("upper_limit_dbm") is not None:
+                r[LIMIT_PREFIX + key] = ln["upper_limit_dbm"]
         flat.append(r)
     keys: dict[str, None] = {}
     for r in flat:
@@ -518,7 +521,8 @@ def fit_dispersion(p_a_w, p_b_w, spacing_ghz, wavelength_a_nm, side, ratio, *, l
                    loss_db_per_km: float, reference_wavelength_nm: float, copolar=None,
                    fit_slope: bool | None = None, d_max: float = 300.0,
                    s_max: float = 5.0,
-                   start: tuple[float, float] | None = None) -> dict[str, FitResult]:
+                   start: tuple[float, float] | None = None,
+                   censored=None) -> dict[str, FitResult]:
     """D (and slope S) from first-sideband efficiency against spacing: bounded least squares.
 
     Residuals in dB of R = eta(dbeta(D, S)) c gamma^2 L_eff^2 P_a P_b, free parameters ln gamma,
@@ -529,16 +533,24 @@ def fit_dispersion(p_a_w, p_b_w, spacing_ghz, wavelength_a_nm, side, ratio, *, l
     profiled out, the efficiency being oscillatory (``_joint_grid_starts``); ``start`` = (D, S)
     of a nearby solution replaces the searches by a local refinement (refits of moved inputs).
     Standard errors from the Jacobian at the solution (cov = s^2 (J^T J)^-1).
+    ``censored`` marks rows whose ``ratio`` is an upper limit (the line was not detected): their
+    residual is one-sided, zero while the model is below the limit and the excess in dB above
+    it (the least-squares form of a censored observation, as in J. Tobin, Econometrica 26, 24
+    (1958)). The starts and the point count use the detected rows only.
     """
     arrs = [np.asarray(v, float) for v in (p_a_w, p_b_w, spacing_ghz, wavelength_a_nm, ratio)]
     p_a, p_b, sp, lam, r = arrs
     side = np.asarray(side)
     cop = np.ones_like(r) if copolar is None else np.asarray(copolar, float)
+    cen = np.zeros(r.shape, bool) if censored is None else np.asarray(censored, bool)
     ok = np.isfinite(r) & (r > 0) & np.isfinite(sp) & np.isfinite(lam) & (cop > 0)
-    if ok.sum() < 4 or np.unique(np.round(np.abs(sp[ok]), 6)).size < 3:
+    det_ok = ok & ~cen
+    if det_ok.sum() < 4 or np.unique(np.round(np.abs(sp[det_ok]), 6)).size < 3:
         return {}
-    p_a, p_b, sp, lam, r, side, cop = (v[ok] for v in (p_a, p_b, sp, lam, r, side, cop))
-    lams = np.unique(lam)
+    p_a, p_b, sp, lam, r, side, cop, cen = (v[ok] for v in (p_a, p_b, sp, lam, r, side, cop,
+                                                               cen))
+    det = ~cen
+    lams = np.unique(lam[det])
     with_slope = (lams.size >= 2) if fit_slope is None else bool(fit_slope)
     alpha = float(alpha_per_km(loss_db_per_km))
     l_eff = effective_length_km(length_km, loss_db_per_km)
@@ -553,17 +565,18 @@ def fit_dispersion(p_a_w, p_b_w, spacing_ghz, wavelength_a_nm, side, ratio, *, l
                                                  np.exp(theta[0]) * w_nl))
         else:
             eta = np.asarray(inoue_efficiency(alpha, theta[1] * u + s * v, length_km))
-        return 2.0 * DB * theta[0] + DB * np.log(np.maximum(eta, 1e-300)) - y
+        res = 2.0 * DB * theta[0] + DB * np.log(np.maximum(eta, 1e-300)) - y
+        return np.where(cen, np.maximum(res, 0.0), res)  # limits: one-sided
 
     if start is not None:  # a refit near a known solution: local refinement only
         starts = [(abs(start[0]), float(np.sign(start[0]) or 1.0) * start[1] if with_slope
                    else 0.0)]
     else:
-        starts = _dispersion_starts(y, u, lam, lams, alpha, length_km, d_max, with_slope,
-                                    reference_wavelength_nm, s_max)
+        starts = _dispersion_starts(y[det], u[det], lam[det], lams, alpha, length_km, d_max,
+                                    with_slope, reference_wavelength_nm, s_max)
         if with_slope:
-            starts += _joint_grid_starts(y, u, v, alpha, length_km, min(d_max, GRID_D_MAX),
-                                         min(s_max, GRID_S_MAX))
+            starts += _joint_grid_starts(y[det], u[det], v[det], alpha, length_km,
+                                         min(d_max, GRID_D_MAX), min(s_max, GRID_S_MAX))
     # Stage 1, Inoue's linear mismatch (closed form, fast) from every start, D >= 0; stage 2
     # (below) from each stage-1 solution, the best by the full model's cost kept: aliases of
     # the oscillating efficiency can fit the linear mismatch about as well as the truth, the
@@ -571,7 +584,7 @@ def fit_dispersion(p_a_w, p_b_w, spacing_ghz, wavelength_a_nm, side, ratio, *, l
     lins: list[Any] = []  # scipy's OptimizeResults, one per start
     for d0, s0 in starts:
         eta0 = np.asarray(inoue_efficiency(alpha, d0 * u + s0 * v, length_km))
-        g0 = float(np.mean(y - DB * np.log(np.maximum(eta0, 1e-300)))) / (2.0 * DB)
+        g0 = float(np.mean((y - DB * np.log(np.maximum(eta0, 1e-300)))[det])) / (2.0 * DB)
         theta0 = [g0, d0] + ([s0] if with_slope else [])
         try_sol = least_squares(resid, theta0, kwargs={"nl": False}, x_scale="jac",
                                 bounds=([-np.inf, 0.0] + ([-s_max] if with_slope else []),
@@ -594,13 +607,14 @@ def fit_dispersion(p_a_w, p_b_w, spacing_ghz, wavelength_a_nm, side, ratio, *, l
                 best[neg] = try_sol
     sol = min(best.values(), key=lambda x: x.cost)
     other = [b.cost for k, b in best.items() if k != bool(sol.x[1] < 0)]
-    n, p = r.size, len(sol.x)
+    active = cen & (sol.fun > 0)  # limits the model exceeds: they act as data
+    n, p = int(det.sum() + active.sum()), len(sol.x)
     s2 = max(float(np.sum(sol.fun**2)) / max(n - p, 1), 1e-300)
     dchi2 = 2.0 * (other[0] - sol.cost) / s2 if other else 0.0
     signed = dchi2 >= SIGN_DCHI2
     flip = -1.0 if (sol.x[1] < 0 and not signed) else 1.0
     cov = _covariance(sol.jac, sol.fun, n, p)
-    rms = float(np.sqrt(np.mean(sol.fun**2)))
+    rms = float(np.sqrt(np.mean(sol.fun[det | active] ** 2)))
     gamma = float(np.exp(sol.x[0]))
     model = ("Inoue efficiency vs spacing: R = eta(dbeta) gamma^2 L_eff^2 P_a P_b, dbeta from "
              "beta2, beta3 at tone a with D(lambda) = D + S (lambda - lambda_ref), plus the "
@@ -610,6 +624,7 @@ def fit_dispersion(p_a_w, p_b_w, spacing_ghz, wavelength_a_nm, side, ratio, *, l
              "sign_determined": bool(signed),
              "sign_preferred": "negative" if sol.x[1] < 0 else "positive",
              "delta_chi2_other_sign": float(dchi2),
+             "n_upper_limits": int(cen.sum()), "n_upper_limits_exceeded": int(active.sum()),
              "at_bound": bool(np.any(sol.active_mask != 0))}
     if signed:
         warn = [f"sign of D set by the SPM/XPM mismatch (the other sign fits worse by "
@@ -895,7 +910,7 @@ def _perturbed(t: dict[str, np.ndarray], length_km: float, loss: float, name: st
         t2["power_b_dbm"] = t["power_b_dbm"] + u
     elif name == "osa_amplitude_db":
         for k in t:
-            if k.startswith("sideband_"):
+            if k.startswith(("sideband_", LIMIT_PREFIX + "sideband_")):
                 t2[k] = t[k] + u
     elif name == "wavelength_pm":
         lam = t.get("wavelength_a_nm", np.full(t["power_a_dbm"].size, lam_ref))
@@ -982,6 +997,12 @@ def _fit_table(t: dict[str, np.ndarray], spool_length_km: float, loss_db_per_km:
     # Dispersion first: its D feeds the efficiency correction of the gamma fits.
     side = np.concatenate([np.full(n, "high"), np.full(n, "low")])
     ratio = np.concatenate([hi1 / tb, lo1 / ta])
+    # An undetected first sideband enters as an upper limit (one-sided residual).
+    lims = {k: dbm_to_w(t[LIMIT_PREFIX + k]) if LIMIT_PREFIX + k in t else nan
+            for k in ("sideband_high_1", "sideband_low_1")}
+    limit = np.concatenate([lims["sideband_high_1"] / tb, lims["sideband_low_1"] / ta])
+    cens = ~np.isfinite(ratio) & np.isfinite(limit)
+    ratio = np.where(cens, limit, ratio)
     both = np.concatenate([co, co])
     small = ratio <= 10 ** (small_signal_max_ratio_db / 10)
     sel = both & small & np.isfinite(ratio)
@@ -991,7 +1012,7 @@ def _fit_table(t: dict[str, np.ndarray], spool_length_km: float, loss_db_per_km:
             np.tile(p_a, 2)[sel], np.tile(p_b, 2)[sel], np.tile(spacing, 2)[sel],
             np.tile(lam, 2)[sel], side[sel], ratio[sel], length_km=spool_length_km,
             loss_db_per_km=loss_db_per_km, reference_wavelength_nm=reference_wavelength_nm,
-            copolar=np.tile(c_eff, 2)[sel], start=dispersion_start))
+            copolar=np.tile(c_eff, 2)[sel], start=dispersion_start, censored=cens[sel]))
         if "dispersion" not in results:
             results["dispersion"] = refused(
                 "Inoue efficiency vs spacing", "ps/(nm km)",

@@ -118,10 +118,12 @@ def _json_column(values: pd.Series) -> list[dict]:
     return [d or {} for d in json.loads("[" + ",".join(values.fillna("null")) + "]")]
 
 
-def run_points(store: Store, run_id: int, *, include_reference: bool = True) -> pd.DataFrame:
+def run_points(store: Store, run_id: int, *, include_reference: bool = True,
+               limits: bool = False) -> pd.DataFrame:
     """One row per stored point of a run: setpoint columns plus a dBm column per detected line.
 
-    Undetected lines are NaN (their upper limits stay in the lines table). Reference points are
+    Undetected lines are NaN; with ``limits`` their upper limits (dBm, from the reduction's
+    floor) come as ``limit_<line>`` columns, NaN where the line was detected. Reference points are
     flagged in ``is_reference`` so callers can keep them out of fits. Lines of input-tap traces
     (switch path 2) are left out: the columns are the spool output. One SQL query pivots the
     lines into columns (conditional aggregation per distinct line).
@@ -134,6 +136,12 @@ def run_points(store: Store, run_id: int, *, include_reference: bool = True) -> 
     wanted = [func.max(case((and_(Line.kind == ln.kind, Line.side == ln.side,
                                   Line.order == ln.order, *keep), Line.power_dbm))).label(ln.key)
               for ln in _line_ids(store, run_id, inputs)]
+    if limits:
+        off = (Line.detected.is_(False), _OUTPUT) if inputs else (Line.detected.is_(False),)
+        wanted += [func.max(case((and_(Line.kind == ln.kind, Line.side == ln.side,
+                                       Line.order == ln.order, *off), Line.upper_limit_dbm))
+                            ).label(f"limit_{ln.key}")
+                   for ln in _line_ids(store, run_id, inputs)]
     q = (select(Point.id.label("point_id"), Point.index, Point.key, Point.is_reference,
                 Point.repeat, Point.floor_dbm, type_coerce(Point.setpoint, Text).label("sp"),
                 *wanted)

@@ -191,7 +191,8 @@ def fit_runs(store: Store, run_ids: list[int], *, save: bool = True) -> FitRecor
         raise InputError(f"spool {spool.label} has no length or loss on record: "
                          f"labrun spool set {spool.label} --length-km KM --loss-db-per-km DB",
                          field="spool")
-    tables = [run_points(store, r, include_reference=False).assign(run_id=r) for r in run_ids]
+    tables = [run_points(store, r, include_reference=False, limits=True).assign(run_id=r)
+              for r in run_ids]
     tables = [t for t in tables if not t.empty]
     if not tables:
         raise InputError("the runs have no stored points to fit", field="RUN_ID")
