@@ -12,10 +12,11 @@ from typing import Any
 
 from labrun.errors import InstrumentError
 from labrun.physics.units import nm_to_thz
+from labrun.profiles import LEVEL_RANGE_DBM
 
 # Sanity bounds of a trace sample in dBm: an OSA shows nothing outside them; a value outside is a
 # corrupted transfer, not light (common practice).
-TRACE_DBM_BOUNDS = (-300.0, 100.0)
+TRACE_DBM_BOUNDS = LEVEL_RANGE_DBM  # no OSA shows levels beyond (labrun.profiles)
 # The OSA's settings of a point, in the order of OsaSettings (centre, span, RBW, samples).
 OSA_SETTINGS = ("set_center_nm", "set_span_nm", "set_rbw_nm", "set_points")
 

@@ -4,7 +4,10 @@
 status query asked every ``interval_s`` until its reply matches ``done``, InstrumentError after
 ``timeout_s``; ``wai``: ``*WAI`` (IEEE 488.2 10.39: nothing after it runs before pending
 operations finish) followed by a query whose reply confirms it; ``fixed``: a fixed time (the
-bench's settle scale applies). A trace is read only after one of them returned.
+bench's settle scale applies); ``stb``: the ``arm`` commands (e.g. ``*CLS`` and ``*OPC``, with
+``*ESE 1`` in init), then the status byte (IEEE 488.2 ``*STB?``) read until every bit of
+``mask`` is set (bit 5, value 32: the event status summary, set once ``*OPC`` has fired and
+``*ESE`` enables it). A trace is read only after one of them returned.
 """
 
 from __future__ import annotations
@@ -27,6 +30,8 @@ def waiter(spec: CompletionSpec, settle_scale: float = 1.0
         return lambda session: _poll(session, spec)
     if spec.method == "wai":
         return lambda session: _wai(session, spec)
+    if spec.method == "stb":
+        return lambda session: _stb(session, spec)
     return lambda _session: time.sleep(spec.fixed_s * max(0.0, settle_scale))
 
 
@@ -50,3 +55,27 @@ def _wai(session: ScpiSession, spec: CompletionSpec) -> None:
     """``*WAI``, then the confirming query: its reply comes only once the operation is done."""
     session.write("*WAI")
     session.query(spec.query or "*STB?")
+
+
+def _stb(session: ScpiSession, spec: CompletionSpec) -> None:
+    """Send the arm commands, then read the status byte until every bit of ``mask`` is set;
+    InstrumentError on a reply that is no byte or after ``timeout_s``."""
+    assert spec.mask is not None
+    for command in spec.arm:
+        session.write(command)
+    query = spec.query or "*STB?"
+    deadline = time.monotonic() + spec.timeout_s
+    while True:
+        reply = session.query(query)
+        try:
+            stb = int(float(reply.strip()))
+        except ValueError:
+            raise InstrumentError(f"{query} answered {reply!r}, not a status byte",
+                                  role=session.role, resource=session.resource) from None
+        if stb & spec.mask == spec.mask:
+            return
+        if time.monotonic() >= deadline:
+            raise InstrumentError(f"operation not complete after {spec.timeout_s:g} s: "
+                                  f"{query} still answers {stb} (waiting for bits {spec.mask})",
+                                  role=session.role, resource=session.resource)
+        time.sleep(spec.interval_s)

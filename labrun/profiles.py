@@ -118,34 +118,65 @@ class CompletionSpec(_Strict):
 
     model_config = ConfigDict(**FILE_MODEL_CONFIG, frozen=True)
 
-    method: Literal["opc", "poll", "wai", "fixed"] = "opc"
-    query: str | None = None      # poll: the status query; wai: the confirming query
+    method: Literal["opc", "poll", "wai", "fixed", "stb"] = "opc"
+    query: str | None = None      # poll: the status query; wai: the confirming query; stb:
+                                  #   the status-byte query (default *STB?)
     done: str | None = None       # poll: regular expression a finished reply fullmatches
+    mask: int | None = Field(None, ge=1, le=255)  # stb: bits all set once the operation is done
+    arm: list[str] = []           # stb: commands sent after the operation, before polling
     interval_s: float = Field(0.05, gt=0, le=60)
     timeout_s: float = Field(60.0, gt=0, le=3600)
     fixed_s: float = Field(0.0, ge=0, le=3600)
+
+
+# Trace levels no OSA shows (dBm per RBW): beyond them a trace is corrupted, whatever profile.
+LEVEL_RANGE_DBM = (-300.0, 100.0)
+# IEEE 488.2 definite-length block formats and their struct codes (pyvisa's block codec).
+BLOCK_DATATYPES = {"real32": "f", "real64": "d", "int16": "h", "int32": "i"}
 
 
 class TraceSpec(_Strict):
     """How an OSA transfers traces (REAL,32 definite-length block or ASCII), and how long a
     sweep takes (optional)."""
 
-    format: Literal["real32", "ascii"]
-    byte_order: Literal["little", "big"] = "little"
+    format: Literal["real32", "real64", "int16", "int32", "ascii"]
+    byte_order: Literal["little", "big"] = "little"  # of a binary block
     format_command: str | None = None
     ascii_command: str | None = None
     byte_order_command: str | None = None
     ascii_separator: Literal[",", " ", "\t"] = ","  # between ASCII values
     ascii_leading_count: bool = False  # the first ASCII value counts the values after it
+    ascii_header: str | None = None    # a regular expression the ASCII reply starts with, skipped
     axis_start_query: str | None = None  # the axis from start/stop queries (linear, as many
     axis_stop_query: str | None = None   #   samples as the level trace) instead of read_trace_x
     axis_wire_unit: str = "nm"           # the unit those queries answer in
+    axis_from_settings: bool = False     # the axis from read_center_nm, read_span_nm (and the
+                                         #   level trace's length), for an OSA with no axis query
+    # The levels (dBm per RBW) a trace of this OSA may hold: one outside is refused as corrupted
+    # before it is accepted (default LEVEL_RANGE_DBM, wide enough for any instrument).
+    level_range_dbm: Annotated[tuple[Number, Number] | None, Field(strict=False)] = None
     sweep_time: SweepTime | None = None
 
     @property
     def axis_from_start_stop(self) -> bool:
         """True when the wavelength axis comes from start/stop queries."""
         return self.axis_start_query is not None
+
+    @property
+    def levels_dbm(self) -> tuple[float, float]:
+        """The level range a trace must stay in (declared, else LEVEL_RANGE_DBM)."""
+        rng = self.level_range_dbm
+        return LEVEL_RANGE_DBM if rng is None else (float(rng[0]), float(rng[1]))
+
+    @property
+    def block_datatype(self) -> str | None:
+        """The struct code of a binary block's values (None for ASCII)."""
+        return BLOCK_DATATYPES.get(self.format)
+
+    @property
+    def axis_needs_no_query(self) -> bool:
+        """True when read_trace_x is not needed: the axis comes from start/stop or settings."""
+        return self.axis_from_start_stop or self.axis_from_settings
 
 
 # The named groups each reply form must have (labrun reads only those groups).
@@ -510,6 +541,19 @@ def _check_axis(path: Path, trace: TraceSpec) -> None:
     """Start and stop queries come together, hold one command each, speak a length unit."""
     from labrun.wireunits import WIRE_UNITS
 
+    rng = trace.level_range_dbm
+    if rng is not None and not LEVEL_RANGE_DBM[0] <= rng[0] < rng[1] <= LEVEL_RANGE_DBM[1]:
+        raise _fail(path, "trace.level_range_dbm", f"must be [low, high] dBm with "
+                                                   f"{LEVEL_RANGE_DBM[0]:g} <= low < high <= "
+                                                   f"{LEVEL_RANGE_DBM[1]:g}, got {list(rng)}")
+    if trace.ascii_header is not None:
+        try:
+            re.compile(trace.ascii_header)
+        except re.error as exc:
+            raise _fail(path, "trace.ascii_header", f"not a regular expression: {exc}") from None
+    if trace.axis_from_settings and trace.axis_from_start_stop:
+        raise _fail(path, "trace.axis_from_settings", "give start/stop queries or "
+                                                      "axis_from_settings, not both")
     if (trace.axis_start_query is None) != (trace.axis_stop_query is None):
         raise _fail(path, "trace.axis_stop_query", "give both axis_start_query and "
                                                    "axis_stop_query, or neither")
@@ -536,6 +580,15 @@ def _check_completion(path: Path, head: _ProfileHead, spec: CompletionSpec,
             re.compile(spec.done)
         except re.error as exc:
             raise _fail(path, f"{where}.done", f"not a regular expression: {exc}") from None
+    if spec.method == "stb" and spec.mask is None:
+        raise _fail(path, f"{where}.mask", "method stb needs 'mask', the status-byte bits set "
+                                           "once the operation is done (IEEE 488.2 status byte)")
+    if spec.arm and spec.method != "stb":
+        raise _fail(path, f"{where}.arm", "only method stb sends 'arm' commands")
+    for i, command in enumerate(spec.arm):
+        _check_one_command(path, f"{where}.arm[{i}]", command, template=False)
+        if switches_source_on(command):
+            raise _fail(path, f"{where}.arm[{i}]", f"{command!r} would switch a source on")
     if spec.method == "fixed" and spec.fixed_s <= 0:
         raise _fail(path, f"{where}.fixed_s", "method fixed needs fixed_s > 0")
 
@@ -558,12 +611,17 @@ def parse_profile(data: dict[str, Any], path: Path) -> Profile:
         _check_operation(path, head.kind, name, op, ops)
     for name in REQUIRED_OPERATIONS[head.kind]:
         if name == "read_trace_x" and model.trace is not None and \
-                model.trace.axis_from_start_stop:
+                model.trace.axis_needs_no_query:
             continue
         if name not in ops:
             raise _fail(path, f"operations.{name}", f"a {head.kind} profile must map {name!r}")
     if model.trace is not None:
         _check_axis(path, model.trace)
+        if model.trace.axis_from_settings:
+            for name in ("read_center_nm", "read_span_nm"):
+                if name not in ops:
+                    raise _fail(path, "trace.axis_from_settings",
+                                f"the axis from the settings needs {name!r}")
     if head.kind == "osa" and model.trace is None:
         raise _fail(path, "trace", "an osa profile needs a [trace] table")
     if head.kind != "osa" and model.trace is not None:

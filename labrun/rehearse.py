@@ -14,6 +14,8 @@ the messages the run sends. Nothing is reduced and nothing is stored.
 from __future__ import annotations
 
 import contextlib
+import dataclasses
+import re
 from collections.abc import Sequence
 from dataclasses import dataclass, field
 from typing import Any
@@ -43,6 +45,33 @@ class SimClock:
     def sleep(self, seconds: float) -> None:
         """The engine waits: the simulated time passes at once."""
         self.now += max(0.0, float(seconds))
+
+
+def _literal(pattern: str | None) -> str | None:
+    """The text a plain ``done`` pattern stands for ('0', 'IDLE'), None for a real pattern."""
+    if pattern is None or not re.fullmatch(r"[\w+.-]*", pattern):
+        return None
+    return pattern if re.fullmatch(pattern, pattern) else None
+
+
+def rehearsal_profile(profile: Any) -> Any:
+    """``profile`` as the rehearsal's instruments answer it: generic reply forms (they answer
+    ``0,"No error"``, bare numbers, 1/0), and a poll whose ``done`` is a real pattern (which
+    they cannot answer) replaced by no wait; every command the run sends stays the same."""
+    from labrun.profiles import CompletionSpec, ReplyForms
+
+    changes: dict[str, Any] = {"replies": ReplyForms()}
+    done = profile.completion
+    if done.method == "poll" and _literal(done.done) is None:
+        changes["completion"] = CompletionSpec(method="fixed", fixed_s=0.0)
+    return dataclasses.replace(profile, **changes)
+
+
+def rehearsal_bench(bench: Any) -> Any:
+    """``bench`` with every profile as the rehearsal answers it (``rehearsal_profile``)."""
+    return dataclasses.replace(bench, instruments={
+        role: dataclasses.replace(spec, profile=rehearsal_profile(spec.profile))
+        for role, spec in bench.instruments.items()})
 
 
 def _header(template: str | None) -> str:
@@ -131,29 +160,50 @@ class DryRunLibrary(TrafficReplayLibrary):
             return f"LABRUN-CHECK,REHEARSAL,{inst.role},0".encode()
         if header == "*OPC?":
             return b"1"
+        done = prof.completion
+        if done.query and header == _header(done.query):  # the operation is done at once
+            if done.method == "poll":
+                return (_literal(done.done) or "").encode()
+            if done.method == "stb":
+                return str(done.mask).encode()
+        trace = prof.trace
+        if trace is not None and trace.axis_from_start_stop and header in (
+                _header(trace.axis_start_query), _header(trace.axis_stop_query)):
+            from labrun.wireunits import to_wire
+
+            centre, span = self._setting(inst, "set_center_nm"), self._setting(inst, "set_span_nm")
+            end = centre + (span if header == _header(trace.axis_stop_query) else -span) / 2
+            return f"{float(to_wire(end, 'nm', trace.axis_wire_unit)):.10e}".encode()
         if prof.error_query and header == _header(prof.error_query):
             return b'0,"No error"'
         if prof.has("read_interlock") and header == _header(prof.op("read_interlock").template):
             return b"1"  # closed: emission allowed
         return inst.values.get(header[:-1], "0").encode()
 
+    @staticmethod
+    def _setting(inst: _Instrument, name: str) -> float:
+        """The value last set by operation ``name``, in labrun's unit (0 before any)."""
+        op = inst.profile.op(name)
+        return float(op.from_wire(float(inst.values.get(_header(op.template), "0") or 0)))
+
     def _trace(self, inst: _Instrument, *, x_axis: bool) -> bytes:
-        """The configured grid (x) or an empty floor (y), as the transfer format asks."""
+        """The configured grid (x) or an empty floor (y), as the transfer format asks (in the
+        trace's wire unit; ASCII with the profile's separator and leading count)."""
         prof = inst.profile
-
-        def value(name: str) -> float:
-            return float(inst.values.get(_header(prof.op(name).template), "0") or 0)
-
-        points = max(int(value("set_points")), 2)
-        centre, span = value("set_center_nm"), value("set_span_nm")
+        points = max(int(self._setting(inst, "set_points")), 2)
+        centre = self._setting(inst, "set_center_nm")
+        span = self._setting(inst, "set_span_nm")
         data = (np.linspace(centre - span / 2, centre + span / 2, points) if x_axis
                 else np.full(points, FLOOR_DBM))
+        data = np.asarray(prof.op("read_trace_x" if x_axis else "read_trace_y").to_wire(data))
         trace = prof.trace
         ascii_set = trace.ascii_command and inst.values.get(_header(trace.ascii_command)) == \
             trace.ascii_command.split(" ", 1)[-1].strip()
-        if trace.format != "real32" or ascii_set:
-            return ",".join(f"{v:.6f}" for v in data).encode()
-        body = data.astype("<f4" if trace.byte_order == "little" else ">f4").tobytes()
+        if trace.block_datatype is None or ascii_set:
+            head = [str(data.size)] if trace.ascii_leading_count else []
+            return trace.ascii_separator.join(head + [f"{v:.6e}" for v in data]).encode()
+        order = "<" if trace.byte_order == "little" else ">"
+        body = data.astype(order + trace.block_datatype).tobytes()
         return build_block(body)  # IEEE 488.2 definite length
 
 
@@ -243,6 +293,7 @@ def rehearse(plan: Plan, bench: Any, *, limit: int | None = None) -> Rehearsal:
     clock = SimClock()
     log = TrafficLog()
     sweep_s, source = sweep_time(plan, bench)
+    bench = rehearsal_bench(bench)
     lib = DryRunLibrary.for_bench(bench, clock, sweep_s)
     specs = plan.points()
     if limit is not None:

@@ -20,6 +20,7 @@ import logging
 import re
 import select
 import socket
+import struct
 import threading
 import time
 from collections.abc import Callable, Iterator
@@ -577,19 +578,28 @@ class ScpiSession:
 
     def query_block_real32(self, cmd: str, byte_order: str = "little") -> np.ndarray:
         """Query an IEEE 488.2 definite-length block of REAL,32 values (pyvisa's block parser)."""
+        return self.query_block(cmd, "f", byte_order)
+
+    def query_block(self, cmd: str, datatype: str = "f", byte_order: str = "little"
+                    ) -> np.ndarray:
+        """Query a definite-length block of ``datatype`` values (struct codes: f REAL,32, d
+        REAL,64, h INT,16, i INT,32; decoded by pyvisa's block parser), as floats."""
         if byte_order not in ("little", "big"):
             raise ValueError(f"byte order must be 'little' or 'big', not {byte_order!r}")
+        size = struct.calcsize(datatype)
 
         def action() -> np.ndarray:
             self._live().write(cmd)
-            return np.asarray(self._read_block(byte_order == "big"), dtype=float)
+            return np.asarray(self._read_block(byte_order == "big", datatype=datatype),
+                              dtype=float)
 
         with self._lock:
             return self._attempts("query", cmd, action,
-                                  lambda a: (f"<block {4 * a.size} bytes>", self._block_data()))
+                                  lambda a: (f"<block {size * a.size} bytes>",
+                                             self._block_data()))
 
-    def _read_block(self, big_endian: bool, *, head: bytes = b"", last: bool = True
-                    ) -> np.ndarray:
+    def _read_block(self, big_endian: bool, *, head: bytes = b"", last: bool = True,
+                    datatype: str = "f") -> np.ndarray:
         """Read one definite-length block response (IEEE 488.2 7.7.6) and decode it with pyvisa.
 
         The header (``#``, digit n, n digits of length) is read first (``head``: what of it was
@@ -612,8 +622,8 @@ class ScpiSession:
                                        constants.VI_TRUE)
         block = head + digits + self._frame(strip_termination, body, term)
         self._last_block = block
-        return np.asarray(from_ieee_block(block, datatype="f", is_big_endian=big_endian,
-                                          container=_NDARRAY))
+        return np.asarray(from_ieee_block(block, datatype=datatype,  # type: ignore[arg-type]
+                                          is_big_endian=big_endian, container=_NDARRAY))
 
     def _frame(self, check: Callable[..., T], *args: Any) -> T:
         """One block framing check (labrun/blockframe.py); its ValueError as this instrument's
@@ -693,15 +703,22 @@ class ScpiSession:
                                   role=self.role, resource=self.resource)
         return units, values, rest[1:]
 
-    def query_ascii_floats(self, cmd: str, separator: str = ",", counted: bool = False
-                           ) -> np.ndarray:
+    def query_ascii_floats(self, cmd: str, separator: str = ",", counted: bool = False,
+                           header: str | None = None) -> np.ndarray:
         """Query a list of numbers (the SCPI ASCii data format; ``counted``: the first value
-        says how many follow, and a reply whose count disagrees is garbled)."""
+        says how many follow, and a reply whose count disagrees is garbled; ``header``: a
+        regular expression the reply starts with, skipped, and a reply without it garbled)."""
         def action() -> tuple[np.ndarray, str]:
             text = self._live().query(cmd)  # parsed as pyvisa's query_ascii_values parses it
+            body = text.strip()
+            if header is not None:
+                found = re.match(header, body)
+                if found is None:
+                    raise ValueError(f"ASCII trace does not start with the header {header!r}")
+                body = body[found.end():].strip()
             split: str | Callable[[str], list[str]] = separator if separator.strip() \
                 else str.split  # spaces or tabs: any run of whitespace
-            values = np.asarray(from_ascii_block(text.strip(), converter="f", separator=split,
+            values = np.asarray(from_ascii_block(body, converter="f", separator=split,
                                                  container=_NDARRAY), dtype=float)
             if counted:
                 if values.size == 0 or values[0] != values.size - 1:

@@ -37,6 +37,7 @@ class InstPeerState:
 
     trace: list[float] = field(default_factory=lambda: [1.5, -2.25, 3.0e-3, -70.0])
     big_endian: bool = False
+    datatype: str = "f"        # struct code of the block's values (f, d, h, i)
     power_dbm: float = 0.0
     power_range: tuple[float, float] = (-10.0, 13.0)
     errors: list[str] = field(default_factory=list)
@@ -62,7 +63,8 @@ def _peer_reply(state: InstPeerState, line: str) -> bytes | None:
             return b'-350,"Queue overflow"\n'
         return (state.errors.pop(0) if state.errors else '0,"No error"').encode() + b"\n"
     if line == "TRAC:DATA? LEVEL":
-        return bytes(to_ieee_block(state.trace, "f", state.big_endian)) + b"\n"
+        return bytes(to_ieee_block(state.trace, state.datatype,  # type: ignore[arg-type]
+                                   state.big_endian)) + b"\n"
     if line == "TRAC:ASC?":
         return (",".join(repr(v) for v in state.trace) + "\n").encode()
     if line == "SOUR:POW?":

@@ -595,3 +595,218 @@ def test_probe_fails_an_si_profile_whose_units_are_wrong(si_lab, tmp_path, capsy
     assert reason in failed[0]["detail"]
     assert all(not _failed(report, i["role"]) for i in report["instruments"]
                if i["role"] != role)
+
+
+# -- binary block formats and axes without an axis query -----------------------------------
+
+@pytest.mark.parametrize("byte_order", ["little", "big"])
+@pytest.mark.parametrize(("fmt", "values"), [
+    ("real32", np.linspace(-80.0, 12.5, 257).astype(np.float32)),
+    ("real64", np.linspace(-80.0, 12.5, 257) + 1e-9),  # digits a float32 would lose
+    ("int16", np.arange(-8000, 1250, 36, dtype=np.int16)),   # e.g. levels in 0.01 dBm
+    ("int32", np.arange(-2**31 + 7, 2**31 - 7, 2**24, dtype=np.int64)),
+])
+def test_block_formats_decode_what_pyvisa_encodes(inst_scpi_peer, fmt, values, byte_order):
+    """REAL,32, REAL,64, INT,16 and INT,32 definite-length blocks (IEEE 488.2 7.7.6) in either
+    byte order: the session decodes exactly what pyvisa's block codec
+    (pyvisa.util.to_ieee_block with datatype and is_big_endian) encodes."""
+    from labrun.profiles import BLOCK_DATATYPES
+    from labrun.scpi import ScpiSession
+
+    datatype = BLOCK_DATATYPES[fmt]
+    inst_scpi_peer.state.trace = values.tolist()
+    inst_scpi_peer.state.datatype = datatype
+    inst_scpi_peer.state.big_endian = byte_order == "big"
+    traffic_log = TrafficLog()
+    session = ScpiSession(inst_scpi_peer.resource, "@py", traffic_log=traffic_log, role="peer",
+                          timeout_ms=2000).open()
+    with session as s:
+        got = s.query_block("TRAC:DATA? LEVEL", datatype, byte_order)
+        wrong = s.query_block("TRAC:DATA? LEVEL", datatype,
+                              "big" if byte_order == "little" else "little")
+    np.testing.assert_array_equal(got, values.astype(float))
+    assert not np.array_equal(wrong, got)  # the byte order matters: it cannot pass by chance
+    itemsize = {"f": 4, "d": 8, "h": 2, "i": 4}[datatype]  # IEEE 754 / two's complement sizes
+    assert traffic_log.entries[-1].reply == f"<block {itemsize * values.size} bytes>"
+
+
+def test_axis_from_the_settings(lab, tmp_path):
+    """An OSA with no axis query: the axis from its centre and span read back (evenly
+    spaced, as many samples as the level trace) equals the lab's own sweep axis."""
+    def edit(text: str) -> str:
+        x_op = text.index("[operations.read_trace_x]")
+        y_op = text.index("[operations.read_trace_y]")
+        text = text[:x_op] + text[y_op:]
+        return text.replace('format = "real32"', 'format = "real32"\naxis_from_settings = true')
+
+    prof = _profile_copy(tmp_path, "osa", "settings-axis-osa", edit)
+    osa = open_instrument(load_bench(_bench_with(lab, tmp_path, "osa", "osa", prof)), "osa")
+    try:
+        osa.configure(1552.5, 4.0, 0.02, 513)
+        x, y = osa.sweep_and_read(with_x=True)
+    finally:
+        osa.close()
+    assert x.size == y.size == 513
+    np.testing.assert_allclose(x, lab.state.osa.x_nm, atol=1e-9)
+
+
+def test_axis_from_the_settings_needs_them_mapped(tmp_path):
+    from labrun.errors import InputError
+    from labrun.profiles import load_profile
+
+    def edit(text: str) -> str:
+        start = text.index("[operations.read_span_nm]")
+        end = text.index("[operations.set_rbw_nm]")
+        text = text[:start] + text[end:]
+        return text.replace('readback = "read_span_nm"\n', "").replace(
+            'format = "real32"', 'format = "real32"\naxis_from_settings = true')
+
+    prof = _profile_copy(tmp_path, "osa", "no-span-osa", edit)
+    with pytest.raises(InputError) as info:
+        load_profile(prof)
+    assert info.value.field == "trace.axis_from_settings" and "read_span_nm" in str(info.value)
+
+
+def test_check_rehearses_an_si_bench(si_lab, tmp_path, capsys):
+    """labrun check on a bench of si profiles: the rehearsal's instruments answer in the
+    generic reply forms, so it reads them so (it stopped at the first '0,"No error"' before);
+    the commands it shows are the si dialect's, the OSA sweep polled by SPEC:BUSY?."""
+    from _engine_support import long_powers, write_plan
+
+    from labrun.cli import main
+
+    plan = write_plan(tmp_path, long_powers(3))
+    bench = si_lab.write_bench(tmp_path / "b.toml")
+    assert main(["check", str(plan), "--bench", str(bench)]) == 0
+    out = capsys.readouterr().out
+    assert "ATT:LEV 11.400" in out and "SPEC:SWE" in out
+    assert "SOUR:POW 1.000000e-02" in out  # 10 dBm in W
+
+
+# -- completion by the status byte, an ASCII header ----------------------------------------
+
+def _stb_osa(table: str):
+    """Edit: no *OPC?, *ESE 1 in init (the operation-complete event reaches the status byte's
+    bit 5), and the given [completion] table."""
+    return lambda t: _no_opc(table)(t).replace('init = ["*CLS"]', 'init = ["*CLS", "*ESE 1"]')
+
+
+def test_sweep_waits_by_the_status_byte(tmp_path):
+    """IEEE 488.2 status reporting: after the sweep, *CLS and *OPC arm the operation-complete
+    event; *STB? is read until bit 5 (32, event status summary) is set. The OSA answers from
+    memory during its sweep, yet the sweep is over when sweep() returns (the lab's state)."""
+    table = ('completion]\nmethod = "stb"\nmask = 32\narm = ["*CLS", "*OPC"]\n'
+             "interval_s = 0.01\n")
+    with VirtualLab(scenario(), time_scale=1.0) as lab:
+        sim = lab.instruments["osa"]
+        sim.queries_wait = False
+        prof = _profile_copy(tmp_path, "osa", "stb-osa", _stb_osa(table))
+        osa = open_instrument(load_bench(_bench_with(lab, tmp_path, "osa", "osa", prof)), "osa")
+        try:
+            for n in (1, 2):
+                osa.sweep()
+                assert not sim.busy() and lab.state.osa.sweeps == n
+        finally:
+            osa.close()
+
+
+def test_status_byte_without_the_event_armed_times_out(tmp_path):
+    """The check above can fail: without *OPC armed the summary bit never sets, and the wait
+    ends in an instrument error naming the status byte, not in a trace read too early."""
+    from labrun.errors import InstrumentError
+
+    table = ('completion]\nmethod = "stb"\nmask = 32\narm = ["*CLS"]\ninterval_s = 0.01\n'
+             "timeout_s = 0.2\n")
+    with VirtualLab(scenario()) as lab:
+        prof = _profile_copy(tmp_path, "osa", "unarmed-osa", _stb_osa(table))
+        osa = open_instrument(load_bench(_bench_with(lab, tmp_path, "osa", "osa", prof)), "osa")
+        try:
+            with pytest.raises(InstrumentError, match=r"\*STB\? still answers 0"):
+                osa.sweep()
+        finally:
+            osa.close()
+
+
+@pytest.mark.parametrize(("table", "field"), [
+    ('completion]\nmethod = "stb"\n', "completion.mask"),
+    ('completion]\nmethod = "stb"\nmask = 32\narm = ["OUTP:STAT ON"]\n', "completion.arm[0]"),
+    ('completion]\nmethod = "poll"\nquery = "X?"\ndone = "0"\narm = ["*OPC"]\n',
+     "completion.arm"),
+])
+def test_status_byte_completion_is_checked_when_the_profile_loads(tmp_path, table, field):
+    from labrun.errors import InputError
+    from labrun.profiles import load_profile
+
+    with pytest.raises(InputError) as info:
+        load_profile(_profile_copy(tmp_path, "osa", "bad-stb-osa", _stb_osa(table)))
+    assert info.value.field == field
+
+
+def _header_osa(header: str):
+    """Edit: ASCII traces whose values follow a header matched by ``header``."""
+    return lambda t: t.replace('format = "real32"',
+                               f"format = \"ascii\"\nascii_header = '{header}'", 1)
+
+
+def test_ascii_header_is_skipped(lab, tmp_path):
+    """A trace reply 'TRACE LEVEL:-70.000,...' read with ascii_header = 'TRACE \\w+:' gives
+    the lab's own sweep."""
+    lab.instruments["osa"].ascii_prefix = "TRACE LEVEL:"
+    prof = _profile_copy(tmp_path, "osa", "header-osa", _header_osa(r"TRACE \w+:"))
+    osa = open_instrument(load_bench(_bench_with(lab, tmp_path, "osa", "osa", prof)), "osa")
+    try:
+        osa.apply("set_points", 129)
+        x, y = osa.sweep_and_read(with_x=True)
+    finally:
+        osa.close()
+    np.testing.assert_allclose(x, lab.state.osa.x_nm, atol=1e-6)
+    np.testing.assert_allclose(y, lab.state.osa.y_dbm, atol=6e-4)  # 3 decimals sent
+
+
+def test_a_reply_without_the_declared_header_is_garbled(lab, tmp_path):
+    """The check above can fail: a reply without the header is refused, not read."""
+    from labrun.errors import InstrumentError
+
+    prof = _profile_copy(tmp_path, "osa", "header-osa", _header_osa(r"TRACE \w+:"))
+    osa = open_instrument(load_bench(_bench_with(lab, tmp_path, "osa", "osa", prof)), "osa")
+    try:
+        with pytest.raises(InstrumentError, match="header"):
+            osa.sweep_and_read(with_x=True)
+    finally:
+        osa.close()
+
+
+# -- trace acceptance per profile ----------------------------------------------------------
+
+def test_a_trace_outside_the_profiles_level_range_is_refused_and_the_run_ends_dark(tmp_path):
+    """An OSA profile declaring level_range_dbm = [-60, 20] on the virtual lab, whose floor
+    lies at -75 dBm: every trace is refused as corrupted before it is accepted (a fault, read
+    again), so the run aborts after its attempts with the reason, nothing stored, dark."""
+    from _engine_support import OPERATOR, dark, long_powers, write_plan
+
+    from labrun.engine import RetryPolicy, run_plan
+    from labrun.plan import load_plan
+    from labrun.store import open_store
+
+    with VirtualLab(scenario()) as lab:
+        prof = _profile_copy(tmp_path, "osa", "narrow-osa", lambda t: t.replace(
+            'format = "real32"', 'format = "real32"\nlevel_range_dbm = [-60.0, 20.0]', 1))
+        bench = load_bench(_bench_with(lab, tmp_path, "osa", "osa", prof))
+        store = open_store(tmp_path / "runs.db")
+        out = run_plan(load_plan(write_plan(tmp_path, long_powers(2))), bench, store,
+                       operator=OPERATOR, unattended=True, ack_safety=True, progress=False,
+                       policy=RetryPolicy(attempts=2, backoff_s=0.0))
+        assert out.status == "aborted" and "level_range_dbm [-60, 20]" in out.reason
+        assert out.points_done == 0 and dark(lab)
+
+
+@pytest.mark.parametrize("rng", ["[20.0, -60.0]", "[-400.0, 0.0]"])
+def test_level_range_is_checked_when_the_profile_loads(tmp_path, rng):
+    from labrun.errors import InputError
+    from labrun.profiles import load_profile
+
+    prof = _profile_copy(tmp_path, "osa", "bad-range-osa", lambda t: t.replace(
+        'format = "real32"', f'format = "real32"\nlevel_range_dbm = {rng}', 1))
+    with pytest.raises(InputError) as info:
+        load_profile(prof)
+    assert info.value.field == "trace.level_range_dbm"

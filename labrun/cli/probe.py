@@ -201,8 +201,8 @@ def probe_instrument(bench: Bench, role: str, traffic_log: TrafficLog | None = N
             if op.name != "identify":
                 result.checks.append(_check_operation(adapter, op, seen))
         trace = spec.profile.trace
-        if trace is not None and trace.axis_from_start_stop:
-            result.checks.append(_check_start_stop_axis(adapter, seen))
+        if trace is not None and trace.axis_needs_no_query:
+            result.checks.append(_check_derived_axis(adapter, seen))
         if spec.profile.error_query:
             result.checks.append(_check_error_queue(adapter))
         else:
@@ -215,9 +215,9 @@ def probe_instrument(bench: Bench, role: str, traffic_log: TrafficLog | None = N
     return result
 
 
-def _check_start_stop_axis(adapter: Any, seen: dict[str, Any]) -> Check:
-    """The axis an OSA without an axis query gives by its start and stop queries, as many
-    samples as the level trace read, judged as ``read_trace_x`` would be."""
+def _check_derived_axis(adapter: Any, seen: dict[str, Any]) -> Check:
+    """The axis of an OSA without an axis query (from its start and stop queries, or its
+    centre and span), as many samples as the level trace read, judged as ``read_trace_x``."""
     import numpy as np
 
     from labrun.scpi import NoAnswerError
@@ -227,12 +227,14 @@ def _check_start_stop_axis(adapter: Any, seen: dict[str, Any]) -> Check:
     if not isinstance(n, int) or n < 2:
         return Check("trace_axis", False, "no level trace or point count to size the axis")
     try:
-        x = adapter.axis_from_start_stop(n)
+        from_settings = adapter.profile.trace.axis_from_settings
+        x = adapter.axis_from_settings(n) if from_settings else adapter.axis_from_start_stop(n)
     except NoAnswerError:
         raise
     except LabrunError as exc:
         return Check("trace_axis", False, str(exc))
-    detail = f"{x.size} points, {x.min():.6g}..{x.max():.6g} nm (start/stop queries)"
+    source = "centre and span" if from_settings else "start/stop queries"
+    detail = f"{x.size} points, {x.min():.6g}..{x.max():.6g} nm ({source})"
     reason = axis_doubt(adapter.profile.band(), x, seen)
     return Check("trace_axis", reason is None, detail if reason is None else
                  f"{detail}: {reason}")

@@ -218,28 +218,28 @@ class Adapter:
         """Read one trace array in the profile's transfer format (block, or ASCII fallback)."""
         if self._trace_format is None:
             self._trace_format = self._select_trace_format()
-        if self._trace_format == "real32":
-            assert self.profile.trace is not None
-            return self.session.query_block_real32(query, self.profile.trace.byte_order)
         trace = self.profile.trace
+        if self._trace_format != "ascii":
+            assert trace is not None and trace.block_datatype is not None
+            return self.session.query_block(query, trace.block_datatype, trace.byte_order)
         if trace is None:
             return self.session.query_ascii_floats(query)
         return self.session.query_ascii_floats(query, trace.ascii_separator,
-                                               trace.ascii_leading_count)
+                                               trace.ascii_leading_count, trace.ascii_header)
 
     def _select_trace_format(self) -> str:
-        """Send the profile's transfer-format commands once; fall back to ASCII if REAL,32 is
-        refused by the instrument's error queue and the profile names an ASCII command."""
+        """Send the profile's transfer-format commands once; fall back to ASCII if a binary
+        format is refused by the instrument's error queue and the profile names an ASCII command."""
         trace = self.profile.trace
         if trace is None:
             raise InputError("profile has no [trace] table", file=str(self.profile.path),
                              field="trace")
-        if trace.format == "real32":
+        if trace.format != "ascii":
             try:
                 for cmd in (trace.format_command, trace.byte_order_command):
                     if cmd:
                         self.session.write(cmd)
-                return "real32"
+                return trace.format
             except ScpiError as exc:
                 if not trace.ascii_command:
                     raise

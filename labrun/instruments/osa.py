@@ -5,6 +5,7 @@ from __future__ import annotations
 import numpy as np
 
 from labrun.instruments.base import Adapter
+from labrun.profiles import LEVEL_RANGE_DBM
 
 
 class OsaAdapter(Adapter):
@@ -52,23 +53,54 @@ class OsaAdapter(Adapter):
                 self.session.close()  # a garbled response: do not trust what follows it
                 raise self._instrument_error(f"{self.session.opc_query} answered {opc!r}, "
                                              "expected 1")
-            return None, y_op.from_wire(y)
+            y = y_op.from_wire(y)
+            self.accept(None, y)
+            return None, y
         self.sweep()
         if with_x:
             return self.read_trace()
-        return None, self.read("read_trace_y")
+        y = self.read("read_trace_y")
+        self.accept(None, y)
+        return None, y
 
     def read_trace(self) -> tuple[np.ndarray, np.ndarray]:
         """The last trace: wavelengths (nm) and powers (dBm per RBW), same length."""
         trace = self.profile.trace
         if trace is not None and trace.axis_from_start_stop:
             y = self.read("read_trace_y")
-            return self.axis_from_start_stop(y.size), y
-        x = self.read("read_trace_x")
-        y = self.read("read_trace_y")
-        if x.size != y.size or x.size == 0:
-            raise self._instrument_error(f"short trace: x has {x.size} points and y {y.size}")
+            x = self.axis_from_start_stop(y.size)
+        elif trace is not None and trace.axis_from_settings:
+            y = self.read("read_trace_y")
+            x = self.axis_from_settings(y.size)
+        else:
+            x = self.read("read_trace_x")
+            y = self.read("read_trace_y")
+        self.accept(x, y)
         return x, y
+
+    def accept(self, x: np.ndarray | None, y: np.ndarray) -> None:
+        """Refuse (InstrumentError: a fault, read again) a trace this profile cannot have
+        sent: x and y of one length, the axis finite and strictly increasing, the levels
+        finite and inside the profile's ``level_range_dbm``."""
+        if x is not None and (x.size != y.size or x.size == 0):
+            raise self._instrument_error(f"short trace: x has {x.size} points and y {y.size}")
+        if x is not None and not (np.all(np.isfinite(x)) and np.all(np.diff(x) > 0)):
+            raise self._instrument_error("corrupted trace: the axis is not finite and "
+                                         "strictly increasing")
+        if y.size == 0 or not np.all(np.isfinite(y)):
+            raise self._instrument_error("corrupted trace: the levels are empty or not finite")
+        lo, hi = self.profile.trace.levels_dbm if self.profile.trace else LEVEL_RANGE_DBM
+        if float(y.min()) < lo or float(y.max()) > hi:
+            raise self._instrument_error(
+                f"corrupted trace: levels {float(y.min()):.6g}..{float(y.max()):.6g} dBm "
+                f"outside the profile's level_range_dbm [{lo:g}, {hi:g}]")
+
+    def axis_from_settings(self, n: int) -> np.ndarray:
+        """The wavelength axis (nm) from the instrument's centre and span read back: n samples
+        evenly spaced from centre - span/2 to centre + span/2, for an OSA with no axis query."""
+        center = float(self.read("read_center_nm"))
+        span = float(self.read("read_span_nm"))
+        return np.linspace(center - span / 2.0, center + span / 2.0, n)
 
     def axis_from_start_stop(self, n: int) -> np.ndarray:
         """The wavelength axis (nm) from the profile's start and stop queries: n samples

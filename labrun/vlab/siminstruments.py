@@ -433,6 +433,7 @@ class OsaInstrument(SimInstrument):
     ascii_separator = ","  # between ASCII trace values
     ascii_count = False    # True: an ASCII trace starts with the number of values after it
     ascii_cut = 0          # values lost from the end of an ASCII trace (a reply cut short)
+    ascii_prefix = ""      # text before an ASCII trace's values (a header a profile skips)
 
     def register(self) -> None:
         t = self.table
@@ -534,8 +535,8 @@ class OsaInstrument(SimInstrument):
         if not osa.real32:
             head = [str(values.size)] if self.ascii_count else []
             sent = values[:values.size - self.ascii_cut] if self.ascii_cut > 0 else values
-            return self.ascii_separator.join(head + [f"{v:.6f}" if axis == "x" else f"{v:.3f}"
-                                                     for v in sent])
+            return self.ascii_prefix + self.ascii_separator.join(
+                head + [f"{v:.6f}" if axis == "x" else f"{v:.3f}" for v in sent])
         body = values.astype(np.float32).astype("<f4" if osa.little_endian else ">f4").tobytes()
         return build_block(body)  # IEEE 488.2 definite length
 
