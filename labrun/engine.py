@@ -1033,20 +1033,6 @@ def _record_end(store: RunStore, run_id: int, status: RunStatus, reason: str | N
         return f"{reason or status}; the database refused the final status ({exc}), {where}"
 
 
-def estimate_per_point(plan: Plan, bench: Any, points: int = 4) -> float | None:
-    """Seconds per point as ``labrun check`` rehearses the first points (after the first, which
-    also switches on): the ETA ``labrun status`` shows until points are measured (``labrun run``
-    passes it to ``run_plan``). None when the rehearsal fails; an estimate never stops a run."""
-    from labrun.rehearse import rehearse
-
-    try:
-        done = rehearse(plan, bench, limit=points).points
-    except Exception:  # noqa: BLE001 - the run itself reports any real problem
-        return None
-    later = [p.seconds for p in done[1:]] or [p.seconds for p in done]
-    return round(sum(later) / len(later), 4) if later else None
-
-
 def _classify(exc: BaseException | None) -> tuple[RunStatus, str | None, BaseException | None,
                                                   int | None]:
     """How a run ended, from what left its loop: (status, reason, error to re-raise or report,

@@ -1131,11 +1131,3 @@ def _pol_keys(t, n: int, cop: np.ndarray) -> np.ndarray:
         if name in t:
             return np.array(["|".join(f"{v:.4f}" for v in row) for row in t[name]])
     return np.round(cop, 4).astype(str)
-
-
-def fit_spool(runs_points, spool_length_km: float, loss_db_per_km: float,
-              **kwargs) -> dict[str, FitResult]:
-    """Exact-model (split-step) joint fit of all runs of one spool: labrun.exactfit.fit_spool."""
-    from labrun.exactfit import fit_spool as exact
-
-    return exact(runs_points, spool_length_km, loss_db_per_km, **kwargs)

@@ -319,6 +319,18 @@ def rehearse(plan: Plan, bench: Any, *, limit: int | None = None) -> Rehearsal:
     return Rehearsal(points, opening, clock(), sweep_s, source, log)
 
 
+def estimate_per_point(plan: Plan, bench: Any, points: int = 4) -> float | None:
+    """Seconds per point as ``labrun check`` rehearses the first points (after the first, which
+    also switches on): the ETA ``labrun status`` shows until points are measured (``labrun run``
+    passes it to ``run_plan``). None when the rehearsal fails; an estimate never stops a run."""
+    try:
+        done = rehearse(plan, bench, limit=points).points
+    except Exception:  # noqa: BLE001 - the run itself reports any real problem
+        return None
+    later = [p.seconds for p in done[1:]] or [p.seconds for p in done]
+    return round(sum(later) / len(later), 4) if later else None
+
+
 def settings_sent(entries: Sequence[TrafficLogEntry]) -> list[tuple[str, str]]:
     """(role, setting) of every setting unit the entries carried, in order (queries left out)."""
     out = []

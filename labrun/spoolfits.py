@@ -22,7 +22,7 @@ from labrun.store import Store
 from labrun.store.models import Fit, FitParameter, Run, Spool
 
 COVERAGE_P = 0.95  # expanded uncertainty coverage probability (GUM 6.2, 6.3)
-METHOD = ("labrun.fits.fit_spool on the runs' points together (closed forms, then the "
+METHOD = ("labrun.exactfit.fit_spool on the runs' points together (closed forms, then the "
           "split-step forward model with each arm's launched-power offset fitted), GUM budget "
           "from the bench calibration")
 
@@ -124,9 +124,10 @@ def from_fit(result: Any) -> ParameterRecord:
 
 def _fit_tables(tables: list[Any], spool: Spool, bench_text: str | None) -> dict[str, Any]:
     """Fit one spool's runs, one point table per run, with the exact-model joint fit
-    (``labrun.fits.fit_spool``: closed forms first, then the split-step forward model) and the
+    (``labrun.exactfit.fit_spool``: closed forms first, then the split-step forward model) and the
     GUM budget of every parameter from the runs' bench calibration and polarisation frame."""
-    from labrun.fits import PolFrame, fit_spool
+    from labrun.exactfit import fit_spool
+    from labrun.fits import PolFrame
     from labrun.uncertainty import Uncertainties
 
     length_km, loss_db_per_km = spool.length_km, spool.loss_db_per_km

@@ -103,8 +103,9 @@ def check_unattended(args: argparse.Namespace) -> None:
 def cmd_run(args: argparse.Namespace) -> int:
     """labrun run PLAN --bench BENCH ...: validate everything, then run."""
     from labrun.bench import load_bench
-    from labrun.engine import estimate_per_point, require_roles, run_plan
+    from labrun.engine import require_roles, run_plan
     from labrun.plan import load_plan
+    from labrun.rehearse import estimate_per_point
     from labrun.store.deferred import open_deferred
 
     # a path, or the name of a shipped example ("power-sweep")
