@@ -205,7 +205,8 @@ def _reduce_trace(*args: Any, **kwargs: Any) -> Any:
 class Seams:
     """What a run calls outside the engine: how the bench opens, how the sources' states are
     read, how a trace is reduced, how long an attempt at a point may take (the watchdog's
-    bound), the clock and the sleep. The defaults are the real ones; tests pass their own."""
+    bound), the clock, the sleep, and the safe-off guard of the run (made from the bench). The
+    defaults are the real ones; tests pass their own."""
 
     open_bench: Callable[..., Any] = open_bench
     source_readings: Callable[..., Any] = source_readings
@@ -213,6 +214,7 @@ class Seams:
     point_bound_s: Callable[[float, int, Any], float] = point_bound_s
     clock: Callable[[], float] = time.monotonic
     sleep: Callable[[float], None] = time.sleep
+    guard: Callable[[Any], SafeOffGuard] = SafeOffGuard
 
 
 class Runner:
@@ -922,9 +924,9 @@ def _execute(plan: Plan, bench: Any, store: AnyStore, run_id: int | None,
 
     preload("labrun.reduce")  # scipy: imported while the bench opens and the first point settles
     total = len(specs) + done if run_id is None else _points_total(store, run_id)
-    guard = SafeOffGuard(bench)
-    store = as_run_store(store)  # a database fault: darken, retry briefly, then StoreFault
     seams = seams or Seams()
+    guard = seams.guard(bench)
+    store = as_run_store(store)  # a database fault: darken, retry briefly, then StoreFault
     runner = Runner(plan, bench, store, run_id, guard, policy=policy or RetryPolicy(),
                     progress=progress, traffic_log=traffic_log, sleep=seams.sleep,
                     clock=seams.clock, open_bench=seams.open_bench,

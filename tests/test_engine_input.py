@@ -191,30 +191,35 @@ def test_amplifier_plan_over_the_amplifier_cap_is_refused_before_any_write(tmp_p
     assert 9.0 + loss > 9.0 >= 6.0 + loss
 
 
-def test_a_failed_reconnect_is_retried_not_fatal(tmp_path, monkeypatch):
+def test_a_failed_reconnect_is_retried_not_fatal(tmp_path):
     """An instrument that stops answering, then a reconnect that fails once: the next attempt
     opens the bench again (it used to find no connections at all) and the run completes, dark
     at the end."""
     import labrun.instruments
-    from labrun.instruments.osa import OsaAdapter
     from labrun.scpi import NoAnswerError
 
-    real_open, real_sweep = labrun.instruments.open_bench, OsaAdapter.sweep_and_read
+    real_open = labrun.instruments.open_bench
     calls = {"open": 0, "sweep": 0}
 
     def flaky_open(bench, **kw):
         calls["open"] += 1
         if calls["open"] == 2:  # the first reconnect
             raise NoAnswerError("no answer (injected by the test)", role="osa")
-        return real_open(bench, **kw)
+        instruments = real_open(bench, **kw)
+        if "osa" not in instruments:
+            return instruments
+        osa = instruments["osa"]
+        real_sweep = osa.sweep_and_read
 
-    def flaky_sweep(self, **kw):
-        calls["sweep"] += 1
-        if calls["sweep"] == 1:
-            raise NoAnswerError("sweep timed out (injected by the test)", role="osa")
-        return real_sweep(self, **kw)
+        def flaky_sweep(**sweep_kw):
+            calls["sweep"] += 1
+            if calls["sweep"] == 1:
+                raise NoAnswerError("sweep timed out (injected by the test)", role="osa")
+            return real_sweep(**sweep_kw)
 
-    monkeypatch.setattr(OsaAdapter, "sweep_and_read", flaky_sweep)
+        osa.sweep_and_read = flaky_sweep  # this bench's OSA adapter, not the class
+        return instruments
+
     with VirtualLab(scenario()) as lab:
         store = open_store(tmp_path / "runs.db")
         out = run_plan(load_plan(_plan(tmp_path, capture="false")),

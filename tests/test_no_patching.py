@@ -1,5 +1,6 @@
-"""No test replaces an attribute of a module or touches a private member of another object
-(issue 14: explicit seams instead of monkeypatching and reaching in).
+"""No test replaces an attribute of a module (or of a class or function it imports) or touches a
+private member of another object (issue 14: explicit seams instead of monkeypatching and
+reaching in).
 
 A test that swaps ``labrun.engine.something`` or ``labrun.cli.build_parser`` for the duration of a
 test couples to the module's private wiring and breaks silently when an import moves; labrun's
@@ -8,63 +9,36 @@ bench passed in). This scan reads every Python file under tests/ (support module
 too) and reports, with file and line:
 
 - ``monkeypatch.setattr``/``delattr`` (or builtin ``setattr``/``delattr``) whose target is a
-  dotted-path string or an expression rooted at an imported module;
-- an assignment or ``del`` of an attribute of an imported module (``scpi.resource_manager = f``);
+  dotted-path string or an expression rooted at an imported name (a module, a class such as
+  ``Store`` or ``ScpiSession``: patching a class changes it for every instance);
+- an assignment or ``del`` of an attribute of an imported name (``scpi.resource_manager = f``);
 - any use of ``unittest.mock.patch`` (``patch``, ``patch.object``, ``mock.patch``).
 
-Environment variables (``monkeypatch.setenv``) and attributes of objects a test made itself are
-not module attributes and are not reported. A second scan reports ``x._name`` for any ``x`` but
-``self``/``cls`` (underscore names that a library documents as public aside): a test uses the
-public seam the object offers (``ScpiSession.set_timeout``, ``ScpiSession.visa_resource``, the
-virtual lab's ``ascii_cut``).
+Environment variables (``monkeypatch.setenv``) and attributes of objects a test made itself
+(a store, an adapter, a session) are not reported. A second scan reports ``x._name`` for any
+``x`` but ``self``/``cls`` (underscore names that a library documents as public aside): a test
+uses the public seam the object offers (``ScpiSession.set_timeout``,
+``ScpiSession.visa_resource``, the virtual lab's ``ascii_cut``).
 """
 
 from __future__ import annotations
 
 import ast
-import importlib.machinery
-import importlib.util
-import sys
 import textwrap
-import types
 from pathlib import Path
 
 TESTS = Path(__file__).resolve().parent
 
 
-def _is_submodule(package: str, name: str) -> bool:
-    """True when ``from package import name`` binds a module; read from what is loaded, else
-    from the package's folders (nothing imported)."""
-    loaded = sys.modules.get(package)
-    if loaded is not None and hasattr(loaded, name):
-        return isinstance(getattr(loaded, name), types.ModuleType)
-    top, *parts = package.split(".")
-    try:
-        spec = importlib.util.find_spec(top)  # a top-level name: finds, does not import
-    except (ImportError, ValueError):
-        return False
-    return any((f / f"{name}.py").exists() or (f / name / "__init__.py").exists()
-               for f in _folders(spec, parts))
-
-
-def _folders(spec: importlib.machinery.ModuleSpec | None, parts: list[str]) -> list[Path]:
-    """The folders of the package ``spec`` descended through ``parts``."""
-    folders = [Path(f) for f in (spec.submodule_search_locations or [])] if spec else []
-    for part in parts:
-        folders = [f / part for f in folders if (f / part).is_dir()]
-    return folders
-
-
-def _imported_modules(nodes: list[ast.AST]) -> set[str]:
-    """Local names that an import statement among ``nodes`` binds to a module."""
+def _imported_names(nodes: list[ast.AST]) -> set[str]:
+    """Local names that an import statement among ``nodes`` binds (modules, classes, functions:
+    replacing an attribute of any of them changes it for every other user)."""
     names: set[str] = set()
     for node in nodes:
         if isinstance(node, ast.Import):
-            for alias in node.names:
-                names.add(alias.asname or alias.name.split(".")[0])
-        elif isinstance(node, ast.ImportFrom) and node.module and node.level == 0:
-            names |= {alias.asname or alias.name for alias in node.names
-                      if _is_submodule(node.module, alias.name)}
+            names |= {alias.asname or alias.name.split(".")[0] for alias in node.names}
+        elif isinstance(node, ast.ImportFrom):
+            names |= {alias.asname or alias.name for alias in node.names}
     return names
 
 
@@ -90,9 +64,9 @@ def _mock_names(nodes: list[ast.AST]) -> set[str]:
 
 
 def module_patches(source: str, filename: str = "<test>") -> list[str]:
-    """``filename:line: what`` for each module attribute the source replaces (see above)."""
+    """``filename:line: what`` for each imported attribute the source replaces (see above)."""
     nodes = list(ast.walk(ast.parse(source, filename)))
-    modules, mocks = _imported_modules(nodes), _mock_names(nodes)
+    imported, mocks = _imported_names(nodes), _mock_names(nodes)
     found: list[str] = []
 
     def report(node: ast.AST, what: str) -> None:
@@ -107,8 +81,8 @@ def module_patches(source: str, filename: str = "<test>") -> list[str]:
                 target = node.args[0]
                 if isinstance(target, ast.Constant) and isinstance(target.value, str):
                     report(node, f"{name} of the dotted path {target.value!r}")
-                elif _root(target) in modules:
-                    report(node, f"{name} on the module {ast.unparse(target)}")
+                elif _root(target) in imported:
+                    report(node, f"{name} on the imported {ast.unparse(target)}")
         if mocks and isinstance(node, ast.Name | ast.Attribute) and _root(node) in mocks:
             report(node, f"unittest.mock patching ({ast.unparse(node)})")
         targets: list[ast.AST] = []
@@ -124,20 +98,20 @@ def module_patches(source: str, filename: str = "<test>") -> list[str]:
                 targets += target.elts
             elif isinstance(target, ast.Starred):
                 targets.append(target.value)
-            elif isinstance(target, ast.Attribute) and _root(target) in modules:
-                report(target, f"assignment to the module attribute {ast.unparse(target)}")
+            elif isinstance(target, ast.Attribute) and _root(target) in imported:
+                report(target, f"assignment to the imported {ast.unparse(target)}")
     return sorted(set(found))
 
 
-def test_no_test_replaces_a_module_attribute():
+def test_no_test_replaces_an_imported_attribute():
     found = []
     for path in sorted(TESTS.rglob("*.py")):
         found += module_patches(path.read_text(encoding="utf-8"), str(path.relative_to(TESTS)))
-    assert not found, "module attributes replaced in tests (use a seam):\n" + "\n".join(found)
+    assert not found, "imported attributes replaced in tests (use a seam):\n" + "\n".join(found)
 
 
 def test_the_scan_finds_each_form():
-    """Each way of replacing a module attribute is reported (the scan can fail); a test's own
+    """Each way of replacing an imported attribute is reported (the scan can fail); a test's own
     objects, environment variables and local attributes are not."""
     bad = {
         "string": 'def t(monkeypatch):\n    monkeypatch.setattr("labrun.cli.run.ask_operator", f)',
@@ -151,6 +125,8 @@ def test_the_scan_finds_each_form():
         "tuple": "import labrun.scpi\na, labrun.scpi.resource_manager = 1, 2",
         "mock": "from unittest import mock\nwith mock.patch('labrun.engine.x'):\n    pass",
         "patch": "from unittest.mock import patch\n@patch('labrun.engine.x')\ndef t(x): pass",
+        "class": "from labrun.store.db import Store\ndef t(monkeypatch):\n"
+                 "    monkeypatch.setattr(Store, 'create_run', None)",
     }
     for form, source in bad.items():
         assert module_patches(textwrap.dedent(source)), form

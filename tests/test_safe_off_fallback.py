@@ -13,6 +13,9 @@ from pathlib import Path
 
 import pytest
 from _engine_support import OPERATOR, dark, long_powers, scenario, write_bench, write_plan
+from pyvisa import constants
+from pyvisa.typing import VISASession
+from pyvisa_py.highlevel import PyVisaLibrary
 
 import labrun.instruments
 import labrun.reduce
@@ -21,7 +24,7 @@ from labrun.cli import main
 from labrun.engine import Seams, run_plan
 from labrun.plan import load_plan
 from labrun.resources import find_file
-from labrun.scpi import NoAnswerError, ScpiSession
+from labrun.scpi import visa_library_override
 from labrun.shutdown import safe_off_fresh
 from labrun.store import open_store
 from labrun.vlab.lab import VirtualLab
@@ -106,24 +109,31 @@ def test_fallback_skips_init_commands(tmp_path):
         assert dark(lab)
 
 
-def test_fallback_retries_opening(tmp_path, monkeypatch):
+class _RefusesOnce(PyVisaLibrary):
+    """pyvisa-py, except that the first open of one resource fails as a refused connection
+    would (``labrun.scpi.visa_library_override`` puts it under every session)."""
+
+    resource: str = ""
+    refused: int = 0
+
+    def open(self, session, resource_name, *args, **kwargs):
+        if resource_name == self.resource and not self.refused:
+            self.refused += 1
+            return VISASession(0), constants.StatusCode.error_resource_not_found
+        return super().open(session, resource_name, *args, **kwargs)
+
+
+def test_fallback_retries_opening(tmp_path):
     """laser_b refuses the first connection (its LAN module still starting): the fallback
     opens it again a moment later and switches it off."""
-    real_open = ScpiSession.open
-    refused = {"n": 0}
-
-    def open_refusing_once(self):
-        if self.role == "laser_b" and refused["n"] == 0:
-            refused["n"] += 1
-            raise NoAnswerError("connection refused (injected by the test)", role=self.role)
-        return real_open(self)
-
     with VirtualLab(scenario()) as lab:
         bench = load_bench(write_bench(lab, tmp_path))
         _light(lab, "laser_a", "laser_b")
-        monkeypatch.setattr(ScpiSession, "open", open_refusing_once)
-        assert safe_off_fresh(bench, pause_s=0.05) == []
-        assert refused["n"] == 1 and dark(lab)
+        library = _RefusesOnce(f"refuses-once-{tmp_path.name}")
+        library.resource = bench.instruments["laser_b"].resource
+        with visa_library_override(library):
+            assert safe_off_fresh(bench, pause_s=0.05) == []
+        assert library.refused == 1 and dark(lab)
 
 
 def test_fallback_darkens_the_others_when_one_role_never_answers(tmp_path, inst_free_port):

@@ -10,6 +10,7 @@ test handlers installed as the "previous" ones, so a signal that reached them wo
 from __future__ import annotations
 
 import signal
+from dataclasses import replace
 
 import pytest
 from _engine_support import OPERATOR, dark, long_powers, scenario, write_bench, write_plan
@@ -19,7 +20,7 @@ from labrun.bench import load_bench
 from labrun.engine import Seams, run_plan
 from labrun.plan import load_plan
 from labrun.shutdown import SafeOffGuard
-from labrun.store import Store, open_store
+from labrun.store import open_store
 from labrun.vlab.lab import VirtualLab
 
 N_POINTS = 6
@@ -55,28 +56,38 @@ def _failing_reduction(at_call: int) -> Seams:
     return Seams(reduce_trace=failing)
 
 
-def _run(tmp_path, lab, seams=None):
+def _run(tmp_path, lab, seams=None, wrap=lambda store: store):
+    """The store, and the run to start (on ``wrap(store)``)."""
     plan = load_plan(write_plan(tmp_path, long_powers(N_POINTS)))
     bench = load_bench(write_bench(lab, tmp_path))
     store = open_store(tmp_path / "runs.db")
-    return store, lambda: run_plan(plan, bench, store, operator=OPERATOR, unattended=True,
-                                   ack_safety=True, progress=False, seams=seams)
+    return store, lambda: run_plan(plan, bench, wrap(store), operator=OPERATOR,
+                                   unattended=True, ack_safety=True, progress=False,
+                                   seams=seams)
 
 
-@pytest.mark.parametrize("sig", [signal.SIGINT, signal.SIGTERM])
-def test_signal_during_the_bookkeeping(tmp_path, monkeypatch, outer_handlers, sig):
-    """The reduction fails; while the run's end is being written to the store a signal comes."""
-    seams = _failing_reduction(at_call=3)
-    real_add = Store.add_event
+class _SignalAtSafeOffEvent:
+    """A store that raises ``sig`` in this process as the run's ``safe_off`` event is written;
+    every call goes to the real store."""
+
+    def __init__(self, store, sig):
+        self.store, self.sig = store, sig
+
+    def __getattr__(self, name):
+        return getattr(self.store, name)
 
     def add_event(self, run_id, kind, *args, **kwargs):
         if kind == "safe_off":
-            signal.raise_signal(sig)
-        return real_add(self, run_id, kind, *args, **kwargs)
+            signal.raise_signal(self.sig)
+        return self.store.add_event(run_id, kind, *args, **kwargs)
 
-    monkeypatch.setattr(Store, "add_event", add_event)
+
+@pytest.mark.parametrize("sig", [signal.SIGINT, signal.SIGTERM])
+def test_signal_during_the_bookkeeping(tmp_path, outer_handlers, sig):
+    """The reduction fails; while the run's end is being written to the store a signal comes."""
+    seams = _failing_reduction(at_call=3)
     with VirtualLab(scenario()) as lab:
-        store, run = _run(tmp_path, lab, seams)
+        store, run = _run(tmp_path, lab, seams, wrap=lambda s: _SignalAtSafeOffEvent(s, sig))
         with pytest.raises(RuntimeError, match="blew up"):  # the run's own error, not Escaped
             run()
         run_row = store.get_run(store.latest_run_id())
@@ -87,19 +98,19 @@ def test_signal_during_the_bookkeeping(tmp_path, monkeypatch, outer_handlers, si
         assert dark(lab)
 
 
+class _LateDeferral(SafeOffGuard):
+    """The run's guard, with SIGTERM arriving just before it defers signals."""
+
+    def defer(self):
+        signal.raise_signal(signal.SIGTERM)  # arrives before the deferral takes effect
+        super().defer()
+
+
 @pytest.mark.parametrize("fail", [True, False], ids=["after-an-error", "after-the-last-point"])
-def test_signal_between_the_end_of_the_run_and_the_deferral(tmp_path, monkeypatch,
-                                                            outer_handlers, fail):
+def test_signal_between_the_end_of_the_run_and_the_deferral(tmp_path, outer_handlers, fail):
     """The narrowest window: the run loop has ended (by an error, or by measuring every point)
     and the signal lands just before signals are deferred. The run keeps its real outcome."""
-    seams = _failing_reduction(at_call=3) if fail else None
-    real_defer = SafeOffGuard.defer
-
-    def defer_late(self):
-        signal.raise_signal(signal.SIGTERM)  # arrives before the deferral takes effect
-        real_defer(self)
-
-    monkeypatch.setattr(SafeOffGuard, "defer", defer_late)
+    seams = replace(_failing_reduction(at_call=3) if fail else Seams(), guard=_LateDeferral)
     with VirtualLab(scenario()) as lab:
         store, run = _run(tmp_path, lab, seams)
         if fail:

@@ -74,25 +74,36 @@ def test_a_passing_database_fault_goes_dark_then_the_run_goes_on(tmp_path):
     assert m.extra["dark"] == 1 and m.extra["relight"] == 1, m
 
 
-def test_a_database_fault_before_anything_opens_is_one_line(tmp_path, monkeypatch, capsys):
-    """The run row cannot be created: exit 1, one line naming the database error, no
-    traceback, no instrument touched."""
-    from labrun.faultdrill import plan_text, scenario, write_bench
-    from labrun.store.db import Store
-    from labrun.vlab.lab import VirtualLab
+class _LockedForRuns:
+    """A store whose ``create_run`` finds the database locked; every other call goes to the
+    real store."""
 
-    def locked(*_a, **_k):
+    def __init__(self, store):
+        self.store = store
+
+    def __getattr__(self, name):
+        return getattr(self.store, name)
+
+    def create_run(self, **_fields):
         raise OperationalError("INSERT INTO runs", {}, sqlite3.OperationalError(
             "database is locked"))
 
-    monkeypatch.setattr(Store, "create_run", locked)
+
+def test_a_database_fault_before_anything_opens_is_one_line(tmp_path, capsys):
+    """The run row cannot be created: exit 1, one line naming the database error, no
+    traceback, no instrument touched."""
+    from labrun.faultdrill import plan_text, scenario, write_bench
+    from labrun.store import open_store
+    from labrun.vlab.lab import VirtualLab
+
     with VirtualLab(scenario()) as lab:
         bench = write_bench(lab, tmp_path, {})
         plan = tmp_path / "plan.toml"
         plan.write_text(plan_text(3), encoding="utf-8")
         code = main(["run", str(plan), "--bench", str(bench), "--db", str(tmp_path / "r.db"),
                      "--unattended", "--operator", "T. Varga", "--ack-safety",
-                     "--no-progress"])
+                     "--no-progress"],
+                    overrides={"open_store": lambda url: _LockedForRuns(open_store(url))})
         assert lab.sources_off()
     err = capsys.readouterr().err
     assert code == 1 and "database is locked" in err and "Traceback" not in err

@@ -76,7 +76,8 @@ def main(argv: Sequence[str] | None = None, *,
     """Run one labrun command; returns the process exit code (141 when stdout's reader left).
 
     ``overrides``: values set on the parsed arguments that no command-line option sets (a
-    command's ``func``, ``run``/``resume``'s ``confirm`` prompt): the seam tests use instead of
+    command's ``func``, ``run``/``resume``'s ``confirm`` prompt, ``run``'s ``open_store``: what
+    opens the store, ``labrun.store.open_store`` when None): the seam tests use instead of
     replacing module attributes."""
     try:
         try:

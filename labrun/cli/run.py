@@ -34,7 +34,8 @@ def register(subparsers: Any) -> None:
     p.add_argument("--no-progress", action="store_true", help="no progress bar on stderr")
     add_traffic_log_option(p, "stream every instrument exchange to FILE as JSON lines "
                               "(flushed after each point)")
-    p.set_defaults(func=cmd_run, command_name="run", confirm=ask_operator)
+    p.set_defaults(func=cmd_run, command_name="run", confirm=ask_operator,
+                   open_store=None)
 
     r = subparsers.add_parser(
         "resume", help="continue an interrupted run, skipping the points already stored",
@@ -117,7 +118,7 @@ def cmd_run(args: argparse.Namespace) -> int:
     try:
         # SQLite is checked now and opened on a thread while the bench opens (SQLAlchemy's
         # import is not on the way to the first instrument exchange)
-        store = open_deferred(args.db)
+        store = open_deferred(args.db, opener=args.open_store)
         try:
             outcome = run_plan(plan, bench, store, operator=args.operator,
                                unattended=args.unattended, ack_safety=args.ack_safety,
