@@ -268,11 +268,33 @@ def _offset_budget(results: dict[str, FitResult], t2: dict[str, np.ndarray],
     return out
 
 
+MC_METHOD = ("JCGM 101:2008 Monte Carlo: budget inputs drawn from normal distributions, "
+             "closed-form refits of the exact-corrected data, Type A as a t draw")
+
+
+def _monte_carlo(current: dict[str, FitResult], t2: dict[str, np.ndarray], length_km: float,
+                 loss: float, kw: dict[str, Any], unc: Uncertainties,
+                 power_cov: np.ndarray | None, n: int, seed: int) -> dict[str, Any]:
+    """Monte Carlo propagation for the exact results (labrun.montecarlo.propagate)."""
+    from labrun.montecarlo import propagate
+
+    names = {"gamma": "gamma_small_signal", "dispersion": "dispersion",
+             "dispersion_slope": "dispersion_slope"}
+    names = {k: v for k, v in names.items() if v in current and math.isfinite(current[v].value)}
+    type_a = {k: (current[v].stderr, max(current[v].n_points - 1, 1)) for k, v in names.items()}
+    start = dispersion_of(current)
+    return propagate(lambda tt, ln, ls: fit_run(tt, ln, ls, **kw, dispersion_start=start),
+                     t2, length_km, loss, unc, names, n,
+                     lam_ref=kw["reference_wavelength_nm"], power_cov=power_cov,
+                     type_a=type_a, seed=seed)
+
+
 def fit_spool(runs_points: Sequence[Any], spool_length_km: float, loss_db_per_km: float, *,
               dispersion_ps_per_nm_km: float | None = None, slope_ps_per_nm2_km: float = 0.0,
               reference_wavelength_nm: float = 1550.0, polarisation: PolFrame | None = None,
               uncertainties: Uncertainties | None = None, iterations: int = ITERATIONS,
-              power_offsets: bool = True) -> dict[str, FitResult]:
+              power_offsets: bool = True, monte_carlo: int = 0,
+              mc_seed: int = 1) -> dict[str, FitResult]:
     """Fit gamma, D and the slope of one spool from all its runs with the exact model.
 
     ``runs_points``: one point table per run (DataFrame or list of dicts, as for
@@ -287,6 +309,11 @@ def fit_spool(runs_points: Sequence[Any], spool_length_km: float, loss_db_per_km
     bench's calibration uncertainty (``uncertainties``, else the documented defaults); the
     exact results then use the moved powers and their budget has one row for the offsets in
     place of the per-arm calibration rows.
+    ``monte_carlo`` = M > 0 adds a JCGM 101:2008 Monte Carlo propagation of the budget's inputs
+    to the exact results (labrun.montecarlo: M closed-form refits of the exact-corrected data,
+    the model corrections held fixed as in the budget; the arms' powers drawn from the fitted
+    offsets' covariance): extras ``mc_low``/``mc_high`` (probabilistically symmetric 95 %
+    interval), ``mc_mean``, ``mc_std``, ``mc_n``, ``mc_seed``.
     """
     tables = [points_table(p) for p in runs_points]
     if not tables:
@@ -336,6 +363,11 @@ def fit_spool(runs_points: Sequence[Any], spool_length_km: float, loss_db_per_km
         else:
             current = fit_run(t2, spool_length_km, loss_db_per_km, **kw,
                               uncertainties=uncertainties, dispersion_start=start)
+    mc = {}
+    if monte_carlo > 0:
+        mc = _monte_carlo(current, t2, spool_length_km, loss_db_per_km, kw,
+                          uncertainties or Uncertainties(),
+                          offsets.cov if power_offsets else None, monte_carlo, mc_seed)
     step = [abs(a - b) for a, b in zip(history[-1], history[-2], strict=True)]
     no_d = dispersion_ps_per_nm_km is None and not math.isfinite(
         closed.get("dispersion", FitResult(float("nan"), 0, 0, 0, "", "")).value)
@@ -349,6 +381,9 @@ def fit_spool(runs_points: Sequence[Any], spool_length_km: float, loss_db_per_km
         extra = dict(r.extra)
         extra.update(iterations=len(history) - 1, last_step=step[list(exact_names).index(name)],
                      closed_form_value=closed[src].value if src in closed else float("nan"))
+        if name in mc:
+            extra.update({f"mc_{k}": v for k, v in mc[name].to_dict().items()},
+                         mc_seed=mc_seed, mc_method=MC_METHOD)
         warn = list(r.warnings)
         if no_d:
             warn.append("exact model run with D = 0 and no slope: no dispersion given and "

@@ -22,6 +22,8 @@ from labrun.store import Store
 from labrun.store.models import Fit, FitParameter, Run, Spool
 
 COVERAGE_P = 0.95  # expanded uncertainty coverage probability (GUM 6.2, 6.3)
+GUM_K2 = "GUM expanded uncertainty U = 2 u_c (k = 2)"
+STUDENT_T95 = "Student t 95 % half-width of the statistical standard error (no budget)"
 METHOD = ("labrun.exactfit.fit_spool on the runs' points together (closed forms, then the "
           "split-step forward model with each arm's launched-power offset fitted), GUM budget "
           "from the bench calibration")
@@ -43,13 +45,24 @@ class ParameterRecord:
     def to_dict(self) -> dict[str, Any]:
         """JSON-ready: value, stderr, u95, unit, model, n_points, residual_rms (and the GUM
         budget with u_combined, the fit's warnings and sign conventions when it has them)."""
-        out = {"value": self.value, "stderr": self.stderr, "u95": self.u95, "unit": self.unit,
-               "model": self.model, "n_points": self.n_points,
-               "residual_rms": self.residual_rms}
+        out: dict[str, Any] = {
+            "value": self.value, "stderr": self.stderr, "u95": self.u95, "unit": self.unit,
+            "model": self.model, "n_points": self.n_points, "residual_rms": self.residual_rms}
+        out["u95_kind"] = self.u95_kind()
         for key in ("u_combined", "budget", "warnings", "conventions"):
             if self.extra.get(key):
                 out[key] = self.extra[key]
+        if self.extra.get("mc_n"):
+            out["monte_carlo"] = {k: self.extra.get(f"mc_{k}") for k in
+                                  ("n", "low", "high", "p", "mean", "std", "seed", "method")}
         return out
+
+    def u95_kind(self) -> str | None:
+        """What ``u95`` is: the GUM budget's expanded uncertainty (k = 2) or a Student-t
+        interval half-width of the statistical error alone (no budget)."""
+        if self.u95 is None:
+            return None
+        return GUM_K2 if self.extra.get("u_combined") is not None else STUDENT_T95
 
 
 @dataclass
@@ -122,7 +135,8 @@ def from_fit(result: Any) -> ParameterRecord:
                            residual_rms=_finite(result.residual_rms), extra=extra)
 
 
-def _fit_tables(tables: list[Any], spool: Spool, bench_text: str | None) -> dict[str, Any]:
+def _fit_tables(tables: list[Any], spool: Spool, bench_text: str | None, *,
+                monte_carlo: int = 0) -> dict[str, Any]:
     """Fit one spool's runs, one point table per run, with the exact-model joint fit
     (``labrun.exactfit.fit_spool``: closed forms first, then the split-step forward model) and the
     GUM budget of every parameter from the runs' bench calibration and polarisation frame."""
@@ -136,7 +150,8 @@ def _fit_tables(tables: list[Any], spool: Spool, bench_text: str | None) -> dict
     cal, pol = _bench_terms(bench_text)
     return fit_spool(tables, length_km, loss_db_per_km,
                      polarisation=PolFrame.from_bench(pol),
-                     uncertainties=Uncertainties.from_calibration(cal))
+                     uncertainties=Uncertainties.from_calibration(cal),
+                     monte_carlo=monte_carlo)
 
 
 def _bench_terms(bench_text: str | None) -> tuple[Any, Any]:
@@ -181,8 +196,10 @@ def _spool_of(store: Store, run_ids: list[int]) -> tuple[Spool, str | None]:
     return spool, bench_text
 
 
-def fit_runs(store: Store, run_ids: list[int], *, save: bool = True) -> FitRecord:
-    """Fit the runs of one spool together; stores the fit unless ``save`` is False."""
+def fit_runs(store: Store, run_ids: list[int], *, save: bool = True,
+             monte_carlo: int = 0) -> FitRecord:
+    """Fit the runs of one spool together; stores the fit unless ``save`` is False.
+    ``monte_carlo`` = M > 0: a JCGM 101 propagation with M trials beside the GUM budget."""
 
     from labrun.queries import run_points
 
@@ -197,7 +214,7 @@ def fit_runs(store: Store, run_ids: list[int], *, save: bool = True) -> FitRecor
     tables = [t for t in tables if not t.empty]
     if not tables:
         raise InputError("the runs have no stored points to fit", field="RUN_ID")
-    results = _fit_tables(tables, spool, bench_text)
+    results = _fit_tables(tables, spool, bench_text, monte_carlo=monte_carlo)
     params = {name: from_fit(r) for name, r in results.items()}
     record = FitRecord(spool=spool.label, run_ids=run_ids, parameters=params,
                        spool_snapshot={"length_km": spool.length_km,

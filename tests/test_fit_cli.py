@@ -89,6 +89,25 @@ def test_no_store_leaves_the_fits_table_alone(power_db, capsys):
     assert _count(power_db, Fit) == before
 
 
+def test_monte_carlo_interval_beside_the_gum_one(power_db, capsys):
+    rep = _fit_json(capsys, power_db, "1", "--no-store", "--monte-carlo", "4")
+    g = rep["parameters"]["gamma"]
+    assert g["u95_kind"].startswith("GUM expanded uncertainty U = 2 u_c")
+    mc = g["monte_carlo"]
+    assert mc["n"] == 4 and mc["p"] == 0.95 and mc["method"].startswith("JCGM 101:2008")
+    assert mc["low"] <= g["value"] <= mc["high"]  # 4 trials: the extremes (JCGM 101 7.7.1)
+    capsys.readouterr()
+    assert main(["fit", "1", "--db", power_db, "--no-store", "--monte-carlo", "3"]) == 0
+    text = capsys.readouterr().out
+    assert "Monte Carlo (JCGM 101, M = 3" in text and "(U k=2 " in text
+    assert "(U95 t " not in text  # every parameter here has a budget
+    with pytest.raises(SystemExit) as exc:  # a usage error: argparse's one line, exit 2
+        main(["fit", "1", "--db", power_db, "--monte-carlo", "1"])
+    assert exc.value.code == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "--monte-carlo" in err[0] and ">= 2" in err[0]
+
+
 def test_spools_lists_latest_fit(power_db, capsys):
     rep = _fit_json(capsys, power_db, "1")
     assert main(["spools", "--db", power_db, "--json"]) == 0

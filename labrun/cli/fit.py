@@ -24,20 +24,50 @@ def register(subparsers: Any) -> None:
                    help="print JSON: fit id, spool, runs, and per parameter value, stderr, u95, "
                         "unit, model")
     p.add_argument("--no-store", action="store_true", help="fit and print, store nothing")
+    p.add_argument("--monte-carlo", type=_trials, default=0, metavar="M",
+                   help="also propagate the budget's input distributions by Monte Carlo "
+                        "(JCGM 101:2008) with M closed-form refits, and print the 95 %% "
+                        "probabilistically symmetric interval beside the GUM's U (k = 2); "
+                        "JCGM 101 suggests M >= 200000, about 0.1 s per refit")
     p.set_defaults(func=cmd_fit)
 
 
+def _trials(text: str) -> int:
+    """--monte-carlo M: an integer >= 2."""
+    try:
+        m = int(text)
+    except ValueError:
+        m = 0
+    if m < 2:
+        raise argparse.ArgumentTypeError(f"needs a whole number of trials >= 2, not {text!r}")
+    return m
+
+
 def format_value(value: float | None, stderr: float | None, u95: float | None,
-                 unit: str) -> str:
-    """'10.89 +/- 0.0023 (U95 0.0047) 1/(W km)': value, standard and expanded uncertainty."""
+                 unit: str, gum: bool = False) -> str:
+    """'10.89 +/- 0.0023 (U k=2 0.0047) 1/(W km)': value, standard uncertainty, and the
+    expanded one labelled by what it is: 'U k=2' (GUM budget) or 'U95 t' (Student t)."""
     if value is None:
         return "-"
     text = f"{value:.5g}"
     if stderr is not None:
         text += f" +/- {stderr:.2g}"
     if u95 is not None:
-        text += f" (U95 {u95:.2g})"
+        text += f" ({'U k=2' if gum else 'U95 t'} {u95:.2g})"
     return f"{text} {unit}"
+
+
+def mc_text(p: Any) -> str | None:
+    """The Monte Carlo interval of a parameter beside its GUM interval, or None."""
+    ex = p.extra
+    if not ex.get("mc_n") or ex.get("mc_low") is None or p.value is None:
+        return None
+    line = (f"    Monte Carlo (JCGM 101, M = {ex['mc_n']}, seed {ex.get('mc_seed')}): "
+            f"95 % interval [{ex['mc_low']:.6g}, {ex['mc_high']:.6g}] (probabilistically "
+            f"symmetric)")
+    if p.u95 is not None:
+        line += f"; GUM value +/- U (k = 2): [{p.value - p.u95:.6g}, {p.value + p.u95:.6g}]"
+    return line
 
 
 BUDGET_SHOWN = ("gamma", "dispersion", "dispersion_slope")  # the exact model's parameters
@@ -59,13 +89,18 @@ def fit_text(record: Any) -> str:
             if why:
                 out.append(f"  {name:<20} {why}")
             continue
-        out.append(f"  {name:<20} {format_value(p.value, p.stderr, p.u95, p.unit):<48} "
+        gum = p.extra.get("u_combined") is not None
+        out.append(f"  {name:<20} {format_value(p.value, p.stderr, p.u95, p.unit, gum):<48} "
                    f"{p.n_points:>4} points  {p.model.split(':')[0]}")
         if p.extra.get("budget") and name in BUDGET_SHOWN:
             out.append(budget_text(name, p.to_dict()))
+        mc = mc_text(p)
+        if mc:
+            out.append(mc)
         out.extend(f"    ! {w}" for w in p.extra.get("warnings", []) if not w.startswith("refused"))
-    out.append("  (+/- statistical standard uncertainty of the fit; U95 expanded uncertainty: "
-               "the GUM budget, k = 2, where a budget is shown, else Student t on the fit)")
+    out.append("  (+/- statistical standard uncertainty of the fit; U k=2: the GUM budget's "
+               "expanded uncertainty 2 u_c; U95 t: Student t 95 % half-width of the "
+               "statistical error alone, for results without a budget)")
     if "power_offset_a" in record.parameters:
         out.append(OFFSETS_NOTE)
     return "\n".join(out)
@@ -78,7 +113,8 @@ def cmd_fit(args: argparse.Namespace) -> int:
 
     store = open_existing_store(args.db, upgrade=not args.no_store)
     try:
-        record = fit_runs(store, args.run_ids, save=not args.no_store)
+        record = fit_runs(store, args.run_ids, save=not args.no_store,
+                          monte_carlo=args.monte_carlo)
     finally:
         store.close()
     print(json.dumps(record.to_dict(), indent=2) if args.json else fit_text(record))
