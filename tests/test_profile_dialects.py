@@ -810,3 +810,44 @@ def test_level_range_is_checked_when_the_profile_loads(tmp_path, rng):
     with pytest.raises(InputError) as info:
         load_profile(prof)
     assert info.value.field == "trace.level_range_dbm"
+
+
+@pytest.mark.parametrize(("fmt", "form", "byte_order"), [
+    ("real64", "REAL,64", "big"), ("int32", "INT,32", "little"), ("int16", "INT,16", "big")])
+def test_block_formats_end_to_end_on_the_virtual_lab(lab, tmp_path, fmt, form, byte_order):
+    """The virtual lab's OSA sending REAL,64 blocks, or INT blocks of levels in 0.01 dBm and
+    wavelengths in pm: profiles saying so (scale = 100; wire_unit = "pm"; an INT,16 axis
+    cannot hold 1550000 pm, so that one takes the axis from the settings) read the lab's own
+    sweep to the resolution sent."""
+    def edit(text: str) -> str:
+        text = text.replace('format = "real32"', f'format = "{fmt}"').replace(
+            'byte_order = "little"', f'byte_order = "{byte_order}"').replace(
+            'format_command = "FORM:DATA REAL,32"', f'format_command = "FORM:DATA {form}"')
+        text = text.replace('byte_order_command = "FORM:BORD SWAP"', 'byte_order_command = '
+                            f'"FORM:BORD {"SWAP" if byte_order == "little" else "NORM"}"')
+        if fmt.startswith("int"):
+            text = text.replace('query = "TRAC:DATA? LEVEL"    # the level axis of the same '
+                                'sweep\nparse = "trace"\nunit = "dBm"',
+                                'query = "TRAC:DATA? LEVEL"\nparse = "trace"\nunit = "dBm"\n'
+                                'scale = 100.0')
+            text = text.replace('parse = "trace"\nunit = "nm"',
+                                'parse = "trace"\nunit = "nm"\nwire_unit = "pm"')
+        if fmt == "int16":
+            x_op = text.index("[operations.read_trace_x]")
+            y_op = text.index("[operations.read_trace_y]")
+            text = text[:x_op] + text[y_op:]
+            text = text.replace(f'format = "{fmt}"', f'format = "{fmt}"\naxis_from_settings = true')
+        return text
+
+    prof = _profile_copy(tmp_path, "osa", f"{fmt}-osa", edit)
+    osa = open_instrument(load_bench(_bench_with(lab, tmp_path, "osa", "osa", prof)), "osa")
+    try:
+        osa.apply("set_points", 257)
+        x, y = osa.sweep_and_read(with_x=True)
+    finally:
+        osa.close()
+    state = lab.state.osa
+    assert x.size == y.size == 257
+    exact = fmt == "real64"
+    np.testing.assert_allclose(x, state.x_nm, atol=1e-9 if exact else 5e-4)  # 0.5 pm
+    np.testing.assert_allclose(y, state.y_dbm, atol=1e-9 if exact else 5e-3)  # 0.005 dB

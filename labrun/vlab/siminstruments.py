@@ -41,6 +41,12 @@ log = logging.getLogger(__name__)
 WAVELENGTH_CAL = "CALibration#:WLENgth"
 # Trace names of the OSA's TRAC:DATA? query: wavelength axis and level axis.
 TRACE_NAMES = {"WLEN": "x", "LEVEL": "y"}
+# FORM:DATA block formats the OSA takes (SCPI-1999 FORMat[:DATA] <type>,<length>) and the
+# struct code of their values. INT blocks carry levels in 0.01 dBm and wavelengths in pm
+# (labrun's own choice for its generic OSA; a profile declares it with scale and wire_unit).
+BLOCK_FORMATS = {("REAL", "32"): "f", ("REAL", "64"): "d", ("INT", "16"): "h",
+                 ("INT", "32"): "i"}
+INT_SCALE = {"x": 1e3, "y": 100.0}  # pm per nm, 0.01 dBm per dBm
 
 
 def source_switch(call: Call, lab: LabState) -> bool:
@@ -454,14 +460,14 @@ class OsaInstrument(SimInstrument):
         t.add("[SENSe]:WAVelength:STOP", lambda c: fmt(osa.center_nm + osa.span_nm / 2),
               query=True)
         t.add("FORMat[:DATA]", self._set_format, nargs=(1, 2))
-        t.add("FORMat[:DATA]", lambda c: "REAL,32" if osa.real32 else "ASC,8", query=True)
+        t.add("FORMat[:DATA]", lambda c: self._format_name(), query=True)
         t.add("FORMat:BORDer", self._set_border)
         t.add("FORMat:BORDer", lambda c: "SWAP" if osa.little_endian else "NORM", query=True)
 
     def reset(self) -> None:
         osa = self.lab.osa
         osa.center_nm, osa.span_nm, osa.rbw_nm, osa.points = 1550.0, 10.0, 0.05, 1025
-        osa.real32, osa.little_endian = False, False
+        osa.real32, osa.little_endian, osa.block_type = False, False, "f"
 
     def _setter(self, name: str, operation: str):
         lo, hi = self.limits(operation)
@@ -475,12 +481,25 @@ class OsaInstrument(SimInstrument):
 
     def _set_format(self, call: Call) -> None:
         kind = call.args[0].upper()
-        if kind in ("REAL", "REAL32") and (len(call.args) == 1 or call.args[1] == "32"):
-            self.lab.osa.real32 = True
+        length = call.args[1].strip() if len(call.args) > 1 else "32"
+        if kind in ("REAL", "REAL32", "INT", "INTEGER"):
+            base = "REAL" if kind.startswith("REAL") else "INT"
+            block = BLOCK_FORMATS.get((base, "32" if kind == "REAL32" else length))
+            if block is None:
+                raise ScpiFault(-224, f"{call.header} {','.join(call.args)}")
+            self.lab.osa.real32, self.lab.osa.block_type = True, block
         elif kind in ("ASC", "ASCII"):
             self.lab.osa.real32 = False
         else:
             raise ScpiFault(-224, f"{call.header} {','.join(call.args)}")
+
+    def _format_name(self) -> str:
+        """FORM:DATA? reply: the block type and length, or ASC,8."""
+        osa = self.lab.osa
+        if not osa.real32:
+            return "ASC,8"
+        return next(f"{k},{n}" for (k, n), code in BLOCK_FORMATS.items()
+                    if code == osa.block_type)
 
     def _set_border(self, call: Call) -> None:
         kind = call.args[0].upper()
@@ -537,7 +556,14 @@ class OsaInstrument(SimInstrument):
             sent = values[:values.size - self.ascii_cut] if self.ascii_cut > 0 else values
             return self.ascii_prefix + self.ascii_separator.join(
                 head + [f"{v:.6f}" if axis == "x" else f"{v:.3f}" for v in sent])
-        body = values.astype(np.float32).astype("<f4" if osa.little_endian else ">f4").tobytes()
+        code = osa.block_type
+        if code in ("h", "i"):  # integers in 0.01 dBm or pm; a value that does not fit: -222
+            values = np.round(values * INT_SCALE[axis])
+            info = np.iinfo(np.int16 if code == "h" else np.int32)
+            if values.size and (values.min() < info.min or values.max() > info.max):
+                raise ScpiFault(-222, f"{call.header} {call.args[0]}")
+        order = "<" if osa.little_endian else ">"
+        body = values.astype(order + code).tobytes()
         return build_block(body)  # IEEE 488.2 definite length
 
 

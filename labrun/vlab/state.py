@@ -72,7 +72,9 @@ class Osa:
     span_nm: float = 10.0
     rbw_nm: float = 0.05
     points: int = 1025
-    real32: bool = False          # FORM:DATA REAL,32 (True) or ASCii (False, the *RST default)
+    real32: bool = False          # FORM:DATA a block format (True) or ASCii (False, *RST default)
+    block_type: str = "f"         # the block's values (struct code): REAL,32 f, REAL,64 d,
+                                  #   INT,16 h, INT,32 i
     little_endian: bool = False   # FORM:BORD SWAP (True) or NORMal (False, the *RST default)
     x_nm: np.ndarray = field(default_factory=lambda: np.zeros(0))
     y_dbm: np.ndarray = field(default_factory=lambda: np.zeros(0))
