@@ -40,12 +40,12 @@ def check_emission(run: Runner) -> None:
         if state is None and adapter.interlock_closed() is False:
             raise RunAborted(f"interlock open on {role}")
         if state is not None and bool(state) != run.expected_on(role):
-            if run._confirm_state(role, adapter) == run.expected_on(role):
+            if confirm_state(run, role, adapter) == run.expected_on(role):
                 continue
             run.check_progress()  # labrun itself switched it off meanwhile: a retry
             found = "on" if state else "off"
             raise RunAborted(f"{role} output found {found} unexpectedly"
-                             + run._interlock_note())
+                             + interlock_note(run))
         if power is not None and run.expected_on(role):
             run.check_power(role, adapter, float(power))
 
@@ -61,9 +61,8 @@ def check_power(run: Runner, role: str, adapter: Any, power: float) -> None:
     tol = float(adapter.profile.op("set_power_dbm").tolerance or 0.0) + FLOAT_SLACK
     if abs(power - float(want)) <= tol:
         return
-    again = run._reread(role, lambda: float(adapter.power_dbm()), lambda v: f"{v:g} dBm",
-                        f"power reply {power:g} dBm disagreed with the {float(want):g} "
-                        "dBm set")
+    again = reread(run, role, lambda: float(adapter.power_dbm()), lambda v: f"{v:g} dBm",
+                   f"power reply {power:g} dBm disagreed with the {float(want):g} dBm set")
     if again is not None:
         check_cap(role, again, adapter.cap_dbm)
         if abs(again - float(want)) <= tol:
@@ -79,8 +78,8 @@ def confirm_state(run: Runner, role: str, adapter: Any) -> bool | None:
     The run aborts (sources off) unless the second read shows the expected state; either
     way the disagreement is recorded as a fault event.
     """
-    again = run._reread(role, adapter.output_state, lambda v: "on" if v else "off",
-                        "output state reply disagreed with the expected state")
+    again = reread(run, role, adapter.output_state, lambda v: "on" if v else "off",
+                   "output state reply disagreed with the expected state")
     return None if again is None else bool(again)
 
 

@@ -477,22 +477,9 @@ class Runner:
         """A source's power against its cap and the value set (labrun/emission.py)."""
         emission.check_power(self, role, adapter, power)
 
-    def _confirm_state(self, role: str, adapter: Any) -> bool | None:
-        """A surprising output state read once more (labrun/emission.py)."""
-        return emission.confirm_state(self, role, adapter)
-
-    def _reread(self, role: str, read: Callable[[], Any], show: Callable[[Any], str],
-                surprise: str) -> Any:
-        """A surprising reply read once more, the disagreement recorded (labrun/emission.py)."""
-        return emission.reread(self, role, read, show, surprise)
-
     def expected_on(self, role: str) -> bool:
         """Whether a source should emit now (an amplifier the plan does not use stays off)."""
         return self.emitting and (role != "amplifier" or self.use_amplifier)
-
-    def _interlock_note(self) -> str:
-        """' (interlock open on laser_a)' when an interlock explains a surprise, else ''."""
-        return emission.interlock_note(self)
 
     def prepare(self, first: Sequence[Setting]) -> None:
         """Apply the first point with outputs off, then switch on: shutters, lasers, amplifier.
