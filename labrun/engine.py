@@ -57,6 +57,7 @@ from labrun.store.kinds import FINISHED_STATUSES, RunStatus
 from labrun.trafficlog import EVENT_KIND
 
 if TYPE_CHECKING:
+    from labrun.bench import Bench
     from labrun.reduce import Reduction
     from labrun.store import Store  # the engine needs SQLAlchemy only once the store opens
 
@@ -126,7 +127,7 @@ class Setting:
 # ------------------------------------------------------------------------------------------------
 # checks before anything is opened
 # ------------------------------------------------------------------------------------------------
-def preflight(plan: Plan, bench: Any, *, operator: str | None, unattended: bool,
+def preflight(plan: Plan, bench: Bench, *, operator: str | None, unattended: bool,
               ack_safety: bool, confirm: Callable[[str], bool] | None) -> str:
     """Refuse an unsafe or unacknowledged run before any instrument is opened; the safety text.
 
@@ -153,7 +154,7 @@ def preflight(plan: Plan, bench: Any, *, operator: str | None, unattended: bool,
     return text
 
 
-def require_roles(plan: Plan, bench: Any) -> None:
+def require_roles(plan: Plan, bench: Bench) -> None:
     """Refuse (InputError, exit 2) a bench that lacks a role the sweep or the plan needs."""
     missing = [r for r in SWEEP_ROLES if r not in bench.instruments]
     if missing:
@@ -167,7 +168,7 @@ def require_roles(plan: Plan, bench: Any) -> None:
                              file=plan.file, field=where)
 
 
-def safety_text(plan: Plan, bench: Any) -> str:
+def safety_text(plan: Plan, bench: Bench) -> str:
     """Worst case launched power, advisory hazard class and the cautions, for the operator."""
     from labrun import safety
 
@@ -220,7 +221,7 @@ class Seams:
 class Runner:
     """Runs points of one run: owns the connections, the applied-state cache and the guard."""
 
-    def __init__(self, plan: Plan, bench: Any, store: AnyStore, run_id: int | None,
+    def __init__(self, plan: Plan, bench: Bench, store: AnyStore, run_id: int | None,
                  guard: SafeOffGuard, *, policy: RetryPolicy, progress: bool = True,
                  traffic_log: Any = None,
                  sleep: Callable[[float], None] = time.sleep,
@@ -791,7 +792,7 @@ def _abspath(path: Any) -> str | None:
     return str(Path(path).resolve())
 
 
-def _run_fields(plan: Plan, bench: Any, *, operator: str | None, unattended: bool,
+def _run_fields(plan: Plan, bench: Bench, *, operator: str | None, unattended: bool,
                 total: int) -> dict[str, Any]:
     """Columns of a new Run row."""
     return dict(
@@ -805,7 +806,7 @@ def _run_fields(plan: Plan, bench: Any, *, operator: str | None, unattended: boo
     )
 
 
-def run_plan(plan: Plan, bench: Any, store: AnyStore, *, operator: str | None = None,
+def run_plan(plan: Plan, bench: Bench, store: AnyStore, *, operator: str | None = None,
              unattended: bool = False, ack_safety: bool = False,
              confirm: Callable[[str], bool] | None = None, policy: RetryPolicy | None = None,
              progress: bool = True, traffic_log: Any = None,
@@ -847,7 +848,7 @@ def run_plan(plan: Plan, bench: Any, store: AnyStore, *, operator: str | None = 
                     estimate=estimate_s_per_point, seams=seams, guardian=guardian)
 
 
-def run_virtual(plan: Plan, bench: Any, store: AnyStore, *, replay_of: int, mode: str,
+def run_virtual(plan: Plan, bench: Bench, store: AnyStore, *, replay_of: int, mode: str,
                 policy: RetryPolicy | None = None, progress: bool = False,
                 traffic_log: Any = None,
                 created: Callable[[int], None] | None = None) -> RunOutcome:
@@ -873,7 +874,7 @@ def run_virtual(plan: Plan, bench: Any, store: AnyStore, *, replay_of: int, mode
                     progress=progress, traffic_log=traffic_log, first=True)
 
 
-def record_ack(store: AnyStore, run_id: int, plan: Plan, bench: Any, *, operator: str | None,
+def record_ack(store: AnyStore, run_id: int, plan: Plan, bench: Bench, *, operator: str | None,
                unattended: bool, text: str, resumed: bool = False) -> None:
     """The ``safety_ack`` event: who acknowledged emission, how, and the worst case shown (the
     event's own time is when). A resume records its own: it emits again, maybe hours later."""
@@ -897,7 +898,7 @@ def record_traffic_log(store: AnyStore, run_id: int, traffic_log: Any) -> None:
                         data={"path": str(path)})
 
 
-def _execute(plan: Plan, bench: Any, store: AnyStore, run_id: int | None,
+def _execute(plan: Plan, bench: Bench, store: AnyStore, run_id: int | None,
              specs: Sequence[PointSpec], *, done: int, policy: RetryPolicy | None,
              progress: bool, traffic_log: Any, first: bool,
              expect_identities: dict[str, str] | None = None, force: bool = False,
@@ -1084,7 +1085,7 @@ def plan_from_run(run: Any, *, force: bool) -> Plan:
         os.unlink(fh.name)
 
 
-def resume_run(run_id: int, store: AnyStore, *, bench: Any = None, force: bool = False,
+def resume_run(run_id: int, store: AnyStore, *, bench: Bench | None = None, force: bool = False,
                operator: str | None = None, unattended: bool = False, ack_safety: bool = False,
                confirm: Callable[[str], bool] | None = None, policy: RetryPolicy | None = None,
                progress: bool = True, traffic_log: Any = None,

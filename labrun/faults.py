@@ -20,11 +20,14 @@ import threading
 import time
 from collections.abc import Callable
 from dataclasses import dataclass
-from typing import Any
+from typing import TYPE_CHECKING
 
 from labrun.deadlines import MONITOR
 from labrun.errors import InstrumentError
 from labrun.scpi import NoAnswerError
+
+if TYPE_CHECKING:
+    from labrun.bench import Bench
 
 MARGIN_S = 1.0  # slack of every bound below for the host's own scheduling (common practice)
 
@@ -78,12 +81,12 @@ def darkens(exc: BaseException, failures_in_a_row: int, overran: bool = False) -
     return overran or isinstance(exc, NoAnswerError) or failures_in_a_row >= 2
 
 
-def timeouts_s(bench: Any) -> dict[str, float]:
+def timeouts_s(bench: Bench) -> dict[str, float]:
     """Each role's exchange timeout (its profile's timeout_ms), in seconds."""
     return {role: spec.profile.timeout_ms / 1000.0 for role, spec in bench.instruments.items()}
 
 
-def point_bound_s(settle_s: float, traces: int, bench: Any) -> float:
+def point_bound_s(settle_s: float, traces: int, bench: Bench) -> float:
     """How long one attempt at a point may take before it counts as making no progress: its
     settle time, one OSA timeout per trace (a sweep and its read-out answer within it), two of
     the slowest other role's timeouts (a slow reply anywhere else) and ``MARGIN_S``."""
@@ -93,7 +96,7 @@ def point_bound_s(settle_s: float, traces: int, bench: Any) -> float:
     return max(0.0, settle_s) + max(1, traces) * osa + 2.0 * others + MARGIN_S
 
 
-def attempt_bound_s(point_s: float, bench: Any) -> float:
+def attempt_bound_s(point_s: float, bench: Bench) -> float:
     """The longest one attempt can last, its reconnect included: the watchdog's bound (after
     which the light is off), one exchange still running then and the reconnect's first failing
     exchange (a session gives up within two of its timeouts each)."""

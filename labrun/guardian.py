@@ -23,7 +23,10 @@ import subprocess
 import sys
 import time
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING
+
+if TYPE_CHECKING:
+    from labrun.bench import Bench
 
 log = logging.getLogger(__name__)
 log.addHandler(logging.NullHandler())
@@ -67,7 +70,7 @@ class Guardian:
             log.warning("the guardian watcher (pid %d) did not leave after 'done'", self.proc.pid)
 
 
-def start(bench: Any, db_url: str) -> Guardian | None:
+def start(bench: Bench, db_url: str) -> Guardian | None:
     """Start the watcher for ``bench`` (its text goes over stdin, so it darkens exactly the
     bench the run drives); None (and a warning) if it cannot be started."""
     read_fd, write_fd = os.pipe()  # both non-inheritable; only the read end is passed on
@@ -133,7 +136,7 @@ def record(db: str, run_id: str | None, message: str, problems: list[str],
         return str(path) if path else "nowhere"
 
 
-def watch(fd: int, bench: Any, db: str, parent: int) -> int:
+def watch(fd: int, bench: Bench, db: str, parent: int) -> int:
     """The watcher's whole job; 0 when nothing was needed or everything is dark, else 1."""
     from labrun.safe_off import darken
 

@@ -13,7 +13,9 @@ from labrun.plan_expand import line_extent_nm
 from labrun.profiles import generic_profile
 
 if TYPE_CHECKING:
+    from labrun.bench import Bench
     from labrun.plan import Plan
+    from labrun.profiles import Operation, SweepTime
 
 # RBW values a grating OSA offers, 1-2-5 sequence in nm (common practice).
 RBW_STEPS_NM = (0.002, 0.005, 0.01, 0.02, 0.05, 0.1, 0.2, 0.5, 1.0, 2.0)
@@ -64,14 +66,14 @@ def estimate_sweep_s(span_nm: float, rbw_nm: float, points: int) -> float:
     return round(0.2 + 1e-4 * points, 3)
 
 
-def osa_sweep_model(bench: Any) -> Any:
+def osa_sweep_model(bench: Bench | None) -> SweepTime | None:
     """The bench OSA profile's ``[trace.sweep_time]`` model, or None."""
-    spec = getattr(bench, "instruments", {}).get("osa") if bench is not None else None
-    trace = getattr(getattr(spec, "profile", None), "trace", None)
-    return getattr(trace, "sweep_time", None)
+    spec = bench.instruments.get("osa") if bench is not None else None
+    trace = spec.profile.trace if spec is not None else None
+    return trace.sweep_time if trace is not None else None
 
 
-def sweep_model_s(bench: Any, span_nm: float, rbw_nm: float, points: int) -> float:
+def sweep_model_s(bench: Bench | None, span_nm: float, rbw_nm: float, points: int) -> float:
     """Seconds per sweep: the bench OSA profile's model when it has one, else the rough guess."""
     model = osa_sweep_model(bench)
     if model is not None:
@@ -82,19 +84,20 @@ def sweep_model_s(bench: Any, span_nm: float, rbw_nm: float, points: int) -> flo
 # ----------------------------------------------------------------------------- OSA choice
 
 
-def op_range(bench: Any, role: str, op: str) -> tuple[float, float] | None:
+def op_range(bench: Bench | None, role: str, op: str) -> tuple[float, float] | None:
     """Allowed value range of a profile operation on the bench, or None if unknown."""
-    if bench is None:
-        return None
-    spec = getattr(bench, "instruments", {}).get(role)
-    if spec is None:
-        return None
-    operation = getattr(spec.profile, "operations", {}).get(op)
-    rng = getattr(operation, "range", None)
+    operation = _operation(bench, role, op)
+    rng = operation.range if operation is not None else None
     return (float(rng[0]), float(rng[1])) if rng else None
 
 
-def _osa_range(bench: Any, op: str) -> tuple[float, float]:
+def _operation(bench: Bench | None, role: str, op: str) -> Operation | None:
+    """The profile operation ``op`` of the bench's ``role``, or None (no bench, role or op)."""
+    spec = bench.instruments.get(role) if bench is not None else None
+    return spec.profile.operations.get(op) if spec is not None else None
+
+
+def _osa_range(bench: Bench | None, op: str) -> tuple[float, float]:
     """The bench OSA's range for ``op``; without one (no bench, or the profile maps no such
     setting), the generic OSA profile's."""
     rng = op_range(bench, "osa", op) or generic_profile("osa").op(op).range
@@ -102,16 +105,13 @@ def _osa_range(bench: Any, op: str) -> tuple[float, float]:
     return (float(rng[0]), float(rng[1]))
 
 
-def op_settle(bench: Any, role: str, op: str) -> float:
+def op_settle(bench: Bench | None, role: str, op: str) -> float:
     """Settle time of a profile operation (0 when unknown)."""
-    spec = getattr(bench, "instruments", {}).get(role) if bench is not None else None
-    if spec is None:
-        return 0.0
-    operation = getattr(spec.profile, "operations", {}).get(op)
-    return float(getattr(operation, "settle_s", 0.0) or 0.0)
+    operation = _operation(bench, role, op)
+    return float(operation.settle_s or 0.0) if operation is not None else 0.0
 
 
-def choose_osa_settings(plan: Plan, bench: Any = None) -> OsaSettings:
+def choose_osa_settings(plan: Plan, bench: Bench | None = None) -> OsaSettings:
     """Span covering every requested order with margin, RBW <= spacing/4, >= 5 samples per RBW."""
     spec, orders = plan.osa, plan.orders
     pts = plan.points()

@@ -18,7 +18,7 @@ import math
 import random
 from collections.abc import Mapping, Sequence
 from pathlib import Path
-from typing import Any, cast
+from typing import TYPE_CHECKING, Any, cast
 
 import numpy as np
 from pydantic import ValidationError
@@ -65,6 +65,9 @@ from labrun.plan_model import SpoolSpec as SpoolSpec
 from labrun.plan_model import _Strict as _Strict
 from labrun.resources import find_file
 from labrun.stops import StopCondition, StopWatch
+
+if TYPE_CHECKING:
+    from labrun.bench import Bench
 
 # Plan variables: name -> (kind, low, high, unit). kind: "float", "int", "triple", "stokes".
 # Bounds are sanity limits against typos; the bench caps and profile ranges are checked later.
@@ -568,7 +571,7 @@ class Plan:
         """Every point in measurement order (deterministic: same file, same list)."""
         return list(self._points)
 
-    def osa_settings(self, bench: Any = None) -> OsaSettings:
+    def osa_settings(self, bench: Bench | None = None) -> OsaSettings:
         """OSA centre, span, RBW and sample count for this plan, with the reasons."""
         return choose_osa_settings(self, bench)
 

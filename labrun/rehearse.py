@@ -18,7 +18,7 @@ import dataclasses
 import re
 from collections.abc import Sequence
 from dataclasses import dataclass, field
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 from pyvisa import constants
@@ -29,6 +29,9 @@ from labrun.engine import Captured, RetryPolicy, Runner
 from labrun.plan import Plan, PointSpec
 from labrun.trafficlog import TrafficLog, TrafficLogEntry, split_units
 from labrun.visareplay import TrafficReplayLibrary, _Script, _Session
+
+if TYPE_CHECKING:
+    from labrun.bench import Bench
 
 FLOOR_DBM = -90.0  # what the simulated OSA shows: no light reaches it (invented, below any floor)
 
@@ -67,7 +70,7 @@ def rehearsal_profile(profile: Any) -> Any:
     return dataclasses.replace(profile, **changes)
 
 
-def rehearsal_bench(bench: Any) -> Any:
+def rehearsal_bench(bench: Bench) -> Any:
     """``bench`` with every profile as the rehearsal answers it (``rehearsal_profile``)."""
     return dataclasses.replace(bench, instruments={
         role: dataclasses.replace(spec, profile=rehearsal_profile(spec.profile))
@@ -96,7 +99,7 @@ class DryRunLibrary(TrafficReplayLibrary):
     sweep_s: float
 
     @classmethod
-    def for_bench(cls, bench: Any, clock: SimClock, sweep_s: float) -> DryRunLibrary:
+    def for_bench(cls, bench: Bench, clock: SimClock, sweep_s: float) -> DryRunLibrary:
         """A fresh library simulating every instrument of ``bench``."""
         lib = cls.from_entries([])
         lib.instruments = {spec.resource: _Instrument(role, spec.profile)
@@ -230,7 +233,7 @@ class _NullGuard:
 class DryRunner(Runner):
     """The engine's Runner on simulated instruments: no reduction (the OSA sees no light)."""
 
-    def __init__(self, plan: Plan, bench: Any, clock: SimClock, traffic_log: TrafficLog):
+    def __init__(self, plan: Plan, bench: Bench, clock: SimClock, traffic_log: TrafficLog):
         super().__init__(plan, bench, _NullStore(), 0, _NullGuard(),  # type: ignore[arg-type]
                          policy=RetryPolicy(attempts=1), progress=False,
                          traffic_log=traffic_log, sleep=clock.sleep, clock=clock)
@@ -273,7 +276,7 @@ class Rehearsal:
         return self.sweep_s * sum(p.sweeps for p in self.points)
 
 
-def sweep_time(plan: Plan, bench: Any) -> tuple[float, str]:
+def sweep_time(plan: Plan, bench: Bench) -> tuple[float, str]:
     """Seconds per OSA sweep at the plan's OSA settings and where the figure comes from: the
     plan's own ``osa.sweep_s``, the OSA profile's ``[trace.sweep_time]``, or a rough guess."""
     from labrun.plan import osa_sweep_model
@@ -286,7 +289,7 @@ def sweep_time(plan: Plan, bench: Any) -> tuple[float, str]:
     return seconds, "rough estimate (no sweep_time in the osa profile)"
 
 
-def rehearse(plan: Plan, bench: Any, *, limit: int | None = None) -> Rehearsal:
+def rehearse(plan: Plan, bench: Bench, *, limit: int | None = None) -> Rehearsal:
     """Run ``plan`` on simulated instruments (the first ``limit`` points, or all)."""
     from labrun import scpi
 
@@ -319,7 +322,7 @@ def rehearse(plan: Plan, bench: Any, *, limit: int | None = None) -> Rehearsal:
     return Rehearsal(points, opening, clock(), sweep_s, source, log)
 
 
-def estimate_per_point(plan: Plan, bench: Any, points: int = 4) -> float | None:
+def estimate_per_point(plan: Plan, bench: Bench, points: int = 4) -> float | None:
     """Seconds per point as ``labrun check`` rehearses the first points (after the first, which
     also switches on): the ETA ``labrun status`` shows until points are measured (``labrun run``
     passes it to ``run_plan``). None when the rehearsal fails; an estimate never stops a run."""

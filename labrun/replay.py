@@ -13,7 +13,7 @@ import dataclasses
 import json
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import pandas as pd
 from sqlalchemy import or_, select
@@ -21,6 +21,9 @@ from sqlalchemy import or_, select
 from labrun.errors import InputError
 from labrun.roles import ROLE_KINDS
 from labrun.store import Line, Point, Store, Trace
+
+if TYPE_CHECKING:
+    from labrun.bench import Bench
 
 # Line columns compared bit for bit between a run and its replay.
 LINE_FIELDS = ("kind", "side", "order", "freq_thz", "wavelength_nm", "power_dbm", "floor_dbm",
@@ -309,7 +312,7 @@ def scenario_spool(path: str, name: str) -> tuple[ModelSpool, Any]:
     return ModelSpool(spec, f"scenario {scenario.source}, spool {name}"), scenario
 
 
-def lab_scenario(bench: Any, spool: ModelSpool, base: Any = None) -> dict[str, Any]:
+def lab_scenario(bench: Bench, spool: ModelSpool, base: Any = None) -> dict[str, Any]:
     """A virtual-lab scenario of the run's bench (roles, calibration, caps) around one spool;
     OSA, realism of ``base`` (a scenario) when given, else realism off; never faults."""
     cal = bench.calibration
@@ -339,7 +342,7 @@ def lab_scenario(bench: Any, spool: ModelSpool, base: Any = None) -> dict[str, A
     }
 
 
-def lab_bench(bench: Any, lab: Any) -> Any:
+def lab_bench(bench: Bench, lab: Any) -> Any:
     """The run's bench pointed at the virtual lab: same roles, profiles, caps and calibration,
     each resource the lab's, backend pyvisa-py, settle times scaled like the lab's time."""
     from labrun.bench import parse_bench

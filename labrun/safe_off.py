@@ -17,9 +17,12 @@ import logging
 import threading
 import time
 from collections.abc import Callable, Mapping
-from typing import Any, TypeVar
+from typing import TYPE_CHECKING, Any, TypeVar
 
 from labrun.roles import OFF_ROLES
+
+if TYPE_CHECKING:
+    from labrun.bench import Bench
 
 log = logging.getLogger(__name__)
 log.addHandler(logging.NullHandler())  # library: shown only when the application configures logging
@@ -32,7 +35,7 @@ LOCK_WAIT_S = 0.1  # longest wait for a session another thread is using; then a 
 T = TypeVar("T")
 
 
-def quick_adapter(bench: Any, role: str, timeout_ms: int = TIMEOUT_MS) -> Any:
+def quick_adapter(bench: Bench, role: str, timeout_ms: int = TIMEOUT_MS) -> Any:
     """A fresh connection to one role, with exchanges bounded by ``timeout_ms`` and tried once.
     Its init commands are sent and what they left in the error queue is read out unjudged: an
     instrument in local mode refuses the switch-off until its remote enable, while a refused
@@ -77,7 +80,7 @@ def _off_own(adapter: Any, role: str, timeout_ms: int) -> str | None:
     return problem
 
 
-def _off_fresh(bench: Any, role: str, timeout_ms: int) -> str | None:
+def _off_fresh(bench: Bench, role: str, timeout_ms: int) -> str | None:
     """Switch one role off over a fresh connection; the problem, or None."""
     adapter = None
     try:
@@ -92,7 +95,7 @@ def _off_fresh(bench: Any, role: str, timeout_ms: int) -> str | None:
                 adapter.close()
 
 
-def darken_role(bench: Any, role: str, own: Any = None, *, timeout_ms: int = TIMEOUT_MS,
+def darken_role(bench: Bench, role: str, own: Any = None, *, timeout_ms: int = TIMEOUT_MS,
                 deadline: float | None = None, pause_s: float = PAUSE_S) -> str | None:
     """One role dark: own connection first, then fresh ones until ``deadline`` (monotonic);
     the last problem, or None once it is confirmed dark."""
@@ -142,7 +145,7 @@ def in_parallel(roles: list[str], work: Callable[[str], T], budget_s: float,
         return {role: results[role] if role in results else late(role) for role in roles}
 
 
-def darken(bench: Any, instruments: Mapping[str, Any] | None = None, *,
+def darken(bench: Bench, instruments: Mapping[str, Any] | None = None, *,
            timeout_ms: int = TIMEOUT_MS, budget_s: float = BUDGET_S,
            pause_s: float = PAUSE_S) -> list[str]:
     """Every role of ``OFF_ROLES`` on the bench dark at once; the problems left (none: all

@@ -12,11 +12,14 @@ from __future__ import annotations
 import math
 from collections.abc import Iterable, Mapping
 from dataclasses import asdict, dataclass, field
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 from labrun.errors import SafetyError
 from labrun.plan import Plan, PointSpec, op_range, wavelength_b_nm
 from labrun.roles import SWEEP_ROLES
+
+if TYPE_CHECKING:
+    from labrun.bench import Bench
 
 ARMS = ("a", "b")
 
@@ -147,33 +150,33 @@ def _dbm(mw: float) -> float:
     return 10.0 * math.log10(mw) if mw > 0 else -math.inf
 
 
-def _cap(bench: Any, role: str) -> float | None:
+def _cap(bench: Bench, role: str) -> float | None:
     """The bench's hard cap of a source, or None."""
     spec = bench.instruments.get(role)
     return None if spec is None or spec.max_power_dbm is None else float(spec.max_power_dbm)
 
 
-def _loss(bench: Any, arm: str) -> float:
+def _loss(bench: Bench, arm: str) -> float:
     """Path loss laser -> spool input of one arm, attenuator at 0 dB (calibration)."""
     return float(getattr(bench.calibration, f"path_loss_{arm}_db", 0.0) or 0.0)
 
 
-def _amp_loss(bench: Any) -> float:
+def _amp_loss(bench: Bench) -> float:
     """Loss amplifier output -> spool input (calibration)."""
     return float(getattr(bench.calibration, "amplifier_loss_db", 0.0) or 0.0)
 
 
-def _amp_output_dbm(setpoint: Mapping[str, Any], bench: Any) -> float:
+def _amp_output_dbm(setpoint: Mapping[str, Any], bench: Bench) -> float:
     """Amplifier output that launches the setpoint's two tones: their total plus the loss."""
     return _dbm(_mw(setpoint["power_a_dbm"]) + _mw(setpoint["power_b_dbm"])) + _amp_loss(bench)
 
 
-def _att_range(bench: Any, arm: str) -> tuple[float, float]:
+def _att_range(bench: Bench, arm: str) -> tuple[float, float]:
     """Attenuation range of an arm's attenuator (0..60 dB when the profile says nothing)."""
     return op_range(bench, f"attenuator_{arm}", "set_attenuation_db") or (0.0, 60.0)
 
 
-def default_laser_dbm(bench: Any, role: str) -> float:
+def default_laser_dbm(bench: Bench, role: str) -> float:
     """Fixed laser level when the plan pins none: the bench cap clipped to the profile range."""
     cap = _cap(bench, role)
     rng = op_range(bench, role, "set_power_dbm")
@@ -183,7 +186,7 @@ def default_laser_dbm(bench: Any, role: str) -> float:
     return min(levels)
 
 
-def laser_level(setpoint: Mapping[str, Any], bench: Any, arm: str,
+def laser_level(setpoint: Mapping[str, Any], bench: Bench, arm: str,
                 laser_dbm: Mapping[str, float] | None = None) -> float:
     """Laser level of one arm for a setpoint: override, the plan's laser_x_dbm, or the default."""
     role = f"laser_{arm}"
@@ -202,7 +205,7 @@ def _round_att(att: float) -> float:
 # ----------------------------------------------------------------------------- settings
 
 
-def instrument_settings(setpoint: Mapping[str, Any], bench: Any, *,
+def instrument_settings(setpoint: Mapping[str, Any], bench: Bench, *,
                         laser_dbm: Mapping[str, float] | None = None) -> InstrumentSettings:
     """Laser levels, attenuations and amplifier output that realise a setpoint's launched powers.
 
@@ -227,7 +230,7 @@ def instrument_settings(setpoint: Mapping[str, Any], bench: Any, *,
         amplifier_dbm=amp, launched_a_dbm=launched["a"], launched_b_dbm=launched["b"])
 
 
-def _check_level(bench: Any, role: str, level: float) -> None:
+def _check_level(bench: Bench, role: str, level: float) -> None:
     """Refuse a source level above its cap or outside its profile range."""
     cap = _cap(bench, role)
     if cap is not None and level > cap + 1e-9:
@@ -238,7 +241,7 @@ def _check_level(bench: Any, role: str, level: float) -> None:
                           f"[{rng[0]:g}, {rng[1]:g}] dBm")
 
 
-def _arm(setpoint: Mapping[str, Any], bench: Any, arm: str, level: float) -> tuple[float, float]:
+def _arm(setpoint: Mapping[str, Any], bench: Bench, arm: str, level: float) -> tuple[float, float]:
     """(attenuation, launched power) of one arm without an amplifier."""
     loss = _loss(bench, arm)
     lo, hi = _att_range(bench, arm)
@@ -257,7 +260,7 @@ def _arm(setpoint: Mapping[str, Any], bench: Any, arm: str, level: float) -> tup
     return att, level - att - loss
 
 
-def _amplified(setpoint: Mapping[str, Any], bench: Any,
+def _amplified(setpoint: Mapping[str, Any], bench: Bench,
                levels: Mapping[str, float]) -> tuple[dict[str, float], float, dict[str, float]]:
     """Attenuations (set the tone ratio into the amplifier) and amplifier output (the total)."""
     pa, pb = float(setpoint["power_a_dbm"]), float(setpoint["power_b_dbm"])
@@ -280,7 +283,7 @@ def _amplified(setpoint: Mapping[str, Any], bench: Any,
 # ----------------------------------------------------------------------------- worst case
 
 
-def worst_case(plan: Plan, bench: Any, *,
+def worst_case(plan: Plan, bench: Bench, *,
                laser_dbm: Mapping[str, float] | None = None) -> WorstCase:
     """Worst-case launched power per path and in total over every point, after calibration.
 
@@ -314,7 +317,7 @@ def worst_case(plan: Plan, bench: Any, *,
                      wavelength_nm=min(wavelengths), amplifier=amp_used, notes=tuple(notes))
 
 
-def _planned(setpoint: Mapping[str, Any], bench: Any, arm: str,
+def _planned(setpoint: Mapping[str, Any], bench: Bench, arm: str,
              laser_dbm: Mapping[str, float] | None) -> float:
     """Launched power the plan asks for on one arm (from attenuation when the plan sets it)."""
     if setpoint.get(f"power_{arm}_dbm") is not None:
@@ -326,7 +329,7 @@ def _planned(setpoint: Mapping[str, Any], bench: Any, arm: str,
 # ----------------------------------------------------------------------------- caps
 
 
-def check_caps(plan: Plan, bench: Any, *,
+def check_caps(plan: Plan, bench: Bench, *,
                laser_dbm: Mapping[str, float] | None = None) -> list[Violation]:
     """Every reason to refuse this plan on this bench: caps, profile ranges, missing roles."""
     out: list[Violation] = []
@@ -367,7 +370,7 @@ def check_caps(plan: Plan, bench: Any, *,
     return out
 
 
-def _point_violations(p: PointSpec, bench: Any, laser_dbm: Mapping[str, float] | None, *,
+def _point_violations(p: PointSpec, bench: Bench, laser_dbm: Mapping[str, float] | None, *,
                       amplifier: bool) -> Iterable[Violation]:
     """Caps and ranges broken by one point; ``amplifier`` is the plan's flag (plan.amplifier),
     so the amplifier set-point is checked whatever the setpoint itself carries."""
@@ -412,7 +415,7 @@ def _point_violations(p: PointSpec, bench: Any, laser_dbm: Mapping[str, float] |
             yield from _range(bench, "pol_controller", "set_stokes", s, p.index, "")
 
 
-def _range(bench: Any, role: str, op: str, value: float, point: int | None, unit: str,
+def _range(bench: Bench, role: str, op: str, value: float, point: int | None, unit: str,
            label: str | None = None) -> Iterable[Violation]:
     """A Violation when ``value`` lies outside the profile range of ``op`` on ``role``."""
     rng = op_range(bench, role, op)
@@ -428,7 +431,7 @@ def _range(bench: Any, role: str, op: str, value: float, point: int | None, unit
                         else rng[0], point=point)
 
 
-def _osa_violations(plan: Plan, bench: Any) -> Iterable[Violation]:
+def _osa_violations(plan: Plan, bench: Bench) -> Iterable[Violation]:
     """OSA settings outside the OSA profile's ranges (centre, span, RBW, points)."""
     osa = plan.osa_settings(bench)
     centers = {osa.for_point(p.setpoint).center_nm for p in plan.points()}

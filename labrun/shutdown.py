@@ -15,10 +15,13 @@ import logging
 import signal
 import threading
 from types import FrameType
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 from labrun.roles import OFF_ROLES
 from labrun.safe_off import BUDGET_S, PAUSE_S, darken
+
+if TYPE_CHECKING:
+    from labrun.bench import Bench
 
 __all__ = ["OFF_ROLES", "RunInterrupted", "SafeOffGuard", "safe_off", "safe_off_fresh"]
 
@@ -40,13 +43,13 @@ class RunInterrupted(BaseException):  # noqa: N818 - a control-flow signal, like
         super().__init__(f"interrupted by {signal.Signals(signum).name}")
 
 
-def safe_off_fresh(bench: Any, *, pause_s: float = PAUSE_S,
+def safe_off_fresh(bench: Bench, *, pause_s: float = PAUSE_S,
                    budget_s: float = BUDGET_S) -> list[str]:
     """Fresh connections only (no init commands), every role at once; the problems left."""
     return darken(bench, None, pause_s=pause_s, budget_s=budget_s)
 
 
-def safe_off(instruments: Any, bench: Any) -> list[str]:
+def safe_off(instruments: Any, bench: Bench) -> list[str]:
     """Everything off at once: each role over the run's own connection first, a fresh one if
     that fails (labrun/safe_off.py); the problems left."""
     try:
@@ -62,7 +65,7 @@ class SafeOffGuard:
     current connections (they change on reconnect). ``shutdown()`` does the safe-off exactly once.
     """
 
-    def __init__(self, bench: Any):
+    def __init__(self, bench: Bench):
         self.bench = bench
         self.instruments: Any = None
         self.signum: int | None = None

@@ -18,6 +18,7 @@ from typing import TYPE_CHECKING, Any
 from labrun.errors import SafetyError
 
 if TYPE_CHECKING:  # imported where used: `labrun --help` loads no numpy or pydantic
+    from labrun.bench import Bench
     from labrun.plan import Plan
 
 FIRST_POINTS = 3
@@ -57,7 +58,7 @@ def cmd_check(args: argparse.Namespace) -> int:
 # ----------------------------------------------------------------------------- dry run
 
 
-def dry_run(plan: Plan, bench: Any, *, first: int = FIRST_POINTS) -> dict[str, Any]:
+def dry_run(plan: Plan, bench: Bench, *, first: int = FIRST_POINTS) -> dict[str, Any]:
     """Everything ``labrun check`` reports, as a JSON-friendly dict; touches no instrument.
 
     Unless a cap refuses the plan, the run is rehearsed by the engine itself on simulated

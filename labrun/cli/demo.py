@@ -11,10 +11,13 @@ import argparse
 import json
 import sys
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 from labrun.errors import InputError
 from labrun.resources import find_file
+
+if TYPE_CHECKING:
+    from labrun.bench import Bench
 
 DEMO_DB = "labrun-demo.db"
 DEMO_OUT = "labrun-demo"
@@ -105,7 +108,7 @@ def _write_report(store: Any, run_id: int, out: Path) -> Path:
     return write_report(store, out / "report.html", run_id=run_id).resolve()
 
 
-def _fit_and_plot(store: Any, run_id: int, scenario: Any, bench: Any,
+def _fit_and_plot(store: Any, run_id: int, scenario: Any, bench: Bench,
                   out: Path) -> dict[str, Any]:
     """Fit the stored points, write plots and fits.json; returns what was written."""
     from labrun.fits import PolFrame, fit_run

@@ -13,10 +13,13 @@ import contextlib
 import json
 import sys
 import time
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 from labrun.roles import OFF_ROLES
 from labrun.safe_off import BUDGET_S, PAUSE_S, in_parallel, quick_adapter
+
+if TYPE_CHECKING:
+    from labrun.bench import Bench
 
 
 def register(subparsers: Any) -> None:
@@ -30,7 +33,7 @@ def register(subparsers: Any) -> None:
     p.set_defaults(func=cmd_off)
 
 
-def off_role(bench: Any, role: str, *, budget_s: float = BUDGET_S) -> dict[str, Any]:
+def off_role(bench: Bench, role: str, *, budget_s: float = BUDGET_S) -> dict[str, Any]:
     """Darken one role over a fresh connection, tried again until ``budget_s``; what was done
     and what the instrument reports."""
     deadline = time.monotonic() + budget_s
@@ -41,7 +44,7 @@ def off_role(bench: Any, role: str, *, budget_s: float = BUDGET_S) -> dict[str, 
         time.sleep(PAUSE_S)
 
 
-def _off_once(bench: Any, role: str) -> dict[str, Any]:
+def _off_once(bench: Bench, role: str) -> dict[str, Any]:
     """One try: open without the profile's init commands (as the safe-off fallback does: a
     refused init command must not keep a laser on), switch off, read the state back."""
     result: dict[str, Any] = {"role": role, "ok": False, "output": None, "detail": ""}
