@@ -9,7 +9,12 @@
    time scale 0, against the bare interpreter's start in the same run (target: half of labrun
    0.2.0's, which was about 1.1 s, 90 % imports). Also shown: the whole run of 2 points.
 
+   With ``--before DIR`` (a checkout of an earlier labrun, e.g. ``git worktree add DIR v0.2.0``)
+   the same runs alternate between that code (put first on PYTHONPATH) and this one, so both
+   figures come from the same minutes of a shared machine.
+
     python benchmarks/bench_startup.py [--repeats 7] [--points 200] [--run-repeats 5]
+                                       [--before DIR]
 """
 
 from __future__ import annotations
@@ -136,42 +141,62 @@ def _serve(folder: Path) -> tuple[subprocess.Popen, Path]:
     return proc, bench
 
 
-def _one_run(folder: Path, bench: Path, plan: Path, k: int) -> tuple[float, float]:
-    """One cold ``labrun run``: (process start to its first instrument exchange, to exit)."""
+def _one_run(folder: Path, bench: Path, plan: Path, k: str,
+             code: Path | None = None) -> tuple[float, float]:
+    """One cold ``labrun run`` (of the labrun in ``code``, default this one): (process start to
+    its first instrument exchange, to exit)."""
     import json
+    import os
 
+    env = dict(os.environ)
+    if code is not None:
+        env["PYTHONPATH"] = str(code)
     log = folder / f"traffic-{k}.jsonl"
     t0 = time.time()
     subprocess.run([sys.executable, "-m", "labrun", "run", str(plan), "--bench", str(bench),
                     "--db", str(folder / f"run-{k}.db"), "--unattended", "--operator",
                     "benchmark", "--ack-safety", "--no-progress", "--traffic-log", str(log)],
-                   check=True, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+                   check=True, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL, env=env)
     t1 = time.time()
     first = min(json.loads(line)["timestamp"] for line in log.read_text().splitlines()
                 if line.strip())
     return first - t0, t1 - t0
 
 
-def bench_run_startup(folder: Path, repeats: int) -> None:
-    """Item 2: labrun run's start-up against the bare interpreter."""
+def bench_run_startup(folder: Path, repeats: int, before: Path | None) -> None:
+    """Item 2: labrun run's start-up against the bare interpreter (and an earlier labrun)."""
     plan = folder / "startup-plan.toml"
     plan.write_text(RUN_PLAN)
     proc, bench = _serve(folder)
+    codes: list[tuple[str, Path | None]] = [("this labrun", None)]
+    if before is not None:
+        codes.insert(0, (f"before ({before})", before))
+    rows: dict[str, list[tuple[float, float]]] = {label: [] for label, _ in codes}
+    bare: list[float] = []
     try:
-        _one_run(folder, bench, plan, -1)  # warm the file cache once
-        bare = _median([sys.executable, "-c", "pass"], repeats)
-        rows = [_one_run(folder, bench, plan, k) for k in range(repeats)]
+        for label, code in codes:  # warm the file cache once each
+            _one_run(folder, bench, plan, f"warm-{len(rows[label])}-{label[:4]}", code)
+        for k in range(repeats):
+            bare.append(_wall([sys.executable, "-c", "pass"]))
+            for label, code in codes:
+                rows[label].append(_one_run(folder, bench, plan, f"{k}-{label[:4]}", code))
     finally:
         proc.terminate()
         proc.wait(timeout=30)
-    first = statistics.median(r[0] for r in rows)
-    whole = statistics.median(r[1] for r in rows)
-    print(f"2. labrun run start-up, cold process, median of {repeats} (virtual lab at time "
-          "scale 0, 2 points):")
-    print(f"   python -c pass                 {bare:.3f} s")
-    print(f"   start to first instrument exchange {first:.3f} s ({first / bare:.1f}x bare python; "
-          "labrun 0.2.0: about 1.1 s, target half of it)")
-    print(f"   start to exit                  {whole:.3f} s ({whole / bare:.1f}x bare python)")
+    floor = statistics.median(bare)
+    print(f"2. labrun run start-up, cold process, {repeats} runs each, alternating (virtual lab "
+          f"at time scale 0, 2 points); median | best:")
+    print(f"   python -c pass                      {floor:.3f} s")
+    for label, _ in codes:
+        first = sorted(r[0] for r in rows[label])
+        whole = sorted(r[1] for r in rows[label])
+        print(f"   {label}: start to first instrument exchange {statistics.median(first):.3f} | "
+              f"{first[0]:.3f} s ({statistics.median(first) / floor:.1f}x bare python); "
+              f"start to exit {statistics.median(whole):.3f} | {whole[0]:.3f} s")
+    if before is not None:
+        old = statistics.median(r[0] for r in rows[codes[0][0]])
+        new = statistics.median(r[0] for r in rows[codes[1][0]])
+        print(f"   first exchange: this / before = {new / old:.2f} (target <= 0.5)")
 
 
 def main() -> None:
@@ -179,10 +204,12 @@ def main() -> None:
     ap.add_argument("--repeats", type=int, default=7)
     ap.add_argument("--points", type=int, default=200)
     ap.add_argument("--run-repeats", type=int, default=5)
+    ap.add_argument("--before", type=Path, default=None,
+                    help="checkout of an earlier labrun to compare start-up with")
     args = ap.parse_args()
     with tempfile.TemporaryDirectory() as tmp:
         bench_status(Path(tmp), args.repeats, args.points)
-        bench_run_startup(Path(tmp), args.run_repeats)
+        bench_run_startup(Path(tmp), args.run_repeats, args.before)
 
 
 if __name__ == "__main__":

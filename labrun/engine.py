@@ -39,7 +39,7 @@ from labrun.faults import (
 from labrun.instruments import open_bench, source_readings
 from labrun.outcomes import RunAborted, StopRequested
 from labrun.plan import Plan, PointSpec, StopWatch
-from labrun.preload import preload
+from labrun.preload import bench_opening, preload
 from labrun.roles import ATTENUATOR_ROLES, LASER_ROLES, SOURCE_ROLES, SWEEP_ROLES
 from labrun.runstore import (
     RunStore,
@@ -267,6 +267,7 @@ class Runner:
         self.early: list[tuple[str, str, dict[str, Any]]] = []  # events before the run row
         self.darkened: str | None = None  # why a database fault darkened the bench meanwhile
         self.watchdog: PointWatchdog | None = None
+        self.announce_opening = True  # the first open starts what waits for it (preload)
         self.profile_settle_s = sum(op.settle_s for spec in bench.instruments.values()
                                     for op in spec.profile.operations.values())
 
@@ -320,6 +321,10 @@ class Runner:
     def open(self) -> dict[str, str]:
         """Open every bench instrument; the identities as strings (each read until two replies
         agree, so a garbled reply is neither recorded nor mistaken for another instrument)."""
+        if self.announce_opening:  # scipy, the store: loaded while the instruments answer
+            self.announce_opening = False
+            preload("labrun.reduce")
+            bench_opening()
         instruments = self.open_bench(self.bench, traffic_log=self.traffic_log,
                                  on_fault=self.command_fault)
         self.guard.set_instruments(instruments)
@@ -910,7 +915,6 @@ def _execute(plan: Plan, bench: Bench, store: AnyStore, run_id: int | None,
     a watcher process darkens the bench if this process dies lit (labrun/guardian.py)."""
     from labrun.store.kinds import utcnow
 
-    preload("labrun.reduce")  # scipy: imported while the bench opens and the first point settles
     total = len(specs) + done if run_id is None else _points_total(store, run_id)
     seams = seams or Seams()
     guard = seams.guard(bench)

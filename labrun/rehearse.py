@@ -237,6 +237,7 @@ class DryRunner(Runner):
         super().__init__(plan, bench, _NullStore(), 0, _NullGuard(),  # type: ignore[arg-type]
                          policy=RetryPolicy(attempts=1), progress=False,
                          traffic_log=traffic_log, sleep=clock.sleep, clock=clock)
+        self.announce_opening = False  # a rehearsal opens no real bench: nothing to start
 
     def reduce(self, spec: PointSpec, traces: Sequence[Captured]) -> None:
         """Nothing to reduce: the rehearsal's traces are an empty floor."""

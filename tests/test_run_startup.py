@@ -16,6 +16,7 @@ from sqlalchemy import create_engine, text
 
 from labrun.cli import main
 from labrun.errors import InputError
+from labrun.preload import bench_opening
 from labrun.store import open_store
 from labrun.store.deferred import DeferredStore, open_deferred, precheck_sqlite
 from labrun.vlab.lab import VirtualLab
@@ -93,12 +94,22 @@ def test_deferred_store_raises_what_the_thread_met(tmp_path):
         raise Boom("thread failed")
 
     d = DeferredStore("sqlite:///x", str(tmp_path / "x.db"))
-    d.result().close()  # opens
+    assert not (tmp_path / "x.db").exists()  # waits for the bench to open, or a first use
+    assert d.latest_run_id() is None and (tmp_path / "x.db").exists()
+    d.close()
     bad = DeferredStore("sqlite:///y", str(tmp_path / "y.db"), opener=fails)
     with pytest.raises(Boom):
         bad.latest_run_id()
     bad.close()  # nothing to close
-    assert not isinstance(open_deferred(str(tmp_path / "z.db")), type(None))
+    unused = open_deferred(str(tmp_path / "z.db"))
+    unused.close()  # never needed: never opened, nothing created
+    bench_opening()
+    assert not (tmp_path / "z.db").exists()
+    started = open_deferred(str(tmp_path / "w.db"))
+    bench_opening()  # the engine starts opening the bench: the store opens meanwhile
+    started._thread.join(timeout=60)
+    assert (tmp_path / "w.db").exists() and started.url == f"sqlite:///{tmp_path / 'w.db'}"
+    started.close()
 
 
 def test_a_run_through_the_deferred_store_stores_every_point(tmp_path, lab, capsys):

@@ -118,14 +118,14 @@ def cmd_run(args: argparse.Namespace) -> int:
     try:
         # SQLite is checked now and opened on a thread while the bench opens (SQLAlchemy's
         # import is not on the way to the first instrument exchange)
+        estimate = estimate_per_point(plan, bench)  # rehearsed before the store is opened
         store = open_deferred(args.db, opener=args.open_store)
         try:
             outcome = run_plan(plan, bench, store, operator=args.operator,
                                unattended=args.unattended, ack_safety=args.ack_safety,
                                confirm=args.confirm, progress=not args.no_progress,
                                traffic_log=traffic_log, echo=sys.stderr,
-                               estimate_s_per_point=estimate_per_point(plan, bench),
-                               guardian=True)
+                               estimate_s_per_point=estimate, guardian=True)
         finally:
             store.close()
     finally:

@@ -1,5 +1,7 @@
 """Open a SQLite run store on a thread while the run opens its bench, so SQLAlchemy's import
-(about a third of a run's start-up) is off the way to the first instrument exchange.
+(about a third of a run's start-up) is off the way to the first instrument exchange: the thread
+starts when the engine starts opening the bench (``labrun.preload.bench_opening``) or at the
+store's first use, whichever comes first.
 
 ``open_deferred`` first checks the store the way ``open_store`` would refuse it, with the
 standard library only (a missing folder, a file that is not SQLite, a schema from a newer
@@ -20,6 +22,7 @@ from collections.abc import Callable
 from typing import Any
 
 from labrun.errors import InputError
+from labrun.preload import forget, when_bench_opens
 from labrun.store.revisions import require_known
 from labrun.store.statusview import BUSY_TIMEOUT_S, is_sqlite, sqlite_location
 
@@ -35,7 +38,17 @@ class DeferredStore:
         self._error: BaseException | None = None
         self._thread = threading.Thread(target=self._open, name="labrun-store-open",
                                         daemon=True)
-        self._thread.start()
+        self._started = False
+        self._lock = threading.Lock()
+        when_bench_opens(self.start)  # opened while the instruments answer
+
+    def start(self) -> None:
+        """Start opening (once): when the bench starts opening, or at the first use."""
+        forget(self.start)
+        with self._lock:
+            if not self._started:
+                self._started = True
+                self._thread.start()
 
     def _open(self) -> None:
         """The thread: import SQLAlchemy and open (create or upgrade) the store."""
@@ -46,6 +59,7 @@ class DeferredStore:
 
     def result(self) -> Any:
         """The open Store (waits for the thread; re-raises what it met)."""
+        self.start()
         self._thread.join()
         if self._error is not None:
             raise self._error
@@ -56,6 +70,11 @@ class DeferredStore:
 
     def close(self) -> None:
         """Close the store once it is open (an open that failed leaves nothing to close)."""
+        forget(self.start)
+        with self._lock:
+            if not self._started:  # never needed: nothing to open or close
+                self._started = True
+                return
         self._thread.join()
         if self._store is not None:
             self._store.close()
