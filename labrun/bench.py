@@ -18,7 +18,7 @@ from pyvisa import rname
 
 from labrun.errors import InputError
 from labrun.inputfile import FILE_MODEL_CONFIG, Number, decode, parse_toml, read_bytes
-from labrun.profiles import Profile, load_profile
+from labrun.profiles import Profile, SweepTime, load_profile
 from labrun.resources import find_file
 from labrun.roles import ROLE_KINDS, SOURCE_ROLES, SWEEP_ROLES
 from labrun.scpi import BACKENDS
@@ -85,6 +85,8 @@ class _InstrumentModel(_Strict):
     backend: str = "@py"
     profile: str
     max_power_dbm: float | None = Field(None, **POWER_DBM)
+    # the OSA's sweep time as measured by `labrun probe --sweep-time` (labrun/sweeptime.py)
+    sweep_time: SweepTime | None = None
 
 
 class _BenchFile(_Strict):
@@ -103,6 +105,7 @@ class InstrumentSpec:
     backend: str
     profile: Profile
     max_power_dbm: float | None = None
+    sweep_time: SweepTime | None = None  # measured (osa only); preferred to the profile's
 
     @property
     def kind(self) -> str:
@@ -160,8 +163,11 @@ def _instrument(path: Path, role: str, model: _InstrumentModel) -> InstrumentSpe
         raise _fail(path, f"{where}.max_power_dbm", "a source needs a power cap in dBm")
     if role not in SOURCE_ROLES and model.max_power_dbm is not None:
         raise _fail(path, f"{where}.max_power_dbm", "only sources (lasers, amplifier) take a cap")
+    if model.sweep_time is not None and role != "osa":
+        raise _fail(path, f"{where}.sweep_time", "only the osa has a sweep time")
     return InstrumentSpec(role=role, resource=model.resource, backend=model.backend,
-                          profile=profile, max_power_dbm=model.max_power_dbm)
+                          profile=profile, max_power_dbm=model.max_power_dbm,
+                          sweep_time=model.sweep_time)
 
 
 def parse_bench(text: str, path: Path) -> Bench:

@@ -67,8 +67,12 @@ def estimate_sweep_s(span_nm: float, rbw_nm: float, points: int) -> float:
 
 
 def osa_sweep_model(bench: Bench | None) -> SweepTime | None:
-    """The bench OSA profile's ``[trace.sweep_time]`` model, or None."""
+    """The bench OSA's sweep-time model: as measured by ``labrun probe --sweep-time`` (the
+    bench's ``[instruments.osa.sweep_time]``), else its profile's ``[trace.sweep_time]``, or
+    None."""
     spec = bench.instruments.get("osa") if bench is not None else None
+    if spec is not None and spec.sweep_time is not None:
+        return spec.sweep_time
     trace = spec.profile.trace if spec is not None else None
     return trace.sweep_time if trace is not None else None
 

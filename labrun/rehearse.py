@@ -279,12 +279,15 @@ class Rehearsal:
 
 def sweep_time(plan: Plan, bench: Bench) -> tuple[float, str]:
     """Seconds per OSA sweep at the plan's OSA settings and where the figure comes from: the
-    plan's own ``osa.sweep_s``, the OSA profile's ``[trace.sweep_time]``, or a rough guess."""
+    plan's own ``osa.sweep_s``, the bench's measured ``[instruments.osa.sweep_time]`` (labrun
+    probe --sweep-time), the OSA profile's ``[trace.sweep_time]``, or a rough guess."""
     from labrun.plan import osa_sweep_model
 
     seconds = float(plan.osa_settings(bench).sweep_estimate_s)
     if plan.osa.sweep_s is not None:
         return seconds, "plan (osa.sweep_s)"
+    if getattr(bench.instruments.get("osa"), "sweep_time", None) is not None:
+        return seconds, "measured by labrun probe (bench file)"
     if osa_sweep_model(bench) is not None:
         return seconds, "osa profile"
     return seconds, "rough estimate (no sweep_time in the osa profile)"

@@ -135,5 +135,12 @@ def test_deferred_store_is_not_used_for_a_server_url():
     opener = lambda url: called.append(url) or "store"  # noqa: E731 - the test's open_store
     assert open_deferred("postgresql+psycopg://u@127.0.0.1:1/x", opener=opener) == "store"
     assert called == ["postgresql+psycopg://u@127.0.0.1:1/x"]
+
+
+def test_a_server_url_is_opened_at_once(inst_free_port):
+    """A server URL is not deferred (its checks need the server): a server that is not there
+    is the one-line refusal from open_deferred itself, before any bench is opened."""
+    with pytest.raises(InputError, match="cannot open the database"):
+        open_deferred(f"postgresql+psycopg://labrun@127.0.0.1:{inst_free_port}/none")
     with pytest.raises(InputError):
         precheck_sqlite("/no/such/folder/r.db")

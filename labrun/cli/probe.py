@@ -53,8 +53,13 @@ def register(subparsers: argparse._SubParsersAction) -> None:
     p = subparsers.add_parser("probe", help="check that every instrument of a bench answers",
                               description="Open each instrument of a bench, read its identity "
                                           "and every read-only operation of its profile. "
-                                          "Never sets anything, never enables emission.")
+                                          "Never enables emission; sets nothing but, with "
+                                          "--sweep-time, the OSA's own settings (put back "
+                                          "afterwards).")
     p.add_argument("--bench", required=True, metavar="FILE", help="bench file (TOML)")
+    p.add_argument("--sweep-time", action="store_true",
+                   help="also time the OSA's sweeps and store the result in the bench file "
+                        "([instruments.osa.sweep_time]), which labrun check then uses")
     p.add_argument("--json", action="store_true", help="print JSON instead of a table")
     add_traffic_log_option(p, "save the instrument traffic as JSON lines")
     p.set_defaults(func=run_probe)
@@ -285,16 +290,56 @@ def run_probe(args: argparse.Namespace) -> int:
     if args.traffic_log and not Path(args.traffic_log).resolve().parent.is_dir():
         raise InputError("no such folder for the traffic log", file=args.traffic_log,
                          field="--traffic-log")
+    if args.sweep_time and "osa" not in bench.instruments:
+        raise InputError("--sweep-time needs an osa on the bench", file=str(bench.path),
+                         field="instruments.osa")
     traffic_log = TrafficLog()
     results = probe_bench(bench, traffic_log)
+    sweep: dict[str, Any] | None = None
+    if args.sweep_time and all(r.ok for r in results if r.role == "osa"):
+        sweep = measure_sweep_time(bench, traffic_log)
     if args.traffic_log:
         traffic_log.save(args.traffic_log)
     if args.json:
-        payload = {"bench": str(bench.path), "ok": all(r.ok for r in results),
-                   "instruments": [{"role": r.role, "resource": r.resource, "idn": r.idn,
-                                    "checks": [asdict(c) for c in r.checks]} for r in results]}
+        payload: dict[str, Any] = {
+            "bench": str(bench.path), "ok": all(r.ok for r in results),
+            "instruments": [{"role": r.role, "resource": r.resource, "idn": r.idn,
+                             "checks": [asdict(c) for c in r.checks]} for r in results]}
+        if args.sweep_time:
+            payload["sweep_time"] = sweep
         json.dump(payload, sys.stdout, indent=2)
         sys.stdout.write("\n")
     else:
         print(format_table(results))
-    return 0 if all(r.ok for r in results) else 1
+        if sweep is not None:
+            print(format_sweep(sweep))
+        elif args.sweep_time:
+            print("osa sweep time: not measured (the osa failed its checks)")
+    return 0 if all(r.ok for r in results) and (sweep is not None or not args.sweep_time) else 1
+
+
+def measure_sweep_time(bench: Bench, traffic_log: TrafficLog | None) -> dict[str, Any]:
+    """Time the OSA's sweeps (labrun/sweeptime.py) and store the model in the bench file; what
+    was measured and stored, for the report."""
+    from labrun import sweeptime
+    from labrun.instruments import open_instrument
+
+    osa = open_instrument(bench, "osa", traffic_log=traffic_log)
+    try:
+        idn = str(osa.idn())
+        model, timings = sweeptime.measure(osa)
+    finally:
+        osa.close()
+    sweeptime.store(bench.path, model, idn)
+    return {"model": model, "stored_in": str(bench.path),
+            "timings": [asdict(t) for t in timings]}
+
+
+def format_sweep(sweep: dict[str, Any]) -> str:
+    """The sweep-time lines of the table report."""
+    m = sweep["model"]
+    rows = [f"osa sweep time: {m['fixed_s']:.4g} s + points x {m['per_sample_s']:.4g} s + "
+            f"span/RBW x {m['per_span_rbw_s']:.4g} s (stored in {sweep['stored_in']})"]
+    rows += [f"{'':<15} {t['points']:>6} samples, span {t['span_nm']:g} nm, RBW "
+             f"{t['rbw_nm']:g} nm: {t['seconds']:.3f} s" for t in sweep["timings"]]
+    return "\n".join(rows)
