@@ -66,6 +66,20 @@ class Monitor:
         with self._cond:
             self._armed.pop(id(dog), None)
 
+    def fire_if_due(self, dog: Deadline) -> bool:
+        """From the watched thread itself: fire ``dog`` now if its time has come and the
+        monitor has not yet (a starved monitor thread must not let an overrun pass), calling
+        ``on_overrun`` here; True when ``dog`` has fired, here or before."""
+        with self._cond:
+            if dog.fired.is_set():
+                return True
+            if time.monotonic() < dog.deadline:
+                return False
+            self._armed.pop(id(dog), None)
+            dog.fired.set()
+        dog.on_overrun()
+        return True
+
     def _watch(self) -> None:
         with self._cond:
             while True:

@@ -22,20 +22,32 @@ if TYPE_CHECKING:
     from labrun.engine import Runner
 
 
-def check_emission(run: Runner) -> None:
+def check_emission(run: Runner, between: Callable[[], None] | None = None) -> None:
     """Abort if a source's output is not in the expected state, its interlock is open, or
     its power setting changed behind labrun's back (front panel, reset).
 
     An open interlock forces emission off, so where a source reports its output state that
     one query covers both (the interlock is then read to name the reason); the interlock is
     read on its own only for sources that do not report their output. The power travels in
-    the same message as the state where the profile takes compound messages.
+    the same message as the state where the profile takes compound messages. ``between`` (the
+    trace's reduction) runs while the sources answer where the readings seam takes it, else
+    once the watch has passed.
     """
     run.check_progress()
     roles = run.sources()
     adapters = [run.role(r) for r in roles]
-    for role, adapter, reading in zip(roles, adapters, run.source_readings(adapters),
-                                      strict=True):
+    overlap = between is not None and run.readings_take_between
+    readings = (run.source_readings(adapters, between=between) if overlap
+                else run.source_readings(adapters))
+    _check_readings(run, roles, adapters, readings)
+    if between is not None and not overlap:
+        between()
+
+
+def _check_readings(run: Runner, roles: list[str], adapters: list[Any],
+                    readings: list[Any]) -> None:
+    """The watch's verdict on the sources' readings (RunAborted, SafetyError)."""
+    for role, adapter, reading in zip(roles, adapters, readings, strict=True):
         state, power = reading
         if state is None and adapter.interlock_closed() is False:
             raise RunAborted(f"interlock open on {role}")

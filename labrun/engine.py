@@ -13,6 +13,7 @@ from __future__ import annotations
 
 import contextlib
 import functools
+import inspect
 import os
 import signal as _signal
 import socket
@@ -233,6 +234,8 @@ class Runner:
         self.plan, self.bench, self.store, self.run_id = plan, bench, store, run_id
         self.open_bench, self.reduce_trace = open_bench, reduce_trace
         self.source_readings, self.point_bound_s = source_readings, point_bound_s
+        # a readings seam that takes ``between`` lets the reduction overlap the watch's replies
+        self.readings_take_between = "between" in inspect.signature(source_readings).parameters
         self.guard, self.policy, self.traffic_log = guard, policy, traffic_log
         self.scale = float(getattr(bench, "settle_scale", 1.0))
         self.sleep, self.clock = sleep, clock  # simulated in `labrun check` (labrun.rehearse)
@@ -474,10 +477,11 @@ class Runner:
         """Source roles on this bench."""
         return self.source_roles
 
-    def check_emission(self) -> None:
+    def check_emission(self, between: Callable[[], None] | None = None) -> None:
         """The emission watch (labrun/emission.py): abort on a source in an unexpected state,
-        an open interlock, or a power changed behind labrun's back."""
-        emission.check_emission(self)
+        an open interlock, or a power changed behind labrun's back. ``between`` runs while the
+        sources answer (the trace's reduction, after a sweep)."""
+        emission.check_emission(self, between)
 
     def check_power(self, role: str, adapter: Any, power: float) -> None:
         """A source's power against its cap and the value set (labrun/emission.py)."""
@@ -627,7 +631,7 @@ class Runner:
         """In the run loop: PointOverrun once the current attempt's watchdog fired, or once a
         database fault darkened the bench (the attempt is not finished in the dark)."""
         dog = self.watchdog
-        if dog is not None and dog.fired.is_set():
+        if dog is not None and dog.overdue():
             raise PointOverrun(f"point took longer than its bound of {dog.bound_s:.1f} s; "
                                "sources switched off")
         if self.darkened is not None:
@@ -663,9 +667,20 @@ class Runner:
             self.prepare(settings)
         self.apply(settings)
         traces = [self.capture(kind) for kind in kinds]
-        self.check_emission()
         traces.sort(key=lambda t: t.kind != "output")
-        self.reduce(spec, traces)
+        unreduced: list[InstrumentError] = []
+
+        def reduce_meanwhile() -> None:
+            """Reduce while the sources answer the watch; a trace fault waits for its verdict
+            (an unexpected emission state outranks it, as when the watch came first)."""
+            try:
+                self.reduce(spec, traces)
+            except InstrumentError as exc:
+                unreduced.append(exc)
+
+        self.check_emission(between=reduce_meanwhile)
+        if unreduced:
+            raise unreduced[0]
         return traces
 
     def reduce(self, spec: PointSpec, traces: Sequence[Captured]) -> None:

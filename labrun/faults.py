@@ -120,3 +120,8 @@ class PointWatchdog:
 
     def __exit__(self, *exc_info: object) -> None:
         MONITOR.disarm(self)
+
+    def overdue(self) -> bool:
+        """True once the bound has passed: fired by the monitor thread, or now by the caller
+        (``on_overrun`` then runs in the caller's thread before this returns)."""
+        return MONITOR.fire_if_due(self)

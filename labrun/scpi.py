@@ -797,38 +797,94 @@ def query_each(requests: list[tuple[ScpiSession, str]], *,
     again one at a time, with the usual reconnect-and-retry. ``direction`` "write": messages
     that carry settings (with their error query), recorded as writes in the traffic log.
     """
-    sessions = [s for s, _ in requests]
-    if len({id(s) for s in sessions}) != len(sessions):
-        raise ValueError("query_each takes one query per session")
-    with contextlib.ExitStack() as stack:
-        for s in sessions:
-            stack.enter_context(s.held())
-        started = time.time()
-        current = sessions[0]  # the session whose exchange failed, for the fault event
+    return send_each(requests, direction=direction).read()
+
+
+def send_each(requests: list[tuple[ScpiSession, str]], *,
+              direction: Direction = "query") -> PendingReplies:
+    """The first half of ``query_each``: every message sent, the replies not read yet (the
+    caller may work meanwhile, then ``read()``s them, or ``abandon()``s them). The sessions
+    stay locked until then."""
+    pending = PendingReplies(requests, direction)
+    pending.send()
+    return pending
+
+
+class PendingReplies:
+    """Messages sent to several instruments whose replies are still on the wire."""
+
+    def __init__(self, requests: list[tuple[ScpiSession, str]], direction: Direction):
+        self.requests = requests
+        self.direction = direction
+        self.sessions = [s for s, _ in requests]
+        if len({id(s) for s in self.sessions}) != len(self.sessions):
+            raise ValueError("query_each takes one query per session")
+        self._stack = contextlib.ExitStack()
+        for s in self.sessions:
+            self._stack.enter_context(s.held())
+        self.started = time.time()
+        self._current = self.sessions[0]  # the session whose exchange failed, for the fault
+        self._replies: list[str] | None = None
+
+    def send(self) -> None:
+        """Write every message (a failure falls back to one at a time, replies then known)."""
         try:
-            for s, cmd in requests:
-                current = s
+            for s, cmd in self.requests:
+                self._current = s
                 s.send_unread(cmd)
-            replies = []
-            for s in sessions:
-                current = s
-                replies.append(s.read_reply())
         except Exception as exc:
-            if not _is_transport_error(exc) and not isinstance(exc, InstrumentError):
-                raise
-            silent = is_timeout(exc) and not current.peer_gone()
-            log.warning("parallel queries failed (%s); asking one at a time", exc)
-            for s, cmd in requests:
-                s.record(direction, cmd, started, None, f"{type(exc).__name__}: {exc}", 1)
-                s.close()
-            owner = next((s for s in sessions if s.role and s.role == getattr(exc, "role", None)),
-                         current)
-            owner.report_fault(" | ".join(cmd for _, cmd in requests), exc, 1)
-            if silent:  # asking a silent instrument again would cost another timeout
-                final = owner.no_answer(exc)
-                final.fault_reported = True  # type: ignore[attr-defined]
-                raise final from exc
-            return [s.query(cmd, direction=direction) for s, cmd in requests]
-        for (s, cmd), reply in zip(requests, replies, strict=True):
-            s.record(direction, cmd, started, reply, None, 1)
-        return replies
+            try:
+                self._replies = self._one_at_a_time(exc)
+            finally:
+                self._stack.close()
+        except BaseException:  # a signal while writing: the sessions are released all the same
+            self._stack.close()
+            raise
+
+    def read(self) -> list[str]:
+        """Every reply, in the order sent (the sessions are released)."""
+        try:
+            if self._replies is not None:
+                return self._replies
+            try:
+                replies = []
+                for s in self.sessions:
+                    self._current = s
+                    replies.append(s.read_reply())
+            except Exception as exc:
+                return self._one_at_a_time(exc)
+            for (s, cmd), reply in zip(self.requests, replies, strict=True):
+                s.record(self.direction, cmd, self.started, reply, None, 1)
+            return replies
+        finally:
+            self._stack.close()
+
+    def abandon(self) -> None:
+        """Drop the replies unread: every connection involved is closed, so a pending reply can
+        never answer a later query (the next exchange reconnects)."""
+        try:
+            if self._replies is None:
+                for s, cmd in self.requests:
+                    s.record(self.direction, cmd, self.started, None, "abandoned unread", 1)
+                    s.close()
+        finally:
+            self._stack.close()
+
+    def _one_at_a_time(self, exc: Exception) -> list[str]:
+        """After a failure on the wire: close every connection involved and ask again one at a
+        time (a silent instrument raises its no-answer error at once)."""
+        if not _is_transport_error(exc) and not isinstance(exc, InstrumentError):
+            raise exc
+        silent = is_timeout(exc) and not self._current.peer_gone()
+        log.warning("parallel queries failed (%s); asking one at a time", exc)
+        for s, cmd in self.requests:
+            s.record(self.direction, cmd, self.started, None, f"{type(exc).__name__}: {exc}", 1)
+            s.close()
+        owner = next((s for s in self.sessions
+                      if s.role and s.role == getattr(exc, "role", None)), self._current)
+        owner.report_fault(" | ".join(cmd for _, cmd in self.requests), exc, 1)
+        if silent:  # asking a silent instrument again would cost another timeout
+            final = owner.no_answer(exc)
+            final.fault_reported = True  # type: ignore[attr-defined]
+            raise final from exc
+        return [s.query(cmd, direction=self.direction) for s, cmd in self.requests]

@@ -42,3 +42,17 @@ def test_many_alarms_share_one_thread():
     started = {t.name for t in threading.enumerate() if t.ident not in before}
     assert started <= {"labrun-deadlines"}, started
     assert MONITOR.armed() == 0
+
+
+def test_the_watched_thread_fires_an_overdue_watchdog_itself():
+    """A monitor thread starved of CPU must not let an overrun pass: the run loop's own check
+    fires the watchdog (on_overrun in the loop's thread) once its bound has passed, once."""
+    from labrun.faults import PointWatchdog
+
+    calls: list[str] = []
+    dog = PointWatchdog(0.05, lambda: calls.append(threading.current_thread().name))
+    assert not dog.overdue()  # not armed, not due: nothing happens
+    time.sleep(0.06)
+    assert dog.overdue() and dog.fired.is_set()
+    assert calls == [threading.current_thread().name]
+    assert dog.overdue() and len(calls) == 1

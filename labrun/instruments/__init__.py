@@ -7,7 +7,7 @@ every source in a safe state (``safe_off_all``) without ever raising.
 from __future__ import annotations
 
 import logging
-from collections.abc import Iterable, Iterator, Mapping, Sequence
+from collections.abc import Callable, Iterable, Iterator, Mapping, Sequence
 from typing import Any, NamedTuple
 
 from labrun.bench import Bench
@@ -22,7 +22,7 @@ from labrun.instruments.pol_controller import PolControllerAdapter
 from labrun.instruments.power_meter import PowerMeterAdapter
 from labrun.instruments.switch import SwitchAdapter
 from labrun.roles import OFF_ROLES
-from labrun.scpi import FaultHook, Idn, ScpiSession, compound, query_each
+from labrun.scpi import FaultHook, Idn, ScpiSession, compound, query_each, send_each
 from labrun.trafficlog import TrafficLog, split_units
 
 __all__ = [
@@ -174,10 +174,16 @@ def _source_queries(adapter: Adapter) -> list[str]:
     return names
 
 
-def source_readings(adapters: Sequence[Adapter]) -> list[SourceReading]:
+def source_readings(adapters: Sequence[Adapter],
+                    between: Callable[[], None] | None = None) -> list[SourceReading]:
     """Output state and power of each source, read from all of them at once; where the profile
     takes compound messages both queries travel in one message (``OUTP:STAT?;:SOUR:POW?``), so
-    watching the power costs no extra round trip."""
+    watching the power costs no extra round trip.
+
+    ``between`` runs once the first messages are sent and before their replies are read (the
+    engine reduces the trace while the sources answer); if it raises, the replies are dropped
+    (their connections closed) and its exception goes on.
+    """
     names = [_source_queries(a) for a in adapters]
     ops = [[a.query_text(n) for n in ns] for a, ns in zip(adapters, names, strict=True)]
     # messages[i]: the messages to send to adapter i, each a list of the operations it asks
@@ -191,8 +197,15 @@ def source_readings(adapters: Sequence[Adapter]) -> list[SourceReading]:
     for k in range(max((len(m) for m in messages), default=0)):
         batch = [(i, m[k]) for i, m in enumerate(messages) if k < len(m)]
         texts = [compound(parts[0][1], [t for _, t in parts[1:]]) for _, parts in batch]
-        replies = query_each([(adapters[i].session, t) for (i, _), t
-                              in zip(batch, texts, strict=True)])
+        pending = send_each([(adapters[i].session, t) for (i, _), t
+                             in zip(batch, texts, strict=True)])
+        if k == 0 and between is not None:
+            try:
+                between()
+            except BaseException:
+                pending.abandon()
+                raise
+        replies = pending.read()
         for (i, parts), text, reply in zip(batch, texts, replies, strict=True):
             units = split_units(reply) if len(parts) > 1 else [reply]
             if len(units) != len(parts):
