@@ -11,7 +11,7 @@ import subprocess
 import sys
 
 import pytest
-from _engine_support import OPERATOR, scenario, write_bench, write_plan
+from _engine_support import OPERATOR, scenario, wait_for, write_bench, write_plan
 from sqlalchemy import create_engine, text
 
 from labrun.cli import main
@@ -107,8 +107,8 @@ def test_deferred_store_raises_what_the_thread_met(tmp_path):
     assert not (tmp_path / "z.db").exists()
     started = open_deferred(str(tmp_path / "w.db"))
     bench_opening()  # the engine starts opening the bench: the store opens meanwhile
-    started._thread.join(timeout=60)
-    assert (tmp_path / "w.db").exists() and started.url == f"sqlite:///{tmp_path / 'w.db'}"
+    assert wait_for(lambda: (tmp_path / "w.db").exists(), 60) is not None  # no use needed
+    assert started.url == f"sqlite:///{tmp_path / 'w.db'}"
     started.close()
 
 
