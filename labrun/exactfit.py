@@ -396,9 +396,10 @@ def fit_spool(runs_points: Sequence[Any], spool_length_km: float, loss_db_per_km
                 out[f"power_offset_{arm}"].warnings.append(
                     "prior: the documented default calibration uncertainty (no bench "
                     "calibration given)")
-    # Model error of each closed-form result: its distance from the exact one.
-    for cf, ex in (("gamma_small_signal", "gamma"), ("gamma_bessel", "gamma"),
-                   ("dispersion", "dispersion"), ("dispersion_slope", "dispersion_slope")):
+    # Model error of each closed-form gamma: its distance from the exact one. (The closed-form
+    # D and slope share their names with the exact results, which replace them; their values
+    # stay in the exact results' extra "closed_form_value".)
+    for cf, ex in (("gamma_small_signal", "gamma"), ("gamma_bessel", "gamma")):
         if cf in out and ex in out and math.isfinite(out[cf].value):
             r = out[cf]
             delta = abs(r.value - out[ex].value)
