@@ -12,8 +12,15 @@ it again, as before.
 from __future__ import annotations
 
 import queue
+import sys
 import threading
 from collections.abc import Callable
+
+# While a writer runs, a thread holding the GIL gives it up after this long (Python's default is
+# 5 ms): the run loop mostly waits on instrument replies, and each time one arrives it must get
+# the GIL back from the writer's Python work; 5 ms per reply was a third of a point at time
+# scale 0 (benchmarks/bench_engine.py).
+SWITCH_INTERVAL_S = 0.0005
 
 
 class PointWriter:
@@ -25,6 +32,8 @@ class PointWriter:
         self._idle.set()
         self._error: BaseException | None = None
         self._thread = threading.Thread(target=self._loop, name="labrun-writer", daemon=True)
+        self._switch_before = sys.getswitchinterval()
+        sys.setswitchinterval(min(self._switch_before, SWITCH_INTERVAL_S))
         self._thread.start()
 
     def _loop(self) -> None:
@@ -61,3 +70,5 @@ class PointWriter:
         finally:
             self._jobs.put(None)
             self._thread.join(timeout=60)
+            if sys.getswitchinterval() == min(self._switch_before, SWITCH_INTERVAL_S):
+                sys.setswitchinterval(self._switch_before)  # as it was, unless changed since
