@@ -52,6 +52,7 @@ from labrun.runstore import (
 )
 from labrun.safe_off import darken
 from labrun.scpi import NoAnswerError
+from labrun.setpoints import targets
 from labrun.settle import group_settles, setting_s, wait_s
 from labrun.shutdown import RunInterrupted, SafeOffGuard
 from labrun.store.kinds import FINISHED_STATUSES, RunStatus
@@ -383,35 +384,15 @@ class Runner:
 
     # ---- settings ----------------------------------------------------------------------------
     def settings_for(self, setpoint: dict[str, Any]) -> list[Setting]:
-        """Instrument settings of a point, each with the plan's settle time for its axes."""
+        """Instrument settings of a point (``labrun.setpoints``, the mapping the plan-time check
+        reads too), each with the plan's settle time for its axes."""
         from labrun import safety
 
         got = safety.instrument_settings({**setpoint, "amplifier": self.use_amplifier},
                                          self.bench)
-        # Plan setpoints carry both wavelengths (the plan derives tone b from the spacing).
-        wl_a, wl_b = setpoint["wavelength_a_nm"], setpoint["wavelength_b_nm"]
-        out: list[Setting] = []
-
-        def add(role: str, method: str, value: Any, group: str) -> None:
-            if value is None or role not in self.bench.instruments:
-                return
-            out.append(Setting(role, method, value, self.settle[group]))
-
-        add("laser_a", "set_wavelength_nm", wl_a, "wavelength_a")
-        add("laser_b", "set_wavelength_nm", wl_b, "wavelength_b")
-        add("attenuator_a", "set_wavelength_nm", wl_a, "wavelength_a")
-        add("attenuator_b", "set_wavelength_nm", wl_b, "wavelength_b")
-        add("laser_a", "set_power_dbm", got.laser_a_dbm, "power")
-        add("laser_b", "set_power_dbm", got.laser_b_dbm, "power")
-        add("attenuator_a", "set_attenuation_db", got.attenuation_a_db, "power")
-        add("attenuator_b", "set_attenuation_db", got.attenuation_b_db, "power")
-        add("amplifier", "set_power_dbm", got.amplifier_dbm, "power")
-        if setpoint.get("pol_angles_deg") is not None:
-            add("pol_controller", "set_angles_deg", tuple(setpoint["pol_angles_deg"]),
-                "pol_angles_deg")
-        if setpoint.get("pol_stokes") is not None:
-            add("pol_controller", "set_stokes", tuple(setpoint["pol_stokes"]), "pol_stokes")
-        return out
+        values = {**setpoint, **asdict(got)}  # what safety worked out wins over the setpoint
+        return [Setting(t.role, t.method, t.value, self.settle[t.group])
+                for t in targets(values, self.bench.instruments)]
 
     def write(self, settings: Sequence[Setting]) -> Pending:
         """Check every setting that changed (ranges, caps: nothing is sent if one fails), then

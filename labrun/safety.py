@@ -17,6 +17,7 @@ from typing import TYPE_CHECKING, Any
 from labrun.errors import SafetyError
 from labrun.plan import Plan, PointSpec, op_range, wavelength_b_nm
 from labrun.roles import SWEEP_ROLES
+from labrun.setpoints import profile_settings, targets
 
 if TYPE_CHECKING:
     from labrun.bench import Bench
@@ -171,6 +172,11 @@ def _amp_output_dbm(setpoint: Mapping[str, Any], bench: Bench) -> float:
     return _dbm(_mw(setpoint["power_a_dbm"]) + _mw(setpoint["power_b_dbm"])) + _amp_loss(bench)
 
 
+def _amp_setting(setpoint: Mapping[str, Any], bench: Bench) -> float:
+    """The amplifier output the engine commands for a setpoint (to 1 mdB)."""
+    return round(_amp_output_dbm(setpoint, bench), 3)
+
+
 def _att_range(bench: Bench, arm: str) -> tuple[float, float]:
     """Attenuation range of an arm's attenuator (0..60 dB when the profile says nothing)."""
     return op_range(bench, f"attenuator_{arm}", "set_attenuation_db") or (0.0, 60.0)
@@ -264,7 +270,7 @@ def _amplified(setpoint: Mapping[str, Any], bench: Bench,
                levels: Mapping[str, float]) -> tuple[dict[str, float], float, dict[str, float]]:
     """Attenuations (set the tone ratio into the amplifier) and amplifier output (the total)."""
     pa, pb = float(setpoint["power_a_dbm"]), float(setpoint["power_b_dbm"])
-    amp = round(_amp_output_dbm(setpoint, bench), 3)
+    amp = _amp_setting(setpoint, bench)
     _check_level(bench, "amplifier", amp)
     # Highest input each arm can give (attenuator at its minimum); weaken one to set the ratio.
     top = {a: levels[a] - _att_range(bench, a)[0] - _loss(bench, a) for a in ARMS}
@@ -373,22 +379,24 @@ def check_caps(plan: Plan, bench: Bench, *,
 def _point_violations(p: PointSpec, bench: Bench, laser_dbm: Mapping[str, float] | None, *,
                       amplifier: bool) -> Iterable[Violation]:
     """Caps and ranges broken by one point; ``amplifier`` is the plan's flag (plan.amplifier),
-    so the amplifier set-point is checked whatever the setpoint itself carries."""
+    so the amplifier set-point is checked whatever the setpoint itself carries. The ranges are
+    checked on the settings the engine will command (``labrun.setpoints``, the run's mapping)."""
     sp = {**p.setpoint, "amplifier": amplifier}
-    amp_capped = False
+    levels = {arm: laser_level(sp, bench, arm, laser_dbm) for arm in ARMS}
     for arm in ARMS:
-        role = f"laser_{arm}"
-        level = laser_level(sp, bench, arm, laser_dbm)
+        role, level = f"laser_{arm}", levels[arm]
         cap = _cap(bench, role)
         if cap is not None and level > cap + 1e-9:
             yield Violation("cap", f"{role}: level {level:.2f} dBm exceeds its bench cap "
                             f"{cap:.2f} dBm (point {p.index})", role=role, field="max_power_dbm",
                             value=level, limit=cap, point=p.index)
-        yield from _range(bench, role, "set_power_dbm", level, p.index, "dBm")
-        wl = sp["wavelength_a_nm"] if arm == "a" else sp["wavelength_b_nm"]
-        yield from _range(bench, role, "set_wavelength_nm", wl, p.index, "nm")
-        yield from _range(bench, f"attenuator_{arm}", "set_wavelength_nm", wl, p.index, "nm")
-    if sp.get("amplifier"):
+    # Without instrument_settings' answer (it refuses the point) the lasers' levels and the
+    # amplifier output are still checked against their ranges; the attenuations are not known.
+    commanded: dict[str, Any] = {**sp, "laser_a_dbm": levels["a"], "laser_b_dbm": levels["b"],
+                                 "attenuation_a_db": None, "attenuation_b_db": None,
+                                 "amplifier_dbm": None}
+    amp_capped = False
+    if amplifier:
         amp = _amp_output_dbm(sp, bench)
         cap = _cap(bench, "amplifier")
         if cap is not None and amp > cap + 1e-9:
@@ -397,31 +405,30 @@ def _point_violations(p: PointSpec, bench: Bench, laser_dbm: Mapping[str, float]
                             f"{cap:.2f} dBm (point {p.index})", role="amplifier",
                             field="max_power_dbm", value=round(amp, 3), limit=cap,
                             point=p.index)
-        yield from _range(bench, "amplifier", "set_power_dbm", amp, p.index, "dBm")
+        commanded["amplifier_dbm"] = _amp_setting(sp, bench)
     try:
-        instrument_settings(sp, bench, laser_dbm=laser_dbm)
+        commanded.update(asdict(instrument_settings(sp, bench, laser_dbm=laser_dbm)))
     except SafetyError as exc:
-        if amp_capped and str(exc).startswith("amplifier:"):
-            return  # the same amplifier cap, reported above with its role and field
-        kind = "cap" if "cap" in str(exc) else "range"
-        yield Violation(kind, f"{exc} (point {p.index})", role="attenuator",
-                        field="launched_power", point=p.index)
-    if sp.get("pol_angles_deg") is not None:
-        for i, ang in enumerate(sp["pol_angles_deg"]):
-            yield from _range(bench, "pol_controller", "set_angle_deg", ang, p.index, "deg",
-                              label=f"paddle {i + 1}")
-    if sp.get("pol_stokes") is not None:
-        for s in sp["pol_stokes"]:
-            yield from _range(bench, "pol_controller", "set_stokes", s, p.index, "")
+        # an amplifier failure after amp_capped is the same cap, reported above with its role
+        if not (amp_capped and str(exc).startswith("amplifier:")):
+            kind = "cap" if "cap" in str(exc) else "range"
+            yield Violation(kind, f"{exc} (point {p.index})", role="attenuator",
+                            field="launched_power", point=p.index)
+    for target in targets(commanded, bench.instruments):
+        for one in profile_settings(target.method, target.value):
+            yield from _range(bench, target.role, one.op, one.value, p.index, label=one.label)
 
 
-def _range(bench: Bench, role: str, op: str, value: float, point: int | None, unit: str,
-           label: str | None = None) -> Iterable[Violation]:
-    """A Violation when ``value`` lies outside the profile range of ``op`` on ``role``."""
+def _range(bench: Bench, role: str, op: str, value: float, point: int | None,
+           unit: str | None = None, label: str | None = None) -> Iterable[Violation]:
+    """A Violation when ``value`` lies outside the profile range of ``op`` on ``role`` (in
+    ``unit``, by default the operation's own)."""
     rng = op_range(bench, role, op)
     spec = bench.instruments.get(role)
     if rng is None or spec is not None and op not in spec.profile.operations:
         return
+    if unit is None:
+        unit = (spec.profile.operations[op].unit if spec is not None else None) or ""
     if not rng[0] - 1e-9 <= value <= rng[1] + 1e-9:
         what = f"{role} {label or op}"
         at = f" (point {point})" if point is not None else ""

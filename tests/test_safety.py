@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import dataclasses
 import math
 
 import pytest
@@ -172,3 +173,71 @@ def test_amplifier_set_point_above_its_cap_is_refused(tmp_path, capsys):
     # the same plan with the amplifier cap raised passes
     ok_bench = make_bench(tmp_path, name="ok.toml", amplifier=11.0, amp_loss=0.5)
     assert safety.check_caps(plan, ok_bench) == []
+
+
+def _narrowed(bench, role: str, op: str, value: float):
+    """``bench`` with ``role``'s operation ``op`` allowed only above ``value`` (invented range)."""
+    spec = bench.instruments[role]
+    ops = dict(spec.profile.operations)
+    ops[op] = ops[op].model_copy(update={"range": (value + 1.0, value + 2.0)})
+    profile = dataclasses.replace(spec.profile, operations=ops)
+    return dataclasses.replace(bench, instruments={
+        **bench.instruments, role: dataclasses.replace(spec, profile=profile)})
+
+
+def _run_refuses(plan, bench) -> bool:
+    """True when the run would refuse the plan's first point before sending anything: the
+    engine's settings for it (Runner.settings_for) refused by safety or by an adapter."""
+    from labrun.engine import RetryPolicy, Runner
+    from labrun.errors import InputError
+    from labrun.instruments import ADAPTERS
+    from labrun.shutdown import SafeOffGuard
+
+    runner = Runner(plan, bench, None, 0, SafeOffGuard(bench), policy=RetryPolicy())
+    try:
+        for s in runner.settings_for(plan.points()[0].setpoint):
+            spec = bench.instruments[s.role]
+            ADAPTERS[spec.kind](spec, None).planned(s.method, s.value)  # type: ignore[arg-type]
+    except (InputError, SafetyError):
+        return True
+    return False
+
+
+@pytest.mark.parametrize("amplifier", [False, True])
+def test_the_plan_check_refuses_what_the_run_would_refuse(tmp_path, amplifier):
+    """Each profile operation the run commands for a point is narrowed to exclude the value it
+    gets: the plan check (check_caps, no instrument opened) refuses the point exactly when the
+    run (the engine's settings on that bench, then the adapters' range checks) would, naming
+    the role's operation or the launched power it cannot reach. Invented values."""
+    from labrun.engine import RetryPolicy, Runner
+    from labrun.instruments import ADAPTERS
+    from labrun.shutdown import SafeOffGuard
+
+    head = BASE_PLAN + ("pol_angles_deg = [10.0, 20.0, 30.0]\n" if not amplifier else "")
+    if amplifier:
+        head = head.replace('spool = "HNLF-A17"', 'spool = "HNLF-A17"\namplifier = true')
+    bench = make_bench(tmp_path, amplifier=20.0 if amplifier else None)
+    plan = make_plan(tmp_path, POWERS, head=head)
+    assert safety.check_caps(plan, bench) == [] and not _run_refuses(plan, bench)
+    runner = Runner(plan, bench, None, 0, SafeOffGuard(bench), policy=RetryPolicy())
+    refused = set()
+    for s in runner.settings_for(plan.points()[0].setpoint):
+        spec = bench.instruments[s.role]
+        for planned in ADAPTERS[spec.kind](spec, None).planned(s.method, s.value):  # type: ignore[arg-type]
+            target = planned.target
+            op, value = planned.op.name, float(target[0] if isinstance(target, tuple) else target)
+            narrow = _narrowed(bench, s.role, op, value)
+            found = [(v.role, v.field) for v in safety.check_caps(plan, narrow) if v.point == 0]
+            assert bool(found) is _run_refuses(plan, narrow), (s, op, found)
+            if found:
+                assert (s.role, op) in found or ("attenuator", "launched_power") in found, found
+                refused.add((s.role, op))
+    # every operation, once narrowed, is refused by both; the amplified attenuations only set
+    # the tone ratio (a higher minimum moves both, and the point stays reachable)
+    ops = {(r, "set_wavelength_nm") for r in ("laser_a", "laser_b", "attenuator_a",
+                                              "attenuator_b")}
+    ops |= {("laser_a", "set_power_dbm"), ("laser_b", "set_power_dbm")}
+    ops |= {("amplifier", "set_power_dbm")} if amplifier else {
+        ("attenuator_a", "set_attenuation_db"), ("attenuator_b", "set_attenuation_db"),
+        ("pol_controller", "set_angle_deg")}
+    assert refused == ops

@@ -8,8 +8,8 @@ from typing import Any
 
 from labrun.errors import InputError
 from labrun.instruments.base import Adapter, PlannedSetting
+from labrun.setpoints import PADDLES, profile_settings
 
-PADDLES = (1, 2, 3)  # quarter, half, quarter wave (generic profile)
 NORM_TOLERANCE = 0.01
 
 
@@ -22,12 +22,13 @@ class PolControllerAdapter(Adapter):
         """Set the three paddles; every angle is range-checked before the first is sent."""
         if len(angles) != len(PADDLES):
             raise InputError(f"{self.role}: need {len(PADDLES)} paddle angles, got {len(angles)}")
-        op = self.profile.op("set_angle_deg")
-        for paddle, angle in zip(PADDLES, angles, strict=True):
-            self.check_value(op, angle)
-            self.check_index(op, paddle)
-        for paddle, angle in zip(PADDLES, angles, strict=True):
-            self.apply("set_angle_deg", angle, index=paddle)
+        paddles = profile_settings("set_angles_deg", angles)
+        for one in paddles:
+            op = self.profile.op(one.op)
+            self.check_value(op, one.value)
+            self.check_index(op, one.index)
+        for one in paddles:
+            self.apply(one.op, one.value, index=one.index)
 
     def angles_deg(self) -> tuple[float, float, float]:
         a, b, c = (self.read("read_angle_deg", index=p) for p in PADDLES)
@@ -45,8 +46,7 @@ class PolControllerAdapter(Adapter):
         if abs(norm - 1.0) > NORM_TOLERANCE:
             raise InputError(f"{self.role}: Stokes vector {tuple(stokes)} has length {norm:.3f}, "
                              "not 1")
-        s1, s2, s3 = (float(s) for s in stokes)
-        return {"s1": s1, "s2": s2, "s3": s3}
+        return {one.key: float(one.value) for one in profile_settings("set_stokes", stokes)}
 
     def planned(self, method: str, value: Any) -> list[PlannedSetting]:
         """As Adapter.planned: three paddle angles are three settings, a Stokes vector one."""
@@ -54,8 +54,8 @@ class PolControllerAdapter(Adapter):
             if len(value) != len(PADDLES):
                 raise InputError(f"{self.role}: need {len(PADDLES)} paddle angles, got "
                                  f"{len(value)}")
-            return [self.prepare("set_angle_deg", angle, index=paddle)
-                    for paddle, angle in zip(PADDLES, value, strict=True)]
+            return [self.prepare(one.op, one.value, index=one.index)
+                    for one in profile_settings(method, value)]
         if method == "set_stokes":
             return [self.prepare("set_stokes", values=self._stokes_values(value))]
         return super().planned(method, value)
