@@ -9,6 +9,7 @@ from __future__ import annotations
 import json
 import subprocess
 import sys
+from pathlib import Path
 
 import pytest
 from _engine_support import OPERATOR, scenario, wait_for, write_bench, write_plan
@@ -73,6 +74,22 @@ def test_a_newer_schema_is_refused_before_the_bench(tmp_path, lab, capsys):
 
 def test_a_missing_folder_is_refused_before_the_bench(tmp_path, lab, capsys):
     _refused(tmp_path, lab, capsys, tmp_path / "no" / "such" / "r.db", "does not exist")
+
+
+def test_a_folder_given_as_the_database_is_refused_before_the_bench(tmp_path, lab, capsys):
+    folder = tmp_path / "a_folder"
+    folder.mkdir()
+    _refused(tmp_path, lab, capsys, folder, "not a database file")
+
+
+def test_a_sqlite_url_into_a_missing_folder_is_refused_before_the_bench(tmp_path, lab, capsys):
+    _refused(tmp_path, lab, capsys, f"sqlite:///{tmp_path}/no/such/r.db", "does not exist")
+
+
+def test_a_place_labrun_may_not_write_is_refused_before_the_bench(tmp_path, lab, capsys):
+    # /proc refuses new files even to root (procfs, Linux proc(5)); nothing is left behind.
+    _refused(tmp_path, lab, capsys, "/proc/labrun-test.db", "cannot write")
+    assert not Path("/proc/labrun-test.db").exists()
 
 
 def test_precheck_accepts_new_and_current_stores(tmp_path):

@@ -4,8 +4,9 @@ starts when the engine starts opening the bench (``labrun.preload.bench_opening`
 store's first use, whichever comes first.
 
 ``open_deferred`` first checks the store the way ``open_store`` would refuse it, with the
-standard library only (a missing folder, a file that is not SQLite, a schema from a newer
-labrun: one line, exit 2, before any instrument is touched), then starts the thread. The
+standard library only (a missing folder, a folder given as the file, a place it may not write,
+a file that is not SQLite, a schema from a newer labrun: one line, exit 2, before any
+instrument is touched), then starts the thread. The
 ``DeferredStore`` it returns knows its URL at once (the guardian watcher needs it before the
 bench opens); any other use waits for the thread and goes to the real ``Store``, and an error
 the thread met is raised there. The engine's first store use is the run row, written once the
@@ -19,6 +20,7 @@ import os
 import sqlite3
 import threading
 from collections.abc import Callable
+from pathlib import Path
 from typing import Any
 
 from labrun.errors import InputError
@@ -89,11 +91,15 @@ def _open_store(where: str) -> Any:
 
 def precheck_sqlite(url_or_path: str | os.PathLike[str]) -> str:
     """The URL ``open_store`` would give a SQLite path or URL; InputError (exit 2) for what it
-    would refuse: a missing folder, a file that is not SQLite, a schema newer than this labrun's.
-    Read-only; a file that does not exist yet is fine (the run creates it)."""
+    would refuse: a missing folder (path or URL), a folder or device given as the file, a place
+    labrun may not write, a file that is not SQLite, a schema newer than this labrun's. Writes
+    nothing; a file that does not exist yet is fine (the run creates it)."""
     where = os.fspath(url_or_path)
     url, path = sqlite_location(url_or_path)
-    if path is None or not path.is_file() or path.stat().st_size == 0:
+    if path is None:
+        return url
+    _require_writable(path, where)
+    if not path.is_file() or path.stat().st_size == 0:
         return url
     try:
         con = sqlite3.connect(f"{path.resolve().as_uri()}?mode=ro", uri=True,
@@ -112,6 +118,29 @@ def precheck_sqlite(url_or_path: str | os.PathLike[str]) -> str:
     if len(found) == 1:
         require_known(str(found[0]), where)
     return url
+
+
+def _require_writable(path: Path, where: str) -> None:
+    """InputError unless ``path`` is a regular file labrun may write, or one it may create in an
+    existing folder it may write (SQLite writes its journal beside the file). Leaves nothing
+    behind: a file that does not exist yet is created and removed again."""
+    def refuse(what: str) -> InputError:
+        return InputError(what, file=where, field="--db")
+
+    if path.exists() and not path.is_file():
+        raise refuse(f"{path} is not a database file (a folder or a device)")
+    if not path.parent.is_dir():
+        raise refuse(f"folder {path.parent} does not exist")
+    try:
+        if path.exists():
+            os.close(os.open(path, os.O_RDWR))
+        else:
+            os.close(os.open(path, os.O_CREAT | os.O_EXCL | os.O_WRONLY, 0o644))
+            os.unlink(path)
+    except OSError as exc:
+        raise refuse(f"cannot write the database at {path} ({exc.strerror})") from None
+    if not os.access(path.parent, os.W_OK):
+        raise refuse(f"cannot write in folder {path.parent} (SQLite writes its journal there)")
 
 
 def open_deferred(url_or_path: str | os.PathLike[str], *,
