@@ -19,6 +19,7 @@ class InputError(LabrunError):
     exit_code = 2
 
     def __init__(self, message: str, *, file: str | None = None, field: str | None = None):
+        self.message = message
         self.file = file
         self.field = field
         where = ": ".join(p for p in (file, field) if p)

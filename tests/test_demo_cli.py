@@ -37,3 +37,32 @@ def test_demo_unwritable_output_is_one_line(tmp_path: Path, capsys: pytest.Captu
     err = capsys.readouterr().err.strip()
     assert code == 2
     assert len(err.splitlines()) == 1 and "--out" in err
+
+
+def test_an_interrupted_demo_ends_without_fits_or_report(tmp_path: Path) -> None:
+    """Ctrl-C in a demo at time scale 1: exit 130 soon after, the run 'interrupted' with what it
+    stored, and no fits or report written after the user asked to stop."""
+    import os
+    import signal
+    import subprocess
+    import sys
+    import time
+
+    out, db = tmp_path / "out", tmp_path / "demo.db"
+    env = {**os.environ, "PYTHONUNBUFFERED": "1"}
+    proc = subprocess.Popen([sys.executable, "-m", "labrun", "demo", "--out", str(out), "--db",
+                             str(db), "--time-scale", "1", "--no-progress"],
+                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, env=env)
+    try:
+        assert proc.stderr is not None
+        for line in proc.stderr:  # the run starts once the virtual lab is up
+            if line.startswith("virtual lab up"):
+                break
+        time.sleep(1.5)  # a point or two at time scale 1 (the lab's own sweep and settle times)
+        proc.send_signal(signal.SIGINT)
+        stdout, _ = proc.communicate(timeout=60)
+    finally:
+        proc.kill()
+    assert proc.returncode == 130, stdout
+    assert "interrupted" in stdout and "no fits and no report" in stdout
+    assert not (out / "report.html").exists() and not (out / "fits.json").exists()

@@ -132,7 +132,7 @@ def _one_line_error(capsys, argv, *words):
 
 
 def test_bad_fit_requests(power_db, capsys):
-    _one_line_error(capsys, ["fit", "99", "--db", power_db], "no run 99")
+    _one_line_error(capsys, ["fit", "99", "--db", power_db], "no run 99", f"{power_db}: RUN_ID")
     store = open_store(power_db)
     try:  # a run of another spool, recorded directly
         other = store.spool_id("SMF-B02")

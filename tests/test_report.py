@@ -117,7 +117,7 @@ def test_report_commands(demo, tmp_path: Path, capsys) -> None:
     assert "Fits over time" in text and "data:image/png;base64," in text
     capsys.readouterr()
     for argv, word in ((["report", "--db", db], "RUN_ID"),
-                       (["report", "9", "--db", db], "no run 9"),
+                       (["report", "9", "--db", db], f"{db}: RUN_ID: no run 9"),
                        (["report", "--spool", "NOPE", "--db", db], "NOPE"),
                        (["report", "1", "--db", db, "--out", str(tmp_path / "x" / "r.html")],
                         "--out")):

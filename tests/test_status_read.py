@@ -137,3 +137,31 @@ def test_status_never_writes_the_store(tmp_path, capsys):
     assert main(["status", "--db", str(db), "--json"]) == 0
     assert json.loads(capsys.readouterr().out)["points_done"] == 3
     assert db.read_bytes() == before
+
+
+def test_status_says_the_process_died_when_the_guardian_darkened_the_bench(db_url):
+    """A run killed outright stays 'running' in the store; the guardian watcher's event
+    (labrun/guardian.py) is what status shows then, with no ETA and no stale-heartbeat advice;
+    a resume that beats again after it clears the warning. Same on both read paths."""
+    store = open_store(db_url)
+    try:
+        run_id = _fill(store)  # heartbeat 12.25 s before NOW, well inside the stale limit
+        orm, fast = _both(db_url, run_id)
+        assert fast["process_died"] is None and fast["eta_s"] is not None
+        store.update_run(run_id, heartbeat_at=datetime.now(UTC) - timedelta(seconds=5))
+        store.add_event(run_id, "guardian", "the run process (pid 4242) ended without its own "
+                        "safe-off; the guardian darkened the bench in 0.04 s: every source off")
+        orm, fast = _both(db_url, run_id)
+        assert json.dumps(orm, sort_keys=True) == json.dumps(fast, sort_keys=True)
+        assert _text(orm) == _text(fast)
+        assert fast["process_died"]["message"].startswith("the run process (pid 4242)")
+        assert fast["eta_s"] is None and not fast["stale"]
+        text = _text(fast)
+        assert "the run process died" in text and f"labrun resume {run_id}" in text
+        assert "ETA" not in text
+        store.update_run(run_id, heartbeat_at=datetime.now(UTC) + timedelta(seconds=1))
+        _, resumed = _both(db_url, run_id)
+        assert resumed["process_died"] is None and "died" not in _text(resumed)
+    finally:
+        store.close()
+

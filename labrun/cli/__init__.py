@@ -18,7 +18,7 @@ import sys
 from collections.abc import Mapping, Sequence
 from typing import Any, NoReturn
 
-from labrun.errors import LabrunError
+from labrun.errors import InputError, LabrunError
 
 # Command groups, each in its own module (labrun/cli/<name>.py). A module that does not exist yet
 # is skipped so the tree can grow one group at a time.
@@ -101,6 +101,15 @@ def _silence_stdout() -> None:
         os.close(devnull)
 
 
+def _naming_the_store(exc: LabrunError, args: argparse.Namespace) -> LabrunError:
+    """An InputError about a run or spool the database lacks names the database it looked in
+    (the one-line rule: file and field), which the store layer itself does not know."""
+    db = getattr(args, "db", None)
+    if isinstance(exc, InputError) and exc.file is None and exc.field in ("RUN_ID", "LABEL") and db:
+        return InputError(exc.message, file=str(db), field=exc.field)
+    return exc
+
+
 def _main(argv: Sequence[str] | None, overrides: Mapping[str, Any]) -> int:
     """Parse the arguments and run the command's function; labrun's own errors become one line."""
     parser = build_parser()
@@ -118,7 +127,7 @@ def _main(argv: Sequence[str] | None, overrides: Mapping[str, Any]) -> int:
     try:
         return int(args.func(args) or 0)
     except LabrunError as exc:
-        print(f"labrun: error: {exc}", file=sys.stderr)
+        print(f"labrun: error: {_naming_the_store(exc, args)}", file=sys.stderr)
         return exc.exit_code
     except KeyboardInterrupt:
         print("labrun: interrupted", file=sys.stderr)

@@ -88,6 +88,14 @@ def cmd_demo(args: argparse.Namespace) -> int:
             outcome = run_plan(plan, bench, store, operator="demo (virtual lab)",
                                unattended=True, ack_safety=True,
                                progress=not (args.no_progress or args.json))
+        if outcome.status == "interrupted":  # Ctrl-C: the user wants out, not fits and plots
+            if args.json:
+                print(json.dumps({"run": outcome.to_dict()}, indent=2))
+            else:
+                print(f"run {outcome.run_id}: interrupted, {outcome.points_done}/"
+                      f"{outcome.points_total} points stored in {args.db} (no fits and no "
+                      "report for an interrupted demo)")
+            return outcome.exit_code
         report = _fit_and_plot(store, outcome.run_id, scenario, bench, out)
         page = _write_report(store, outcome.run_id, out)
         report["report"] = str(page)

@@ -55,8 +55,10 @@ def status_report(summary: dict[str, Any], *, now: Any = None) -> dict[str, Any]
     running = run.status == "running"
     age = (now - run.heartbeat_at).total_seconds() if run.heartbeat_at else None
     stale_limit = max(STALE_AFTER_S, STALE_POINTS * (pace or 0.0))
-    stale = bool(running and (age is None or age > stale_limit))
-    eta = pace * (total - done) if running and pace is not None and not stale else None
+    died = _died(running, summary.get("guardian"), run.heartbeat_at)
+    stale = bool(running and died is None and (age is None or age > stale_limit))
+    eta = (pace * (total - done) if running and pace is not None and not stale and died is None
+           else None)
     last = summary["last_point"]
     last_fault = summary["last_fault"]
     return {
@@ -68,7 +70,7 @@ def status_report(summary: dict[str, Any], *, now: Any = None) -> dict[str, Any]
         "replay_of": run.replay_of,
         "started_at": run.started_at.isoformat() if run.started_at else None,
         "finished_at": run.finished_at.isoformat() if run.finished_at else None,
-        "heartbeat_age_s": age, "stale": stale,
+        "heartbeat_age_s": age, "stale": stale, "process_died": died,
         "faults": summary["faults"],
         "last_fault": None if last_fault is None else {
             "at": last_fault.at.isoformat(), "role": last_fault.role,
@@ -82,6 +84,16 @@ def status_report(summary: dict[str, Any], *, now: Any = None) -> dict[str, Any]
                       for ln in summary["last_lines"]],
         },
     }
+
+
+def _died(running: bool, guardian: Any, heartbeat_at: Any) -> dict[str, Any] | None:
+    """The guardian watcher's event when it says the run process died with this run still
+    ``running`` in the store and no heartbeat since (a resumed run beats again), else None."""
+    if not running or guardian is None:
+        return None
+    if heartbeat_at is not None and guardian.at is not None and heartbeat_at > guardian.at:
+        return None  # resumed since: a live process is behind the run again
+    return {"at": guardian.at.isoformat() if guardian.at else None, "message": guardian.message}
 
 
 def with_fallback(rep: dict[str, Any], url: str) -> dict[str, Any]:
@@ -136,7 +148,12 @@ def _text(rep: dict[str, Any]) -> str:
         out.append(f"  VIRTUAL replay of run {rep['replay_of']} (no light was emitted)")
     out.append(f"  points   {rep['points_done']}/{rep['points_total']}"
                + (f" ({rep['percent']}%)" if rep["percent"] is not None else ""))
-    if rep["status"] == "running":
+    died = rep.get("process_died")
+    if died:
+        out.append(f"  WARNING: the run process died; {died['message']}. Run 'labrun resume "
+                   f"{rep['run_id']}' to continue it ('labrun show {rep['run_id']}' lists its "
+                   "events).")
+    if rep["status"] == "running" and not died:
         out.append(f"  ETA      {_fmt_s(rep['eta_s'])}"
                    + (f" at {rep['seconds_per_point']:.2f} s/point"
                       + (" (estimated)" if rep.get("pace_source") == "estimate" else "")

@@ -212,7 +212,8 @@ class Store:
             return list(s.scalars(q.order_by(Event.id)))
 
     def summary(self, run_id: int, *, recent: int = 20) -> dict[str, Any] | None:
-        """What ``labrun status`` shows: run row, counts, pace, last point and its lines, faults."""
+        """What ``labrun status`` shows: run row, counts, pace, last point and its lines, faults,
+        the guardian watcher's last event."""
         with self.session() as s:
             run = s.get(Run, run_id)
             if run is None:
@@ -232,12 +233,15 @@ class Store:
             last_fault = s.scalars(select(Event).where(Event.run_id == run_id,
                                                        Event.kind == "fault")
                                    .order_by(Event.id.desc()).limit(1)).first()
+            guardian = s.scalars(select(Event).where(Event.run_id == run_id,
+                                                     Event.kind == "guardian")
+                                 .order_by(Event.id.desc()).limit(1)).first()
             gaps = [(a - b).total_seconds() for a, b in zip(times, times[1:], strict=False)]
             return {
                 "run": run, "points_done": done,
                 "seconds_per_point": float(statistics.median(gaps)) if gaps else None,
                 "last_point": last, "last_lines": last_lines, "faults": faults,
-                "last_fault": last_fault,
+                "last_fault": last_fault, "guardian": guardian,
             }
 
     # ----- points -----------------------------------------------------------------------------

@@ -73,7 +73,7 @@ class LineView:
 
 @dataclass(frozen=True)
 class FaultView:
-    """The last fault event of a run."""
+    """The last fault (or guardian) event of a run."""
 
     at: datetime
     role: str | None
@@ -97,6 +97,8 @@ _LINES = ('SELECT lines.kind, lines.side, lines."order", lines.power_dbm, lines.
 _FAULTS = "SELECT count(id) FROM events WHERE run_id = :run_id AND kind = 'fault'"
 _LAST_FAULT = ("SELECT at, role, message FROM events WHERE run_id = :run_id AND kind = 'fault' "
                "ORDER BY id DESC LIMIT 1")
+_LAST_GUARDIAN = ("SELECT at, role, message FROM events WHERE run_id = :run_id "
+                  "AND kind = 'guardian' ORDER BY id DESC LIMIT 1")
 
 
 def _utc(value: Any) -> datetime | None:
@@ -125,7 +127,8 @@ def latest_run_id(query: Query) -> int | None:
 
 def summary(query: Query, run_id: int, *, recent: int = 20) -> dict[str, Any] | None:
     """What ``labrun status`` shows, as ``Store.summary`` returns it: run, counts, pace, last
-    point and its output lines, faults (rows as the *View classes above)."""
+    point and its output lines, faults, the guardian watcher's last event (rows as the *View
+    classes above)."""
     rows = query(_RUN, {"run_id": run_id})
     if not rows:
         return None
@@ -151,13 +154,17 @@ def summary(query: Query, run_id: int, *, recent: int = 20) -> dict[str, Any] | 
     last_fault = None if not fault_rows else FaultView(
         at=_utc(fault_rows[0][0]), role=fault_rows[0][1],  # type: ignore[arg-type]
         message=fault_rows[0][2])
+    guardian_rows = query(_LAST_GUARDIAN, {"run_id": run_id})
+    guardian = None if not guardian_rows else FaultView(
+        at=_utc(guardian_rows[0][0]), role=guardian_rows[0][1],  # type: ignore[arg-type]
+        message=guardian_rows[0][2])
     gaps = [(a - b).total_seconds() for a, b in zip(times, times[1:], strict=False)
             if a is not None and b is not None]
     return {
         "run": run, "points_done": int(done or 0),
         "seconds_per_point": float(statistics.median(gaps)) if gaps else None,
         "last_point": last, "last_lines": last_lines, "faults": int(faults or 0),
-        "last_fault": last_fault,
+        "last_fault": last_fault, "guardian": guardian,
     }
 
 
