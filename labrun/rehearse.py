@@ -287,7 +287,7 @@ def sweep_time(plan: Plan, bench: Bench) -> tuple[float, str]:
     if plan.osa.sweep_s is not None:
         return seconds, "plan (osa.sweep_s)"
     if getattr(bench.instruments.get("osa"), "sweep_time", None) is not None:
-        return seconds, "measured by labrun probe (bench file)"
+        return seconds, "bench file (measured by labrun probe)"
     if osa_sweep_model(bench) is not None:
         return seconds, "osa profile"
     return seconds, "rough estimate (no sweep_time in the osa profile)"

@@ -72,8 +72,11 @@ def test_probe_measures_the_sweep_and_check_uses_it(tmp_path, capsys):
     assert model.per_span_rbw_s == pytest.approx(5e-4 * TIME_SCALE, rel=0.25)
     assert model.fixed_s == pytest.approx(0.05 * TIME_SCALE, abs=0.02)
     measured, source = sweep_time(plan, stored)
-    assert source == "measured by labrun probe (bench file)"
+    assert source == "bench file (measured by labrun probe)"
     assert measured == pytest.approx(truth, rel=0.15)  # was off by more than 1.5 s
+    # labrun check says where its sweep time comes from
+    main(["check", str(tmp_path / "plan.toml"), "--bench", str(path)])
+    assert "from the bench file (measured by labrun probe)" in capsys.readouterr().out
 
 
 def test_solve_recovers_a_known_model():
