@@ -1110,6 +1110,14 @@ def resume_run(run_id: int, store: AnyStore, *, bench: Bench | None = None, forc
     if run.status == RunStatus.RUNNING and process_alive(run):
         raise SafetyError(f"run {run_id} is still running (pid {run.pid} on {run.host}); "
                           "--force does not override this")
+    if run.pid and run.host == socket.gethostname():
+        from labrun.guardian import wait_for_watchers_of
+
+        left = wait_for_watchers_of(int(run.pid))  # a killed run's watcher may be darkening
+        if left:
+            raise SafetyError(f"the watcher of run {run_id}'s killed process (pid "
+                              f"{', '.join(map(str, left))}) is still darkening the bench; "
+                              "resume once it has finished")
     if bench is None:
         if not run.bench_path or not Path(run.bench_path).is_file():
             raise InputError(f"the run's bench file {run.bench_path} is gone; give --bench",

@@ -33,6 +33,7 @@ log.addHandler(logging.NullHandler())
 
 LIT, DONE = "lit", "done"
 WAIT_S = 2.0  # longest wait for the watcher to leave after ``done`` (it leaves at once)
+WATCHER_WAIT_S = 15.0  # longest wait of a resume for a killed run's watcher to finish darkening
 
 
 class Guardian:
@@ -93,6 +94,39 @@ def start(bench: Bench, db_url: str) -> Guardian | None:
     except OSError as exc:
         log.warning("the guardian watcher did not take the bench: %s", exc)
     return Guardian(proc, write_fd)
+
+
+def watchers_of(parent: int) -> list[int]:
+    """Pids of watcher processes still alive on this host that run process ``parent`` started
+    (read from /proc on Linux; elsewhere none are found and a resume does not wait)."""
+    proc = Path("/proc")
+    if not proc.is_dir():
+        return []
+    found = []
+    for entry in proc.iterdir():
+        if not entry.name.isdigit():
+            continue
+        try:
+            argv = (entry / "cmdline").read_bytes().split(b"\0")
+        except OSError:
+            continue  # gone meanwhile, or not ours to read
+        if b"labrun.guardian" in argv and b"--parent" in argv:
+            i = argv.index(b"--parent")
+            if i + 1 < len(argv) and argv[i + 1] == str(parent).encode("ascii"):
+                found.append(int(entry.name))
+    return found
+
+
+def wait_for_watchers_of(parent: int, timeout_s: float = WATCHER_WAIT_S) -> list[int]:
+    """Wait until no watcher of run process ``parent`` is left (it may still be darkening the
+    bench after a kill; a resume that switched on before it finished would be darkened
+    mid-point); the pids still alive after ``timeout_s``."""
+    deadline = time.monotonic() + timeout_s
+    left = watchers_of(parent)
+    while left and time.monotonic() < deadline:
+        time.sleep(0.05)
+        left = watchers_of(parent)
+    return left
 
 
 # ---- the watcher process ------------------------------------------------------------------

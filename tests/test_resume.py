@@ -291,3 +291,54 @@ def test_a_run_that_failed_mid_sweep_resumes_to_the_full_point_set(tmp_path, dia
         keys = s.scalars(select(Point.key).where(Point.run_id == run_id)).all()
     expected = [p.key for p in load_plan(plan_path).points()]
     assert len(keys) == len(set(keys)) == len(expected) and set(keys) == set(expected)
+
+
+def test_resume_waits_for_the_killed_runs_watcher_to_finish(tmp_path):
+    """A killed run's guardian watcher (labrun/guardian.py) may still be darkening the bench
+    when someone resumes at once: the resume waits for it before it opens the bench, else the
+    watcher would switch off the resumed run's light mid-point. A stand-in watcher process for
+    a dead run process lives 0.8 s; the resume's first event must come after it ended."""
+    import subprocess
+    import sys
+    import threading
+    from datetime import UTC, datetime
+
+    from labrun.bench import load_bench
+    from labrun.engine import Seams, resume_run, run_plan
+    from labrun.guardian import wait_for_watchers_of, watchers_of
+    from labrun.vlab.lab import VirtualLab
+
+    dead = subprocess.Popen([sys.executable, "-c", "pass"])
+    dead.wait()  # a pid no process has any more: the killed run's
+    stand_in = subprocess.Popen([sys.executable, "-c", "import time; time.sleep(0.8)",
+                                 "labrun.guardian", "--parent", str(dead.pid)])
+    ended: dict[str, datetime] = {}
+
+    def stop(*args, **kwargs):
+        raise RuntimeError("stop")
+
+    def note_end() -> None:
+        stand_in.wait()
+        ended["at"] = datetime.now(UTC)
+
+    with VirtualLab(scenario()) as lab:
+        plan_path = write_plan(tmp_path, long_powers(2))
+        bench = load_bench(write_bench(lab, tmp_path))
+        store = open_store(tmp_path / "runs.db")
+        with pytest.raises(RuntimeError, match="stop"):
+            run_plan(load_plan(plan_path), bench, store, operator=OPERATOR, unattended=True,
+                     ack_safety=True, progress=False,
+                     seams=Seams(reduce_trace=stop))
+        run_id = store.latest_run_id()
+        store.update_run(run_id, status="running", pid=dead.pid)  # as a SIGKILL leaves it
+        assert watchers_of(dead.pid) == [stand_in.pid]
+        assert wait_for_watchers_of(dead.pid, 0.05) == [stand_in.pid]  # still there
+        waiter = threading.Thread(target=note_end)
+        waiter.start()
+        out = resume_run(run_id, store, operator=RESUMER, unattended=True, ack_safety=True,
+                         progress=False)
+        waiter.join()
+        assert out.status == "completed" and dark(lab)
+    events = store.events(run_id, ["resume"])
+    assert events and events[0].at >= ended["at"], (events[0].at, ended["at"])
+    assert watchers_of(dead.pid) == []
