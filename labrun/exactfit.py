@@ -26,9 +26,9 @@ from labrun.fits import (
     LIMIT_PREFIX,
     FitResult,
     PolFrame,
-    _copolar,
-    _first_sideband_efficiency,
+    copolar_fractions,
     dispersion_of,
+    first_sideband_efficiency,
     fit_run,
     nl_power_w,
     points_table,
@@ -118,7 +118,7 @@ def _corrections(t: dict[str, np.ndarray], cop: np.ndarray, fibre: Fibre, lam_re
             exact_lo = w[ks.index(-1)] / w[ks.index(0)]
             closed = []
             for side in ("high", "low"):
-                eta = _first_sideband_efficiency(
+                eta = first_sideband_efficiency(
                     np.array([key[1]]), np.array([key[0]]), np.array([side]), fibre.length_km,
                     fibre.loss_db_per_km, fibre.dispersion_ps_per_nm_km,
                     fibre.dispersion_slope_ps_per_nm2_km, lam_ref,
@@ -328,7 +328,7 @@ def fit_spool(runs_points: Sequence[Any], spool_length_km: float, loss_db_per_km
     theta = _params(closed, dispersion_ps_per_nm_km, slope_ps_per_nm2_km)
     if theta is None or "spacing_ghz" not in t:
         return closed
-    cop, _ = _copolar(t, n, polarisation)
+    cop, _ = copolar_fractions(t, n, polarisation)
     current = closed
     history = [theta]
     unc = uncertainties or Uncertainties()

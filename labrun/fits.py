@@ -170,8 +170,8 @@ class PolFrame:
 CONTROLLERS = ("quarter-half-quarter",)
 
 
-def _copolar(t: Mapping[str, np.ndarray], n: int,
-             frame: PolFrame | None = None) -> tuple[np.ndarray, list[str]]:
+def copolar_fractions(t: Mapping[str, np.ndarray], n: int,
+                      frame: PolFrame | None = None) -> tuple[np.ndarray, list[str]]:
     """Co-polarised fraction (1 + s_a.s_b)/2 per point, and what was assumed or is missing.
 
     Read from, in order: ``copolar``; ``pol_stokes_a``/``pol_stokes_b``; ``pol_stokes`` (tone
@@ -398,11 +398,11 @@ def fit_gamma_bessel(p_a_w, p_b_w, low1_w, tone_a_w, tone_b_w, high1_w, l_eff_km
 # Small-signal FWM (Inoue 1992): gamma and dispersion
 
 
-def _first_sideband_efficiency(spacing_ghz: np.ndarray, wavelength_a_nm: np.ndarray,
-                               side: np.ndarray, length_km: float, loss_db_per_km: float,
-                               dispersion: float, slope: float,
-                               reference_wavelength_nm: float,
-                               nl_per_km: np.ndarray | float = 0.0) -> np.ndarray:
+def first_sideband_efficiency(spacing_ghz: np.ndarray, wavelength_a_nm: np.ndarray,
+                              side: np.ndarray, length_km: float, loss_db_per_km: float,
+                              dispersion: float, slope: float,
+                              reference_wavelength_nm: float,
+                              nl_per_km: np.ndarray | float = 0.0) -> np.ndarray:
     """Inoue efficiency of each point's first sideband for a fibre with D and S at the reference.
 
     The phase mismatch is the physics module's (beta2, beta3 at tone a from D(lambda), S), plus
@@ -972,7 +972,7 @@ def _fit_table(t: dict[str, np.ndarray], spool_length_km: float, loss_db_per_km:
     spacing = _col(t, "spacing_ghz", n)
     lam = _col(t, "wavelength_a_nm", n, reference_wavelength_nm)
     lam = np.where(np.isnan(lam), reference_wavelength_nm, lam)
-    cop, pol_notes = _copolar(t, n, polarisation)
+    cop, pol_notes = copolar_fractions(t, n, polarisation)
     known = np.isfinite(cop)
     lines = {k: dbm_to_w(v) for k, v in t.items() if LINE_KEY.match(k)}
     nan = np.full(n, np.nan)
@@ -1031,7 +1031,7 @@ def _fit_table(t: dict[str, np.ndarray], spool_length_km: float, loss_db_per_km:
         w_hi = nl_power_w(p_a, p_b, "high")
 
         def eta_hi(g: float, d=d_known, s=s_known, w=w_hi) -> np.ndarray:
-            return _first_sideband_efficiency(spacing, lam, np.full(n, "high"), spool_length_km,
+            return first_sideband_efficiency(spacing, lam, np.full(n, "high"), spool_length_km,
                                               loss_db_per_km, d, s, reference_wavelength_nm,
                                               g * w)
         u, v = _mismatch_basis(spacing, lam, np.full(n, "high"), spool_length_km,

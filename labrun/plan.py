@@ -31,7 +31,6 @@ from labrun.osa_auto import GAUSS_DB as GAUSS_DB
 from labrun.osa_auto import POINT_STEPS as POINT_STEPS
 from labrun.osa_auto import RBW_STEPS_NM as RBW_STEPS_NM
 from labrun.osa_auto import OsaSettings, choose_osa_settings, estimate_sweep_s
-from labrun.osa_auto import _osa_range as _osa_range
 from labrun.osa_auto import op_range as op_range
 from labrun.osa_auto import op_settle as op_settle
 from labrun.osa_auto import osa_sweep_model as osa_sweep_model
@@ -42,18 +41,17 @@ from labrun.plan_expand import (
     ITU_GRIDS_GHZ,
     Axis,
     PointSpec,
-    _interleave,
-    _is_number,
-    _snake,
-    _tidy,
+    interleave,
+    is_number,
     itu_grid_thz,
     line_extent_nm,
     point_key,
+    snake_order,
     spacing_nm_to_ghz,
+    tidy,
     wavelength_b_nm,
 )
 from labrun.plan_expand import KEY_FIELDS as KEY_FIELDS
-from labrun.plan_expand import _fmt as _fmt
 from labrun.plan_model import LINE_RANGE_NM as LINE_RANGE_NM
 from labrun.plan_model import MAX_POINTS as MAX_POINTS
 from labrun.plan_model import MAX_VALUES_PER_AXIS as MAX_VALUES_PER_AXIS
@@ -62,7 +60,6 @@ from labrun.plan_model import MetaSpec as MetaSpec
 from labrun.plan_model import OrderSpec as OrderSpec
 from labrun.plan_model import OsaSpec as OsaSpec
 from labrun.plan_model import SpoolSpec as SpoolSpec
-from labrun.plan_model import _Strict as _Strict
 from labrun.resources import find_file
 from labrun.stops import StopCondition, StopWatch
 
@@ -203,7 +200,7 @@ class Plan:
         for name, value in fixed.items():
             path = f"fixed.{name}"
             if name == "grid_ghz":
-                if not _is_number(value) or float(value) not in ITU_GRIDS_GHZ:
+                if not is_number(value) or float(value) not in ITU_GRIDS_GHZ:
                     raise _fail(self.file, path, f"must be one of {list(ITU_GRIDS_GHZ)} "
                                 "(ITU-T G.694.1 fixed grids)")
                 out[name] = float(value)
@@ -219,15 +216,15 @@ class Plan:
         kind, lo, hi, unit = VARIABLES[name]
         if kind in ("triple", "stokes"):
             if (not isinstance(value, (list, tuple)) or len(value) != 3
-                    or not all(_is_number(v) for v in value)):
+                    or not all(is_number(v) for v in value)):
                 raise _fail(self.file, path, "must be a list of three numbers")
-            vals = tuple(_tidy(float(v)) for v in value)
+            vals = tuple(tidy(float(v)) for v in value)
             if any(not lo <= v <= hi for v in vals):
                 raise _fail(self.file, path, f"each component must lie in [{lo:g}, {hi:g}]")
             if kind == "stokes" and abs(math.sqrt(sum(v * v for v in vals)) - 1.0) > 1e-3:
                 raise _fail(self.file, path, "Stokes vector (s1, s2, s3) must have unit length")
             return vals
-        if not _is_number(value):
+        if not is_number(value):
             raise _fail(self.file, path, "must be a number")
         v = float(value)
         if kind == "int":
@@ -237,7 +234,7 @@ class Plan:
         if not lo <= v <= hi:
             raise _fail(self.file, path, f"{value} {unit} is outside the sane range "
                         f"[{lo:g}, {hi:g}] {unit}")
-        return _tidy(v) if isinstance(v, float) else v
+        return tidy(v) if isinstance(v, float) else v
 
     def _validate_axis(self, name: str, spec: AxisSpec) -> Axis:
         """Expand one axis into its values and check them."""
@@ -289,7 +286,7 @@ class Plan:
         idx = {"s1s2": (0, 1), "s1s3": (0, 2), "s2s3": (1, 2)}[plane]
         vec = [0.0, 0.0, 0.0]
         vec[idx[0]], vec[idx[1]] = c, s
-        return tuple(_tidy(v) + 0.0 for v in vec)  # type: ignore[return-value]
+        return tuple(tidy(v) + 0.0 for v in vec)  # type: ignore[return-value]
 
     def _form(self, spec: AxisSpec, path: str) -> str:
         """Which form an axis uses: 'values', 'num' or 'step'; rejects mixtures."""
@@ -352,13 +349,13 @@ class Plan:
                 if any(float(v) != round(float(v)) for v in raw):
                     raise _fail(self.file, f"{path}.step", "must give whole numbers")
                 return [int(round(float(v))) for v in raw]
-        return [_tidy(float(v)) for v in raw]
+        return [tidy(float(v)) for v in raw]
 
     def _plain_number(self, value: Any, path: str) -> float:
         """A bare number (used for paddle angles and great-circle angles)."""
-        if not _is_number(value):
+        if not is_number(value):
             raise _fail(self.file, path, "must be a number")
-        return _tidy(float(value))
+        return tidy(float(value))
 
     def _check_defined(self) -> None:
         """Each quantity must be set exactly one way, across [fixed] and [axes]."""
@@ -453,7 +450,7 @@ class Plan:
         if total * self.spec.order.repeats > MAX_POINTS:
             raise _fail(self.file, "axes", f"{total * self.spec.order.repeats} points; at most "
                         f"{MAX_POINTS}")
-        return list(_snake(sizes) if self.spec.order.snake else np.ndindex(*sizes))
+        return list(snake_order(sizes) if self.spec.order.snake else np.ndindex(*sizes))
 
     def _assignment(self, combo: Sequence[int]) -> dict[str, Any]:
         """Plan variables (fixed plus the axes' values) for one combo."""
@@ -480,7 +477,7 @@ class Plan:
         seq: list[tuple[dict[str, Any], int, bool]] = regular
         if order.reference_every is not None:
             ref = self._reference()
-            seq = _interleave(regular, ref, order.reference_every)
+            seq = interleave(regular, ref, order.reference_every)
         elif order.reference:
             raise _fail(self.file, "order.reference", "needs order.reference_every")
         points = []
@@ -520,12 +517,12 @@ class Plan:
         else:
             sp = v["spacing_steps"] * grid
         self._check_lines(wl, sp, where)
-        out: dict[str, Any] = {"wavelength_a_nm": _tidy(wl), "spacing_ghz": _tidy(sp),
-                               "wavelength_b_nm": _tidy(wavelength_b_nm(wl, sp))}
+        out: dict[str, Any] = {"wavelength_a_nm": tidy(wl), "spacing_ghz": tidy(sp),
+                               "wavelength_b_nm": tidy(wavelength_b_nm(wl, sp))}
         if "total_power_dbm" in v:
             r = v["ratio_db"]
             pa = v["total_power_dbm"] - 10.0 * math.log10(1.0 + 10.0 ** (r / 10.0))
-            out["power_a_dbm"], out["power_b_dbm"] = _tidy(pa), _tidy(pa + r)
+            out["power_a_dbm"], out["power_b_dbm"] = tidy(pa), tidy(pa + r)
         for arm in ("a", "b"):
             for name in (f"power_{arm}_dbm", f"attenuation_{arm}_db", f"laser_{arm}_dbm"):
                 if name in v:

@@ -98,29 +98,29 @@ def _fmt(value: Any) -> str:
     return str(value)
 
 
-def _tidy(v: float) -> float:
+def tidy(v: float) -> float:
     """Round away float noise (12 significant digits) so keys and JSON stay clean."""
     return float(f"{v:.12g}")
 
 
-def _is_number(v: Any) -> bool:
+def is_number(v: Any) -> bool:
     """True for int/float (not bool) and finite."""
     return isinstance(v, (int, float)) and not isinstance(v, bool) and math.isfinite(v)
 
 
-def _snake(sizes: Sequence[int]) -> Iterator[tuple[int, ...]]:
+def snake_order(sizes: Sequence[int]) -> Iterator[tuple[int, ...]]:
     """Reflected (boustrophedon) order: between neighbours only one level index moves by one."""
     if not sizes:
         yield ()
         return
-    inner = list(_snake(sizes[1:]))
+    inner = list(snake_order(sizes[1:]))
     for i in range(sizes[0]):
         for rest in (inner if i % 2 == 0 else reversed(inner)):
             yield (i, *rest)
 
 
-def _interleave(regular: list[tuple[dict[str, Any], int, bool]], ref: dict[str, Any],
-                every: int) -> list[tuple[dict[str, Any], int, bool]]:
+def interleave(regular: list[tuple[dict[str, Any], int, bool]], ref: dict[str, Any],
+               every: int) -> list[tuple[dict[str, Any], int, bool]]:
     """Reference point first, after every ``every`` regular points, and last."""
     out: list[tuple[dict[str, Any], int, bool]] = []
     n_ref = 0

@@ -55,7 +55,7 @@ def _raw_frame(store: Store, query: Any) -> pd.DataFrame:
     return pd.DataFrame(rows, columns=columns)
 
 
-def _require_run(store: Store, run_id: int) -> None:
+def require_run(store: Store, run_id: int) -> None:
     """InputError naming RUN_ID when the run does not exist."""
     with store.engine.connect() as conn:
         if conn.execute(select(Run.id).where(Run.id == run_id)).first() is None:
@@ -130,7 +130,7 @@ def run_points(store: Store, run_id: int, *, include_reference: bool = True,
     """
     import pandas as pd
 
-    _require_run(store, run_id)
+    require_run(store, run_id)
     inputs = _has_input_traces(store, run_id)  # most runs have none: no join with traces then
     keep = (Line.detected.is_(True), _OUTPUT) if inputs else (Line.detected.is_(True),)
     wanted = [func.max(case((and_(Line.kind == ln.kind, Line.side == ln.side,

@@ -28,7 +28,7 @@ from labrun.blockframe import build_block
 from labrun.engine import Captured, RetryPolicy, Runner
 from labrun.plan import Plan, PointSpec
 from labrun.trafficlog import TrafficLog, TrafficLogEntry, split_units
-from labrun.visareplay import TrafficReplayLibrary, _Script, _Session
+from labrun.visareplay import ReplayScript, ReplaySession, TrafficReplayLibrary
 
 if TYPE_CHECKING:
     from labrun.bench import Bench
@@ -123,13 +123,13 @@ class DryRunLibrary(TrafficReplayLibrary):
         attrs: dict[int, Any] = {constants.ResourceAttribute.termchar: ord("\n"),
                  constants.ResourceAttribute.termchar_enabled: constants.VI_FALSE,
                  constants.ResourceAttribute.timeout_value: 2000}
-        return (self._register(_Session(_Script(resource_name, inst.role), attrs=attrs)),
+        return (self._register(ReplaySession(ReplayScript(resource_name, inst.role), attrs=attrs)),
                 constants.StatusCode.success)
 
     def write(self, session: int, data: bytes) -> tuple[int, constants.StatusCode]:
         """Take a message: settings are remembered, queries answered in one response."""
         sess = self.sessions.get(session)
-        if not isinstance(sess, _Session):
+        if not isinstance(sess, ReplaySession):
             return 0, constants.StatusCode.error_invalid_object
         inst = self.instruments[sess.script.resource]
         text = data.decode("ascii", "replace").rstrip("\r\n")

@@ -81,7 +81,7 @@ def response_bytes(entry: TrafficLogEntry, termination: bytes) -> bytes | None:
 
 
 @dataclass
-class _Script:
+class ReplayScript:
     """What one resource is still expected to exchange: (log line number, entry) in order."""
 
     resource: str
@@ -90,10 +90,10 @@ class _Script:
 
 
 @dataclass
-class _Session:
+class ReplaySession:
     """One open replayed resource: its script, the pending response and the VISA attributes."""
 
-    script: _Script
+    script: ReplayScript
     pending: bytearray = field(default_factory=bytearray)
     fail_next_read: bool = False
     attrs: dict[int, Any] = field(default_factory=dict)
@@ -102,7 +102,7 @@ class _Session:
 class TrafficReplayLibrary(highlevel.VisaLibraryBase):
     """pyvisa backend serving recorded answers in order (make it with :meth:`from_entries`)."""
 
-    scripts: dict[str, _Script]
+    scripts: dict[str, ReplayScript]
     sessions: dict[int, Any]
 
     @staticmethod
@@ -128,7 +128,8 @@ class TrafficReplayLibrary(highlevel.VisaLibraryBase):
         """A fresh library (pyvisa caches libraries by path, so each gets its own) for a log."""
         lib = cls(f"labrun-replay-{next(_SERIAL)}")
         for number, entry in enumerate(entries, start=1):
-            script = lib.scripts.setdefault(entry.resource, _Script(entry.resource, entry.role))
+            script = lib.scripts.setdefault(entry.resource,
+                                            ReplayScript(entry.resource, entry.role))
             script.todo.append((number, entry))
             if entry.reply is not None and entry.error is None:
                 lib.last_replies[(entry.resource, entry.text)] = entry
@@ -180,11 +181,11 @@ class TrafficReplayLibrary(highlevel.VisaLibraryBase):
         """Open a resource the log holds (anything else is not found)."""
         script = self.scripts.get(resource_name)
         if script is None:
-            script = self.scripts.setdefault(resource_name, _Script(resource_name, None))
+            script = self.scripts.setdefault(resource_name, ReplayScript(resource_name, None))
         attrs: dict[int, Any] = {constants.ResourceAttribute.termchar: ord("\n"),
                  constants.ResourceAttribute.termchar_enabled: constants.VI_FALSE,
                  constants.ResourceAttribute.timeout_value: 2000}
-        return self._register(_Session(script, attrs=attrs)), constants.StatusCode.success
+        return self._register(ReplaySession(script, attrs=attrs)), constants.StatusCode.success
 
     def close(self, session: int) -> constants.StatusCode:
         """Forget a session (what it had pending is dropped, as on a real connection)."""
@@ -195,7 +196,7 @@ class TrafficReplayLibrary(highlevel.VisaLibraryBase):
     def get_attribute(self, session: int, attribute: Any) -> tuple[Any, constants.StatusCode]:
         """An attribute set earlier (or a neutral default)."""
         sess = self.sessions.get(session)
-        if not isinstance(sess, _Session):
+        if not isinstance(sess, ReplaySession):
             return 0, constants.StatusCode.error_invalid_object
         return sess.attrs.get(attribute, 0), constants.StatusCode.success
 
@@ -203,7 +204,7 @@ class TrafficReplayLibrary(highlevel.VisaLibraryBase):
                       ) -> constants.StatusCode:
         """Keep an attribute (termination character, its enable flag, timeout...)."""
         sess = self.sessions.get(session)
-        if not isinstance(sess, _Session):
+        if not isinstance(sess, ReplaySession):
             return constants.StatusCode.error_invalid_object
         sess.attrs[attribute] = attribute_state
         return constants.StatusCode.success
@@ -211,7 +212,7 @@ class TrafficReplayLibrary(highlevel.VisaLibraryBase):
     def clear(self, session: int) -> constants.StatusCode:
         """Device clear: drop the pending response."""
         sess = self.sessions.get(session)
-        if isinstance(sess, _Session):
+        if isinstance(sess, ReplaySession):
             sess.pending.clear()
         return constants.StatusCode.success
 
@@ -233,7 +234,7 @@ class TrafficReplayLibrary(highlevel.VisaLibraryBase):
     def write(self, session: int, data: bytes) -> tuple[int, constants.StatusCode]:
         """Check the message against the recording and queue the recorded response."""
         sess = self.sessions.get(session)
-        if not isinstance(sess, _Session):
+        if not isinstance(sess, ReplaySession):
             return 0, constants.StatusCode.error_invalid_object
         text = data.decode("ascii", "replace").rstrip("\r\n")
         term = bytes([int(sess.attrs.get(constants.ResourceAttribute.termchar, 10))])
@@ -257,7 +258,7 @@ class TrafficReplayLibrary(highlevel.VisaLibraryBase):
             sess.pending += response
         return len(data), constants.StatusCode.success
 
-    def _next(self, script: _Script, text: str) -> TrafficLogEntry | None:
+    def _next(self, script: ReplayScript, text: str) -> TrafficLogEntry | None:
         """The recorded exchange this message must match (skipping polls the replay left out);
         None for an extra poll answered before (the replay polled more often while waiting);
         TrafficMismatch otherwise."""
@@ -280,7 +281,7 @@ class TrafficReplayLibrary(highlevel.VisaLibraryBase):
             index=expected[0])
         raise self.stopped
 
-    def _answer_after_stop(self, sess: _Session, text: str, term: bytes) -> None:
+    def _answer_after_stop(self, sess: ReplaySession, text: str, term: bytes) -> None:
         """After a mismatch only the safe-off runs: queries get the last recorded reply to the
         same message (the original's own safe-off checks), settings are taken silently. Before
         one, an extra poll gets the reply last served to it."""
@@ -297,7 +298,7 @@ class TrafficReplayLibrary(highlevel.VisaLibraryBase):
         """Up to ``count`` bytes of the pending response (to the termination character when it
         is enabled); a timeout when nothing is pending or the recorded exchange failed."""
         sess = self.sessions.get(session)
-        if not isinstance(sess, _Session):
+        if not isinstance(sess, ReplaySession):
             return b"", constants.StatusCode.error_invalid_object
         if sess.fail_next_read or not sess.pending:
             sess.fail_next_read = False

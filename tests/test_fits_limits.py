@@ -50,13 +50,13 @@ def _fit(ratio: np.ndarray, spacing: np.ndarray, censored: np.ndarray | None):
 
 def _model_db(res, spacing: np.ndarray) -> np.ndarray:
     """The fitted closed-form model's ratio (dB) at the given spacings."""
-    from labrun.fits import _first_sideband_efficiency, nl_power_w
+    from labrun.fits import first_sideband_efficiency, nl_power_w
 
     g = res.extra["gamma_per_w_per_km"]
     flip = not res.extra["sign_determined"] and res.extra["sign_preferred"] == "negative"
     d = -res.value if flip else res.value  # the solution's own sign
     p = float(dbm_to_w(P_DBM))
-    eta = _first_sideband_efficiency(spacing, np.full(spacing.size, 1550.0),
+    eta = first_sideband_efficiency(spacing, np.full(spacing.size, 1550.0),
                                      np.full(spacing.size, "high"), FIB.length_km,
                                      FIB.loss_db_per_km, d, 0.0, 1550.0,
                                      g * nl_power_w(np.full(spacing.size, p),

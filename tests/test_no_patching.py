@@ -18,7 +18,9 @@ Environment variables (``monkeypatch.setenv``) and attributes of objects a test 
 (a store, an adapter, a session) are not reported. A second scan reports ``x._name`` for any
 ``x`` but ``self``/``cls`` (underscore names that a library documents as public aside): a test
 uses the public seam the object offers (``ScpiSession.set_timeout``,
-``ScpiSession.visa_resource``, the virtual lab's ``ascii_cut``).
+``ScpiSession.visa_resource``, the virtual lab's ``ascii_cut``). A third scan reads labrun/
+itself: no module uses another module's private names (imported, or as an attribute it does
+not define itself); what crosses a module boundary is public and documented.
 """
 
 from __future__ import annotations
@@ -172,3 +174,75 @@ def test_the_private_scan_can_fail():
     assert private_members("x = build_parser()._subparsers")
     assert not private_members("class A:\n    def f(self):\n        return self._x\n"
                                "row._mapping\npoint._replace(x=1)\n")
+
+
+# ------------------------------------------------------------------ labrun/ across its modules
+
+PACKAGE = TESTS.parent / "labrun"
+
+# Underscore names of other libraries that labrun uses knowingly: argparse's
+# ``_SubParsersAction`` (the type ``add_subparsers`` returns, for annotations) and
+# ``ArgumentParser._print_message`` (argparse's own version action writes through it), and
+# pyvisa's ``VisaLibraryBase._registry`` (a replay library drops its cache entry when done).
+FOREIGN_UNDERSCORE = frozenset({"_SubParsersAction", "_print_message", "_registry"})
+
+
+def _defined(tree: ast.AST) -> set[str]:
+    """Names a module defines or binds itself (functions, classes, assigned names and
+    attributes, parameters): its own private names."""
+    names: set[str] = set()
+    for node in ast.walk(tree):
+        if isinstance(node, ast.FunctionDef | ast.AsyncFunctionDef | ast.ClassDef):
+            names.add(node.name)
+        elif isinstance(node, ast.Name) and isinstance(node.ctx, ast.Store):
+            names.add(node.id)
+        elif isinstance(node, ast.Attribute) and isinstance(node.ctx, ast.Store):
+            names.add(node.attr)
+        elif isinstance(node, ast.arg):
+            names.add(node.arg)
+    return names
+
+
+def cross_module_private(source: str, filename: str = "<module>") -> list[str]:
+    """``filename:line: what`` for each private name of another module a labrun module uses:
+    imported (``from labrun.fits import _copolar``) or reached as an attribute
+    (``adapter._compound_ok()``) when the module does not define that name itself (an
+    object's own members, through ``self``, ``cls`` or ``super()``, aside)."""
+    tree = ast.parse(source, filename)
+    own = _defined(tree)
+    found = []
+    for node in ast.walk(tree):
+        if isinstance(node, ast.ImportFrom) and (node.module or "").startswith("labrun"):
+            found += [f"{filename}:{node.lineno}: from {node.module} import {a.name}"
+                      for a in node.names if a.name.startswith("_")
+                      and not a.name.startswith("__")]
+        elif isinstance(node, ast.Attribute) and node.attr.startswith("_") \
+                and not node.attr.startswith("__") and node.attr not in own \
+                and node.attr not in PUBLIC_UNDERSCORE | FOREIGN_UNDERSCORE:
+            value = node.value
+            if isinstance(value, ast.Name) and value.id in ("self", "cls"):
+                continue
+            if isinstance(value, ast.Call) and isinstance(value.func, ast.Name) \
+                    and value.func.id == "super":
+                continue
+            found.append(f"{filename}:{node.lineno}: {ast.unparse(node)}")
+    return sorted(set(found))
+
+
+def test_no_labrun_module_uses_another_modules_private_names():
+    """What one module uses of another is public, with a docstring (issue 14)."""
+    found = []
+    for path in sorted(PACKAGE.rglob("*.py")):
+        found += cross_module_private(path.read_text(encoding="utf-8"),
+                                      str(path.relative_to(PACKAGE.parent)))
+    assert not found, "private names used across labrun's modules:\n" + "\n".join(found)
+
+
+def test_the_cross_module_scan_can_fail():
+    assert cross_module_private("from labrun.fits import _copolar\n")
+    assert cross_module_private("def f(adapter):\n    return adapter._compound_ok()\n")
+    assert cross_module_private("from labrun import fits\nfits._copolar(1)\n")
+    fine = ("class A:\n    def _x(self):\n        return super()._y() + self._z\n"
+            "def f(a: A):\n    return a._x()\n"  # defined in this module: its own business
+            "from labrun.fits import copolar\nrow._mapping\n")
+    assert cross_module_private(fine) == []

@@ -28,12 +28,12 @@ def register(subparsers: Any) -> None:
 def cmd_export(args: argparse.Namespace) -> int:
     """labrun export: write the files, print their paths."""
     from labrun.export import export_run
-    from labrun.queries import _require_run
+    from labrun.queries import require_run
     from labrun.store import open_existing_store
 
     store = open_existing_store(args.db)
     try:
-        _require_run(store, args.run_id)
+        require_run(store, args.run_id)
         files = export_run(store, args.run_id, args.format, args.out)
     finally:
         store.close()

@@ -209,7 +209,7 @@ def source_readings(adapters: Sequence[Adapter],
         for (i, parts), text, reply in zip(batch, texts, replies, strict=True):
             units = split_units(reply) if len(parts) > 1 else [reply]
             if len(units) != len(parts):
-                raise adapters[i]._instrument_error(f"reply {reply!r} to {text!r} has "
+                raise adapters[i].instrument_error(f"reply {reply!r} to {text!r} has "
                                                     f"{len(units)} units, expected {len(parts)}")
             for (op, _), unit in zip(parts, units, strict=True):
                 values[i][op.name] = adapters[i].parse(op, unit)

@@ -130,11 +130,13 @@ class Adapter:
                 return got
             previous = got
         self._idn = None
-        raise self._instrument_error(f"*IDN? gave a different reply each time ({previous})")
+        raise self.instrument_error(f"*IDN? gave a different reply each time ({previous})")
 
     # -- errors -----------------------------------------------------------------------------
 
-    def _instrument_error(self, message: str) -> InstrumentError:
+    def instrument_error(self, message: str) -> InstrumentError:
+        """An InstrumentError naming this role and resource (batch and bench readers raise it
+        for an instrument's reply too)."""
         return InstrumentError(message, role=self.role, resource=self.spec.resource)
 
     def _range_error(self, op: Operation, key: str, value: float,
@@ -197,7 +199,7 @@ class Adapter:
         try:
             return parse_reply(op, reply, self.profile.replies)
         except ValueError as exc:
-            raise self._instrument_error(str(exc)) from None
+            raise self.instrument_error(str(exc)) from None
 
     def query_text(self, name: str) -> tuple[Operation, str]:
         """The operation and SCPI text of a value query without an index (for batched reads)."""
@@ -212,7 +214,7 @@ class Adapter:
         try:
             return parse_reply(op, reply, self.profile.replies)
         except ValueError as exc:
-            raise self._instrument_error(str(exc)) from None
+            raise self.instrument_error(str(exc)) from None
 
     def _read_trace_values(self, query: str) -> np.ndarray:
         """Read one trace array in the profile's transfer format (block, or ASCII fallback)."""
@@ -300,10 +302,10 @@ class Adapter:
         p = self.prepare(name, value, index=index, values=values, cap=cap, expect=expect)
         op = p.op
         settle_s = op.settle_s * self.settle_scale if settle else 0.0
-        if name in SOURCE_SWITCHES and self._compound_ok() and not op.wait:
-            self._switch_alone(p, settle)
+        if name in SOURCE_SWITCHES and self.compound_ok() and not op.wait:
+            self.switch_alone(p, settle)
             return
-        if self._compound_ok() and settle_s <= 0 and not (op.wait and self.session.completion):
+        if self.compound_ok() and settle_s <= 0 and not (op.wait and self.session.completion):
             self._apply_compound(op, p.text, p.back, p.index, p.target, cap)
             return
         self.session.write(p.text)
@@ -314,7 +316,7 @@ class Adapter:
         if p.back is not None:
             self.verify(op, self.read(p.back.name, index=p.index), p.target, cap=cap)
 
-    def _switch_alone(self, p: PlannedSetting, settle: bool) -> None:
+    def switch_alone(self, p: PlannedSetting, settle: bool) -> None:
         """Switch light with the command as a message of its own (never compound), then its
         error query and read-back together in one query message."""
         session = self.session
@@ -330,7 +332,7 @@ class Adapter:
         if p.back is not None:
             self.verify(p.op, self.parse(p.back, units[0]), p.target, cap=p.cap)
 
-    def _compound_ok(self) -> bool:
+    def compound_ok(self) -> bool:
         """True when settings may travel as one compound message with their follow-up queries."""
         return bool(self.session.compound and self.session.error_query)
 
@@ -347,13 +349,13 @@ class Adapter:
         if op.wait and self.session.opc_query:
             opc = replies.pop(0)
             if opc.strip().lstrip("+") not in ("1", "1.0"):
-                raise self._instrument_error(f"{self.session.opc_query} answered {opc!r}, "
+                raise self.instrument_error(f"{self.session.opc_query} answered {opc!r}, "
                                              "expected 1")
         if back is not None:
             try:
                 got = parse_reply(back, replies[0], self.profile.replies)
             except ValueError as exc:
-                raise self._instrument_error(str(exc)) from None
+                raise self.instrument_error(str(exc)) from None
             self.verify(op, got, target, cap=cap)
 
     def verify(self, op: Operation, got: Any, want: Any, *, cap: float | None = None) -> None:
@@ -375,7 +377,7 @@ class Adapter:
         else:
             ok = abs(float(got) - float(want)) <= tol
         if not ok:
-            raise self._instrument_error(f"read-back of {op.name} gave {got!r}, expected {want!r}"
+            raise self.instrument_error(f"read-back of {op.name} gave {got!r}, expected {want!r}"
                                          f" (tolerance {op.tolerance or 0:g})")
 
     def settle(self, seconds: float) -> None:

@@ -55,7 +55,7 @@ def _check(expects: Sequence[tuple[str, PlannedSetting]], replies: Sequence[str]
         adapter = p.adapter
         if what == "opc":
             if reply.strip().lstrip("+") not in ("1", "1.0"):
-                raise adapter._instrument_error(f"{adapter.session.opc_query} answered "
+                raise adapter.instrument_error(f"{adapter.session.opc_query} answered "
                                                 f"{reply!r}, expected 1")
             continue
         assert p.back is not None
@@ -67,7 +67,7 @@ def write_all(planned: Sequence[PlannedSetting], *, read_back: bool = False) -> 
     also verify each one in the same exchange (for settings that need no settle time)."""
     compound_msgs: list[tuple[Adapter, str, str, list[tuple[str, PlannedSetting]]]] = []
     for adapter, group in _by_adapter(planned):
-        if not adapter._compound_ok() or (adapter.session.completion is not None
+        if not adapter.compound_ok() or (adapter.session.completion is not None
                                           and any(p.op.wait for p in group)):
             _write_one_by_one(adapter, group, read_back)  # a wait other than *OPC? in between
             continue
@@ -75,7 +75,7 @@ def write_all(planned: Sequence[PlannedSetting], *, read_back: bool = False) -> 
         if switches:  # switching light travels alone, after the instrument's other settings
             write_all([p for p in group if p not in switches], read_back=read_back)
             for p in switches:
-                adapter._switch_alone(p, settle=False)
+                adapter.switch_alone(p, settle=False)
             continue
         units, expects = _units(adapter, group, read_back)
         message = compound(units[0], [*units[1:], str(adapter.session.error_query)])
@@ -87,7 +87,7 @@ def read_back_all(planned: Sequence[PlannedSetting]) -> None:
     """Read back and verify every setting that has a read-back, all instruments at once."""
     msgs: list[tuple[Adapter, str, str, list[tuple[str, PlannedSetting]]]] = []
     for adapter, group in _by_adapter([p for p in planned if p.back_text is not None]):
-        if not adapter._compound_ok():
+        if not adapter.compound_ok():
             for p in group:
                 assert p.back is not None
                 got = adapter.read(p.back.name, index=p.index)

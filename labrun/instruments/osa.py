@@ -43,7 +43,7 @@ class OsaAdapter(Adapter):
         """
         op = self.profile.op("sweep")
         y_op = self.profile.op("read_trace_y")
-        if (not with_x and self._compound_ok() and self._trace_format == "real32"
+        if (not with_x and self.compound_ok() and self._trace_format == "real32"
                 and self.session.opc_query and op.settle_s * self.settle_scale <= 0):
             assert self.profile.trace is not None
             (opc,), y = self.session.setting_then_block(
@@ -51,7 +51,7 @@ class OsaAdapter(Adapter):
                 self.profile.trace.byte_order)
             if opc.strip().lstrip("+") not in ("1", "1.0"):
                 self.session.close()  # a garbled response: do not trust what follows it
-                raise self._instrument_error(f"{self.session.opc_query} answered {opc!r}, "
+                raise self.instrument_error(f"{self.session.opc_query} answered {opc!r}, "
                                              "expected 1")
             y = y_op.from_wire(y)
             self.accept(None, y)
@@ -83,15 +83,15 @@ class OsaAdapter(Adapter):
         sent: x and y of one length, the axis finite and strictly increasing, the levels
         finite and inside the profile's ``level_range_dbm``."""
         if x is not None and (x.size != y.size or x.size == 0):
-            raise self._instrument_error(f"short trace: x has {x.size} points and y {y.size}")
+            raise self.instrument_error(f"short trace: x has {x.size} points and y {y.size}")
         if x is not None and not (np.all(np.isfinite(x)) and np.all(np.diff(x) > 0)):
-            raise self._instrument_error("corrupted trace: the axis is not finite and "
+            raise self.instrument_error("corrupted trace: the axis is not finite and "
                                          "strictly increasing")
         if y.size == 0 or not np.all(np.isfinite(y)):
-            raise self._instrument_error("corrupted trace: the levels are empty or not finite")
+            raise self.instrument_error("corrupted trace: the levels are empty or not finite")
         lo, hi = self.profile.trace.levels_dbm if self.profile.trace else LEVEL_RANGE_DBM
         if float(y.min()) < lo or float(y.max()) > hi:
-            raise self._instrument_error(
+            raise self.instrument_error(
                 f"corrupted trace: levels {float(y.min()):.6g}..{float(y.max()):.6g} dBm "
                 f"outside the profile's level_range_dbm [{lo:g}, {hi:g}]")
 
@@ -115,7 +115,7 @@ class OsaAdapter(Adapter):
             try:
                 ends.append(float(from_wire(float(reply), "nm", trace.axis_wire_unit)))
             except ValueError:
-                raise self._instrument_error(f"reply {reply!r} to {query!r} is not a number"
+                raise self.instrument_error(f"reply {reply!r} to {query!r} is not a number"
                                              ) from None
         if trace.axis_wire_unit in ("Hz", "GHz", "THz"):
             ends.sort()

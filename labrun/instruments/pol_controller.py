@@ -63,5 +63,5 @@ class PolControllerAdapter(Adapter):
     def stokes(self) -> tuple[float, float, float]:
         values = self.read("read_stokes")
         if len(values) != 3:
-            raise self._instrument_error(f"read_stokes gave {len(values)} values, expected 3")
+            raise self.instrument_error(f"read_stokes gave {len(values)} values, expected 3")
         return (values[0], values[1], values[2])
