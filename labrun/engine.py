@@ -244,7 +244,7 @@ class Runner:
         self.applied: dict[tuple[str, str], Any] = {}
         self.emitting = False
         self.guardian: Any = None  # labrun/guardian.py: told before the first switch-on
-        self.osa_settings: Any = None
+        self.osa_settings = plan.osa_settings(bench)  # the run's OSA settings (osa_auto)
         self.rbw_nm: float | None = None
         self.trace_meta: dict[str, Any] = {}  # the configured OSA settings of the output trace
         self.input_meta: dict[str, Any] = {}  # the same for the input trace (switch path 2)
@@ -931,7 +931,6 @@ def _execute(plan: Plan, bench: Bench, store: AnyStore, run_id: int | None,
     finished = False
     try:
         try:
-            runner.osa_settings = plan.osa_settings(bench)
             identities = runner.open_retrying()
             if run_id is None and create is not None:
                 run_id = runner.attach(create(identities))

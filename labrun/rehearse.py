@@ -309,7 +309,6 @@ def rehearse(plan: Plan, bench: Bench, *, limit: int | None = None) -> Rehearsal
     try:
         with scpi.visa_library_override(lib):
             runner = DryRunner(plan, bench, clock, log)
-            runner.osa_settings = plan.osa_settings(bench)
             try:
                 runner.open()
                 opening = list(log.entries)
