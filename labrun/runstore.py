@@ -23,9 +23,13 @@ import time
 from collections.abc import Callable
 from datetime import UTC, datetime
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any, cast
 
 from labrun.errors import LabrunError
+
+if TYPE_CHECKING:
+    from labrun.store.kinds import EventKind, RunStatus
+    from labrun.store.models import Run
 
 log = logging.getLogger(__name__)
 log.addHandler(logging.NullHandler())  # library: shown only when the application configures logging
@@ -71,7 +75,53 @@ class RunStore:
         self._told = threading.Event()  # on_fault already called for the current call
         self.faults: list[str] = []  # one line per failed call, for the fallback record
 
+    # ---- the store's calls the engine makes, typed (each retried as ``call`` says) ----------
+    @property
+    def url(self) -> str:
+        """The wrapped store's URL (password hidden)."""
+        return str(self.store.url)
+
+    def create_run(self, **fields: Any) -> int:
+        """``Store.create_run``: insert a run, its id."""
+        return int(self.call("create_run", self.store.create_run, (), fields))
+
+    def get_run(self, run_id: int) -> Run | None:
+        """``Store.get_run``: the run row, or None."""
+        return cast("Run | None", self.call("get_run", self.store.get_run, (run_id,), {}))
+
+    def update_run(self, run_id: int, **fields: Any) -> None:
+        """``Store.update_run``: set some columns of a run."""
+        self.call("update_run", self.store.update_run, (run_id,), fields)
+
+    def set_status(self, run_id: int, status: RunStatus, reason: str | None = None, *,
+                   finished: bool = False) -> None:
+        """``Store.set_status``: a run's status and reason (``finished``: and finished_at)."""
+        self.call("set_status", self.store.set_status, (run_id, status, reason),
+                  {"finished": finished})
+
+    def heartbeat(self, run_id: int) -> None:
+        """``Store.heartbeat``: the run process is alive now."""
+        self.call("heartbeat", self.store.heartbeat, (run_id,), {})
+
+    def spool_id(self, label: str, **fields: Any) -> int:
+        """``Store.spool_id``: the spool's id, created when new."""
+        return int(self.call("spool_id", self.store.spool_id, (label,), fields))
+
+    def add_event(self, run_id: int, kind: EventKind | str, message: str = "",
+                  **fields: Any) -> None:
+        """``Store.add_event``: one event of a run (role, point_key, data as keywords)."""
+        self.call("add_event", self.store.add_event, (run_id, kind, message), fields)
+
+    def add_point(self, run_id: int, **row: Any) -> Any:
+        """``Store.add_point``: one point with its traces and lines, in one transaction."""
+        return self.call("add_point", self.store.add_point, (run_id,), row)
+
+    def completed_keys(self, run_id: int) -> set[str]:
+        """``Store.completed_keys``: keys of the points a run has stored."""
+        return set(self.call("completed_keys", self.store.completed_keys, (run_id,), {}))
+
     def __getattr__(self, name: str) -> Any:
+        """Any other attribute of the wrapped store (a call through ``call``, untyped)."""
         attr = getattr(self.store, name)
         if not callable(attr):
             return attr
