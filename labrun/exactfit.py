@@ -44,7 +44,7 @@ EXACT_MODEL = ("split-step NLSE (docs/design.md §5.4) as forward model: closed-
 OFFSET_MODEL = ("launched-power offset of one arm (nuisance of the exact fit): output tone ratio "
                 "b/a against the launched one, and the bench's calibration uncertainty as prior")
 OFFSET_CONVENTION = "true launched power = recorded power_<arm>_dbm + offset, dB"
-OFFSET_SOURCE = "launched power a, b (fitted offsets)"
+OFFSET_SOURCE = "launched power a, b (fitted)"  # fits the budget table's 28 columns
 POWER_FIELDS = ("power_a_db", "power_b_db")
 DIFF_U_FLOOR_DB = 1e-4  # keeps the offsets' normal matrix well conditioned on noiseless data
 FIT_RTOL = 1e-3  # split-step tolerance inside the fit: lines down to -90 dBc within 0.01 dB
