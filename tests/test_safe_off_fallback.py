@@ -24,7 +24,7 @@ from labrun.cli import main
 from labrun.engine import Seams, run_plan
 from labrun.plan import load_plan
 from labrun.resources import find_file
-from labrun.scpi import visa_library_override
+from labrun.scpi import ScpiSession, visa_library_override
 from labrun.shutdown import safe_off_fresh
 from labrun.store import open_store
 from labrun.vlab.lab import VirtualLab
@@ -163,3 +163,55 @@ def test_fallback_enables_remote_on_an_instrument_in_local_mode(tmp_path):
                 att.output, att.attenuation_db = True, 3.0
         assert safe_off_fresh(bench) == []
         assert dark(lab) and not lab.state.amplifier.output
+
+
+def _bench_with_laser_a_profile(lab: VirtualLab, folder: Path, edit) -> Path:
+    """The lab's bench, laser_a on a copy of generic-laser.toml changed by ``edit(text)``."""
+    bench = write_bench(lab, folder)
+    src = Path(find_file("generic-laser.toml", "drivers")).read_text(encoding="utf-8")
+    src = edit(src.replace('name = "generic-laser"', 'name = "odd-laser"'))
+    prof = folder / "odd-laser.toml"
+    prof.write_text(src, encoding="utf-8")
+    text = bench.read_text(encoding="utf-8")
+    head, _, tail = text.partition("[instruments.laser_a]")
+    tail = tail.replace('profile = "generic-laser"', f'profile = "{prof}"', 1)
+    bench.write_text(head + "[instruments.laser_a]" + tail, encoding="utf-8")
+    return bench
+
+
+def _unparseable_errors(text: str) -> str:
+    """A [replies] error form the virtual laser's '0,"No error"' never matches."""
+    return text + "\n[replies]\nerror = 'ERR (?P<code>[-+]?\\d+) (?P<message>.*)'\n"
+
+
+def _silent_errors(text: str) -> str:
+    """An error query the virtual laser never answers, with a short timeout."""
+    text = text.replace('error_query = "SYST:ERR?"', 'error_query = "SYST:ERRX?"')
+    return text.replace("timeout_ms = 3000", "timeout_ms = 150")
+
+
+@pytest.mark.parametrize("edit", [_unparseable_errors, _silent_errors],
+                         ids=["unparseable-error-reply", "silent-error-query"])
+def test_a_broken_error_query_never_keeps_a_laser_on(tmp_path, edit, monkeypatch):
+    """The error queue cannot be read on a safe-off connection (a reply of the wrong form, or
+    no reply): the switch-off is sent first all the same, so the fallback, the guardian's
+    darken and 'labrun off' each leave laser_a off (the lab's own state), reported confirmed
+    by its read-back, and every connection they opened is closed again."""
+    opened: list[ScpiSession] = []
+    real_open = ScpiSession.open
+
+    def open_and_keep(self):
+        opened.append(self)
+        return real_open(self)
+
+    monkeypatch.setattr(ScpiSession, "open", open_and_keep)
+    with VirtualLab(scenario()) as lab:
+        path = _bench_with_laser_a_profile(lab, tmp_path, edit)
+        bench = load_bench(path)
+        _light(lab, "laser_a", "laser_b")
+        assert safe_off_fresh(bench, pause_s=0.05, budget_s=0.5) == []
+        assert dark(lab)
+        _light(lab, "laser_a")
+        assert main(["off", "--bench", str(path)]) == 0
+        assert dark(lab)
+    assert opened and not [s for s in opened if s.is_open]

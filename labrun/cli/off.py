@@ -16,7 +16,7 @@ import time
 from typing import TYPE_CHECKING, Any
 
 from labrun.roles import OFF_ROLES
-from labrun.safe_off import BUDGET_S, PAUSE_S, in_parallel, quick_adapter
+from labrun.safe_off import BUDGET_S, PAUSE_S, in_parallel, quick_adapter, switch_off
 
 if TYPE_CHECKING:
     from labrun.bench import Bench
@@ -45,13 +45,14 @@ def off_role(bench: Bench, role: str, *, budget_s: float = BUDGET_S) -> dict[str
 
 
 def _off_once(bench: Bench, role: str) -> dict[str, Any]:
-    """One try: open without the profile's init commands (as the safe-off fallback does: a
-    refused init command must not keep a laser on), switch off, read the state back."""
+    """One try, as the safe-off fallback makes it (labrun/safe_off.py): open, send the profile's
+    init commands with any failure ignored, switch off (the error queue read only after), read
+    the state back."""
     result: dict[str, Any] = {"role": role, "ok": False, "output": None, "detail": ""}
     adapter = None
     try:
         adapter = quick_adapter(bench, role)
-        adapter.safe_off()
+        switch_off(adapter, role)
         state = adapter.output_state()
         result["output"] = None if state is None else ("on" if state else "off")
         if role.startswith("attenuator"):
