@@ -7,10 +7,10 @@ Ctrl-C at the terminal, does not reach it. The run holds the write end of a pipe
 the watcher blocks on. The run writes ``lit RUN_ID`` before it first switches a source on and
 ``done`` once its own safe-off is over; end of file without ``done`` after ``lit`` means the run
 died with the light possibly on, whatever the cause. The watcher then darkens every role at once
-over fresh connections, init sent unchecked (labrun/safe_off.py), records what it did (a
-``guardian`` event in the store, else a JSON line beside the database, and one line on stderr)
-and exits. It never switches anything on, and a run that never lit leaves it nothing to do.
-Not started by the rehearsal (``labrun check``) or a replay.
+over fresh connections, only ``safe_off_init`` sent, unchecked (labrun/safe_off.py), records
+what it did (a ``guardian`` event in the store, else a JSON line beside the database, and one
+line on stderr) and exits. It never switches anything on, and a run that never lit leaves it
+nothing to do. Not started by the rehearsal (``labrun check``) or a replay.
 """
 
 from __future__ import annotations
@@ -178,7 +178,7 @@ def watch(fd: int, bench: Bench, db: str, parent: int) -> int:
     if clean:
         return 0
     t0 = time.monotonic()
-    problems = darken(bench, None)  # fresh connections (init unchecked), every role at once
+    problems = darken(bench, None)  # fresh connections (safe_off_init only), every role at once
     elapsed = time.monotonic() - t0
     state = ("every source off, attenuators at maximum" if not problems
              else "NOT CONFIRMED OFF: " + "; ".join(problems))

@@ -90,6 +90,7 @@ class _ProfileHead(_Strict):
     band_nm: Annotated[tuple[Number, Number] | None, Field(strict=False)] = None  # optical band
     opc_query: str | None = "*OPC?"
     init: list[str] = []
+    safe_off_init: list[str] = []  # the only commands a safe-off connection sends before off
 
 
 class Capabilities(_Strict):
@@ -330,6 +331,7 @@ class Profile:
     replies: ReplyForms = ReplyForms()
     completion: CompletionSpec = CompletionSpec()
     band_nm: tuple[float, float] | None = None  # declared optical band (probe checks in it)
+    safe_off_init: tuple[str, ...] = ()  # sent on a safe-off connection before the switch-off
 
     def band(self) -> tuple[float, float] | None:
         """The optical band wavelengths must lie in: declared, else the wavelength setting's
@@ -507,10 +509,44 @@ def _check_messages(path: Path, head: _ProfileHead, trace: TraceSpec | None,
                                            command.strip().upper() == on.command.strip().upper()):
             raise _fail(path, f"profile.init[{i}]", f"{command!r} would switch a source on; "
                                                     "init may not (output_on does, after checks)")
+    for i, command in enumerate(head.safe_off_init):
+        _check_safe_off_init(path, f"profile.safe_off_init[{i}]", command, ops)
     for key in ("format_command", "ascii_command", "byte_order_command"):
         _check_one_command(path, f"trace.{key}", getattr(trace, key, None), template=False)
     for name, op in ops.items():
         _check_one_command(path, f"operations.{name}", op.template)
+
+
+def _header(command: str) -> str:
+    """A command's header, upper case, without a leading colon or numeric suffixes."""
+    head = command.strip().split(" ")[0].upper().lstrip(":")
+    return ":".join(re.sub(r"\d+$", "", node) for node in head.split(":"))
+
+
+def _check_safe_off_init(path: Path, where: str, command: str,
+                         ops: dict[str, Operation]) -> None:
+    """A safe-off connection's command before the switch-off only readies the connection: no
+    query (its reply would be read as the next one's), no common command but ``*CLS`` (no
+    ``*RST``, ``*RCL``: they set the instrument), no operation's setting, nothing lit."""
+    _check_one_command(path, where, command, template=False)
+    header = _header(command)
+    why = None
+    if header == "*CLS":
+        return
+    if "?" in command:
+        why = "is a query"
+    elif header.startswith("*"):
+        why = "is a common command other than *CLS (it could change settings)"
+    elif switches_source_on(command):
+        why = "would switch a source on"
+    else:
+        for name, op in ops.items():
+            if op.command is not None and _header(op.command) == header:
+                why = f"is operation {name!r}'s command"
+                break
+    if why:
+        raise _fail(path, where, f"{command!r} {why}; a safe-off connection sends only what "
+                                 "readies it for the switch-off (a remote enable, *CLS)")
 
 
 def _check_replies(path: Path, head: _ProfileHead, replies: ReplyForms) -> None:
@@ -633,7 +669,8 @@ def parse_profile(data: dict[str, Any], path: Path) -> Profile:
                    init=tuple(head.init), capabilities=model.capabilities, trace=model.trace,
                    operations=ops, replies=model.replies, completion=model.completion,
                    band_nm=None if head.band_nm is None else (float(head.band_nm[0]),
-                                                               float(head.band_nm[1])))
+                                                               float(head.band_nm[1])),
+                   safe_off_init=tuple(head.safe_off_init))
 
 
 def resolve_profile_path(name_or_path: str | Path, *, base: Path | None = None) -> Path | None:

@@ -2,9 +2,9 @@
 
 ``darken`` gives each of the roles in ``OFF_ROLES`` (lasers and amplifier output off, attenuators
 to maximum with their shutters closed) its own thread: the run's own connection first (one short
-try, never waiting on a busy session), then fresh connections whose init commands are sent
-unchecked, any failure ignored (a remote enable is needed; a refused ``*CLS`` is not), the
-switch-off sent before any error-queue read, retried until ``budget_s``.
+try, never waiting on a busy session), then fresh connections that send only the profile's
+``safe_off_init`` commands (a remote enable), unchecked and any failure ignored, then the
+switch-off before any error-queue read, retried until ``budget_s``.
 An unreachable laser therefore never delays closing its attenuator: every reachable role is
 dark within about one round trip of the decision, whatever the others do. Used by the engine's
 fault exits and ``SafeOffGuard`` (labrun/shutdown.py) and by
@@ -38,10 +38,11 @@ T = TypeVar("T")
 
 def quick_adapter(bench: Bench, role: str, timeout_ms: int = TIMEOUT_MS) -> Any:
     """A fresh connection to one role, with exchanges bounded by ``timeout_ms`` and tried once.
-    Its profile's init commands are sent unchecked, any failure of theirs ignored (an instrument
-    in local mode refuses the switch-off until its remote enable, while a refused or unanswered
-    init command must not keep a laser on); the error queue is read only after the switch-off
-    (``switch_off``). The session is closed again if the adapter cannot be made."""
+    Only its profile's ``safe_off_init`` commands are sent (a remote enable: an instrument in
+    local mode refuses the switch-off until then; never its ``init``, which may set things),
+    unchecked and any failure ignored (a refused or unanswered one must not keep a laser on);
+    the error queue is read only after the switch-off (``switch_off``). The session is closed
+    again if the adapter cannot be made."""
     from labrun.instruments import ADAPTERS, make_session
 
     spec = bench.instruments[role]
@@ -50,11 +51,11 @@ def quick_adapter(bench: Bench, role: str, timeout_ms: int = TIMEOUT_MS) -> Any:
     session.retries = 0
     session.open()
     try:
-        for cmd in spec.profile.init:
+        for cmd in spec.profile.safe_off_init:
             try:
                 session.write(cmd, check_errors=False)
             except Exception as exc:  # noqa: BLE001 - the switch-off decides, not the init
-                log.info("safe-off: %s: init %r failed (%s: %s)", role, cmd,
+                log.info("safe-off: %s: safe_off_init %r failed (%s: %s)", role, cmd,
                          type(exc).__name__, exc)
         return ADAPTERS[spec.kind](spec, session, settle_scale=bench.settle_scale)
     except BaseException:

@@ -4,8 +4,9 @@
 main thread (so the current point is abandoned at once, never half-stored), at most once; once
 the run is on its way out (``defer()``: safe-off and bookkeeping) a signal is only recorded, so
 no Ctrl-C or SIGTERM can cut the way out short. ``safe_off`` darkens every role at once
-(labrun/safe_off.py): the run's own connection first, briefly, then fresh connections without
-init commands, so an unreachable laser never delays closing its attenuator.
+(labrun/safe_off.py): the run's own connection first, briefly, then fresh connections that send
+only the profile's ``safe_off_init`` (a remote enable; never ``init``) before switching off, so
+an unreachable laser never delays closing its attenuator.
 """
 
 from __future__ import annotations
@@ -45,7 +46,8 @@ class RunInterrupted(BaseException):  # noqa: N818 - a control-flow signal, like
 
 def safe_off_fresh(bench: Bench, *, pause_s: float = PAUSE_S,
                    budget_s: float = BUDGET_S) -> list[str]:
-    """Fresh connections only (no init commands), every role at once; the problems left."""
+    """Fresh connections only (``safe_off_init``, never ``init``), every role at once; the
+    problems left."""
     return darken(bench, None, pause_s=pause_s, budget_s=budget_s)
 
 

@@ -225,3 +225,41 @@ def test_osa_needs_trace_table(tmp_path):
     path.write_text(text)
     with pytest.raises(InputError, match="trace"):
         load_profile(path)
+
+
+SAFE_OFF_INIT_REFUSED = [
+    # (what, the safe_off_init entry): each could change the instrument before its switch-off
+    ("reset", "*RST"),
+    ("recall", "*RCL 1"),
+    ("query", "SYST:ERR?"),
+    ("a setting operation's command", "SOUR:POW 13.000"),
+    ("the same setting, long form with suffix", ":sour1:pow 1"),
+    ("switches on", "OUTP:STAT ON"),
+    ("two commands", "*CLS;:SOUR:POW 1"),
+]
+
+
+@pytest.mark.parametrize("case", SAFE_OFF_INIT_REFUSED, ids=[c[0] for c in SAFE_OFF_INIT_REFUSED])
+def test_safe_off_init_refuses_anything_that_sets(tmp_path, case):
+    """safe_off_init is all a safe-off connection sends before switching off: loading refuses
+    a reset, a recall, a query, a setting of the profile's own operations and a switch-on,
+    naming file and field."""
+    _, command = case
+    text = LASER.replace('init = ["*CLS"]',
+                         f'init = ["*CLS"]\nsafe_off_init = ["*CLS", "{command}"]')
+    path = _write(tmp_path, text)
+    with pytest.raises(InputError) as info:
+        load_profile(path)
+    message = str(info.value)
+    assert "\n" not in message and str(path) in message, message
+    assert "profile.safe_off_init[1]" in message, message
+
+
+def test_safe_off_init_takes_a_remote_enable_and_cls(tmp_path):
+    """What a safe-off connection may need (a remote enable, *CLS) loads; none is the default."""
+    text = LASER.replace('init = ["*CLS"]',
+                         'init = ["*CLS", "SOUR:POW 1.000"]\nsafe_off_init = ["*CLS", "LINK:KEEP"]')
+    profile = load_profile(_write(tmp_path, text))
+    assert profile.safe_off_init == ("*CLS", "LINK:KEEP")
+    assert profile.init == ("*CLS", "SOUR:POW 1.000")
+    assert load_profile(_write(tmp_path, LASER)).safe_off_init == ()

@@ -1,6 +1,6 @@
 """The fresh-connection safe-off fallback: when the run's own connections cannot switch a source
-off, new ones do (their init commands sent unjudged: a remote enable is needed, a refused
-*CLS is not), retried briefly, every role still tried.
+off, new ones do (only the profile's safe_off_init sent, unjudged: a remote enable is needed;
+never init, which may set things), retried briefly, every role still tried.
 
 Checked on the virtual lab's own state (``lab.sources_off()``), not on mocks.
 """
@@ -149,8 +149,8 @@ def test_fallback_darkens_the_others_when_one_role_never_answers(tmp_path, inst_
 
 def test_fallback_enables_remote_on_an_instrument_in_local_mode(tmp_path):
     """Every instrument in the virtual lab's si dialect, where a fresh connection is refused
-    every setting and query until SYST:REM (its profiles' init): the fallback's fresh
-    connections send the init first, so every light-carrying role ends dark (with the init
+    every setting and query until SYST:REM (its profiles' safe_off_init): the fallback's fresh
+    connections send it first, so every light-carrying role ends dark (with it
     skipped, OUTP:STAT OFF would be refused with -221 and the lasers stay on)."""
     sc = scenario(dialect="si")
     sc["instruments"]["amplifier"]["present"] = True
@@ -215,3 +215,19 @@ def test_a_broken_error_query_never_keeps_a_laser_on(tmp_path, edit, monkeypatch
         assert main(["off", "--bench", str(path)]) == 0
         assert dark(lab)
     assert opened and not [s for s in opened if s.is_open]
+
+
+def test_safe_off_connections_never_send_init(tmp_path):
+    """A profile whose init resets the laser and sets its power (allowed: a run's connection
+    sends it before any check): the fallback and 'labrun off' send none of it, only
+    safe_off_init, so laser_a's power is what the run left (the lab's own state)."""
+    with VirtualLab(scenario()) as lab:
+        path = _bench_with_laser_a(lab, tmp_path, init=["*RST", "SOUR:POW 12.000"])
+        _light(lab, "laser_a", "laser_b")
+        with lab.state.lock:
+            lab.state.lasers["laser_a"].power_dbm = 3.25
+        assert safe_off_fresh(load_bench(path)) == []
+        assert dark(lab)
+        _light(lab, "laser_a")
+        assert main(["off", "--bench", str(path)]) == 0
+        assert dark(lab) and lab.state.lasers["laser_a"].power_dbm == 3.25

@@ -46,8 +46,8 @@ def off_role(bench: Bench, role: str, *, budget_s: float = BUDGET_S) -> dict[str
 
 def _off_once(bench: Bench, role: str) -> dict[str, Any]:
     """One try, as the safe-off fallback makes it (labrun/safe_off.py): open, send the profile's
-    init commands with any failure ignored, switch off (the error queue read only after), read
-    the state back."""
+    ``safe_off_init`` (never ``init``) with any failure ignored, switch off (the error queue
+    read only after), read the state back."""
     result: dict[str, Any] = {"role": role, "ok": False, "output": None, "detail": ""}
     adapter = None
     try:
