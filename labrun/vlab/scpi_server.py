@@ -94,6 +94,11 @@ class _TcpServer(socketserver.ThreadingTCPServer):
             (self._clients.add if add else self._clients.discard)(sock)
             self._remote.discard(sock)
 
+    def client_count(self) -> int:
+        """How many client connections are open now."""
+        with self._clients_lock:
+            return len(self._clients)
+
     def drop_clients(self) -> int:
         """Close every client connection (as a power cycle or a cable pull would)."""
         with self._clients_lock:
@@ -157,6 +162,11 @@ class InstrumentServer:
     def start(self) -> None:
         """Start accepting clients."""
         self._thread.start()
+
+    @property
+    def clients(self) -> int:
+        """How many client connections are open now (a test sees a leaked session here)."""
+        return self._tcp.client_count()
 
     def drop_connections(self) -> int:
         """Close every client connection; returns how many there were."""
