@@ -264,6 +264,14 @@ class Operation(_Strict):
         return placeholders(self.template)
 
     @property
+    def value_spec(self) -> str:
+        """The format spec of ``{value}`` in the template ('' when plain or absent)."""
+        for _, name, spec, _ in string.Formatter().parse(self.template):
+            if name == "value":
+                return spec or ""
+        return ""
+
+    @property
     def integer(self) -> bool:
         """True when the value placeholder is formatted as an integer (``{value:d}``)."""
         for _, name, spec, _ in string.Formatter().parse(self.template):

@@ -12,6 +12,7 @@ import math
 import re
 import time
 from dataclasses import dataclass
+from decimal import Decimal
 from typing import Any
 
 import numpy as np
@@ -23,6 +24,7 @@ from labrun.scpi import Idn, ScpiError, ScpiSession, compound, parse_idn
 
 log = logging.getLogger("labrun.instruments")
 
+CAP_STEPS = 4  # rounding steps down at the template's precision before giving up
 FLOAT_SLACK = 1e-9  # absorbs binary round-off when comparing against ranges and tolerances
 TRUE_WORDS = {"1", "+1", "ON", "TRUE"}
 FALSE_WORDS = {"0", "+0", "-0", "OFF", "FALSE"}
@@ -160,8 +162,8 @@ class Adapter:
             raise InputError(f"{self.role}: {number} is not a finite value for {op.name}",
                              file=str(self.profile.path), field=f"operations.{op.name}")
         if cap is not None and number > cap + FLOAT_SLACK:
-            raise SafetyError(f"{self.role}: {number:g} {op.unit or ''} exceeds the bench cap "
-                              f"{cap_name} = {cap:g}; nothing was sent")
+            raise SafetyError(f"{self.role}: {number:.9g} {op.unit or ''} exceeds the bench cap "
+                              f"{cap_name} = {cap:g} by {number - cap:.2g}; nothing was sent")
         if op.range is not None and not (op.range[0] - FLOAT_SLACK <= number
                                          <= op.range[1] + FLOAT_SLACK):
             raise self._range_error(op, "range", number, op.range)
@@ -282,12 +284,30 @@ class Adapter:
             target = tuple(fields[k] for k in op.placeholders if k != "index")
         if "value" in fields and op.converts:
             fields["value"] = op.to_wire(fields["value"])  # checked in labrun's unit
+        if "value" in fields and cap is not None and not op.integer:
+            fields["value"] = self.under_cap(op, fields["value"], cap)
         back = self.profile.op(op.readback) if op.readback and target is not None else None
         back_text = None
         if back is not None:
             back_text = back.render(**({"index": checked} if checked is not None else {}))
         return PlannedSetting(self, op, op.render(**fields), back, back_text, target, cap,
                               checked)
+
+    def under_cap(self, op: Operation, wire: float, cap: float) -> float:
+        """The value to send for a capped setting such that, as the template prints it, it is
+        at or under ``cap`` in labrun's unit: printing may round up (10.2 dBm as
+        ``{value:.6e}`` W is 1.047129e-02 W, 10.2000019 dBm), so it steps down by the last
+        printed digit. SafetyError (nothing sent) when that does not bring it under."""
+        spec = op.value_spec
+        for _ in range(CAP_STEPS):
+            text = format(wire, spec)
+            sent = float(text)
+            if float(op.from_wire(sent)) <= cap:
+                return sent
+            exponent = Decimal(text).as_tuple().exponent
+            wire = sent - 10.0 ** (exponent if isinstance(exponent, int) else 0)
+        raise SafetyError(f"{self.role}: {op.name} cannot be printed at or under the bench cap "
+                          f"{cap:g} {op.unit or ''} with {op.template!r}; nothing was sent")
 
     def planned(self, method: str, value: Any) -> list[PlannedSetting]:
         """The checked profile settings an engine setting (adapter method, value) stands for, not
@@ -367,8 +387,8 @@ class Adapter:
         tol = (op.tolerance or 0.0) + FLOAT_SLACK
         if (cap is not None and isinstance(got, int | float) and not isinstance(got, bool)
                 and float(got) > cap + tol):
-            raise SafetyError(f"{self.role}: read-back of {op.name} is {float(got):g}, above the "
-                              f"bench cap {cap:g}")
+            raise SafetyError(f"{self.role}: read-back of {op.name} is {float(got):.9g}, "
+                              f"{float(got) - cap:.2g} above the bench cap {cap:g}")
         if isinstance(want, bool) or isinstance(got, bool):
             ok = bool(got) == bool(want)
         elif isinstance(want, tuple):

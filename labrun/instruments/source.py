@@ -51,8 +51,9 @@ class SourceAdapter(Adapter):
         if self.cap_dbm is not None and self.profile.has("read_power_dbm"):
             current = self.power_dbm()
             if current > self.cap_dbm + FLOAT_SLACK:
-                raise SafetyError(f"{self.role}: power is set to {current:g} dBm, above the "
-                                  f"bench cap {self.cap_dbm:g} dBm; emission not enabled")
+                raise SafetyError(f"{self.role}: power is set to {current:.9g} dBm, "
+                                  f"{current - self.cap_dbm:.2g} dB above the bench cap "
+                                  f"{self.cap_dbm:g} dBm; emission not enabled")
         # Never resent by the session after a lost connection: the instrument may have reset
         # (another power, perhaps above the cap); the run's retry sets the power and checks again.
         with self.session.single_attempt():
