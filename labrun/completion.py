@@ -7,7 +7,9 @@ operations finish) followed by a query whose reply confirms it; ``fixed``: a fix
 bench's settle scale applies); ``stb``: the ``arm`` commands (e.g. ``*CLS`` and ``*OPC``, with
 ``*ESE 1`` in init), then the status byte (IEEE 488.2 ``*STB?``) read until every bit of
 ``mask`` is set (bit 5, value 32: the event status summary, set once ``*OPC`` has fired and
-``*ESE`` enables it). A trace is read only after one of them returned.
+``*ESE`` enables it; a reply that is not a whole number 0..255 is an InstrumentError, and
+profile loading requires ``*CLS`` in ``arm`` so no bit is left from the previous operation).
+A trace is read only after one of them returned.
 """
 
 from __future__ import annotations
@@ -57,6 +59,17 @@ def _wai(session: ScpiSession, spec: CompletionSpec) -> None:
     session.query(spec.query or "*STB?")
 
 
+def _status_byte(reply: str) -> int | None:
+    """The status byte a reply holds (IEEE 488.2 11.2: a whole number 0..255), None for any
+    other reply ("-1" would have every bit set, "inf" overflows, "3.5" is no byte)."""
+    try:
+        number = float(reply.strip())
+        value = int(number)
+    except (ValueError, OverflowError):
+        return None
+    return value if value == number and 0 <= value <= 255 else None
+
+
 def _stb(session: ScpiSession, spec: CompletionSpec) -> None:
     """Send the arm commands, then read the status byte until every bit of ``mask`` is set;
     InstrumentError on a reply that is no byte or after ``timeout_s``."""
@@ -67,11 +80,10 @@ def _stb(session: ScpiSession, spec: CompletionSpec) -> None:
     deadline = time.monotonic() + spec.timeout_s
     while True:
         reply = session.query(query)
-        try:
-            stb = int(float(reply.strip()))
-        except ValueError:
-            raise InstrumentError(f"{query} answered {reply!r}, not a status byte",
-                                  role=session.role, resource=session.resource) from None
+        stb = _status_byte(reply)
+        if stb is None:
+            raise InstrumentError(f"{query} answered {reply!r}, not a status byte (a whole "
+                                  "number 0..255)", role=session.role, resource=session.resource)
         if stb & spec.mask == spec.mask:
             return
         if time.monotonic() >= deadline:

@@ -635,6 +635,10 @@ def _check_completion(path: Path, head: _ProfileHead, spec: CompletionSpec,
             raise _fail(path, f"{where}.arm[{i}]", f"{command!r} would switch a source on")
     if spec.method == "fixed" and spec.fixed_s <= 0:
         raise _fail(path, f"{where}.fixed_s", "method fixed needs fixed_s > 0")
+    if spec.method == "stb" and not any(_header(c) == "*CLS" for c in spec.arm):
+        raise _fail(path, f"{where}.arm", "method stb needs '*CLS' in 'arm': without clearing "
+                                          "the status first, the bits the previous operation "
+                                          "set make every later wait end at once")
 
 
 def parse_profile(data: dict[str, Any], path: Path) -> Profile:

@@ -851,3 +851,16 @@ def test_block_formats_end_to_end_on_the_virtual_lab(lab, tmp_path, fmt, form, b
     exact = fmt == "real64"
     np.testing.assert_allclose(x, state.x_nm, atol=1e-9 if exact else 5e-4)  # 0.5 pm
     np.testing.assert_allclose(y, state.y_dbm, atol=1e-9 if exact else 5e-3)  # 0.005 dB
+
+
+@pytest.mark.parametrize("arm", ['["*OPC"]', '[]', '["*ESE 1", "*OPC"]'])
+def test_status_byte_completion_must_clear_before_it_arms(tmp_path, arm):
+    """An stb wait whose arm list clears nothing keeps the bit the previous sweep set, so
+    every later sweep would look done at once: refused when the profile loads."""
+    from labrun.errors import InputError
+    from labrun.profiles import load_profile
+
+    table = f'completion]\nmethod = "stb"\nmask = 32\narm = {arm}\n'
+    with pytest.raises(InputError) as info:
+        load_profile(_profile_copy(tmp_path, "osa", "uncleared-osa", _stb_osa(table)))
+    assert info.value.field == "completion.arm" and "*CLS" in str(info.value)
