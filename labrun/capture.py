@@ -33,13 +33,15 @@ class Captured:
 
 def check_trace(x: Any, y: Any, want: int) -> None:
     """Refuse (InstrumentError, retried) a trace that is short, ragged or corrupted: ``want``
-    samples, x increasing, every y finite and inside TRACE_DBM_BOUNDS."""
+    samples, x never decreasing and rising from first to last (an integer axis in pm repeats
+    values), every y finite and inside TRACE_DBM_BOUNDS."""
     import numpy as np
 
     problem = None
     if y.size != want or x.size != want:
         problem = f"short trace: {y.size} y and {x.size} x samples, configured {want}"
-    elif not (np.all(np.isfinite(x)) and np.all(np.diff(x) > 0)):
+    elif not (np.all(np.isfinite(x)) and np.all(np.diff(x) >= 0)
+              and (x.size == 1 or x[0] < x[-1])):
         problem = "corrupted trace: x is not finite and increasing"
     elif not (np.all(np.isfinite(y)) and TRACE_DBM_BOUNDS[0] <= float(y.min())
               and float(y.max()) <= TRACE_DBM_BOUNDS[1]):

@@ -98,13 +98,15 @@ PLAUSIBLE_PEAK_DBM = (-150.0, 40.0)
 
 def axis_doubt(band: tuple[float, float] | None, value: Any, seen: dict[str, Any]
                ) -> str | None:
-    """Why a wavelength axis (nm) cannot be right, or None: strictly increasing and finite,
+    """Why a wavelength axis (nm) cannot be right, or None: finite, never decreasing and
+    rising from first to last (an integer axis in pm repeats values),
     as many samples as ``read_points`` says, within the band (plus 100 nm)."""
     import numpy as np
 
     x = np.asarray(value, dtype=float)
-    if x.size < 2 or not np.all(np.isfinite(x)) or not np.all(np.diff(x) > 0):
-        return "the wavelength axis is not strictly increasing finite numbers"
+    if x.size < 2 or not np.all(np.isfinite(x)) or not np.all(np.diff(x) >= 0) \
+            or not x[0] < x[-1]:
+        return "the wavelength axis is not increasing finite numbers"
     points = seen.get("read_points")
     if isinstance(points, int) and x.size != points:
         return f"the axis has {x.size} samples, read_points says {points}"

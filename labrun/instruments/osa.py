@@ -6,6 +6,7 @@ import numpy as np
 
 from labrun.instruments.base import Adapter
 from labrun.profiles import LEVEL_RANGE_DBM
+from labrun.wireunits import FLOOR_DBM, POWER
 
 
 class OsaAdapter(Adapter):
@@ -80,20 +81,29 @@ class OsaAdapter(Adapter):
 
     def accept(self, x: np.ndarray | None, y: np.ndarray) -> None:
         """Refuse (InstrumentError: a fault, read again) a trace this profile cannot have
-        sent: x and y of one length, the axis finite and strictly increasing, the levels
-        finite and inside the profile's ``level_range_dbm``."""
+        sent: x and y of one length, the axis finite, never decreasing and rising from first
+        to last (an integer axis in pm repeats values when samples are closer than 1 pm), the
+        levels finite and inside the profile's ``level_range_dbm`` (a linear trace's samples
+        at or below 0 W read as FLOOR_DBM, exempt from its lower bound)."""
         if x is not None and (x.size != y.size or x.size == 0):
             raise self.instrument_error(f"short trace: x has {x.size} points and y {y.size}")
-        if x is not None and not (np.all(np.isfinite(x)) and np.all(np.diff(x) > 0)):
-            raise self.instrument_error("corrupted trace: the axis is not finite and "
-                                         "strictly increasing")
+        if x is not None and not (np.all(np.isfinite(x)) and np.all(np.diff(x) >= 0)
+                                  and (x.size == 1 or x[0] < x[-1])):
+            raise self.instrument_error("corrupted trace: the axis is not finite, never "
+                                         "decreasing and rising from first to last")
         if y.size == 0 or not np.all(np.isfinite(y)):
             raise self.instrument_error("corrupted trace: the levels are empty or not finite")
         lo, hi = self.profile.trace.levels_dbm if self.profile.trace else LEVEL_RANGE_DBM
-        if float(y.min()) < lo or float(y.max()) > hi:
+        levels = y[y != FLOOR_DBM] if self._linear_levels() else y
+        if levels.size and (float(levels.min()) < lo or float(levels.max()) > hi):
             raise self.instrument_error(
-                f"corrupted trace: levels {float(y.min()):.6g}..{float(y.max()):.6g} dBm "
-                f"outside the profile's level_range_dbm [{lo:g}, {hi:g}]")
+                f"corrupted trace: levels {float(levels.min()):.6g}..{float(levels.max()):.6g} "
+                f"dBm outside the profile's level_range_dbm [{lo:g}, {hi:g}]")
+
+    def _linear_levels(self) -> bool:
+        """True when the instrument sends its levels in a linear power unit (W, mW)."""
+        op = self.profile.operations.get("read_trace_y")
+        return op is not None and op.wire_unit in POWER
 
     def axis_from_settings(self, n: int) -> np.ndarray:
         """The wavelength axis (nm) from the instrument's centre and span read back: n samples
