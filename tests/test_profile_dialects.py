@@ -44,11 +44,11 @@ def _bench_with(lab: VirtualLab, tmp_path: Path, role: str, kind: str, profile: 
 
 def test_init_is_sent_again_after_a_reconnect(lab, tmp_path):
     """An attenuator that starts every connection in local mode (settings refused with SCPI
-    error -221 until SYST:REM): the profile's init enables remote; after the connection drops
+    error -221 until SESS:OWN): the profile's init enables remote; after the connection drops
     the session reconnects and sends the init again, so the next setting is accepted."""
-    lab.servers["attenuator_a"].instrument.remote_enable = "SYST:REM"
+    lab.servers["attenuator_a"].instrument.remote_enable = "SESS:OWN"
     prof = _profile_copy(tmp_path, "attenuator", "local-start-attenuator",
-                         lambda t: t.replace('init = ["*CLS"]', 'init = ["*CLS", "SYST:REM"]'))
+                         lambda t: t.replace('init = ["*CLS"]', 'init = ["*CLS", "SESS:OWN"]'))
     bench = load_bench(_bench_with(lab, tmp_path, "attenuator_a", "attenuator", prof))
     traffic_log = TrafficLog()
     att = open_instrument(bench, "attenuator_a", traffic_log=traffic_log)
@@ -61,13 +61,13 @@ def test_init_is_sent_again_after_a_reconnect(lab, tmp_path):
     finally:
         att.close()
     sent = [e.text for e in traffic_log.entries if e.direction == "write"]
-    assert sum(t.split(";")[0] == "SYST:REM" for t in sent) == 2  # at open, after the drop
+    assert sum(t.split(";")[0] == "SESS:OWN" for t in sent) == 2  # at open, after the drop
 
 
 def test_local_mode_instrument_refuses_settings_without_remote_enable(lab, tmp_path):
-    """The check above can fail: with the shipped profile (no SYST:REM in init) the same
+    """The check above can fail: with the shipped profile (no SESS:OWN in init) the same
     instrument refuses the setting with -221 (SCPI-1999 "Settings conflict")."""
-    lab.servers["attenuator_a"].instrument.remote_enable = "SYST:REM"
+    lab.servers["attenuator_a"].instrument.remote_enable = "SESS:OWN"
     bench = load_bench(lab.write_bench(tmp_path / "bench.toml"))
     att = open_instrument(bench, "attenuator_a")
     try:
@@ -496,7 +496,7 @@ def _sweep_lines(tmp_path: Path, dialect: str, realism: bool
 
 @pytest.mark.parametrize("realism", [False, True])
 def test_sweep_in_the_si_dialect_stores_the_generic_lines(tmp_path, realism):
-    """Done-when of issue 15: every instrument in the si dialect (m, W, rad; SYST:REM; '<code>
+    """Done-when of issue 15: every instrument in the si dialect (m, W, rad; SESS:OWN; '<code>
     <message>' errors; no *OPC?, the OSA polled by SPEC:BUSY?; an ASCII trace in W with its
     count and a start/stop axis; drivers/si-*.toml) stores the same lines as the generic
     dialect, output and input traces alike. Realism off: deterministic, the levels pass
@@ -864,3 +864,26 @@ def test_status_byte_completion_must_clear_before_it_arms(tmp_path, arm):
     with pytest.raises(InputError) as info:
         load_profile(_profile_copy(tmp_path, "osa", "uncleared-osa", _stb_osa(table)))
     assert info.value.field == "completion.arm" and "*CLS" in str(info.value)
+
+
+def test_the_si_remote_enable_is_labruns_own_form(tmp_path):
+    """The si dialect's remote enable is SESS:OWN, a form of labrun's own: the widespread
+    maker form SYST:REM (not in SCPI-1999) leaves the connection in local mode (a setting
+    refused with -221), SESS:OWN lets the same setting through (the lab's own state)."""
+    from labrun.instruments import make_session
+
+    with VirtualLab(scenario(dialect="si")) as lab:
+        bench = load_bench(lab.write_bench(tmp_path / "bench.toml"))
+        for enable, answered in (("SYST:REM", False), ("SESS:OWN", True)):
+            session = make_session(bench, "laser_a").open()
+            try:
+                session.write("*CLS", check_errors=False)  # taken in local mode too
+                session.write(enable, check_errors=False)
+                wavelength = 1550.5 if answered else 1551.5
+                session.write(f"SOUR:WAV {wavelength * 1e-9:.6e}", check_errors=False)
+                errors = session.query("SYST:ERR?")  # the oldest entry
+                assert errors.startswith("0 ") is answered, (enable, errors)
+                assert (lab.state.lasers["laser_a"].wavelength_nm ==
+                        pytest.approx(wavelength)) is answered
+            finally:
+                session.close()

@@ -149,7 +149,7 @@ def test_fallback_darkens_the_others_when_one_role_never_answers(tmp_path, inst_
 
 def test_fallback_enables_remote_on_an_instrument_in_local_mode(tmp_path):
     """Every instrument in the virtual lab's si dialect, where a fresh connection is refused
-    every setting and query until SYST:REM (its profiles' safe_off_init): the fallback's fresh
+    every setting and query until SESS:OWN (its profiles' safe_off_init): the fallback's fresh
     connections send it first, so every light-carrying role ends dark (with it
     skipped, OUTP:STAT OFF would be refused with -221 and the lasers stay on)."""
     sc = scenario(dialect="si")

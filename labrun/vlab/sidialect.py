@@ -9,7 +9,7 @@ in W with the number of values first, its axis only as ``SPEC:STAR?``/``SPEC:STO
 power meter answering each value with its unit (``2.5e-05 W``); an attenuator answering its
 shutter as ``GATE 1``; and each connection starting in local mode, where every command and
 query but the IEEE 488.2 common ones and ``SYST:ERR?`` is refused (error -221) until
-``SYST:REM`` is sent. The lasers keep the generic headers (in m and W).
+``SESS:OWN`` is sent. The lasers keep the generic headers (in m and W).
 """
 
 from __future__ import annotations
@@ -32,7 +32,7 @@ from labrun.vlab.siminstruments import (
     source_switch,
 )
 
-REMOTE_ENABLE = "SYST:REM"
+REMOTE_ENABLE = "SESS:OWN"
 ERROR_REPLY = "{code} {short}"
 
 

@@ -115,7 +115,7 @@ class SimInstrument:
         t.add("SYSTem:ERRor[:NEXT]", self._next_error, query=True)
         t.add("SYSTem:ERRor:COUNt", lambda c: str(len(self.errors)), query=True)
         t.add("SYSTem:VERSion", lambda c: "1999.0", query=True)
-        t.add("SYSTem:REMote", lambda c: None, nargs=(0, 0))
+        t.add("SESSion:OWN", lambda c: None, nargs=(0, 0))  # the si remote enable: labrun's own
         if opc:
             t.add("STATus:BUSY", lambda c: "1" if self.busy() else "0", query=True)
 
