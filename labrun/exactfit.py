@@ -152,7 +152,8 @@ def fit_power_offsets(t: dict[str, np.ndarray], tone_corr_db: np.ndarray, u_a_db
     offset a; its mean over the points, with a standard uncertainty from the scatter (Type A)
     and the OSA relative amplitude (Type B, not averaged down). (2) The prior rows offset/u of
     each arm, u the bench's stated launched-power calibration uncertainty. A common offset of
-    both arms changes no line ratio (the NLSE's spectrum depends on gamma |A|^2 only), so their
+    both arms cannot be told apart from gamma (the NLSE is unchanged under P -> c P,
+    gamma -> gamma / c; it does change every sideband ratio at fixed gamma), so their
     sum is held by the prior alone: without it (``prior=False``) the system is singular. An
     arm with u = 0 is held at 0.
     """

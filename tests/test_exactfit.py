@@ -61,3 +61,26 @@ def test_exact_fit_recovers_gamma_d_and_slope(runs) -> None:
     rows = {c["source"]: c["contribution"] for c in res["gamma_small_signal"].budget}
     assert rows["model (closed form vs exact)"] == pytest.approx(
         abs(res["gamma_small_signal"].value - g.value), rel=1e-9)
+
+
+def test_exact_fit_moves_upper_limits_with_their_line(runs) -> None:
+    # The first sidebands of three spacing points undetected, each carrying an upper limit
+    # 0.05 dB above its true (RK4IP) line. The exact fit corrects the lines by the split-step
+    # minus closed-form difference before its closed-form refit; a limit must move with its
+    # line, or it no longer sits above the corrected model. Moved, the limits lie above the
+    # exact model and change nothing (a respected censored point carries no residual); left
+    # in place, four of the six are exceeded by several tenths of a dB and drag D to the
+    # wrong sign (measured: +0.325 instead of -0.300 ps/(nm km)).
+    power, spacing = runs
+    sp = [dict(r) for r in spacing]
+    for i in (3, 7, 11):  # 350 GHz at each wavelength
+        for key in ("sideband_high_1", "sideband_low_1"):
+            sp[i]["limit_" + key] = sp[i][key] + 0.05
+            sp[i][key] = None
+    res = fit_spool([power, sp], FIB.length_km, FIB.loss_db_per_km)
+    d = res["dispersion"]
+    assert d.extra["n_upper_limits"] == 6
+    assert d.extra["n_upper_limits_exceeded"] == 0
+    assert res["gamma"].value == pytest.approx(11.0, rel=1e-4)
+    assert d.value == pytest.approx(-0.3, rel=2e-3)
+    assert res["dispersion_slope"].value == pytest.approx(0.019, rel=0.01)

@@ -3,10 +3,12 @@
 A seeded virtual-lab power sweep whose laser a really launches 0.4 dB more than recorded (the
 lab's per-laser realism offset, set by hand here; laser b's at 0) and whose bench states a
 launched-power calibration uncertainty of 0.2 dB per arm. The offsets' difference is measured
-by the output tone ratio; their sum changes no line ratio, so the prior holds it and the fitted
-offsets are each half the truth, within their uncertainty. The expected numbers are worked from
-the weighted least-squares solution of the two prior rows and the tone-ratio row (a linear
-Gaussian problem: posterior mean and covariance in closed form, checked here by hand).
+by the output tone ratio; their sum cannot be told apart from gamma (the NLSE is unchanged
+under P -> c P, gamma -> gamma / c), so the prior holds it at 0 and the fitted offsets are
++-half the truth's difference (a +0.2 dB, b -0.2 dB), each within its uncertainty of the
+truth. The expected numbers are worked from the weighted least-squares solution of the two
+prior rows and the tone-ratio row (a linear Gaussian problem: posterior mean and covariance in
+closed form, checked here by hand).
 """
 
 from __future__ import annotations
@@ -80,8 +82,9 @@ def test_offset_on_arm_a_is_recovered_within_its_uncertainty(sweep) -> None:
     assert abs(a.value - OFFSET_A) <= a.u95  # the truth inside U (k = 2) ...
     assert abs(b.value - 0.0) <= b.u95
     assert a.extra["correlation_ab"] > 0.9  # ... and the two strongly correlated (sum free)
-    # gamma stays within its expanded uncertainty of the truth (the unrecovered half of the
-    # common offset, 0.2 dB, moves it by 11 x (10^(0.2/20) - 1) = +2.3 %) ...
+    # gamma stays within its expanded uncertainty of the truth (the unrecovered sum of the
+    # offsets, 0.4 dB, i.e. a common 0.2 dB on each arm, moves it by 10^(0.4/20) - 1 =
+    # 10^(0.2/10) - 1 = +4.7 %, as the formula below) ...
     g = res["gamma"]
     assert abs(g.value - GAMMA) <= g.u95
     # ... and its budget carries the offsets as one row, sqrt(c^T V c): gamma goes as
