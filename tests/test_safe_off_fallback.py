@@ -227,3 +227,25 @@ def test_safe_off_connections_never_send_init(tmp_path):
         _light(lab, "laser_a")
         assert main(["off", "--bench", str(path)]) == 0
         assert dark(lab) and lab.state.lasers["laser_a"].power_dbm == 3.25
+
+
+def test_an_attenuator_with_an_unreadable_error_queue_still_ends_dark(tmp_path):
+    """The same for an attenuator (two steps, maximum attenuation then shutter closed, each
+    checked): its error replies never match the declared form, yet both steps are sent and
+    it reads back dark, so it counts as dark (the lab's own state)."""
+    with VirtualLab(scenario()) as lab:
+        bench = write_bench(lab, tmp_path)
+        src = Path(find_file("generic-attenuator.toml", "drivers")).read_text(encoding="utf-8")
+        src = _unparseable_errors(src.replace('name = "generic-attenuator"',
+                                              'name = "odd-attenuator"'))
+        prof = tmp_path / "odd-attenuator.toml"
+        prof.write_text(src, encoding="utf-8")
+        text = bench.read_text(encoding="utf-8")
+        head, _, tail = text.partition("[instruments.attenuator_a]")
+        tail = tail.replace('profile = "generic-attenuator"', f'profile = "{prof}"', 1)
+        bench.write_text(head + "[instruments.attenuator_a]" + tail, encoding="utf-8")
+        with lab.state.lock:
+            for att in lab.state.attenuators.values():
+                att.output, att.attenuation_db = True, 3.0
+        assert safe_off_fresh(load_bench(bench), pause_s=0.05, budget_s=0.5) == []
+        assert dark(lab) and not lab.state.attenuators["attenuator_a"].output
