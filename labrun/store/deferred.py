@@ -21,22 +21,26 @@ import sqlite3
 import threading
 from collections.abc import Callable
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 from labrun.errors import InputError
 from labrun.preload import forget, when_bench_opens
 from labrun.store.revisions import require_known
 from labrun.store.statusview import BUSY_TIMEOUT_S, is_sqlite, sqlite_location
 
+if TYPE_CHECKING:
+    from labrun.store.db import Store
+
 
 class DeferredStore:
     """A Store being opened on a thread: ``url`` at once, anything else once it is open."""
 
-    def __init__(self, url: str, where: str, *, opener: Callable[[str], Any] | None = None):
+    def __init__(self, url: str, where: str, *,
+                 opener: Callable[[str], Store] | None = None):
         self.url = url
         self._where = where
         self._opener = opener or _open_store
-        self._store: Any = None
+        self._store: Store | None = None
         self._error: BaseException | None = None
         self._thread = threading.Thread(target=self._open, name="labrun-store-open",
                                         daemon=True)
@@ -59,15 +63,18 @@ class DeferredStore:
         except BaseException as exc:  # noqa: BLE001 - raised where the store is first used
             self._error = exc
 
-    def result(self) -> Any:
+    def result(self) -> Store:
         """The open Store (waits for the thread; re-raises what it met)."""
         self.start()
         self._thread.join()
         if self._error is not None:
             raise self._error
+        assert self._store is not None  # the thread either opened it or kept its error
         return self._store
 
     def __getattr__(self, name: str) -> Any:
+        """Any attribute of the open Store (untyped: the engine reaches it through
+        ``RunStore``'s typed methods)."""
         return getattr(self.result(), name)
 
     def close(self) -> None:
@@ -82,7 +89,7 @@ class DeferredStore:
             self._store.close()
 
 
-def _open_store(where: str) -> Any:
+def _open_store(where: str) -> Store:
     """``labrun.store.db.open_store`` (SQLAlchemy imported on first use)."""
     from labrun.store.db import open_store
 
