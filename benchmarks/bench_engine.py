@@ -261,14 +261,14 @@ class LoopClock:
 
 
 def labrun_run(folder: Path, time_scale: float, n: int, samples: int, settle: float
-               ) -> tuple[float, float, list[float], float]:
+               ) -> tuple[float, float, list[float], Any]:
     """labrun on a fresh served lab: (start-to-exit seconds of run_plan, point-loop seconds,
-    seconds per point, `labrun check`'s estimate of the run)."""
+    seconds per point, `labrun check`'s rehearsal of the run: whole run and point loop)."""
     proc, bench_path = _serve(folder, time_scale)
     clock = LoopClock()
     try:
         plan = load_plan(_write_plan(folder, n, samples, settle))
-        estimate = rehearse(plan, load_bench(bench_path)).total_s
+        estimate = rehearse(plan, load_bench(bench_path))
         wall, _ = _run_bench(folder, bench_path, n, samples, settle)
     finally:
         clock.restore()
@@ -319,8 +319,11 @@ def realistic(folder: Path, n: int, time_scale: float, settle: float) -> None:
           f"{l_points[0]:.3f} s)   target <= 1.03x")
     print(f"    labrun run_plan {wall:8.3f} s  ratio {wall / total:6.3f}x  (in-process call: "
           f"{wall - loop:.3f} s outside the point loop)")
-    print(f"    check estimate  {estimate:8.3f} s  {100 * (estimate / wall - 1):+6.1f} % of "
-          f"run_plan, {100 * (estimate / loop - 1):+.1f} % of the loop   target within 5 %")
+    whole, points = estimate.total_s, estimate.points_s
+    print(f"    check estimate  {whole:8.3f} s  {100 * (whole / wall - 1):+6.1f} % of run_plan "
+          f"(whole run: opening {estimate.opening_s:.3f} s + points {points:.3f} s + safe-off "
+          f"{estimate.finish_s:.3f} s)   target within 5 %")
+    print(f"    check, points   {points:8.3f} s  {100 * (points / loop - 1):+6.1f} % of the loop")
     cli, first, last = cli_run(folder, time_scale, n, 20001, settle)
     print(f"    labrun run CLI  {cli:8.3f} s  ratio {cli / total:6.3f}x  (own process: start to "
           f"first exchange {first:.3f} s, last exchange to exit {last:.3f} s)")

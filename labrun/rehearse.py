@@ -8,7 +8,10 @@ message and answer from what was set on them (a query ``X?`` answers the value l
 trace as an empty floor. Its clock only moves when the engine waits or an OSA sweeps (the sweep
 time comes from the OSA profile's ``sweep_time`` or from the plan's rough model), so the time it
 reaches is the run's duration as the instruments impose it, and the traffic log it fills holds
-the messages the run sends. Nothing is reduced and nothing is stored.
+the messages the run sends. The whole run is rehearsed, not only its points: opening the bench
+(connects, identification, init, error queues), the points, and the final safe-off the run ends
+with (each role's own steps and stated settle times; the roles go dark in parallel, so the
+longest counts). Nothing is reduced and nothing is stored.
 """
 
 from __future__ import annotations
@@ -262,7 +265,8 @@ class PointRehearsal:
 
 @dataclass
 class Rehearsal:
-    """A rehearsed run: every point, the opening traffic, the total simulated time."""
+    """A rehearsed run: the opening, every point and the final safe-off (traffic and simulated
+    seconds of each); ``total_s`` is the whole run, start to exit."""
 
     points: list[PointRehearsal]
     opening: list[TrafficLogEntry]
@@ -270,11 +274,44 @@ class Rehearsal:
     sweep_s: float
     sweep_source: str
     traffic_log: TrafficLog
+    opening_s: float = 0.0
+    finish: list[TrafficLogEntry] = field(default_factory=list)
+    finish_s: float = 0.0
 
     @property
     def sweeps_s(self) -> float:
         """Simulated seconds spent sweeping."""
         return self.sweep_s * sum(p.sweeps for p in self.points)
+
+    @property
+    def points_s(self) -> float:
+        """Simulated seconds of the point loop."""
+        return sum(p.seconds for p in self.points)
+
+    @property
+    def fixed_s(self) -> float:
+        """Simulated seconds outside the point loop: opening the bench and the final safe-off."""
+        return self.opening_s + self.finish_s
+
+
+def rehearse_safe_off(bench: Bench, instruments: Any, clock: SimClock) -> None:
+    """The run's final safe-off (labrun.safe_off.darken_role over the run's own connections) on
+    the simulated instruments: every role's steps and settle waits in turn on the clock, which
+    then stands at the longest role's end (the run darkens the roles in parallel)."""
+    from labrun.roles import OFF_ROLES
+    from labrun.safe_off import darken_role
+
+    start, longest = clock(), 0.0
+    for role in (r for r in OFF_ROLES if r in bench.instruments):
+        own = instruments.get(role) if instruments is not None else None
+        if own is not None:
+            own.sleep = clock.sleep
+        clock.now = start
+        problem = darken_role(bench, role, own)
+        if problem is not None:
+            raise RuntimeError(f"rehearsed safe-off: {problem}")
+        longest = max(longest, clock() - start)
+    clock.now = start + longest
 
 
 def sweep_time(plan: Plan, bench: Bench) -> tuple[float, str]:
@@ -311,18 +348,22 @@ def rehearse(plan: Plan, bench: Bench, *, limit: int | None = None) -> Rehearsal
             runner = DryRunner(plan, bench, clock, log)
             try:
                 runner.open()
-                opening = list(log.entries)
+                opening, opening_s = list(log.entries), clock()
                 for spec in specs:
                     start, mark = clock(), len(log.entries)
                     traces, _, _ = runner.measure(spec)
                     points.append(PointRehearsal(spec, log.entries[mark:], clock() - start,
                                                  len(traces)))
+                start, mark = clock(), len(log.entries)
+                rehearse_safe_off(bench, runner.instruments, clock)
+                finish, finish_s = log.entries[mark:], clock() - start
             finally:
                 with contextlib.suppress(Exception):
                     runner.close()
     finally:
         lib.forget()
-    return Rehearsal(points, opening, clock(), sweep_s, source, log)
+    return Rehearsal(points, opening, clock(), sweep_s, source, log, opening_s=opening_s,
+                     finish=finish, finish_s=finish_s)
 
 
 def estimate_per_point(plan: Plan, bench: Bench, points: int = 4) -> float | None:

@@ -83,12 +83,18 @@ def dry_run(plan: Plan, bench: Bench, *, first: int = FIRST_POINTS) -> dict[str,
         r, refusal = None, str(exc)
     if r is not None:
         estimated = r.total_s
+        first_s = r.points[0].seconds if r.points else 0.0
         estimate.update(settle_s=round(r.total_s - r.sweeps_s, 1),
                         osa_sweeps_s=round(r.sweeps_s, 1), sweep_s=round(r.sweep_s, 4),
                         sweep_source=r.sweep_source,
-                        basis="the engine's own point loop rehearsed on simulated instruments: "
-                              "its settle waits (x settle_scale) plus the OSA sweep time per "
-                              "sweep")
+                        startup_s=round(r.opening_s + first_s, 2),
+                        later_points_s=round(r.points_s - first_s, 2),
+                        safe_off_s=round(r.finish_s, 2),
+                        exchanges=len(r.traffic_log.entries),
+                        basis="the whole run rehearsed by the engine on simulated instruments "
+                              "(opening the bench, every point, the final safe-off): its settle "
+                              "waits (x settle_scale) plus the OSA sweep time per sweep; the "
+                              "exchanges' own round trips are not counted")
         for p in r.points[:first]:
             first_points.append({
                 "index": p.spec.index, "key": p.spec.key, "setpoint": _jsonable(p.spec.setpoint),
@@ -148,9 +154,14 @@ def render_text(r: Mapping[str, Any]) -> str:
     if r["estimated_s"] is None:
         when = "time   not estimated: the plan is refused"
     else:
-        when = (f"time   about {_duration(r['estimated_s'])} (settling {est['settle_s']} s, OSA "
-                f"sweeps {est['osa_sweeps_s']} s at {est['sweep_s']:g} s each from the "
-                f"{est['sweep_source']}, settle_scale {est['settle_scale']:g})")
+        more = max(r["points"] - 1, 0)
+        when = (f"time   start-up ~{est['startup_s']:g} s (opening the bench, first point), "
+                f"{more} more points ~{est['later_points_s']:g} s, safe-off ~"
+                f"{est['safe_off_s']:g} s: total about {_duration(r['estimated_s'])}\n"
+                f"       (settling {est['settle_s']} s, OSA sweeps {est['osa_sweeps_s']} s at "
+                f"{est['sweep_s']:g} s each from the {est['sweep_source']}, settle_scale "
+                f"{est['settle_scale']:g}; {est['exchanges']} exchanges, their round trips "
+                "not counted)")
     out = [
         f"plan   {r['plan']}: {r['name']} (spool {r['spool']})",
         f"bench  {r['bench_file']}: {r['bench']}",

@@ -11,6 +11,7 @@ import logging
 import math
 import re
 import time
+from collections.abc import Callable
 from dataclasses import dataclass
 from decimal import Decimal
 from typing import Any
@@ -99,6 +100,7 @@ class Adapter:
         self.profile: Profile = spec.profile
         self.session = session
         self.settle_scale = settle_scale
+        self.sleep: Callable[[float], None] = time.sleep  # labrun check: its simulated clock
         self._idn: Idn | None = None
         self._trace_format: str | None = None
 
@@ -404,7 +406,7 @@ class Adapter:
         """Wait a settling time, scaled by the bench's settle_scale (0 in the virtual lab)."""
         delay = seconds * self.settle_scale
         if delay > 0:
-            time.sleep(delay)
+            self.sleep(delay)
 
     def optional_read(self, name: str) -> Any:
         """Read an operation the profile may not map; None when it does not."""
