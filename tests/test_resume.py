@@ -297,7 +297,7 @@ def test_resume_waits_for_the_killed_runs_watcher_to_finish(tmp_path):
     """A killed run's guardian watcher (labrun/guardian.py) may still be darkening the bench
     when someone resumes at once: the resume waits for it before it opens the bench, else the
     watcher would switch off the resumed run's light mid-point. A stand-in watcher process for
-    a dead run process lives 0.8 s; the resume's first event must come after it ended."""
+    a dead run process lives 2 s; the resume's first event must come after it ended."""
     import subprocess
     import sys
     import threading
@@ -310,8 +310,6 @@ def test_resume_waits_for_the_killed_runs_watcher_to_finish(tmp_path):
 
     dead = subprocess.Popen([sys.executable, "-c", "pass"])
     dead.wait()  # a pid no process has any more: the killed run's
-    stand_in = subprocess.Popen([sys.executable, "-c", "import time; time.sleep(0.8)",
-                                 "labrun.guardian", "--parent", str(dead.pid)])
     ended: dict[str, datetime] = {}
 
     def stop(*args, **kwargs):
@@ -331,6 +329,8 @@ def test_resume_waits_for_the_killed_runs_watcher_to_finish(tmp_path):
                      seams=Seams(reduce_trace=stop))
         run_id = store.latest_run_id()
         store.update_run(run_id, status="running", pid=dead.pid)  # as a SIGKILL leaves it
+        stand_in = subprocess.Popen([sys.executable, "-c", "import time; time.sleep(2.0)",
+                                     "labrun.guardian", "--parent", str(dead.pid)])
         assert watchers_of(dead.pid) == [stand_in.pid]
         assert wait_for_watchers_of(dead.pid, 0.05) == [stand_in.pid]  # still there
         waiter = threading.Thread(target=note_end)
