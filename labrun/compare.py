@@ -39,10 +39,11 @@ def _param(record: Any, names: tuple[str, ...]) -> tuple[str, Any] | None:
 
 
 def _entry(value: float | None, unit: str, model: str, runs: list[int], *,
-           stderr: float | None = None, u95: float | None = None) -> dict[str, Any]:
-    """One compared quantity as JSON."""
-    return {"value": value, "stderr": stderr, "u95": u95, "unit": unit, "model": model,
-            "runs": runs}
+           stderr: float | None = None, u95: float | None = None,
+           u95_kind: str | None = None) -> dict[str, Any]:
+    """One compared quantity as JSON (``u95_kind``: what u95 is, as ParameterRecord says)."""
+    return {"value": value, "stderr": stderr, "u95": u95, "u95_kind": u95_kind, "unit": unit,
+            "model": model, "runs": runs}
 
 
 def headline_values(record: Any, spool: Any) -> dict[str, Any]:
@@ -55,17 +56,19 @@ def headline_values(record: Any, spool: Any) -> dict[str, Any]:
     if gamma:
         name, p = gamma
         out["gamma_per_w_per_km"] = _entry(p.value, p.unit, p.model, runs, stderr=p.stderr,
-                                           u95=p.u95) | {"parameter": name}
+                                           u95=p.u95, u95_kind=p.u95_kind()) | {"parameter": name}
     disp = _param(record, ("dispersion",))
     if disp:
         p = disp[1]
         out["abs_dispersion_ps_per_nm_km"] = _entry(abs(p.value), p.unit, p.model, runs,
-                                                    stderr=p.stderr, u95=p.u95)
+                                                    stderr=p.stderr, u95=p.u95,
+                                                    u95_kind=p.u95_kind())
     slope = _param(record, ("dispersion_slope",))
     if slope:
         p = slope[1]
         out["dispersion_slope_ps_per_nm2_km"] = _entry(p.value, p.unit, p.model, runs,
-                                                       stderr=p.stderr, u95=p.u95)
+                                                       stderr=p.stderr, u95=p.u95,
+                                                    u95_kind=p.u95_kind())
     if loss is not None:
         out["loss_db_per_km"] = _entry(loss, "dB/km", "nominal, from the spool record", [])
     if length is not None and loss is not None:
@@ -104,7 +107,8 @@ def _efficiency(gamma: Any, disp: Any, slope: Any, length: float, loss: float,
                   f"{COMMON['power_dbm']:g} dBm per tone, {COMMON['wavelength_nm']:g} nm, "
                   f"D = {'fitted' if disp else '0 (not fitted)'}", runs,
                   stderr=None if gamma.stderr is None else rel * gamma.stderr,
-                  u95=None if gamma.u95 is None else rel * gamma.u95)
+                  u95=None if gamma.u95 is None else rel * gamma.u95,
+                  u95_kind=gamma.u95_kind())
 
 
 def compare_spools(store: Store, labels: list[str]) -> dict[str, Any]:

@@ -535,8 +535,11 @@ def fit_dispersion(p_a_w, p_b_w, spacing_ghz, wavelength_a_nm, side, ratio, *, l
     Standard errors from the Jacobian at the solution (cov = s^2 (J^T J)^-1).
     ``censored`` marks rows whose ``ratio`` is an upper limit (the line was not detected): their
     residual is one-sided, zero while the model is below the limit and the excess in dB above
-    it (the least-squares form of a censored observation, as in J. Tobin, Econometrica 26, 24
-    (1958)). The starts and the point count use the detected rows only.
+    it: a one-sided least-squares penalty, an approximation to the censored-data likelihood of
+    J. Tobin, Econometrica 26, 24 (1958), whose censored points carry -log Phi((limit -
+    model)/sigma) instead; the two agree only where the model is far above the limit (and
+    far below it, where both vanish). The starts and the point count use the detected rows
+    only.
     """
     arrs = [np.asarray(v, float) for v in (p_a_w, p_b_w, spacing_ghz, wavelength_a_nm, ratio)]
     p_a, p_b, sp, lam, r = arrs
@@ -1014,11 +1017,14 @@ def _fit_table(t: dict[str, np.ndarray], spool_length_km: float, loss_db_per_km:
             loss_db_per_km=loss_db_per_km, reference_wavelength_nm=reference_wavelength_nm,
             copolar=np.tile(c_eff, 2)[sel], start=dispersion_start, censored=cens[sel]))
         if "dispersion" not in results:
+            det = sel & ~cens
             results["dispersion"] = refused(
                 "Inoue efficiency vs spacing", "ps/(nm km)",
-                f"needs >= 4 first-sideband ratios <= {small_signal_max_ratio_db} dB on >= 3 "
-                f"spacings of co-polarised points; the run has {int(sel.sum())} on "
-                f"{np.unique(np.round(np.tile(spacing, 2)[sel], 6)).size} spacing(s)")
+                f"needs >= 4 detected first-sideband ratios <= {small_signal_max_ratio_db} dB "
+                f"on >= 3 spacings of co-polarised points; the run has {int(det.sum())} on "
+                f"{np.unique(np.round(np.tile(spacing, 2)[det], 6)).size} spacing(s)"
+                + (f" (and {int((sel & cens).sum())} upper limit(s) of undetected lines, "
+                   "which do not count)" if (sel & cens).any() else ""))
     d_known, s_known, d_source = dispersion_ps_per_nm_km, slope_ps_per_nm2_km, "given"
     if d_known is None and math.isfinite(results.get("dispersion", refused("", "", "")).value):
         d_known, d_source = results["dispersion"].value, "fitted"

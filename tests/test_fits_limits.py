@@ -3,8 +3,9 @@
 The detected first sidebands of a spacing sweep come from the split-step model of the lab
 (labrun.physics.nlse); an undetected line carries the limit the reduction stated. A limit is a
 censored observation: it may only push the model down where the model exceeds it and must do
-nothing where the model lies below it (the least-squares form of the censored likelihood of
-J. Tobin, Econometrica 26, 24 (1958)). Treating a limit as a measurement breaks the second.
+nothing where the model lies below it (a one-sided least-squares penalty, an approximation to
+the censored-data likelihood of J. Tobin, Econometrica 26, 24 (1958), which it matches only
+where the model is far above the limit). Treating a limit as a measurement breaks the second.
 """
 
 from __future__ import annotations
@@ -152,3 +153,22 @@ def test_stored_limits_reach_the_point_table(tmp_path) -> None:
     assert sorted(t["limit_sideband_high_3"].tolist()) == pytest.approx(stored)
     assert len(stored) == 2
     assert t["limit_tone_high_0"].isna().all()  # detected lines carry no limit
+
+
+def test_dispersion_refusal_counts_detected_points_only(sweep) -> None:
+    # Three detected first sidebands and three limits: fit_dispersion needs >= 4 detected
+    # points (a limit is not a measured point), so the fit refuses and its message must count
+    # the 3 it has, not the 6 rows it was given.
+    p = P_DBM
+    rows = [{"power_a_dbm": p, "power_b_dbm": p, "spacing_ghz": s, "wavelength_a_nm": 1550.0,
+             "tone_high_0": 0.0, "tone_low_0": 0.0, "sideband_high_1": 10 * math.log10(r)}
+            for s, r in zip(SPACINGS[:3], sweep["r"][:3], strict=True)]
+    rows += [{"power_a_dbm": p, "power_b_dbm": p, "spacing_ghz": s, "wavelength_a_nm": 1550.0,
+              "tone_high_0": 0.0, "tone_low_0": 0.0, "sideband_high_1": None,
+              "limit_sideband_high_1": float(10 * math.log10(r)) + 10.0}
+             for s, r in zip(EXTRA, sweep["r_extra"], strict=True)]
+    res = fit_run(rows, FIB.length_km, FIB.loss_db_per_km)["dispersion"]
+    assert math.isnan(res.value)
+    msg = res.warnings[0]
+    assert "the run has 3 on 3 spacing(s)" in msg
+    assert "3 upper limit(s)" in msg

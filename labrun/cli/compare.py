@@ -8,6 +8,9 @@ from typing import Any
 
 from labrun.store import DEFAULT_DB
 
+U_LEGEND = ("U k=2: the GUM budget's expanded uncertainty 2 u_c; U95 t: Student t 95 % "
+            "half-width of the statistical error alone (no budget)")
+
 ROWS = (("gamma_per_w_per_km", "gamma"), ("abs_dispersion_ps_per_nm_km", "|D|"),
         ("dispersion_slope_ps_per_nm2_km", "dispersion slope"), ("loss_db_per_km", "loss"),
         ("effective_length_km", "effective length"),
@@ -32,11 +35,16 @@ def register(subparsers: Any) -> None:
 
 
 def _value(entry: dict[str, Any] | None) -> str:
+    """'10.89 (U k=2 0.0047) 1/(W km)': the expanded uncertainty labelled by what it is, as
+    ``labrun fit`` labels it ('U k=2' the GUM budget's 2 u_c, 'U95 t' a Student-t half-width)."""
+    from labrun.spoolfits import GUM_K2
+
     if not entry or entry.get("value") is None:
         return "-"
     text = f"{entry['value']:.4g}"
     if entry.get("u95") is not None:
-        text += f" +/- {entry['u95']:.2g}"
+        label = "U k=2" if entry.get("u95_kind") == GUM_K2 else "U95 t"
+        text += f" ({label} {entry['u95']:.2g})"
     return f"{text} {entry['unit']}"
 
 
@@ -56,7 +64,7 @@ def _side_by_side(rep: dict[str, Any]) -> str:
         out.append(f"{name:<18}" + "".join(f"{_value(sp.get(key)):<{width}}" for sp in spools))
     out.append(f"{'fit (runs)':<18}" + "".join(f"{_source(sp):<{width}}" for sp in spools))
     c = rep["common_conditions"]
-    out.append(f"(+/- U95, expanded uncertainty, 95 %; efficiency at {c['spacing_ghz']:g} GHz, "
+    out.append(f"({U_LEGEND}; efficiency at {c['spacing_ghz']:g} GHz, "
                f"{c['power_dbm']:g} dBm per tone, {c['wavelength_nm']:g} nm)")
     return "\n".join(out)
 
@@ -69,7 +77,8 @@ def _history(rep: dict[str, Any]) -> str:
         out.append(f"  fit {h['fit_id']:>4}  {h['fitted_at'][:19]}  runs {runs:<10} "
                    f"gamma {_value(h.get('gamma_per_w_per_km'))}"
                    f"  |D| {_value(h.get('abs_dispersion_ps_per_nm_km'))}{flag}")
-    out.append("(+/- U95; CHANGED: differs from the previous fit by more than the combined U95)")
+    out.append(f"({U_LEGEND}; CHANGED: differs from the previous fit by more than the "
+               "two fits' expanded uncertainties combined, sqrt(U1^2 + U2^2))")
     return "\n".join(out)
 
 
