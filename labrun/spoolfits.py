@@ -21,6 +21,9 @@ from labrun.errors import InputError
 from labrun.store import Store
 from labrun.store.models import Fit, FitParameter, Run, Spool
 
+FAR_APART_H = 24.0  # runs started further apart than this are taken to have their own
+# launched-power errors (labrun's choice: a bench's launched power re-checked daily is common
+# practice)
 COVERAGE_P = 0.95  # expanded uncertainty coverage probability (GUM 6.2, 6.3)
 GUM_K2 = "GUM expanded uncertainty U = 2 u_c (k = 2)"
 STUDENT_T95 = "Student t 95 % half-width of the statistical standard error (no budget)"
@@ -171,9 +174,67 @@ def _bench_terms(bench_text: str | None) -> tuple[Any, Any]:
             Polarisation.model_validate(data.get("polarisation", {})))
 
 
-def _spool_of(store: Store, run_ids: list[int]) -> tuple[Spool, str | None]:
-    """The one spool the runs were measured on, and the first run's stored bench text
-    (InputError: unknown run, mixed or no spool)."""
+@dataclass(frozen=True)
+class RunOrigin:
+    """Where and when a run was measured: what decides whether runs share launched-power errors."""
+
+    run_id: int
+    bench_name: str | None
+    bench_text: str | None
+    started_at: datetime | None
+
+
+def shared_offset_warnings(origins: list[RunOrigin]) -> list[str]:
+    """Warnings when the runs of one fit come from different benches or were started far apart.
+
+    The exact fit carries ONE pair of launched-power offsets for all the runs and takes the
+    first run's bench calibration as their prior; runs on different benches or days have
+    independent launched-power errors, which that assumes away (said, not silent).
+    """
+    out: list[str] = []
+    if len(origins) < 2:
+        return out
+    first = origins[0]
+    names = {o.bench_name for o in origins}
+    if len(names) > 1 or len({o.bench_text for o in origins}) > 1:
+        what = ("benches " + ", ".join(repr(n) for n in sorted(names, key=str))
+                if len(names) > 1 else f"bench {first.bench_name!r} with different bench files")
+        out.append(f"runs {', '.join(str(o.run_id) for o in origins)} come from {what}: one "
+                   "pair of launched-power offsets is fitted for all of them, with run "
+                   f"{first.run_id}'s calibration as prior, though each bench's launched-power "
+                   "errors are its own (fit each bench's runs apart to check)")
+    times = sorted((o.started_at, o.run_id) for o in origins if o.started_at is not None)
+    if len(times) >= 2:
+        span_h = (times[-1][0] - times[0][0]).total_seconds() / 3600.0
+        if span_h > FAR_APART_H:
+            out.append(f"runs {times[0][1]} and {times[-1][1]} were started {span_h / 24:.1f} "
+                       f"days apart (more than {FAR_APART_H:g} h): one pair of launched-power "
+                       "offsets is fitted for all the runs, though launched-power errors on "
+                       "different days are independent")
+    return out
+
+
+def _with_warnings(results: dict[str, Any], notes: list[str]) -> dict[str, Any]:
+    """The fitted results with ``notes`` added to the exact ones and the power offsets (to every
+    fitted result when there is no exact one)."""
+    from dataclasses import replace
+
+    import numpy as np
+
+    if not notes:
+        return results
+    fitted = [k for k, r in results.items() if np.isfinite(r.value)]
+    exact = [k for k in ("gamma", "dispersion", "dispersion_slope", "power_offset_a",
+                         "power_offset_b") if k in fitted]
+    out = dict(results)
+    for k in exact or fitted:
+        out[k] = replace(results[k], warnings=[*results[k].warnings, *notes])
+    return out
+
+
+def _spool_of(store: Store, run_ids: list[int]) -> tuple[Spool, str | None, list[RunOrigin]]:
+    """The one spool the runs were measured on, the first run's stored bench text and each
+    run's origin (InputError: unknown run, mixed or no spool)."""
     with store.session() as s:
         runs = {r.id: r for r in s.scalars(select(Run).where(Run.id.in_(run_ids)))}
         missing = [r for r in run_ids if r not in runs]
@@ -193,7 +254,9 @@ def _spool_of(store: Store, run_ids: list[int]) -> tuple[Spool, str | None]:
         if spool is None:  # the foreign key makes this impossible
             raise InputError(f"no spool {spool_id} in this database", field="RUN_ID")
         bench_text = runs[run_ids[0]].bench_text
-    return spool, bench_text
+        origins = [RunOrigin(r, runs[r].bench_name, runs[r].bench_text,
+                             runs[r].started_at or runs[r].created_at) for r in run_ids]
+    return spool, bench_text, origins
 
 
 def fit_runs(store: Store, run_ids: list[int], *, save: bool = True,
@@ -204,7 +267,7 @@ def fit_runs(store: Store, run_ids: list[int], *, save: bool = True,
     from labrun.queries import run_points
 
     run_ids = list(dict.fromkeys(int(r) for r in run_ids))
-    spool, bench_text = _spool_of(store, run_ids)
+    spool, bench_text, origins = _spool_of(store, run_ids)
     if spool.length_km is None or spool.loss_db_per_km is None:
         raise InputError(f"spool {spool.label} has no length or loss on record: "
                          f"labrun spool set {spool.label} --length-km KM --loss-db-per-km DB",
@@ -215,6 +278,7 @@ def fit_runs(store: Store, run_ids: list[int], *, save: bool = True,
     if not tables:
         raise InputError("the runs have no stored points to fit", field="RUN_ID")
     results = _fit_tables(tables, spool, bench_text, monte_carlo=monte_carlo)
+    results = _with_warnings(results, shared_offset_warnings(origins))
     params = {name: from_fit(r) for name, r in results.items()}
     record = FitRecord(spool=spool.label, run_ids=run_ids, parameters=params,
                        spool_snapshot={"length_km": spool.length_km,
