@@ -399,20 +399,25 @@ def _counted_osa(text: str) -> str:
     return text[:x_op] + text[y_op:]
 
 
-def test_ascii_trace_with_count_and_start_stop_axis(lab, tmp_path):
-    """The trace arrives as '<n> v1 v2 ...' and the axis from SENS:WAV:STAR?/STOP?: read_trace
-    gives the lab's own sweep (axis and levels, to the ASCII digits sent)."""
-    sim = lab.instruments["osa"]
-    sim.ascii_separator, sim.ascii_count = " ", True
-    prof = _profile_copy(tmp_path, "osa", "counted-osa", _counted_osa)
+def _read_257(lab, tmp_path, prof):
+    """The OSA on profile ``prof`` sweeps 257 samples: (axis, levels, the lab's own OSA state)."""
     osa = open_instrument(load_bench(_bench_with(lab, tmp_path, "osa", "osa", prof)), "osa")
     try:
         osa.apply("set_points", 257)
         x, y = osa.sweep_and_read(with_x=True)
     finally:
         osa.close()
-    state = lab.state.osa
     assert x.size == y.size == 257
+    return x, y, lab.state.osa
+
+
+def test_ascii_trace_with_count_and_start_stop_axis(lab, tmp_path):
+    """The trace arrives as '<n> v1 v2 ...' and the axis from SENS:WAV:STAR?/STOP?: read_trace
+    gives the lab's own sweep (axis and levels, to the ASCII digits sent)."""
+    sim = lab.instruments["osa"]
+    sim.ascii_separator, sim.ascii_count = " ", True
+    prof = _profile_copy(tmp_path, "osa", "counted-osa", _counted_osa)
+    x, y, state = _read_257(lab, tmp_path, prof)
     np.testing.assert_allclose(x, state.x_nm, atol=1e-6)
     np.testing.assert_allclose(y, state.y_dbm, atol=6e-4)  # 3 decimals sent
 
@@ -840,14 +845,7 @@ def test_block_formats_end_to_end_on_the_virtual_lab(lab, tmp_path, fmt, form, b
         return text
 
     prof = _profile_copy(tmp_path, "osa", f"{fmt}-osa", edit)
-    osa = open_instrument(load_bench(_bench_with(lab, tmp_path, "osa", "osa", prof)), "osa")
-    try:
-        osa.apply("set_points", 257)
-        x, y = osa.sweep_and_read(with_x=True)
-    finally:
-        osa.close()
-    state = lab.state.osa
-    assert x.size == y.size == 257
+    x, y, state = _read_257(lab, tmp_path, prof)
     exact = fmt == "real64"
     np.testing.assert_allclose(x, state.x_nm, atol=1e-9 if exact else 5e-4)  # 0.5 pm
     np.testing.assert_allclose(y, state.y_dbm, atol=1e-9 if exact else 5e-3)  # 0.005 dB
