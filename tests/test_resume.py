@@ -331,7 +331,9 @@ def test_resume_waits_for_the_killed_runs_watcher_to_finish(tmp_path):
         store.update_run(run_id, status="running", pid=dead.pid)  # as a SIGKILL leaves it
         stand_in = subprocess.Popen([sys.executable, "-c", "import time; time.sleep(2.0)",
                                      "labrun.guardian", "--parent", str(dead.pid)])
-        assert watchers_of(dead.pid) == [stand_in.pid]
+        # its command line shows once its exec is complete (Linux sets it after the exec's
+        # close-on-exec step that lets Popen return), so look until it does
+        assert wait_for(lambda: watchers_of(dead.pid) == [stand_in.pid], 1.5) is not None
         assert wait_for_watchers_of(dead.pid, 0.05) == [stand_in.pid]  # still there
         waiter = threading.Thread(target=note_end)
         waiter.start()
