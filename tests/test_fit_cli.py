@@ -11,6 +11,7 @@ from _store_support import HNLF_GAMMA, run_plan_file
 from sqlalchemy import func, select
 
 from labrun.cli import main
+from labrun.spoolfits import GUM_K2
 from labrun.store import open_store
 from labrun.store.models import Fit, FitParameter, Run, Spool
 
@@ -118,8 +119,13 @@ def test_spools_lists_latest_fit(power_db, capsys):
     gamma = row["gamma_per_w_per_km"]
     assert gamma["value"] == rep["parameters"]["gamma"]["value"]  # the exact model first
     assert gamma["runs"] == [1] and gamma["u95"] is not None
+    assert gamma["u95_kind"] == GUM_K2  # the exact fit carries the GUM budget
     assert main(["spools", "--db", power_db]) == 0
-    assert "HNLF-A17" in capsys.readouterr().out
+    out = capsys.readouterr().out
+    (line,) = [ln for ln in out.splitlines() if ln.startswith("HNLF-A17")]
+    # the same labelled U as labrun fit and labrun compare show (was the bare statistical error)
+    assert f"{gamma['value']:.4g} (U k=2 {gamma['u95']:.2g})" in line, line
+    assert "U k=2: expanded uncertainty of the GUM budget" in out
 
 
 def _one_line_error(capsys, argv, *words):

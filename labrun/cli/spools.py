@@ -56,7 +56,7 @@ def headline(record: Any) -> dict[str, Any]:
             p = record.parameters.get(name)
             if p is not None and p.value is not None:
                 out[column] = {**p.to_dict(), "parameter": name, "runs": record.run_ids,
-                               "fit_id": record.fit_id}
+                               "fit_id": record.fit_id, "u95_kind": p.u95_kind()}
                 break
     return out
 
@@ -85,10 +85,21 @@ def spool_rows(store: Any) -> list[dict[str, Any]]:
     return rows
 
 
+LEGEND = ("U k=2: expanded uncertainty of the GUM budget (k = 2); U95 t: Student-t 95 % "
+          "half-width of the statistical error alone; u stat: statistical standard error only")
+
+
 def _short(p: dict[str, Any] | None) -> str:
+    """'12.5 (U k=2 0.28)': a headline value with its uncertainty labelled as labrun fit and
+    labrun compare label it (the statistical error only where there is no U)."""
+    from labrun.spoolfits import GUM_K2
+
     if not p:
         return "-"
-    err = f" +/- {p['stderr']:.2g}" if p.get("stderr") is not None else ""
+    if p.get("u95") is not None:
+        label = "U k=2" if p.get("u95_kind") == GUM_K2 else "U95 t"
+        return f"{p['value']:.4g} ({label} {p['u95']:.2g})"
+    err = f" (u stat {p['stderr']:.2g})" if p.get("stderr") is not None else ""
     return f"{p['value']:.4g}{err}"
 
 
@@ -108,12 +119,13 @@ def cmd_spools(args: argparse.Namespace) -> int:
         print("no spools recorded yet")
         return 0
     print(f"{'spool':<12} {'km':>7} {'dB/km':>6} {'runs':>4} {'fit':>4}  "
-          f"{'gamma 1/(W km)':<20} {'D ps/(nm km)':<20} type")
+          f"{'gamma 1/(W km)':<22} {'D ps/(nm km)':<22} type")
     for r in rows:
         print(f"{r['spool']:<12} {_opt(r['length_km']):>7} {_opt(r['loss_db_per_km']):>6} "
               f"{r['runs']:>4} {r['latest_fit'] or '-':>4}  "
-              f"{_short(r.get('gamma_per_w_per_km')):<20} "
-              f"{_short(r.get('dispersion_ps_per_nm_km')):<20} {r['fibre_type'] or ''}")
+              f"{_short(r.get('gamma_per_w_per_km')):<22} "
+              f"{_short(r.get('dispersion_ps_per_nm_km')):<22} {r['fibre_type'] or ''}")
+    print(LEGEND)
     return 0
 
 
