@@ -66,3 +66,26 @@ def test_an_interrupted_demo_ends_without_fits_or_report(tmp_path: Path) -> None
     assert proc.returncode == 130, stdout
     assert "interrupted" in stdout and "no fits and no report" in stdout
     assert not (out / "report.html").exists() and not (out / "fits.json").exists()
+
+
+def test_demo_labels_each_expanded_uncertainty_by_what_it_is(capsys):
+    """A fit with a GUM budget prints 'U k=2', one without (a slope) 'U95 t', as labrun fit
+    does; the demo printed 'U(k=2)' for both."""
+    from types import SimpleNamespace
+
+    from labrun.cli.demo import _print_report
+
+    row = {"source": "statistical (fit)", "u_input": None, "unit": "", "contribution": 0.05}
+    fits = {"gamma_bessel": {"value": 11.0, "stderr": 0.05, "u95": 0.2, "unit": "1/(W km)",
+                             "n_points": 21, "model": "bessel", "u_combined": 0.1,
+                             "budget": [row], "warnings": []},
+            "slope_high_1": {"value": 3.0, "stderr": 0.001, "u95": 0.002, "unit": "dB/dB",
+                             "n_points": 21, "model": "linear in dB", "budget": [],
+                             "warnings": []}}
+    outcome = SimpleNamespace(run_id=1, status="completed", points_done=21, points_total=21)
+    _print_report(outcome, {"spool": "HNLF-A17", "model_gamma_per_w_per_km": 11.0,
+                            "fits": fits, "files": []}, "demo.db")
+    lines = capsys.readouterr().out.splitlines()
+    (gamma,) = [ln for ln in lines if ln.strip().startswith("gamma_bessel")]
+    (slope,) = [ln for ln in lines if ln.strip().startswith("slope_high_1")]
+    assert ", U k=2 0.2" in gamma and ", U95 t 0.002" in slope, (gamma, slope)

@@ -163,14 +163,17 @@ def _print_report(outcome: Any, report: dict[str, Any], db: str) -> None:
             print(f"  {name:<22} not fitted")
         else:
             err = f" +/- {fit['stderr']:.3g}" if fit["stderr"] is not None else ""
-            u95 = f", U(k=2) {fit['u95']:.3g}" if fit.get("u95") is not None else ""
+            label = "U k=2" if fit.get("budget") else "U95 t"  # GUM budget, else Student t
+            u95 = f", {label} {fit['u95']:.3g}" if fit.get("u95") is not None else ""
             print(f"  {name:<22} {fit['value']:.4g}{err} {fit['unit']}{u95}  "
                   f"({fit['n_points']} points, {fit['model'].split(':')[0]})")
             if name.startswith(("gamma", "dispersion")) and fit.get("budget"):
                 print(budget_text(name, fit))
         for note in fit.get("warnings", []):
             print(f"    ! {note}")
-    print("  (+/- is the statistical standard error of the fit; U is the expanded uncertainty of "
-          "the GUM budget above, k = 2, from the bench's calibration uncertainties)")
+    print("  (+/- is the statistical standard error of the fit; U k=2 is the expanded "
+          "uncertainty of the GUM budget above, from the bench's calibration uncertainties; "
+          "U95 t is the Student-t 95 % half-width of the statistical error alone, where there "
+          "is no budget)")
     for path in report["files"]:
         print(f"  wrote {path}")
