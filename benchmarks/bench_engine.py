@@ -34,6 +34,7 @@ from typing import Any
 
 import plain_pyvisa
 from plain_pyvisa import Step
+from served import serve
 
 from labrun import safety
 from labrun.bench import load_bench
@@ -84,22 +85,6 @@ def _plan_text(n: int, samples: int, settle: float) -> str:
         raise SystemExit(f"{n} points: use a multiple of {repeats}")
     return PLAN.format(axis=_axis(n // repeats), samples=samples, settle=settle,
                        repeats=repeats)
-
-
-def _serve(folder: Path, time_scale: float) -> tuple[subprocess.Popen, Path]:
-    """``labrun sim serve`` in its own process (its CPU is not labrun's); (process, bench)."""
-    bench = folder / f"served-{time.monotonic_ns()}.toml"
-    proc = subprocess.Popen([sys.executable, "-m", "labrun", "sim", "serve", "--scenario",
-                             "default-scenario.toml", "--bench-out", str(bench),
-                             "--time-scale", str(time_scale)],
-                            stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
-    t0 = time.monotonic()
-    while not bench.exists() or not bench.read_text().strip():
-        if proc.poll() is not None or time.monotonic() - t0 > 60:
-            raise SystemExit("labrun sim serve did not start")
-        time.sleep(0.05)
-    time.sleep(0.2)
-    return proc, bench
 
 
 def _run_bench(folder: Path, bench_path: Path, n: int, samples: int,
@@ -208,7 +193,7 @@ def plain(folder: Path, time_scale: float, n: int, samples: int, settle: float
           ) -> tuple[float, list[float], list[float]]:
     """The plain script on a fresh served lab: (loop seconds, seconds per point, imposed per
     point)."""
-    proc, bench_path = _serve(folder, time_scale)
+    proc, bench_path = serve(folder, time_scale)
     try:
         plan = load_plan(_write_plan(folder, n, samples, settle))
         setup, steps, imposed, osa = yardsticks(plan, load_bench(bench_path), bench_path,
@@ -264,7 +249,7 @@ def labrun_run(folder: Path, time_scale: float, n: int, samples: int, settle: fl
                ) -> tuple[float, float, list[float], Any]:
     """labrun on a fresh served lab: (start-to-exit seconds of run_plan, point-loop seconds,
     seconds per point, `labrun check`'s rehearsal of the run: whole run and point loop)."""
-    proc, bench_path = _serve(folder, time_scale)
+    proc, bench_path = serve(folder, time_scale)
     clock = LoopClock()
     try:
         plan = load_plan(_write_plan(folder, n, samples, settle))
@@ -285,7 +270,7 @@ def cli_run(folder: Path, time_scale: float, n: int, samples: int, settle: float
     to exit, process start to the first exchange on the wire, last exchange to exit) in s."""
     import json
 
-    proc, bench_path = _serve(folder, time_scale)
+    proc, bench_path = serve(folder, time_scale)
     log = folder / f"traffic-{time.monotonic_ns()}.jsonl"
     try:
         plan = _write_plan(folder, n, samples, settle)
@@ -374,7 +359,7 @@ def memory(folder: Path, n: int, samples: int) -> None:
     rows: list[tuple[int, float, float, float | None]] = []
     original = Store.add_point
     count = {"n": 0}
-    proc, bench = _serve(folder, 0.0)
+    proc, bench = serve(folder, 0.0)
 
     def sampled(self: Store, *args: Any, **kwargs: Any) -> int:
         out = original(self, *args, **kwargs)

@@ -27,6 +27,8 @@ import tempfile
 import time
 from pathlib import Path
 
+from served import serve
+
 # The plain script: the same reads as labrun status, with nothing but sqlite3 and json.
 PLAIN_STATUS = r"""
 import json, sqlite3, sys
@@ -125,22 +127,6 @@ zip = [["power_a_dbm", "power_b_dbm"]]
 """
 
 
-def _serve(folder: Path) -> tuple[subprocess.Popen, Path]:
-    """``labrun sim serve`` at time scale 0 in its own process; (process, bench file)."""
-    bench = folder / "served.toml"
-    proc = subprocess.Popen([sys.executable, "-m", "labrun", "sim", "serve", "--scenario",
-                             "default-scenario.toml", "--bench-out", str(bench),
-                             "--time-scale", "0"],
-                            stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
-    t0 = time.monotonic()
-    while not bench.exists() or not bench.read_text().strip():
-        if proc.poll() is not None or time.monotonic() - t0 > 60:
-            raise SystemExit("labrun sim serve did not start")
-        time.sleep(0.05)
-    time.sleep(0.2)
-    return proc, bench
-
-
 def _one_run(folder: Path, bench: Path, plan: Path, k: str,
              code: Path | None = None) -> tuple[float, float]:
     """One cold ``labrun run`` (of the labrun in ``code``, default this one): (process start to
@@ -167,7 +153,7 @@ def bench_run_startup(folder: Path, repeats: int, before: Path | None) -> None:
     """Item 2: labrun run's start-up against the bare interpreter (and an earlier labrun)."""
     plan = folder / "startup-plan.toml"
     plan.write_text(RUN_PLAN)
-    proc, bench = _serve(folder)
+    proc, bench = serve(folder)
     codes: list[tuple[str, Path | None]] = [("this labrun", None)]
     if before is not None:
         codes.insert(0, (f"before ({before})", before))

@@ -165,17 +165,17 @@ def test_fallback_enables_remote_on_an_instrument_in_local_mode(tmp_path):
         assert dark(lab) and not lab.state.amplifier.output
 
 
-def _bench_with_laser_a_profile(lab: VirtualLab, folder: Path, edit) -> Path:
-    """The lab's bench, laser_a on a copy of generic-laser.toml changed by ``edit(text)``."""
+def _bench_with_odd_profile(lab: VirtualLab, folder: Path, role: str, kind: str, edit) -> Path:
+    """The lab's bench, ``role`` on a copy of generic-<kind>.toml changed by ``edit(text)``."""
     bench = write_bench(lab, folder)
-    src = Path(find_file("generic-laser.toml", "drivers")).read_text(encoding="utf-8")
-    src = edit(src.replace('name = "generic-laser"', 'name = "odd-laser"'))
-    prof = folder / "odd-laser.toml"
+    src = Path(find_file(f"generic-{kind}.toml", "drivers")).read_text(encoding="utf-8")
+    src = edit(src.replace(f'name = "generic-{kind}"', f'name = "odd-{kind}"'))
+    prof = folder / f"odd-{kind}.toml"
     prof.write_text(src, encoding="utf-8")
     text = bench.read_text(encoding="utf-8")
-    head, _, tail = text.partition("[instruments.laser_a]")
-    tail = tail.replace('profile = "generic-laser"', f'profile = "{prof}"', 1)
-    bench.write_text(head + "[instruments.laser_a]" + tail, encoding="utf-8")
+    head, _, tail = text.partition(f"[instruments.{role}]")
+    tail = tail.replace(f'profile = "generic-{kind}"', f'profile = "{prof}"', 1)
+    bench.write_text(head + f"[instruments.{role}]" + tail, encoding="utf-8")
     return bench
 
 
@@ -198,7 +198,7 @@ def test_a_broken_error_query_never_keeps_a_laser_on(tmp_path, edit):
     darken and 'labrun off' each leave laser_a off (the lab's own state), reported confirmed
     by its read-back, and every connection they opened is closed again (the lab counts them)."""
     with VirtualLab(scenario()) as lab:
-        path = _bench_with_laser_a_profile(lab, tmp_path, edit)
+        path = _bench_with_odd_profile(lab, tmp_path, "laser_a", "laser", edit)
         bench = load_bench(path)
         _light(lab, "laser_a", "laser_b")
         assert safe_off_fresh(bench, pause_s=0.05, budget_s=0.5) == []
@@ -234,16 +234,8 @@ def test_an_attenuator_with_an_unreadable_error_queue_still_ends_dark(tmp_path):
     checked): its error replies never match the declared form, yet both steps are sent and
     it reads back dark, so it counts as dark (the lab's own state)."""
     with VirtualLab(scenario()) as lab:
-        bench = write_bench(lab, tmp_path)
-        src = Path(find_file("generic-attenuator.toml", "drivers")).read_text(encoding="utf-8")
-        src = _unparseable_errors(src.replace('name = "generic-attenuator"',
-                                              'name = "odd-attenuator"'))
-        prof = tmp_path / "odd-attenuator.toml"
-        prof.write_text(src, encoding="utf-8")
-        text = bench.read_text(encoding="utf-8")
-        head, _, tail = text.partition("[instruments.attenuator_a]")
-        tail = tail.replace('profile = "generic-attenuator"', f'profile = "{prof}"', 1)
-        bench.write_text(head + "[instruments.attenuator_a]" + tail, encoding="utf-8")
+        bench = _bench_with_odd_profile(lab, tmp_path, "attenuator_a", "attenuator",
+                                        _unparseable_errors)
         with lab.state.lock:
             for att in lab.state.attenuators.values():
                 att.output, att.attenuation_db = True, 3.0

@@ -51,6 +51,15 @@ def _fill(store) -> int:
     return run_id
 
 
+def _filled(db) -> int:
+    """Fill a fresh store at ``db`` as _fill does and close it; the running run's id."""
+    store = open_store(db)
+    try:
+        return _fill(store)
+    finally:
+        store.close()
+
+
 def _both(db: str, run_id: int | None) -> tuple[dict, dict]:
     """(status report via the ORM's Store.summary, via read_status), with the same now."""
     store = open_store(db)
@@ -64,11 +73,7 @@ def _both(db: str, run_id: int | None) -> tuple[dict, dict]:
 
 
 def test_fast_path_equals_the_orm_path(db_url):
-    store = open_store(db_url)
-    try:
-        run_id = _fill(store)
-    finally:
-        store.close()
+    run_id = _filled(db_url)
     for rid in (run_id, None, 1):
         orm, fast = _both(db_url, rid)
         assert json.dumps(orm, sort_keys=True) == json.dumps(fast, sort_keys=True)
@@ -112,11 +117,7 @@ def test_sqlite_database_as_sqlalchemy_reads_it(url, database):
 def test_status_imports_no_sqlalchemy(tmp_path):
     """A SQLite store's status runs without SQLAlchemy (checked on sys.modules, not timed)."""
     db = tmp_path / "runs.db"
-    store = open_store(db)
-    try:
-        _fill(store)
-    finally:
-        store.close()
+    _filled(db)
     code = ("import sys\nfrom labrun.cli import main\n"
             f"rc = main(['status', '--db', {str(db)!r}])\n"
             "print(sorted({m.split('.')[0] for m in sys.modules} & {'sqlalchemy', 'numpy'}), rc)")
@@ -128,11 +129,7 @@ def test_status_imports_no_sqlalchemy(tmp_path):
 
 def test_status_never_writes_the_store(tmp_path, capsys):
     db = tmp_path / "runs.db"
-    store = open_store(db)
-    try:
-        _fill(store)
-    finally:
-        store.close()
+    _filled(db)
     before = db.read_bytes()
     assert main(["status", "--db", str(db), "--json"]) == 0
     assert json.loads(capsys.readouterr().out)["points_done"] == 3
