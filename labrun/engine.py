@@ -225,21 +225,17 @@ class Runner:
 
     def __init__(self, plan: Plan, bench: Bench, store: AnyStore, run_id: int | None,
                  guard: SafeOffGuard, *, policy: RetryPolicy, progress: bool = True,
-                 traffic_log: Any = None,
-                 sleep: Callable[[float], None] = time.sleep,
-                 clock: Callable[[], float] = time.monotonic,
-                 open_bench: Callable[..., Any] = open_bench,
-                 source_readings: Callable[..., Any] = source_readings,
-                 reduce_trace: Callable[..., Any] = _reduce_trace,
-                 point_bound_s: Callable[[float, int, Any], float] = point_bound_s):
+                 traffic_log: Any = None, seams: Seams | None = None):
         self.plan, self.bench, self.store, self.run_id = plan, bench, store, run_id
-        self.open_bench, self.reduce_trace = open_bench, reduce_trace
-        self.source_readings, self.point_bound_s = source_readings, point_bound_s
+        seams = seams or Seams()  # the run's collaborators (the guard is passed made)
+        self.open_bench, self.reduce_trace = seams.open_bench, seams.reduce_trace
+        self.source_readings, self.point_bound_s = seams.source_readings, seams.point_bound_s
         # a readings seam that takes ``between`` lets the reduction overlap the watch's replies
-        self.readings_take_between = "between" in inspect.signature(source_readings).parameters
+        self.readings_take_between = ("between" in
+                                      inspect.signature(seams.source_readings).parameters)
         self.guard, self.policy, self.traffic_log = guard, policy, traffic_log
         self.scale = float(getattr(bench, "settle_scale", 1.0))
-        self.sleep, self.clock = sleep, clock  # simulated in `labrun check` (labrun.rehearse)
+        self.sleep, self.clock = seams.sleep, seams.clock  # simulated by `labrun check`
         self.instruments: Any = None
         self.applied: dict[tuple[str, str], Any] = {}
         self.emitting = False
@@ -916,10 +912,7 @@ def _execute(plan: Plan, bench: Bench, store: AnyStore, run_id: int | None,
     guard = seams.guard(bench)
     store = as_run_store(store)  # a database fault: darken, retry briefly, then StoreFault
     runner = Runner(plan, bench, store, run_id, guard, policy=policy or RetryPolicy(),
-                    progress=progress, traffic_log=traffic_log, sleep=seams.sleep,
-                    clock=seams.clock, open_bench=seams.open_bench,
-                    source_readings=seams.source_readings, reduce_trace=seams.reduce_trace,
-                    point_bound_s=seams.point_bound_s)
+                    progress=progress, traffic_log=traffic_log, seams=seams)
     store.on_fault = runner.store_dark
     if guardian:  # started now, so it is ready (imports, bench) before the first switch-on
         from labrun import guardian as watcher

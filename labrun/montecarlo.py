@@ -21,6 +21,7 @@ from typing import Any
 
 import numpy as np
 
+from labrun.fits import LIMIT_PREFIX
 from labrun.uncertainty import Uncertainties, spacing_shift_ghz
 
 COVERAGE_P = 0.95
@@ -89,7 +90,7 @@ def draw_table(t: Mapping[str, np.ndarray], length_km: float, loss_db_per_km: fl
     t2["power_b_dbm"] = t["power_b_dbm"] + d_pow[1]
     d_osa = rng.normal(0.0, unc.osa_amplitude_db) if unc.osa_amplitude_db > 0 else 0.0
     for k in t:
-        if k.startswith(("sideband_", "limit_sideband_")):
+        if k.startswith(("sideband_", LIMIT_PREFIX + "sideband_")):
             t2[k] = t[k] + d_osa
     if unc.wavelength_pm > 0:
         d_a, d_b = rng.normal(0.0, unc.wavelength_pm, size=2)  # pm, each laser its own

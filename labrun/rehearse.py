@@ -28,7 +28,7 @@ from pyvisa import constants
 from pyvisa.typing import VISASession
 
 from labrun.blockframe import build_block
-from labrun.engine import Captured, RetryPolicy, Runner
+from labrun.engine import Captured, RetryPolicy, Runner, Seams
 from labrun.plan import Plan, PointSpec
 from labrun.trafficlog import TrafficLog, TrafficLogEntry, split_units
 from labrun.visareplay import ReplayScript, ReplaySession, TrafficReplayLibrary
@@ -239,7 +239,7 @@ class DryRunner(Runner):
     def __init__(self, plan: Plan, bench: Bench, clock: SimClock, traffic_log: TrafficLog):
         super().__init__(plan, bench, _NullStore(), 0, _NullGuard(),  # type: ignore[arg-type]
                          policy=RetryPolicy(attempts=1), progress=False,
-                         traffic_log=traffic_log, sleep=clock.sleep, clock=clock)
+                         traffic_log=traffic_log, seams=Seams(sleep=clock.sleep, clock=clock))
         self.announce_opening = False  # a rehearsal opens no real bench: nothing to start
 
     def reduce(self, spec: PointSpec, traces: Sequence[Captured]) -> None:

@@ -27,6 +27,13 @@ FAR_APART_H = 24.0  # runs started further apart than this are taken to have the
 COVERAGE_P = 0.95  # expanded uncertainty coverage probability (GUM 6.2, 6.3)
 GUM_K2 = "GUM expanded uncertainty U = 2 u_c (k = 2)"
 STUDENT_T95 = "Student t 95 % half-width of the statistical standard error (no budget)"
+U_LEGEND = ("U k=2: the GUM budget's expanded uncertainty 2 u_c; U95 t: Student t 95 % "
+            "half-width of the statistical error alone (no budget)")
+
+
+def u_label(kind: str | None) -> str:
+    """How the commands print an expanded uncertainty of this kind ('U k=2' or 'U95 t')."""
+    return "U k=2" if kind == GUM_K2 else "U95 t"
 METHOD = ("labrun.exactfit.fit_spool on the runs' points together (closed forms, then the "
           "split-step forward model with each arm's launched-power offset fitted), GUM budget "
           "from the bench calibration")

@@ -11,7 +11,7 @@ from _store_support import HNLF_GAMMA, run_plan_file
 from sqlalchemy import func, select
 
 from labrun.cli import main
-from labrun.spoolfits import GUM_K2
+from labrun.spoolfits import GUM_K2, U_LEGEND
 from labrun.store import open_store
 from labrun.store.models import Fit, FitParameter, Run, Spool
 
@@ -125,7 +125,7 @@ def test_spools_lists_latest_fit(power_db, capsys):
     (line,) = [ln for ln in out.splitlines() if ln.startswith("HNLF-A17")]
     # the same labelled U as labrun fit and labrun compare show (was the bare statistical error)
     assert f"{gamma['value']:.4g} (U k=2 {gamma['u95']:.2g})" in line, line
-    assert "U k=2: expanded uncertainty of the GUM budget" in out
+    assert U_LEGEND in out
 
 
 def _one_line_error(capsys, argv, *words):

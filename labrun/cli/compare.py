@@ -8,9 +8,6 @@ from typing import Any
 
 from labrun.store import DEFAULT_DB
 
-U_LEGEND = ("U k=2: the GUM budget's expanded uncertainty 2 u_c; U95 t: Student t 95 % "
-            "half-width of the statistical error alone (no budget)")
-
 ROWS = (("gamma_per_w_per_km", "gamma"), ("abs_dispersion_ps_per_nm_km", "|D|"),
         ("dispersion_slope_ps_per_nm2_km", "dispersion slope"), ("loss_db_per_km", "loss"),
         ("effective_length_km", "effective length"),
@@ -37,14 +34,13 @@ def register(subparsers: Any) -> None:
 def _value(entry: dict[str, Any] | None) -> str:
     """'10.89 (U k=2 0.0047) 1/(W km)': the expanded uncertainty labelled by what it is, as
     ``labrun fit`` labels it ('U k=2' the GUM budget's 2 u_c, 'U95 t' a Student-t half-width)."""
-    from labrun.spoolfits import GUM_K2
+    from labrun.spoolfits import u_label
 
     if not entry or entry.get("value") is None:
         return "-"
     text = f"{entry['value']:.4g}"
     if entry.get("u95") is not None:
-        label = "U k=2" if entry.get("u95_kind") == GUM_K2 else "U95 t"
-        text += f" ({label} {entry['u95']:.2g})"
+        text += f" ({u_label(entry.get('u95_kind'))} {entry['u95']:.2g})"
     return f"{text} {entry['unit']}"
 
 
@@ -57,6 +53,8 @@ def _source(sp: dict[str, Any]) -> str:
 
 
 def _side_by_side(rep: dict[str, Any]) -> str:
+    from labrun.spoolfits import U_LEGEND
+
     spools = rep["spools"]
     width = 36
     out = [f"{'':<18}" + "".join(f"{sp['spool']:<{width}}" for sp in spools)]
@@ -70,6 +68,8 @@ def _side_by_side(rep: dict[str, Any]) -> str:
 
 
 def _history(rep: dict[str, Any]) -> str:
+    from labrun.spoolfits import U_LEGEND
+
     out = [f"spool {rep['spool']}: {len(rep['history'])} stored fits"]
     for h in rep["history"]:
         flag = ("  CHANGED: " + ", ".join(h["changed"])) if h["changed"] else ""

@@ -152,6 +152,7 @@ def _fit_and_plot(store: Any, run_id: int, scenario: Any, bench: Bench,
 
 def _print_report(outcome: Any, report: dict[str, Any], db: str) -> None:
     """Human summary on stdout: how the run ended, the fits, where the files are."""
+    from labrun.spoolfits import GUM_K2, STUDENT_T95, U_LEGEND, u_label
     from labrun.uncertainty import budget_text
 
     print(f"run {outcome.run_id}: {outcome.status}, {outcome.points_done}/{outcome.points_total} "
@@ -163,17 +164,15 @@ def _print_report(outcome: Any, report: dict[str, Any], db: str) -> None:
             print(f"  {name:<22} not fitted")
         else:
             err = f" +/- {fit['stderr']:.3g}" if fit["stderr"] is not None else ""
-            label = "U k=2" if fit.get("budget") else "U95 t"  # GUM budget, else Student t
-            u95 = f", {label} {fit['u95']:.3g}" if fit.get("u95") is not None else ""
+            kind = GUM_K2 if fit.get("budget") else STUDENT_T95  # a fit's own: budget or not
+            u95 = f", {u_label(kind)} {fit['u95']:.3g}" if fit.get("u95") is not None else ""
             print(f"  {name:<22} {fit['value']:.4g}{err} {fit['unit']}{u95}  "
                   f"({fit['n_points']} points, {fit['model'].split(':')[0]})")
             if name.startswith(("gamma", "dispersion")) and fit.get("budget"):
                 print(budget_text(name, fit))
         for note in fit.get("warnings", []):
             print(f"    ! {note}")
-    print("  (+/- is the statistical standard error of the fit; U k=2 is the expanded "
-          "uncertainty of the GUM budget above, from the bench's calibration uncertainties; "
-          "U95 t is the Student-t 95 % half-width of the statistical error alone, where there "
-          "is no budget)")
+    print(f"  (+/- is the statistical standard error of the fit; {U_LEGEND}; the budgets above "
+          "come from the bench's calibration uncertainties)")
     for path in report["files"]:
         print(f"  wrote {path}")

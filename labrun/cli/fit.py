@@ -44,7 +44,7 @@ def _trials(text: str) -> int:
 
 
 def format_value(value: float | None, stderr: float | None, u95: float | None,
-                 unit: str, gum: bool = False) -> str:
+                 unit: str, kind: str | None = None) -> str:
     """'10.89 +/- 0.0023 (U k=2 0.0047) 1/(W km)': value, standard uncertainty, and the
     expanded one labelled by what it is: 'U k=2' (GUM budget) or 'U95 t' (Student t)."""
     if value is None:
@@ -53,7 +53,9 @@ def format_value(value: float | None, stderr: float | None, u95: float | None,
     if stderr is not None:
         text += f" +/- {stderr:.2g}"
     if u95 is not None:
-        text += f" ({'U k=2' if gum else 'U95 t'} {u95:.2g})"
+        from labrun.spoolfits import u_label
+
+        text += f" ({u_label(kind)} {u95:.2g})"
     return f"{text} {unit}"
 
 
@@ -89,8 +91,8 @@ def fit_text(record: Any) -> str:
             if why:
                 out.append(f"  {name:<20} {why}")
             continue
-        gum = p.extra.get("u_combined") is not None
-        out.append(f"  {name:<20} {format_value(p.value, p.stderr, p.u95, p.unit, gum):<48} "
+        shown = format_value(p.value, p.stderr, p.u95, p.unit, p.u95_kind())
+        out.append(f"  {name:<20} {shown:<48} "
                    f"{p.n_points:>4} points  {p.model.split(':')[0]}")
         if p.extra.get("budget") and name in BUDGET_SHOWN:
             out.append(budget_text(name, p.to_dict()))
@@ -98,9 +100,9 @@ def fit_text(record: Any) -> str:
         if mc:
             out.append(mc)
         out.extend(f"    ! {w}" for w in p.extra.get("warnings", []) if not w.startswith("refused"))
-    out.append("  (+/- statistical standard uncertainty of the fit; U k=2: the GUM budget's "
-               "expanded uncertainty 2 u_c; U95 t: Student t 95 % half-width of the "
-               "statistical error alone, for results without a budget)")
+    from labrun.spoolfits import U_LEGEND
+
+    out.append(f"  (+/- statistical standard uncertainty of the fit; {U_LEGEND})")
     if "power_offset_a" in record.parameters:
         out.append(OFFSETS_NOTE)
     return "\n".join(out)

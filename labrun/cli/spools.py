@@ -85,20 +85,17 @@ def spool_rows(store: Any) -> list[dict[str, Any]]:
     return rows
 
 
-LEGEND = ("U k=2: expanded uncertainty of the GUM budget (k = 2); U95 t: Student-t 95 % "
-          "half-width of the statistical error alone; u stat: statistical standard error only")
 
 
 def _short(p: dict[str, Any] | None) -> str:
     """'12.5 (U k=2 0.28)': a headline value with its uncertainty labelled as labrun fit and
     labrun compare label it (the statistical error only where there is no U)."""
-    from labrun.spoolfits import GUM_K2
+    from labrun.spoolfits import u_label
 
     if not p:
         return "-"
     if p.get("u95") is not None:
-        label = "U k=2" if p.get("u95_kind") == GUM_K2 else "U95 t"
-        return f"{p['value']:.4g} ({label} {p['u95']:.2g})"
+        return f"{p['value']:.4g} ({u_label(p.get('u95_kind'))} {p['u95']:.2g})"
     err = f" (u stat {p['stderr']:.2g})" if p.get("stderr") is not None else ""
     return f"{p['value']:.4g}{err}"
 
@@ -125,7 +122,9 @@ def cmd_spools(args: argparse.Namespace) -> int:
               f"{r['runs']:>4} {r['latest_fit'] or '-':>4}  "
               f"{_short(r.get('gamma_per_w_per_km')):<22} "
               f"{_short(r.get('dispersion_ps_per_nm_km')):<22} {r['fibre_type'] or ''}")
-    print(LEGEND)
+    from labrun.spoolfits import U_LEGEND
+
+    print(f"{U_LEGEND}; u stat: statistical standard error only")
     return 0
 
 

@@ -95,10 +95,8 @@ _LINES = ('SELECT lines.kind, lines.side, lines."order", lines.power_dbm, lines.
           "WHERE lines.point_id = :point_id AND (traces.kind IS NULL OR traces.kind = 'output') "
           "ORDER BY lines.id")
 _FAULTS = "SELECT count(id) FROM events WHERE run_id = :run_id AND kind = 'fault'"
-_LAST_FAULT = ("SELECT at, role, message FROM events WHERE run_id = :run_id AND kind = 'fault' "
+_LAST_EVENT = ("SELECT at, role, message FROM events WHERE run_id = :run_id AND kind = :kind "
                "ORDER BY id DESC LIMIT 1")
-_LAST_GUARDIAN = ("SELECT at, role, message FROM events WHERE run_id = :run_id "
-                  "AND kind = 'guardian' ORDER BY id DESC LIMIT 1")
 
 
 def _utc(value: Any) -> datetime | None:
@@ -117,6 +115,13 @@ def _json(value: Any) -> Any:
 def _float(value: Any) -> float | None:
     """A FLOAT column as float or None."""
     return None if value is None else float(value)
+
+
+def _last_event(query: Query, run_id: int, kind: str) -> FaultView | None:
+    """The run's latest event of ``kind`` (a fault, the guardian's darkening), or None."""
+    rows = query(_LAST_EVENT, {"run_id": run_id, "kind": kind})
+    return None if not rows else FaultView(at=_utc(rows[0][0]),  # type: ignore[arg-type]
+                                           role=rows[0][1], message=rows[0][2])
 
 
 def latest_run_id(query: Query) -> int | None:
@@ -150,14 +155,8 @@ def summary(query: Query, run_id: int, *, recent: int = 20) -> dict[str, Any] | 
                  detected=bool(ln[4]), upper_limit_dbm=_float(ln[5]))
         for ln in query(_LINES, {"point_id": last.id})]
     (faults,), = query(_FAULTS, {"run_id": run_id})
-    fault_rows = query(_LAST_FAULT, {"run_id": run_id})
-    last_fault = None if not fault_rows else FaultView(
-        at=_utc(fault_rows[0][0]), role=fault_rows[0][1],  # type: ignore[arg-type]
-        message=fault_rows[0][2])
-    guardian_rows = query(_LAST_GUARDIAN, {"run_id": run_id})
-    guardian = None if not guardian_rows else FaultView(
-        at=_utc(guardian_rows[0][0]), role=guardian_rows[0][1],  # type: ignore[arg-type]
-        message=guardian_rows[0][2])
+    last_fault = _last_event(query, run_id, "fault")
+    guardian = _last_event(query, run_id, "guardian")
     gaps = [(a - b).total_seconds() for a, b in zip(times, times[1:], strict=False)
             if a is not None and b is not None]
     return {
