@@ -28,7 +28,7 @@ def register(subparsers: Any) -> None:
                    help="also propagate the budget's input distributions by Monte Carlo "
                         "(JCGM 101:2008) with M closed-form refits, and print the 95 %% "
                         "probabilistically symmetric interval beside the GUM's U (k = 2); "
-                        "JCGM 101 suggests M >= 200000, about 0.1 s per refit")
+                        "JCGM 101 suggests M >= 200000; a refit of a 25-point run takes a few ms")
     p.set_defaults(func=cmd_fit)
 
 
