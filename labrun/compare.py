@@ -1,10 +1,12 @@
 """Spools side by side, and one spool's history: values from stored fits, with uncertainties.
 
-``compare_spools`` gives each spool's headline parameters (gamma, |D|, dispersion slope, loss,
+``compare_spools`` gives each spool's headline parameters (gamma, D, dispersion slope, loss,
 effective length, first-sideband efficiency at common conditions), each as {value, stderr, u95,
-unit, model, runs}. ``spool_history`` lists every stored fit of one spool in time order and flags
-a change between consecutive fits larger than their combined expanded uncertainty
-(sqrt(U1^2 + U2^2), GUM-style comparison of two results). Reads stored fits only: the time does
+unit, model, runs}. D and its slope are shown as ``labrun fit`` shows them: signed where the fit
+determined the sign of D, else |D| and d|D|/d(lambda) (``sign_determined`` says which).
+``spool_history`` lists every stored fit of one spool in time order and flags a change between
+consecutive fits larger than their combined expanded uncertainty (sqrt(U1^2 + U2^2), GUM-style
+comparison of two results). Reads stored fits only: the time does
 not grow with the number of stored lines.
 """
 
@@ -20,7 +22,7 @@ from labrun.store import Store
 # Common conditions of the first-sideband efficiency (invented, typical of the shipped sweeps).
 COMMON = {"spacing_ghz": 50.0, "power_dbm": 0.0, "wavelength_nm": 1550.0}
 GAMMA = ("gamma", "gamma_bessel", "gamma_small_signal")  # preferred order (exact model first)
-HISTORY_PARAMS = ("gamma_per_w_per_km", "abs_dispersion_ps_per_nm_km",
+HISTORY_PARAMS = ("gamma_per_w_per_km", "dispersion_ps_per_nm_km",
                   "dispersion_slope_ps_per_nm2_km")
 
 
@@ -36,6 +38,12 @@ def _param(record: Any, names: tuple[str, ...]) -> tuple[str, Any] | None:
         if p is not None and p.value is not None:
             return name, p
     return None
+
+
+def sign_determined(p: Any) -> bool:
+    """Whether the fit determined the sign of D (its extra ``sign_determined``, set by
+    labrun.fits.fit_dispersion); a fit without the key reported |D|."""
+    return bool((p.extra or {}).get("sign_determined"))
 
 
 def _entry(value: float | None, unit: str, model: str, runs: list[int], *,
@@ -60,15 +68,16 @@ def headline_values(record: Any, spool: Any) -> dict[str, Any]:
     disp = _param(record, ("dispersion",))
     if disp:
         p = disp[1]
-        out["abs_dispersion_ps_per_nm_km"] = _entry(abs(p.value), p.unit, p.model, runs,
-                                                    stderr=p.stderr, u95=p.u95,
-                                                    u95_kind=p.u95_kind())
+        signed = sign_determined(p)
+        out["dispersion_ps_per_nm_km"] = _entry(
+            p.value if signed else abs(p.value), p.unit, p.model, runs, stderr=p.stderr,
+            u95=p.u95, u95_kind=p.u95_kind()) | {"sign_determined": signed}
     slope = _param(record, ("dispersion_slope",))
     if slope:
         p = slope[1]
-        out["dispersion_slope_ps_per_nm2_km"] = _entry(p.value, p.unit, p.model, runs,
-                                                       stderr=p.stderr, u95=p.u95,
-                                                    u95_kind=p.u95_kind())
+        out["dispersion_slope_ps_per_nm2_km"] = _entry(
+            p.value, p.unit, p.model, runs, stderr=p.stderr, u95=p.u95,
+            u95_kind=p.u95_kind()) | {"sign_determined": sign_determined(p)}
     if loss is not None:
         out["loss_db_per_km"] = _entry(loss, "dB/km", "nominal, from the spool record", [])
     if length is not None and loss is not None:
@@ -155,10 +164,14 @@ def spool_history(store: Store, label: str) -> dict[str, Any]:
 
 
 def changed(a: dict[str, Any], b: dict[str, Any]) -> bool:
-    """True when |b - a| exceeds the combined expanded uncertainty sqrt(Ua^2 + Ub^2)."""
+    """True when |b - a| exceeds the combined expanded uncertainty sqrt(Ua^2 + Ub^2); magnitudes
+    are compared when either value is a magnitude (``sign_determined`` False)."""
     if a.get("u95") is None or b.get("u95") is None:
         return False
-    return abs(b["value"] - a["value"]) > math.hypot(a["u95"], b["u95"])
+    va, vb = a["value"], b["value"]
+    if a.get("sign_determined") is False or b.get("sign_determined") is False:
+        va, vb = abs(va), abs(vb)
+    return abs(vb - va) > math.hypot(a["u95"], b["u95"])
 
 
 def _changes(before: dict[str, Any], after: dict[str, Any]) -> list[str]:

@@ -100,7 +100,7 @@ def plot_power_slopes(path: str | Path, points, results: dict, *, max_order: int
 
 
 _COMPARED = (("gamma_per_w_per_km", "gamma (1/(W km))"),
-             ("abs_dispersion_ps_per_nm_km", "|D| (ps/(nm km))"),
+             ("dispersion_ps_per_nm_km", "D or |D| (ps/(nm km))"),
              ("first_sideband_efficiency_db", "1st sideband / pump (dB)"))
 
 
@@ -128,7 +128,7 @@ def plot_comparison(path: str | Path, comparison: dict) -> Path:
 def plot_history(path: str | Path, history: dict) -> Path:
     """One spool over time: each headline value per fit with U95, changed fits marked red."""
     keys = (("gamma_per_w_per_km", "gamma (1/(W km))"),
-            ("abs_dispersion_ps_per_nm_km", "|D| (ps/(nm km))"))
+            ("dispersion_ps_per_nm_km", "D or |D| (ps/(nm km))"))
     fig, axes = plt.subplots(len(keys), 1, figsize=(8, 6), dpi=110, sharex=True)
     fits = history["history"]
     for ax, (key, title) in zip(axes, keys, strict=True):

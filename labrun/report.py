@@ -131,8 +131,10 @@ def _efficiency_plot(table: Any, fit: Any, spool: Any, out: Path) -> str | None:
         pb = float(dbm_to_w(table["power_b_dbm"].median()))
         model = small_signal_sideband_w(fibre, pa, pb, lam, grid, "high") / \
             (pb * math.exp(-fibre.alpha_per_km * fibre.length_km))
-        ax.semilogx(grid, 10 * np.log10(model), "-", label=f"fit: |D| {abs(disp.value):.3g} "
-                                                         f"{disp.unit}, gamma {gamma.value:.3g}")
+        d_text = (f"D {disp.value:.3g}" if (disp.extra or {}).get("sign_determined")
+                  else f"|D| {abs(disp.value):.3g}")
+        ax.semilogx(grid, 10 * np.log10(model), "-",
+                    label=f"fit: {d_text} {disp.unit}, gamma {gamma.value:.3g}")
     ax.set_xlabel("tone spacing (GHz)")
     ax.set_ylabel("first upper sideband / pump tone (dB)")
     ax.set_title("FWM efficiency against spacing (Inoue small-signal model)", fontsize=9)

@@ -45,18 +45,21 @@ def test_both_spools_fitted_and_compared(tmp_path, capsys):
     assert main(["compare", "HNLF-A17", "SMF-B02", "--db", db, "--json"]) == 0
     hnlf, smf = json.loads(capsys.readouterr().out)["spools"]
     assert hnlf["gamma_per_w_per_km"]["value"] == pytest.approx(HNLF_GAMMA, rel=0.01)
-    assert hnlf["abs_dispersion_ps_per_nm_km"]["value"] == pytest.approx(abs(HNLF_D), rel=0.05)
+    # D signed where the fit determined its sign, else |D| (labrun fit shows the same)
+    hnlf_d = HNLF_D if hnlf["dispersion_ps_per_nm_km"]["sign_determined"] else abs(HNLF_D)
+    smf_d = SMF_D if smf["dispersion_ps_per_nm_km"]["sign_determined"] else abs(SMF_D)
+    assert hnlf["dispersion_ps_per_nm_km"]["value"] == pytest.approx(hnlf_d, rel=0.05)
     assert hnlf["gamma_per_w_per_km"]["runs"] == [1, 2]
-    for key in ("gamma_per_w_per_km", "abs_dispersion_ps_per_nm_km"):
+    for key in ("gamma_per_w_per_km", "dispersion_ps_per_nm_km"):
         assert smf[key]["runs"] == [3, 4] and smf[key]["u95"] is not None
     assert smf["gamma_per_w_per_km"]["value"] == pytest.approx(SMF_GAMMA, rel=0.01)
-    assert smf["abs_dispersion_ps_per_nm_km"]["value"] == pytest.approx(SMF_D, rel=0.02)
-    for spool, gamma, d in ((hnlf, HNLF_GAMMA, abs(HNLF_D)), (smf, SMF_GAMMA, SMF_D)):
+    assert smf["dispersion_ps_per_nm_km"]["value"] == pytest.approx(smf_d, rel=0.02)
+    for spool, gamma, d in ((hnlf, HNLF_GAMMA, hnlf_d), (smf, SMF_GAMMA, smf_d)):
         # the truth inside the expanded uncertainty (issue 9, "done when")
         assert abs(spool["gamma_per_w_per_km"]["value"] - gamma) <= \
             spool["gamma_per_w_per_km"]["u95"]
-        assert abs(spool["abs_dispersion_ps_per_nm_km"]["value"] - d) <= \
-            spool["abs_dispersion_ps_per_nm_km"]["u95"]
+        assert abs(spool["dispersion_ps_per_nm_km"]["value"] - d) <= \
+            spool["dispersion_ps_per_nm_km"]["u95"]
     # a second fit of the same runs: the history has two fits and no change between them
     assert main(["fit", "1", "2", "--db", db]) == 0
     capsys.readouterr()

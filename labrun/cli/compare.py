@@ -8,7 +8,7 @@ from typing import Any
 
 from labrun.store import DEFAULT_DB
 
-ROWS = (("gamma_per_w_per_km", "gamma"), ("abs_dispersion_ps_per_nm_km", "|D|"),
+ROWS = (("gamma_per_w_per_km", "gamma"), ("dispersion_ps_per_nm_km", "D"),
         ("dispersion_slope_ps_per_nm2_km", "dispersion slope"), ("loss_db_per_km", "loss"),
         ("effective_length_km", "effective length"),
         ("first_sideband_efficiency_db", "1st sideband/pump"))
@@ -18,11 +18,13 @@ def register(subparsers: Any) -> None:
     """Add the compare command."""
     p = subparsers.add_parser(
         "compare", help="spools side by side (or one spool's history) from stored fits",
-        description="Compare spools by their latest stored fits: gamma, |D|, dispersion slope, "
+        description="Compare spools by their latest stored fits: gamma, D, dispersion slope, "
                     "loss, effective length and the first-sideband efficiency at common "
                     "conditions, each with its uncertainty and runs. With one label: that "
                     "spool's fits over time, flagging any change larger than the combined "
-                    "expanded uncertainty.")
+                    "expanded uncertainty. D and its slope are signed where the fit determined "
+                    "the sign of D, else shown as |D| and d|D|/dlambda, as labrun fit shows "
+                    "them.")
     p.add_argument("labels", metavar="LABEL", nargs="+", help="spool labels")
     p.add_argument("--db", default=DEFAULT_DB, metavar="URL_OR_PATH",
                    help=f"SQLAlchemy URL or SQLite file path (default: {DEFAULT_DB} here)")
@@ -31,17 +33,31 @@ def register(subparsers: Any) -> None:
     p.set_defaults(func=cmd_compare)
 
 
-def _value(entry: dict[str, Any] | None) -> str:
+# What a value is when the fit did not determine the sign of D (labrun.fits' conventions).
+KEY_D = "dispersion_ps_per_nm_km"
+UNSIGNED = {KEY_D: "|D| ", "dispersion_slope_ps_per_nm2_km": "d|D|/dlambda "}
+SIGN_NOTE = "|D|, d|D|/dlambda: the fit did not determine the sign of D"
+
+
+def _value(entry: dict[str, Any] | None, key: str = "") -> str:
     """'10.89 (U k=2 0.0047) 1/(W km)': the expanded uncertainty labelled by what it is, as
-    ``labrun fit`` labels it ('U k=2' the GUM budget's 2 u_c, 'U95 t' a Student-t half-width)."""
+    ``labrun fit`` labels it ('U k=2' the GUM budget's 2 u_c, 'U95 t' a Student-t half-width);
+    D and its slope prefixed '|D| ' / 'd|D|/dlambda ' when the fit did not determine D's sign."""
     from labrun.spoolfits import u_label
 
     if not entry or entry.get("value") is None:
         return "-"
-    text = f"{entry['value']:.4g}"
+    text = UNSIGNED.get(key, "") if entry.get("sign_determined") is False else ""
+    text += f"{entry['value']:.4g}"
     if entry.get("u95") is not None:
         text += f" ({u_label(entry.get('u95_kind'))} {entry['u95']:.2g})"
     return f"{text} {entry['unit']}"
+
+
+def _d_text(entry: dict[str, Any] | None) -> str:
+    """'D -4.604 (...)' or '|D| 4.604 (...)': D named as what it is."""
+    text = _value(entry, KEY_D)
+    return text if text.startswith(UNSIGNED[KEY_D]) else f"D {text}"
 
 
 def _source(sp: dict[str, Any]) -> str:
@@ -56,13 +72,14 @@ def _side_by_side(rep: dict[str, Any]) -> str:
     from labrun.spoolfits import U_LEGEND
 
     spools = rep["spools"]
-    width = 36
+    width = 46
     out = [f"{'':<18}" + "".join(f"{sp['spool']:<{width}}" for sp in spools)]
     for key, name in ROWS:
-        out.append(f"{name:<18}" + "".join(f"{_value(sp.get(key)):<{width}}" for sp in spools))
+        out.append(f"{name:<18}" + "".join(f"{_value(sp.get(key), key):<{width}}"
+                                           for sp in spools))
     out.append(f"{'fit (runs)':<18}" + "".join(f"{_source(sp):<{width}}" for sp in spools))
     c = rep["common_conditions"]
-    out.append(f"({U_LEGEND}; efficiency at {c['spacing_ghz']:g} GHz, "
+    out.append(f"({U_LEGEND}; {SIGN_NOTE}; efficiency at {c['spacing_ghz']:g} GHz, "
                f"{c['power_dbm']:g} dBm per tone, {c['wavelength_nm']:g} nm)")
     return "\n".join(out)
 
@@ -76,9 +93,9 @@ def _history(rep: dict[str, Any]) -> str:
         runs = ",".join(map(str, h["runs"]))
         out.append(f"  fit {h['fit_id']:>4}  {h['fitted_at'][:19]}  runs {runs:<10} "
                    f"gamma {_value(h.get('gamma_per_w_per_km'))}"
-                   f"  |D| {_value(h.get('abs_dispersion_ps_per_nm_km'))}{flag}")
-    out.append(f"({U_LEGEND}; CHANGED: differs from the previous fit by more than the "
-               "two fits' expanded uncertainties combined, sqrt(U1^2 + U2^2))")
+                   f"  {_d_text(h.get(KEY_D))}{flag}")
+    out.append(f"({U_LEGEND}; {SIGN_NOTE}; CHANGED: differs from the previous fit by more "
+               "than the two fits' expanded uncertainties combined, sqrt(U1^2 + U2^2))")
     return "\n".join(out)
 
 

@@ -47,7 +47,11 @@ def register(subparsers: Any) -> None:
 
 
 def headline(record: Any) -> dict[str, Any]:
-    """The headline parameters of a fit (see HEADLINE), each with its runs."""
+    """The headline parameters of a fit (see HEADLINE), each with its runs; D and its slope
+    with ``sign_determined`` (D signed when the fit determined its sign, else |D|, as labrun fit
+    shows it)."""
+    from labrun.compare import sign_determined
+
     out: dict[str, Any] = {}
     if record is None:
         return out
@@ -57,6 +61,11 @@ def headline(record: Any) -> dict[str, Any]:
             if p is not None and p.value is not None:
                 out[column] = {**p.to_dict(), "parameter": name, "runs": record.run_ids,
                                "fit_id": record.fit_id, "u95_kind": p.u95_kind()}
+                if name.startswith("dispersion"):
+                    signed = sign_determined(p)
+                    out[column]["sign_determined"] = signed
+                    if name == "dispersion" and not signed:
+                        out[column]["value"] = abs(p.value)
                 break
     return out
 
@@ -89,15 +98,18 @@ def spool_rows(store: Any) -> list[dict[str, Any]]:
 
 def _short(p: dict[str, Any] | None) -> str:
     """'12.5 (U k=2 0.28)': a headline value with its uncertainty labelled as labrun fit and
-    labrun compare label it (the statistical error only where there is no U)."""
+    labrun compare label it (the statistical error only where there is no U); a D whose sign
+    the fit did not determine is shown as '|D| 4.6 (...)'."""
     from labrun.spoolfits import u_label
 
     if not p:
         return "-"
+    name = "|D| " if p.get("parameter") == "dispersion" and p.get("sign_determined") is False \
+        else ""
     if p.get("u95") is not None:
-        return f"{p['value']:.4g} ({u_label(p.get('u95_kind'))} {p['u95']:.2g})"
+        return f"{name}{p['value']:.4g} ({u_label(p.get('u95_kind'))} {p['u95']:.2g})"
     err = f" (u stat {p['stderr']:.2g})" if p.get("stderr") is not None else ""
-    return f"{p['value']:.4g}{err}"
+    return f"{name}{p['value']:.4g}{err}"
 
 
 def cmd_spools(args: argparse.Namespace) -> int:
@@ -116,15 +128,16 @@ def cmd_spools(args: argparse.Namespace) -> int:
         print("no spools recorded yet")
         return 0
     print(f"{'spool':<12} {'km':>7} {'dB/km':>6} {'runs':>4} {'fit':>4}  "
-          f"{'gamma 1/(W km)':<22} {'D ps/(nm km)':<22} type")
+          f"{'gamma 1/(W km)':<22} {'D ps/(nm km)':<26} type")
     for r in rows:
         print(f"{r['spool']:<12} {_opt(r['length_km']):>7} {_opt(r['loss_db_per_km']):>6} "
               f"{r['runs']:>4} {r['latest_fit'] or '-':>4}  "
               f"{_short(r.get('gamma_per_w_per_km')):<22} "
-              f"{_short(r.get('dispersion_ps_per_nm_km')):<22} {r['fibre_type'] or ''}")
+              f"{_short(r.get('dispersion_ps_per_nm_km')):<26} {r['fibre_type'] or ''}")
     from labrun.spoolfits import U_LEGEND
 
-    print(f"{U_LEGEND}; u stat: statistical standard error only")
+    print(f"{U_LEGEND}; u stat: statistical standard error only; |D|: the fit did not "
+          "determine the sign of D")
     return 0
 
 
