@@ -78,6 +78,24 @@ OFFSETS_NOTE = ("  (launched power a, b: the arms' offsets are fitted with the e
                 "budget row replaces the per-arm calibration rows, counted once)")
 
 
+SLOPE_FOLLOWS_D = ("fitted jointly with D: its sign follows D's (see the notes under "
+                   "dispersion)")
+
+
+def shown_warnings(record: Any, name: str) -> list[str]:
+    """The warnings printed under one parameter: the slope's notes that repeat those of D (the
+    same joint fit: the sign of D, a bound) are said once, under dispersion; the JSON keeps
+    both results' warnings whole."""
+    p = record.parameters[name]
+    own = [w for w in p.extra.get("warnings", []) if not w.startswith("refused")]
+    d = record.parameters.get("dispersion")
+    if name != "dispersion_slope" or d is None or d.value is None:
+        return own
+    under_d = set(d.extra.get("warnings", []))
+    kept = [w for w in own if w not in under_d]
+    return [SLOPE_FOLLOWS_D, *kept] if len(kept) < len(own) else kept
+
+
 def fit_text(record: Any) -> str:
     """The fit as a table for people, with the GUM budget of the exact model's parameters."""
     from labrun.uncertainty import budget_text
@@ -99,7 +117,7 @@ def fit_text(record: Any) -> str:
         mc = mc_text(p)
         if mc:
             out.append(mc)
-        out.extend(f"    ! {w}" for w in p.extra.get("warnings", []) if not w.startswith("refused"))
+        out.extend(f"    ! {w}" for w in shown_warnings(record, name))
     from labrun.spoolfits import U_LEGEND
 
     out.append(f"  (+/- statistical standard uncertainty of the fit; {U_LEGEND})")
