@@ -20,7 +20,7 @@ from labrun.errors import InputError
 
 if TYPE_CHECKING:
     from labrun.physics.spool import ModelLine
-    from labrun.vlab.scenario import Scenario
+    from labrun.vlab.scenario import Scenario, SpoolSpec
 
 SPECTRUM_MODELS = ("auto", "bessel", "nlse")
 
@@ -34,6 +34,16 @@ def register(subparsers: argparse._SubParsersAction) -> None:
     serve = sub.add_parser("serve", help="serve simulated SCPI instruments on loopback TCP")
     serve.add_argument("--scenario", required=True, metavar="FILE",
                        help="scenario TOML (path or shipped name, e.g. default-scenario.toml)")
+    serve.add_argument("--spool", metavar="NAME",
+                       help="connect this spool (one of the scenario's [[spools]] or of "
+                            "--spool-file) instead of the scenario's connected one")
+    serve.add_argument("--spool-file", metavar="FILE",
+                       help="your own spool(s): a TOML file of [[spools]] tables as in a "
+                            "scenario (name, length_km, loss_db_per_km, gamma_per_w_per_km, "
+                            "dispersion_ps_per_nm_km, dispersion_slope_ps_per_nm2_km, "
+                            "reference_wavelength_nm), added to the scenario's (replacing one "
+                            "of the same name); a file of one spool connects it (e.g. the "
+                            "shipped example-spool.toml)")
     serve.add_argument("--host", default="127.0.0.1",
                        help="address to bind (default 127.0.0.1; anything else is reachable "
                             "from the network)")
@@ -46,7 +56,11 @@ def register(subparsers: argparse._SubParsersAction) -> None:
 
     spec = sub.add_parser("spectrum", help="model lines at a spool output for given launch powers")
     spec.add_argument("--scenario", required=True, metavar="FILE", help="scenario TOML")
-    spec.add_argument("--spool", required=True, metavar="NAME", help="spool name in the scenario")
+    spec.add_argument("--spool", metavar="NAME",
+                      help="spool name in the scenario or --spool-file (default: the "
+                           "scenario's connected spool, or the spool file's only one)")
+    spec.add_argument("--spool-file", metavar="FILE",
+                      help="your own spool(s): [[spools]] tables as for sim serve --spool-file")
     spec.add_argument("--power-a-dbm", type=float, required=True, metavar="X",
                       help="tone a power launched into the spool (dBm)")
     spec.add_argument("--power-b-dbm", type=float, required=True, metavar="Y",
@@ -72,9 +86,9 @@ def register(subparsers: argparse._SubParsersAction) -> None:
 def run_serve(args: argparse.Namespace) -> int:
     """Serve the scenario's instruments until Ctrl-C or SIGTERM; exit 0 with sources off."""
     from labrun.vlab.lab import BindError, VirtualLab, is_loopback
-    from labrun.vlab.scenario import load_scenario
+    from labrun.vlab.scenario import connect_spool, load_scenario
 
-    scenario = load_scenario(args.scenario)
+    scenario = connect_spool(load_scenario(args.scenario), args.spool, args.spool_file)
     if not math.isfinite(args.time_scale) or args.time_scale < 0:
         raise InputError("must be a number >= 0", field="--time-scale")
     if not is_loopback(args.host):
@@ -103,6 +117,7 @@ def run_serve(args: argparse.Namespace) -> int:
                 raise InputError(f"cannot write: {exc.strerror or exc}", file=args.bench_out,
                                  field="--bench-out") from None
             print(f"bench file: {path}", flush=True)
+        print(spool_text(scenario.spool()), flush=True)
         print(f"virtual lab running (spool {scenario.connected}, time scale "
               f"{args.time_scale:g}, seed {args.seed}); Ctrl-C to stop", flush=True)
         while not stop.wait(0.2):
@@ -113,6 +128,15 @@ def run_serve(args: argparse.Namespace) -> int:
             signal.signal(sig, handler)
     print("virtual lab stopped; every simulated source is off", flush=True)
     return 0
+
+
+def spool_text(spool: SpoolSpec) -> str:
+    """'connected spool DSF-C31: 0.6 km, 1.5 dB/km, ...': what the virtual lab models."""
+    return (f"connected spool {spool.name}: {spool.length_km:g} km, "
+            f"{spool.loss_db_per_km:g} dB/km, gamma {spool.gamma_per_w_per_km:g} 1/(W km), "
+            f"D {spool.dispersion_ps_per_nm_km:g} ps/(nm km), slope "
+            f"{spool.dispersion_slope_ps_per_nm2_km:g} ps/(nm^2 km) at "
+            f"{spool.reference_wavelength_nm:g} nm")
 
 
 def _check_writable_folder(path: str, option: str) -> None:
@@ -160,15 +184,10 @@ SPECTRUM_MARGIN_DB = 3.0
 def run_spectrum(args: argparse.Namespace) -> int:
     """Print (or write) the spool-output spectrum for the given launch."""
     from labrun.physics.spool import output_lines
-    from labrun.vlab.scenario import load_scenario
+    from labrun.vlab.scenario import connect_spool, load_scenario
 
-    scenario = load_scenario(args.scenario)
-    try:
-        spool = scenario.spool(args.spool)
-    except KeyError:
-        names = ", ".join(s.name for s in scenario.spools)
-        raise InputError(f"no spool {args.spool!r} in {scenario.source} (spools: {names})",
-                         field="--spool") from None
+    scenario = connect_spool(load_scenario(args.scenario), args.spool, args.spool_file)
+    spool = scenario.spool()
     _check_spectrum_args(args)
     copolar = _copolar(args.pol_angle_deg)
     try:

@@ -46,7 +46,7 @@ class SpoolSpec(_Strict):
     name: str = Field(min_length=1)
     length_km: float = Field(gt=0, le=1000)
     loss_db_per_km: float = Field(ge=0, le=100)
-    gamma_per_w_per_km: float = Field(ge=0, le=1e5)
+    gamma_per_w_per_km: float = Field(gt=0, le=1e5)  # every fibre is nonlinear
     dispersion_ps_per_nm_km: float = Field(default=0.0, ge=-1000, le=1000)
     dispersion_slope_ps_per_nm2_km: float = Field(default=0.0, ge=-10, le=10)
     reference_wavelength_nm: float = Field(default=1550.0, ge=1200, le=1700)
@@ -209,17 +209,9 @@ def parse_scenario(data: dict[str, Any], *, file: str = "<scenario>") -> Scenari
     try:
         scenario = Scenario.model_validate({**data, "source": file})
     except ValidationError as exc:
-        err = exc.errors()[0]
-        msg = err.get("msg", "invalid value").removeprefix("Value error, ")
-        field = _field_of(err)
-        if err.get("type") == "missing":
-            msg = "required field is missing"
-        raise InputError(msg, file=file, field=field) from None
-    names = [s.name for s in scenario.spools]
-    for i, name in enumerate(names):
-        if name in names[:i]:
-            raise InputError(f"duplicate spool name {name!r}", file=file, field=f"spools[{i}].name")
-    if scenario.connected not in names:
+        raise _first_error(exc, file) from None
+    _check_unique(scenario.spools, file)
+    if scenario.connected not in [s.name for s in scenario.spools]:
         raise InputError(f"{scenario.connected!r} names no spool in [[spools]]", file=file,
                          field="connected")
     _check_workload(scenario, file)
@@ -227,20 +219,89 @@ def parse_scenario(data: dict[str, Any], *, file: str = "<scenario>") -> Scenari
 
 
 def _check_workload(scenario: Scenario, file: str) -> None:
-    """Refuse a spool the models cannot compute in reasonable time at the bench's power cap.
+    """Refuse a spool the models cannot compute in reasonable time at the bench's power cap."""
+    _check_spools_workload(scenario.spools, scenario.bench, file)
+
+
+def _check_spools_workload(spools: list[SpoolSpec], bench: BenchLayout, file: str) -> None:
+    """Refuse a spool (``spools[i]`` of ``file``) the models cannot compute in reasonable time
+    at the bench's power cap.
 
     The split-step cost grows with the peak nonlinear phase; the cap bounds what labrun launches
     (all of it in one line pair: (sqrt(Pa) + sqrt(Pb))^2 <= 2 P_total).
     """
-    p_total = float(dbm_to_w(scenario.bench.max_total_launched_dbm))
-    for i, spool in enumerate(scenario.spools):
+    p_total = float(dbm_to_w(bench.max_total_launched_dbm))
+    for i, spool in enumerate(spools):
         phi = nonlinear_phase_rad(spool.fibre(), p_total / 2.0, p_total / 2.0)
         if phi > MAX_NONLINEAR_PHASE_RAD:
             raise InputError(
                 f"nonlinear phase {phi:.3g} rad at the bench cap of "
-                f"{scenario.bench.max_total_launched_dbm:g} dBm exceeds the "
+                f"{bench.max_total_launched_dbm:g} dBm exceeds the "
                 f"{MAX_NONLINEAR_PHASE_RAD:g} rad the spool models compute in reasonable time",
                 file=file, field=f"spools[{i}].gamma_per_w_per_km")
+
+
+class SpoolFile(_Strict):
+    """A spool file: the ``[[spools]]`` tables of a scenario on their own (labrun sim serve
+    --spool-file), to put one's own spool into the virtual lab."""
+
+    spools: list[SpoolSpec] = Field(min_length=1)
+
+
+def _first_error(exc: ValidationError, file: str) -> InputError:
+    """One InputError naming the file and the dotted field of pydantic's first error."""
+    err = exc.errors()[0]
+    msg = err.get("msg", "invalid value").removeprefix("Value error, ")
+    if err.get("type") == "missing":
+        msg = "required field is missing"
+    return InputError(msg, file=file, field=_field_of(err))
+
+
+def _check_unique(spools: list[SpoolSpec], file: str) -> None:
+    """InputError for the second of two spools with one name."""
+    names = [s.name for s in spools]
+    for i, name in enumerate(names):
+        if name in names[:i]:
+            raise InputError(f"duplicate spool name {name!r}", file=file, field=f"spools[{i}].name")
+
+
+def load_spool_file(path: str | Path) -> tuple[list[SpoolSpec], str]:
+    """The spools of a spool file (a path, or the name of a shipped one) and the file's name;
+    InputError naming the file and field for a missing file, a bad value or a duplicate name."""
+    found = find_file(path, "sim_instruments", suffixes=("", ".toml"))
+    if found is None:
+        raise InputError("no such spool file", file=str(path), field="--spool-file")
+    _, data = load_toml(found)
+    try:
+        spools = list(SpoolFile.model_validate(data).spools)
+    except ValidationError as exc:
+        raise _first_error(exc, str(found)) from None
+    _check_unique(spools, str(found))
+    return spools, str(found)
+
+
+def connect_spool(scenario: Scenario, name: str | None = None,
+                  spool_file: str | Path | None = None) -> Scenario:
+    """The scenario with the spool ``name`` connected, after adding the spools of
+    ``spool_file`` (one there with a scenario spool's name replaces it). Without ``name`` a
+    spool file of one spool connects that spool, else the scenario's ``connected`` stays.
+    InputError naming the option or the spool file and field."""
+    added: list[SpoolSpec] = []
+    if spool_file is not None:
+        added, shown = load_spool_file(spool_file)
+        _check_spools_workload(added, scenario.bench, shown)
+        if name is None and len(added) > 1:
+            raise InputError(f"the file holds {len(added)} spools "
+                             f"({', '.join(s.name for s in added)}): name one with --spool",
+                             file=shown, field="--spool-file")
+    new = {s.name for s in added}
+    spools = [s for s in scenario.spools if s.name not in new] + added
+    wanted = name if name is not None else (added[0].name if added else scenario.connected)
+    if wanted not in {s.name for s in spools}:
+        raise InputError(f"{wanted!r} names no spool of {scenario.source or 'the scenario'}"
+                         f"{' or the spool file' if added else ''} (known: "
+                         f"{', '.join(s.name for s in spools)})", field="--spool")
+    return scenario.model_copy(update={"spools": spools, "connected": wanted})
 
 
 def load_scenario(path: str | Path) -> Scenario:
