@@ -65,6 +65,9 @@ class Calibration(_Strict):
     power_b_u_db: float = Field(0.1, ge=0.0, le=10.0)
     osa_amplitude_u_db: float = Field(0.05, ge=0.0, le=10.0)
     wavelength_u_pm: float = Field(5.0, ge=0.0, le=1000.0)
+    # The total launched power read on the input tap (power meter calibration and tap ratio
+    # together): fixes the arms' common launched-power offset in the exact fit (labrun.exactfit).
+    tap_power_u_db: float = Field(0.1, ge=0.0, le=10.0)
 
 
 class Polarisation(_Strict):

@@ -46,6 +46,10 @@ OFFSET_MODEL = ("launched-power offset of one arm (nuisance of the exact fit): o
 OFFSET_CONVENTION = "true launched power = recorded power_<arm>_dbm + offset, dB"
 OFFSET_SOURCE = "launched power a, b (fitted)"  # fits the budget table's 28 columns
 POWER_FIELDS = ("power_a_db", "power_b_db")
+# The common part of the offsets from the tap power meter (the text fits the 28 columns).
+OFFSET_SOURCE_TAP = "launched power (tap meter)"
+TAP_COLUMN = "tap_launched_total_dbm"  # per point: power meter reading + input_tap_db, dBm
+TAP_ITERATIONS = 3  # relinearisations of the tap row (its weights move with the offsets)
 DIFF_U_FLOOR_DB = 1e-4  # keeps the offsets' normal matrix well conditioned on noiseless data
 FIT_RTOL = 1e-3  # split-step tolerance inside the fit: lines down to -90 dBc within 0.01 dB
 ITERATIONS = 3
@@ -141,21 +145,63 @@ class PowerOffsets:
     diff_db: float = float("nan")  # offset b - offset a measured by the output tone ratio
     diff_u_db: float = float("nan")
     n_tone: int = 0
+    tap_db: float = float("nan")  # mean of tap-measured minus recorded total launched power
+    tap_u_db: float = float("nan")  # its standard uncertainty (Type A and B)
+    n_tap: int = 0  # points whose tap reading entered the fit (0: not used)
+
+
+def tap_weights(t: dict[str, np.ndarray], value: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Per point: the arms' linear shares (w_a, w_b; columns) of the total launched power at the
+    offsets ``value``, and that total in dBm (the sum of the arms in mW, not in dB)."""
+    p = np.stack([dbm_to_w(t["power_a_dbm"] + value[0]), dbm_to_w(t["power_b_dbm"] + value[1])],
+                 axis=1)
+    total = p.sum(axis=1)
+    return p / total[:, None], 10 * np.log10(total * 1e3)
+
+
+def _tap_row(t: dict[str, np.ndarray], value: np.ndarray, u_tap_db: float
+             ) -> tuple[np.ndarray, float, float, float, int] | None:
+    """The tap power meter's row for the offsets, linearised at ``value``: (mean weights,
+    right-hand side, mean residual, its standard uncertainty, points), None without >= 2
+    readings. Per point the measured total launched power minus the recorded arms moved by
+    the offsets is d_i ~ w_a (o_a - v_a) + w_b (o_b - v_b) (first order in dB: d(10 log10
+    sum P)/d(offset) = P_arm / sum P); their mean has a Type A scatter term and the stated
+    tap uncertainty as a Type B term that does not average down (JCGM 100:2008 5.1.2)."""
+    if TAP_COLUMN not in t:
+        return None
+    ok = np.isfinite(t[TAP_COLUMN]) & np.isfinite(t["power_a_dbm"]) & \
+        np.isfinite(t["power_b_dbm"])
+    n = int(ok.sum())
+    if n < 2:
+        return None
+    sub = {k: t[k][ok] for k in ("power_a_dbm", "power_b_dbm", TAP_COLUMN)}
+    w, model_dbm = tap_weights(sub, value)
+    d = sub[TAP_COLUMN] - model_dbm
+    mean = float(np.mean(d))
+    u = max(math.sqrt(float(np.var(d, ddof=1)) / n + u_tap_db ** 2), DIFF_U_FLOOR_DB)
+    wm = w.mean(axis=0)
+    return wm, mean + float(wm @ value), mean, u, n
 
 
 def fit_power_offsets(t: dict[str, np.ndarray], tone_corr_db: np.ndarray, u_a_db: float,
-                      u_b_db: float, u_osa_db: float, *, prior: bool = True) -> PowerOffsets:
+                      u_b_db: float, u_osa_db: float, *, prior: bool = True,
+                      u_tap_db: float | None = None) -> PowerOffsets:
     """Launched-power offsets of the two arms by weighted linear least squares.
 
     Rows: (1) the output tone ratio b/a in dB minus the recorded launched ratio and the
     split-step's own change of that ratio (``tone_corr_db``, depletion) measures offset b -
     offset a; its mean over the points, with a standard uncertainty from the scatter (Type A)
-    and the OSA relative amplitude (Type B, not averaged down). (2) The prior rows offset/u of
-    each arm, u the bench's stated launched-power calibration uncertainty. A common offset of
-    both arms cannot be told apart from gamma (the NLSE is unchanged under P -> c P,
-    gamma -> gamma / c; it does change every sideband ratio at fixed gamma), so their
-    sum is held by the prior alone: without it (``prior=False``) the system is singular. An
-    arm with u = 0 is held at 0.
+    and the OSA relative amplitude (Type B, not averaged down). (2) With ``u_tap_db`` (the
+    bench's stated uncertainty of the tap power measurement) and a ``tap_launched_total_dbm``
+    column (the power meter on the input tap, per point): the measured total launched power
+    against the recorded arms moved by the offsets, w_a o_a + w_b o_b = P_meas - P_rec (w the
+    arms' linear power shares; ``_tap_row``), relinearised at the solution. (3) The prior
+    rows offset/u of each arm, u the bench's stated launched-power calibration uncertainty.
+    A common offset of both arms cannot be told apart from gamma by any line ratio (the NLSE
+    is unchanged under P -> c P, gamma -> gamma / c; Agrawal, Nonlinear Fiber Optics; it
+    does change every sideband ratio at fixed gamma), so their sum is held by the tap row
+    where there is one, else by the prior alone: without either (``prior=False``, no tap) the
+    system is singular. An arm with u = 0 is held at 0.
     """
     u = (float(u_a_db), float(u_b_db))
     free = [i for i in range(2) if u[i] > 0]
@@ -178,12 +224,29 @@ def fit_power_offsets(t: dict[str, np.ndarray], tone_corr_db: np.ndarray, u_a_db
             rows.append([1.0 / u[i] if j == i else 0.0 for j in range(2)])
             rhs.append(0.0)
     value, cov = np.zeros(2), np.zeros((2, 2))
-    if free and rows:
-        a = np.asarray(rows)[:, free]
+    tap = None
+    for _ in range(TAP_ITERATIONS if u_tap_db is not None else 1):
+        tap = None if u_tap_db is None else _tap_row(t, value, float(u_tap_db))
+        all_rows, all_rhs = list(rows), list(rhs)
+        if tap is not None:
+            all_rows.append(list(tap[0] / tap[3]))
+            all_rhs.append(tap[1] / tap[3])
+        if not (free and all_rows):
+            break
+        a = np.asarray(all_rows)[:, free]
         cov_free = np.linalg.inv(a.T @ a)
-        value[free] = cov_free @ a.T @ np.asarray(rhs)
+        value = np.zeros(2)
+        value[free] = cov_free @ a.T @ np.asarray(all_rhs)
+        cov = np.zeros((2, 2))
         cov[np.ix_(free, free)] = cov_free
-    return PowerOffsets(value, cov, u, diff, diff_u, n_tone)
+        if tap is None:
+            break
+    tap_db, tap_u, n_tap = float("nan"), float("nan"), 0
+    if tap is not None:
+        at_zero = _tap_row(t, np.zeros(2), float(u_tap_db or 0.0))
+        assert at_zero is not None  # same points as ``tap``
+        tap_db, tap_u, n_tap = at_zero[2], tap[3], tap[4]
+    return PowerOffsets(value, cov, u, diff, diff_u, n_tone, tap_db, tap_u, n_tap)
 
 
 def _shifted(t: dict[str, np.ndarray], offsets: PowerOffsets) -> dict[str, np.ndarray]:
@@ -218,7 +281,9 @@ def _offset_results(offsets: PowerOffsets, residual_rms: float) -> dict[str, Fit
             float(offsets.value[i]), u, offsets.n_tone, residual_rms, OFFSET_MODEL, "dB",
             extra={"prior_u_db": offsets.prior_u_db[i], "tone_ratio_diff_db": offsets.diff_db,
                    "tone_ratio_diff_u_db": offsets.diff_u_db,
-                   "correlation_ab": _correlation(offsets.cov)},
+                   "correlation_ab": _correlation(offsets.cov),
+                   "tap_used": offsets.n_tap > 0, "tap_points": offsets.n_tap,
+                   "tap_total_diff_db": offsets.tap_db, "tap_total_u_db": offsets.tap_u_db},
             warnings=([] if offsets.n_tone >= 2 else
                       ["no output tone ratio on >= 2 points: the offset is its prior"]),
             conventions=OFFSET_CONVENTION, u_combined=u_c, u95=u95, budget=[stat.to_dict()])
@@ -263,7 +328,8 @@ def _offset_budget(results: dict[str, FitResult], t2: dict[str, np.ndarray],
         contrib = math.sqrt(max(float(c @ offsets.cov @ c), 0.0)) if np.isfinite(c).all() \
             else float("nan")
         comps = [Component(**row) for row in r.budget if row["source"] not in drop]
-        comps.insert(1, Component(OFFSET_SOURCE, float("nan"), "", contrib))
+        source = OFFSET_SOURCE_TAP if offsets.n_tap > 0 else OFFSET_SOURCE
+        comps.insert(1, Component(source, float("nan"), "", contrib))
         u_c, u95 = combine(comps)
         out[k] = replace(r, budget=[x.to_dict() for x in comps], u_combined=u_c, u95=u95)
     return out
@@ -294,7 +360,7 @@ def fit_spool(runs_points: Sequence[Any], spool_length_km: float, loss_db_per_km
               dispersion_ps_per_nm_km: float | None = None, slope_ps_per_nm2_km: float = 0.0,
               reference_wavelength_nm: float = 1550.0, polarisation: PolFrame | None = None,
               uncertainties: Uncertainties | None = None, iterations: int = ITERATIONS,
-              power_offsets: bool = True, monte_carlo: int = 0,
+              power_offsets: bool = True, tap_power: bool = True, monte_carlo: int = 0,
               mc_seed: int = 1) -> dict[str, FitResult]:
     """Fit gamma, D and the slope of one spool from all its runs with the exact model.
 
@@ -309,7 +375,12 @@ def fit_spool(runs_points: Sequence[Any], spool_length_km: float, loss_db_per_km
     parameters ``power_offset_a``/``_b`` in the result, fit_power_offsets), its prior the
     bench's calibration uncertainty (``uncertainties``, else the documented defaults); the
     exact results then use the moved powers and their budget has one row for the offsets in
-    place of the per-arm calibration rows.
+    place of the per-arm calibration rows. With ``tap_power`` and a ``tap_launched_total_dbm``
+    column (the input-tap power meter's reading plus the bench's ``input_tap_db``, stored per
+    point by the engine) the tap's total launched power is a row of that offsets fit, its
+    uncertainty the bench's ``tap_power_u_db``: it fixes the arms' common offset, which the
+    line ratios cannot tell from gamma; the offsets' budget row then reads
+    OFFSET_SOURCE_TAP, and ``power_offset_a``/``_b`` say ``tap_used`` and ``tap_points``.
     ``monte_carlo`` = M > 0 adds a JCGM 101:2008 Monte Carlo propagation of the budget's inputs
     to the exact results (labrun.montecarlo: M closed-form refits of the exact-corrected data,
     the model corrections held fixed as in the budget; the arms' powers drawn from the fitted
@@ -334,13 +405,14 @@ def fit_spool(runs_points: Sequence[Any], spool_length_km: float, loss_db_per_km
     history = [theta]
     unc = uncertainties or Uncertainties()
     u_arms = (unc.power_a_db, unc.power_b_db) if power_offsets else (0.0, 0.0)
+    u_tap = unc.tap_power_db if tap_power else None
     offsets = fit_power_offsets(t, np.zeros(n), 0.0, 0.0, unc.osa_amplitude_db)
     for _ in range(iterations):
         fib = Fibre(spool_length_km, loss_db_per_km, theta[0], theta[1], theta[2],
                     reference_wavelength_nm)
         c_hi, c_lo, c_tone = _corrections(_shifted(t, offsets), cop, fib,
                                           reference_wavelength_nm)
-        offsets = fit_power_offsets(t, c_tone, *u_arms, unc.osa_amplitude_db)
+        offsets = fit_power_offsets(t, c_tone, *u_arms, unc.osa_amplitude_db, u_tap_db=u_tap)
         t2 = _shifted(t, offsets)
         for key, corr in (("sideband_high_1", c_hi), ("sideband_low_1", c_lo)):
             for col in (key, LIMIT_PREFIX + key):  # an upper limit moves with its line

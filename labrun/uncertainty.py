@@ -35,7 +35,9 @@ class Uncertainties:
     Defaults (common practice for a bench calibrated with a power meter and a wavelength
     reference; replace them with your own calibration's): 0.1 dB launched power per arm, 0.05 dB
     OSA relative amplitude (sideband against tone, a few nm apart), 5 pm per laser wavelength,
-    0.5 % spool length, 0.02 dB/km spool loss.
+    0.5 % spool length, 0.02 dB/km spool loss, 0.1 dB for the total launched power measured on
+    the input tap (power meter calibration and tap ratio together; used by the exact fit's
+    launched-power offsets, labrun.exactfit, not a component of its own).
     """
 
     power_a_db: float = 0.1
@@ -44,12 +46,13 @@ class Uncertainties:
     wavelength_pm: float = 5.0
     length_rel: float = 0.005
     loss_db_per_km: float = 0.02
+    tap_power_db: float = 0.1
 
     @classmethod
     def from_calibration(cls, cal, **spool) -> Uncertainties:
         """From a bench's [calibration] (labrun.bench.Calibration) and optional spool terms."""
         return cls(cal.power_a_u_db, cal.power_b_u_db, cal.osa_amplitude_u_db,
-                   cal.wavelength_u_pm, **spool)
+                   cal.wavelength_u_pm, **spool, tap_power_db=cal.tap_power_u_db)
 
 
 # (name shown in the budget, field of Uncertainties, unit of that field)

@@ -40,6 +40,7 @@ def test_partial_bench_and_defaults(tmp_path):
                     'profile = "generic-osa"\n')
     bench = load_bench(path)
     assert bench.settle_scale == 1.0 and bench.calibration.path_loss_a_db == 0.0
+    assert bench.calibration.tap_power_u_db == 0.1  # documented default (common practice)
     assert bench.instruments["osa"].backend == "@py"
     assert "laser_a" in bench.missing_sweep_roles()
 
@@ -103,6 +104,13 @@ BAD = [
      "instruments.laser_a.max_power_dbm"),
     ("cap a boolean", "max_power_dbm = 10.0", "max_power_dbm = false",
      "instruments.laser_a.max_power_dbm"),
+    # the tap power measurement's stated standard uncertainty (exact fit, issue 9)
+    ("negative tap uncertainty", "input_tap_db = 20.0",
+     "input_tap_db = 20.0\ntap_power_u_db = -0.1", "calibration.tap_power_u_db"),
+    ("nan tap uncertainty", "input_tap_db = 20.0",
+     "input_tap_db = 20.0\ntap_power_u_db = nan", "calibration.tap_power_u_db"),
+    ("tap uncertainty as text", "input_tap_db = 20.0",
+     'input_tap_db = 20.0\ntap_power_u_db = "0.1 dB"', "calibration.tap_power_u_db"),
 ]
 
 
