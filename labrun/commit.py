@@ -12,6 +12,8 @@ from typing import TYPE_CHECKING, Any
 
 from labrun.store.tracedata import TraceData
 
+TAP_KEY = "tap"  # the input-tap power meter's reading in a point's ``applied`` JSON
+
 if TYPE_CHECKING:
     from labrun.capture import Captured
     from labrun.plan import PointSpec
@@ -20,12 +22,16 @@ if TYPE_CHECKING:
 
 def point_row(spec: PointSpec, traces: Sequence[Captured], red: Reduction, attempts: int,
               started: Any, *, applied: dict[tuple[str, str], Any], rbw_nm: float | None,
-              trace_meta: dict[str, Any], input_meta: dict[str, Any]) -> dict[str, Any]:
+              trace_meta: dict[str, Any], input_meta: dict[str, Any],
+              tap: dict[str, float] | None = None) -> dict[str, Any]:
     """Everything the store keeps of a point, taken now (the settings applied change with
-    the next point while the writer thread stores this one)."""
+    the next point while the writer thread stores this one). ``tap``: the input-tap power
+    meter's reading of this point, kept under "tap" in the ``applied`` JSON."""
     lines = [line_dict(ml, trace=i) for i, tr in enumerate(traces)
              for ml in tr.reduction.lines]
-    flat = {f"{r}.{m}": v for (r, m), v in applied.items()}
+    flat: dict[str, Any] = {f"{r}.{m}": v for (r, m), v in applied.items()}
+    if tap is not None:
+        flat[TAP_KEY] = tap
     return dict(
         key=spec.key, index=spec.index, setpoint=jsonable(spec.setpoint),
         repeat=spec.repeat, is_reference=spec.is_reference,

@@ -14,6 +14,7 @@ from __future__ import annotations
 import contextlib
 import functools
 import inspect
+import math
 import os
 import signal as _signal
 import socket
@@ -247,6 +248,10 @@ class Runner:
         self.trace_x: Any = None
         self.orders = plan.orders
         self.use_amplifier = plan.amplifier
+        # the input-tap power meter, read once per point (its reading stored with the point)
+        self.read_tap = bool(getattr(plan, "tap_power", True)) and "power_meter" in \
+            bench.instruments
+        self.tap: dict[str, float] | None = None  # the last reading (``tap_reading``)
         self.input_every = plan.osa.input_every if plan.capture_input else 0
         self.stops = StopWatch(plan.stop_conditions)
         # The plan's settle time of each group of settings: the longest of the axes driving it.
@@ -643,7 +648,16 @@ class Runner:
         if not self.emitting:
             self.prepare(settings)
         self.apply(settings)
-        traces = [self.capture(kind) for kind in kinds]
+        self.tap = None
+        tap = self.send_tap_query()  # answered while the OSA sweeps
+        try:
+            traces = [self.capture(kind) for kind in kinds]
+        except BaseException:
+            if tap is not None:
+                tap[1].abandon()
+            raise
+        if tap is not None:
+            self.tap = self.tap_reading(*tap)
         traces.sort(key=lambda t: t.kind != "output")
         unreduced: list[InstrumentError] = []
 
@@ -659,6 +673,30 @@ class Runner:
         if unreduced:
             raise unreduced[0]
         return traces
+
+    def send_tap_query(self) -> tuple[Any, Any] | None:
+        """Ask the input-tap power meter for its reading, the reply left unread (the point's
+        settings are confirmed and settled; the meter answers while the OSA sweeps); None
+        when this run reads no tap. Not a safety interlock: nothing checks it against a cap."""
+        if not self.read_tap:
+            return None
+        from labrun.scpi import send_each
+
+        meter = self.role("power_meter")
+        op, text = meter.query_text("read_power_dbm")
+        return op, send_each([(meter.session, text)])
+
+    def tap_reading(self, op: Any, pending: Any) -> dict[str, float]:
+        """The power meter's reply (dBm) and the total launched power at the spool input it
+        gives (reading + the bench's ``input_tap_db``); InstrumentError (retried) on a reply
+        that is not a finite power."""
+        meter = self.role("power_meter")
+        reading = float(meter.parse(op, pending.read()[0]))
+        if not math.isfinite(reading):
+            raise meter.instrument_error(f"power reading {reading!r} is not a finite power")
+        tap_db = float(self.bench.calibration.input_tap_db)
+        return {"power_meter_dbm": reading, "input_tap_db": tap_db,
+                "launched_total_dbm": reading + tap_db}
 
     def reduce(self, spec: PointSpec, traces: Sequence[Captured]) -> None:
         """Reduce each trace and check both tones were found (InstrumentError: retried)."""
@@ -717,7 +755,7 @@ class Runner:
         """Everything the store keeps of a point, taken now (labrun/commit.py)."""
         return point_row(spec, traces, red, attempts, started, applied=self.applied,
                          rbw_nm=self.rbw_nm, trace_meta=self.trace_meta,
-                         input_meta=self.input_meta)
+                         input_meta=self.input_meta, tap=self.tap)
 
     def store_point(self, row: dict[str, Any]) -> None:
         """One transaction for a point row (on the writer thread during a run)."""

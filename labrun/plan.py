@@ -178,6 +178,7 @@ class Plan:
         self.note = spec.plan.note
         self.orders = spec.plan.orders
         self.amplifier = spec.plan.amplifier
+        self.tap_power = spec.plan.tap_power
         self.osa = spec.osa
         self.capture_input = spec.osa.capture_input
         self.fixed = self._validate_fixed(spec.fixed)

@@ -35,6 +35,9 @@ class MetaSpec(_Strict):
     note: str = ""
     orders: int = Field(3, ge=1, le=10)
     amplifier: bool = False
+    # read the input-tap power meter once per point when the bench has one (engine; the
+    # exact fit takes the launched total from it)
+    tap_power: bool = True
 
 
 class AxisSpec(_Strict):

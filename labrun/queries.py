@@ -12,6 +12,7 @@ from typing import TYPE_CHECKING, Any, cast
 
 from sqlalchemy import Text, and_, case, func, or_, select, type_coerce
 
+from labrun.commit import TAP_KEY
 from labrun.errors import InputError
 from labrun.lines import Kind, LineId, Side
 from labrun.store import Line, Point, Store, Trace
@@ -22,6 +23,9 @@ if TYPE_CHECKING:  # numpy and pandas are imported where used: `labrun runs` sta
     import pandas as pd
 
 POINT_COLUMNS = ("point_id", "index", "key", "is_reference", "repeat", "floor_dbm")
+# run_points columns from the input-tap power meter's reading (commit.TAP_KEY in ``applied``)
+TAP_COLUMNS = {"tap_power_meter_dbm": "power_meter_dbm",
+               "tap_launched_total_dbm": "launched_total_dbm"}
 
 
 def _frame(store: Store, query: Any) -> pd.DataFrame:
@@ -144,7 +148,7 @@ def run_points(store: Store, run_id: int, *, include_reference: bool = True,
                    for ln in _line_ids(store, run_id, inputs)]
     q = (select(Point.id.label("point_id"), Point.index, Point.key, Point.is_reference,
                 Point.repeat, Point.floor_dbm, type_coerce(Point.setpoint, Text).label("sp"),
-                *wanted)
+                type_coerce(Point.applied, Text).label("ap"), *wanted)
          .select_from(Point)
          .outerjoin(Line, Line.point_id == Point.id))
     if inputs:
@@ -155,6 +159,11 @@ def run_points(store: Store, run_id: int, *, include_reference: bool = True,
         return pd.DataFrame(columns=list(POINT_COLUMNS))
     setpoints = pd.DataFrame(_json_column(table.pop("sp")), index=table.index)
     setpoints = setpoints.drop(columns=[c for c in setpoints.columns if c in table.columns])
+    applied = pd.DataFrame(_json_column(table.pop("ap")), index=table.index)
+    if TAP_KEY in applied:  # the input-tap power meter's reading (runs that read it)
+        taps = pd.DataFrame([t if isinstance(t, dict) else {} for t in applied[TAP_KEY]])
+        taps = taps.reindex(columns=list(TAP_COLUMNS.values())).astype(float)
+        setpoints[list(TAP_COLUMNS)] = taps.to_numpy()
     lines = table.columns[len(POINT_COLUMNS):]
     table = pd.concat([table[list(POINT_COLUMNS)], setpoints,
                        table[lines].astype(float)], axis=1)

@@ -49,6 +49,17 @@ class TrafficReplay:
         return dataclasses.asdict(self)
 
 
+def _read_tap(store: Store, run_id: int) -> bool:
+    """True when the run's first stored point holds an input-tap power reading (the engine
+    reads the tap power meter on every point since it could; a replay asks what it asked)."""
+    from labrun.commit import TAP_KEY
+
+    with store.session() as s:
+        applied = s.execute(select(Point.applied).where(Point.run_id == run_id)
+                            .order_by(Point.index).limit(1)).scalar()
+    return bool(applied) and TAP_KEY in applied
+
+
 def original_run(store: Store, run_id: int) -> Any:
     """The run to replay (InputError naming RUN_ID when there is none)."""
     run = store.get_run(run_id)
@@ -144,6 +155,7 @@ def replay_traffic(store: Store, run_id: int, log_path: str | Path, *,
     run = original_run(store, run_id)
     log = _load_log(log_path)
     plan = stored_plan(run)
+    plan.tap_power = _read_tap(store, run_id)  # as the original did (older runs did not)
     # The bench's own settle scale: it decides how settings and their checks are grouped into
     # messages, so a replay waits the settle times the original waited (not the instruments'
     # own times). The retry policy is the original's, so a recorded fault is retried as it was.

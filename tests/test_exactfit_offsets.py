@@ -8,7 +8,9 @@ under P -> c P, gamma -> gamma / c), so the prior holds it at 0 and the fitted o
 +-half the truth's difference (a +0.2 dB, b -0.2 dB), each within its uncertainty of the
 truth. The expected numbers are worked from the weighted least-squares solution of the two
 prior rows and the tone-ratio row (a linear Gaussian problem: posterior mean and covariance in
-closed form, checked here by hand).
+closed form, checked here by hand). Those checks fit without the input-tap power meter
+(``tap_power=False``); with it, the measured total launched power fixes the common part too
+(last tests: both offsets and gamma recovered, within the tap-limited uncertainty).
 """
 
 from __future__ import annotations
@@ -21,7 +23,7 @@ from _engine_support import OPERATOR, plan_text, scenario
 
 from labrun.bench import load_bench
 from labrun.engine import run_plan
-from labrun.exactfit import OFFSET_SOURCE, fit_power_offsets, fit_spool
+from labrun.exactfit import OFFSET_SOURCE, OFFSET_SOURCE_TAP, fit_power_offsets, fit_spool
 from labrun.plan import parse_plan
 from labrun.queries import run_points
 from labrun.store import open_store
@@ -29,6 +31,7 @@ from labrun.uncertainty import Uncertainties
 from labrun.vlab.lab import VirtualLab
 
 U_ARM = 0.2  # dB, the bench's stated launched-power calibration uncertainty per arm
+U_TAP = 0.02  # dB, the tap power meter's calibration (the lab draws it, the bench states it)
 OFFSET_A = 0.4  # dB, what laser a really launches above its setting (2 u: a plausible draw)
 GAMMA, LENGTH, LOSS, D, S = 11.0, 1.0, 0.9, -0.3, 0.019  # HNLF-A17 of default-scenario.toml
 
@@ -38,7 +41,8 @@ def sweep(tmp_path_factory):
     """Points of a 7-point equal-tone power sweep with laser a 0.4 dB high, and the bench."""
     folder = tmp_path_factory.mktemp("offsets")
     sc = scenario()
-    sc["realism"] = {"enabled": True, "laser_power_offset_db": U_ARM, "osa_noise_db": 0.05}
+    sc["realism"] = {"enabled": True, "laser_power_offset_db": U_ARM, "osa_noise_db": 0.05,
+                     "power_meter_offset_db": U_TAP, "power_meter_noise_db": 0.01}
     store = open_store(str(folder / "runs.db"))
     try:
         with VirtualLab(sc, time_scale=0.0, seed=11) as lab:
@@ -68,7 +72,7 @@ def test_bench_states_the_calibration_uncertainty(sweep) -> None:
 
 
 def test_offset_on_arm_a_is_recovered_within_its_uncertainty(sweep) -> None:
-    res = _fit(sweep)
+    res = _fit(sweep, tap_power=False)
     a, b = res["power_offset_a"], res["power_offset_b"]
     # Difference measured by the tone ratio (OSA noise 0.05 dB per line, 7 points).
     assert b.value - a.value == pytest.approx(-OFFSET_A, abs=0.05)
@@ -108,6 +112,27 @@ def test_offsets_without_the_prior_are_not_determined() -> None:
     assert fine.value[1] - fine.value[0] == pytest.approx(-0.4, abs=1e-3)
     with pytest.raises(np.linalg.LinAlgError):
         fit_power_offsets(t, np.zeros(2), U_ARM, U_ARM, 0.01, prior=False)
+
+
+def test_the_tap_power_meter_fixes_the_common_offset_and_gamma(sweep) -> None:
+    # The lab's common offset here is 0.2 dB per arm (0.4 dB on a, 0 on b), ten times the tap
+    # meter's calibration (U_TAP). With the tap row both offsets come back, and gamma with
+    # them, within the tap-limited uncertainty; without it gamma is 10^(0.2/10) - 1 = +4.7 %
+    # off (the NLSE's scaling P -> c P, gamma -> gamma / c; Agrawal, Nonlinear Fiber Optics).
+    res = _fit(sweep)
+    a, b = res["power_offset_a"], res["power_offset_b"]
+    assert a.extra["tap_used"] and a.extra["tap_points"] == 7
+    assert abs(a.value - OFFSET_A) <= a.u95 and abs(b.value - 0.0) <= b.u95
+    assert a.stderr < 1.5 * U_TAP  # the tap's calibration, not the 0.14 dB of the prior
+    g = res["gamma"]
+    assert abs(g.value - GAMMA) <= g.u95
+    assert abs(g.value / GAMMA - 1) < 0.01  # the issue's 1 %
+    assert g.u95 / GAMMA < 0.015  # tap-limited: 2 x ln(10)/10 x ~0.02 dB, about 0.9 %
+    rows = {r["source"] for r in g.budget}
+    assert OFFSET_SOURCE_TAP in rows and OFFSET_SOURCE not in rows
+    without = _fit(sweep, tap_power=False)
+    assert without["gamma"].value / GAMMA - 1 == pytest.approx(10 ** (0.2 / 10) - 1, abs=0.012)
+    assert not without["power_offset_a"].extra["tap_used"]
 
 
 def test_without_offsets_the_per_arm_rows_stay(sweep) -> None:

@@ -232,6 +232,12 @@ class VirtualLab:
         real = self.scenario.realism
         return float(real.laser_power_offset_db) if real.enabled else 0.0
 
+    def _u_tap_db(self) -> float:
+        """Tap power standard uncertainty the virtual lab really has (the meter's fixed
+        offset)."""
+        real = self.scenario.realism
+        return float(real.power_meter_offset_db) if real.enabled else 0.0
+
     def _u_osa_db(self) -> float:
         """OSA relative amplitude: the virtual OSA has no flatness error."""
         return 0.0
@@ -268,6 +274,8 @@ class VirtualLab:
             f"power_b_u_db = {self._u_power_db()!r}",
             f"osa_amplitude_u_db = {self._u_osa_db()!r}",
             f"wavelength_u_pm = {self._u_wavelength_pm()!r}",
+            "# the tap power meter's fixed calibration offset (realism power_meter_offset_db)",
+            f"tap_power_u_db = {self._u_tap_db()!r}",
             "",
             "[polarisation]  # the virtual controller: tone a along +s1, paddles fed with +s1",
             'controller = "quarter-half-quarter"',

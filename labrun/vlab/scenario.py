@@ -127,6 +127,9 @@ class Realism(_Strict):
     pol_walk_hours: float = Field(default=0.0, ge=0, le=1e6)
     osa_noise_db: float = Field(default=0.0, ge=0, le=10)
     power_meter_noise_db: float = Field(default=0.0, ge=0, le=10)
+    # standard deviation of the power meter's fixed calibration error (with the tap ratio's),
+    # drawn once per seed; the bench file states it as tap_power_u_db
+    power_meter_offset_db: float = Field(default=0.0, ge=0, le=10)
     command_time_s: float = Field(default=0.01, ge=0, le=10)
 
 

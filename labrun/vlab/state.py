@@ -169,6 +169,9 @@ class LabState:
                                           real.pol_walk_hours if real else 0.0)
         self.osa_rng = role_rng(seed, "osa_noise")
         self.pm_rng = role_rng(seed, "power_meter_noise")
+        # the meter's fixed calibration error (dB, with the tap ratio's), seeded like the lasers'
+        self.pm_offset_db = (float(role_rng(seed, "power_meter_offset").normal(
+            0.0, real.power_meter_offset_db)) if real else 0.0)
 
     def _make_laser(self, role: str, real: Realism | None) -> Laser:
         """A laser with its seeded fixed offsets and drift generators."""
@@ -293,12 +296,13 @@ class LabState:
         return lines, ase
 
     def tap_power_dbm(self) -> float:
-        """Power-meter reading on the input tap, with its small seeded noise."""
+        """Power-meter reading on the input tap, with its seeded calibration offset
+        (``pm_offset_db``) and small seeded noise."""
         launch = self.launched()
         total_mw = float(np.sum(dbm_to_mw([p for _, p in launch.tones]))) if launch.tones else 0.0
         if total_mw <= 0:
             return POWER_METER_FLOOR_DBM + float(self.pm_rng.normal(0.0, 0.5))
-        p = float(mw_to_dbm(total_mw)) - self.scenario.bench.input_tap_db
+        p = float(mw_to_dbm(total_mw)) - self.scenario.bench.input_tap_db + self.pm_offset_db
         real = self.scenario.realism
         if real.enabled and real.power_meter_noise_db > 0:
             p += float(self.pm_rng.normal(0.0, real.power_meter_noise_db))
