@@ -226,6 +226,11 @@ def test_spool_file_and_option_mistakes_are_one_line_exit_2(tmp_path, capsys):
     dup.write_text(spool_toml(**OWN) * 2, encoding="utf-8")
     _refused(capsys, tmp_path, ["--spool-file", str(dup), "--spool", "DSF-T11"], str(dup),
              "spools[1].name", "duplicate")
+    _refused(capsys, tmp_path, ["--spool-file", "default-scenario.toml"], "--spool-file",
+             "a scenario, not a spool file")
+    single = tmp_path / "single.toml"
+    single.write_text(spool_toml(**OWN).replace("[[spools]]", "[spool]"), encoding="utf-8")
+    _refused(capsys, tmp_path, ["--spool-file", str(single)], str(single), "[[spools]]")
     empty = tmp_path / "empty.toml"
     empty.write_text("# nothing here\n", encoding="utf-8")
     _refused(capsys, tmp_path, ["--spool-file", str(empty)], str(empty), "spools",

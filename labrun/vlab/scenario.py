@@ -275,6 +275,12 @@ def load_spool_file(path: str | Path) -> tuple[list[SpoolSpec], str]:
     if found is None:
         raise InputError("no such spool file", file=str(path), field="--spool-file")
     _, data = load_toml(found)
+    if "connected" in data or "instruments" in data:
+        raise InputError("a scenario, not a spool file: give it with --scenario (a spool file "
+                         "holds [[spools]] tables only)", file=str(found), field="--spool-file")
+    if isinstance(data.get("spool"), dict) and "spools" not in data:
+        raise InputError("write the table as [[spools]] (an array of tables, as in a scenario)",
+                         file=str(found), field="spool")
     try:
         spools = list(SpoolFile.model_validate(data).spools)
     except ValidationError as exc:
