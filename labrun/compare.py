@@ -48,10 +48,14 @@ def sign_determined(p: Any) -> bool:
 
 def _entry(value: float | None, unit: str, model: str, runs: list[int], *,
            stderr: float | None = None, u95: float | None = None,
-           u95_kind: str | None = None) -> dict[str, Any]:
-    """One compared quantity as JSON (``u95_kind``: what u95 is, as ParameterRecord says)."""
-    return {"value": value, "stderr": stderr, "u95": u95, "u95_kind": u95_kind, "unit": unit,
-            "model": model, "runs": runs}
+           u95_kind: str | None = None, no_u_reason: str | None = None) -> dict[str, Any]:
+    """One compared quantity as JSON (``u95_kind``: what u95 is, as ParameterRecord says;
+    ``no_u_reason``: why a value claims no uncertainty, which makes it not comparable)."""
+    out = {"value": value, "stderr": stderr, "u95": u95, "u95_kind": u95_kind, "unit": unit,
+           "model": model, "runs": runs}
+    if no_u_reason:
+        out.update(comparable=False, no_u_reason=no_u_reason)
+    return out
 
 
 def headline_values(record: Any, spool: Any) -> dict[str, Any]:
@@ -64,7 +68,9 @@ def headline_values(record: Any, spool: Any) -> dict[str, Any]:
     if gamma:
         name, p = gamma
         out["gamma_per_w_per_km"] = _entry(p.value, p.unit, p.model, runs, stderr=p.stderr,
-                                           u95=p.u95, u95_kind=p.u95_kind()) | {"parameter": name}
+                                           u95=p.u95, u95_kind=p.u95_kind(),
+                                           no_u_reason=p.extra.get("no_u_reason")
+                                           ) | {"parameter": name}
     disp = _param(record, ("dispersion",))
     if disp:
         p = disp[1]
@@ -97,15 +103,21 @@ def _efficiency(gamma: Any, disp: Any, slope: Any, length: float, loss: float,
     """First upper sideband over the output pump tone at COMMON conditions (Inoue small signal).
 
     10 log10(eta gamma^2 L_eff^2 P_a P_b); its standard uncertainty from gamma's alone
-    (20 log10(e) u(gamma)/gamma, the power of 2 on gamma); D taken as 0 when not fitted.
+    (20 log10(e) u(gamma)/gamma, the power of 2 on gamma); D the fitted one, else the one the
+    fit used from the spool record, else 0 (and then, like gamma, not comparable).
     """
     from labrun.physics.fibre import Fibre
     from labrun.physics.fwm import small_signal_sideband_w
     from labrun.physics.units import dbm_to_w
 
+    used = gamma.extra.get("dispersion_used_ps_per_nm_km")
+    d_text = ("fitted" if disp else "from the spool record" if used is not None
+              else "0 (not fitted)")
+    d_value = disp[1].value if disp else (used or 0.0)
+    s_value = (slope[1].value if slope else 0.0 if disp
+               else gamma.extra.get("slope_used_ps_per_nm2_km") or 0.0)
     fibre = Fibre(length_km=length, loss_db_per_km=loss, gamma_per_w_per_km=gamma.value,
-                  dispersion_ps_per_nm_km=disp[1].value if disp else 0.0,
-                  dispersion_slope_ps_per_nm2_km=slope[1].value if slope else 0.0)
+                  dispersion_ps_per_nm_km=d_value, dispersion_slope_ps_per_nm2_km=s_value)
     p = float(dbm_to_w(COMMON["power_dbm"]))
     sideband = float(small_signal_sideband_w(fibre, p, p, COMMON["wavelength_nm"],
                                              COMMON["spacing_ghz"], "high"))
@@ -114,10 +126,10 @@ def _efficiency(gamma: Any, disp: Any, slope: Any, length: float, loss: float,
     return _entry(10.0 * math.log10(sideband / pump_out), "dB",
                   f"Inoue small-signal, {COMMON['spacing_ghz']:g} GHz, "
                   f"{COMMON['power_dbm']:g} dBm per tone, {COMMON['wavelength_nm']:g} nm, "
-                  f"D = {'fitted' if disp else '0 (not fitted)'}", runs,
+                  f"D = {d_text}", runs,
                   stderr=None if gamma.stderr is None else rel * gamma.stderr,
                   u95=None if gamma.u95 is None else rel * gamma.u95,
-                  u95_kind=gamma.u95_kind())
+                  u95_kind=gamma.u95_kind(), no_u_reason=gamma.extra.get("no_u_reason"))
 
 
 def compare_spools(store: Store, labels: list[str]) -> dict[str, Any]:

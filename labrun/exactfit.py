@@ -53,6 +53,11 @@ TAP_ITERATIONS = 3  # relinearisations of the tap row (its weights move with the
 DIFF_U_FLOOR_DB = 1e-4  # keeps the offsets' normal matrix well conditioned on noiseless data
 FIT_RTOL = 1e-3  # split-step tolerance inside the fit: lines down to -90 dBc within 0.01 dB
 ITERATIONS = 3
+NO_D_REASON = ("dispersion unknown: no spacing run and no D given, so the phase-mismatch "
+               "correction is unknown and gamma may be far off whatever its statistical error")
+NO_D_HINT = ("give the spool's dispersion: labrun spool set LABEL --dispersion D --dispersion-u "
+             "U (ps/(nm km)), or fit a spacing run of the spool with this run")
+MISMATCH_DEPENDENT = ("gamma", "gamma_bessel", "gamma_small_signal")  # values set by eta
 
 
 def _concat(tables: Sequence[dict[str, np.ndarray]]) -> dict[str, np.ndarray]:
@@ -398,8 +403,10 @@ def fit_spool(runs_points: Sequence[Any], spool_length_km: float, loss_db_per_km
         "reference_wavelength_nm": reference_wavelength_nm, "polarisation": polarisation}
     closed = fit_run(t, spool_length_km, loss_db_per_km, **kw, uncertainties=uncertainties)
     theta = _params(closed, dispersion_ps_per_nm_km, slope_ps_per_nm2_km)
+    no_d = dispersion_ps_per_nm_km is None and not math.isfinite(
+        closed.get("dispersion", FitResult(float("nan"), 0, 0, 0, "", "")).value)
     if theta is None or "spacing_ghz" not in t:
-        return closed
+        return without_u(closed, NO_D_REASON) if no_d else closed
     cop, _ = copolar_fractions(t, n, polarisation)
     current = closed
     history = [theta]
@@ -442,8 +449,6 @@ def fit_spool(runs_points: Sequence[Any], spool_length_km: float, loss_db_per_km
                           uncertainties or Uncertainties(),
                           offsets.cov if power_offsets else None, monte_carlo, mc_seed)
     step = [abs(a - b) for a, b in zip(history[-1], history[-2], strict=True)]
-    no_d = dispersion_ps_per_nm_km is None and not math.isfinite(
-        closed.get("dispersion", FitResult(float("nan"), 0, 0, 0, "", "")).value)
     out = dict(closed)
     exact_names = {"gamma": "gamma_small_signal", "dispersion": "dispersion",
                    "dispersion_slope": "dispersion_slope"}
@@ -481,4 +486,21 @@ def fit_spool(runs_points: Sequence[Any], spool_length_km: float, loss_db_per_km
             comps.append(Component("model (closed form vs exact)", float("nan"), "", delta))
             u_c, u95 = combine(comps)
             out[cf] = replace(r, budget=[c.to_dict() for c in comps], u_combined=u_c, u95=u95)
+    return without_u(out, NO_D_REASON) if no_d else out
+
+
+def without_u(results: dict[str, FitResult], reason: str) -> dict[str, FitResult]:
+    """The results with no uncertainty claimed for the values the phase-mismatch correction
+    sets (MISMATCH_DEPENDENT): u_combined, u95, budget and Monte Carlo interval dropped, the
+    reason in ``extra["no_u_reason"]`` and ``extra["no_u_hint"]`` (issue 9: no silent fallback;
+    a statistical error alone would claim a precision the value does not have)."""
+    out = dict(results)
+    for name in MISMATCH_DEPENDENT:
+        r = results.get(name)
+        if r is None or not math.isfinite(r.value):
+            continue
+        extra = {k: v for k, v in r.extra.items() if not k.startswith("mc_")}
+        extra.update(no_u_reason=reason, no_u_hint=NO_D_HINT)
+        out[name] = replace(r, u_combined=float("nan"), u95=float("nan"), budget=[],
+                            extra=extra)
     return out

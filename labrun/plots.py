@@ -109,14 +109,16 @@ def plot_comparison(path: str | Path, comparison: dict) -> Path:
     spools = comparison["spools"]
     fig, axes = plt.subplots(1, len(_COMPARED), figsize=(4 * len(_COMPARED), 4), dpi=110)
     for ax, (key, title) in zip(axes, _COMPARED, strict=True):
-        labels, values, errors = [], [], []
+        labels, values, errors, colours = [], [], [], []
         for sp in spools:
             entry = sp.get(key)
             if entry and entry.get("value") is not None:
-                labels.append(sp["spool"])
+                no_u = entry.get("comparable") is False  # no U: drawn grey, labelled
+                labels.append(sp["spool"] + ("\n(no U, not comparable)" if no_u else ""))
                 values.append(entry["value"])
                 errors.append(entry.get("u95") or 0.0)
-        ax.bar(range(len(values)), values, yerr=errors, capsize=6, color="tab:blue", alpha=0.7)
+                colours.append("lightgrey" if no_u else "tab:blue")
+        ax.bar(range(len(values)), values, yerr=errors, capsize=6, color=colours, alpha=0.7)
         ax.set_xticks(range(len(values)), labels)
         ax.set_title(title)
         ax.grid(axis="y", alpha=0.3)
@@ -136,12 +138,16 @@ def plot_history(path: str | Path, history: dict) -> Path:
         ys = [fits[i][key]["value"] for i in xs]
         es = [fits[i][key].get("u95") or 0.0 for i in xs]
         ax.errorbar(xs, ys, yerr=es, fmt="o-", capsize=5, color="tab:blue")
+        grey = [i for i in xs if fits[i][key].get("comparable") is False]
+        if grey:  # no U (dispersion unknown): not comparable, drawn apart
+            ax.plot(grey, [fits[i][key]["value"] for i in grey], "s", ms=9, color="lightgrey",
+                    mec="grey", label="no U: not comparable")
         bad = [i for i in xs if key in fits[i]["changed"]]
         ax.plot(bad, [fits[i][key]["value"] for i in bad], "o", ms=12, mfc="none", color="red",
                 label="changed beyond combined U95")
         ax.set_ylabel(title)
         ax.grid(alpha=0.3)
-        if bad:
+        if bad or grey:
             ax.legend(loc="best")
     axes[-1].set_xticks(range(len(fits)),
                         [f"fit {h['fit_id']}\n{h['fitted_at'][:10]}" for h in fits])

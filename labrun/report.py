@@ -72,8 +72,10 @@ def _fit_rows(record: Any) -> list[list[str]]:
     for name, p in record.parameters.items():
         why = next((w for w in p.extra.get("warnings", []) if w.startswith("refused")), "")
         model = p.model.split(":")[0] + (f" ({why})" if why else "")
+        no_u = p.extra.get("no_u_reason")
+        u95 = (f"no U ({_e(no_u)}; not comparable)" if no_u else _num(p.u95, ".2g"))
         rows.append([_cell(_e(name)), _cell(_num(p.value), True),
-                     _cell(_num(p.stderr, ".2g"), True), _cell(_num(p.u95, ".2g"), True),
+                     _cell(_num(p.stderr, ".2g"), True), _cell(u95, not no_u),
                      _cell(_e(p.unit)), _cell(str(p.n_points), True), _cell(_e(model))])
     return rows
 

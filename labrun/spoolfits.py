@@ -31,9 +31,27 @@ U_LEGEND = ("U k=2: the GUM budget's expanded uncertainty 2 u_c; U95 t: Student 
             "half-width of the statistical error alone (no budget)")
 
 
+NO_U_LEGEND = ("no expanded uncertainty is claimed: the dispersion is unknown (a power run alone, "
+               "no D on record), and so is gamma's phase-mismatch correction; not comparable, "
+               "never flagged as changed")
+NO_U_HINT = ("labrun spool set LABEL --dispersion D --dispersion-u U gives a D, or fit a spacing "
+             "run with the power run")
+DISPERSION_KEY = "dispersion"  # Spool.params entry of a dispersion the lab knows (spool set)
+D_SOURCE = "dispersion D (spool record)"  # the budget row of a given D (28 columns)
+S_SOURCE = "slope S (spool record)"
+
+
 def u_label(kind: str | None) -> str:
     """How the commands print an expanded uncertainty of this kind ('U k=2' or 'U95 t')."""
     return "U k=2" if kind == GUM_K2 else "U95 t"
+
+
+def no_u_label(extra: dict[str, Any]) -> str | None:
+    """'no U: dispersion unknown' for a value that claims no uncertainty, else None."""
+    reason = extra.get("no_u_reason")
+    return f"no U: {str(reason).split(':')[0]}" if reason else None
+
+
 METHOD = ("labrun.exactfit.fit_spool on the runs' points together (closed forms, then the "
           "split-step forward model with each arm's launched-power offset fitted), GUM budget "
           "from the bench calibration")
@@ -59,6 +77,16 @@ class ParameterRecord:
             "value": self.value, "stderr": self.stderr, "u95": self.u95, "unit": self.unit,
             "model": self.model, "n_points": self.n_points, "residual_rms": self.residual_rms}
         out["u95_kind"] = self.u95_kind()
+        if self.extra.get("no_u_reason"):
+            out.update(comparable=False, u_combined=None, no_u_reason=self.extra["no_u_reason"],
+                       no_u_hint=self.extra.get("no_u_hint"))
+        if self.extra.get("dispersion_source") == GIVEN_SOURCE:
+            out["dispersion_used"] = {
+                "source": GIVEN_SOURCE, "d_ps_per_nm_km": self.extra.get(
+                    "dispersion_used_ps_per_nm_km"),
+                "u_ps_per_nm_km": self.extra.get("dispersion_used_u_ps_per_nm_km"),
+                "slope_ps_per_nm2_km": self.extra.get("slope_used_ps_per_nm2_km"),
+                "reference_wavelength_nm": self.extra.get("dispersion_reference_wavelength_nm")}
         for key in ("u_combined", "budget", "warnings", "conventions"):
             if self.extra.get(key):
                 out[key] = self.extra[key]
@@ -124,7 +152,7 @@ def from_fit(result: Any) -> ParameterRecord:
     """A ParameterRecord from a ``labrun.fits.FitResult`` (u95 from the fit when it has one)."""
     stderr = _finite(result.stderr)
     u95 = _finite(getattr(result, "u95", None))  # a GUM budget's U (k = 2) when it has one
-    if u95 is None:
+    if u95 is None and not (result.extra or {}).get("no_u_reason"):
         dof = (result.extra or {}).get("dof")
         u95 = (coverage_factor(dof) * stderr if dof and stderr is not None
                else expanded(stderr, int(result.n_points)))
@@ -145,11 +173,75 @@ def from_fit(result: Any) -> ParameterRecord:
                            residual_rms=_finite(result.residual_rms), extra=extra)
 
 
+@dataclass(frozen=True)
+class GivenDispersion:
+    """A dispersion the lab knows of a spool without a spacing run (``labrun spool set
+    --dispersion``), kept in ``Spool.params["dispersion"]``: D (signed, D > 0 anomalous) and its
+    standard uncertainty, ps/(nm km); the slope (ps/(nm^2 km), with its own standard uncertainty,
+    0 = taken as exact) at the reference wavelength (nm)."""
+
+    d: float
+    u: float
+    slope: float = 0.0
+    slope_u: float = 0.0
+    wavelength_nm: float = 1550.0
+
+    @classmethod
+    def of(cls, spool: Any) -> GivenDispersion | None:
+        """The spool record's given dispersion, or None when it has none."""
+        rec = (getattr(spool, "params", None) or {}).get(DISPERSION_KEY)
+        if not rec or rec.get("d_ps_per_nm_km") is None:
+            return None
+        return cls(float(rec["d_ps_per_nm_km"]), float(rec.get("u_ps_per_nm_km") or 0.0),
+                   float(rec.get("slope_ps_per_nm2_km") or 0.0),
+                   float(rec.get("slope_u_ps_per_nm2_km") or 0.0),
+                   float(rec.get("reference_wavelength_nm") or 1550.0))
+
+    def to_params(self) -> dict[str, float]:
+        """What ``Spool.params["dispersion"]`` keeps."""
+        return {"d_ps_per_nm_km": self.d, "u_ps_per_nm_km": self.u,
+                "slope_ps_per_nm2_km": self.slope, "slope_u_ps_per_nm2_km": self.slope_u,
+                "reference_wavelength_nm": self.wavelength_nm}
+
+    def text(self) -> str:
+        """'D = 2.69 +/- 0.05 ps/(nm km), slope 0.05 ps/(nm^2 km) at 1550 nm'."""
+        slope = f"{self.slope:g}" + (f" +/- {self.slope_u:g}" if self.slope_u else "")
+        return (f"D = {self.d:g} +/- {self.u:g} ps/(nm km), slope {slope} ps/(nm^2 km) at "
+                f"{self.wavelength_nm:g} nm")
+
+
+GIVEN_SOURCE = "spool record (labrun spool set)"
+
+
+def given_text(extra: dict[str, Any]) -> str | None:
+    """The line ``labrun fit`` prints under a gamma fitted with the spool record's D."""
+    if extra.get("dispersion_source") != GIVEN_SOURCE:
+        return None
+    return (f"D used: {extra.get('dispersion_given')} from the {GIVEN_SOURCE}, no spacing run "
+            f"in the fit; its uncertainty is the budget row '{D_SOURCE}'")
+
+
+def _n_spacings(tables: list[Any]) -> int:
+    """Distinct spacings among the runs' points (>= 2: the fit measures the dispersion)."""
+    import numpy as np
+
+    values = [np.asarray(t["spacing_ghz"], float) for t in tables if "spacing_ghz" in t]
+    if not values:
+        return 0
+    sp = np.concatenate(values)
+    return int(np.unique(np.round(sp[np.isfinite(sp)], 6)).size)
+
+
 def _fit_tables(tables: list[Any], spool: Spool, bench_text: str | None, *,
                 monte_carlo: int = 0) -> dict[str, Any]:
     """Fit one spool's runs, one point table per run, with the exact-model joint fit
     (``labrun.exactfit.fit_spool``: closed forms first, then the split-step forward model) and the
-    GUM budget of every parameter from the runs' bench calibration and polarisation frame."""
+    GUM budget of every parameter from the runs' bench calibration and polarisation frame.
+
+    Dispersion: measured from the spacing dependence when the runs sweep the spacing (the spool
+    record's D, when it has one, is then only checked against it); else the spool record's D
+    (``GivenDispersion``), its uncertainty a budget row; else none, and the values the
+    mismatch correction sets claim no uncertainty (exactfit.without_u)."""
     from labrun.exactfit import fit_spool
     from labrun.fits import PolFrame
     from labrun.uncertainty import Uncertainties
@@ -158,10 +250,97 @@ def _fit_tables(tables: list[Any], spool: Spool, bench_text: str | None, *,
     if length_km is None or loss_db_per_km is None:  # refused by the caller before this
         raise ValueError(f"spool {spool.label} has no length or loss")
     cal, pol = _bench_terms(bench_text)
-    return fit_spool(tables, length_km, loss_db_per_km,
-                     polarisation=PolFrame.from_bench(pol),
-                     uncertainties=Uncertainties.from_calibration(cal),
-                     monte_carlo=monte_carlo)
+    kw: dict[str, Any] = {"polarisation": PolFrame.from_bench(pol),
+                          "uncertainties": Uncertainties.from_calibration(cal)}
+    given = GivenDispersion.of(spool)
+    notes: list[str] = []
+    if given is None or _n_spacings(tables) >= 2:
+        results = fit_spool(tables, length_km, loss_db_per_km, **kw, monte_carlo=monte_carlo)
+        disp = results.get("dispersion")
+        if given is None or (disp is not None and math.isfinite(disp.value)):
+            return results if given is None else _checked_against(results, given)
+        notes.append("the runs sweep the spacing but gave no dispersion (refused): the spool "
+                     f"record's {given.text()} is used instead")
+
+    def fit(d: float, s: float, mc: int = 0) -> dict[str, Any]:
+        return fit_spool(tables, length_km, loss_db_per_km, dispersion_ps_per_nm_km=d,
+                         slope_ps_per_nm2_km=s, reference_wavelength_nm=given.wavelength_nm,
+                         **kw, monte_carlo=mc)
+
+    results = fit(given.d, given.slope, monte_carlo)
+    rows = []
+    for source, u, unit, step in ((D_SOURCE, given.u, "ps/(nm km)", (1.0, 0.0)),
+                                  (S_SOURCE, given.slope_u, "ps/(nm^2 km)", (0.0, 1.0))):
+        if u > 0:
+            moved = [fit(given.d + sign * u * step[0], given.slope + sign * u * step[1])
+                     for sign in (1.0, -1.0)]
+            rows.append((source, u, unit, moved[0], moved[1]))
+    return with_given_rows(results, rows, given, notes)
+
+
+def with_given_rows(results: dict[str, Any], rows: list[tuple[str, float, str, Any, Any]],
+                    given: GivenDispersion, notes: list[str]) -> dict[str, Any]:
+    """The results fitted with a given dispersion, each budget gaining one row per given input:
+    contribution half the change of the value between refits at input +u and -u (JCGM
+    100:2008 5.1.3, as labrun.uncertainty does for the bench's inputs), combined again; the
+    gamma results say which D was used and where it came from."""
+    from dataclasses import replace
+
+    from labrun.exactfit import MISMATCH_DEPENDENT
+    from labrun.uncertainty import Component, combine
+
+    out = dict(results)
+    for name, r in results.items():
+        if not math.isfinite(r.value):
+            continue
+        extra, warnings = dict(r.extra), [*r.warnings, *notes]
+        if name in MISMATCH_DEPENDENT:
+            extra.update(dispersion_source=GIVEN_SOURCE, dispersion_given=given.text(),
+                         dispersion_used_ps_per_nm_km=given.d,
+                         dispersion_used_u_ps_per_nm_km=given.u,
+                         slope_used_ps_per_nm2_km=given.slope,
+                         dispersion_reference_wavelength_nm=given.wavelength_nm)
+            if extra.get("mc_method"):
+                extra["mc_method"] = (f"{extra['mc_method']}; the given dispersion held at its "
+                                      "value (not drawn)")
+        if not r.budget:
+            out[name] = replace(r, extra=extra, warnings=warnings)
+            continue
+        comps = [Component(**row) for row in r.budget]
+        for source, u, unit, up, down in rows:
+            a, b = up.get(name), down.get(name)
+            half = (abs(a.value - b.value) / 2.0 if a is not None and b is not None
+                    else float("nan"))
+            comps.append(Component(source, u, unit, half))
+        u_c, u95 = combine(comps)
+        out[name] = replace(r, extra=extra, warnings=warnings, u_combined=u_c, u95=u95,
+                            budget=[c.to_dict() for c in comps])
+    return out
+
+
+def _checked_against(results: dict[str, Any], given: GivenDispersion) -> dict[str, Any]:
+    """The spacing run's fit, warned when the spool record's D disagrees with the fitted D
+    beyond their expanded uncertainties combined (sqrt(U1^2 + U2^2), U2 = 2 u of the record);
+    |D| compared where the fit does not determine the sign."""
+    from dataclasses import replace
+
+    disp = results["dispersion"]
+    signed = bool(disp.extra.get("sign_determined"))
+    fitted = disp.value if signed else abs(disp.value)
+    recorded = given.d if signed else abs(given.d)
+    u_fit = disp.u95 if math.isfinite(disp.u95) else 0.0
+    limit = math.hypot(u_fit, 2.0 * given.u)
+    out = dict(results)
+    out["dispersion"] = replace(disp, extra={**disp.extra, "dispersion_source": "fitted (spacing "
+                                             "run)", "dispersion_recorded": given.text()})
+    if abs(fitted - recorded) > limit:
+        note = (f"the spool record's {given.text()} disagrees with the spacing run's "
+                f"{'D' if signed else '|D|'} = {fitted:.4g} +/- {u_fit:.2g} (U) beyond their "
+                f"expanded uncertainties combined ({limit:.2g}): the spacing run's is used; "
+                "check the record (labrun spool set)")
+        for name in ("dispersion", *[k for k in ("gamma",) if k in out]):
+            out[name] = replace(out[name], warnings=[*out[name].warnings, note])
+    return out
 
 
 def _bench_terms(bench_text: str | None) -> tuple[Any, Any]:

@@ -23,9 +23,10 @@ SMF_D = 17.0  # ps/(nm km)
 
 
 def run_plan_file(db: str, plan: str | Path, folder: Path, *, connected: str | None = None,
-                  text: str | None = None) -> int:
+                  text: str | None = None, spools: list[dict] | None = None) -> int:
     """Run a plan (shipped name or path; ``text`` replaces its content) on a fresh virtual lab
-    whose connected spool is ``connected`` (default: the plan's); returns the run id."""
+    whose connected spool is ``connected`` (default: the plan's); ``spools``: scenario spools
+    added to the default scenario's; returns the run id."""
     path = Path(find_file(str(plan), "sweeps", suffixes=("", ".toml")) or plan)
     if text is not None:
         path = folder / f"plan-{abs(hash(text))}.toml"
@@ -33,7 +34,9 @@ def run_plan_file(db: str, plan: str | Path, folder: Path, *, connected: str | N
     p = load_plan(path)
     store = open_store(db)
     try:
-        with VirtualLab(scenario(connected=connected or p.spool)) as lab:
+        data = scenario(connected=connected or p.spool)
+        data["spools"] = [*data["spools"], *(spools or [])]
+        with VirtualLab(data) as lab:
             bench = load_bench(lab.write_bench(folder / "bench.toml"))
             out = run_plan(p, bench, store, operator=OPERATOR, unattended=True, ack_safety=True,
                            progress=False)
@@ -41,6 +44,15 @@ def run_plan_file(db: str, plan: str | Path, folder: Path, *, connected: str | N
         return out.run_id
     finally:
         store.close()
+
+
+def record_dispersion(db: str, label: str, d: float, u: float, *args: str) -> None:
+    """Record a dispersion the lab knows on a spool (labrun spool set --dispersion), as a lab
+    would from the fibre's data sheet; ``args``: further spool-set options."""
+    from labrun.cli import main
+
+    assert main(["spool", "set", label, "--dispersion", f"{d!r}", "--dispersion-u", f"{u!r}",
+                 *args, "--db", db]) == 0
 
 
 def shipped_text(name: str) -> str:

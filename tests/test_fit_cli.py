@@ -7,7 +7,7 @@ from __future__ import annotations
 import json
 
 import pytest
-from _store_support import HNLF_GAMMA, run_plan_file
+from _store_support import HNLF_D, HNLF_GAMMA, record_dispersion, run_plan_file
 from sqlalchemy import func, select
 
 from labrun.cli import main
@@ -15,20 +15,26 @@ from labrun.spoolfits import GUM_K2, U_LEGEND
 from labrun.store import open_store
 from labrun.store.models import Fit, FitParameter, Run, Spool
 
+D_U = 0.05  # ps/(nm km): the lab's stated uncertainty of the spool's D (invented)
+
 
 @pytest.fixture(scope="module", params=["sqlite", "postgresql"])
 def power_db(request, tmp_path_factory):
-    """A store holding one shipped power sweep of HNLF-A17 (run 1)."""
+    """A store holding one shipped power sweep of HNLF-A17 (run 1), the spool's dispersion on
+    record as a lab knows it from the data sheet (without it a power run alone claims no U:
+    tests/test_fit_dispersion.py)."""
     folder = tmp_path_factory.mktemp("fitdb")
     if request.param == "sqlite":
         db = str(folder / "runs.db")
         run_plan_file(db, "power-sweep.toml", folder)
+        record_dispersion(db, "HNLF-A17", HNLF_D, D_U)
         yield db
         return
     from conftest import pg_schema
 
     with pg_schema() as db:
         run_plan_file(db, "power-sweep.toml", folder)
+        record_dispersion(db, "HNLF-A17", HNLF_D, D_U)
         yield db
 
 

@@ -49,6 +49,8 @@ def _value(entry: dict[str, Any] | None, key: str = "") -> str:
         return "-"
     text = UNSIGNED.get(key, "") if entry.get("sign_determined") is False else ""
     text += f"{entry['value']:.4g}"
+    if entry.get("comparable") is False:
+        return f"{text} {entry['unit']} [no U]"
     if entry.get("u95") is not None:
         text += f" ({u_label(entry.get('u95_kind'))} {entry['u95']:.2g})"
     return f"{text} {entry['unit']}"
@@ -58,6 +60,13 @@ def _d_text(entry: dict[str, Any] | None) -> str:
     """'D -4.604 (...)' or '|D| 4.604 (...)': D named as what it is."""
     text = _value(entry, KEY_D)
     return text if text.startswith(UNSIGNED[KEY_D]) else f"D {text}"
+
+
+def _no_u_note() -> str:
+    """The legend line of a value marked [no U]."""
+    from labrun.spoolfits import NO_U_HINT, NO_U_LEGEND
+
+    return f"([no U]: {NO_U_LEGEND}; {NO_U_HINT})"
 
 
 def _source(sp: dict[str, Any]) -> str:
@@ -81,6 +90,9 @@ def _side_by_side(rep: dict[str, Any]) -> str:
     c = rep["common_conditions"]
     out.append(f"({U_LEGEND}; {SIGN_NOTE}; efficiency at {c['spacing_ghz']:g} GHz, "
                f"{c['power_dbm']:g} dBm per tone, {c['wavelength_nm']:g} nm)")
+    if any(v.get("comparable") is False for sp in spools for v in sp.values()
+           if isinstance(v, dict)):
+        out.append(_no_u_note())
     return "\n".join(out)
 
 
@@ -96,6 +108,9 @@ def _history(rep: dict[str, Any]) -> str:
                    f"  {_d_text(h.get(KEY_D))}{flag}")
     out.append(f"({U_LEGEND}; {SIGN_NOTE}; CHANGED: differs from the previous fit by more "
                "than the two fits' expanded uncertainties combined, sqrt(U1^2 + U2^2))")
+    if any(v.get("comparable") is False for h in rep["history"] for v in h.values()
+           if isinstance(v, dict)):
+        out.append(_no_u_note())
     return "\n".join(out)
 
 

@@ -98,6 +98,7 @@ def shown_warnings(record: Any, name: str) -> list[str]:
 
 def fit_text(record: Any) -> str:
     """The fit as a table for people, with the GUM budget of the exact model's parameters."""
+    from labrun.spoolfits import given_text, no_u_label
     from labrun.uncertainty import budget_text
 
     where = f"fit {record.fit_id}" if record.fit_id is not None else "fit (not stored)"
@@ -109,18 +110,27 @@ def fit_text(record: Any) -> str:
             if why:
                 out.append(f"  {name:<20} {why}")
             continue
-        shown = format_value(p.value, p.stderr, p.u95, p.unit, p.u95_kind())
+        no_u = no_u_label(p.extra)
+        shown = (f"{p.value:.5g} {p.unit} ({no_u})" if no_u else
+                 format_value(p.value, p.stderr, p.u95, p.unit, p.u95_kind()))
         out.append(f"  {name:<20} {shown:<48} "
                    f"{p.n_points:>4} points  {p.model.split(':')[0]}")
+        if no_u and name == "gamma":
+            out.append(f"    ! {p.extra['no_u_reason']}; {p.extra.get('no_u_hint', '')}")
+        given = given_text(p.extra)
+        if given and name == "gamma":
+            out.append(f"    {given}")
         if p.extra.get("budget") and name in BUDGET_SHOWN:
             out.append(budget_text(name, p.to_dict()))
         mc = mc_text(p)
         if mc:
             out.append(mc)
         out.extend(f"    ! {w}" for w in shown_warnings(record, name))
-    from labrun.spoolfits import U_LEGEND
+    from labrun.spoolfits import NO_U_LEGEND, U_LEGEND
 
     out.append(f"  (+/- statistical standard uncertainty of the fit; {U_LEGEND})")
+    if any(no_u_label(p.extra) for p in record.parameters.values()):
+        out.append(f"  (no U: {NO_U_LEGEND})")
     if "power_offset_a" in record.parameters:
         out.append(OFFSETS_NOTE)
     return "\n".join(out)

@@ -33,14 +33,35 @@ def register(subparsers: Any) -> None:
                                description="Edit what is recorded of a spool.")
     sub = sp.add_subparsers(dest="spool_command", metavar="ACTION", required=True,
                             parser_class=type(sp))
-    st = sub.add_parser("set", help="set a spool's length, loss, fibre type or note",
+    st = sub.add_parser("set", help="set a spool's length, loss, fibre type, note or known "
+                                    "dispersion",
                         description="Set fields of a spool's record (created when new). "
-                                    "Later fits use the new length and loss.")
+                                    "Later fits use the new length and loss, and the "
+                                    "dispersion given here (see --dispersion).")
     st.add_argument("label", metavar="LABEL", help="spool label")
     st.add_argument("--length-km", type=float, metavar="KM")
     st.add_argument("--loss-db-per-km", type=float, metavar="DB")
     st.add_argument("--fibre-type", metavar="TEXT")
     st.add_argument("--note", metavar="TEXT")
+    st.add_argument("--dispersion", type=float, metavar="PS_NM_KM",
+                    help="the spool's chromatic dispersion D in ps/(nm km) as the lab knows it "
+                         "without a spacing run (data sheet, another measurement), signed: "
+                         "D > 0 anomalous. labrun fit uses it for the phase-mismatch correction "
+                         "of gamma when the fitted runs include no spacing run (a spacing run "
+                         "measures D and wins; a disagreement is warned), and its uncertainty "
+                         "becomes a row of gamma's GUM budget. Without any D a power run alone "
+                         "gives gamma with no expanded uncertainty. Needs --dispersion-u")
+    st.add_argument("--dispersion-u", type=float, metavar="PS_NM_KM",
+                    help="standard uncertainty (1 sigma) of --dispersion, ps/(nm km), > 0")
+    st.add_argument("--dispersion-slope", type=float, metavar="PS_NM2_KM",
+                    help="dispersion slope dD/d(lambda) in ps/(nm^2 km) at --dispersion-at-nm "
+                         "(default 0)")
+    st.add_argument("--dispersion-slope-u", type=float, metavar="PS_NM2_KM",
+                    help="standard uncertainty of --dispersion-slope (default 0: no budget row)")
+    st.add_argument("--dispersion-at-nm", type=float, metavar="NM",
+                    help="wavelength at which --dispersion and the slope hold (default 1550)")
+    st.add_argument("--forget-dispersion", action="store_true",
+                    help="remove the recorded dispersion")
     _db_arg(st)
     st.add_argument("--json", action="store_true", help="print the spool as JSON")
     st.set_defaults(func=cmd_spool_set)
@@ -104,6 +125,8 @@ def _short(p: dict[str, Any] | None) -> str:
 
     if not p:
         return "-"
+    if p.get("comparable") is False:
+        return f"{p['value']:.4g} [no U]"
     name = "|D| " if p.get("parameter") == "dispersion" and p.get("sign_determined") is False \
         else ""
     if p.get("u95") is not None:
@@ -138,6 +161,10 @@ def cmd_spools(args: argparse.Namespace) -> int:
 
     print(f"{U_LEGEND}; u stat: statistical standard error only; |D|: the fit did not "
           "determine the sign of D")
+    if any(r.get("gamma_per_w_per_km", {}).get("comparable") is False for r in rows):
+        from labrun.spoolfits import NO_U_HINT, NO_U_LEGEND
+
+        print(f"[no U]: {NO_U_LEGEND} ({NO_U_HINT})")
     return 0
 
 
@@ -150,15 +177,17 @@ def cmd_spool_set(args: argparse.Namespace) -> int:
     from sqlalchemy import select
 
     from labrun.errors import InputError
+    from labrun.spoolfits import DISPERSION_KEY, GivenDispersion
     from labrun.store import open_existing_store
     from labrun.store.models import Spool, utcnow
 
     fields = {"length_km": args.length_km, "loss_db_per_km": args.loss_db_per_km,
               "fibre_type": args.fibre_type, "note": args.note}
     given = {k: v for k, v in fields.items() if v is not None}
-    if not given:
-        raise InputError("nothing to set: give --length-km, --loss-db-per-km, --fibre-type "
-                         "or --note", field="LABEL")
+    dispersion = _dispersion_arg(args)
+    if not given and dispersion is None and not args.forget_dispersion:
+        raise InputError("nothing to set: give --length-km, --loss-db-per-km, --fibre-type, "
+                         "--note, --dispersion or --forget-dispersion", field="LABEL")
     for name, low, high in (("length_km", 0.0, 1.0e5), ("loss_db_per_km", 0.0, 100.0)):
         v = given.get(name)
         if v is not None and not (low < v <= high if name == "length_km" else low <= v <= high):
@@ -173,15 +202,70 @@ def cmd_spool_set(args: argparse.Namespace) -> int:
                 raise InputError(f"no spool {args.label!r}", field="LABEL")
             for name, value in given.items():
                 setattr(spool, name, value)
+            if dispersion is not None or args.forget_dispersion:
+                params = {k: v for k, v in (spool.params or {}).items() if k != DISPERSION_KEY}
+                if dispersion is not None:
+                    params[DISPERSION_KEY] = dispersion.to_params()
+                spool.params = params  # a new dict: the JSON column sees the change
             spool.updated_at = utcnow()
             out = {"spool": spool.label, "length_km": spool.length_km,
                    "loss_db_per_km": spool.loss_db_per_km, "fibre_type": spool.fibre_type,
-                   "note": spool.note}
+                   "note": spool.note,
+                   "dispersion": (spool.params or {}).get(DISPERSION_KEY)}
     finally:
         store.close()
     if args.json:
         print(json.dumps(out, indent=2))
     else:
-        print(f"spool {out['spool']}: " + ", ".join(f"{k} = {v}" for k, v in out.items()
-                                                     if k != "spool" and v is not None))
+        rec = GivenDispersion.of(type("S", (), {"params": {DISPERSION_KEY: out["dispersion"]}}))
+        print(f"spool {out['spool']}: " + ", ".join(
+            f"{k} = {v}" for k, v in out.items()
+            if k not in ("spool", "dispersion") and v is not None)
+            + (f", dispersion {rec.text()} (used by labrun fit without a spacing run)"
+               if rec else ""))
     return 0
+
+
+DISPERSION_LIMITS = (("--dispersion", 300.0), ("--dispersion-u", 100.0),
+                     ("--dispersion-slope", 5.0), ("--dispersion-slope-u", 5.0))
+# |D| <= 300 ps/(nm km) and |S| <= 5 ps/(nm^2 km) hold typos out and every fibre in (transmission,
+# highly nonlinear and dispersion-compensating fibre are well inside; common practice)
+
+
+def _dispersion_arg(args: argparse.Namespace) -> Any:
+    """The --dispersion options as a GivenDispersion (None without --dispersion); InputError
+    naming the option for a missing uncertainty or a value out of range."""
+    import math
+
+    from labrun.errors import InputError
+    from labrun.spoolfits import GivenDispersion
+
+    others = {"--dispersion-u": args.dispersion_u, "--dispersion-slope": args.dispersion_slope,
+              "--dispersion-slope-u": args.dispersion_slope_u,
+              "--dispersion-at-nm": args.dispersion_at_nm}
+    if args.dispersion is None:
+        stray = next((k for k, v in others.items() if v is not None), None)
+        if stray:
+            raise InputError("needs --dispersion in the same command", field=stray)
+        return None
+    if args.forget_dispersion:
+        raise InputError("give either --dispersion or --forget-dispersion",
+                         field="--forget-dispersion")
+    if args.dispersion_u is None:
+        raise InputError("needs --dispersion-u, the standard uncertainty of the given D "
+                         "(ps/(nm km)): it becomes a row of gamma's uncertainty budget",
+                         field="--dispersion-u")
+    values = {"--dispersion": args.dispersion, **others}
+    for name, limit in DISPERSION_LIMITS:
+        v = values[name]
+        if v is None:
+            continue
+        low = 0.0 if name.endswith("-u") else -limit
+        if not math.isfinite(v) or not low <= v <= limit or (name == "--dispersion-u" and v == 0):
+            what = f"within {low:g}..{limit:g}" + (", not 0" if name == "--dispersion-u" else "")
+            raise InputError(f"must be {what}", field=name)
+    at = args.dispersion_at_nm
+    if at is not None and not (math.isfinite(at) and 1000.0 <= at <= 2000.0):
+        raise InputError("must be within 1000..2000 nm", field="--dispersion-at-nm")
+    return GivenDispersion(args.dispersion, args.dispersion_u, args.dispersion_slope or 0.0,
+                           args.dispersion_slope_u or 0.0, at or 1550.0)
