@@ -150,6 +150,13 @@ def test_given_dispersion_brings_gamma_within_u(db, capsys, tmp_path):
     g2 = _fit(capsys, dbs[0.1], "--no-store")["gamma"]
     row2 = {r["source"]: r for r in g2["budget"]}[D_SOURCE]
     assert row2["contribution"] / row["contribution"] == pytest.approx(2.0, rel=0.05)
+    # the row is |c| u with c found numerically (GUM 5.1.3): half the change of gamma between
+    # fits with D + u and D - u on record (u tiny there), computed here apart from the budget
+    moved = []
+    for d in (2.69 + 0.05, 2.69 - 0.05):
+        record_dispersion(dbs[0.1], "DSF-C31", d, 1e-6, "--dispersion-slope", "0.05")
+        moved.append(_fit(capsys, dbs[0.1], "--no-store")["gamma"]["value"])
+    assert row["contribution"] == pytest.approx(abs(moved[0] - moved[1]) / 2, rel=1e-6)
     text = _out(capsys, "fit", "1", "--db", dbs[0.05], "--no-store")
     assert "D used: D = 2.69 +/- 0.05 ps/(nm km), slope 0.05 ps/(nm^2 km) at 1550 nm" in text
     assert "spool record" in text and D_SOURCE in text and "no U" not in text
@@ -196,6 +203,8 @@ def test_spacing_run_wins_and_a_disagreeing_record_is_warned():
     # |2.80 - 2.69| = 0.11 < sqrt(0.1^2 + 0.1^2) = 0.141: agrees, no warning
     out = _checked_against(res(2.80, 0.1, True), rec)
     assert out["dispersion"].value == 2.80 and not out["dispersion"].warnings
+    # 0.13 < 0.141 (the record's U is 2 u, GUM 6.2.1; with U = u the limit would be 0.112)
+    assert not _checked_against(res(2.82, 0.1, True), rec)["dispersion"].warnings
     # 0.16 > 0.141: warned, on D and gamma, and the fitted value kept
     out = _checked_against(res(2.85, 0.1, True), rec)
     assert out["dispersion"].value == 2.85 and "disagrees" in out["dispersion"].warnings[0]
