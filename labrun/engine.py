@@ -393,7 +393,8 @@ class Runner:
                                          self.bench)
         values = {**setpoint, **asdict(got)}  # what safety worked out wins over the setpoint
         return [Setting(t.role, t.method, t.value, self.settle[t.group])
-                for t in targets(values, self.bench.instruments)]
+                for t in targets(values, self.bench.instruments)
+                if t.role != "power_meter" or self.read_tap]
 
     def write(self, settings: Sequence[Setting]) -> Pending:
         """Check every setting that changed (ranges, caps: nothing is sent if one fails), then

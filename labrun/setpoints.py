@@ -48,6 +48,8 @@ RULES: tuple[tuple[str, str, str, str], ...] = (
     ("laser_b", "set_wavelength_nm", "wavelength_b_nm", "wavelength_b"),
     ("attenuator_a", "set_wavelength_nm", "wavelength_a_nm", "wavelength_a"),
     ("attenuator_b", "set_wavelength_nm", "wavelength_b_nm", "wavelength_b"),
+    # the tap power meter's calibration wavelength: midway between the tones (``tap_wavelength``)
+    ("power_meter", "set_wavelength_nm", "tap_wavelength_nm", "wavelength_b"),
     ("laser_a", "set_power_dbm", "laser_a_dbm", "power"),
     ("laser_b", "set_power_dbm", "laser_b_dbm", "power"),
     ("attenuator_a", "set_attenuation_db", "attenuation_a_db", "power"),
@@ -63,6 +65,7 @@ def targets(values: Mapping[str, Any], roles: Container[str]) -> list[Target]:
     attenuations and amplifier output ``safety.instrument_settings`` worked out), for the roles
     the bench has; a value that is None (or missing) sets nothing."""
     out: list[Target] = []
+    values = {**values, "tap_wavelength_nm": tap_wavelength(values)}
     for role, method, key, group in RULES:
         value = values.get(key)
         if value is None or role not in roles:
@@ -70,6 +73,16 @@ def targets(values: Mapping[str, Any], roles: Container[str]) -> list[Target]:
         out.append(Target(role, method, tuple(value) if isinstance(value, list | tuple) else value,
                           group))
     return out
+
+
+def tap_wavelength(values: Mapping[str, Any]) -> float | None:
+    """The wavelength the input-tap power meter is calibrated at for a point: midway between
+    the two tones (nm, to the 1 pm a meter's wavelength setting takes; the responsivity of a
+    photodiode changes little over the few nm between them), None without both tones."""
+    a, b = values.get("wavelength_a_nm"), values.get("wavelength_b_nm")
+    if a is None or b is None:
+        return None
+    return round((float(a) + float(b)) / 2.0, 3)
 
 
 def profile_settings(method: str, value: Any) -> list[ProfileSetting]:

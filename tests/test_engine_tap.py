@@ -3,8 +3,9 @@
 On the virtual lab, the stored total (reading + the bench's input_tap_db) must equal the total
 the lab really launched: each laser's setting plus its drawn offset, summed in mW
 (P[mW] = 10^(P[dBm]/10), common practice), computed here from the lab's own state, within the
-power meter's noise. A power meter that fails is a fault like any other: retried, and when it
-stays away the run ends dark with the points stored before.
+power meter's noise; the meter's calibration wavelength is set midway between the tones. A
+power meter that fails is a fault like any other: retried, and when it stays away the run
+ends dark with the points stored before.
 """
 
 from __future__ import annotations
@@ -12,6 +13,7 @@ from __future__ import annotations
 import numpy as np
 import pytest
 from _engine_support import DIALECTS, OPERATOR, dark, scenario, write_bench, write_plan
+from scipy import constants
 
 import labrun.reduce
 from labrun.bench import load_bench
@@ -44,6 +46,11 @@ def test_stored_launched_total_is_the_labs_true_total(tmp_path, dialect):
         tap_db = lab.scenario.bench.input_tap_db
         store, out = _run(tmp_path, lab)
         assert out.status == "completed" and dark(lab)
+        meter_nm = lab.state.power_meter.wavelength_nm
+    # the meter is calibrated midway between the tones: 1550 nm and 100 GHz above it
+    # (f = c / lambda, c from scipy.constants (CODATA))
+    tone_b_nm = constants.c / (constants.c / 1550e-9 + 100e9) * 1e9
+    assert meter_nm == pytest.approx((1550.0 + tone_b_nm) / 2, abs=1e-3)
     points = run_points(store, out.run_id)
     p = np.asarray(POWERS)
     true_total = 10 * np.log10(10 ** ((p + offsets[0]) / 10) + 10 ** ((p + offsets[1]) / 10))

@@ -108,6 +108,8 @@ def test_monte_carlo_interval_beside_the_gum_one(power_db, capsys):
     text = capsys.readouterr().out
     assert "Monte Carlo (JCGM 101, M = 3" in text and "(U k=2 " in text
     assert "(U95 t " not in text  # every parameter here has a budget
+    # the run read the tap power meter: the offsets' common part comes from it (issue 9)
+    assert "launched power (tap meter)" in text and "input-tap power meter" in text
     with pytest.raises(SystemExit) as exc:  # a usage error: argparse's one line, exit 2
         main(["fit", "1", "--db", power_db, "--monte-carlo", "1"])
     assert exc.value.code == 2

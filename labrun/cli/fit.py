@@ -76,6 +76,11 @@ BUDGET_SHOWN = ("gamma", "dispersion", "dispersion_slope")  # the exact model's 
 OFFSETS_NOTE = ("  (launched power a, b: the arms' offsets are fitted with the exact model "
                 "(power_offset_a/_b, the bench's calibration uncertainty as their prior); that "
                 "budget row replaces the per-arm calibration rows, counted once)")
+OFFSETS_NOTE_TAP = ("  (launched power (tap meter): the arms' offsets are fitted with the exact "
+                    "model (power_offset_a/_b): their difference from the output tone ratio, "
+                    "their common part from the input-tap power meter (the bench's "
+                    "tap_power_u_db), the bench's calibration uncertainty as their prior; that "
+                    "budget row replaces the per-arm calibration rows, counted once)")
 
 
 SLOPE_FOLLOWS_D = ("fitted jointly with D: its sign follows D's (see the notes under "
@@ -132,7 +137,8 @@ def fit_text(record: Any) -> str:
     if any(no_u_label(p.extra) for p in record.parameters.values()):
         out.append(f"  (no U: {NO_U_LEGEND})")
     if "power_offset_a" in record.parameters:
-        out.append(OFFSETS_NOTE)
+        tap = record.parameters["power_offset_a"].extra.get("tap_used")
+        out.append(OFFSETS_NOTE_TAP if tap else OFFSETS_NOTE)
     return "\n".join(out)
 
 
