@@ -174,7 +174,7 @@ class Plan:
         self.sha256 = hashlib.sha256(raw).hexdigest()
         self.name = spec.plan.name
         self.spool = spec.plan.spool
-        self.spool_info = spec.spool.known()
+        self.spool_info = self._spool_info(spec.spool)
         self.note = spec.plan.note
         self.orders = spec.plan.orders
         self.amplifier = spec.plan.amplifier
@@ -192,6 +192,27 @@ class Plan:
             for name in a.drives:
                 self.settle_s[name] = max(self.settle_s.get(name, 0.0), a.settle_s)
         self._points = self._expand()
+
+    def _spool_info(self, spool: SpoolSpec) -> dict[str, Any]:
+        """[spool]'s fields for the spool row, a given dispersion as the row's
+        ``params["dispersion"]`` (the keys of spoolfits.GivenDispersion); a D needs its u."""
+        info = spool.known()
+        d = {k: info.pop(k) for k in list(info) if k.startswith("dispersion_")}
+        if not d:
+            return info
+        if "dispersion_ps_per_nm_km" not in d:
+            raise _fail(self.file, f"spool.{next(iter(d))}", "needs dispersion_ps_per_nm_km")
+        if "dispersion_u_ps_per_nm_km" not in d:
+            raise _fail(self.file, "spool.dispersion_u_ps_per_nm_km",
+                        "required with dispersion_ps_per_nm_km: its standard uncertainty, "
+                        "ps/(nm km), a row of gamma's uncertainty budget")
+        info["params"] = {"dispersion": {
+            "d_ps_per_nm_km": d["dispersion_ps_per_nm_km"],
+            "u_ps_per_nm_km": d["dispersion_u_ps_per_nm_km"],
+            "slope_ps_per_nm2_km": d.get("dispersion_slope_ps_per_nm2_km", 0.0),
+            "slope_u_ps_per_nm2_km": d.get("dispersion_slope_u_ps_per_nm2_km", 0.0),
+            "reference_wavelength_nm": d.get("dispersion_at_nm", 1550.0)}}
+        return info
 
     # -- fixed and axes
 

@@ -103,6 +103,14 @@ class SpoolSpec(_Strict):
     loss_db_per_km: float | None = Field(None, ge=0.0, le=100.0)
     fibre_type: str | None = Field(None, min_length=1, max_length=100)
     note: str | None = None
+    # A dispersion the lab knows (as `labrun spool set --dispersion`): signed D, its standard
+    # uncertainty, the slope (and its u) at dispersion_at_nm. |D| <= 300, |S| <= 5: every
+    # fibre (common practice), typos out.
+    dispersion_ps_per_nm_km: float | None = Field(None, ge=-300.0, le=300.0)
+    dispersion_u_ps_per_nm_km: float | None = Field(None, gt=0.0, le=100.0)
+    dispersion_slope_ps_per_nm2_km: float | None = Field(None, ge=-5.0, le=5.0)
+    dispersion_slope_u_ps_per_nm2_km: float | None = Field(None, ge=0.0, le=5.0)
+    dispersion_at_nm: float | None = Field(None, ge=1000.0, le=2000.0)
 
     def known(self) -> dict[str, Any]:
         """The fields given in the file (what a new or incomplete spool row takes)."""

@@ -300,13 +300,20 @@ def twin_spool(store: Store, run: Any) -> ModelSpool:
         p = params.get(name)
         return float(p.value) if p is not None and p.value is not None else 0.0
 
+    fitted = "dispersion" in params and params["dispersion"].value is not None
+    recorded = gamma.extra.get("dispersion_used_ps_per_nm_km")  # the spool record's D, if used
+    d_model, s_model = ((value("dispersion"), value("dispersion_slope"))
+                        if fitted or recorded is None else
+                        (float(recorded), float(gamma.extra.get("slope_used_ps_per_nm2_km")
+                                                or 0.0)))
     spec = SpoolSpec(name=label, length_km=length, loss_db_per_km=loss,
-                     gamma_per_w_per_km=gamma.value,
-                     dispersion_ps_per_nm_km=value("dispersion"),
-                     dispersion_slope_ps_per_nm2_km=value("dispersion_slope"))
+                     gamma_per_w_per_km=gamma.value, dispersion_ps_per_nm_km=d_model,
+                     dispersion_slope_ps_per_nm2_km=s_model,
+                     reference_wavelength_nm=float(gamma.extra.get(
+                         "dispersion_reference_wavelength_nm") or 1550.0))
     rel = (gamma.stderr / gamma.value) if gamma.stderr and gamma.value else 0.0
-    missing = "" if "dispersion" in params and params["dispersion"].value is not None \
-        else "; dispersion not fitted, 0 assumed"
+    missing = ("" if fitted else "; dispersion from the spool record" if recorded is not None
+               else "; dispersion not fitted, 0 assumed")
     return ModelSpool(spec, f"twin: {where}, {gamma.model.split(':')[0]}{missing}", rel)
 
 

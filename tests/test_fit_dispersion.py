@@ -157,9 +157,19 @@ def test_given_dispersion_brings_gamma_within_u(db, capsys, tmp_path):
         record_dispersion(dbs[0.1], "DSF-C31", d, 1e-6, "--dispersion-slope", "0.05")
         moved.append(_fit(capsys, dbs[0.1], "--no-store")["gamma"]["value"])
     assert row["contribution"] == pytest.approx(abs(moved[0] - moved[1]) / 2, rel=1e-6)
-    text = _out(capsys, "fit", "1", "--db", dbs[0.05], "--no-store")
+    rows = json.loads(_out(capsys, "spools", "--db", dbs[0.05], "--json"))["spools"]
+    (rec,) = [r["dispersion_record"] for r in rows if r["spool"] == "DSF-C31"]
+    assert rec["d_ps_per_nm_km"] == 2.69 and rec["u_ps_per_nm_km"] == 0.05
+    assert "2.69 (record, u 0.05)" in _out(capsys, "spools", "--db", dbs[0.05])
+    text = _out(capsys, "fit", "1", "--db", dbs[0.05])  # stored: the twin below models it
     assert "D used: D = 2.69 +/- 0.05 ps/(nm km), slope 0.05 ps/(nm^2 km) at 1550 nm" in text
     assert "spool record" in text and D_SOURCE in text and "no U" not in text
+    # the replay twin (labrun replay --twin) models the spool with the D the fit used: its
+    # split-step lines match the run (with D = 0 and this gamma the sidebands are dB off)
+    capsys.readouterr()
+    assert main(["replay", "1", "--db", dbs[0.05], "--twin"]) == 0
+    out = capsys.readouterr().out
+    assert "dispersion from the spool record" in out and "verdict: consistent" in out
 
 
 def test_spool_set_dispersion_input(db, capsys):
@@ -212,3 +222,34 @@ def test_spacing_run_wins_and_a_disagreeing_record_is_warned():
     # sign not determined: |D| compared (-2.69 on record agrees with |D| = 2.70)
     out = _checked_against(res(2.70, 0.1, False), GivenDispersion(-2.69, 0.05))
     assert not out["dispersion"].warnings
+
+
+def test_plan_spool_table_carries_the_dispersion(tmp_path):
+    """The plan's [spool] table may give the D too; it fills a row that has none."""
+    from labrun.errors import InputError
+    from labrun.plan import parse_plan
+    from labrun.spoolfits import GivenDispersion
+    from labrun.store import open_store
+    from labrun.store.models import Spool
+
+    extra = ("dispersion_ps_per_nm_km = 2.69\ndispersion_u_ps_per_nm_km = 0.05\n"
+             "dispersion_slope_ps_per_nm2_km = 0.05\n")
+    plan = parse_plan(PLAN.replace("[fixed]", extra + "\n[fixed]").encode(), "p.toml")
+    assert plan.spool_info["length_km"] == 3.19
+    store = open_store(str(tmp_path / "s.db"))
+    try:
+        sid = store.spool_id(plan.spool, **plan.spool_info)
+        with store.session() as s:
+            rec = GivenDispersion.of(s.get(Spool, sid))
+        assert rec == GivenDispersion(2.69, 0.05, 0.05, 0.0, 1550.0)
+        other = parse_plan(PLAN.replace("[fixed]", extra.replace("2.69", "9.9") + "\n[fixed]")
+                           .encode(), "q.toml")
+        store.spool_id(other.spool, **other.spool_info)  # the row's own record wins
+        with store.session() as s:
+            assert GivenDispersion.of(s.get(Spool, sid)).d == 2.69
+    finally:
+        store.close()
+    with pytest.raises(InputError) as exc:
+        parse_plan(PLAN.replace("[fixed]", "dispersion_ps_per_nm_km = 2.69\n\n[fixed]").encode(),
+                   "p.toml")
+    assert exc.value.field == "spool.dispersion_u_ps_per_nm_km"

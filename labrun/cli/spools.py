@@ -95,7 +95,7 @@ def spool_rows(store: Any) -> list[dict[str, Any]]:
     """One dict per spool: its record, run count, latest fit id and headline values."""
     from sqlalchemy import func, select
 
-    from labrun.spoolfits import latest_fits
+    from labrun.spoolfits import DISPERSION_KEY, latest_fits
     from labrun.store.models import Run, Spool
 
     fits = latest_fits(store)
@@ -109,6 +109,7 @@ def spool_rows(store: Any) -> list[dict[str, Any]]:
         rows.append({"spool": sp.label, "length_km": sp.length_km,
                      "loss_db_per_km": sp.loss_db_per_km, "fibre_type": sp.fibre_type,
                      "note": sp.note, "runs": int(counts.get(sp.id, 0)),
+                     "dispersion_record": (sp.params or {}).get(DISPERSION_KEY),
                      "latest_fit": fit.fit_id if fit else None,
                      "fitted_at": fit.created_at.isoformat() if fit and fit.created_at else None,
                      **headline(fit)})
@@ -135,6 +136,14 @@ def _short(p: dict[str, Any] | None) -> str:
     return f"{name}{p['value']:.4g}{err}"
 
 
+def _d_cell(row: dict[str, Any]) -> str:
+    """The fitted D, else the D on the spool's record ('2.69 (record, u 0.05)')."""
+    rec = row.get("dispersion_record")
+    if row.get("dispersion_ps_per_nm_km") or not rec:
+        return _short(row.get("dispersion_ps_per_nm_km"))
+    return f"{rec['d_ps_per_nm_km']:.4g} (record, u {rec['u_ps_per_nm_km']:.2g})"
+
+
 def cmd_spools(args: argparse.Namespace) -> int:
     """labrun spools: the spools table."""
     from labrun.store import open_existing_store
@@ -156,7 +165,7 @@ def cmd_spools(args: argparse.Namespace) -> int:
         print(f"{r['spool']:<12} {_opt(r['length_km']):>7} {_opt(r['loss_db_per_km']):>6} "
               f"{r['runs']:>4} {r['latest_fit'] or '-':>4}  "
               f"{_short(r.get('gamma_per_w_per_km')):<22} "
-              f"{_short(r.get('dispersion_ps_per_nm_km')):<26} {r['fibre_type'] or ''}")
+              f"{_d_cell(r):<26} {r['fibre_type'] or ''}")
     from labrun.spoolfits import U_LEGEND
 
     print(f"{U_LEGEND}; u stat: statistical standard error only; |D|: the fit did not "

@@ -182,7 +182,11 @@ class Store:
                         s.add(spool)
                     else:
                         for name, value in fields.items():
-                            if getattr(spool, name) is None and value is not None:
+                            if name == "params":  # entries the row has win
+                                merged = {**(value or {}), **(spool.params or {})}
+                                if merged != (spool.params or {}):
+                                    spool.params = merged
+                            elif getattr(spool, name) is None and value is not None:
                                 setattr(spool, name, value)
                     s.flush()
                     return spool.id
