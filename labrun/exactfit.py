@@ -24,6 +24,7 @@ import numpy as np
 
 from labrun.fits import (
     LIMIT_PREFIX,
+    SPACING_MEASURED,
     FitResult,
     PolFrame,
     copolar_fractions,
@@ -449,6 +450,8 @@ def fit_spool(runs_points: Sequence[Any], spool_length_km: float, loss_db_per_km
                           uncertainties or Uncertainties(),
                           offsets.cov if power_offsets else None, monte_carlo, mc_seed)
     step = [abs(a - b) for a, b in zip(history[-1], history[-2], strict=True)]
+    # points whose spacing is the one read on the OSA (fits.points_table), not the set one
+    n_measured = int(np.nansum(t.get(SPACING_MEASURED, np.zeros(n))))
     out = dict(closed)
     exact_names = {"gamma": "gamma_small_signal", "dispersion": "dispersion",
                    "dispersion_slope": "dispersion_slope"}
@@ -458,7 +461,8 @@ def fit_spool(runs_points: Sequence[Any], spool_length_km: float, loss_db_per_km
             continue
         extra = dict(r.extra)
         extra.update(iterations=len(history) - 1, last_step=step[list(exact_names).index(name)],
-                     closed_form_value=closed[src].value if src in closed else float("nan"))
+                     closed_form_value=closed[src].value if src in closed else float("nan"),
+                     n_spacing_measured=n_measured)
         if name in mc:
             extra.update({f"mc_{k}": v for k, v in mc[name].to_dict().items()},
                          mc_seed=mc_seed, mc_method=MC_METHOD)

@@ -55,6 +55,10 @@ SIGN_DCHI2 = 25.0  # the sign of D is reported when the other sign fits worse by
 LINE_KEY = re.compile(r"^(tone|sideband)_(low|high)_(\d+)$")
 DB = 10.0 / math.log(10.0)  # dB per neper of power ratio (10 log10 e)
 LIMIT_PREFIX = "limit_"  # column of an undetected line's upper limit (dBm): limit_sideband_high_1
+MEASURED_SPACING = "measured_spacing_ghz"  # tone spacing read on the OSA trace (the reduction's)
+SET_SPACING = "set_spacing_ghz"  # the setpoint's spacing, kept when the measured one replaces it
+SPACING_MEASURED = "spacing_measured"  # 1.0 where spacing_ghz is the measured one, else 0.0
+SPACING_AGREE_REL = 0.1  # a measured spacing further than this from the set one is not used
 
 
 @dataclass(frozen=True)
@@ -104,7 +108,7 @@ def points_table(points) -> dict[str, np.ndarray]:
     and an undetected line's upper limit (``upper_limit_dbm``) becomes ``limit_<kind>_...``.
     """
     if isinstance(points, Mapping) and all(isinstance(v, np.ndarray) for v in points.values()):
-        return dict(points)  # already a table (columns as arrays)
+        return _measured_spacing(dict(points))  # already a table (columns as arrays)
     # A pandas DataFrame is read through its own API, so this module needs no pandas import.
     records = points.to_dict("records") if hasattr(points, "columns") else list(points)
     flat: list[dict] = []
@@ -130,7 +134,32 @@ def points_table(points) -> dict[str, np.ndarray]:
             table[k] = np.array([np.nan if v is None else float(v) for v in vals], dtype=float)
         except (TypeError, ValueError):
             continue  # text columns (labels, keys) are not used by the fits
-    return table
+    return _measured_spacing(table)
+
+
+def _measured_spacing(t: dict[str, np.ndarray]) -> dict[str, np.ndarray]:
+    """``spacing_ghz`` becomes the spacing measured on the OSA trace where one is given
+    (``measured_spacing_ghz``) and within SPACING_AGREE_REL of the set one, the set spacing
+    kept as ``set_spacing_ghz`` and each point's choice as ``spacing_measured`` (1.0 or 0.0).
+
+    Why: the lasers' wavelength errors (a pm or so) move the real spacing away from the set
+    one (1 pm is 0.125 GHz at 1550 nm); near a null of the phase-matching efficiency that
+    shifts the efficiency by dB and biases gamma and D, while the OSA reads the spacing of the
+    two tones to a few MHz (both on one wavelength scale, so its absolute error cancels).
+    Done once: the measured column is consumed, so a table passed again is left as it is.
+    """
+    if MEASURED_SPACING not in t:
+        return t
+    meas = np.abs(t.pop(MEASURED_SPACING))
+    n = meas.size
+    set_sp = t.get("spacing_ghz", np.full(n, np.nan))
+    agree = np.isfinite(meas) & (~np.isfinite(set_sp) | (
+        np.abs(meas - np.abs(set_sp)) <= SPACING_AGREE_REL * np.abs(set_sp)))
+    sign = np.where(np.isfinite(set_sp) & (set_sp < 0), -1.0, 1.0)
+    t[SET_SPACING] = set_sp
+    t[SPACING_MEASURED] = agree.astype(float)
+    t["spacing_ghz"] = np.where(agree, sign * meas, set_sp)
+    return t
 
 
 def _vec3(v) -> list[float]:
@@ -857,7 +886,9 @@ def fit_run(points, spool_length_km: float, loss_db_per_km: float, *,
     ``points``: a pandas DataFrame or a list of dicts, one row per point, with
     - ``power_a_dbm``, ``power_b_dbm``: powers launched into the spool (required);
     - ``spacing_ghz`` (f_b - f_a) and ``wavelength_a_nm``: needed for dispersion (the latter
-      defaults to ``reference_wavelength_nm``);
+      defaults to ``reference_wavelength_nm``); ``measured_spacing_ghz``, optional: the spacing
+      read on the OSA trace, used in place of the set one where it is within 10 % of it
+      (``_measured_spacing``: the lasers' wavelength errors move the real spacing);
     - polarisation, optional: ``copolar`` (fraction (1 + s_a.s_b)/2), ``pol_stokes_a`` (and
       ``pol_stokes_b``), ``pol_stokes`` (tone b's state; tone a's from ``polarisation``) or
       ``pol_angles_deg`` (through the controller model of ``polarisation``); absent means

@@ -26,6 +26,7 @@ POINT_COLUMNS = ("point_id", "index", "key", "is_reference", "repeat", "floor_db
 # run_points columns from the input-tap power meter's reading (commit.TAP_KEY in ``applied``)
 TAP_COLUMNS = {"tap_power_meter_dbm": "power_meter_dbm",
                "tap_launched_total_dbm": "launched_total_dbm"}
+MEASURED_SPACING = "measured_spacing_ghz"  # the reduction's tone spacing (Point.spacing_ghz)
 
 
 def _frame(store: Store, query: Any) -> pd.DataFrame:
@@ -123,12 +124,14 @@ def _json_column(values: pd.Series) -> list[dict]:
 
 
 def run_points(store: Store, run_id: int, *, include_reference: bool = True,
-               limits: bool = False) -> pd.DataFrame:
+               limits: bool = False, measured_spacing: bool = False) -> pd.DataFrame:
     """One row per stored point of a run: setpoint columns plus a dBm column per detected line.
 
     Undetected lines are NaN; with ``limits`` their upper limits (dBm, from the reduction's
     floor) come as ``limit_<line>`` columns, NaN where the line was detected. Reference points are
-    flagged in ``is_reference`` so callers can keep them out of fits. Lines of input-tap traces
+    flagged in ``is_reference`` so callers can keep them out of fits. With
+    ``measured_spacing`` the tone spacing the reduction measured on the OSA trace comes as
+    ``measured_spacing_ghz`` (``spacing_ghz`` stays the setpoint's). Lines of input-tap traces
     (switch path 2) are left out: the columns are the spool output. One SQL query pivots the
     lines into columns (conditional aggregation per distinct line).
     """
@@ -146,6 +149,8 @@ def run_points(store: Store, run_id: int, *, include_reference: bool = True,
                                        Line.order == ln.order, *off), Line.upper_limit_dbm))
                             ).label(f"limit_{ln.key}")
                    for ln in _line_ids(store, run_id, inputs)]
+    if measured_spacing:
+        wanted.append(func.max(Point.spacing_ghz).label(MEASURED_SPACING))
     q = (select(Point.id.label("point_id"), Point.index, Point.key, Point.is_reference,
                 Point.repeat, Point.floor_dbm, type_coerce(Point.setpoint, Text).label("sp"),
                 type_coerce(Point.applied, Text).label("ap"), *wanted)
@@ -157,6 +162,7 @@ def run_points(store: Store, run_id: int, *, include_reference: bool = True,
     table = _raw_frame(store, q)
     if table.empty:
         return pd.DataFrame(columns=list(POINT_COLUMNS))
+    measured = table.pop(MEASURED_SPACING).astype(float) if measured_spacing else None
     setpoints = pd.DataFrame(_json_column(table.pop("sp")), index=table.index)
     setpoints = setpoints.drop(columns=[c for c in setpoints.columns if c in table.columns])
     applied = pd.DataFrame(_json_column(table.pop("ap")), index=table.index)
@@ -169,6 +175,8 @@ def run_points(store: Store, run_id: int, *, include_reference: bool = True,
                        table[lines].astype(float)], axis=1)
     table["is_reference"] = table["is_reference"].astype(bool)
     table["floor_dbm"] = table["floor_dbm"].astype(float)
+    if measured is not None:
+        table[MEASURED_SPACING] = measured
     if not include_reference:
         table = table[~table["is_reference"]].reset_index(drop=True)
     return table

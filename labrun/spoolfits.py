@@ -458,7 +458,8 @@ def fit_runs(store: Store, run_ids: list[int], *, save: bool = True,
         raise InputError(f"spool {spool.label} has no length or loss on record: "
                          f"labrun spool set {spool.label} --length-km KM --loss-db-per-km DB",
                          field="spool")
-    tables = [run_points(store, r, include_reference=False, limits=True).assign(run_id=r)
+    tables = [run_points(store, r, include_reference=False, limits=True,
+                          measured_spacing=True).assign(run_id=r)
               for r in run_ids]
     tables = [t for t in tables if not t.empty]
     if not tables:
