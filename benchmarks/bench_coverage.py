@@ -61,7 +61,7 @@ def one_seed(seed: int, folder: Path, *, without_tap: bool = False
                 out = run_plan(load_plan(name), bench, store, operator="coverage benchmark",
                                unattended=True, ack_safety=True, progress=False)
                 tables.append(run_points(store, out.run_id, include_reference=False,
-                                         limits=True))
+                                         limits=True, measured_spacing=True))
     finally:
         store.close()
     t_run = time.perf_counter() - t0

@@ -551,7 +551,7 @@ def fit_dispersion(p_a_w, p_b_w, spacing_ghz, wavelength_a_nm, side, ratio, *, l
                    fit_slope: bool | None = None, d_max: float = 300.0,
                    s_max: float = 5.0,
                    start: tuple[float, float] | None = None,
-                   censored=None) -> dict[str, FitResult]:
+                   censored=None, nominal_spacing=None) -> dict[str, FitResult]:
     """D (and slope S) from first-sideband efficiency against spacing: bounded least squares.
 
     Residuals in dB of R = eta(dbeta(D, S)) c gamma^2 L_eff^2 P_a P_b, free parameters ln gamma,
@@ -568,7 +568,8 @@ def fit_dispersion(p_a_w, p_b_w, spacing_ghz, wavelength_a_nm, side, ratio, *, l
     J. Tobin, Econometrica 26, 24 (1958), whose censored points carry -log Phi((limit -
     model)/sigma) instead; the two agree only where the model is far above the limit (and
     far below it, where both vanish). The starts and the point count use the detected rows
-    only.
+    only. ``nominal_spacing`` (default ``spacing_ghz``): the set spacings, which count the
+    distinct spacings (>= 3 needed) where ``spacing_ghz`` is measured point by point.
     """
     arrs = [np.asarray(v, float) for v in (p_a_w, p_b_w, spacing_ghz, wavelength_a_nm, ratio)]
     p_a, p_b, sp, lam, r = arrs
@@ -577,7 +578,8 @@ def fit_dispersion(p_a_w, p_b_w, spacing_ghz, wavelength_a_nm, side, ratio, *, l
     cen = np.zeros(r.shape, bool) if censored is None else np.asarray(censored, bool)
     ok = np.isfinite(r) & (r > 0) & np.isfinite(sp) & np.isfinite(lam) & (cop > 0)
     det_ok = ok & ~cen
-    if det_ok.sum() < 4 or np.unique(np.round(np.abs(sp[det_ok]), 6)).size < 3:
+    nom = sp if nominal_spacing is None else np.asarray(nominal_spacing, float)
+    if det_ok.sum() < 4 or np.unique(np.round(np.abs(nom[det_ok]), 6)).size < 3:
         return {}
     p_a, p_b, sp, lam, r, side, cop, cen = (v[ok] for v in (p_a, p_b, sp, lam, r, side, cop,
                                                                cen))
@@ -1004,6 +1006,10 @@ def _fit_table(t: dict[str, np.ndarray], spool_length_km: float, loss_db_per_km:
     n = t["power_a_dbm"].size
     p_a, p_b = dbm_to_w(t["power_a_dbm"]), dbm_to_w(t["power_b_dbm"])
     spacing = _col(t, "spacing_ghz", n)
+    # The set spacing names a point's group and counts the spacings swept; the measured one
+    # (spacing_ghz where the OSA read it, points_table) differs by MHz from point to point.
+    nominal = _col(t, SET_SPACING, n)
+    nominal = np.where(np.isfinite(nominal), nominal, spacing)
     lam = _col(t, "wavelength_a_nm", n, reference_wavelength_nm)
     lam = np.where(np.isnan(lam), reference_wavelength_nm, lam)
     cop, pol_notes = copolar_fractions(t, n, polarisation)
@@ -1017,7 +1023,7 @@ def _fit_table(t: dict[str, np.ndarray], spool_length_km: float, loss_db_per_km:
 
     # Polarisation first: its visibility turns each point's copolar fraction into the factor
     # its sidebands actually follow, c_eff = (c + b)/(1 + b) (b = 0 for the ideal projection).
-    pol = _polarisation_results(t, n, hi1, cop, known, spacing, lam, pol_notes)
+    pol = _polarisation_results(t, n, hi1, cop, known, nominal, lam, pol_notes)
     results.update(pol)
     b_off = pol["pol_visibility"].extra.get("offset_b", 0.0) if "pol_visibility" in pol else 0.0
     b_off = b_off if math.isfinite(b_off) else 0.0
@@ -1040,20 +1046,21 @@ def _fit_table(t: dict[str, np.ndarray], spool_length_km: float, loss_db_per_km:
     both = np.concatenate([co, co])
     small = ratio <= 10 ** (small_signal_max_ratio_db / 10)
     sel = both & small & np.isfinite(ratio)
-    n_spacings = np.unique(np.round(spacing[np.isfinite(spacing)], 6)).size
+    n_spacings = np.unique(np.round(nominal[np.isfinite(nominal)], 6)).size
     if n_spacings >= 2:
         results.update(fit_dispersion(
             np.tile(p_a, 2)[sel], np.tile(p_b, 2)[sel], np.tile(spacing, 2)[sel],
             np.tile(lam, 2)[sel], side[sel], ratio[sel], length_km=spool_length_km,
             loss_db_per_km=loss_db_per_km, reference_wavelength_nm=reference_wavelength_nm,
-            copolar=np.tile(c_eff, 2)[sel], start=dispersion_start, censored=cens[sel]))
+            copolar=np.tile(c_eff, 2)[sel], start=dispersion_start, censored=cens[sel],
+            nominal_spacing=np.tile(nominal, 2)[sel]))
         if "dispersion" not in results:
             det = sel & ~cens
             results["dispersion"] = refused(
                 "Inoue efficiency vs spacing", "ps/(nm km)",
                 f"needs >= 4 detected first-sideband ratios <= {small_signal_max_ratio_db} dB "
                 f"on >= 3 spacings of co-polarised points; the run has {int(det.sum())} on "
-                f"{np.unique(np.round(np.tile(spacing, 2)[det], 6)).size} spacing(s)"
+                f"{np.unique(np.round(np.tile(nominal, 2)[det], 6)).size} spacing(s)"
                 + (f" (and {int((sel & cens).sum())} upper limit(s) of undetected lines, "
                    "which do not count)" if (sel & cens).any() else ""))
     d_known, s_known, d_source = dispersion_ps_per_nm_km, slope_ps_per_nm2_km, "given"
@@ -1087,7 +1094,7 @@ def _fit_table(t: dict[str, np.ndarray], spool_length_km: float, loss_db_per_km:
         for name in ("gamma_bessel", "gamma_small_signal"):
             results[name] = refused(name, "1/(W km)", why)
             results[name].warnings.extend(gamma_notes)
-        _add_slopes(results, t, n, p_a, p_b, spacing, lam, cop, max_order)
+        _add_slopes(results, t, n, p_a, p_b, nominal, lam, cop, max_order)
         return results
 
     fb = fit_gamma_bessel(p_a[bessel_ok], p_b[bessel_ok], lo1[bessel_ok], ta[bessel_ok],
@@ -1111,7 +1118,7 @@ def _fit_table(t: dict[str, np.ndarray], spool_length_km: float, loss_db_per_km:
         fs.extra["dispersion_source"] = d_source
     fs.warnings.extend(gamma_notes)
     results["gamma_small_signal"] = fs
-    _add_slopes(results, t, n, p_a, p_b, spacing, lam, cop, max_order)
+    _add_slopes(results, t, n, p_a, p_b, nominal, lam, cop, max_order)
     return results
 
 

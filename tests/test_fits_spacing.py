@@ -27,7 +27,7 @@ from _rk4ip import rk4ip_tones
 from labrun.bench import load_bench
 from labrun.engine import run_plan
 from labrun.exactfit import fit_spool
-from labrun.fits import SET_SPACING, points_table
+from labrun.fits import SET_SPACING, fit_run, points_table
 from labrun.lines import line_id
 from labrun.physics.fibre import Fibre
 from labrun.plan import parse_plan
@@ -84,6 +84,20 @@ def test_exact_fit_uses_the_measured_spacing(runs) -> None:
     off = fit_spool(plain, FIB.length_km, FIB.loss_db_per_km)
     assert abs(off["gamma"].value / 10.0 - 1) > 2e-3
     assert off["gamma"].residual_rms > 0.02
+
+
+def test_one_set_spacing_stays_one_spacing(runs) -> None:
+    # A power sweep at one set spacing whose measured spacing differs by 0.1-0.4 MHz from point
+    # to point (the OSA's reading): still one spacing, so no dispersion fit (which needs >= 3
+    # spacings; on these readings it fitted D = 17 and gamma 52 for a spool of -0.3 and 7.5 on
+    # the virtual lab) and one group of the power-law slopes (3 dB/dB for a first sideband,
+    # Inoue 1992: P_F goes as P_a P_b^2).
+    power = [dict(r, measured_spacing_ghz=r["measured_spacing_ghz"] + 1e-4 * i)
+             for i, r in enumerate(runs[0])]
+    res = fit_run(power, FIB.length_km, FIB.loss_db_per_km)
+    assert "dispersion" not in res or not math.isfinite(res["dispersion"].value)
+    assert res["slope_high_1"].n_points == len(power)
+    assert res["slope_high_1"].value == pytest.approx(3.0, abs=0.1)
 
 
 def test_points_table_keeps_the_set_spacing_and_guards_the_measured_one() -> None:
