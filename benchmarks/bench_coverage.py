@@ -43,9 +43,10 @@ PLANS = ("power-sweep.toml", "spacing-sweep.toml")
 
 
 def one_seed(seed: int, folder: Path, *, without_tap: bool = False
-             ) -> tuple[dict, float, float, tuple[float, float], dict | None]:
+             ) -> tuple[dict, float, float, tuple[float, float, float], dict | None]:
     """Fit results of one seed's two runs, fit time (s), run time (s), the launched-power
-    offsets (dB) the seed drew for lasers a and b (the truth the fit estimates), and with
+    offsets (dB) the seed drew for lasers a and b (the truth the fit estimates) and the tap
+    power meter's calibration offset (dB, what the tap row cannot know), and with
     ``without_tap`` the results of the same data fitted without the tap power meter."""
     scenario = load_scenario("default-scenario.toml")
     spool = scenario.spool()
@@ -55,7 +56,7 @@ def one_seed(seed: int, folder: Path, *, without_tap: bool = False
         with VirtualLab(scenario, time_scale=0.0, seed=seed) as lab:
             bench = load_bench(lab.write_bench(folder / f"bench{seed}.toml"))
             drawn = (lab.state.lasers["laser_a"].power_offset_db,
-                     lab.state.lasers["laser_b"].power_offset_db)
+                     lab.state.lasers["laser_b"].power_offset_db, lab.state.pm_offset_db)
             tables = []
             for name in PLANS:
                 out = run_plan(load_plan(name), bench, store, operator="coverage benchmark",
@@ -92,14 +93,22 @@ def main() -> None:
              for k in truth}
     no_tap = {"in": 0, "n": 0, "bias": 0.0, "u": 0.0, "in1": 0}  # exact gamma without the tap
     offs = {arm: {"in": 0, "n": 0, "err": 0.0} for arm in "ab"}
-    drawn_shift = []
+    drawn_shift: list[float] = []
+    tap_shifts: list[float] = []
     fit_times, run_times = [], []
     with tempfile.TemporaryDirectory() as tmp:
         for seed in range(args.first_seed, args.first_seed + args.n):
             res, t_fit, t_run, drawn, res_no_tap = one_seed(seed, Path(tmp),
                                                             without_tap=args.without_tap)
-            shift = 10 ** (sum(drawn) / 20)  # gamma's factor from this seed's power offsets
+            shift = 10 ** (sum(drawn[:2]) / 20)  # gamma's factor from the lasers' offsets
             drawn_shift.append(shift - 1)
+            # with the tap row, gamma's factor from the meter's offset instead (it reads d dB
+            # high: the offsets come out d dB high, gamma 10^(-d/10) low)
+            tap_used = bool(res.get("power_offset_a") is not None
+                            and res["power_offset_a"].extra.get("tap_used"))
+            tap_shift = 10 ** (-drawn[2] / 10)
+            if tap_used:
+                tap_shifts.append(tap_shift - 1)
             fit_times.append(t_fit)
             run_times.append(t_run)
             line = []
@@ -114,8 +123,9 @@ def main() -> None:
                 st["bias"] += (value - true) / true
                 st["u"] += r.u95 / true
                 st["in1"] += abs(value - true) <= 0.01 * true
-                st["bias_off"] += ((value / shift if key.startswith("gamma") else value) - true) \
-                    / true
+                by = (tap_shift if tap_used else shift) if key == "gamma" else \
+                    shift if key.startswith("gamma") else 1.0
+                st["bias_off"] += (value / by - true) / true
                 line.append(f"{key} {value:.4f}+-{r.u95:.4f}")
             g0 = (res_no_tap or {}).get("gamma")
             if g0 is not None and math.isfinite(g0.value) and math.isfinite(g0.u95):
@@ -157,7 +167,11 @@ def main() -> None:
               "common offset)")
     mean_shift = 100 * sum(drawn_shift) / len(drawn_shift)
     print(f"the seeds' drawn launched-power offsets move gamma by {mean_shift:+.2f} % "
-          f"on average (10^((x_a + x_b)/20) - 1; the truth of the bias above)")
+          f"on average (10^((x_a + x_b)/20) - 1; the truth of the bias of the fits that do "
+          f"not use the tap)")
+    if tap_shifts:
+        print(f"the tap meter's drawn offsets move the tap-fitted gamma by "
+              f"{100 * sum(tap_shifts) / len(tap_shifts):+.2f} % on average (10^(-d/10) - 1)")
     for arm, o in offs.items():
         if o["n"]:
             print(f"power_offset_{arm}: truth within U for {o['in'] / o['n']:.0%} of the seeds, "
