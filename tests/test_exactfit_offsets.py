@@ -69,6 +69,7 @@ def _fit(sweep, **kw):
 def test_bench_states_the_calibration_uncertainty(sweep) -> None:
     _, bench = sweep
     assert bench.calibration.power_a_u_db == U_ARM and bench.calibration.power_b_u_db == U_ARM
+    assert bench.calibration.tap_power_u_db == U_TAP  # the meter's drawn offset, stated
 
 
 def test_offset_on_arm_a_is_recovered_within_its_uncertainty(sweep) -> None:

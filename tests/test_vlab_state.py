@@ -97,3 +97,26 @@ def test_tone_a_is_the_lower_frequency_whichever_laser_carries_it():
     after = sorted(state.osa_input()[0])
     assert len(before) == len(after) == 12
     np.testing.assert_allclose(np.array(after), np.array(before), atol=1e-6)
+
+
+def test_tap_meter_reads_the_launched_total_with_its_seeded_calibration_offset():
+    # The tap meter reads the total launched power (the tones summed in mW) less the tap
+    # ratio, plus its fixed calibration offset: drawn per seed from realism
+    # power_meter_offset_db, none with realism off (issue 9: using the tap is not free).
+    state = quiet()
+    cal = state.scenario.bench
+    total = 10 * np.log10(sum(mw(p) for _, p in state.launched().tones))
+    assert state.pm_offset_db == 0.0
+    assert state.tap_power_dbm() == pytest.approx(total - cal.input_tap_db, abs=1e-9)
+    data = tomllib.loads(DEFAULT.read_text())
+    data["realism"] = {"enabled": True, "power_meter_offset_db": 0.3}
+    drawn = []
+    for seed in range(8):
+        real = LabState(parse_scenario(data), seed=seed)
+        real.lasers["laser_a"].output = real.attenuators["attenuator_a"].output = True
+        launched = 10 * np.log10(sum(mw(p) for _, p in real.launched().tones))
+        assert real.tap_power_dbm() == pytest.approx(
+            launched - cal.input_tap_db + real.pm_offset_db, abs=1e-9)
+        drawn.append(real.pm_offset_db)
+    assert len(set(drawn)) == 8 and 0.05 < float(np.std(drawn)) < 1.0  # one draw per seed
+    assert LabState(parse_scenario(data), seed=3).pm_offset_db == drawn[3]  # reproducible
