@@ -118,7 +118,11 @@ def plot_comparison(path: str | Path, comparison: dict) -> Path:
                 values.append(entry["value"])
                 errors.append(entry.get("u95") or 0.0)
                 colours.append("lightgrey" if no_u else "tab:blue")
-        ax.bar(range(len(values)), values, yerr=errors, capsize=6, color=colours, alpha=0.7)
+        ax.bar(range(len(values)), values, color=colours, alpha=0.7)
+        with_u = [i for i, c in enumerate(colours) if c != "lightgrey"]  # no bar for no U
+        if with_u:
+            ax.errorbar(with_u, [values[i] for i in with_u], yerr=[errors[i] for i in with_u],
+                        fmt="none", capsize=6, color="black")
         ax.set_xticks(range(len(values)), labels)
         ax.set_title(title)
         ax.grid(axis="y", alpha=0.3)
@@ -136,15 +140,19 @@ def plot_history(path: str | Path, history: dict) -> Path:
     for ax, (key, title) in zip(axes, keys, strict=True):
         xs = [i for i, h in enumerate(fits) if key in h]
         ys = [fits[i][key]["value"] for i in xs]
-        es = [fits[i][key].get("u95") or 0.0 for i in xs]
-        ax.errorbar(xs, ys, yerr=es, fmt="o-", capsize=5, color="tab:blue")
+        ax.plot(xs, ys, "-", color="tab:blue", alpha=0.5)
         grey = [i for i in xs if fits[i][key].get("comparable") is False]
-        if grey:  # no U (dispersion unknown): not comparable, drawn apart
+        kept = [i for i in xs if i not in grey]
+        ax.errorbar(kept, [fits[i][key]["value"] for i in kept],
+                    yerr=[fits[i][key].get("u95") or 0.0 for i in kept], fmt="o", capsize=5,
+                    color="tab:blue")
+        if grey:  # no U (dispersion unknown): not comparable, no error bar, drawn apart
             ax.plot(grey, [fits[i][key]["value"] for i in grey], "s", ms=9, color="lightgrey",
                     mec="grey", label="no U: not comparable")
         bad = [i for i in xs if key in fits[i]["changed"]]
-        ax.plot(bad, [fits[i][key]["value"] for i in bad], "o", ms=12, mfc="none", color="red",
-                label="changed beyond combined U95")
+        if bad:
+            ax.plot(bad, [fits[i][key]["value"] for i in bad], "o", ms=12, mfc="none",
+                    color="red", label="changed beyond combined U95")
         ax.set_ylabel(title)
         ax.grid(alpha=0.3)
         if bad or grey:
