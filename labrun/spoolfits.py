@@ -467,6 +467,16 @@ def fit_runs(store: Store, run_ids: list[int], *, save: bool = True,
     results = _fit_tables(tables, spool, bench_text, monte_carlo=monte_carlo)
     results = _with_warnings(results, shared_offset_warnings(origins))
     params = {name: from_fit(r) for name, r in results.items()}
+    if any(p.extra.get("no_u_reason") for p in params.values()):
+        others = spacing_runs(store, spool.id, run_ids)
+        if others:
+            hint = (f"run{'s' if len(others) > 1 else ''} {', '.join(map(str, others))} of "
+                    f"{spool.label} sweep{'' if len(others) > 1 else 's'} the spacing: labrun "
+                    f"fit {' '.join(map(str, [*run_ids, *others]))} fits them jointly (or give "
+                    f"the D: labrun spool set {spool.label} --dispersion D --dispersion-u U)")
+            for p in params.values():
+                if p.extra.get("no_u_reason"):
+                    p.extra["no_u_hint"] = hint
     record = FitRecord(spool=spool.label, run_ids=run_ids, parameters=params,
                        spool_snapshot={"length_km": spool.length_km,
                                        "loss_db_per_km": spool.loss_db_per_km,
@@ -474,6 +484,25 @@ def fit_runs(store: Store, run_ids: list[int], *, save: bool = True,
     if save:
         store_fit(store, spool.id, record)
     return record
+
+
+SPACING_RUNS_LOOKED_AT = 20  # the newest runs of the spool searched for a spacing sweep
+
+
+def spacing_runs(store: Store, spool_id: int, exclude: list[int]) -> list[int]:
+    """Runs of the spool, other than ``exclude``, whose points sweep the spacing (>= 2 set
+    spacings): what a power run fitted alone lacks (newest first, a few at most)."""
+    from labrun.queries import run_points
+
+    with store.session() as s:
+        ids = s.scalars(select(Run.id).where(Run.spool_id == spool_id, Run.id.not_in(exclude))
+                        .order_by(Run.id.desc()).limit(SPACING_RUNS_LOOKED_AT)).all()
+    found = []
+    for run_id in ids:
+        t = run_points(store, run_id, include_reference=False)
+        if "spacing_ghz" in t and _n_spacings([t]) >= 2:
+            found.append(int(run_id))
+    return found[:3]
 
 
 def store_fit(store: Store, spool_id: int, record: FitRecord) -> int:

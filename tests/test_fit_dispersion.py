@@ -253,3 +253,21 @@ def test_plan_spool_table_carries_the_dispersion(tmp_path):
         parse_plan(PLAN.replace("[fixed]", "dispersion_ps_per_nm_km = 2.69\n\n[fixed]").encode(),
                    "p.toml")
     assert exc.value.field == "spool.dispersion_u_ps_per_nm_km"
+
+
+def test_no_u_hint_names_a_spacing_run_of_the_spool(db, capsys, tmp_path):
+    """A spacing run of the spool in the store: the no-U hint says to fit it jointly."""
+    import shutil
+
+    path = str(tmp_path / "two.db")
+    shutil.copy(db, path)
+    spacing = (PLAN.replace('name = "DSF-C31 power sweep, 100 GHz"', 'name = "spacing"')
+               .replace("spacing_ghz = 100.0\n", "")
+               .replace("[axes.power_a_dbm]\nvalues = [-2.0, 0.0, 2.0, 4.0, 6.0]\n\n"
+                        "[axes.power_b_dbm]\nvalues = [-2.0, 0.0, 2.0, 4.0, 6.0]\n\n"
+                        '[order]\nzip = [["power_a_dbm", "power_b_dbm"]]\n',
+                        "power_a_dbm = 4.0\npower_b_dbm = 4.0\n\n[axes.spacing_ghz]\n"
+                        "values = [50.0, 100.0]\n"))
+    run = run_plan_file(path, "plan", tmp_path, text=spacing, spools=[SPOOL])
+    g = _fit(capsys, path, "--no-store")["gamma"]
+    assert g["u95"] is None and f"labrun fit 1 {run} fits them jointly" in g["no_u_hint"]
