@@ -57,7 +57,7 @@ def _read_tap(store: Store, run_id: int) -> bool:
     with store.session() as s:
         applied = s.execute(select(Point.applied).where(Point.run_id == run_id)
                             .order_by(Point.index).limit(1)).scalar()
-    return bool(applied) and TAP_KEY in applied
+    return applied is not None and TAP_KEY in applied
 
 
 def original_run(store: Store, run_id: int) -> Any:

@@ -468,15 +468,18 @@ def fit_runs(store: Store, run_ids: list[int], *, save: bool = True,
     results = _with_warnings(results, shared_offset_warnings(origins))
     params = {name: from_fit(r) for name, r in results.items()}
     if any(p.extra.get("no_u_reason") for p in params.values()):
+        from labrun.exactfit import NO_D_HINT
+
         others = spacing_runs(store, spool.id, run_ids)
+        hint = NO_D_HINT.replace("LABEL", spool.label)
         if others:
             hint = (f"run{'s' if len(others) > 1 else ''} {', '.join(map(str, others))} of "
                     f"{spool.label} sweep{'' if len(others) > 1 else 's'} the spacing: labrun "
                     f"fit {' '.join(map(str, [*run_ids, *others]))} fits them jointly (or give "
                     f"the D: labrun spool set {spool.label} --dispersion D --dispersion-u U)")
-            for p in params.values():
-                if p.extra.get("no_u_reason"):
-                    p.extra["no_u_hint"] = hint
+        for p in params.values():
+            if p.extra.get("no_u_reason"):
+                p.extra["no_u_hint"] = hint
     record = FitRecord(spool=spool.label, run_ids=run_ids, parameters=params,
                        spool_snapshot={"length_km": spool.length_km,
                                        "loss_db_per_km": spool.loss_db_per_km,

@@ -82,7 +82,7 @@ def test_no_dispersion_claims_no_u_anywhere(db, capsys):
     assert p["slope_high_1"]["u95"] is not None  # the dB/dB slopes do not depend on eta
 
     text = _out(capsys, "fit", "1", "--db", db)  # stores fit 1
-    assert "no U: dispersion unknown" in text and "labrun spool set LABEL --dispersion" in text
+    assert "no U: dispersion unknown" in text and "labrun spool set DSF-C31 --dispersion" in text
     assert "nan" not in text.lower() and "U k=2" not in text.split("slope_")[0]
     mc = _out(capsys, "fit", "1", "--db", db, "--no-store", "--monte-carlo", "3")
     assert "nan" not in mc.lower() and "Monte Carlo (JCGM 101" not in mc
