@@ -478,6 +478,11 @@ def _sweep_lines(tmp_path: Path, dialect: str, realism: bool
 
     sc = scenario(dialect=dialect)
     sc["realism"]["enabled"] = realism
+    # The drifts run on simulated time, which each command advances: the two dialects send
+    # different commands (SESS:OWN, SPEC:BUSY? polls), so their clocks, and the drifts read on
+    # them, differ. The fixed offsets and the OSA noise stay on.
+    sc["realism"].update(pol_walk_hours=0.0, laser_power_drift_db_per_sqrt_h=0.0,
+                         laser_wavelength_drift_pm_per_sqrt_h=0.0)
     for role in ("amplifier", "power_meter", "switch"):
         sc["instruments"][role]["present"] = True
     folder = tmp_path / f"{dialect}-{realism}"
