@@ -979,7 +979,7 @@ def with_budget(results: dict[str, FitResult], t: dict[str, np.ndarray], length_
             up, down = moved[0].get(key), moved[1].get(key)
             half = (abs(up.value - down.value) / 2.0 if up is not None and down is not None
                     else float("nan"))
-            rows[key].append(Component(source, u, unit, half))
+            rows[key].append(Component(unc.source(source, name), u, unit, half))
     out = dict(results)
     for key, comps in rows.items():
         r = results[key]

@@ -195,9 +195,17 @@ class Plan:
 
     def _spool_info(self, spool: SpoolSpec) -> dict[str, Any]:
         """[spool]'s fields for the spool row, a given dispersion as the row's
-        ``params["dispersion"]`` (the keys of spoolfits.GivenDispersion); a D needs its u."""
+        ``params["dispersion"]`` (the keys of spoolfits.GivenDispersion); a D needs its u; the
+        length and loss standard uncertainties as ``params["length_u_km"]`` and
+        ``params["loss_u_db_per_km"]``."""
         info = spool.known()
         d = {k: info.pop(k) for k in list(info) if k.startswith("dispersion_")}
+        stated_u = {k: info.pop(k) for k in ("length_u_km", "loss_u_db_per_km") if k in info}
+        if stated_u.get("length_u_km", 0.0) >= info.get("length_km", math.inf):
+            raise _fail(self.file, "spool.length_u_km", "must be below length_km (a standard "
+                        "uncertainty of the length, km)")
+        if stated_u:  # Spool.params keys of spoolfits.LENGTH_U_KEY, LOSS_U_KEY
+            info["params"] = dict(stated_u)
         if not d:
             return info
         if "dispersion_ps_per_nm_km" not in d:
@@ -206,7 +214,7 @@ class Plan:
             raise _fail(self.file, "spool.dispersion_u_ps_per_nm_km",
                         "required with dispersion_ps_per_nm_km: its standard uncertainty, "
                         "ps/(nm km), a row of gamma's uncertainty budget")
-        info["params"] = {"dispersion": {
+        info["params"] = {**info.get("params", {}), "dispersion": {
             "d_ps_per_nm_km": d["dispersion_ps_per_nm_km"],
             "u_ps_per_nm_km": d["dispersion_u_ps_per_nm_km"],
             "slope_ps_per_nm2_km": d.get("dispersion_slope_ps_per_nm2_km", 0.0),

@@ -111,6 +111,11 @@ class SpoolSpec(_Strict):
     dispersion_slope_ps_per_nm2_km: float | None = Field(None, ge=-5.0, le=5.0)
     dispersion_slope_u_ps_per_nm2_km: float | None = Field(None, ge=0.0, le=5.0)
     dispersion_at_nm: float | None = Field(None, ge=1000.0, le=2000.0)
+    # Standard uncertainties of the length (km, absolute, below the length) and of the loss
+    # (dB/km, at most 10: typos out) for the fit's GUM budget, as `labrun spool set
+    # --length-u-km / --loss-u-db-per-km`; none: the fit's defaults (0.5 %, 0.02 dB/km).
+    length_u_km: float | None = Field(None, gt=0.0, le=1.0e5)
+    loss_u_db_per_km: float | None = Field(None, gt=0.0, le=10.0)
 
     def known(self) -> dict[str, Any]:
         """The fields given in the file (what a new or incomplete spool row takes)."""

@@ -37,6 +37,8 @@ NO_U_LEGEND = ("no expanded uncertainty is claimed: the dispersion is unknown (a
 NO_U_HINT = ("labrun spool set LABEL --dispersion D --dispersion-u U gives a D, or fit a spacing "
              "run with the power run")
 DISPERSION_KEY = "dispersion"  # Spool.params entry of a dispersion the lab knows (spool set)
+LENGTH_U_KEY = "length_u_km"  # Spool.params entries: the stated standard uncertainty of the
+LOSS_U_KEY = "loss_u_db_per_km"  # length (km) and loss (dB/km) (spool set, plan [spool])
 D_SOURCE = "dispersion D (spool record)"  # the budget row of a given D (28 columns)
 S_SOURCE = "slope S (spool record)"
 
@@ -221,6 +223,26 @@ def given_text(extra: dict[str, Any]) -> str | None:
             f"in the fit; its uncertainty is the budget row '{D_SOURCE}'")
 
 
+def stated_spool_u(spool: Any) -> dict[str, float]:
+    """The standard uncertainties of length and loss the spool record states (keys
+    LENGTH_U_KEY, LOSS_U_KEY; none: {})."""
+    params = getattr(spool, "params", None) or {}
+    return {k: float(params[k]) for k in (LENGTH_U_KEY, LOSS_U_KEY) if params.get(k) is not None}
+
+
+def spool_u_terms(spool: Any) -> dict[str, float | str]:
+    """Uncertainties' spool fields for a fit of this spool: its record's stated u's, else the
+    defaults (labrun.uncertainty.spool_terms); InputError naming the record's field."""
+    from labrun.uncertainty import spool_terms
+
+    stated = stated_spool_u(spool)
+    try:
+        return spool_terms(spool.length_km, stated.get(LENGTH_U_KEY), stated.get(LOSS_U_KEY))
+    except ValueError as e:
+        raise InputError(f"spool {spool.label}: {e} (labrun spool set {spool.label} "
+                         "--length-u-km / --loss-u-db-per-km)", field="spool") from None
+
+
 def _n_spacings(tables: list[Any]) -> int:
     """Distinct spacings among the runs' points (>= 2: the fit measures the dispersion)."""
     import numpy as np
@@ -251,7 +273,8 @@ def _fit_tables(tables: list[Any], spool: Spool, bench_text: str | None, *,
         raise ValueError(f"spool {spool.label} has no length or loss")
     cal, pol = _bench_terms(bench_text)
     kw: dict[str, Any] = {"polarisation": PolFrame.from_bench(pol),
-                          "uncertainties": Uncertainties.from_calibration(cal)}
+                          "uncertainties": Uncertainties.from_calibration(
+                              cal, **spool_u_terms(spool))}
     given = GivenDispersion.of(spool)
     notes: list[str] = []
     if given is None or _n_spacings(tables) >= 2:
@@ -483,7 +506,8 @@ def fit_runs(store: Store, run_ids: list[int], *, save: bool = True,
     record = FitRecord(spool=spool.label, run_ids=run_ids, parameters=params,
                        spool_snapshot={"length_km": spool.length_km,
                                        "loss_db_per_km": spool.loss_db_per_km,
-                                       "fibre_type": spool.fibre_type})
+                                       "fibre_type": spool.fibre_type,
+                                       **stated_spool_u(spool)})
     if save:
         store_fit(store, spool.id, record)
     return record

@@ -27,6 +27,13 @@ FloatOrArray: TypeAlias = "float | np.ndarray"  # a value, or one per point (ele
 
 K_COVERAGE = 2.0
 
+# Spool terms used when the spool record states none (common practice: a length read off the
+# reel's label or a meter counter, a loss from the fibre type's data sheet).
+DEFAULT_LENGTH_REL = 0.005
+DEFAULT_LOSS_U_DB_PER_KM = 0.02
+FROM_DEFAULT = "default"
+FROM_RECORD = "spool record"
+
 
 @dataclass(frozen=True)
 class Uncertainties:
@@ -35,24 +42,55 @@ class Uncertainties:
     Defaults (common practice for a bench calibrated with a power meter and a wavelength
     reference; replace them with your own calibration's): 0.1 dB launched power per arm, 0.05 dB
     OSA relative amplitude (sideband against tone, a few nm apart), 5 pm per laser wavelength,
-    0.5 % spool length, 0.02 dB/km spool loss, 0.1 dB for the total launched power measured on
-    the input tap (power meter calibration and tap ratio together; used by the exact fit's
-    launched-power offsets, labrun.exactfit, not a component of its own).
+    0.5 % spool length, 0.02 dB/km spool loss (both replaced by the spool record's, labrun
+    spool set --length-u-km / --loss-u-db-per-km, see spool_terms), 0.1 dB for the total
+    launched power measured on the input tap (power meter calibration and tap ratio together;
+    used by the exact fit's launched-power offsets, labrun.exactfit, not a component of its
+    own).
     """
 
     power_a_db: float = 0.1
     power_b_db: float = 0.1
     osa_amplitude_db: float = 0.05
     wavelength_pm: float = 5.0
-    length_rel: float = 0.005
-    loss_db_per_km: float = 0.02
+    length_rel: float = DEFAULT_LENGTH_REL
+    loss_db_per_km: float = DEFAULT_LOSS_U_DB_PER_KM
     tap_power_db: float = 0.1
+    length_from: str = ""  # where length_rel came from (FROM_RECORD, FROM_DEFAULT; "" unsaid)
+    loss_from: str = ""  # where loss_db_per_km came from
+
+    def source(self, name: str, field: str) -> str:
+        """A budget row's name: 'spool length (spool record)' for a spool term whose origin is
+        known, else the name as in COMPONENTS."""
+        origin = {"length_rel": self.length_from, "loss_db_per_km": self.loss_from}.get(field)
+        return f"{name} ({origin})" if origin else name
 
     @classmethod
     def from_calibration(cls, cal, **spool) -> Uncertainties:
         """From a bench's [calibration] (labrun.bench.Calibration) and optional spool terms."""
         return cls(cal.power_a_u_db, cal.power_b_u_db, cal.osa_amplitude_u_db,
                    cal.wavelength_u_pm, **spool, tap_power_db=cal.tap_power_u_db)
+
+
+def spool_terms(length_km: float, length_u_km: float | None,
+                loss_u_db_per_km: float | None) -> dict[str, float | str]:
+    """Uncertainties' spool fields from a spool record's stated standard uncertainties (length
+    in km, absolute; loss in dB/km), the defaults where it states none, each with its origin.
+    ValueError for a u that is not a positive finite number or a length u not below the
+    length."""
+    out: dict[str, float | str] = {"length_rel": DEFAULT_LENGTH_REL, "length_from": FROM_DEFAULT,
+                                   "loss_db_per_km": DEFAULT_LOSS_U_DB_PER_KM,
+                                   "loss_from": FROM_DEFAULT}
+    if length_u_km is not None:
+        if not (math.isfinite(length_u_km) and 0.0 < length_u_km < length_km):
+            raise ValueError(f"length_u_km {length_u_km:g} must be above 0 and below the "
+                             f"length {length_km:g} km")
+        out.update(length_rel=length_u_km / length_km, length_from=FROM_RECORD)
+    if loss_u_db_per_km is not None:
+        if not (math.isfinite(loss_u_db_per_km) and loss_u_db_per_km > 0.0):
+            raise ValueError(f"loss_u_db_per_km {loss_u_db_per_km:g} must be above 0")
+        out.update(loss_db_per_km=loss_u_db_per_km, loss_from=FROM_RECORD)
+    return out
 
 
 # (name shown in the budget, field of Uncertainties, unit of that field)

@@ -33,10 +33,11 @@ def register(subparsers: Any) -> None:
                                description="Edit what is recorded of a spool.")
     sub = sp.add_subparsers(dest="spool_command", metavar="ACTION", required=True,
                             parser_class=type(sp))
-    st = sub.add_parser("set", help="set a spool's length, loss, fibre type, note or known "
-                                    "dispersion",
+    st = sub.add_parser("set", help="set a spool's length, loss (and their uncertainties), "
+                                    "fibre type, note or known dispersion",
                         description="Set fields of a spool's record (created when new). "
-                                    "Later fits use the new length and loss, and the "
+                                    "Later fits use the new length and loss, their "
+                                    "standard uncertainties (see --length-u-km) and the "
                                     "dispersion given here (see --dispersion).")
     st.add_argument("label", metavar="LABEL", help="spool label")
     st.add_argument("--length-km", type=float, metavar="KM")
@@ -62,6 +63,20 @@ def register(subparsers: Any) -> None:
                     help="wavelength at which --dispersion and the slope hold (default 1550)")
     st.add_argument("--forget-dispersion", action="store_true",
                     help="remove the recorded dispersion")
+    st.add_argument("--length-u-km", type=float, metavar="KM",
+                    help="standard uncertainty (1 sigma) of the length, absolute, in km "
+                         "(e.g. 0.002 for an OTDR-measured length), > 0 and below the length. "
+                         "labrun fit uses it for the 'spool length' row of the GUM budget; "
+                         "without it the fit uses 0.5 %% of the length (common practice for a "
+                         "length read off the reel) and the row says '(default)'")
+    st.add_argument("--loss-u-db-per-km", type=float, metavar="DB",
+                    help="standard uncertainty (1 sigma) of the loss, absolute, in dB/km "
+                         "(e.g. 0.005 for a cut-back measurement), > 0 and at most 10. labrun "
+                         "fit uses it for the 'spool loss' row of the GUM budget; without it "
+                         "0.02 dB/km (common practice for a data-sheet loss), row '(default)'")
+    st.add_argument("--forget-spool-u", action="store_true",
+                    help="remove the stated length and loss uncertainties (fits use the "
+                         "defaults again)")
     _db_arg(st)
     st.add_argument("--json", action="store_true", help="print the spool as JSON")
     st.set_defaults(func=cmd_spool_set)
@@ -95,7 +110,7 @@ def spool_rows(store: Any) -> list[dict[str, Any]]:
     """One dict per spool: its record, run count, latest fit id and headline values."""
     from sqlalchemy import func, select
 
-    from labrun.spoolfits import DISPERSION_KEY, latest_fits
+    from labrun.spoolfits import DISPERSION_KEY, latest_fits, stated_spool_u
     from labrun.store.models import Run, Spool
 
     fits = latest_fits(store)
@@ -110,6 +125,7 @@ def spool_rows(store: Any) -> list[dict[str, Any]]:
                      "loss_db_per_km": sp.loss_db_per_km, "fibre_type": sp.fibre_type,
                      "note": sp.note, "runs": int(counts.get(sp.id, 0)),
                      "dispersion_record": (sp.params or {}).get(DISPERSION_KEY),
+                     "stated_u": stated_spool_u(sp),
                      "latest_fit": fit.fit_id if fit else None,
                      "fitted_at": fit.created_at.isoformat() if fit and fit.created_at else None,
                      **headline(fit)})
@@ -186,7 +202,7 @@ def cmd_spool_set(args: argparse.Namespace) -> int:
     from sqlalchemy import select
 
     from labrun.errors import InputError
-    from labrun.spoolfits import DISPERSION_KEY, GivenDispersion
+    from labrun.spoolfits import DISPERSION_KEY, LENGTH_U_KEY, LOSS_U_KEY, GivenDispersion
     from labrun.store import open_existing_store
     from labrun.store.models import Spool, utcnow
 
@@ -194,9 +210,12 @@ def cmd_spool_set(args: argparse.Namespace) -> int:
               "fibre_type": args.fibre_type, "note": args.note}
     given = {k: v for k, v in fields.items() if v is not None}
     dispersion = _dispersion_arg(args)
-    if not given and dispersion is None and not args.forget_dispersion:
-        raise InputError("nothing to set: give --length-km, --loss-db-per-km, --fibre-type, "
-                         "--note, --dispersion or --forget-dispersion", field="LABEL")
+    spool_u = _spool_u_args(args)
+    if not given and dispersion is None and not args.forget_dispersion and not spool_u \
+            and not args.forget_spool_u:
+        raise InputError("nothing to set: give --length-km, --loss-db-per-km, --length-u-km, "
+                         "--loss-u-db-per-km, --fibre-type, --note, --dispersion or a --forget "
+                         "option", field="LABEL")
     for name, low, high in (("length_km", 0.0, 1.0e5), ("loss_db_per_km", 0.0, 100.0)):
         v = given.get(name)
         if v is not None and not (low < v <= high if name == "length_km" else low <= v <= high):
@@ -204,6 +223,7 @@ def cmd_spool_set(args: argparse.Namespace) -> int:
                              field="--" + name.replace("_", "-"))
     store = open_existing_store(args.db, upgrade=True)
     try:
+        _check_length_u(store, args.label, given.get("length_km"), spool_u, args.forget_spool_u)
         store.spool_id(args.label)
         with store.session() as s:
             spool = s.scalar(select(Spool).where(Spool.label == args.label))
@@ -216,10 +236,14 @@ def cmd_spool_set(args: argparse.Namespace) -> int:
                 if dispersion is not None:
                     params[DISPERSION_KEY] = dispersion.to_params()
                 spool.params = params  # a new dict: the JSON column sees the change
+            if spool_u or args.forget_spool_u:
+                params = {k: v for k, v in (spool.params or {}).items()
+                          if not (args.forget_spool_u and k in (LENGTH_U_KEY, LOSS_U_KEY))}
+                spool.params = {**params, **spool_u}
             spool.updated_at = utcnow()
             out = {"spool": spool.label, "length_km": spool.length_km,
                    "loss_db_per_km": spool.loss_db_per_km, "fibre_type": spool.fibre_type,
-                   "note": spool.note,
+                   "note": spool.note, **_u_out(spool),
                    "dispersion": (spool.params or {}).get(DISPERSION_KEY)}
     finally:
         store.close()
@@ -229,10 +253,78 @@ def cmd_spool_set(args: argparse.Namespace) -> int:
         rec = GivenDispersion.of(type("S", (), {"params": {DISPERSION_KEY: out["dispersion"]}}))
         print(f"spool {out['spool']}: " + ", ".join(
             f"{k} = {v}" for k, v in out.items()
-            if k not in ("spool", "dispersion") and v is not None)
+            if k not in ("spool", "dispersion", "length_u_from", "loss_u_from")
+            and v is not None)
             + (f", dispersion {rec.text()} (used by labrun fit without a spacing run)"
                if rec else ""))
     return 0
+
+
+LOSS_U_MAX_DB_PER_KM = 10.0  # a loss u above 10 dB/km is a typo (common practice)
+
+
+def _u_out(spool: Any) -> dict[str, Any]:
+    """The record's length and loss u as ``spool set --json`` shows them (None: the fit's
+    default, named in ``*_u_from``)."""
+    from labrun.spoolfits import LENGTH_U_KEY, LOSS_U_KEY, stated_spool_u
+
+    stated = stated_spool_u(spool)
+    return {LENGTH_U_KEY: stated.get(LENGTH_U_KEY),
+            "length_u_from": "spool record" if LENGTH_U_KEY in stated else "default (0.5 %)",
+            LOSS_U_KEY: stated.get(LOSS_U_KEY),
+            "loss_u_from": "spool record" if LOSS_U_KEY in stated else "default (0.02 dB/km)"}
+
+
+def _spool_u_args(args: argparse.Namespace) -> dict[str, float]:
+    """--length-u-km and --loss-u-db-per-km as Spool.params entries; InputError naming the
+    option for a value that is not a positive finite number (the length bound is checked
+    against the record, _check_length_u)."""
+    import math
+
+    from labrun.errors import InputError
+    from labrun.spoolfits import LENGTH_U_KEY, LOSS_U_KEY
+
+    out: dict[str, float] = {}
+    for option, key, value, high in (("--length-u-km", LENGTH_U_KEY, args.length_u_km, None),
+                                     ("--loss-u-db-per-km", LOSS_U_KEY, args.loss_u_db_per_km,
+                                      LOSS_U_MAX_DB_PER_KM)):
+        if value is None:
+            continue
+        if args.forget_spool_u:
+            raise InputError(f"give either {option} or --forget-spool-u", field="--forget-spool-u")
+        if not (math.isfinite(value) and value > 0.0 and (high is None or value <= high)):
+            bound = f" and at most {high:g}" if high is not None else ""
+            raise InputError(f"must be a standard uncertainty above 0{bound} (got {value:g})",
+                             field=option)
+        out[key] = value
+    return out
+
+
+def _check_length_u(store: Any, label: str, length_km: float | None,
+                    spool_u: dict[str, float], forget: bool) -> None:
+    """InputError unless the length u the record will hold is below the length it will hold
+    (checked before the record is touched)."""
+    from sqlalchemy import select
+
+    from labrun.errors import InputError
+    from labrun.spoolfits import LENGTH_U_KEY, stated_spool_u
+    from labrun.store.models import Spool
+
+    with store.session() as s:
+        spool = s.scalar(select(Spool).where(Spool.label == label))
+        old_length = spool.length_km if spool is not None else None
+        old_u = None if spool is None or forget else stated_spool_u(spool).get(LENGTH_U_KEY)
+    u = spool_u.get(LENGTH_U_KEY, old_u)
+    length = length_km if length_km is not None else old_length
+    if u is None:
+        return
+    option = "--length-u-km" if LENGTH_U_KEY in spool_u else "--length-km"
+    if length is None:
+        raise InputError(f"spool {label} has no length on record: give --length-km with it",
+                         field=option)
+    if u >= length:
+        raise InputError(f"the length's standard uncertainty {u:g} km must be below the length "
+                         f"{length:g} km", field=option)
 
 
 DISPERSION_LIMITS = (("--dispersion", 300.0), ("--dispersion-u", 100.0),
