@@ -128,6 +128,20 @@ def test_spool_set_length_and_loss_u(db, capsys, tmp_path):
                           "--db", path))
     assert out["length_u_km"] is None and out["length_u_from"].startswith("default")
     assert out["dispersion"] is not None
+    # a record whose length u is not below its length (written by hand, or a plan's u on a
+    # record of a shorter length) is refused by the fit, naming the record's field
+    from labrun.store import open_store
+    from labrun.store.models import Spool
+
+    store = open_store(path)
+    try:
+        with store.session() as s:
+            sp = s.query(Spool).filter(Spool.label == "DSF-C31").one()
+            sp.params = {**sp.params, "length_u_km": 5.0}
+    finally:
+        store.close()
+    _one_line(capsys, path, "fit", "1", "--no-store", words=("DSF-C31", "length_u_km",
+                                                             "--length-u-km"))
 
 
 def test_plan_spool_table_carries_the_u(tmp_path):

@@ -66,7 +66,8 @@ def register(subparsers: Any) -> None:
     st.add_argument("--length-u-km", type=float, metavar="KM",
                     help="standard uncertainty (1 sigma) of the length, absolute, in km "
                          "(e.g. 0.002 for an OTDR-measured length), > 0 and below the length. "
-                         "labrun fit uses it for the 'spool length' row of the GUM budget; "
+                         "labrun fit uses it for the 'spool length' row of the GUM budget "
+                         "(shown there relative to the length); "
                          "without it the fit uses 0.5 %% of the length (common practice for a "
                          "length read off the reel) and the row says '(default)'")
     st.add_argument("--loss-u-db-per-km", type=float, metavar="DB",
