@@ -4,9 +4,10 @@
 effective length, first-sideband efficiency at common conditions), each as {value, stderr, u95,
 unit, model, runs}. D and its slope are shown as ``labrun fit`` shows them: signed where the fit
 determined the sign of D, else |D| and d|D|/d(lambda) (``sign_determined`` says which).
-``spool_history`` lists every stored fit of one spool in time order and flags a change between
-consecutive fits larger than their combined expanded uncertainty (sqrt(U1^2 + U2^2), GUM-style
-comparison of two results). Reads stored fits only: the time does
+``spool_history`` lists every stored fit of one spool in time order and flags a value that
+differs from the previous comparable value of the same quantity (fits that claim no U skipped)
+by more than their combined expanded uncertainty (sqrt(U1^2 + U2^2), GUM-style comparison of
+two results). Reads stored fits only: the time does
 not grow with the number of stored lines.
 """
 
@@ -159,20 +160,37 @@ def compare_spools(store: Store, labels: list[str]) -> dict[str, Any]:
 
 
 def spool_history(store: Store, label: str) -> dict[str, Any]:
-    """Every stored fit of one spool, oldest first, with changes beyond combined U95 flagged."""
+    """Every stored fit of one spool, oldest first: each comparable value (one that claims a U)
+    checked against the previous comparable value of the same quantity, skipping fits between
+    that claim no U, so a fit without U cannot hide a change; ``compared_with`` names the fit
+    each value was checked against."""
     from labrun.spoolfits import fit_history
 
     fits = fit_history(store, label)
-    history, previous = [], None
+    history: list[dict[str, Any]] = []
+    last: dict[str, tuple[int | None, dict[str, Any]]] = {}  # quantity -> (fit id, value)
     for fit in fits:
         values = headline_values(fit, fit.spool_snapshot or {})
         entry = {"fit_id": fit.fit_id, "fitted_at": _iso(fit.created_at),
                  "runs": fit.run_ids, **{k: values[k] for k in HISTORY_PARAMS if k in values}}
-        entry["changed"] = _changes(previous, values) if previous is not None else []
+        flagged, against = [], {}
+        for k in HISTORY_PARAMS:
+            if k not in values or not comparable(values[k]):
+                continue
+            if k in last:
+                against[k] = last[k][0]
+                if changed(last[k][1], values[k]):
+                    flagged.append(k)
+            last[k] = (fit.fit_id, values[k])
+        entry["changed"], entry["compared_with"] = flagged, against
         history.append(entry)
-        previous = values
     return {"spool": label, "history": history,
             "changed": any(h["changed"] for h in history)}
+
+
+def comparable(entry: dict[str, Any]) -> bool:
+    """Whether a value claims an expanded uncertainty (a fit without U is never compared)."""
+    return entry.get("comparable") is not False and entry.get("u95") is not None
 
 
 def changed(a: dict[str, Any], b: dict[str, Any]) -> bool:
@@ -184,9 +202,3 @@ def changed(a: dict[str, Any], b: dict[str, Any]) -> bool:
     if a.get("sign_determined") is False or b.get("sign_determined") is False:
         va, vb = abs(va), abs(vb)
     return abs(vb - va) > math.hypot(a["u95"], b["u95"])
-
-
-def _changes(before: dict[str, Any], after: dict[str, Any]) -> list[str]:
-    """Names of the history parameters that changed beyond their combined U95."""
-    return [k for k in HISTORY_PARAMS if k in before and k in after
-            and changed(before[k], after[k])]

@@ -131,6 +131,12 @@ def plot_comparison(path: str | Path, comparison: dict) -> Path:
     return _save(fig, path)
 
 
+def changed_marks(history: dict, key: str) -> list[int]:
+    """Positions (fit index, oldest first) of the fits whose ``key`` value ``spool_history``
+    flagged as changed: where plot_history draws its red rings."""
+    return [i for i, h in enumerate(history["history"]) if key in h and key in h["changed"]]
+
+
 def plot_history(path: str | Path, history: dict) -> Path:
     """One spool over time: each headline value per fit with U95, changed fits marked red."""
     keys = (("gamma_per_w_per_km", "gamma (1/(W km))"),
@@ -149,7 +155,7 @@ def plot_history(path: str | Path, history: dict) -> Path:
         if grey:  # no U (dispersion unknown): not comparable, no error bar, drawn apart
             ax.plot(grey, [fits[i][key]["value"] for i in grey], "s", ms=9, color="lightgrey",
                     mec="grey", label="no U: not comparable")
-        bad = [i for i in xs if key in fits[i]["changed"]]
+        bad = changed_marks(history, key)
         if bad:
             ax.plot(bad, [fits[i][key]["value"] for i in bad], "o", ms=12, mfc="none",
                     color="red", label="changed beyond combined U95")

@@ -264,13 +264,22 @@ def spool_report(store: Store, label: str) -> str:
         with tempfile.TemporaryDirectory() as tmp:
             sections.append("<h2>Fits over time</h2>" + _img(
                 plot_history(Path(tmp) / "history.png", history), "history"))
-        flagged = [h for h in history["history"] if h["changed"]]
-        sections.append("<p>" + (", ".join(f"fit {h['fit_id']}: {', '.join(h['changed'])} "
-                                           "changed beyond the combined U95" for h in flagged)
-                                 or "no change beyond the combined U95 between fits") + "</p>")
+        sections.append(f"<p>{_e(_changes_text(history))}</p>")
         sections.append(f"<h2>Latest fit ({fits[-1].fit_id})</h2>" + _table(
             ["parameter", "value", "u", "U95", "unit", "points", "model"], _fit_rows(fits[-1])))
     return _page(f"labrun spool {label}", sections)
+
+
+def _changes_text(history: dict[str, Any]) -> str:
+    """The spool page's sentence on changes between fits, as ``labrun compare LABEL`` flags
+    them: each value against the previous fit that claims a U for it (fits without U skipped)."""
+    said = [f"fit {h['fit_id']}: {k} changed beyond the two fits' expanded uncertainties "
+            f"combined (vs fit {h.get('compared_with', {}).get(k)})"
+            for h in history["history"] for k in h["changed"]]
+    if said:
+        return "; ".join(said)
+    return ("no change beyond the two fits' expanded uncertainties combined between fits that "
+            "claim a U (fits without U are not compared)")
 
 
 def write_report(store: Store, out: str | Path, *, run_id: int | None = None,

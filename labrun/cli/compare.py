@@ -21,10 +21,11 @@ def register(subparsers: Any) -> None:
         description="Compare spools by their latest stored fits: gamma, D, dispersion slope, "
                     "loss, effective length and the first-sideband efficiency at common "
                     "conditions, each with its uncertainty and runs. With one label: that "
-                    "spool's fits over time, flagging any change larger than the combined "
-                    "expanded uncertainty. D and its slope are signed where the fit determined "
-                    "the sign of D, else shown as |D| and d|D|/dlambda, as labrun fit shows "
-                    "them.")
+                    "spool's fits over time, flagging a value that differs from the previous "
+                    "fit claiming a U for it (fits without U skipped) by more than the two "
+                    "expanded uncertainties combined. D and its slope are signed where the "
+                    "fit determined the sign of D, else shown as |D| and d|D|/dlambda, as "
+                    "labrun fit shows them.")
     p.add_argument("labels", metavar="LABEL", nargs="+", help="spool labels")
     p.add_argument("--db", default=DEFAULT_DB, metavar="URL_OR_PATH",
                    help=f"SQLAlchemy URL or SQLite file path (default: {DEFAULT_DB} here)")
@@ -37,6 +38,9 @@ def register(subparsers: Any) -> None:
 KEY_D = "dispersion_ps_per_nm_km"
 UNSIGNED = {KEY_D: "|D| ", "dispersion_slope_ps_per_nm2_km": "d|D|/dlambda "}
 SIGN_NOTE = "|D|, d|D|/dlambda: the fit did not determine the sign of D"
+CHANGED_LEGEND = ("CHANGED: differs from the previous fit that claims a U for it (fits without "
+                  "U skipped) by more than the two fits' expanded uncertainties combined, "
+                  "sqrt(U1^2 + U2^2)")
 
 
 def _value(entry: dict[str, Any] | None, key: str = "") -> str:
@@ -101,13 +105,14 @@ def _history(rep: dict[str, Any]) -> str:
 
     out = [f"spool {rep['spool']}: {len(rep['history'])} stored fits"]
     for h in rep["history"]:
-        flag = ("  CHANGED: " + ", ".join(h["changed"])) if h["changed"] else ""
+        against = h.get("compared_with", {})
+        flag = ("  CHANGED: " + ", ".join(f"{k} (vs fit {against.get(k)})"
+                                          for k in h["changed"])) if h["changed"] else ""
         runs = ",".join(map(str, h["runs"]))
         out.append(f"  fit {h['fit_id']:>4}  {h['fitted_at'][:19]}  runs {runs:<10} "
                    f"gamma {_value(h.get('gamma_per_w_per_km'))}"
                    f"  {_d_text(h.get(KEY_D))}{flag}")
-    out.append(f"({U_LEGEND}; {SIGN_NOTE}; CHANGED: differs from the previous fit by more "
-               "than the two fits' expanded uncertainties combined, sqrt(U1^2 + U2^2))")
+    out.append(f"({U_LEGEND}; {SIGN_NOTE}; {CHANGED_LEGEND})")
     if any(v.get("comparable") is False for h in rep["history"] for v in h.values()
            if isinstance(v, dict)):
         out.append(_no_u_note())
