@@ -133,11 +133,45 @@ def _efficiency(gamma: Any, disp: Any, slope: Any, length: float, loss: float,
                   u95_kind=gamma.u95_kind(), no_u_reason=gamma.extra.get("no_u_reason"))
 
 
+HEADLINE_RULE = ("the newest fit whose gamma claims an expanded uncertainty and "
+                 "whose D was measured (a spacing run in the fit), else the newest whose gamma "
+                 "claims one (D given on the spool record), else the newest fit")
+
+
+def _rank(record: Any) -> int:
+    """2: gamma with a U and D measured by the fit; 1: gamma with a U; 0: anything else."""
+    gamma = _param(record, GAMMA)
+    if gamma is None or gamma[1].u95 is None or gamma[1].extra.get("no_u_reason"):
+        return 0
+    from labrun.spoolfits import GIVEN_SOURCE
+
+    disp = _param(record, ("dispersion",))
+    given = gamma[1].extra.get("dispersion_source") == GIVEN_SOURCE
+    return 2 if disp is not None and not given else 1
+
+
+def _why_not_shown(record: Any) -> str:
+    """'without U' or 'with a given D': why a newer fit is not the headline."""
+    return "without U" if _rank(record) == 0 else "with a given D (no spacing run)"
+
+
+def headline_fit(fits: list[Any]) -> tuple[Any, list[dict[str, Any]]]:
+    """The fit a spool's headline comes from (HEADLINE_RULE) among its fits (oldest first), and
+    the newer fits it outranks, each with why it is not shown; (None, []) without fits."""
+    if not fits:
+        return None, []
+    best = max(fits, key=lambda f: (_rank(f), f.fit_id or 0))
+    newer = [{"fit_id": f.fit_id, "why": _why_not_shown(f)} for f in fits
+             if (f.fit_id or 0) > (best.fit_id or 0)]
+    return best, newer
+
+
 def compare_spools(store: Store, labels: list[str]) -> dict[str, Any]:
-    """The spools side by side from their latest stored fits (InputError for unknown labels)."""
+    """The spools side by side, each from its headline fit (``headline_fit``: the newest
+    comparable one; newer fits not shown are named), InputError for unknown labels."""
     from sqlalchemy import select
 
-    from labrun.spoolfits import latest_fits
+    from labrun.spoolfits import fits_by_spool
     from labrun.store.models import Spool
 
     with store.session() as s:
@@ -145,18 +179,19 @@ def compare_spools(store: Store, labels: list[str]) -> dict[str, Any]:
     unknown = [lb for lb in labels if lb not in rows]
     if unknown:
         raise InputError(f"no spool {unknown[0]!r} in this database", field="LABEL")
-    fits = latest_fits(store)
+    fits = fits_by_spool(store)
     out = []
     for label in labels:
-        fit = fits.get(label)
+        fit, newer = headline_fit(fits.get(label, []))
         entry: dict[str, Any] = {"spool": label, "fit_id": fit.fit_id if fit else None,
-                                 "fitted_at": _iso(fit.created_at) if fit else None}
+                                 "fitted_at": _iso(fit.created_at) if fit else None,
+                                 "newer_fits_not_shown": newer}
         if fit is None:
             entry["note"] = f"no stored fit: labrun fit RUN_ID ... (runs of {label})"
         else:
             entry.update(headline_values(fit, fit.spool_snapshot or rows[label]))
         out.append(entry)
-    return {"spools": out, "common_conditions": COMMON}
+    return {"spools": out, "common_conditions": COMMON, "headline_rule": HEADLINE_RULE}
 
 
 def spool_history(store: Store, label: str) -> dict[str, Any]:

@@ -591,3 +591,16 @@ def fits_using_run(store: Store, run_id: int) -> list[FitRecord]:
                          .join(Run, Run.spool_id == Spool.id).where(Run.id == run_id)
                          .options(selectinload(Fit.parameters)).order_by(Fit.id)).all()
         return [_record(fit, label) for fit, label in rows if run_id in (fit.run_ids or [])]
+
+
+def fits_by_spool(store: Store) -> dict[str, list[FitRecord]]:
+    """Every stored fit of every spool that has one, oldest first, by spool label."""
+    from sqlalchemy.orm import selectinload
+
+    out: dict[str, list[FitRecord]] = {}
+    with store.session() as s:
+        rows = s.execute(select(Fit, Spool.label).join(Spool, Spool.id == Fit.spool_id)
+                         .options(selectinload(Fit.parameters)).order_by(Fit.id)).all()
+        for fit, label in rows:
+            out.setdefault(label, []).append(_record(fit, label))
+    return out

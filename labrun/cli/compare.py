@@ -18,14 +18,15 @@ def register(subparsers: Any) -> None:
     """Add the compare command."""
     p = subparsers.add_parser(
         "compare", help="spools side by side (or one spool's history) from stored fits",
-        description="Compare spools by their latest stored fits: gamma, D, dispersion slope, "
-                    "loss, effective length and the first-sideband efficiency at common "
-                    "conditions, each with its uncertainty and runs. With one label: that "
-                    "spool's fits over time, flagging a value that differs from the previous "
-                    "fit claiming a U for it (fits without U skipped) by more than the two "
-                    "expanded uncertainties combined. D and its slope are signed where the "
-                    "fit determined the sign of D, else shown as |D| and d|D|/dlambda, as "
-                    "labrun fit shows them.")
+        description="Compare spools by their headline fits (as labrun spools picks them: the "
+                    "newest fit whose gamma claims a U, one with a measured D first): gamma, D, "
+                    "dispersion slope, loss, effective length and the first-sideband efficiency "
+                    "at common conditions, each with its uncertainty and runs. With one label: "
+                    "that spool's fits over time, flagging a value that differs from the previous"
+                    " fit claiming a U for it (fits without U skipped) by more than the two "
+                    "expanded uncertainties combined. D and its slope are signed where the fit "
+                    "determined the sign of D, else shown as |D| and d|D|/dlambda, as labrun fit "
+                    "shows them.")
     p.add_argument("labels", metavar="LABEL", nargs="+", help="spool labels")
     p.add_argument("--db", default=DEFAULT_DB, metavar="URL_OR_PATH",
                    help=f"SQLAlchemy URL or SQLite file path (default: {DEFAULT_DB} here)")
@@ -97,6 +98,13 @@ def _side_by_side(rep: dict[str, Any]) -> str:
     if any(v.get("comparable") is False for sp in spools for v in sp.values()
            if isinstance(v, dict)):
         out.append(_no_u_note())
+    for sp in spools:
+        newer = sp.get("newer_fits_not_shown") or []
+        if newer:
+            said = ", ".join(f"fit {n['fit_id']} {n['why']}" for n in newer)
+            out.append(f"{sp['spool']}: newer {said} not shown; labrun compare {sp['spool']}")
+    if any(sp.get("newer_fits_not_shown") for sp in spools):
+        out.append(f"(fit: the headline fit, {rep['headline_rule']})")
     return "\n".join(out)
 
 

@@ -22,9 +22,14 @@ def _db_arg(p: argparse.ArgumentParser) -> None:
 
 def register(subparsers: Any) -> None:
     """Add the spools and spool commands."""
-    p = subparsers.add_parser("spools", help="list spools with their latest fitted values",
-                              description="Every spool in the store: length, loss, fibre type, "
-                                          "runs, and the values of its latest stored fit.")
+    p = subparsers.add_parser(
+        "spools", help="list spools with their headline fitted values",
+        description="Every spool in the store: length, loss, fibre type, runs, and the values "
+                    "of its headline fit: the newest fit whose gamma claims an expanded "
+                    "uncertainty and whose D was measured (a spacing run in the fit), else the "
+                    "newest whose gamma claims one (D given on the spool record), else the "
+                    "newest fit. Newer fits not shown are named, with why (without U, or with a "
+                    "given D); labrun compare LABEL lists them all.")
     _db_arg(p)
     p.add_argument("--json", action="store_true", help="print JSON on stdout")
     p.set_defaults(func=cmd_spools)
@@ -108,31 +113,50 @@ def headline(record: Any) -> dict[str, Any]:
 
 
 def spool_rows(store: Any) -> list[dict[str, Any]]:
-    """One dict per spool: its record, run count, latest fit id and headline values."""
+    """One dict per spool: its record, run count, newest fit id, and the headline values from
+    the fit ``labrun.compare.headline_fit`` picks (HEADLINE_RULE), with the newer fits it
+    outranks (``newer_fits_not_shown``)."""
     from sqlalchemy import func, select
 
-    from labrun.spoolfits import DISPERSION_KEY, latest_fits, stated_spool_u
+    from labrun.compare import HEADLINE_RULE, headline_fit
+    from labrun.spoolfits import DISPERSION_KEY, fits_by_spool, stated_spool_u
     from labrun.store.models import Run, Spool
 
-    fits = latest_fits(store)
+    fits = fits_by_spool(store)
     with store.session() as s:
         counts = dict(s.execute(select(Run.spool_id, func.count(Run.id))
                                 .group_by(Run.spool_id)).all())
         spools = s.scalars(select(Spool).order_by(Spool.label)).all()
     rows = []
     for sp in spools:
-        fit = fits.get(sp.label)
+        history = fits.get(sp.label, [])
+        latest = history[-1] if history else None
+        shown, newer = headline_fit(history)
         rows.append({"spool": sp.label, "length_km": sp.length_km,
                      "loss_db_per_km": sp.loss_db_per_km, "fibre_type": sp.fibre_type,
                      "note": sp.note, "runs": int(counts.get(sp.id, 0)),
                      "dispersion_record": (sp.params or {}).get(DISPERSION_KEY),
                      "stated_u": stated_spool_u(sp),
-                     "latest_fit": fit.fit_id if fit else None,
-                     "fitted_at": fit.created_at.isoformat() if fit and fit.created_at else None,
-                     **headline(fit)})
+                     "latest_fit": latest.fit_id if latest else None,
+                     "fitted_at": latest.created_at.isoformat() if latest and latest.created_at
+                     else None,
+                     "headline_fit": shown.fit_id if shown else None,
+                     "headline_fitted_at": shown.created_at.isoformat()
+                     if shown and shown.created_at else None,
+                     "headline_rule": HEADLINE_RULE,
+                     "newer_fits_not_shown": newer,
+                     **headline(shown)})
     return rows
 
 
+def newer_note(row: dict[str, Any]) -> str | None:
+    """'newer fit 3 without U not shown; labrun compare LABEL', or None."""
+    newer = row.get("newer_fits_not_shown") or []
+    if not newer:
+        return None
+    said = ", ".join(f"fit {n['fit_id']} {n['why']}" for n in newer)
+    return (f"{row['spool']}: newer {said} not shown (headline fit {row['headline_fit']}); "
+            f"labrun compare {row['spool']}")
 
 
 def _short(p: dict[str, Any] | None) -> str:
@@ -180,11 +204,17 @@ def cmd_spools(args: argparse.Namespace) -> int:
           f"{'gamma 1/(W km)':<22} {'D ps/(nm km)':<26} type")
     for r in rows:
         print(f"{r['spool']:<12} {_opt(r['length_km']):>7} {_opt(r['loss_db_per_km']):>6} "
-              f"{r['runs']:>4} {r['latest_fit'] or '-':>4}  "
+              f"{r['runs']:>4} {r['headline_fit'] or '-':>4}  "
               f"{_short(r.get('gamma_per_w_per_km')):<22} "
               f"{_d_cell(r):<26} {r['fibre_type'] or ''}")
+    from labrun.compare import HEADLINE_RULE
     from labrun.spoolfits import U_LEGEND
 
+    for r in rows:
+        note = newer_note(r)
+        if note:
+            print(note)
+    print(f"(fit: the headline fit, {HEADLINE_RULE})")
     print(f"{U_LEGEND}; u stat: statistical standard error only; |D|: the fit did not "
           "determine the sign of D")
     if any(r.get("gamma_per_w_per_km", {}).get("comparable") is False for r in rows):
