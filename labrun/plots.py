@@ -99,13 +99,26 @@ def plot_power_slopes(path: str | Path, points, results: dict, *, max_order: int
     return _save(fig, path)
 
 
+def u_kinds(entries: list[dict]) -> str:
+    """'U k=2', 'U95 t' or 'U k=2 / U95 t': the kinds of expanded uncertainty among the entries
+    that claim one (as labrun fit labels them; spoolfits.u_label), '-' for none."""
+    from labrun.spoolfits import u_label
+
+    kinds = sorted({u_label(e.get("u95_kind")) for e in entries
+                    if e and e.get("u95") is not None and e.get("comparable") is not False})
+    return " / ".join(kinds) or "-"
+
+
 _COMPARED = (("gamma_per_w_per_km", "gamma (1/(W km))"),
              ("dispersion_ps_per_nm_km", "D or |D| (ps/(nm km))"),
              ("first_sideband_efficiency_db", "1st sideband / pump (dB)"))
 
 
 def plot_comparison(path: str | Path, comparison: dict) -> Path:
-    """Spools side by side: one panel per compared quantity, value with its U95 as error bar."""
+    """Spools side by side: one panel per compared quantity, value with its expanded
+    uncertainty as error bar, labelled by kind (U k=2, U95 t)."""
+    from labrun.spoolfits import u_label
+
     spools = comparison["spools"]
     fig, axes = plt.subplots(1, len(_COMPARED), figsize=(4 * len(_COMPARED), 4), dpi=110)
     for ax, (key, title) in zip(axes, _COMPARED, strict=True):
@@ -114,7 +127,9 @@ def plot_comparison(path: str | Path, comparison: dict) -> Path:
             entry = sp.get(key)
             if entry and entry.get("value") is not None:
                 no_u = entry.get("comparable") is False  # no U: drawn grey, labelled
-                labels.append(sp["spool"] + ("\n(no U, not comparable)" if no_u else ""))
+                labels.append(sp["spool"] + ("\n(no U, not comparable)" if no_u else
+                                             f"\n({u_label(entry.get('u95_kind'))})"
+                                             if entry.get("u95") is not None else ""))
                 values.append(entry["value"])
                 errors.append(entry.get("u95") or 0.0)
                 colours.append("lightgrey" if no_u else "tab:blue")
@@ -126,7 +141,8 @@ def plot_comparison(path: str | Path, comparison: dict) -> Path:
         ax.set_xticks(range(len(values)), labels)
         ax.set_title(title)
         ax.grid(axis="y", alpha=0.3)
-    fig.suptitle("spools compared (latest stored fits; error bars: U95)")
+    kinds = u_kinds([sp.get(k) for sp in spools for k, _ in _COMPARED])
+    fig.suptitle(f"spools compared (headline fits; error bars: {kinds})")
     fig.tight_layout()
     return _save(fig, path)
 
@@ -138,7 +154,8 @@ def changed_marks(history: dict, key: str) -> list[int]:
 
 
 def plot_history(path: str | Path, history: dict) -> Path:
-    """One spool over time: each headline value per fit with U95, changed fits marked red."""
+    """One spool over time: each headline value per fit with its expanded uncertainty
+    (labelled by kind), changed fits marked red."""
     keys = (("gamma_per_w_per_km", "gamma (1/(W km))"),
             ("dispersion_ps_per_nm_km", "D or |D| (ps/(nm km))"))
     fig, axes = plt.subplots(len(keys), 1, figsize=(8, 6), dpi=110, sharex=True)
@@ -151,18 +168,18 @@ def plot_history(path: str | Path, history: dict) -> Path:
         kept = [i for i in xs if i not in grey]
         ax.errorbar(kept, [fits[i][key]["value"] for i in kept],
                     yerr=[fits[i][key].get("u95") or 0.0 for i in kept], fmt="o", capsize=5,
-                    color="tab:blue")
+                    color="tab:blue", label=f"error bars: {u_kinds([fits[i][key] for i in kept])}")
         if grey:  # no U (dispersion unknown): not comparable, no error bar, drawn apart
             ax.plot(grey, [fits[i][key]["value"] for i in grey], "s", ms=9, color="lightgrey",
                     mec="grey", label="no U: not comparable")
         bad = changed_marks(history, key)
         if bad:
             ax.plot(bad, [fits[i][key]["value"] for i in bad], "o", ms=12, mfc="none",
-                    color="red", label="changed beyond combined U95")
+                    color="red", label="changed beyond the two fits' U combined")
         ax.set_ylabel(title)
         ax.grid(alpha=0.3)
-        if bad or grey:
-            ax.legend(loc="best")
+        if xs:
+            ax.legend(loc="best", fontsize=7)
     axes[-1].set_xticks(range(len(fits)),
                         [f"fit {h['fit_id']}\n{h['fitted_at'][:10]}" for h in fits])
     fig.suptitle(f"spool {history['spool']}: stored fits over time")

@@ -58,13 +58,25 @@ def _cell(text: str, numeric: bool = False) -> str:
 
 def _page(title: str, sections: list[str]) -> str:
     from labrun import __version__
+    from labrun.spoolfits import U_LEGEND
 
     return (f"<!DOCTYPE html><html lang=\"en\"><head><meta charset=\"utf-8\">"
             f"<title>{_e(title)}</title><style>{CSS}</style></head><body>"
             f"<h1>{_e(title)}</h1>{''.join(sections)}"
             f"<p class=\"note\">Written by labrun {_e(__version__)}. Plots and values come from "
-            f"the run store; uncertainties: standard (u) and expanded at 95 % (U95).</p>"
+            f"the run store; uncertainties: u standard; U expanded, labelled by kind as "
+            f"labrun fit labels it ({_e(U_LEGEND)}).</p>"
             f"</body></html>")
+
+
+def _u_text(p: Any) -> str:
+    """'U k=2 0.09' or 'U95 t 0.002': the expanded uncertainty labelled as labrun fit labels it."""
+    from labrun.spoolfits import u_label
+
+    return "-" if p.u95 is None else f"{u_label(p.u95_kind())} {_num(p.u95, '.2g')}"
+
+
+FIT_HEAD = ["parameter", "value", "u", "U (kind)", "unit", "points", "model"]
 
 
 def _fit_rows(record: Any) -> list[list[str]]:
@@ -73,7 +85,7 @@ def _fit_rows(record: Any) -> list[list[str]]:
         why = next((w for w in p.extra.get("warnings", []) if w.startswith("refused")), "")
         model = p.model.split(":")[0] + (f" ({why})" if why else "")
         no_u = p.extra.get("no_u_reason")
-        u95 = (f"no U ({_e(no_u)}; not comparable)" if no_u else _num(p.u95, ".2g"))
+        u95 = (f"no U ({_e(no_u)}; not comparable)" if no_u else _u_text(p))
         rows.append([_cell(_e(name)), _cell(_num(p.value), True),
                      _cell(_num(p.stderr, ".2g"), True), _cell(u95, not no_u),
                      _cell(_e(p.unit)), _cell(str(p.n_points), True), _cell(_e(model))])
@@ -241,7 +253,7 @@ def run_report(store: Store, run_id: int) -> str:
                         "<td>fault</td>", '<td class="fault">fault</td>'))
     if fit is not None:
         sections.append(f"<h2>Fits</h2><p class=\"note\">{_e(fit_note)}</p>" + _table(
-            ["parameter", "value", "u", "U95", "unit", "points", "model"], _fit_rows(fit)))
+            FIT_HEAD, _fit_rows(fit)))
     return _page(f"labrun run {run_id}: {run.plan_name}", sections)
 
 
@@ -266,7 +278,7 @@ def spool_report(store: Store, label: str) -> str:
                 plot_history(Path(tmp) / "history.png", history), "history"))
         sections.append(f"<p>{_e(_changes_text(history))}</p>")
         sections.append(f"<h2>Latest fit ({fits[-1].fit_id})</h2>" + _table(
-            ["parameter", "value", "u", "U95", "unit", "points", "model"], _fit_rows(fits[-1])))
+            FIT_HEAD, _fit_rows(fits[-1])))
     return _page(f"labrun spool {label}", sections)
 
 
