@@ -8,6 +8,7 @@ from pathlib import Path
 import pytest
 
 from labrun.cli import main
+from labrun.spoolfits import D_SOURCE
 
 
 def test_demo_runs_stores_fits_and_plots(tmp_path: Path, capsys: pytest.CaptureFixture) -> None:
@@ -28,6 +29,20 @@ def test_demo_runs_stores_fits_and_plots(tmp_path: Path, capsys: pytest.CaptureF
     assert fits["slope_high_2"]["value"] == pytest.approx(5.0, abs=0.1)
     for name in ("fits.json", "last-trace.png", "sideband-vs-power.png"):
         assert (out / name).stat().st_size > 0
+    # The demo fits as a lab would with labrun: a data-sheet-like D put on the spool record
+    # (invented: the scenario's D, -0.3 ps/(nm km) in default-scenario.toml, with u 0.1), then
+    # the path of labrun fit (exact model, stored, the D a row of gamma's GUM budget).
+    rec = report["dispersion_record"]
+    assert rec["d_ps_per_nm_km"] == -0.3 and rec["u_ps_per_nm_km"] == 0.1
+    assert "invented for the demo" in rec["note"]
+    assert report["fit"]["fit_id"] is not None and report["fit"]["runs"] == [1]
+    gamma = fits["gamma"]
+    assert gamma["dispersion_used"]["d_ps_per_nm_km"] == -0.3
+    assert any(row["source"] == D_SOURCE for row in gamma["budget"])
+    assert abs(gamma["value"] - 11.0) <= gamma["u95"]  # truth inside U (k = 2)
+    assert main(["spools", "--db", str(db), "--json"]) == 0
+    (row,) = json.loads(capsys.readouterr().out)["spools"]
+    assert row["headline_fit"] == report["fit"]["fit_id"]  # stored like labrun fit's
 
 
 def test_demo_unwritable_output_is_one_line(tmp_path: Path, capsys: pytest.CaptureFixture) -> None:
@@ -68,24 +83,26 @@ def test_an_interrupted_demo_ends_without_fits_or_report(tmp_path: Path) -> None
     assert not (out / "report.html").exists() and not (out / "fits.json").exists()
 
 
-def test_demo_labels_each_expanded_uncertainty_by_what_it_is(capsys):
-    """A fit with a GUM budget prints 'U k=2', one without (a slope) 'U95 t', as labrun fit
-    does; the demo printed 'U(k=2)' for both."""
+def test_demo_prints_the_fit_as_labrun_fit_does(capsys):
+    """The demo's fit block is labrun fit's own text (fit_text): the same labels (U k=2, U95 t),
+    budget table and D line, not a format of its own."""
     from types import SimpleNamespace
 
     from labrun.cli.demo import _print_report
+    from labrun.cli.fit import fit_text
+    from labrun.spoolfits import FitRecord, ParameterRecord
 
     row = {"source": "statistical (fit)", "u_input": None, "unit": "", "contribution": 0.05}
-    fits = {"gamma_bessel": {"value": 11.0, "stderr": 0.05, "u95": 0.2, "unit": "1/(W km)",
-                             "n_points": 21, "model": "bessel", "u_combined": 0.1,
-                             "budget": [row], "warnings": []},
-            "slope_high_1": {"value": 3.0, "stderr": 0.001, "u95": 0.002, "unit": "dB/dB",
-                             "n_points": 21, "model": "linear in dB", "budget": [],
-                             "warnings": []}}
+    params = {"gamma": ParameterRecord(11.0, 0.05, 0.2, "1/(W km)", "split-step", 21, 0.0,
+                                       {"u_combined": 0.1, "budget": [row]}),
+              "slope_high_1": ParameterRecord(3.0, 0.001, 0.002, "dB/dB", "linear in dB", 21,
+                                              0.0, {})}
+    record = FitRecord(spool="HNLF-A17", run_ids=[1], parameters=params, fit_id=4)
     outcome = SimpleNamespace(run_id=1, status="completed", points_done=21, points_total=21)
     _print_report(outcome, {"spool": "HNLF-A17", "model_gamma_per_w_per_km": 11.0,
-                            "fits": fits, "files": []}, "demo.db")
-    lines = capsys.readouterr().out.splitlines()
-    (gamma,) = [ln for ln in lines if ln.strip().startswith("gamma_bessel")]
-    (slope,) = [ln for ln in lines if ln.strip().startswith("slope_high_1")]
-    assert ", U k=2 0.2" in gamma and ", U95 t 0.002" in slope, (gamma, slope)
+                            "record": record, "files": [],
+                            "dispersion_record": {"note": "spool HNLF-A17: recorded D"}},
+                  "demo.db")
+    text = capsys.readouterr().out
+    assert fit_text(record) in text
+    assert "U k=2 0.2" in text and "U95 t 0.002" in text

@@ -1,8 +1,9 @@
 """``labrun demo``: the whole job on the virtual lab, end to end, in about a minute or less.
 
 Starts the simulated bench in-process (instruments on loopback TCP, reached through pyvisa like
-hardware), runs a shipped power sweep unattended into a SQLite file, fits the spool and draws
-the plots a lab engineer would look at first. No light is emitted: every instrument is simulated.
+hardware), runs a shipped power sweep unattended into a SQLite file, records a data-sheet-like D
+on the spool (invented, said so), fits the run as ``labrun fit`` does and draws the plots a lab
+engineer would look at first. No light is emitted: every instrument is simulated.
 """
 
 from __future__ import annotations
@@ -11,13 +12,10 @@ import argparse
 import json
 import sys
 from pathlib import Path
-from typing import TYPE_CHECKING, Any
+from typing import Any
 
 from labrun.errors import InputError
 from labrun.resources import find_file
-
-if TYPE_CHECKING:
-    from labrun.bench import Bench
 
 DEMO_DB = "labrun-demo.db"
 DEMO_OUT = "labrun-demo"
@@ -28,7 +26,10 @@ def register(subparsers: Any) -> None:
     p = subparsers.add_parser(
         "demo", help="run a power sweep on the virtual lab, store it, fit it, plot it",
         description="Rehearse the main job on simulated instruments: start the virtual lab, run "
-                    "a sweep plan unattended into a SQLite file, fit the spool, write plots. "
+                    "a sweep plan unattended into a SQLite file, record a data-sheet-like D on "
+                    "the spool (invented: the virtual lab's D with a stated u of 0.1 ps/(nm km); "
+                    "a D already on record is kept), fit the run as labrun fit does, write "
+                    "plots. "
                     "No real instrument is touched and no light is emitted.")
     p.add_argument("--plan", default="power-sweep.toml", metavar="PLAN",
                    help="sweep plan (default: the shipped power-sweep.toml)")
@@ -96,13 +97,14 @@ def cmd_demo(args: argparse.Namespace) -> int:
                       f"{outcome.points_total} points stored in {args.db} (no fits and no "
                       "report for an interrupted demo)")
             return outcome.exit_code
-        report = _fit_and_plot(store, outcome.run_id, scenario, bench, out)
+        report = _fit_and_plot(store, outcome.run_id, scenario, out)
         page = _write_report(store, outcome.run_id, out)
         report["report"] = str(page)
     finally:
         store.close()
     if args.json:
-        print(json.dumps({"run": outcome.to_dict(), **report}, indent=2))
+        shown = {k: v for k, v in report.items() if k != "record"}
+        print(json.dumps({"run": outcome.to_dict(), **shown}, indent=2))
     else:
         _print_report(outcome, report, args.db)
         print(f"report: {page}")
@@ -116,14 +118,43 @@ def _write_report(store: Any, run_id: int, out: Path) -> Path:
     return write_report(store, out / "report.html", run_id=run_id).resolve()
 
 
-def _fit_and_plot(store: Any, run_id: int, scenario: Any, bench: Bench,
-                  out: Path) -> dict[str, Any]:
-    """Fit the stored points, write plots and fits.json; returns what was written."""
-    from labrun.fits import PolFrame, fit_run
+DEMO_D_U = 0.1  # ps/(nm km): the stated standard uncertainty of the demo spool's D, as a data
+# sheet of a highly nonlinear fibre might give it (invented for the demo)
+
+
+def _record_demo_dispersion(store: Any, scenario: Any) -> tuple[Any, str]:
+    """Put a data-sheet-like D on the demo spool's record, as a lab would with ``labrun spool
+    set --dispersion`` (invented: the virtual lab's D with a stated u of DEMO_D_U, slope taken as
+    exact); a D already on record is kept. Returns the D used and a line saying which."""
+    from sqlalchemy import select
+
+    from labrun.spoolfits import DISPERSION_KEY, GivenDispersion
+    from labrun.store.models import Spool
+
+    spool = scenario.spool()
+    invented = GivenDispersion(spool.dispersion_ps_per_nm_km, DEMO_D_U,
+                               spool.dispersion_slope_ps_per_nm2_km, 0.0,
+                               spool.reference_wavelength_nm)
+    # fills only what the row does not say yet (a plan without a [spool] table: the lab's own)
+    store.spool_id(spool.name, length_km=spool.length_km, loss_db_per_km=spool.loss_db_per_km,
+                   params={DISPERSION_KEY: invented.to_params()})
+    with store.session() as s:
+        given = GivenDispersion.of(s.scalar(select(Spool).where(Spool.label == spool.name)))
+    if given == invented:
+        return given, (f"spool {spool.name}: recorded {given.text()} on the spool record, as a "
+                       "data sheet would give it (invented for the demo: the virtual lab's D "
+                       f"with a stated standard uncertainty of {DEMO_D_U:g}; a lab does this "
+                       f"with labrun spool set {spool.name} --dispersion D --dispersion-u U)")
+    return given, f"spool {spool.name}: the spool record's {given.text()} is kept and used"
+
+
+def _fit_and_plot(store: Any, run_id: int, scenario: Any, out: Path) -> dict[str, Any]:
+    """Fit the run as ``labrun fit`` does (labrun.spoolfits, with the D on the spool record),
+    store the fit, write plots and fits.json; returns what was written."""
     from labrun.plots import plot_power_slopes, plot_trace
     from labrun.queries import point_trace, run_points
     from labrun.reduce import reduce_trace
-    from labrun.uncertainty import Uncertainties
+    from labrun.spoolfits import fit_runs
 
     spool = scenario.spool()
     table = run_points(store, run_id, include_reference=False)
@@ -131,12 +162,13 @@ def _fit_and_plot(store: Any, run_id: int, scenario: Any, bench: Bench,
                               spool.gamma_per_w_per_km, "fits": {}, "files": []}
     if table.empty:
         return report
-    fits = fit_run(table, spool.length_km, spool.loss_db_per_km,
-                   dispersion_ps_per_nm_km=spool.dispersion_ps_per_nm_km,
-                   polarisation=PolFrame.from_bench(bench.polarisation),
-                   uncertainties=Uncertainties.from_calibration(bench.calibration))
-    report["fits"] = {name: fit.to_dict() for name, fit in fits.items()}
-    (out / "fits.json").write_text(json.dumps(report["fits"], indent=2))
+    given, said = _record_demo_dispersion(store, scenario)
+    report["dispersion_record"] = {**given.to_params(), "note": said}
+    record = fit_runs(store, [run_id])
+    report["fit"] = record.to_dict()
+    report["fits"] = report["fit"]["parameters"]
+    report["record"] = record
+    (out / "fits.json").write_text(json.dumps(report["fit"], indent=2))
     report["files"].append(str(out / "fits.json"))
 
     last = table.iloc[-1]
@@ -146,33 +178,24 @@ def _fit_and_plot(store: Any, run_id: int, scenario: Any, bench: Bench,
         out / "last-trace.png", x, y, red,
         title=f"{spool.name}: launched {last['power_a_dbm']:+.1f} / {last['power_b_dbm']:+.1f} "
               f"dBm, {red.spacing_ghz:.1f} GHz")))
-    report["files"].append(str(plot_power_slopes(out / "sideband-vs-power.png", table, fits)))
+    report["files"].append(str(plot_power_slopes(out / "sideband-vs-power.png", table,
+                                                 record.parameters)))
     return report
 
 
 def _print_report(outcome: Any, report: dict[str, Any], db: str) -> None:
-    """Human summary on stdout: how the run ended, the fits, where the files are."""
-    from labrun.spoolfits import GUM_K2, STUDENT_T95, U_LEGEND, u_label
-    from labrun.uncertainty import budget_text
+    """Human summary on stdout: how the run ended, the D used, the fit as ``labrun fit`` prints
+    it, where the files are."""
+    from labrun.cli.fit import fit_text
 
     print(f"run {outcome.run_id}: {outcome.status}, {outcome.points_done}/{outcome.points_total} "
           f"points stored in {db}")
     print(f"spool {report['spool']} (virtual lab model gamma = "
           f"{report['model_gamma_per_w_per_km']:g} 1/(W km))")
-    for name, fit in report["fits"].items():
-        if fit["value"] is None:
-            print(f"  {name:<22} not fitted")
-        else:
-            err = f" +/- {fit['stderr']:.3g}" if fit["stderr"] is not None else ""
-            kind = GUM_K2 if fit.get("budget") else STUDENT_T95  # a fit's own: budget or not
-            u95 = f", {u_label(kind)} {fit['u95']:.3g}" if fit.get("u95") is not None else ""
-            print(f"  {name:<22} {fit['value']:.4g}{err} {fit['unit']}{u95}  "
-                  f"({fit['n_points']} points, {fit['model'].split(':')[0]})")
-            if name.startswith(("gamma", "dispersion")) and fit.get("budget"):
-                print(budget_text(name, fit))
-        for note in fit.get("warnings", []):
-            print(f"    ! {note}")
-    print(f"  (+/- is the statistical standard error of the fit; {U_LEGEND}; the budgets above "
-          "come from the bench's calibration uncertainties)")
+    if report.get("dispersion_record"):
+        print(report["dispersion_record"]["note"])
+    if report.get("record") is not None:
+        print(fit_text(report["record"]))
+        print(f"  (the same as labrun fit {outcome.run_id} --db {db} prints)")
     for path in report["files"]:
         print(f"  wrote {path}")
