@@ -30,7 +30,9 @@ def _store(db: str, kind: str) -> int:
                                                       30, 0.0, {"u_combined": 0.002,
                                                                 "sign_determined": True})},
               "given": {"gamma": _gamma(10.7, 0.4, {"u_combined": 0.2,
-                                                    "dispersion_source": GIVEN_SOURCE})},
+                                                    "dispersion_source": GIVEN_SOURCE,
+                                                    "dispersion_used_ps_per_nm_km": -0.3,
+                                                    "dispersion_used_u_ps_per_nm_km": 0.1})},
               "no_u": {"gamma": _gamma(8.1, None, {"no_u_reason": "dispersion unknown: x"})}}
     store = open_store(db)
     try:
@@ -71,6 +73,8 @@ def test_a_given_d_fit_outranks_a_newer_fit_without_u(tmp_path, capsys):
     row = _row(db, capsys)
     assert row["headline_fit"] == ids[0] and row["gamma_per_w_per_km"]["value"] == 10.7
     assert row["newer_fits_not_shown"] == [{"fit_id": ids[1], "why": "without U"}]
+    assert main(["spools", "--db", db]) == 0  # the D column: the D that fit used, and whence
+    assert "-0.3 (given, u 0.1)" in capsys.readouterr().out
 
 
 def test_the_newest_comparable_fit_is_the_headline(tmp_path, capsys):

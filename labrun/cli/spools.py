@@ -178,8 +178,12 @@ def _short(p: dict[str, Any] | None) -> str:
 
 
 def _d_cell(row: dict[str, Any]) -> str:
-    """The fitted D, else the D on the spool's record ('2.69 (record, u 0.05)')."""
+    """The fitted D, else the given D the headline fit used ('2.69 (given, u 0.05)'), else the
+    D on the spool's record ('2.69 (record, u 0.05)')."""
     rec = row.get("dispersion_record")
+    used = (row.get("gamma_per_w_per_km") or {}).get("dispersion_used")
+    if not row.get("dispersion_ps_per_nm_km") and used and used.get("d_ps_per_nm_km") is not None:
+        return f"{used['d_ps_per_nm_km']:.4g} (given, u {used['u_ps_per_nm_km']:.2g})"
     if row.get("dispersion_ps_per_nm_km") or not rec:
         return _short(row.get("dispersion_ps_per_nm_km"))
     return f"{rec['d_ps_per_nm_km']:.4g} (record, u {rec['u_ps_per_nm_km']:.2g})"
