@@ -59,6 +59,27 @@ NO_D_REASON = ("dispersion unknown: no spacing run and no D given, so the phase-
 NO_D_HINT = ("give the spool's dispersion: labrun spool set LABEL --dispersion D --dispersion-u "
              "U (ps/(nm km)), or fit a spacing run of the spool with this run")
 MISMATCH_DEPENDENT = ("gamma", "gamma_bessel", "gamma_small_signal")  # values set by eta
+# A given D whose effect on gamma is not linear within its uncertainty (JCGM 100:2008 5.1.2
+# Note: the first-order propagation holds while the second-order term is small). labrun's
+# choice of limit: a second-order term above 0.3 of the first-order one adds more than 4 % to
+# u_c by itself and already skews gamma's distribution visibly; beyond it the D row (half the
+# change between D + u and D - u) is no longer a standard uncertainty to combine.
+LINEARITY_TOL = 0.3
+LINEARITY_FLOOR = 1e-4  # relative change of gamma over D +- 2u below which D does not matter
+NONLINEAR_D_REASON = ("gamma depends non-linearly on the given D at this spacing (near an "
+                      "efficiency null)")
+NONLINEAR_D_HINT = ("fit a spacing run jointly, or measure at a smaller spacing (or give D "
+                    "with a smaller uncertainty)")
+# Birge ratio (reduced chi-square) check of a fit's residuals against the scatter the stated
+# inputs explain. Per point: the bench's OSA relative amplitude u (taken as if it varied from
+# point to point, which overstates the scatter it makes) and a reading repeatability of a line
+# on the OSA of READING_NOISE_DB (common practice for a grating OSA on lines well above its
+# floor: a few hundredths to 0.1 dB). Warned when the reduced chi-square exceeds its 99.9 %
+# point for the fit's degrees of freedom (scipy.stats.chi2): with the stated scatter that
+# happens by chance in 1 fit of 1000.
+READING_NOISE_DB = 0.1
+BIRGE_P = 0.999
+BIRGE_CHECKED = {"gamma": 1, "gamma_small_signal": 1, "gamma_bessel": 1}  # parameters fitted
 
 
 def _concat(tables: Sequence[dict[str, np.ndarray]]) -> dict[str, np.ndarray]:
@@ -343,12 +364,15 @@ def _offset_budget(results: dict[str, FitResult], t2: dict[str, np.ndarray],
 
 MC_METHOD = ("JCGM 101:2008 Monte Carlo: budget inputs drawn from normal distributions, "
              "closed-form refits of the exact-corrected data, Type A as a t draw")
+MC_GIVEN_D = "; the given D (and slope, with its u) drawn too, each refit at the drawn values"
 
 
 def _monte_carlo(current: dict[str, FitResult], t2: dict[str, np.ndarray], length_km: float,
                  loss: float, kw: dict[str, Any], unc: Uncertainties,
-                 power_cov: np.ndarray | None, n: int, seed: int) -> dict[str, Any]:
-    """Monte Carlo propagation for the exact results (labrun.montecarlo.propagate)."""
+                 power_cov: np.ndarray | None, n: int, seed: int,
+                 given: dict[str, tuple[float, float]] | None = None) -> dict[str, Any]:
+    """Monte Carlo propagation for the exact results (labrun.montecarlo.propagate); ``given``:
+    the given dispersion's inputs (fit_run keyword: (value, standard uncertainty)), drawn."""
     from labrun.montecarlo import propagate
 
     names = {"gamma": "gamma_small_signal", "dispersion": "dispersion",
@@ -356,10 +380,11 @@ def _monte_carlo(current: dict[str, FitResult], t2: dict[str, np.ndarray], lengt
     names = {k: v for k, v in names.items() if v in current and math.isfinite(current[v].value)}
     type_a = {k: (current[v].stderr, max(current[v].n_points - 1, 1)) for k, v in names.items()}
     start = dispersion_of(current)
-    return propagate(lambda tt, ln, ls: fit_run(tt, ln, ls, **kw, dispersion_start=start),
+    return propagate(lambda tt, ln, ls, **drawn: fit_run(tt, ln, ls, **{**kw, **drawn},
+                                                          dispersion_start=start),
                      t2, length_km, loss, unc, names, n,
                      lam_ref=kw["reference_wavelength_nm"], power_cov=power_cov,
-                     type_a=type_a, seed=seed)
+                     type_a=type_a, seed=seed, draws=given)
 
 
 def fit_spool(runs_points: Sequence[Any], spool_length_km: float, loss_db_per_km: float, *,
@@ -367,7 +392,8 @@ def fit_spool(runs_points: Sequence[Any], spool_length_km: float, loss_db_per_km
               reference_wavelength_nm: float = 1550.0, polarisation: PolFrame | None = None,
               uncertainties: Uncertainties | None = None, iterations: int = ITERATIONS,
               power_offsets: bool = True, tap_power: bool = True, monte_carlo: int = 0,
-              mc_seed: int = 1) -> dict[str, FitResult]:
+              mc_seed: int = 1, budget: bool = True, dispersion_u_ps_per_nm_km: float = 0.0,
+              slope_u_ps_per_nm2_km: float = 0.0) -> dict[str, FitResult]:
     """Fit gamma, D and the slope of one spool from all its runs with the exact model.
 
     ``runs_points``: one point table per run (DataFrame or list of dicts, as for
@@ -391,7 +417,13 @@ def fit_spool(runs_points: Sequence[Any], spool_length_km: float, loss_db_per_km
     to the exact results (labrun.montecarlo: M closed-form refits of the exact-corrected data,
     the model corrections held fixed as in the budget; the arms' powers drawn from the fitted
     offsets' covariance): extras ``mc_low``/``mc_high`` (probabilistically symmetric 95 %
-    interval), ``mc_mean``, ``mc_std``, ``mc_n``, ``mc_seed``.
+    interval), ``mc_mean``, ``mc_std``, ``mc_n``, ``mc_seed``. A given D with
+    ``dispersion_u_ps_per_nm_km`` > 0 (and the slope with ``slope_u_ps_per_nm2_km`` > 0) is
+    drawn from its normal distribution in each trial and the refit done at the drawn values
+    (the split-step corrections, computed at the given D, held fixed as for the other inputs).
+    ``budget=False``: no budget even with ``uncertainties`` (which still set the offsets'
+    prior): for refits whose value alone is wanted. Every result whose residual is in dB of
+    line ratios carries a Birge-ratio check (birge_checked).
     """
     tables = [points_table(p) for p in runs_points]
     if not tables:
@@ -406,12 +438,13 @@ def fit_spool(runs_points: Sequence[Any], spool_length_km: float, loss_db_per_km
     theta = _params(closed, dispersion_ps_per_nm_km, slope_ps_per_nm2_km)
     no_d = dispersion_ps_per_nm_km is None and not math.isfinite(
         closed.get("dispersion", FitResult(float("nan"), 0, 0, 0, "", "")).value)
+    unc = uncertainties or Uncertainties()
     if theta is None or "spacing_ghz" not in t:
+        closed = birge_checked(closed, unc.osa_amplitude_db)
         return without_u(closed, NO_D_REASON) if no_d else closed
     cop, _ = copolar_fractions(t, n, polarisation)
     current = closed
     history = [theta]
-    unc = uncertainties or Uncertainties()
     u_arms = (unc.power_a_db, unc.power_b_db) if power_offsets else (0.0, 0.0)
     u_tap = unc.tap_power_db if tap_power else None
     offsets = fit_power_offsets(t, np.zeros(n), 0.0, 0.0, unc.osa_amplitude_db)
@@ -433,7 +466,7 @@ def fit_spool(runs_points: Sequence[Any], spool_length_km: float, loss_db_per_km
             break
         theta = new
         history.append(theta)
-    if uncertainties is not None:
+    if uncertainties is not None and budget:
         start = dispersion_of(current)
         if power_offsets:
             unc_lines = replace(uncertainties, power_a_db=0.0, power_b_db=0.0)
@@ -445,10 +478,15 @@ def fit_spool(runs_points: Sequence[Any], spool_length_km: float, loss_db_per_km
             current = fit_run(t2, spool_length_km, loss_db_per_km, **kw,
                               uncertainties=uncertainties, dispersion_start=start)
     mc = {}
+    given = {}
+    if dispersion_ps_per_nm_km is not None and dispersion_u_ps_per_nm_km > 0:
+        given["dispersion_ps_per_nm_km"] = (dispersion_ps_per_nm_km, dispersion_u_ps_per_nm_km)
+    if dispersion_ps_per_nm_km is not None and slope_u_ps_per_nm2_km > 0:
+        given["slope_ps_per_nm2_km"] = (slope_ps_per_nm2_km, slope_u_ps_per_nm2_km)
     if monte_carlo > 0:
         mc = _monte_carlo(current, t2, spool_length_km, loss_db_per_km, kw,
                           uncertainties or Uncertainties(),
-                          offsets.cov if power_offsets else None, monte_carlo, mc_seed)
+                          offsets.cov if power_offsets else None, monte_carlo, mc_seed, given)
     step = [abs(a - b) for a, b in zip(history[-1], history[-2], strict=True)]
     # points whose spacing is the one read on the OSA (fits.points_table), not the set one
     n_measured = int(np.nansum(t.get(SPACING_MEASURED, np.zeros(n))))
@@ -465,7 +503,8 @@ def fit_spool(runs_points: Sequence[Any], spool_length_km: float, loss_db_per_km
                      n_spacing_measured=n_measured)
         if name in mc:
             extra.update({f"mc_{k}": v for k, v in mc[name].to_dict().items()},
-                         mc_seed=mc_seed, mc_method=MC_METHOD)
+                         mc_seed=mc_seed,
+                         mc_method=MC_METHOD + (MC_GIVEN_D if given else ""))
         warn = list(r.warnings)
         if no_d:
             warn.append("exact model run with D = 0 and no slope: no dispersion given and "
@@ -490,10 +529,107 @@ def fit_spool(runs_points: Sequence[Any], spool_length_km: float, loss_db_per_km
             comps.append(Component("model (closed form vs exact)", float("nan"), "", delta))
             u_c, u95 = combine(comps)
             out[cf] = replace(r, budget=[c.to_dict() for c in comps], u_combined=u_c, u95=u95)
+    out = birge_checked(out, unc.osa_amplitude_db)
     return without_u(out, NO_D_REASON) if no_d else out
 
 
-def without_u(results: dict[str, FitResult], reason: str) -> dict[str, FitResult]:
+def nonlinearity(values: Sequence[float]) -> float:
+    """How far a value's change with one input is from linear, from its values at x - 2u,
+    x - u, x, x + u, x + 2u: the ratio of the second-order to the first-order term of the
+    propagated uncertainty (JCGM 100:2008 5.1.2 Note: u_c^2 = (f' u)^2 + (f'' u^2)^2 / 2 for a
+    normal input), the larger of its estimates on the u and the 2u stencils; inf where the
+    values do not move one way (a peak or a dip inside x +- 2u), 0 where they hardly move."""
+    gm2, gm1, g0, gp1, gp2 = (float(v) for v in values)
+    g = np.array([gm2, gm1, g0, gp1, gp2])
+    if not np.isfinite(g).all():
+        return math.inf
+    floor = LINEARITY_FLOOR * abs(g0)
+    if float(np.ptp(g)) <= floor:
+        return 0.0
+    steps = np.diff(g)
+    signs = {bool(d > 0) for d in steps if abs(d) > floor}
+    if len(signs) > 1:
+        return math.inf
+    r1 = math.sqrt(2.0) * abs(gp1 - 2 * g0 + gm1) / abs(gp1 - gm1) if gp1 != gm1 else math.inf
+    r2 = math.sqrt(0.5) * abs(gp2 - 2 * g0 + gm2) / abs(gp2 - gm2) if gp2 != gm2 else math.inf
+    return max(r1, r2)
+
+
+def mismatch_null(runs_points: Sequence[Any], length_km: float, loss_db_per_km: float,
+                  d: float, u: float, slope: float, reference_wavelength_nm: float
+                  ) -> dict[str, float] | None:
+    """The linear phase mismatch |dbeta| L of the high first sideband (rad) at the given D and
+    over D +- 2u, and the first efficiency null 2 pi n (n >= 1) inside that range, None when
+    the range holds none. Inoue's efficiency with loss, eta = a^2/(a^2 + dbeta^2) [1 + 4
+    exp(-a L) sin^2(dbeta L / 2) / (1 - exp(-a L))^2] (Inoue, J. Lightwave Technol. 10, 1553
+    (1992)), has its minima near dbeta L = 2 pi n: crossing one, gamma(D) has a peak."""
+    from labrun.fits import _mismatch_basis
+
+    t = _concat([points_table(p) for p in runs_points])
+    if "spacing_ghz" not in t:
+        return None
+    n = t["power_a_dbm"].size
+    lam = t.get("wavelength_a_nm", np.full(n, reference_wavelength_nm))
+    lam = np.where(np.isnan(lam), reference_wavelength_nm, lam)
+    ok = np.isfinite(t["spacing_ghz"])
+    if not ok.any():
+        return None
+    bu, bv = _mismatch_basis(t["spacing_ghz"][ok], lam[ok], np.full(int(ok.sum()), "high"),
+                             length_km, loss_db_per_km, reference_wavelength_nm)
+    at = np.abs(d * bu + slope * bv) * length_km
+    lo_end = (d - 2 * u) * bu + slope * bv
+    hi_end = (d + 2 * u) * bu + slope * bv
+    crosses_zero = np.sign(lo_end) != np.sign(hi_end)
+    low = float(np.min(np.where(crosses_zero, 0.0, np.minimum(np.abs(lo_end),
+                                                             np.abs(hi_end))))) * length_km
+    high = float(np.max(np.maximum(np.abs(lo_end), np.abs(hi_end)))) * length_km
+    k = max(math.ceil(low / (2 * math.pi)), 1)
+    if 2 * math.pi * k > high:
+        return None
+    return {"mismatch_rad_min": float(at.min()), "mismatch_rad_max": float(at.max()),
+            "range_low_rad": low, "range_high_rad": high, "null_rad": 2 * math.pi * k,
+            "null_order": float(k)}
+
+
+def birge_checked(results: dict[str, FitResult], u_osa_db: float) -> dict[str, FitResult]:
+    """The results with a Birge-ratio check of their residuals (in dB of line ratios): the
+    reduced chi-square sum(r^2) / ((n - p) sigma^2), sigma^2 = u_osa^2 + READING_NOISE_DB^2 the
+    per-point scatter the stated inputs explain; above its BIRGE_P point (scipy.stats.chi2,
+    n - p degrees of freedom) the result is warned, and ``extra["birge_ratio"]`` (sqrt of the
+    reduced chi-square) is kept either way."""
+    from scipy.stats import chi2
+
+    sigma = math.hypot(float(u_osa_db), READING_NOISE_DB)
+    n_disp = 3 if "dispersion_slope" in results else 2
+    out = dict(results)
+    for name, r in results.items():
+        p = BIRGE_CHECKED.get(name, n_disp if name in ("dispersion", "dispersion_slope")
+                              else None)
+        if p is None or not (math.isfinite(r.value) and math.isfinite(r.residual_rms)):
+            continue
+        dof = int(r.n_points) - p
+        if dof < 1:
+            continue
+        red = r.residual_rms ** 2 * r.n_points / (dof * sigma ** 2)
+        limit = float(chi2.ppf(BIRGE_P, dof)) / dof
+        extra = {**r.extra, "birge_ratio": math.sqrt(red),
+                 "birge_limit": math.sqrt(limit)}
+        warn = list(r.warnings)
+        if red > limit:
+            warn.append(
+                f"residual rms {r.residual_rms:.3g} dB is far above what the inputs explain: "
+                f"Birge ratio {math.sqrt(red):.3g} (reduced chi-square {red:.3g} on {dof} "
+                f"degrees of freedom, per-point sigma {sigma:.3g} dB from the OSA relative "
+                f"amplitude u {u_osa_db:g} dB and a reading noise of {READING_NOISE_DB:g} dB) "
+                f"above {math.sqrt(limit):.3g} (chi-square {BIRGE_P:.1%} point): the model does "
+                "not describe the data (a wrong given D, a null of the efficiency, an unstable "
+                "set-up)")
+        out[name] = replace(r, extra=extra, warnings=warn)
+    return out
+
+
+def without_u(results: dict[str, FitResult], reason: str, hint: str = NO_D_HINT
+              ) -> dict[str, FitResult]:
     """The results with no uncertainty claimed for the values the phase-mismatch correction
     sets (MISMATCH_DEPENDENT): u_combined, u95, budget and Monte Carlo interval dropped, the
     reason in ``extra["no_u_reason"]`` and ``extra["no_u_hint"]`` (issue 9: no silent fallback;
@@ -504,7 +640,7 @@ def without_u(results: dict[str, FitResult], reason: str) -> dict[str, FitResult
         if r is None or not math.isfinite(r.value):
             continue
         extra = {k: v for k, v in r.extra.items() if not k.startswith("mc_")}
-        extra.update(no_u_reason=reason, no_u_hint=NO_D_HINT)
+        extra.update(no_u_reason=reason, no_u_hint=hint)
         out[name] = replace(r, u_combined=float("nan"), u95=float("nan"), budget=[],
                             extra=extra)
     return out

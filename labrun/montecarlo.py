@@ -113,13 +113,17 @@ def propagate(fit: Callable[[dict[str, np.ndarray], float, float], Mapping[str, 
               unc: Uncertainties, names: Mapping[str, str], n_trials: int, *,
               lam_ref: float = 1550.0, power_cov: np.ndarray | None = None,
               type_a: Mapping[str, tuple[float, int]] | None = None, seed: int = 1,
-              p: float = COVERAGE_P) -> dict[str, McResult]:
+              p: float = COVERAGE_P, draws: Mapping[str, tuple[float, float]] | None = None
+              ) -> dict[str, McResult]:
     """Monte Carlo propagation: ``n_trials`` refits with drawn inputs (JCGM 101:2008 7).
 
     ``fit(table, length, loss)`` returns results with ``.value``; ``names`` maps each output
     name to the result it is read from. ``type_a``: per output, (standard error, degrees of
     freedom) of the fit's statistical term, added to each trial as a t-distributed draw
-    (6.4.9.7). Seeded: the same seed gives the same interval.
+    (6.4.9.7). ``draws``: further inputs of the fit, keyword -> (value, standard
+    uncertainty), each drawn from its normal distribution per trial (6.4.7) and passed to
+    ``fit`` by keyword (a given dispersion D and slope). Seeded: the same seed gives the same
+    interval.
     """
     if n_trials < 2:
         raise ValueError("a Monte Carlo propagation needs at least 2 trials")
@@ -128,8 +132,10 @@ def propagate(fit: Callable[[dict[str, np.ndarray], float, float], Mapping[str, 
     for i in range(n_trials):
         t2, length, loss = draw_table(t, length_km, loss_db_per_km, unc, rng,
                                       lam_ref=lam_ref, power_cov=power_cov)
+        drawn = {k: float(rng.normal(v, u)) if u > 0 else v for k, (v, u) in
+                 (draws or {}).items()}
         try:
-            res = fit(t2, length, loss)
+            res = fit(t2, length, loss, **drawn)
         except (ValueError, FloatingPointError, np.linalg.LinAlgError):
             continue  # a trial whose refit fails counts as missing (McResult.n says how many)
         for out, src in names.items():

@@ -32,7 +32,8 @@ U_LEGEND = ("U k=2: the GUM budget's expanded uncertainty 2 u_c; U95 t: Student 
 
 
 NO_U_LEGEND = ("no expanded uncertainty is claimed: the dispersion is unknown (a power run alone, "
-               "no D on record), and so is gamma's phase-mismatch correction; not comparable, "
+               "no D on record), and so is gamma's phase-mismatch correction, or gamma depends "
+               "non-linearly on the given D (near an efficiency null); not comparable, "
                "never flagged as changed")
 NO_U_HINT = ("labrun spool set LABEL --dispersion D --dispersion-u U gives a D, or fit a spacing "
              "run with the power run")
@@ -264,7 +265,7 @@ def _fit_tables(tables: list[Any], spool: Spool, bench_text: str | None, *,
     record's D, when it has one, is then only checked against it); else the spool record's D
     (``GivenDispersion``), its uncertainty a budget row; else none, and the values the
     mismatch correction sets claim no uncertainty (exactfit.without_u)."""
-    from labrun.exactfit import fit_spool
+    from labrun.exactfit import fit_spool, mismatch_null
     from labrun.fits import PolFrame
     from labrun.uncertainty import Uncertainties
 
@@ -285,20 +286,86 @@ def _fit_tables(tables: list[Any], spool: Spool, bench_text: str | None, *,
         notes.append("the runs sweep the spacing but gave no dispersion (refused): the spool "
                      f"record's {given.text()} is used instead")
 
-    def fit(d: float, s: float, mc: int = 0) -> dict[str, Any]:
+    def fit(d: float, s: float, mc: int = 0, budget: bool = True) -> dict[str, Any]:
         return fit_spool(tables, length_km, loss_db_per_km, dispersion_ps_per_nm_km=d,
                          slope_ps_per_nm2_km=s, reference_wavelength_nm=given.wavelength_nm,
-                         **kw, monte_carlo=mc)
+                         **kw, monte_carlo=mc, budget=budget,
+                         dispersion_u_ps_per_nm_km=given.u if mc else 0.0,
+                         slope_u_ps_per_nm2_km=given.slope_u if mc else 0.0)
 
     results = fit(given.d, given.slope, monte_carlo)
-    rows = []
+    rows, scans = [], []
     for source, u, unit, step in ((D_SOURCE, given.u, "ps/(nm km)", (1.0, 0.0)),
                                   (S_SOURCE, given.slope_u, "ps/(nm^2 km)", (0.0, 1.0))):
-        if u > 0:
-            moved = [fit(given.d + sign * u * step[0], given.slope + sign * u * step[1])
-                     for sign in (1.0, -1.0)]
+        if u > 0:  # refits at the input moved by +u, -u, +2u, -2u (values only)
+            moved = [fit(given.d + k * u * step[0], given.slope + k * u * step[1],
+                         budget=False) for k in (1.0, -1.0, 2.0, -2.0)]
             rows.append((source, u, unit, moved[0], moved[1]))
-    return with_given_rows(results, rows, given, notes)
+            scans.append((source, [moved[3], moved[1], results, moved[0], moved[2]]))
+    out = with_given_rows(results, rows, given, notes)
+    null = mismatch_null(tables, length_km, loss_db_per_km, given.d, given.u, given.slope,
+                         given.wavelength_nm)
+    return given_linearity(out, scans, null)
+
+
+def given_linearity(results: dict[str, Any], scans: list[tuple[str, list[Any]]],
+                    null: dict[str, float] | None) -> dict[str, Any]:
+    """The results with no U claimed for gamma (exactfit.without_u) where the given D's (or
+    slope's) effect on it is not linear within its uncertainty: exactfit.nonlinearity of the
+    exact gamma at input -2u..+2u above LINEARITY_TOL, or the phase mismatch crossing an
+    efficiency null within D +- 2u (exactfit.mismatch_null). Then the budget's half-difference
+    row would not bound gamma's error (near a null gamma(D) peaks between the refits). The
+    scan's range and ratio stay in the extras (``given_scan_low``/``_high``,
+    ``given_nonlinearity``)."""
+    from dataclasses import replace
+
+    from labrun.exactfit import (
+        LINEARITY_TOL,
+        MISMATCH_DEPENDENT,
+        NONLINEAR_D_HINT,
+        NONLINEAR_D_REASON,
+        nonlinearity,
+        without_u,
+    )
+
+    key = "gamma" if "gamma" in results else "gamma_small_signal"
+    ratio, low, high, worst = 0.0, math.inf, -math.inf, ""
+    for source, fits in scans:
+        vals = [f[key].value if key in f else float("nan") for f in fits]
+        r = nonlinearity(vals)
+        if r >= ratio:
+            ratio, worst = r, source
+        finite = [v for v in vals if math.isfinite(v)]
+        if finite:
+            low, high = min(low, *finite), max(high, *finite)
+    if not scans:
+        return results
+    out = dict(results)
+    for name in MISMATCH_DEPENDENT:
+        if name in out:
+            extra = {**out[name].extra, "given_nonlinearity": ratio,
+                     "given_linearity_tol": LINEARITY_TOL}
+            if math.isfinite(low):
+                extra.update(given_scan_low=low, given_scan_high=high)
+            if null:
+                extra.update(given_mismatch_rad=null["mismatch_rad_max"],
+                             given_null_rad=null["null_rad"])
+            out[name] = replace(out[name], extra=extra)
+    if ratio <= LINEARITY_TOL and null is None:
+        return out
+    what = []
+    if ratio > LINEARITY_TOL:
+        what.append("second-order to first-order ratio " + (
+            "inf: gamma is not monotonic" if not math.isfinite(ratio) else f"{ratio:.2g}")
+            + f" over the {worst} row's input +- 2u (limit {LINEARITY_TOL:g}, JCGM 100:2008 "
+            "5.1.2)")
+    if null is not None:
+        what.append(f"|dbeta| L of the first sideband {null['mismatch_rad_max']:.3g} rad at "
+                    f"the given D, and the efficiency null 2 pi x {null['null_order']:.0f} = "
+                    f"{null['null_rad']:.3g} rad inside D +- 2u")
+    span = (f"; over D +- 2u the exact gamma ranges {low:.4g} to {high:.4g}"
+            if math.isfinite(low) else "")
+    return without_u(out, f"{NONLINEAR_D_REASON}: {'; '.join(what)}{span}", NONLINEAR_D_HINT)
 
 
 def with_given_rows(results: dict[str, Any], rows: list[tuple[str, float, str, Any, Any]],
@@ -323,9 +390,6 @@ def with_given_rows(results: dict[str, Any], rows: list[tuple[str, float, str, A
                          dispersion_used_u_ps_per_nm_km=given.u,
                          slope_used_ps_per_nm2_km=given.slope,
                          dispersion_reference_wavelength_nm=given.wavelength_nm)
-            if extra.get("mc_method"):
-                extra["mc_method"] = (f"{extra['mc_method']}; the given dispersion held at its "
-                                      "value (not drawn)")
         if not r.budget:
             out[name] = replace(r, extra=extra, warnings=warnings)
             continue
@@ -490,9 +554,10 @@ def fit_runs(store: Store, run_ids: list[int], *, save: bool = True,
     results = _fit_tables(tables, spool, bench_text, monte_carlo=monte_carlo)
     results = _with_warnings(results, shared_offset_warnings(origins))
     params = {name: from_fit(r) for name, r in results.items()}
-    if any(p.extra.get("no_u_reason") for p in params.values()):
-        from labrun.exactfit import NO_D_HINT
+    from labrun.exactfit import NO_D_HINT, NO_D_REASON
 
+    if any(str(p.extra.get("no_u_reason", "")).startswith(NO_D_REASON)
+           for p in params.values()):
         others = spacing_runs(store, spool.id, run_ids)
         hint = NO_D_HINT.replace("LABEL", spool.label)
         if others:
@@ -501,7 +566,7 @@ def fit_runs(store: Store, run_ids: list[int], *, save: bool = True,
                     f"fit {' '.join(map(str, [*run_ids, *others]))} fits them jointly (or give "
                     f"the D: labrun spool set {spool.label} --dispersion D --dispersion-u U)")
         for p in params.values():
-            if p.extra.get("no_u_reason"):
+            if str(p.extra.get("no_u_reason", "")).startswith(NO_D_REASON):
                 p.extra["no_u_hint"] = hint
     record = FitRecord(spool=spool.label, run_ids=run_ids, parameters=params,
                        spool_snapshot={"length_km": spool.length_km,

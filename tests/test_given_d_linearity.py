@@ -1,0 +1,165 @@
+"""A power run fitted alone with a given D near an efficiency null (issue 9, review).
+
+Inoue's efficiency with loss has minima near |dbeta| L = 2 pi n (K. Inoue, J. Lightwave Technol.
+10, 1553 (1992)). A reviewer's normal-dispersion spool (3.949 km, 0.236 dB/km, gamma 5.394
+/(W km), D -5.974 ps/(nm km), slope 0.0394 ps/(nm^2 km); values of the review, invented) swept
+-4..+6 dBm at 100 GHz sits at |dbeta| L = 11.9 rad, next to the null at 4 pi: gamma(D given)
+peaks between the D's of the lab's record, and the budget's D row (half the change between
+D + u and D - u) stepped over the peak: D -6.273 +- 0.30 gave gamma 16.1 with U 2.9, the truth
+3.7 U away. The fit must then claim no U (JCGM 100:2008 5.1.2 Note: the first-order law holds
+only while the second-order term is small), and warn that its residual is far above what the
+inputs explain (a Birge ratio, reduced chi-square against scipy-free table values).
+
+The "measured" lines come from tests/_rk4ip.py (fourth-order Runge-Kutta in the interaction
+picture, Hult, J. Lightwave Technol. 25(12), 3770 (2007)), which shares no code with the fit's
+split-step forward model.
+"""
+
+from __future__ import annotations
+
+import math
+from types import SimpleNamespace
+
+import numpy as np
+import pandas as pd
+import pytest
+from _rk4ip import rk4ip_tones
+
+from labrun.exactfit import (
+    NONLINEAR_D_REASON,
+    READING_NOISE_DB,
+    birge_checked,
+    fit_spool,
+    nonlinearity,
+)
+from labrun.fits import FitResult
+from labrun.lines import line_id
+from labrun.physics.fibre import Fibre
+from labrun.spoolfits import D_SOURCE, GivenDispersion, _fit_tables, from_fit
+from labrun.uncertainty import Uncertainties
+
+REVIEW = Fibre(3.949, 0.236, 5.394, -5.974, 0.0394, 1550.0)
+DSF = Fibre(3.19, 0.5, 8.87, 2.69, 0.05, 1550.0)  # of tests/test_fit_dispersion.py: |dbeta| L 4
+
+
+def _rows(fib: Fibre, powers: np.ndarray, ghz: float = 100.0) -> list[dict]:
+    """Equal tones at 1550 nm and + ghz, line powers (dBm) from RK4IP."""
+    rows = []
+    for p_dbm in powers:
+        p = 10 ** (p_dbm / 10) * 1e-3
+        ref = rk4ip_tones(p, p, ghz * 1e-3, fib.length_km, fib.alpha_per_km,
+                          fib.beta2_at(1550.0), fib.beta3_at(1550.0), fib.gamma_per_w_per_km,
+                          n_time=64, n_steps=400)
+        row = {"power_a_dbm": float(p_dbm), "power_b_dbm": float(p_dbm), "spacing_ghz": ghz,
+               "wavelength_a_nm": 1550.0}
+        for k in range(-1, 3):
+            ln = line_id(k)
+            row[f"{ln.kind}_{ln.side}_{ln.order}"] = 10 * math.log10(ref[k] * 1e3)
+        rows.append(row)
+    return rows
+
+
+@pytest.fixture(scope="module")
+def review_run() -> list[pd.DataFrame]:
+    return [pd.DataFrame(_rows(REVIEW, np.arange(-4.0, 6.1, 1.0)))]
+
+
+def _fit(tables, fib: Fibre, d: float, u: float, mc: int = 0):
+    spool = SimpleNamespace(label="NZ-R9", length_km=fib.length_km,
+                            loss_db_per_km=fib.loss_db_per_km,
+                            params={"dispersion": GivenDispersion(
+                                d, u, fib.dispersion_slope_ps_per_nm2_km).to_params()})
+    return _fit_tables(tables, spool, None, monte_carlo=mc)
+
+
+def test_given_d_near_a_null_claims_no_u(review_run) -> None:
+    truth = REVIEW.gamma_per_w_per_km
+    res = _fit(review_run, REVIEW, -6.273, 0.30, mc=3)  # the record 5 % off the truth
+    g = res["gamma"]
+    assert abs(g.value - truth) > 0.5 * truth  # far off (16.1: the peak of gamma(D))
+    p = from_fit(g).to_dict()
+    assert p["u95"] is None and p["u_combined"] is None and "budget" not in p
+    assert p["comparable"] is False and p["no_u_reason"].startswith(NONLINEAR_D_REASON)
+    assert "spacing run" in p["no_u_hint"] and "smaller spacing" in p["no_u_hint"]
+    assert "monte_carlo" not in p  # no Monte Carlo interval either
+    for name in ("gamma_small_signal", "gamma_bessel"):
+        if name in res and math.isfinite(res[name].value):
+            assert not math.isfinite(res[name].u95), name
+    # the scan over D +- 2u shows why: gamma is not monotonic there, and its range holds the
+    # truth (a figure reported, not claimed as an interval)
+    assert g.extra["given_nonlinearity"] == math.inf
+    assert g.extra["given_scan_low"] < truth < g.extra["given_scan_high"]
+    # 4 pi = 12.566 rad lies within D +- 2u. By hand, from Agrawal (Nonlinear Fiber Optics,
+    # eqs. 1.2.10-1.2.11): beta2 = -D lambda^2/(2 pi c), beta3 = (lambda^2/(2 pi c))^2 (S +
+    # 2 D / lambda); the high sideband 2 w_b - w_a expanded about tone a has dbeta = beta2 W^2
+    # + beta3 W^3 (W = 2 pi x spacing): 12.47 + 0.05 = 12.52 rad over 3.949 km
+    k = 1550e-9 ** 2 / (2 * math.pi * 299792458.0)  # s m
+    d_si, s_si = -6.273e-6, 0.0394e3  # s/m^2, s/m^3
+    w = 2 * math.pi * 100e9
+    dbeta = -d_si * k * w ** 2 + k ** 2 * (s_si + 2 * d_si / 1550e-9) * w ** 3  # 1/m
+    assert g.extra["given_mismatch_rad"] == pytest.approx(dbeta * 3949.0, rel=1e-3)
+    assert g.extra["given_null_rad"] == pytest.approx(4 * math.pi, rel=1e-12)
+    # the residual (0.9 dB; 0.000 at the true D) is flagged by the Birge ratio
+    assert any("Birge ratio" in w for w in g.warnings)
+    assert g.extra["birge_ratio"] > 5
+
+
+def test_given_d_away_from_the_null_keeps_u_and_covers(review_run) -> None:
+    # The true D with a small u: gamma(D) is close to linear over D +- 2u (ratio 0.13 < 0.3),
+    # so the GUM budget stands, with the D row, and holds the truth.
+    res = _fit(review_run, REVIEW, -5.974, 0.03)
+    g = res["gamma"]
+    assert math.isfinite(g.u95) and abs(g.value - REVIEW.gamma_per_w_per_km) <= g.u95
+    assert 0 < g.extra["given_nonlinearity"] < 0.3
+    assert D_SOURCE in {row["source"] for row in g.budget}
+    assert not any("Birge ratio" in w for w in g.warnings)
+    assert g.extra["birge_ratio"] < 0.1
+
+
+def test_nonlinearity_against_the_gum_second_order_term() -> None:
+    # f(x) = a x + b x^2 at x = 0: f' u = a u, f'' u^2 = 2 b u^2; JCGM 100:2008 5.1.2 Note
+    # gives the second-order variance (1/2)(f'' u^2)^2, so the ratio of the terms is
+    # sqrt(1/2) 2 b u^2 / (a u) = sqrt(2) b u / a, exactly on both stencils for a quadratic
+    a, b, u = 3.0, 0.4, 0.5
+    vals = [a * k * u + b * (k * u) ** 2 for k in (-2, -1, 0, 1, 2)]
+    assert nonlinearity(vals) == pytest.approx(math.sqrt(2) * b * u / a, rel=1e-12)
+    assert nonlinearity([1.0, 2.0, 3.0, 4.0, 5.0]) == 0.0  # linear
+    assert nonlinearity([1.0, 3.0, 4.0, 3.5, 2.0]) == math.inf  # a peak inside x +- 2u
+    # a cubic term shows on the 2u stencil only: f = x + c x^3 (odd: no f'' at 0)
+    vals = [k + 0.2 * k ** 3 for k in (-2.0, -1.0, 0.0, 1.0, 2.0)]
+    assert nonlinearity(vals) == 0.0  # second order is what GUM 5.1.2 names; cubic is odd
+
+
+def test_birge_threshold_from_the_chi_square_table() -> None:
+    # chi-square 0.999 point for 10 degrees of freedom: 29.588 (NIST/SEMATECH e-Handbook of
+    # Statistical Methods, 1.3.6.7.4, upper critical values of the chi-square distribution)
+    sigma = math.hypot(0.05, READING_NOISE_DB)
+    limit_rms = sigma * math.sqrt(29.588 / 11)  # n = 11 points, one parameter: rms^2 n / 10
+
+    def res(rms: float) -> dict:
+        return {"gamma": FitResult(5.0, 0.01, 11, rms, "m", "1/(W km)")}
+
+    below = birge_checked(res(0.995 * limit_rms), 0.05)["gamma"]
+    above = birge_checked(res(1.005 * limit_rms), 0.05)["gamma"]
+    assert not below.warnings and "Birge ratio" in above.warnings[0]
+    assert above.extra["birge_limit"] == pytest.approx(math.sqrt(2.9588), rel=1e-4)
+
+
+def test_monte_carlo_draws_the_given_d() -> None:
+    # JCGM 101:2008 6.4.7: the given D is an input with a normal distribution; drawn, it
+    # widens gamma's interval by its own part, which doubles with u (gamma(D) is near linear
+    # here: tests/test_fit_dispersion.py). Same seed: the other inputs' draws are the same, so
+    # the D part is the spread added in quadrature.
+    rows = _rows(DSF, np.arange(-2.0, 6.1, 2.0))
+    unc = Uncertainties(0.05, 0.05, 0.02, 1.0, 0.0, 0.0)
+    std = {}
+    for u in (0.0, 0.05, 0.1):
+        r = fit_spool([rows], DSF.length_km, DSF.loss_db_per_km, dispersion_ps_per_nm_km=2.69,
+                      slope_ps_per_nm2_km=0.05, uncertainties=unc, monte_carlo=300,
+                      mc_seed=4, dispersion_u_ps_per_nm_km=u, budget=False)
+        std[u] = r["gamma"].extra["mc_std"]
+        assert ("given D" in r["gamma"].extra["mc_method"]) == (u > 0)
+    part1 = math.sqrt(std[0.05] ** 2 - std[0.0] ** 2)
+    part2 = math.sqrt(std[0.1] ** 2 - std[0.0] ** 2)
+    assert part1 > std[0.0]  # D dominates here (|dbeta| L about 4 rad)
+    assert part2 / part1 == pytest.approx(2.0, rel=0.1)
