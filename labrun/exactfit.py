@@ -36,6 +36,7 @@ from labrun.fits import (
 )
 from labrun.lines import grid_ks
 from labrun.physics.fibre import Fibre
+from labrun.physics.fwm import sideband_mismatch_per_km
 from labrun.physics.nlse import propagate_tones
 from labrun.physics.units import dbm_to_w, effective_length_km
 from labrun.uncertainty import COMPONENTS, Component, Uncertainties, combine
@@ -563,8 +564,6 @@ def mismatch_null(runs_points: Sequence[Any], length_km: float, loss_db_per_km: 
     the range holds none. Inoue's efficiency with loss, eta = a^2/(a^2 + dbeta^2) [1 + 4
     exp(-a L) sin^2(dbeta L / 2) / (1 - exp(-a L))^2] (Inoue, J. Lightwave Technol. 10, 1553
     (1992)), has its minima near dbeta L = 2 pi n: crossing one, gamma(D) has a peak."""
-    from labrun.fits import _mismatch_basis
-
     t = _concat([points_table(p) for p in runs_points])
     if "spacing_ghz" not in t:
         return None
@@ -574,21 +573,26 @@ def mismatch_null(runs_points: Sequence[Any], length_km: float, loss_db_per_km: 
     ok = np.isfinite(t["spacing_ghz"])
     if not ok.any():
         return None
-    bu, bv = _mismatch_basis(t["spacing_ghz"][ok], lam[ok], np.full(int(ok.sum()), "high"),
-                             length_km, loss_db_per_km, reference_wavelength_nm)
-    at = np.abs(d * bu + slope * bv) * length_km
-    lo_end = (d - 2 * u) * bu + slope * bv
-    hi_end = (d + 2 * u) * bu + slope * bv
+
+    def dbeta(d_x: float) -> np.ndarray:  # per km, high first sideband, each point
+        fib = Fibre(length_km, loss_db_per_km, 1.0, d_x, slope, reference_wavelength_nm)
+        return np.concatenate([sideband_mismatch_per_km(fib, float(lm), t["spacing_ghz"][
+            ok & (lam == lm)], "high") for lm in np.unique(lam[ok])])
+
+    at = np.abs(dbeta(d)) * length_km
+    lo_end, hi_end = dbeta(d - 2 * u), dbeta(d + 2 * u)  # dbeta is linear in D
     crosses_zero = np.sign(lo_end) != np.sign(hi_end)
-    low = float(np.min(np.where(crosses_zero, 0.0, np.minimum(np.abs(lo_end),
-                                                             np.abs(hi_end))))) * length_km
-    high = float(np.max(np.maximum(np.abs(lo_end), np.abs(hi_end)))) * length_km
-    k = max(math.ceil(low / (2 * math.pi)), 1)
-    if 2 * math.pi * k > high:
+    low = np.where(crosses_zero, 0.0, np.minimum(np.abs(lo_end), np.abs(hi_end))) * length_km
+    high = np.maximum(np.abs(lo_end), np.abs(hi_end)) * length_km
+    k = np.maximum(np.ceil(low / (2 * math.pi)), 1.0)  # each point's first null at or above
+    inside = 2 * math.pi * k <= high
+    if not inside.any():
         return None
+    first = int(np.argmax(inside))
     return {"mismatch_rad_min": float(at.min()), "mismatch_rad_max": float(at.max()),
-            "range_low_rad": low, "range_high_rad": high, "null_rad": 2 * math.pi * k,
-            "null_order": float(k)}
+            "range_low_rad": float(low[first]), "range_high_rad": float(high[first]),
+            "null_rad": float(2 * math.pi * k[first]), "null_order": float(k[first]),
+            "points_near_null": float(inside.sum())}
 
 
 def birge_checked(results: dict[str, FitResult], u_osa_db: float) -> dict[str, FitResult]:

@@ -220,8 +220,10 @@ def given_text(extra: dict[str, Any]) -> str | None:
     """The line ``labrun fit`` prints under a gamma fitted with the spool record's D."""
     if extra.get("dispersion_source") != GIVEN_SOURCE:
         return None
+    where = (f"its uncertainty is the budget row '{D_SOURCE}'" if not extra.get("no_u_reason")
+             else "gamma's change over D +- 2u is not linear, so no budget row can carry it")
     return (f"D used: {extra.get('dispersion_given')} from the {GIVEN_SOURCE}, no spacing run "
-            f"in the fit; its uncertainty is the budget row '{D_SOURCE}'")
+            f"in the fit; {where}")
 
 
 def stated_spool_u(spool: Any) -> dict[str, float]:
