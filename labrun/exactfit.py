@@ -547,8 +547,8 @@ def nonlinearity(values: Sequence[float]) -> float:
     floor = LINEARITY_FLOOR * abs(g0)
     if float(np.ptp(g)) <= floor:
         return 0.0
-    steps = np.diff(g)
-    signs = {bool(d > 0) for d in steps if abs(d) > floor}
+    steps = np.diff(g)  # a step counts when above the floor and 5 % of the range (fit noise)
+    signs = {bool(d > 0) for d in steps if abs(d) > max(floor, 0.05 * float(np.ptp(g)))}
     if len(signs) > 1:
         return math.inf
     r1 = math.sqrt(2.0) * abs(gp1 - 2 * g0 + gm1) / abs(gp1 - gm1) if gp1 != gm1 else math.inf

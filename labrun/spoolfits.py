@@ -570,6 +570,15 @@ def fit_runs(store: Store, run_ids: list[int], *, save: bool = True,
         for p in params.values():
             if str(p.extra.get("no_u_reason", "")).startswith(NO_D_REASON):
                 p.extra["no_u_hint"] = hint
+    nonlinear = [p for p in params.values() if p.extra.get("no_u_reason")
+                 and not str(p.extra["no_u_reason"]).startswith(NO_D_REASON)]
+    others = spacing_runs(store, spool.id, run_ids) if nonlinear else []
+    for p in nonlinear if others else []:
+        p.extra["no_u_hint"] = (
+            f"run{'s' if len(others) > 1 else ''} {', '.join(map(str, others))} of "
+            f"{spool.label} sweep{'' if len(others) > 1 else 's'} the spacing: labrun fit "
+            f"{' '.join(map(str, [*run_ids, *others]))} fits them jointly (or measure at a "
+            "smaller spacing)")
     record = FitRecord(spool=spool.label, run_ids=run_ids, parameters=params,
                        spool_snapshot={"length_km": spool.length_km,
                                        "loss_db_per_km": spool.loss_db_per_km,

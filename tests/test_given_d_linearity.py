@@ -163,3 +163,65 @@ def test_monte_carlo_draws_the_given_d() -> None:
     part2 = math.sqrt(std[0.1] ** 2 - std[0.0] ** 2)
     assert part1 > std[0.0]  # D dominates here (|dbeta| L about 4 rad)
     assert part2 / part1 == pytest.approx(2.0, rel=0.1)
+
+
+PLAN = """[plan]
+name = "NZ-R9 {name}"
+spool = "NZ-R9"
+orders = 2
+
+[spool]
+length_km = 3.949
+loss_db_per_km = 0.236
+
+[fixed]
+wavelength_a_nm = 1550.0
+pol_angles_deg = [0.0, 0.0, 0.0]
+{fixed}
+{axes}
+"""
+POWER_AXES = """[axes.power_a_dbm]
+values = [-4.0, -2.0, 0.0, 2.0, 4.0, 6.0]
+
+[axes.power_b_dbm]
+values = [-4.0, -2.0, 0.0, 2.0, 4.0, 6.0]
+
+[order]
+zip = [["power_a_dbm", "power_b_dbm"]]
+"""
+SPACING_AXES = """[axes.spacing_ghz]
+values = [50.0, 100.0]
+"""
+
+
+def test_labrun_fit_on_the_virtual_lab_says_no_u_and_names_the_spacing_run(tmp_path, capsys):
+    """End to end on the virtual lab (realism off): the reviewer's spool and record, `labrun
+    fit 1` claims no U, warns by the Birge ratio, and its hint names the spool's spacing run."""
+    import json
+
+    from _store_support import record_dispersion, run_plan_file
+
+    from labrun.cli import main
+
+    spool = {"name": "NZ-R9", "length_km": 3.949, "loss_db_per_km": 0.236,
+             "gamma_per_w_per_km": 5.394, "dispersion_ps_per_nm_km": -5.974,
+             "dispersion_slope_ps_per_nm2_km": 0.0394, "reference_wavelength_nm": 1550.0}
+    db = str(tmp_path / "r.db")
+    run_plan_file(db, "p", tmp_path, spools=[spool], text=PLAN.format(
+        name="power", fixed="spacing_ghz = 100.0", axes=POWER_AXES))
+    record_dispersion(db, "NZ-R9", -6.273, 0.30, "--dispersion-slope", "0.0394")
+    capsys.readouterr()
+    assert main(["fit", "1", "--db", db, "--no-store", "--json"]) == 0
+    g = json.loads(capsys.readouterr().out)["parameters"]["gamma"]
+    assert g["u95"] is None and g["comparable"] is False
+    assert g["no_u_reason"].startswith(NONLINEAR_D_REASON) and "smaller spacing" in g["no_u_hint"]
+    assert any("Birge ratio" in w for w in g["warnings"])
+    assert main(["fit", "1", "--db", db, "--no-store"]) == 0
+    text = capsys.readouterr().out
+    assert "no U: gamma depends non-linearly on the given D" in text and "Birge ratio" in text
+    assert "no budget row can carry it" in text and "expanded U (k = 2)" not in text
+    run = run_plan_file(db, "p", tmp_path, spools=[spool], text=PLAN.format(
+        name="spacing", fixed="power_a_dbm = 4.0\npower_b_dbm = 4.0", axes=SPACING_AXES))
+    assert main(["fit", "1", "--db", db, "--no-store", "--json"]) == 0
+    g = json.loads(capsys.readouterr().out)["parameters"]["gamma"]
+    assert f"labrun fit 1 {run} fits them jointly" in g["no_u_hint"]
