@@ -150,6 +150,19 @@ def _rank(record: Any) -> int:
     return 2 if disp is not None and not given else 1
 
 
+# Why a fit is the headline, by its rank (_rank): what `labrun replay --twin` says it used.
+HEADLINE_WHY = {2: "its gamma claims a U and its D was measured (a spacing run in the fit)",
+                1: "its gamma claims a U, with the D given on the spool record (no spacing run "
+                   "fitted)",
+                0: "no fit of the spool claims a U for gamma, so the newest is used"}
+
+
+def headline_why(record: Any) -> tuple[bool, str]:
+    """(whether the fit's gamma claims a U, why HEADLINE_RULE picks it) for a headline fit."""
+    rank = _rank(record)
+    return rank > 0, HEADLINE_WHY[rank]
+
+
 def _why_not_shown(record: Any) -> str:
     """'without U' or 'with a given D': why a newer fit is not the headline."""
     return "without U" if _rank(record) == 0 else "with a given D (no spacing run)"

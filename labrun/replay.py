@@ -231,8 +231,9 @@ def _current_point(store: Store, replay_id: int, plan: Any) -> str:
 # ------------------------------------------------------------------------------------------------
 # replay against a model
 # ------------------------------------------------------------------------------------------------
-# Gamma fits a twin takes, preferred first (then any other fit whose name starts with gamma).
-TWIN_GAMMA_FITS = ("gamma", "gamma_bessel", "gamma_small_signal")  # exact model first
+# Gamma fits a twin takes, preferred first (then any other fit whose name starts with gamma);
+# the order the spool's headline reads gamma in (exact model first).
+TWIN_GAMMA_FITS = ("gamma", "gamma_bessel", "gamma_small_signal")
 
 
 @dataclass
@@ -242,6 +243,8 @@ class ModelSpool:
     spec: Any  # labrun.vlab.scenario.SpoolSpec
     source: str
     rel_u_gamma: float = 0.0  # relative standard uncertainty of gamma (a fit's), for u_c
+    why: str = ""  # why this fit (the headline rule of labrun spools), for a twin
+    warnings: list[str] = field(default_factory=list)  # e.g. a twin from a fit without U
 
 
 @dataclass
@@ -261,6 +264,8 @@ class ModelReplay:
     reason: str
     per_point: list[dict[str, Any]] = field(default_factory=list)
     virtual: bool = True
+    model_why: str = ""
+    warnings: list[str] = field(default_factory=list)
 
     def to_dict(self) -> dict[str, Any]:
         """JSON-ready: run_id, replay_of, residual_db (per line: rms, max, ...), verdict, ..."""
@@ -268,8 +273,10 @@ class ModelReplay:
 
 
 def twin_spool(store: Store, run: Any) -> ModelSpool:
-    """The spool's latest stored fit as a model spool (the run's own one-spool fit when no fit
-    is stored yet): gamma, dispersion and slope from the fit, length and loss from the record."""
+    """The spool's headline fit (``compare.headline_fit``, the fit ``labrun spools`` shows; the
+    run's own one-spool fit when no fit is stored yet) as a model spool: gamma, dispersion and
+    slope from the fit, length and loss from the record; warned when its gamma claims no U."""
+    from labrun.compare import headline_fit, headline_why
     from labrun.spoolfits import fit_history, fit_runs
     from labrun.store.models import Spool
     from labrun.vlab.scenario import SpoolSpec
@@ -281,9 +288,12 @@ def twin_spool(store: Store, run: Any) -> ModelSpool:
         raise InputError(f"run {run.id} is not linked to a spool: use --scenario FILE --spool "
                          "NAME", field="--twin")
     history = fit_history(store, label)
-    record = history[-1] if history else fit_runs(store, [run.id], save=False)
+    record, newer = headline_fit(history or [fit_runs(store, [run.id], save=False)])
     where = (f"fit {record.fit_id} of {label}" if record.fit_id is not None
              else f"one-spool fit of run {run.id} (no stored fit of {label})")
+    claims_u, why = headline_why(record)
+    why = f"{where}: {why}" + "".join(f"; newer fit {n['fit_id']} not used ({n['why']})"
+                                      for n in newer)
     params = record.parameters
     named = [n for n in TWIN_GAMMA_FITS if n in params] + sorted(
         n for n in params if n.startswith("gamma") and n not in TWIN_GAMMA_FITS)
@@ -291,6 +301,11 @@ def twin_spool(store: Store, run: Any) -> ModelSpool:
     if gamma is None:
         raise InputError(f"the {where} has no gamma: run 'labrun fit' on a power sweep of "
                          f"{label} first", field="--twin")
+    warnings = [] if claims_u else [
+        f"the twin's spool values are not trustworthy: no fit of {label} claims a U for "
+        f"gamma, the {where} is used (gamma {gamma.value:.4g} {gamma.unit}"
+        + (f"; {gamma.extra['no_u_reason']}" if gamma.extra.get("no_u_reason") else "") + ")"
+        + (f"; {gamma.extra['no_u_hint']}" if gamma.extra.get("no_u_hint") else "")]
     snap = record.spool_snapshot or {}
     length, loss = snap.get("length_km"), snap.get("loss_db_per_km")
     if length is None or loss is None:
@@ -314,7 +329,8 @@ def twin_spool(store: Store, run: Any) -> ModelSpool:
     rel = (gamma.stderr / gamma.value) if gamma.stderr and gamma.value else 0.0
     missing = ("" if fitted else "; dispersion from the spool record" if recorded is not None
                else "; dispersion not fitted, 0 assumed")
-    return ModelSpool(spec, f"twin: {where}, {gamma.model.split(':')[0]}{missing}", rel)
+    return ModelSpool(spec, f"twin: {where}, {gamma.model.split(':')[0]}{missing}", rel,
+                      why=why, warnings=warnings)
 
 
 def scenario_spool(path: str, name: str) -> tuple[ModelSpool, Any]:
@@ -422,7 +438,7 @@ def replay_model(store: Store, run_id: int, *, spool: ModelSpool, base_scenario:
         residual_db={k: ln.to_dict() for k, ln in lines.items()},
         residual_by_order=rs.by_order(res) if not res.empty else {},
         verdict=judged.verdict, patterns=judged.patterns, reason=judged.reason,
-        per_point=per_point)
+        per_point=per_point, model_why=spool.why, warnings=list(spool.warnings))
 
 
 def _num(v: Any) -> float | None:

@@ -74,6 +74,9 @@ def test_power_sweep_fit_and_twin_replay_are_consistent(night, capsys):
     code, out = _replay(capsys, db, "--twin")
     assert code == 0 and out["verdict"] == "consistent" and out["replay_of"] == 1
     assert out["model"].startswith("twin: fit ") and out["virtual"] is True
+    # the power sweep fitted alone gives gamma no U (no D known): the twin says so
+    assert "no fit of the spool claims a U" in out["model_why"]
+    assert len(out["warnings"]) == 1 and "not trustworthy" in out["warnings"][0]
     for key in FIRST:
         assert out["residual_db"][key]["rms"] <= 0.1, (key, out["residual_db"][key])
         assert out["residual_db"][key]["n"] == 25

@@ -26,7 +26,8 @@ def register(subparsers: argparse._SubParsersAction) -> None:
     p.add_argument("run_id", metavar="RUN_ID", type=int, help="run id (see 'labrun status')")
     how = p.add_mutually_exclusive_group(required=True)
     how.add_argument("--twin", action="store_true",
-                     help="model the spool by its latest stored fit (the run's own fit if none)")
+                     help="model the spool by its headline fit, as labrun spools shows it "
+                          "(the run's own fit if none stored)")
     how.add_argument("--scenario", metavar="FILE",
                      help="model the spool by one of a virtual-lab scenario's (with --spool)")
     how.add_argument("--traffic-log", metavar="FILE", nargs="?", const="",
@@ -101,6 +102,8 @@ def _model(args: argparse.Namespace) -> int:
         store.close()
     out = result.to_dict()
     if args.json:
+        for note in out["warnings"]:
+            print(f"labrun replay: WARNING: {note}", file=sys.stderr)
         print(json.dumps(out, indent=2))
     else:
         print(model_text(out))
@@ -111,6 +114,8 @@ def model_text(out: dict[str, Any]) -> str:
     """The residual summary and verdict for people."""
     text = [f"run {out['run_id']}: VIRTUAL replay of run {out['replay_of']} ({out['status']}, "
             f"{out['points_compared']} points compared)", f"  model: {out['model']}",
+            *([f"  fit used: {out['model_why']}"] if out.get("model_why") else []),
+            *(f"  WARNING: {note}" for note in out.get("warnings", [])),
             "  residual = measured - replayed, dB (u_c: combined standard uncertainty)",
             f"  {'line':<16} {'n':>4} {'mean':>8} {'rms':>7} {'max':>7} {'u_c':>6} "
             f"{'dB/h':>8} {'dB/dB':>7}  ok"]
