@@ -68,6 +68,11 @@ class Calibration(_Strict):
     # The total launched power read on the input tap (power meter calibration and tap ratio
     # together): fixes the arms' common launched-power offset in the exact fit (labrun.exactfit).
     tap_power_u_db: float = Field(0.1, ge=0.0, le=10.0)
+    # Point-to-point reading noise of a line on the OSA (repeatability, standard deviation in
+    # dB), the scatter the fits' Birge-ratio check expects beside osa_amplitude_u_db (labrun.
+    # exactfit.birge_checked); default 0.1 dB, common practice for a grating OSA on lines well
+    # above its floor. Above 0: the check divides by it.
+    osa_reading_noise_db: float = Field(0.1, gt=0.0, le=10.0)
 
 
 class Polarisation(_Strict):

@@ -39,7 +39,7 @@ from labrun.physics.fibre import Fibre
 from labrun.physics.fwm import sideband_mismatch_per_km
 from labrun.physics.nlse import propagate_tones
 from labrun.physics.units import dbm_to_w, effective_length_km
-from labrun.uncertainty import COMPONENTS, Component, Uncertainties, combine
+from labrun.uncertainty import COMPONENTS, READING_NOISE_DB, Component, Uncertainties, combine
 
 EXACT_MODEL = ("split-step NLSE (docs/design.md §5.4) as forward model: closed-form fit "
                "iterated on data corrected by split-step minus closed-form ratios")
@@ -73,12 +73,11 @@ NONLINEAR_D_HINT = ("fit a spacing run jointly, or measure at a smaller spacing 
                     "with a smaller uncertainty)")
 # Birge ratio (reduced chi-square) check of a fit's residuals against the scatter the stated
 # inputs explain. Per point: the bench's OSA relative amplitude u (taken as if it varied from
-# point to point, which overstates the scatter it makes) and a reading repeatability of a line
-# on the OSA of READING_NOISE_DB (common practice for a grating OSA on lines well above its
-# floor: a few hundredths to 0.1 dB). Warned when the reduced chi-square exceeds its 99.9 %
-# point for the fit's degrees of freedom (scipy.stats.chi2): with the stated scatter that
-# happens by chance in 1 fit of 1000.
-READING_NOISE_DB = 0.1
+# point to point, which overstates the scatter it makes) and the bench's reading repeatability
+# of a line on the OSA (osa_reading_noise_db, default READING_NOISE_DB = 0.1 dB, common practice
+# for a grating OSA on lines well above its floor: a few hundredths to 0.1 dB). Warned when the
+# reduced chi-square exceeds its 99.9 % point for the fit's degrees of freedom
+# (scipy.stats.chi2): with the stated scatter that happens by chance in 1 fit of 1000.
 BIRGE_P = 0.999
 BIRGE_CHECKED = {"gamma": 1, "gamma_small_signal": 1, "gamma_bessel": 1}  # parameters fitted
 
@@ -441,7 +440,7 @@ def fit_spool(runs_points: Sequence[Any], spool_length_km: float, loss_db_per_km
         closed.get("dispersion", FitResult(float("nan"), 0, 0, 0, "", "")).value)
     unc = uncertainties or Uncertainties()
     if theta is None or "spacing_ghz" not in t:
-        closed = birge_checked(closed, unc.osa_amplitude_db)
+        closed = birge_checked(closed, unc.osa_amplitude_db, unc.reading_noise_db)
         return without_u(closed, NO_D_REASON) if no_d else closed
     cop, _ = copolar_fractions(t, n, polarisation)
     current = closed
@@ -530,7 +529,7 @@ def fit_spool(runs_points: Sequence[Any], spool_length_km: float, loss_db_per_km
             comps.append(Component("model (closed form vs exact)", float("nan"), "", delta))
             u_c, u95 = combine(comps)
             out[cf] = replace(r, budget=[c.to_dict() for c in comps], u_combined=u_c, u95=u95)
-    out = birge_checked(out, unc.osa_amplitude_db)
+    out = birge_checked(out, unc.osa_amplitude_db, unc.reading_noise_db)
     return without_u(out, NO_D_REASON) if no_d else out
 
 
@@ -595,15 +594,16 @@ def mismatch_null(runs_points: Sequence[Any], length_km: float, loss_db_per_km: 
             "points_near_null": float(inside.sum())}
 
 
-def birge_checked(results: dict[str, FitResult], u_osa_db: float) -> dict[str, FitResult]:
+def birge_checked(results: dict[str, FitResult], u_osa_db: float,
+                  reading_noise_db: float = READING_NOISE_DB) -> dict[str, FitResult]:
     """The results with a Birge-ratio check of their residuals (in dB of line ratios): the
-    reduced chi-square sum(r^2) / ((n - p) sigma^2), sigma^2 = u_osa^2 + READING_NOISE_DB^2 the
-    per-point scatter the stated inputs explain; above its BIRGE_P point (scipy.stats.chi2,
-    n - p degrees of freedom) the result is warned, and ``extra["birge_ratio"]`` (sqrt of the
-    reduced chi-square) is kept either way."""
+    reduced chi-square sum(r^2) / ((n - p) sigma^2), sigma^2 = u_osa^2 + reading_noise_db^2
+    (the bench's osa_reading_noise_db) the per-point scatter the stated inputs explain; above
+    its BIRGE_P point (scipy.stats.chi2, n - p degrees of freedom) the result is warned, and
+    ``extra["birge_ratio"]`` (sqrt of the reduced chi-square) is kept either way."""
     from scipy.stats import chi2
 
-    sigma = math.hypot(float(u_osa_db), READING_NOISE_DB)
+    sigma = math.hypot(float(u_osa_db), float(reading_noise_db))
     n_disp = 3 if "dispersion_slope" in results else 2
     out = dict(results)
     for name, r in results.items():
@@ -624,7 +624,7 @@ def birge_checked(results: dict[str, FitResult], u_osa_db: float) -> dict[str, F
                 f"residual rms {r.residual_rms:.3g} dB is far above what the inputs explain: "
                 f"Birge ratio {math.sqrt(red):.3g} (reduced chi-square {red:.3g} on {dof} "
                 f"degrees of freedom, per-point sigma {sigma:.3g} dB from the OSA relative "
-                f"amplitude u {u_osa_db:g} dB and a reading noise of {READING_NOISE_DB:g} dB) "
+                f"amplitude u {u_osa_db:g} dB and a reading noise of {reading_noise_db:g} dB) "
                 f"above {math.sqrt(limit):.3g} (chi-square {BIRGE_P:.1%} point): the model does "
                 "not describe the data (a wrong given D, a null of the efficiency, an unstable "
                 "set-up)")

@@ -35,6 +35,11 @@ FROM_DEFAULT = "default"
 FROM_RECORD = "spool record"
 
 
+# Point-to-point reading noise of a line on a grating OSA well above its floor, dB (common
+# practice: a few hundredths to 0.1 dB); the bench's [calibration] osa_reading_noise_db.
+READING_NOISE_DB = 0.1
+
+
 @dataclass(frozen=True)
 class Uncertainties:
     """Standard uncertainties of a fit's inputs; defaults for a bench that states none.
@@ -46,7 +51,8 @@ class Uncertainties:
     spool set --length-u-km / --loss-u-db-per-km, see spool_terms), 0.1 dB for the total
     launched power measured on the input tap (power meter calibration and tap ratio together;
     used by the exact fit's launched-power offsets, labrun.exactfit, not a component of its
-    own).
+    own), 0.1 dB point-to-point reading noise of a line on the OSA (READING_NOISE_DB: the
+    scatter the Birge-ratio check expects, not a budget row).
     """
 
     power_a_db: float = 0.1
@@ -56,6 +62,7 @@ class Uncertainties:
     length_rel: float = DEFAULT_LENGTH_REL
     loss_db_per_km: float = DEFAULT_LOSS_U_DB_PER_KM
     tap_power_db: float = 0.1
+    reading_noise_db: float = READING_NOISE_DB
     length_from: str = ""  # where length_rel came from (FROM_RECORD, FROM_DEFAULT; "" unsaid)
     loss_from: str = ""  # where loss_db_per_km came from
 
@@ -69,7 +76,8 @@ class Uncertainties:
     def from_calibration(cls, cal, **spool) -> Uncertainties:
         """From a bench's [calibration] (labrun.bench.Calibration) and optional spool terms."""
         return cls(cal.power_a_u_db, cal.power_b_u_db, cal.osa_amplitude_u_db,
-                   cal.wavelength_u_pm, **spool, tap_power_db=cal.tap_power_u_db)
+                   cal.wavelength_u_pm, **spool, tap_power_db=cal.tap_power_u_db,
+                   reading_noise_db=cal.osa_reading_noise_db)
 
 
 def spool_terms(length_km: float, length_u_km: float | None,

@@ -41,6 +41,7 @@ def test_partial_bench_and_defaults(tmp_path):
     bench = load_bench(path)
     assert bench.settle_scale == 1.0 and bench.calibration.path_loss_a_db == 0.0
     assert bench.calibration.tap_power_u_db == 0.1  # documented default (common practice)
+    assert bench.calibration.osa_reading_noise_db == 0.1  # documented default (common practice)
     assert bench.instruments["osa"].backend == "@py"
     assert "laser_a" in bench.missing_sweep_roles()
 
@@ -111,6 +112,16 @@ BAD = [
      "input_tap_db = 20.0\ntap_power_u_db = nan", "calibration.tap_power_u_db"),
     ("tap uncertainty as text", "input_tap_db = 20.0",
      'input_tap_db = 20.0\ntap_power_u_db = "0.1 dB"', "calibration.tap_power_u_db"),
+    # the OSA's per-point reading noise of the Birge-ratio check (above 0: it divides by it)
+    ("zero reading noise", "input_tap_db = 20.0",
+     "input_tap_db = 20.0\nosa_reading_noise_db = 0", "calibration.osa_reading_noise_db"),
+    ("negative reading noise", "input_tap_db = 20.0",
+     "input_tap_db = 20.0\nosa_reading_noise_db = -0.1", "calibration.osa_reading_noise_db"),
+    ("nan reading noise", "input_tap_db = 20.0",
+     "input_tap_db = 20.0\nosa_reading_noise_db = nan", "calibration.osa_reading_noise_db"),
+    ("reading noise as text", "input_tap_db = 20.0",
+     'input_tap_db = 20.0\nosa_reading_noise_db = "0.1 dB"',
+     "calibration.osa_reading_noise_db"),
 ]
 
 

@@ -276,6 +276,11 @@ class VirtualLab:
             f"wavelength_u_pm = {self._u_wavelength_pm()!r}",
             "# the tap power meter's fixed calibration offset (realism power_meter_offset_db)",
             f"tap_power_u_db = {self._u_tap_db()!r}",
+            # osa_reading_noise_db left at its default (0.1 dB, common practice): the virtual
+            # OSA's noise (realism osa_noise_db, physics.osa.synthesize_trace) moves only the
+            # floor and ASE, so lines well above the floor carry no reading noise to state
+            "# osa_reading_noise_db: the default 0.1 dB; the virtual OSA's noise (realism "
+            "osa_noise_db) is on its floor only, not on the lines",
             "",
             "[polarisation]  # the virtual controller: tone a along +s1, paddles fed with +s1",
             'controller = "quarter-half-quarter"',
