@@ -584,6 +584,7 @@ class Runner:
             try:
                 with PointWatchdog(bound, self.overrun) as self.watchdog:
                     traces = self.attempt_point(spec, settings, kinds)
+                self.overran_after_last_check()
                 self.dark_since = None
                 return traces, traces[0].reduction, attempt
             except InstrumentError as exc:
@@ -609,6 +610,15 @@ class Runner:
     def darken_bench(self) -> list[str]:
         """Every source off at once (labrun/safe_off.py); the problems left."""
         return darken(self.bench, self.instruments)
+
+    def overran_after_last_check(self) -> None:
+        """PointOverrun when the (now disarmed) watchdog fired after the attempt's last
+        ``check_progress``: its thread darkened the bench all the same, so the point is not
+        done and the loop must know the light is off (a ``dark`` event, then ``prepare``)."""
+        dog = self.watchdog
+        if dog is not None and dog.fired.is_set():
+            raise PointOverrun(f"point took longer than its bound of {dog.bound_s:.1f} s; "
+                               "sources switched off")
 
     def check_progress(self) -> None:
         """In the run loop: PointOverrun once the current attempt's watchdog fired, or once a

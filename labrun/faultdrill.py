@@ -203,10 +203,11 @@ def _last(watch: StateWatch, roles: list[str]) -> float | None:
 
 def measure(row: FaultRow, folder: Path, *, timeouts_ms: dict[str, int] | None = None,
             policy: Any = None, n_points: int = 400, after_points: int = 3,
-            busy_timeout_ms: int | None = None) -> Measured:
+            busy_timeout_ms: int | None = None, seams: Any = None) -> Measured:
     """Run ``n_points`` on a fresh virtual lab, force ``row`` once ``after_points`` are stored,
     and time the way out from the fault against the lab's own state. ``busy_timeout_ms``:
-    how long SQLite waits for a lock (default: the store's own)."""
+    how long SQLite waits for a lock (default: the store's own); ``seams``: the engine's
+    (``labrun.engine.Seams``; default the real ones)."""
     import labrun.store.db as store_db
 
     saved = store_db.BUSY_TIMEOUT_MS
@@ -214,13 +215,13 @@ def measure(row: FaultRow, folder: Path, *, timeouts_ms: dict[str, int] | None =
         store_db.BUSY_TIMEOUT_MS = busy_timeout_ms
     try:
         return _measure(row, folder, timeouts_ms=timeouts_ms, policy=policy,
-                        n_points=n_points, after_points=after_points)
+                        n_points=n_points, after_points=after_points, seams=seams)
     finally:
         store_db.BUSY_TIMEOUT_MS = saved
 
 
 def _measure(row: FaultRow, folder: Path, *, timeouts_ms: dict[str, int] | None,
-             policy: Any, n_points: int, after_points: int) -> Measured:
+             policy: Any, n_points: int, after_points: int, seams: Any) -> Measured:
     """``measure`` with the store's busy timeout already set."""
     from labrun.bench import load_bench
     from labrun.engine import run_plan
@@ -256,7 +257,7 @@ def _measure(row: FaultRow, folder: Path, *, timeouts_ms: dict[str, int] | None,
         thread.start()
         try:
             out = run_plan(plan, bench, store, operator=OPERATOR, unattended=True,
-                           ack_safety=True, progress=False, policy=policy)
+                           ack_safety=True, progress=False, policy=policy, seams=seams)
         finally:
             fault_at["end"] = time.monotonic()
             thread.join()
