@@ -209,13 +209,14 @@ def _reduce_trace(*args: Any, **kwargs: Any) -> Any:
 class Seams:
     """What a run calls outside the engine: how the bench opens, how the sources' states are
     read, how a trace is reduced, how long an attempt at a point may take (the watchdog's
-    bound), the clock, the sleep, and the safe-off guard of the run (made from the bench). The
-    defaults are the real ones; tests pass their own."""
+    bound) and the watchdog that holds it to that, the clock, the sleep, and the safe-off guard
+    of the run (made from the bench). The defaults are the real ones; tests pass their own."""
 
     open_bench: Callable[..., Any] = open_bench
     source_readings: Callable[..., Any] = source_readings
     reduce_trace: Callable[..., Any] = _reduce_trace
     point_bound_s: Callable[[float, int, Any], float] = point_bound_s
+    watchdog: Callable[[float, Callable[[], None]], PointWatchdog] = PointWatchdog
     clock: Callable[[], float] = time.monotonic
     sleep: Callable[[float], None] = time.sleep
     guard: Callable[[Any], SafeOffGuard] = SafeOffGuard
@@ -231,6 +232,7 @@ class Runner:
         seams = seams or Seams()  # the run's collaborators (the guard is passed made)
         self.open_bench, self.reduce_trace = seams.open_bench, seams.reduce_trace
         self.source_readings, self.point_bound_s = seams.source_readings, seams.point_bound_s
+        self.make_watchdog = seams.watchdog
         # a readings seam that takes ``between`` lets the reduction overlap the watch's replies
         self.readings_take_between = ("between" in
                                       inspect.signature(seams.source_readings).parameters)
@@ -582,7 +584,7 @@ class Runner:
             if self.darkened is not None:  # a database fault darkened the bench meanwhile
                 self.go_dark(self.darkened, done=True)
             try:
-                with PointWatchdog(bound, self.overrun) as self.watchdog:
+                with self.make_watchdog(bound, self.overrun) as self.watchdog:
                     traces = self.attempt_point(spec, settings, kinds)
                 self.overran_after_last_check()
                 self.dark_since = None

@@ -86,7 +86,7 @@ def test_an_attempt_that_outlives_its_bound_goes_dark(tmp_path):
     assert store.events(out.run_id, ["dark"])
 
 
-def test_a_watchdog_that_fires_after_the_attempts_last_check_still_counts(tmp_path, monkeypatch):
+def test_a_watchdog_that_fires_after_the_attempts_last_check_still_counts(tmp_path):
     """The watchdog fires after the attempt's last look at it (here: while the trace is reduced,
     after the sources' watch passed); its thread darkens the bench all the same. The loop must
     count it as a fault (a ``dark`` event, the point taken again through the switch-on
@@ -103,12 +103,10 @@ def test_a_watchdog_that_fires_after_the_attempts_last_check_still_counts(tmp_pa
 
     dogs: list[PointWatchdog] = []
 
-    class Recorded(PointWatchdog):
-        def __enter__(self) -> PointWatchdog:
-            dogs.append(self)
-            return super().__enter__()
+    def watchdog(bound_s, on_overrun):
+        dogs.append(PointWatchdog(bound_s, on_overrun))
+        return dogs[-1]
 
-    monkeypatch.setattr(labrun.engine, "PointWatchdog", Recorded)
     fired_late: list[bool] = []
 
     with VirtualLab(scenario()) as lab:
@@ -140,7 +138,8 @@ def test_a_watchdog_that_fires_after_the_attempts_last_check_still_counts(tmp_pa
                                      operator="T. Varga", unattended=True, ack_safety=True,
                                      progress=False, policy=RetryPolicy(attempts=3, backoff_s=0),
                                      seams=labrun.engine.Seams(reduce_trace=reduce_trace,
-                                                               source_readings=readings))
+                                                               source_readings=readings,
+                                                               watchdog=watchdog))
         assert lab.sources_off()
     assert fired_late
     assert out.status == "completed" and out.points_done == 3, out

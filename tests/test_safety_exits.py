@@ -137,18 +137,33 @@ def test_connection_lost_for_good(tmp_path):
 
 
 def test_interlock_opened_by_the_scenario(tmp_path):
-    at_s = 1.5
+    """The event's clock starts once the run has stored a point (not when the lab starts: on a
+    loaded machine the bench opening alone outlived a fixed 1.5 s, and the interlock was open
+    before anything was lit), so the interlock always opens on a lit, running bench."""
+    at_s = 0.3
     sc = scenario(events=[{"at_s": at_s, "action": "open_interlock"}])
-    with VirtualLab(sc) as lab:
+    with VirtualLab(sc, hold_events=True) as lab:
         plan, bench, store = _setup(tmp_path, lab, n_points=2000)
         # Timed on the lab's own state: from the scheduled opening (the event fires no earlier)
         # to the first moment the interlock is open and every source is off, attenuators at max.
         watch = StateWatch({"dark": lambda: not lab.state.interlock_closed and dark(lab)})
-        watch.arm(lab.events_from + at_s)
+        running = threading.Event()
+
+        def open_later() -> None:
+            """Start the events' clock (and the watch from the opening) once a point is in."""
+            if wait_for(lambda: running.is_set() or count_points(tmp_path / "runs.db") >= 1,
+                        60) is not None and not running.is_set():
+                lab.start_events()
+                watch.arm(lab.events_from + at_s)
+
+        opener = threading.Thread(target=open_later, name="open-later", daemon=True)
+        opener.start()
         try:
             out = _run(plan, bench, store)
             assert wait_for(lambda: watch.after("dark") is not None, OFF_WITHIN_S) is not None
         finally:
+            running.set()
+            opener.join()
             watch.stop()
         assert out.status == "aborted" and "interlock" in out.reason
         assert 0 < out.points_done < 2000
