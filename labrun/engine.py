@@ -254,6 +254,9 @@ class Runner:
         self.read_tap = bool(getattr(plan, "tap_power", True)) and "power_meter" in \
             bench.instruments
         self.tap: dict[str, float] | None = None  # the last reading (``tap_reading``)
+        # the roles a point's settings go to: the tap meter's wavelength only when it is read
+        self.setting_roles = set(bench.instruments) - (set() if self.read_tap else
+                                                       {"power_meter"})
         self.input_every = plan.osa.input_every if plan.capture_input else 0
         self.stops = StopWatch(plan.stop_conditions)
         # The plan's settle time of each group of settings: the longest of the axes driving it.
@@ -395,8 +398,7 @@ class Runner:
                                          self.bench)
         values = {**setpoint, **asdict(got)}  # what safety worked out wins over the setpoint
         return [Setting(t.role, t.method, t.value, self.settle[t.group])
-                for t in targets(values, self.bench.instruments)
-                if t.role != "power_meter" or self.read_tap]
+                for t in targets(values, self.setting_roles)]
 
     def write(self, settings: Sequence[Setting]) -> Pending:
         """Check every setting that changed (ranges, caps: nothing is sent if one fails), then
@@ -619,16 +621,14 @@ class Runner:
         done and the loop must know the light is off (a ``dark`` event, then ``prepare``)."""
         dog = self.watchdog
         if dog is not None and dog.fired.is_set():
-            raise PointOverrun(f"point took longer than its bound of {dog.bound_s:.1f} s; "
-                               "sources switched off")
+            raise dog.overrun()
 
     def check_progress(self) -> None:
         """In the run loop: PointOverrun once the current attempt's watchdog fired, or once a
         database fault darkened the bench (the attempt is not finished in the dark)."""
         dog = self.watchdog
         if dog is not None and dog.overdue():
-            raise PointOverrun(f"point took longer than its bound of {dog.bound_s:.1f} s; "
-                               "sources switched off")
+            raise dog.overrun()
         if self.darkened is not None:
             raise PointOverrun(self.darkened)
 

@@ -251,9 +251,11 @@ def fit_power_offsets(t: dict[str, np.ndarray], tone_corr_db: np.ndarray, u_a_db
             rows.append([1.0 / u[i] if j == i else 0.0 for j in range(2)])
             rhs.append(0.0)
     value, cov = np.zeros(2), np.zeros((2, 2))
-    tap = None
-    for _ in range(TAP_ITERATIONS if u_tap_db is not None else 1):
+    tap = tap_at_zero = None
+    for it in range(TAP_ITERATIONS):
         tap = None if u_tap_db is None else _tap_row(t, value, float(u_tap_db))
+        if it == 0:
+            tap_at_zero = tap  # value is still (0, 0): the raw measured-minus-recorded mean
         all_rows, all_rhs = list(rows), list(rhs)
         if tap is not None:
             all_rows.append(list(tap[0] / tap[3]))
@@ -269,10 +271,8 @@ def fit_power_offsets(t: dict[str, np.ndarray], tone_corr_db: np.ndarray, u_a_db
         if tap is None:
             break
     tap_db, tap_u, n_tap = float("nan"), float("nan"), 0
-    if tap is not None:
-        at_zero = _tap_row(t, np.zeros(2), float(u_tap_db or 0.0))
-        assert at_zero is not None  # same points as ``tap``
-        tap_db, tap_u, n_tap = at_zero[2], tap[3], tap[4]
+    if tap is not None and tap_at_zero is not None:
+        tap_db, tap_u, n_tap = tap_at_zero[2], tap[3], tap[4]
     return PowerOffsets(value, cov, u, diff, diff_u, n_tone, tap_db, tap_u, n_tap)
 
 
@@ -436,8 +436,7 @@ def fit_spool(runs_points: Sequence[Any], spool_length_km: float, loss_db_per_km
         "reference_wavelength_nm": reference_wavelength_nm, "polarisation": polarisation}
     closed = fit_run(t, spool_length_km, loss_db_per_km, **kw, uncertainties=uncertainties)
     theta = _params(closed, dispersion_ps_per_nm_km, slope_ps_per_nm2_km)
-    no_d = dispersion_ps_per_nm_km is None and not math.isfinite(
-        closed.get("dispersion", FitResult(float("nan"), 0, 0, 0, "", "")).value)
+    no_d = dispersion_ps_per_nm_km is None and dispersion_of(closed) is None
     unc = uncertainties or Uncertainties()
     if theta is None or "spacing_ghz" not in t:
         closed = birge_checked(closed, unc.osa_amplitude_db, unc.reading_noise_db)
@@ -479,13 +478,14 @@ def fit_spool(runs_points: Sequence[Any], spool_length_km: float, loss_db_per_km
                               uncertainties=uncertainties, dispersion_start=start)
     mc = {}
     given = {}
-    if dispersion_ps_per_nm_km is not None and dispersion_u_ps_per_nm_km > 0:
-        given["dispersion_ps_per_nm_km"] = (dispersion_ps_per_nm_km, dispersion_u_ps_per_nm_km)
-    if dispersion_ps_per_nm_km is not None and slope_u_ps_per_nm2_km > 0:
-        given["slope_ps_per_nm2_km"] = (slope_ps_per_nm2_km, slope_u_ps_per_nm2_km)
+    if dispersion_ps_per_nm_km is not None:
+        if dispersion_u_ps_per_nm_km > 0:
+            given["dispersion_ps_per_nm_km"] = (dispersion_ps_per_nm_km,
+                                                dispersion_u_ps_per_nm_km)
+        if slope_u_ps_per_nm2_km > 0:
+            given["slope_ps_per_nm2_km"] = (slope_ps_per_nm2_km, slope_u_ps_per_nm2_km)
     if monte_carlo > 0:
-        mc = _monte_carlo(current, t2, spool_length_km, loss_db_per_km, kw,
-                          uncertainties or Uncertainties(),
+        mc = _monte_carlo(current, t2, spool_length_km, loss_db_per_km, kw, unc,
                           offsets.cov if power_offsets else None, monte_carlo, mc_seed, given)
     step = [abs(a - b) for a, b in zip(history[-1], history[-2], strict=True)]
     # points whose spacing is the one read on the OSA (fits.points_table), not the set one

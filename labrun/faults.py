@@ -121,6 +121,11 @@ class PointWatchdog:
     def __exit__(self, *exc_info: object) -> None:
         MONITOR.disarm(self)
 
+    def overrun(self) -> PointOverrun:
+        """The fault the run loop raises once this watchdog fired (the light is off)."""
+        return PointOverrun(f"point took longer than its bound of {self.bound_s:.1f} s; "
+                            "sources switched off")
+
     def overdue(self) -> bool:
         """True once the bound has passed: fired by the monitor thread, or now by the caller
         (``on_overrun`` then runs in the caller's thread before this returns)."""

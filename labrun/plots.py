@@ -102,10 +102,10 @@ def plot_power_slopes(path: str | Path, points, results: dict, *, max_order: int
 def u_kinds(entries: list[dict]) -> str:
     """'U k=2', 'U95 t' or 'U k=2 / U95 t': the kinds of expanded uncertainty among the entries
     that claim one (as labrun fit labels them; spoolfits.u_label), '-' for none."""
+    from labrun.compare import comparable
     from labrun.spoolfits import u_label
 
-    kinds = sorted({u_label(e.get("u95_kind")) for e in entries
-                    if e and e.get("u95") is not None and e.get("comparable") is not False})
+    kinds = sorted({u_label(e.get("u95_kind")) for e in entries if e and comparable(e)})
     return " / ".join(kinds) or "-"
 
 

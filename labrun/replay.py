@@ -233,7 +233,6 @@ def _current_point(store: Store, replay_id: int, plan: Any) -> str:
 # ------------------------------------------------------------------------------------------------
 # Gamma fits a twin takes, preferred first (then any other fit whose name starts with gamma);
 # the order the spool's headline reads gamma in (exact model first).
-TWIN_GAMMA_FITS = ("gamma", "gamma_bessel", "gamma_small_signal")
 
 
 @dataclass
@@ -276,7 +275,7 @@ def twin_spool(store: Store, run: Any) -> ModelSpool:
     """The spool's headline fit (``compare.headline_fit``, the fit ``labrun spools`` shows; the
     run's own one-spool fit when no fit is stored yet) as a model spool: gamma, dispersion and
     slope from the fit, length and loss from the record; warned when its gamma claims no U."""
-    from labrun.compare import headline_fit, headline_why
+    from labrun.compare import GAMMA, headline_fit, headline_why
     from labrun.spoolfits import fit_history, fit_runs
     from labrun.store.models import Spool
     from labrun.vlab.scenario import SpoolSpec
@@ -295,8 +294,8 @@ def twin_spool(store: Store, run: Any) -> ModelSpool:
     why = f"{where}: {why}" + "".join(f"; newer fit {n['fit_id']} not used ({n['why']})"
                                       for n in newer)
     params = record.parameters
-    named = [n for n in TWIN_GAMMA_FITS if n in params] + sorted(
-        n for n in params if n.startswith("gamma") and n not in TWIN_GAMMA_FITS)
+    named = [n for n in GAMMA if n in params] + sorted(
+        n for n in params if n.startswith("gamma") and n not in GAMMA)
     gamma = next((params[n] for n in named if params[n].value is not None), None)
     if gamma is None:
         raise InputError(f"the {where} has no gamma: run 'labrun fit' on a power sweep of "

@@ -124,6 +124,7 @@ def _efficiency_plot(table: Any, fit: Any, spool: Any, out: Path) -> str | None:
     matplotlib.use("Agg")
     import matplotlib.pyplot as plt
 
+    from labrun.compare import sign_determined
     from labrun.physics.fibre import Fibre
     from labrun.physics.fwm import small_signal_sideband_w
     from labrun.physics.units import dbm_to_w
@@ -145,7 +146,7 @@ def _efficiency_plot(table: Any, fit: Any, spool: Any, out: Path) -> str | None:
         pb = float(dbm_to_w(table["power_b_dbm"].median()))
         model = small_signal_sideband_w(fibre, pa, pb, lam, grid, "high") / \
             (pb * math.exp(-fibre.alpha_per_km * fibre.length_km))
-        d_text = (f"D {disp.value:.3g}" if (disp.extra or {}).get("sign_determined")
+        d_text = (f"D {disp.value:.3g}" if sign_determined(disp)
                   else f"|D| {abs(disp.value):.3g}")
         ax.semilogx(grid, 10 * np.log10(model), "-",
                     label=f"fit: {d_text} {disp.unit}, gamma {gamma.value:.3g}")

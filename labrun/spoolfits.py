@@ -556,29 +556,7 @@ def fit_runs(store: Store, run_ids: list[int], *, save: bool = True,
     results = _fit_tables(tables, spool, bench_text, monte_carlo=monte_carlo)
     results = _with_warnings(results, shared_offset_warnings(origins))
     params = {name: from_fit(r) for name, r in results.items()}
-    from labrun.exactfit import NO_D_HINT, NO_D_REASON
-
-    if any(str(p.extra.get("no_u_reason", "")).startswith(NO_D_REASON)
-           for p in params.values()):
-        others = spacing_runs(store, spool.id, run_ids)
-        hint = NO_D_HINT.replace("LABEL", spool.label)
-        if others:
-            hint = (f"run{'s' if len(others) > 1 else ''} {', '.join(map(str, others))} of "
-                    f"{spool.label} sweep{'' if len(others) > 1 else 's'} the spacing: labrun "
-                    f"fit {' '.join(map(str, [*run_ids, *others]))} fits them jointly (or give "
-                    f"the D: labrun spool set {spool.label} --dispersion D --dispersion-u U)")
-        for p in params.values():
-            if str(p.extra.get("no_u_reason", "")).startswith(NO_D_REASON):
-                p.extra["no_u_hint"] = hint
-    nonlinear = [p for p in params.values() if p.extra.get("no_u_reason")
-                 and not str(p.extra["no_u_reason"]).startswith(NO_D_REASON)]
-    others = spacing_runs(store, spool.id, run_ids) if nonlinear else []
-    for p in nonlinear if others else []:
-        p.extra["no_u_hint"] = (
-            f"run{'s' if len(others) > 1 else ''} {', '.join(map(str, others))} of "
-            f"{spool.label} sweep{'' if len(others) > 1 else 's'} the spacing: labrun fit "
-            f"{' '.join(map(str, [*run_ids, *others]))} fits them jointly (or measure at a "
-            "smaller spacing)")
+    _add_no_u_hints(params, store, spool, run_ids)
     record = FitRecord(spool=spool.label, run_ids=run_ids, parameters=params,
                        spool_snapshot={"length_km": spool.length_km,
                                        "loss_db_per_km": spool.loss_db_per_km,
@@ -590,6 +568,29 @@ def fit_runs(store: Store, run_ids: list[int], *, save: bool = True,
 
 
 SPACING_RUNS_LOOKED_AT = 20  # the newest runs of the spool searched for a spacing sweep
+
+
+def _add_no_u_hints(params: dict[str, ParameterRecord], store: Store, spool: Spool,
+                    run_ids: list[int]) -> None:
+    """Each parameter that claims no U gets the hint what to do: fit the spool's spacing runs
+    jointly when the store has some (one query), else, for an unknown D, give the D."""
+    from labrun.exactfit import NO_D_HINT, NO_D_REASON
+
+    no_u = [p for p in params.values() if p.extra.get("no_u_reason")]
+    if not no_u:
+        return
+    others = spacing_runs(store, spool.id, run_ids)
+    for p in no_u:
+        no_d = str(p.extra["no_u_reason"]).startswith(NO_D_REASON)
+        if others:
+            tail = (f"give the D: labrun spool set {spool.label} --dispersion D "
+                    "--dispersion-u U" if no_d else "measure at a smaller spacing")
+            p.extra["no_u_hint"] = (
+                f"run{'s' if len(others) > 1 else ''} {', '.join(map(str, others))} of "
+                f"{spool.label} sweep{'' if len(others) > 1 else 's'} the spacing: labrun fit "
+                f"{' '.join(map(str, [*run_ids, *others]))} fits them jointly (or {tail})")
+        elif no_d:
+            p.extra["no_u_hint"] = NO_D_HINT.replace("LABEL", spool.label)
 
 
 def spacing_runs(store: Store, spool_id: int, exclude: list[int]) -> list[int]:

@@ -11,7 +11,7 @@ import subprocess
 import sys
 import time
 import tomllib
-from collections.abc import Callable, Iterator
+from collections.abc import Callable, Iterator, Sequence
 from pathlib import Path
 from typing import Any
 
@@ -42,12 +42,13 @@ def scenario(*, dialect: str = "generic", **changes: Any) -> dict[str, Any]:
     return data
 
 
-def plan_text(powers: list[float], *, orders: int = 2, extra: str = "") -> str:
+def plan_text(powers: Sequence[float], *, orders: int = 2, extra: str = "",
+              spool: str = "HNLF-A17") -> str:
     """A zipped equal-power sweep at 1550 nm, 100 GHz spacing (invented lab values)."""
     vals = ", ".join(f"{p:g}" for p in powers)
     return f"""[plan]
 name = "engine test sweep"
-spool = "HNLF-A17"
+spool = "{spool}"
 orders = {orders}
 
 [fixed]

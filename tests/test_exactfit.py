@@ -8,15 +8,13 @@ small-signal model is biased by more than 1 % in gamma; the exact-model fit must
 
 from __future__ import annotations
 
-import math
 import time
 
 import numpy as np
 import pytest
-from _rk4ip import rk4ip_tones
+from _rk4ip_rows import rk4ip_lines
 
 from labrun.exactfit import fit_spool
-from labrun.lines import line_id
 from labrun.physics.fibre import Fibre
 
 # Invented highly nonlinear spool in realistic ranges (normal dispersion near zero).
@@ -25,16 +23,8 @@ FIB = Fibre(1.0, 0.9, 11.0, -0.3, 0.019, 1550.0)
 
 def _row(p_dbm: float, spacing: float, lam: float) -> dict:
     """One point: equal tones, line powers (dBm) from RK4IP for k = -2..3."""
-    p = 10 ** (p_dbm / 10) * 1e-3
-    ref = rk4ip_tones(p, p, spacing * 1e-3, FIB.length_km, FIB.alpha_per_km,
-                      FIB.beta2_at(lam), FIB.beta3_at(lam), FIB.gamma_per_w_per_km,
-                      n_time=64, n_steps=200)
-    row = {"power_a_dbm": p_dbm, "power_b_dbm": p_dbm, "spacing_ghz": spacing,
-           "wavelength_a_nm": lam}
-    for k in range(-2, 4):
-        ln = line_id(k)
-        row[f"{ln.kind}_{ln.side}_{ln.order}"] = 10 * math.log10(ref[k] * 1e3)
-    return row
+    return {"power_a_dbm": p_dbm, "power_b_dbm": p_dbm, "spacing_ghz": spacing,
+            "wavelength_a_nm": lam, **rk4ip_lines(FIB, p_dbm, spacing, lam)}
 
 
 @pytest.fixture(scope="module")

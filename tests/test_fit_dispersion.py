@@ -133,12 +133,16 @@ def test_given_dispersion_brings_gamma_within_u(db, capsys, tmp_path):
     # was not: a fit that ignored the given D fails here
     assert abs(g["value"] - gamma_true) <= g["u95"]
     assert abs(g["value"] - gamma_true) < 0.02 * gamma_true
+    # the figures docs/models.md quotes for this case (gamma 8.870, U 0.755, D row 0.369)
+    assert g["value"] == pytest.approx(8.870, abs=0.005)
+    assert g["u95"] == pytest.approx(0.755, rel=0.02)
     assert g["dispersion_used"] == {"source": "spool record (labrun spool set)",
                                     "d_ps_per_nm_km": 2.69, "u_ps_per_nm_km": 0.05,
                                     "slope_ps_per_nm2_km": 0.05, "reference_wavelength_nm": 1550.0}
     rows = {r["source"]: r for r in g["budget"]}
     row = rows[D_SOURCE]
     assert row["u_input"] == 0.05 and row["contribution"] > 0.05 * g["value"] * 0.1
+    assert row["contribution"] == pytest.approx(0.369, rel=0.02)
     # GUM 5.1.2 / 6.2.1: u_c is the root sum of squares with the new row, U = 2 u_c
     assert g["u_combined"] == pytest.approx(
         sum(r["contribution"] ** 2 for r in g["budget"] if r["contribution"] is not None) ** 0.5,

@@ -22,13 +22,12 @@ import math
 import numpy as np
 import pytest
 from _engine_support import OPERATOR, plan_text, scenario
-from _rk4ip import rk4ip_tones
+from _rk4ip_rows import rk4ip_lines
 
 from labrun.bench import load_bench
 from labrun.engine import run_plan
 from labrun.exactfit import fit_spool
 from labrun.fits import SET_SPACING, fit_run, points_table
-from labrun.lines import line_id
 from labrun.physics.fibre import Fibre
 from labrun.plan import parse_plan
 from labrun.queries import run_points
@@ -50,16 +49,9 @@ def _row(p_dbm: float, set_ghz: float, lam: float) -> dict:
     lam_a = lam + DLAM_A
     lam_b = C_NM_THZ / (C_NM_THZ / lam + set_ghz * 1e-3) + DLAM_B
     real_ghz = (C_NM_THZ / lam_b - C_NM_THZ / lam_a) * 1e3
-    p = 10 ** (p_dbm / 10) * 1e-3
-    ref = rk4ip_tones(p, p, real_ghz * 1e-3, FIB.length_km, FIB.alpha_per_km,
-                      FIB.beta2_at(lam_a), FIB.beta3_at(lam_a), FIB.gamma_per_w_per_km,
-                      n_time=64, n_steps=200)
-    row = {"power_a_dbm": p_dbm, "power_b_dbm": p_dbm, "spacing_ghz": set_ghz,
-           "wavelength_a_nm": lam, "measured_spacing_ghz": real_ghz}
-    for k in range(-2, 4):
-        ln = line_id(k)
-        row[f"{ln.kind}_{ln.side}_{ln.order}"] = 10 * math.log10(ref[k] * 1e3)
-    return row
+    return {"power_a_dbm": p_dbm, "power_b_dbm": p_dbm, "spacing_ghz": set_ghz,
+            "wavelength_a_nm": lam, "measured_spacing_ghz": real_ghz,
+            **rk4ip_lines(FIB, p_dbm, real_ghz, lam_a)}
 
 
 @pytest.fixture(scope="module")

@@ -30,6 +30,8 @@ PARAMS = {
                                           "dispersion_used_ps_per_nm_km": -0.3,
                                           "dispersion_used_u_ps_per_nm_km": 0.1})},
     "no_u": {"gamma": _gamma(4.6, None, {"no_u_reason": "dispersion unknown: no spacing run"})},
+    "no_u_later": {"gamma": _gamma(4.9, None,
+                                   {"no_u_reason": "dispersion unknown: no spacing run"})},
 }
 
 
@@ -65,9 +67,9 @@ def test_a_fit_with_a_given_d_outranks_a_newer_one_without_u(tmp_path):
 
 
 def test_no_fit_with_u_uses_the_newest_and_warns(tmp_path):
-    twin, ids = _twin(tmp_path, ["no_u", "no_u"])
+    twin, ids = _twin(tmp_path, ["no_u", "no_u_later"])
     assert f"fit {ids[1]} of {LABEL}" in twin.source  # the newest
-    assert twin.spec.gamma_per_w_per_km == 4.6
+    assert twin.spec.gamma_per_w_per_km == 4.9  # its value, not the older fit's 4.6
     (warning,) = twin.warnings
     assert "not trustworthy" in warning and "dispersion unknown" in warning
     assert "no fit of the spool claims a U" in twin.why

@@ -28,7 +28,7 @@ import time
 from pathlib import Path
 
 import pytest
-from _engine_support import OPERATOR
+from _engine_support import OPERATOR, plan_text
 
 from labrun.bench import load_bench
 from labrun.cli import main
@@ -54,7 +54,7 @@ OWN = {"name": "DSF-T11", "length_km": 1.6, "loss_db_per_km": 0.35,
        "gamma_per_w_per_km": 4.3, "dispersion_ps_per_nm_km": 1.5,
        "dispersion_slope_ps_per_nm2_km": 0.0, "reference_wavelength_nm": 1550.0}
 POWERS_DBM = (-4.0, -2.0, 0.0)  # per tone, launched into the spool
-SPACING_GHZ = 100.0
+SPACING_GHZ = 100.0  # as _engine_support.plan_text sets it
 C = 299_792_458.0  # m/s (SI, exact)
 
 
@@ -66,27 +66,8 @@ def spool_toml(**values: object) -> str:
 
 
 def plan_toml(spool: str) -> str:
-    """A zipped equal-power sweep at 1550 nm, 100 GHz (invented lab values)."""
-    vals = ", ".join(f"{p:g}" for p in POWERS_DBM)
-    return f"""[plan]
-name = "own spool rehearsal"
-spool = "{spool}"
-orders = 1
-
-[fixed]
-wavelength_a_nm = 1550.0
-spacing_ghz = {SPACING_GHZ}
-pol_angles_deg = [0.0, 0.0, 0.0]
-
-[axes.power_a_dbm]
-values = [{vals}]
-
-[axes.power_b_dbm]
-values = [{vals}]
-
-[order]
-zip = [["power_a_dbm", "power_b_dbm"]]
-"""
+    """A zipped equal-power sweep at 1550 nm, 100 GHz (invented lab values), first orders."""
+    return plan_text(POWERS_DBM, orders=1, spool=spool)
 
 
 def inoue_ratio_db(spool: dict, p_a_dbm: float, p_b_dbm: float) -> float:

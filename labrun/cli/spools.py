@@ -6,11 +6,12 @@ import argparse
 import json
 from typing import Any
 
+from labrun.compare import GAMMA
 from labrun.store import DEFAULT_DB
 
 # What ``spools`` and ``compare`` show of a fit, in order: (column, fit parameter names in order
 # of preference). Gamma from the dual-frequency Bessel fit when there is one.
-HEADLINE = (("gamma_per_w_per_km", ("gamma", "gamma_bessel", "gamma_small_signal")),
+HEADLINE = (("gamma_per_w_per_km", GAMMA),
             ("dispersion_ps_per_nm_km", ("dispersion",)),
             ("dispersion_slope_ps_per_nm2_km", ("dispersion_slope",)))
 
@@ -266,15 +267,18 @@ def cmd_spool_set(args: argparse.Namespace) -> int:
                 raise InputError(f"no spool {args.label!r}", field="LABEL")
             for name, value in given.items():
                 setattr(spool, name, value)
+            params = dict(spool.params or {})
             if dispersion is not None or args.forget_dispersion:
-                params = {k: v for k, v in (spool.params or {}).items() if k != DISPERSION_KEY}
-                if dispersion is not None:
-                    params[DISPERSION_KEY] = dispersion.to_params()
+                params.pop(DISPERSION_KEY, None)
+            if dispersion is not None:
+                params[DISPERSION_KEY] = dispersion.to_params()
+            if args.forget_spool_u:
+                params.pop(LENGTH_U_KEY, None)
+                params.pop(LOSS_U_KEY, None)
+            params.update(spool_u)
+            if params != (spool.params or {}):
                 spool.params = params  # a new dict: the JSON column sees the change
-            if spool_u or args.forget_spool_u:
-                params = {k: v for k, v in (spool.params or {}).items()
-                          if not (args.forget_spool_u and k in (LENGTH_U_KEY, LOSS_U_KEY))}
-                spool.params = {**params, **spool_u}
+            rec = GivenDispersion.of(spool)
             spool.updated_at = utcnow()
             out = {"spool": spool.label, "length_km": spool.length_km,
                    "loss_db_per_km": spool.loss_db_per_km, "fibre_type": spool.fibre_type,
@@ -285,7 +289,6 @@ def cmd_spool_set(args: argparse.Namespace) -> int:
     if args.json:
         print(json.dumps(out, indent=2))
     else:
-        rec = GivenDispersion.of(type("S", (), {"params": {DISPERSION_KEY: out["dispersion"]}}))
         print(f"spool {out['spool']}: " + ", ".join(
             f"{k} = {v}" for k, v in out.items()
             if k not in ("spool", "dispersion", "length_u_from", "loss_u_from")
