@@ -7,9 +7,10 @@ Inoue's efficiency with loss has minima near |dbeta| L = 2 pi n (K. Inoue, J. Li
 peaks between the D's of the lab's record, and the budget's D row (half the change between
 D + u and D - u) stepped over the peak: on this module's RK4IP data D -6.273 +- 0.30 gave
 gamma 16.1 with U 2.9 before the check, the truth 3.7 U away (on the virtual lab with realism
-on, seed 1: 17.76 with U 3.07, docs/models.md). The fit must then claim no U (JCGM 100:2008 5.1.2 Note: the first-order law holds
-only while the second-order term is small), and warn that its residual is far above what the
-inputs explain (a Birge ratio, reduced chi-square against scipy-free table values).
+on, seed 1: 17.76 with U 3.07, docs/models.md). The fit must then claim no U (JCGM 100:2008
+5.1.2 Note: the first-order law holds only while the second-order term is small), and warn that
+its residual is far above what the inputs explain (a Birge ratio, reduced chi-square against
+scipy-free table values).
 
 The "measured" lines come from tests/_rk4ip.py (fourth-order Runge-Kutta in the interaction
 picture, Hult, J. Lightwave Technol. 25(12), 3770 (2007)), which shares no code with the fit's

@@ -109,3 +109,12 @@ def test_compare_side_by_side_uses_the_same_headline(tmp_path, capsys):
     assert sp["newer_fits_not_shown"] == [{"fit_id": ids[1], "why": "without U"}]
     assert main(["compare", LABEL, LABEL + "X", "--db", db]) == 0
     assert f"newer fit {ids[1]} without U not shown" in capsys.readouterr().out
+
+
+def test_spools_lists_the_gamma_fits_of_compare():
+    """labrun spools writes compare.GAMMA out (its --help must not import the store): the same
+    names in the same order of preference."""
+    from labrun.cli.spools import HEADLINE
+    from labrun.compare import GAMMA
+
+    assert dict(HEADLINE)["gamma_per_w_per_km"] == GAMMA
